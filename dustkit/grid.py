@@ -1,0 +1,124 @@
+"""The model grid: Galactic HEALPix sky pixels x distance edges."""
+
+from dataclasses import dataclass
+
+import healpy as hp
+import numpy as np
+from astropy import units as u
+
+from ._validation import check_choice, check_nside, check_real, param_error, to_value
+
+__all__ = ["Grid", "MAX_GRID_BYTES"]
+
+#: Largest grid dustkit agrees to allocate (bytes), counting the working arrays of a build.
+MAX_GRID_BYTES = 8 * 2**30
+#: float64 arrays per (pixel, edge) cell held during a build (fold statistics and results).
+_ARRAYS_PER_CELL = 32
+
+
+@dataclass(frozen=True)
+class Grid:
+    """HEALPix pixels (Galactic, RING or NESTED) x distance edges (pc).
+
+    Cumulative quantities live on the edges (``n_edges`` values per pixel), differential
+    ones in the bins between them (``n_bins = n_edges - 1``).
+    """
+
+    nside: int
+    distance_edges: np.ndarray
+    ordering: str = "ring"
+
+    def __post_init__(self):
+        check_nside(self.nside)
+        object.__setattr__(self, "ordering", check_choice("ordering", self.ordering, ("ring", "nested")))
+        e = np.asarray(self.distance_edges, dtype=float)
+        if e.ndim != 1 or e.size < 2 or not np.all(np.isfinite(e)):
+            raise param_error("distance_edges", "a 1-D array of at least two finite distances", self.distance_edges)
+        if e[0] < 0 or np.any(np.diff(e) <= 0):
+            raise param_error("distance_edges", "non-negative and strictly increasing", e.tolist())
+        object.__setattr__(self, "distance_edges", e)
+        need = self.npix * e.size * 8 * _ARRAYS_PER_CELL
+        if need > MAX_GRID_BYTES:
+            raise param_error(
+                "grid",
+                f"small enough to build in memory (at most {MAX_GRID_BYTES / 2**30:.0f} GiB); "
+                f"NSIDE {self.nside} x {e.size} distance edges needs about {need / 2**30:.1f} GiB. "
+                "Hint: lower nside or use fewer distance bins",
+                f"nside={self.nside}, {e.size} edges",
+            )
+
+    @classmethod
+    def linear(cls, distance_max=6000 * u.pc, distance_step=200 * u.pc, nside=32, ordering="ring"):
+        """Edges 0, step, 2 step, ... up to ``distance_max`` (inclusive when it falls on a step)."""
+        dmax = float(to_value("distance_max", distance_max, u.pc, default_unit=u.pc))
+        step = float(to_value("distance_step", distance_step, u.pc, default_unit=u.pc))
+        check_real("distance_max", dmax, 0, np.inf, low_inclusive=False)
+        check_real("distance_step", step, 0, dmax, low_inclusive=False)
+        n = int(np.ceil(dmax / step - 1e-9))
+        return cls(nside, np.arange(n + 1) * step, ordering)
+
+    @classmethod
+    def log(cls, distance_min=50 * u.pc, distance_max=10000 * u.pc, n_bins=40, nside=32, ordering="ring"):
+        """Edges 0 then ``n_bins`` logarithmically spaced bins from ``distance_min`` to ``distance_max``."""
+        dmin = float(to_value("distance_min", distance_min, u.pc, default_unit=u.pc))
+        dmax = float(to_value("distance_max", distance_max, u.pc, default_unit=u.pc))
+        check_real("distance_min", dmin, 0, np.inf, low_inclusive=False)
+        check_real("distance_max", dmax, dmin, np.inf, low_inclusive=False)
+        from ._validation import check_int
+
+        n_bins = check_int("n_bins", n_bins, 1, 100_000)
+        return cls(nside, np.concatenate([[0.0], np.geomspace(dmin, dmax, n_bins)]), ordering)
+
+    @property
+    def nest(self):
+        return self.ordering == "nested"
+
+    @property
+    def npix(self):
+        return hp.nside2npix(self.nside)
+
+    @property
+    def n_edges(self):
+        return self.distance_edges.size
+
+    @property
+    def n_bins(self):
+        return self.distance_edges.size - 1
+
+    @property
+    def pixel_area(self):
+        """Area of one pixel (Quantity, deg^2)."""
+        return (hp.nside2pixarea(self.nside, degrees=True)) * u.deg**2
+
+    def pixel(self, l_deg, b_deg):
+        """Pixel index of Galactic positions (plain degrees)."""
+        return hp.ang2pix(self.nside, np.asarray(l_deg, float), np.asarray(b_deg, float), nest=self.nest, lonlat=True)
+
+    def pixel_centres(self, pixels=None):
+        """Galactic (l, b) in degrees of pixel centres (all pixels by default)."""
+        if pixels is None:
+            pixels = np.arange(self.npix)
+        l, b = hp.pix2ang(self.nside, np.asarray(pixels), nest=self.nest, lonlat=True)
+        return l, b
+
+    def interp_weights(self, l_deg, b_deg):
+        """HEALPix bilinear interpolation pixels and weights, each of shape (4, n)."""
+        return hp.get_interp_weights(self.nside, np.asarray(l_deg, float), np.asarray(b_deg, float), nest=self.nest, lonlat=True)
+
+    def edge_position(self, distance_pc):
+        """Lower edge index ``k`` and fraction ``f`` in [0, 1] of each distance inside its bin.
+
+        Distances beyond the last edge get the last bin with ``f > 1``.
+        """
+        e = self.distance_edges
+        d = np.asarray(distance_pc, float)
+        k = np.clip(np.searchsorted(e, d, side="right") - 1, 0, e.size - 2)
+        f = (d - e[k]) / (e[k + 1] - e[k])
+        return k, f
+
+    def __repr__(self):
+        e = self.distance_edges
+        return (
+            f"Grid(nside={self.nside}, ordering='{self.ordering}', {self.n_bins} distance bins "
+            f"from {e[0]:g} to {e[-1]:g} pc)"
+        )

@@ -1,0 +1,208 @@
+"""The smooth exponential dust layer: closed-form extinction and a robust fit.
+
+The layer has density ``a0 * exp(-|z| / h)`` (A_V per unit path length) with the Sun at
+height ``z_sun`` above the mid-plane, ``z = z_sun + s sin(b)`` along a sight line. Its
+cumulative A_V out to distance ``d`` has a closed form (see :func:`layer_av`).
+"""
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from astropy import units as u
+from scipy import optimize
+
+from ._errors import CatalogError
+from ._validation import check_real, to_value
+
+__all__ = ["DustLayer", "layer_av", "fit_layer"]
+
+_PC_PER_KPC = 1000.0
+
+
+def _layer_av_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
+    """Closed-form layer A_V (mag) on plain float arrays; distances and heights in pc."""
+    b = np.asarray(b_deg, dtype=float)
+    d = np.asarray(distance_pc, dtype=float)
+    mu = np.sin(np.deg2rad(b))
+    a0 = a0_mag_per_kpc / _PC_PER_KPC
+    z0 = np.full(np.broadcast(mu, d).shape, float(z_sun_pc))
+    z1 = z0 + d * mu
+    # side of the mid-plane where the sight line starts; at z0 == 0 it is the side it heads to
+    s = np.where(z0 != 0, np.sign(z0), np.sign(mu))
+    s = np.where(s == 0, 1.0, s)
+    crossing = s * z1 < 0
+    # same side: a0 exp(-|z0|/h) d g(x), g(x) = expm1(x)/x, x = -s d mu / h (stable as mu -> 0)
+    x = -s * d * mu / h_pc
+    with np.errstate(divide="ignore", invalid="ignore"):
+        g = np.where(np.abs(x) > 1e-8, np.expm1(x) / np.where(x == 0, 1.0, x), 1.0 + 0.5 * x)
+        same = a0 * np.exp(-np.abs(z0) / h_pc) * d * g
+        # crossing the mid-plane: two one-sided integrals, |mu| >= |z0|/d > 0 here
+        cross = a0 * h_pc / np.abs(mu) * (
+            -np.expm1(-np.abs(z0) / h_pc) - np.expm1(-np.abs(z1) / h_pc)
+        )
+    return np.where(crossing, cross, same)
+
+
+def _layer_slope_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
+    """dA_V/dd (mag/pc) of the layer: the density at the end of the sight line."""
+    z = z_sun_pc + np.asarray(distance_pc, float) * np.sin(np.deg2rad(np.asarray(b_deg, float)))
+    return a0_mag_per_kpc / _PC_PER_KPC * np.exp(-np.abs(z) / h_pc)
+
+
+def layer_av(b, distance, a0=1.0 * u.mag / u.kpc, h=100 * u.pc, z_sun=20 * u.pc):
+    """Cumulative A_V of an exponential dust layer out to ``distance``.
+
+    Parameters
+    ----------
+    b : Quantity['angle']
+        Galactic latitude.
+    distance : Quantity['length']
+        Distance from the Sun.
+    a0 : Quantity['mag/length']
+        Mid-plane extinction per unit length.
+    h : Quantity['length']
+        Scale height of the layer.
+    z_sun : Quantity['length']
+        Height of the Sun above the mid-plane.
+
+    Returns
+    -------
+    Quantity['mag']
+
+    Notes
+    -----
+    With ``mu = sin b`` and ``F(z) = h sign(z) (1 - exp(-|z|/h))`` the antiderivative of
+    ``exp(-|z|/h)``, ``A_V = a0 |F(z_sun + d mu) - F(z_sun)| / |mu|``; for ``z_sun = 0`` this is
+    the classical ``a0 h / |sin b| (1 - exp(-d |sin b| / h))`` (Parenago 1940) which tends to
+    ``a0 d`` in the plane and to the cosecant law far from it.
+    """
+    bv = to_value("b", b, u.deg)
+    dv = to_value("distance", distance, u.pc)
+    a0v = float(to_value("a0", a0, u.mag / u.kpc))
+    hv = float(to_value("h", h, u.pc))
+    zv = float(to_value("z_sun", z_sun, u.pc))
+    return _layer_av_pc(bv, dv, a0v, hv, zv) * u.mag
+
+
+@dataclass(frozen=True)
+class DustLayer:
+    """A fitted (or given) exponential dust layer.
+
+    Attributes are plain floats in mag/kpc (``a0``) and pc (``h``, ``z_sun``); the ``*_err``
+    are 1-sigma uncertainties from the fit (zero for a layer given by hand).
+    """
+
+    a0: float = 1.0
+    h: float = 100.0
+    z_sun: float = 20.0
+    a0_err: float = 0.0
+    h_err: float = 0.0
+    z_sun_err: float = 0.0
+    scatter: float = 0.0
+    n_used: int = 0
+    covariance: np.ndarray = field(default_factory=lambda: np.zeros((3, 3)), repr=False, compare=False)
+
+    def av(self, b, distance):
+        """A_V (Quantity, mag) of the layer toward latitude ``b`` out to ``distance``."""
+        return layer_av(b, distance, self.a0 * u.mag / u.kpc, self.h * u.pc, self.z_sun * u.pc)
+
+    def _av(self, b_deg, distance_pc):
+        return _layer_av_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
+
+    def _slope(self, b_deg, distance_pc):
+        return _layer_slope_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
+
+    def as_dict(self):
+        """The parameters and errors as a plain dict (mag/kpc and pc)."""
+        return {
+            "a0": self.a0, "a0_err": self.a0_err,
+            "h": self.h, "h_err": self.h_err,
+            "z_sun": self.z_sun, "z_sun_err": self.z_sun_err,
+        }
+
+    def __str__(self):
+        return (
+            f"dust layer: a0 = {self.a0:.3f} +- {self.a0_err:.3f} mag/kpc, "
+            f"h = {self.h:.1f} +- {self.h_err:.1f} pc, "
+            f"z_sun = {self.z_sun:.1f} +- {self.z_sun_err:.1f} pc"
+            + (f" (from {self.n_used} tracers, scatter {self.scatter:.3f} mag)" if self.n_used else "")
+        )
+
+
+def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=200_000, random_state=0):
+    """Fit an exponential dust layer to a tracer set by robust weighted least squares.
+
+    Parameters
+    ----------
+    tracers : TracerSet
+        Tracers with ``b`` (deg), ``distance``/``distance_err`` (pc), ``av``/``av_err`` (mag).
+    f_scale : float
+        Soft-L1 loss scale in units of each tracer's total uncertainty: residuals beyond it
+        (clouds, which are outliers to a smooth layer) count linearly, not quadratically.
+    initial : tuple of float
+        Starting values of a0 (mag/kpc), h (pc), z_sun (pc).
+    max_tracers : int
+        Larger sets are fitted on a random subset of this size (the layer has three
+        parameters; more tracers do not change it).
+    random_state : int
+        Seed for the subset.
+
+    Returns
+    -------
+    DustLayer
+
+    Notes
+    -----
+    Each tracer's uncertainty combines its A_V error, its distance error times the layer's
+    slope dA_V/dd, and an intrinsic scatter re-estimated from the residuals (1.4826 x MAD)
+    over three passes. Parameter errors come from the Jacobian at the solution, scaled by
+    the robust residual variance. Typical literature values for open clusters: scale height
+    about 125 pc and z_sun about 15-25 pc (Joshi 2005, MNRAS 362, 1259).
+    """
+    check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
+    b = np.asarray(tracers.b, float)
+    d = np.asarray(tracers.distance, float)
+    de = np.asarray(tracers.distance_err, float)
+    av = np.asarray(tracers.av, float)
+    ae = np.asarray(tracers.av_err, float)
+    n = b.size
+    if n < 5:
+        raise CatalogError(
+            f"A dust layer needs at least 5 tracers; got {n}. "
+            "Hint: widen the region or add tracers."
+        )
+    if n > max_tracers:
+        pick = np.random.default_rng(random_state).choice(n, max_tracers, replace=False)
+        b, d, de, av, ae = b[pick], d[pick], de[pick], av[pick], ae[pick]
+
+    lo = np.array([1e-4, 5.0, -300.0])
+    hi = np.array([50.0, 5000.0, 300.0])
+    p = np.clip(np.asarray(initial, float), lo + 1e-9, hi - 1e-9)
+    scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)
+    for _ in range(3):
+        slope = _layer_slope_pc(b, d, *p)
+        sigma = np.sqrt(ae**2 + (slope * de) ** 2 + scatter**2)
+
+        def resid(q):
+            return (av - _layer_av_pc(b, d, *q)) / sigma
+
+        sol = optimize.least_squares(resid, p, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale, x_scale=[1.0, 100.0, 10.0])
+        p = sol.x
+        raw = av - _layer_av_pc(b, d, *p)
+        mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
+        meas = np.sqrt(np.median(ae**2 + (slope * de) ** 2))
+        scatter = float(np.sqrt(max(mad**2 - meas**2, (0.01) ** 2)))
+
+    r = resid(p)
+    robust_var = (1.4826 * np.median(np.abs(r))) ** 2
+    jac = sol.jac
+    try:
+        cov = np.linalg.inv(jac.T @ jac) * max(robust_var, 1e-12)
+    except np.linalg.LinAlgError:
+        cov = np.full((3, 3), np.nan)
+    err = np.sqrt(np.clip(np.diag(cov), 0, None))
+    return DustLayer(
+        a0=float(p[0]), h=float(p[1]), z_sun=float(p[2]),
+        a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
+        scatter=scatter, n_used=int(b.size), covariance=cov,
+    )
