@@ -1,0 +1,462 @@
+"""Tests of dustkit.bands: band table, conversions, excess names, passband integration.
+
+Check values are copied here with their source; nothing is read from outside the
+repository at test time.
+"""
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.table import Table
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from dustkit._errors import AssumptionWarning, LawRangeError, ParameterError
+from dustkit.bands import (
+    DEFAULT_TEMPERATURE,
+    Band,
+    a_band_over_av,
+    add_band,
+    av_to_band,
+    av_to_excess,
+    band_table,
+    example_passband_path,
+    excess_over_ebv,
+    excess_to_av,
+    get_band,
+    parse_excess_name,
+    q_method_ebv,
+    passband_a_over_av,
+    read_transmission,
+    remove_band,
+)
+from dustkit.laws import LAWS, get_law
+
+
+@pytest.fixture
+def user_bands():
+    """Remove the bands a test adds, so the registry is unchanged afterwards."""
+    added = []
+    yield added
+    for name in added:
+        remove_band(name)
+
+
+# ------------------------------------------------------------------------ band table
+def test_band_table_has_the_standard_bands_with_sources():
+    table = band_table()
+    assert isinstance(table, Table)
+    assert {"name", "wavelength", "source"} <= set(table.colnames)
+    wavelength = dict(zip(table["name"], table["wavelength"].to_value(u.micron)))
+    for name in ["U", "B", "V", "R", "I", "J", "H", "Ks", "G", "BP", "RP", "u", "g", "r", "i", "z", "W1", "W2"]:
+        assert name in wavelength
+    # Johnson 1966: U 0.36, B 0.44, V 0.55 um (dustkit uses the CCM89 points, equal at 2 digits)
+    np.testing.assert_allclose([wavelength[b] for b in "UBV"], [0.36, 0.44, 0.55], atol=0.0051)
+    # Cousins Rc 0.64, Ic 0.79 um (Bessell 1979)
+    np.testing.assert_allclose([wavelength["R"], wavelength["I"]], [0.64, 0.79], atol=1e-9)
+    # 2MASS J 1.25, H 1.65, Ks 2.17 um (2MASS catalogue description)
+    np.testing.assert_allclose([wavelength[b] for b in ("J", "H", "Ks")], [1.25, 1.65, 2.17], atol=1e-9)
+    # Gaia BP ~0.51, G ~0.62, RP ~0.78 um (from memory)
+    np.testing.assert_allclose([wavelength[b] for b in ("BP", "G", "RP")], [0.51, 0.62, 0.78], atol=0.02)
+    # bands are ordered blue to red within each system, and every value names its source
+    assert wavelength["u"] < wavelength["g"] < wavelength["r"] < wavelength["i"] < wavelength["z"]
+    assert wavelength["W1"] < wavelength["W2"]
+    assert all(len(source) > 3 for source in table["source"])
+    assert any("from memory" in source for source in table["source"])
+
+
+# ------------------------------------------------------------------------ band names
+@pytest.mark.parametrize(
+    ("text", "name"),
+    [
+        ("U", "U"), ("u", "u"), ("B", "B"), ("V", "V"), ("v", "V"), ("R", "R"), ("r", "r"),
+        ("I", "I"), ("i", "i"), ("Rc", "R"), ("I_C", "I"), ("z", "z"), ("Z", "z"),
+        ("Ks", "Ks"), ("K_s", "Ks"), ("KS", "Ks"), ("ks", "Ks"), ("K", "K"),
+        ("G", "G"), ("g", "g"), ("G_BP", "BP"), ("BP", "BP"), ("bp", "BP"), ("Gbp", "BP"),
+        ("G_RP", "RP"), ("rp", "RP"), ("2MASS_J", "J"), ("2MASS H", "H"), ("Gaia G", "G"),
+        ("SDSS_U", "u"), ("sdss g", "g"), ("Johnson u", "U"), ("W1", "W1"), ("w2", "W2"),
+    ],
+)
+def test_get_band_spellings(text, name):
+    # SDSS u g r i z are lower case, Johnson-Cousins U B V R I upper case: exact
+    # match first, other capitalisations only when unambiguous (common practice)
+    assert get_band(text).name == name
+
+
+def test_unknown_and_ambiguous_band_names(user_bands):
+    with pytest.raises(ParameterError) as info:
+        get_band("Q")
+    message = str(info.value)
+    assert "'Q'" in message and "Ks" in message and "add_band" in message
+    # two user bands differing only in case: each exact name works, other
+    # capitalisations are refused as ambiguous rather than guessed
+    add_band("Nb", 1.02 * u.micron, source="test")
+    add_band("NB", 0.96 * u.micron, source="test")
+    user_bands += ["Nb", "NB"]
+    assert get_band("Nb").wavelength == 1.02 * u.micron
+    assert get_band("NB").wavelength == 0.96 * u.micron
+    assert get_band("N_b").name == "Nb"  # separators ignored, case kept
+    with pytest.raises(ParameterError, match=r"ambiguous.*'Nb'.*'NB'"):
+        get_band("nb")
+
+
+def test_add_band_and_its_errors(user_bands):
+    band = add_band("Hal", 656.3 * u.nm, source="invented narrow band")
+    user_bands.append("Hal")
+    assert isinstance(band, Band) and get_band("hal") is band
+    assert band.wavelength.to_value(u.micron) == pytest.approx(0.6563)
+    assert a_band_over_av("Hal") == pytest.approx(float(get_law("ccm89").a_over_av(656.3 * u.nm)))
+    assert "Hal" in band_table()["name"]
+    with pytest.raises(ParameterError, match="'name' parameter"):
+        add_band("Hal", 0.5 * u.micron)
+    with pytest.raises(ParameterError, match="built-in"):
+        add_band("V", 0.5 * u.micron)
+    with pytest.raises(ParameterError, match="'name' parameter"):
+        add_band("X-1", 0.5 * u.micron)
+    with pytest.raises(ParameterError, match="'wavelength' parameter"):
+        add_band("X1", 0.5)
+    with pytest.raises(ParameterError, match="built-in"):
+        remove_band("V")
+
+
+# ------------------------------------------------------------- colour-excess names
+@pytest.mark.parametrize(
+    ("text", "pair"),
+    [
+        ("E(B-V)", ("B", "V")), ("E_BV", ("B", "V")), ("ebv", ("B", "V")), ("EBV", ("B", "V")),
+        ("E(B\u2013V)", ("B", "V")), ("E_B-V", ("B", "V")), ("EBmV", ("B", "V")),
+        ("E(BP-RP)", ("BP", "RP")), ("E_BP_RP", ("BP", "RP")), ("EBPRP", ("BP", "RP")),
+        ("E(G_BP-G_RP)", ("BP", "RP")), ("E(J-Ks)", ("J", "Ks")), ("EJKs", ("J", "Ks")),
+        ("EJK", ("J", "K")), ("E(V-I)", ("V", "I")), ("E(g-r)", ("g", "r")), ("E(U-B)", ("U", "B")),
+    ],
+)
+def test_parse_excess_name(text, pair):
+    assert parse_excess_name(text) == pair
+
+
+@pytest.mark.parametrize("text", ["ra", "dist", "Err", "ELON", "E(B-B)", "E(B-Q)", "E()", "EBV_err"])
+def test_parse_excess_name_rejects_other_columns(text):
+    assert parse_excess_name(text, strict=False) is None
+    with pytest.raises(ParameterError, match="colour-excess name"):
+        parse_excess_name(text)
+
+
+# ---------------------------------------------------------- monochromatic coefficients
+def test_a_band_over_av_reproduces_ccm89_table3_bands():
+    # Cardelli, Clayton & Mathis 1989 Table 3, R_V = 3.1: U 1.569, V 1.000, J 0.282;
+    # B: the table prints 1.337 (misprint), the formula gives 1.322
+    assert a_band_over_av("U") == pytest.approx(1.569, abs=0.01)
+    assert a_band_over_av("B") == pytest.approx(1.322, abs=1e-3)
+    assert a_band_over_av("V") == pytest.approx(1.000, abs=1e-6)
+    assert a_band_over_av("J") == pytest.approx(0.282, abs=0.01)
+    # a band may also be given as a wavelength
+    assert a_band_over_av(1.82 / u.micron) == pytest.approx(1.0, abs=1e-9)
+
+
+@pytest.mark.parametrize("rv", np.linspace(2.0, 6.0, 9))
+def test_ebv_to_av_is_rv_times_ebv_for_ccm89(rv):
+    # definition R_V = A_V / E(B-V); exact for CCM89 at its B and V points
+    # (A(B)/A(V) = 1 + 1/R_V to ~3e-6, computed; A_V/E(B-V) inherits R_V x 3e-6)
+    av, av_err = excess_to_av(0.4, 0.02, "B", "V", law="ccm89", rv=rv)
+    assert av == pytest.approx(rv * 0.4, rel=5e-5)
+    assert av_err == pytest.approx(rv * 0.02, rel=5e-5)
+    assert excess_over_ebv("B", "V", rv=rv) == pytest.approx(1.0)
+
+
+def test_eub_over_ebv_hiltner_johnson():
+    # E(U-B)/E(B-V) = 0.72 (Hiltner & Johnson 1956, ApJ 124, 367). The monochromatic
+    # value is slightly larger (0.76) because the broad U band is not monochromatic.
+    ratio = excess_over_ebv("U", "B", law="ccm89", rv=3.1)
+    assert ratio == pytest.approx(0.72, abs=0.05)
+
+
+def test_ejks_over_ebv():
+    # E(J-Ks)/E(B-V): literature 0.48-0.53 (from memory)
+    assert 0.48 <= excess_over_ebv("J", "Ks", law="ccm89") <= 0.54
+    # 0.53 from CCM89 at the 2MASS isophotal wavelengths 1.235 / 2.159 um
+    # (wavelengths: Cohen et al. 2003, from memory; ratio computed)
+    assert excess_over_ebv(1.235 * u.micron, 2.159 * u.micron) == pytest.approx(0.53, abs=0.01)
+    # 0.525 from Rieke & Lebofsky 1985 (computed: (0.282 - 0.112) x 3.09)
+    assert excess_over_ebv("J", 2.22 * u.micron, law="rieke85") == pytest.approx(0.525, abs=0.01)
+
+
+def test_wise_bands_need_a_law_that_covers_them():
+    # CCM89 stops at 3.33 um; the error names a law that covers W1
+    with pytest.raises(LawRangeError, match=r"ccm89.*3\.35.*gordon23"):
+        a_band_over_av("W1", law="ccm89")
+    # G23 covers the mid-infrared: W2 < W1 < Ks (common practice)
+    w1, w2, ks = (a_band_over_av(b, law="gordon23") for b in ("W1", "W2", "Ks"))
+    assert 0 < w2 < w1 < ks
+
+
+def test_fixed_rv_law_in_conversions():
+    # Rieke & Lebofsky 1985 Table 3: A_K/A_V = 0.112 at 2.22 um
+    a_k, _ = av_to_band(10.0, 0.0, 2.22 * u.micron, law="rieke85", rv=None)
+    assert a_k == pytest.approx(1.12, abs=1e-6)
+    with pytest.raises(ParameterError, match="'rv_err' parameter.*fixed"):
+        excess_to_av(0.5, 0.05, "J", "Ks", law="rieke85", rv=3.09, rv_err=0.1)
+    with pytest.raises(LawRangeError, match="rieke85"):
+        av_to_band(1.0, 0.1, "Ks", law="rieke85", rv=4.0)
+
+
+# ------------------------------------------------------------------- conventions
+def test_quantity_in_quantity_out_and_plain_in_plain_out():
+    av, av_err = excess_to_av([0.1, 0.2] * u.mag, [0.01, 0.02] * u.mag, "B", "V")
+    assert av.unit == u.mag and av_err.unit == u.mag
+    np.testing.assert_allclose(av.value, [0.31, 0.62], rtol=1e-5)
+    av, av_err = excess_to_av(np.array([0.1, 0.2]), 0.01, "B", "V")
+    assert type(av) is np.ndarray and av.shape == (2,) and av_err.shape == (2,)
+    av, av_err = excess_to_av(0.1, 0.01, "B", "V")
+    assert np.ndim(av) == 0 and not isinstance(av, u.Quantity)
+    a, a_err = av_to_band(2.0 * u.mag, None, "Ks")
+    assert a.unit == u.mag and a_err.value == 0.0
+    e, _ = av_to_excess(np.array([3.1]), 0.0, "B", "V")
+    assert e[0] == pytest.approx(1.0, rel=1e-5)  # inverse of E(B-V) -> A_V
+    # NaN values pass through as NaN (catalogue rows are screened elsewhere)
+    av, _ = excess_to_av(np.array([0.1, np.nan]), 0.01, "BP", "RP")
+    assert np.isfinite(av[0]) and np.isnan(av[1])
+
+
+def test_conversion_errors_name_the_parameter():
+    with pytest.raises(ParameterError, match="'excess_err' parameter.*negative"):
+        excess_to_av([0.1, 0.2], [0.01, -0.01], "B", "V")
+    with pytest.raises(ParameterError, match="'excess' parameter"):
+        excess_to_av(0.1 * u.m, 0.01, "B", "V")
+    with pytest.raises(ParameterError, match="no excess"):
+        excess_to_av(0.1, 0.01, "V", "V")
+    with pytest.raises(ParameterError, match="'band' parameter"):
+        av_to_band(1.0, 0.1, "nonsense")
+    with pytest.raises(ParameterError, match="'law' parameter"):
+        av_to_band(1.0, 0.1, "V", law="nonsense")
+
+
+def test_round_trip_excess_av_band():
+    rng = np.random.default_rng(3)
+    ebprp = rng.uniform(0, 2, 1000)
+    av, _ = excess_to_av(ebprp, 0.0, "BP", "RP", law="fitzpatrick99", rv=3.3)
+    back, _ = av_to_excess(av, 0.0, "BP", "RP", law="fitzpatrick99", rv=3.3)
+    np.testing.assert_allclose(back, ebprp, rtol=1e-12)
+    # chain E(BP-RP) -> A_V -> A_Ks equals the direct ratio of coefficients
+    a_ks, _ = av_to_band(av, 0.0, "Ks", law="fitzpatrick99", rv=3.3)
+    k = [a_band_over_av(b, "fitzpatrick99", 3.3) for b in ("BP", "RP", "Ks")]
+    np.testing.assert_allclose(a_ks, ebprp * k[2] / (k[0] - k[1]), rtol=1e-12)
+
+
+def test_rv_array_matches_scalar_values():
+    # per-value R_V: few distinct values are exact, many are interpolated in 1/R_V
+    # from a fixed grid (documented accuracy: better than 1e-6 in A/A_V)
+    rng = np.random.default_rng(5)
+    excess = rng.uniform(0, 1, 3000)
+    few = rng.choice([2.8, 3.1, 4.0], 3000)
+    av, _ = excess_to_av(excess, 0.0, "J", "Ks", law="fitzpatrick99", rv=few)
+    scalar = [excess_to_av(excess[i], 0.0, "J", "Ks", law="fitzpatrick99", rv=few[i])[0] for i in range(5)]
+    np.testing.assert_allclose(av[:5], scalar, rtol=1e-12)
+    for name, bands in (("ccm89", ("U", "Ks")), ("fitzpatrick99", ("U", "B", "Ks")), ("gordon23", ("Ks",))):
+        lo, hi = LAWS[name].rv_range
+        many = rng.uniform(lo, hi, 500)
+        for band in bands:
+            coeff = a_band_over_av(band, law=name, rv=many)
+            exact = [a_band_over_av(band, law=name, rv=r) for r in many[:15]]
+            np.testing.assert_allclose(coeff[:15], exact, atol=1e-6)
+    with pytest.raises(LawRangeError, match="ccm89"):
+        excess_to_av(excess[:2], 0.0, "B", "V", rv=np.array([3.1, 7.0]))
+
+
+# ---------------------------------------------------------- uncertainty propagation
+def test_ebv_uncertainty_matches_analytic_formula():
+    # A_V = R_V E(B-V) (CCM89 B, V points), so to first order
+    # sigma_AV^2 = (R_V sigma_E)^2 + (E sigma_RV)^2 (standard error propagation)
+    ebv = np.array([0.1, 0.5, 2.0])
+    av, av_err = excess_to_av(ebv, 0.05, "B", "V", law="ccm89", rv=3.1, rv_err=0.2)
+    np.testing.assert_allclose(av, 3.1 * ebv, rtol=1e-5)
+    np.testing.assert_allclose(av_err, np.hypot(3.1 * 0.05, ebv * 0.2), rtol=1e-4)
+    a, a_err = av_to_band(av, 0.1, "V", law="ccm89")
+    np.testing.assert_allclose(a_err, 0.1, rtol=1e-6)
+
+
+def test_uncertainty_matches_monte_carlo():
+    # first-order propagation against a Monte Carlo of the same conversion
+    rng = np.random.default_rng(11)
+    n = 200_000
+    e0, e_err, rv0, rv_err = 0.8, 0.05, 3.1, 0.1
+    av, av_err = excess_to_av(e0, e_err, "J", "Ks", law="fitzpatrick99", rv=rv0, rv_err=rv_err)
+    draws, _ = excess_to_av(
+        rng.normal(e0, e_err, n), 0.0, "J", "Ks", law="fitzpatrick99", rv=rng.normal(rv0, rv_err, n)
+    )
+    assert np.mean(draws) == pytest.approx(av, rel=0.01)
+    assert np.std(draws) == pytest.approx(av_err, rel=0.03)
+    # A_V -> band with an R_V uncertainty
+    a, a_err = av_to_band(2.0, 0.2, "BP", law="gordon23", rv=3.1, rv_err=0.15)
+    draws, _ = av_to_band(rng.normal(2.0, 0.2, n), 0.0, "BP", law="gordon23", rv=rng.normal(3.1, 0.15, n))
+    assert np.std(draws) == pytest.approx(a_err, rel=0.03)
+
+
+def test_fast_on_a_million_values():
+    import time
+
+    rng = np.random.default_rng(2)
+    excess = rng.uniform(0, 1, 10**6)
+    start = time.perf_counter()
+    av, av_err = excess_to_av(excess, 0.05, "BP", "RP", law="gordon23", rv=3.1, rv_err=0.1)
+    a, a_err = av_to_band(av, av_err, "Ks", law="gordon23")
+    assert time.perf_counter() - start < 2.0
+    assert a.shape == (10**6,) and np.all(np.isfinite(a_err))
+
+
+def test_q_method_worked_example():
+    # Q = (U-B) - 0.72 (B-V) (Johnson & Morgan 1953); (B-V)_0 = 0.332 Q (Johnson 1958,
+    # from memory). Worked case (computed): B-V = 0.30, U-B = -0.40 -> Q = -0.616,
+    # (B-V)_0 = -0.20451, E(B-V) = 0.50451, A_V(R_V = 3.1) = 1.5640
+    ebv, ebv_err = q_method_ebv(0.30, -0.40, b_v_err=0.01, u_b_err=0.02)
+    assert ebv == pytest.approx(0.50451, abs=1e-5)
+    av, _ = excess_to_av(ebv, ebv_err, "B", "V", law="ccm89", rv=3.1)
+    assert av == pytest.approx(1.5640, abs=1e-3)
+    # linear propagation: E = 1.23904 (B-V) - 0.332 (U-B)
+    assert ebv_err == pytest.approx(np.hypot(1.23904 * 0.01, 0.332 * 0.02), rel=1e-6)
+    # vectorised, Quantity in -> Quantity out; an unreddened star on the intrinsic
+    # line ((B-V)_0 = -0.2 -> Q = -0.2/0.332, (U-B)_0 = Q - 0.72 x 0.2) gives E(B-V) = 0
+    u_b0 = -0.2 / 0.332 - 0.72 * 0.2
+    ebv_q, _ = q_method_ebv([0.30, -0.2] * u.mag, [-0.40, u_b0] * u.mag)
+    assert ebv_q.unit == u.mag
+    np.testing.assert_allclose(ebv_q.value, [0.50451, 0.0], atol=1e-5)
+
+
+# ---------------------------------------------------------------- passband integration
+@pytest.mark.parametrize(("law", "center"), [("ccm89", 0.55), ("fitzpatrick99", 0.44), ("gordon23", 2.17)])
+def test_narrow_tophat_reproduces_monochromatic(law, center):
+    # a passband much narrower than the curve's structure gives the monochromatic value
+    lam = np.array([center - 5e-4, center + 5e-4]) * u.micron
+    for av in (0.1, 3.0):
+        got = passband_a_over_av((lam, [1.0, 1.0]), law=law, rv=3.1, av=av)
+        mono = float(get_law(law).a_over_av(center * u.micron, 3.1))
+        assert got == pytest.approx(mono, rel=1e-4)
+
+
+def test_wide_flat_passband_lies_between_edge_values():
+    # a flat passband over 0.4-0.9 um: the coefficient is a weighted mean of A/A_V,
+    # so it lies between the values at the edges (common practice)
+    lam = np.array([0.4, 0.9]) * u.micron
+    edges = get_law("ccm89").a_over_av(lam, 3.1)
+    for temperature in (3500, 10000) * u.K:
+        for av in (0.0, 1.0, 10.0):
+            coeff = passband_a_over_av((lam, [1, 1]), av=av, temperature=temperature)
+            assert edges[1] < coeff < edges[0]
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    av=st.lists(st.floats(0.0, 30.0, allow_subnormal=False), min_size=2, max_size=8, unique=True),
+    temperature=st.floats(3000.0, 30000.0),
+)
+def test_band_extinction_is_monotone_in_av(av, temperature):
+    # more dust never makes a star brighter: A_band increases with A_V
+    av = np.sort(np.array(av))
+    coeff = passband_a_over_av(example_passband_path(), av=av, temperature=temperature * u.K)
+    a_band = coeff * av
+    assert np.all(np.diff(a_band) > 0)
+    # and the coefficient of a broad band falls as A_V grows (the band's effective
+    # wavelength moves to the red)
+    assert np.all(np.diff(coeff) <= 1e-12)
+
+
+def test_broad_band_depends_on_temperature_and_av():
+    # Invented very broad top-hat (330-1050 nm), a stand-in for a broad band such as
+    # Gaia G; NOT the real Gaia curve. Hotter stars weight the blue, where A/A_V is
+    # larger, so their coefficient is larger; more dust lowers the coefficient.
+    path = example_passband_path()
+    temps = [3500, 5800, 10000, 20000] * u.K
+    coeff = np.array([passband_a_over_av(path, temperature=t, av=1.0) for t in temps])
+    assert np.all(np.diff(coeff) > 0)
+    by_av = passband_a_over_av(path, av=np.array([0.0, 1.0, 3.0, 10.0]))
+    assert np.all(np.diff(by_av) < 0)
+    # the spread is large (tens of per cent) for such a broad band, so a single
+    # monochromatic coefficient is only an approximation
+    assert coeff[-1] / coeff[0] > 1.2
+    assert by_av[0] / by_av[-1] > 1.1
+
+
+def test_default_source_and_user_spectrum_agree():
+    # the default source is a 5800 K blackbody; the same blackbody given as arrays
+    # (in F_lambda or F_nu units) must give the same coefficient
+    from astropy.modeling.physical_models import BlackBody
+
+    assert DEFAULT_TEMPERATURE == 5800 * u.K
+    lam = np.linspace(0.3, 1.1, 4000) * u.micron
+    bb = BlackBody(temperature=5800 * u.K)
+    f_nu = (bb(lam) * u.sr).to(u.erg / u.s / u.cm**2 / u.Hz)
+    f_lambda = f_nu.to(u.erg / u.s / u.cm**2 / u.AA, equivalencies=u.spectral_density(lam))
+    path = example_passband_path()
+    default = passband_a_over_av(path, av=2.0)
+    assert passband_a_over_av(path, av=2.0, spectrum=(lam, f_nu)) == pytest.approx(default, rel=2e-5)
+    assert passband_a_over_av(path, av=2.0, spectrum=(lam, f_lambda)) == pytest.approx(default, rel=2e-5)
+    with pytest.warns(AssumptionWarning, match="F_lambda"):
+        plain = passband_a_over_av(path, av=2.0, spectrum=(lam, f_lambda.value))
+    assert plain == pytest.approx(default, rel=2e-5)
+    with pytest.warns(AssumptionWarning, match="kelvin"):
+        assert passband_a_over_av(path, av=2.0, temperature=5800) == pytest.approx(default)
+
+
+def test_energy_counting_weights_the_blue_more():
+    # energy-counting weights F_lambda, photon-counting lambda F_lambda (Bessell &
+    # Murphy 2012 convention, from memory): the photon-counting coefficient is smaller
+    path = example_passband_path()
+    assert passband_a_over_av(path, counting="energy") > passband_a_over_av(path, counting="photon")
+
+
+def test_transmission_file_and_arrays_agree(tmp_path):
+    lam_nm = np.array([400.0, 450.0, 500.0, 550.0, 600.0])
+    thr = np.array([0.0, 0.5, 1.0, 0.5, 0.0])
+    path = tmp_path / "band.txt"
+    path.write_text("# wavelength [nm] throughput\n" + "\n".join(f"{a} {b}" for a, b in zip(lam_nm, thr)))
+    from_file = passband_a_over_av(path, unit=u.nm, av=[0.5, 2.0])
+    from_arrays = passband_a_over_av((lam_nm * u.nm, thr), av=[0.5, 2.0])
+    np.testing.assert_allclose(from_file, from_arrays, rtol=1e-12)
+    # a curve given in decreasing wavelength is the same curve
+    reverse = passband_a_over_av((lam_nm[::-1] * u.nm, thr[::-1]), av=[0.5, 2.0])
+    np.testing.assert_allclose(reverse, from_arrays, rtol=1e-12)
+    # a band carrying its own transmission curve
+    user = Band("Tri", 0.5 * u.micron, "invented", transmission=(lam_nm * u.nm, thr))
+    np.testing.assert_allclose(passband_a_over_av(user, av=[0.5, 2.0]), from_arrays, rtol=1e-12)
+    lam_um, thr_read = read_transmission(example_passband_path())
+    assert lam_um[0] == pytest.approx(0.329) and thr_read.max() == 1.0
+
+
+def test_transmission_errors(tmp_path):
+    with pytest.raises(ParameterError, match="'transmission' parameter"):
+        passband_a_over_av(tmp_path / "missing.txt")
+    with pytest.raises(ParameterError, match="non-negative"):
+        passband_a_over_av((np.array([0.5, 0.6]) * u.micron, [1.0, -1.0]))
+    with pytest.raises(ParameterError, match="sorted"):
+        passband_a_over_av((np.array([0.5, 0.7, 0.6]) * u.micron, [1.0, 1.0, 1.0]))
+    # a passband reaching beyond the law's range is refused, not extrapolated
+    with pytest.raises(LawRangeError, match="ccm89"):
+        passband_a_over_av((np.array([2.0, 4.0]) * u.micron, [1.0, 1.0]), law="ccm89")
+    with pytest.raises(ParameterError, match="'av' parameter"):
+        passband_a_over_av(example_passband_path(), av=np.nan)
+
+
+def test_passband_fast_and_exact_on_a_million_av_values():
+    # many distinct A_V values are interpolated from an exact grid; compare with exact values
+    rng = np.random.default_rng(7)
+    av = rng.uniform(0, 10, 10**6)
+    import time
+
+    start = time.perf_counter()
+    coeff = passband_a_over_av(example_passband_path(), av=av)
+    assert time.perf_counter() - start < 5.0
+    idx = rng.integers(0, av.size, 50)
+    exact = passband_a_over_av(example_passband_path(), av=av[idx])
+    np.testing.assert_allclose(coeff[idx], exact, atol=1e-7)
+    # A_V -> 0 joins the limit continuously
+    small = passband_a_over_av(example_passband_path(), av=[0.0, 1e-9, 1e-6, 9.9e-6, 1.01e-5, 1e-4])
+    np.testing.assert_allclose(small, small[0], rtol=1e-5)
+    assert np.all(np.diff(small) <= 0)
+
+
+@pytest.mark.parametrize("name", sorted(LAWS))
+def test_passband_works_for_every_law(name):
+    law = LAWS[name]
+    lam = np.array([0.5, 0.6]) * u.micron
+    coeff = passband_a_over_av((lam, [1, 1]), law=name, rv=None, av=1.0)
+    values = law.a_over_av(lam, rv=None)
+    assert values.min() < coeff < values.max()
