@@ -2,11 +2,11 @@
 
 from dataclasses import dataclass
 
-import healpy as hp
 import numpy as np
 from astropy import units as u
 
-from ._validation import check_choice, check_nside, check_real, param_error, to_value
+from . import _healpix
+from ._validation import check_choice, check_int, check_nside, check_real, param_error, to_value
 
 __all__ = ["Grid", "MAX_GRID_BYTES"]
 
@@ -64,8 +64,6 @@ class Grid:
         dmax = float(to_value("distance_max", distance_max, u.pc, default_unit=u.pc))
         check_real("distance_min", dmin, 0, np.inf, low_inclusive=False)
         check_real("distance_max", dmax, dmin, np.inf, low_inclusive=False)
-        from ._validation import check_int
-
         n_bins = check_int("n_bins", n_bins, 1, 100_000)
         return cls(nside, np.concatenate([[0.0], np.geomspace(dmin, dmax, n_bins)]), ordering)
 
@@ -75,7 +73,7 @@ class Grid:
 
     @property
     def npix(self):
-        return hp.nside2npix(self.nside)
+        return _healpix.nside2npix(self.nside)
 
     @property
     def n_edges(self):
@@ -88,22 +86,21 @@ class Grid:
     @property
     def pixel_area(self):
         """Area of one pixel (Quantity, deg^2)."""
-        return (hp.nside2pixarea(self.nside, degrees=True)) * u.deg**2
+        return _healpix.pixarea_deg2(self.nside) * u.deg**2
 
     def pixel(self, l_deg, b_deg):
         """Pixel index of Galactic positions (plain degrees)."""
-        return hp.ang2pix(self.nside, np.asarray(l_deg, float), np.asarray(b_deg, float), nest=self.nest, lonlat=True)
+        return _healpix.ang2pix(self.nside, l_deg, b_deg, nest=self.nest)
 
     def pixel_centres(self, pixels=None):
         """Galactic (l, b) in degrees of pixel centres (all pixels by default)."""
         if pixels is None:
             pixels = np.arange(self.npix)
-        l, b = hp.pix2ang(self.nside, np.asarray(pixels), nest=self.nest, lonlat=True)
-        return l, b
+        return _healpix.pix2ang(self.nside, pixels, nest=self.nest)
 
     def interp_weights(self, l_deg, b_deg):
         """HEALPix bilinear interpolation pixels and weights, each of shape (4, n)."""
-        return hp.get_interp_weights(self.nside, np.asarray(l_deg, float), np.asarray(b_deg, float), nest=self.nest, lonlat=True)
+        return _healpix.interp_weights(self.nside, l_deg, b_deg, nest=self.nest)
 
     def edge_position(self, distance_pc):
         """Lower edge index ``k`` and fraction ``f`` in [0, 1] of each distance inside its bin.

@@ -33,6 +33,7 @@ from astropy.coordinates import SkyCoord
 from astropy.table import QTable
 from scipy import sparse
 
+from . import _healpix
 from ._errors import CatalogError, ModelNotFittedError
 from ._isotonic import isotonic_rows
 from ._progress import progress
@@ -40,7 +41,7 @@ from ._validation import check_choice, check_int, check_real, param_error, to_va
 from .grid import Grid
 from .layer import DustLayer, fit_layer
 
-__all__ = ["ExtinctionModel", "CAUTION"]
+__all__ = ["ExtinctionModel", "CAUTION", "model_state", "model_from_state"]
 
 #: Shown wherever model answers are reported.
 CAUTION = (
@@ -51,8 +52,9 @@ CAUTION = (
 )
 
 _WEIGHT_FLOOR_MAG = 0.05  # mag; keeps a few very precise tracers from dominating a node
-_NEIGHBOUR_WEIGHT = 0.5   # weight of each of the 8 neighbours in one sky-smoothing pass
+_NEIGHBOUR_WEIGHT = 0.25  # weight of each of the 8 neighbours in one sky-smoothing pass
 _PRIOR_COUNT = 2.0        # pseudo-count pooling a node's scatter toward its edge's median
+_STUDENT_NU = 8.0         # degrees of freedom of the predictive distribution
 _MC_LIMIT = 300_000       # above this many tracers "auto" switches to the bin-scatter scheme
 _STATS = ("w", "wr", "wr2", "w2", "n")
 
@@ -64,19 +66,24 @@ def _tracer_arrays(tracers):
 
 
 def _draw_residuals(layer, b, d, d_err, av, av_err, n_draws, rng):
-    """Residuals from the layer for ``n_draws`` Monte Carlo draws of each tracer.
+    """Monte Carlo draws of each tracer's distance, with its residual from the layer.
 
-    Returns distances (n_draws, n) and residuals (n_draws, n). With ``n_draws == 1`` and
+    Each tracer's residual from the layer at its catalogued distance (its A_V drawn within
+    its error) is spread over ``n_draws`` log-normal draws of its distance: the residual,
+    the part of the extinction the smooth layer does not explain, is what is placed at the
+    tracer's uncertain distance. (Differencing the layer at each drawn distance instead adds
+    the layer's own slope times the distance error as noise to every draw.) With
     ``rng is None`` the nominal values are used (bin-scatter scheme).
+
+    Returns distances (n_draws, n) and residuals (n_draws, n).
     """
+    base = av - layer._av(b, d)
     if rng is None:
-        dd = d[None, :]
-        aa = av[None, :]
-    else:
-        frac = np.where(d > 0, d_err / d, 0.0)
-        dd = d[None, :] * np.exp(rng.standard_normal((n_draws, d.size)) * frac[None, :])
-        aa = av[None, :] + rng.standard_normal((n_draws, d.size)) * av_err[None, :]
-    return dd, aa - layer._av(b[None, :], dd)
+        return d[None, :], base[None, :]
+    frac = np.where(d > 0, d_err / d, 0.0)
+    dd = d[None, :] * np.exp(rng.standard_normal((n_draws, d.size)) * frac[None, :])
+    rr = base[None, :] + rng.standard_normal((n_draws, d.size)) * av_err[None, :]
+    return dd, rr
 
 
 def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_weight=None, out=None):
@@ -122,7 +129,7 @@ def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_wei
 def _neighbour_matrix(grid):
     """Sparse (npix, npix) matrix of one sky-smoothing pass: 1 on the diagonal, beta for neighbours."""
     npix = grid.npix
-    nb = np.asarray(__import__("healpy").get_all_neighbours(grid.nside, np.arange(npix), nest=grid.nest))
+    nb = _healpix.neighbours(grid.nside, np.arange(npix), nest=grid.nest)
     rows = np.repeat(np.arange(npix)[None, :], nb.shape[0], axis=0)
     ok = nb >= 0
     data = np.full(ok.sum(), _NEIGHBOUR_WEIGHT)
@@ -657,14 +664,11 @@ class ExtinctionModel:
         else:
             rad = float(to_value("radius", radius, u.deg))
             check_real("radius", rad, 0, 90)
-            import healpy as hp
-
-            vec = hp.ang2vec(lv, bv, lonlat=True)
             fine = max(self.grid_.nside * 4, 64)
-            pp = hp.query_disc(fine, vec, np.deg2rad(rad), inclusive=False)
+            pp = _healpix.query_disc(fine, lv, bv, rad)
             if pp.size == 0:
-                pp = np.array([hp.ang2pix(fine, lv, bv, lonlat=True)])
-            pts_l, pts_b = hp.pix2ang(fine, pp, lonlat=True)
+                pp = np.atleast_1d(_healpix.ang2pix(fine, lv, bv))
+            pts_l, pts_b = _healpix.pix2ang(fine, pp)
         L = np.repeat(pts_l, dv.size)
         B = np.repeat(pts_b, dv.size)
         D = np.tile(dv, pts_l.size)
@@ -753,24 +757,104 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
     """Fit the scatter of extinction the model cannot resolve, by maximum likelihood.
 
     Each held-out tracer's likelihood is a mixture over its distance uncertainty
-    (quadrature nodes ``j`` with weights ``node_weight``) of normals centred on the model's
-    prediction at that distance, with variance ``node_var + av_err^2 + sigma_u^2``, where
+    (quadrature nodes ``j`` with weights ``node_weight``) of Student-t densities (8 degrees
+    of freedom: clouds give heavier tails than a normal) centred on the model's prediction
+    at that distance, with squared scale ``kappa * node_var + av_err^2 + sigma_u^2``, where
     ``sigma_u^2 = floor^2 + (frac * A)^2`` is the unresolved scatter. Integrating over the
     distance (rather than linearising it with a slope) keeps the tracers' distance errors
-    from being mistaken for, or hiding, the model's own error.
+    from being mistaken for, or hiding, the model's own error. The model's own variance
+    enters with a fitted factor ``kappa``: the node variances come from the spread of
+    tracers within a node, which need not equal the error of its smoothed estimate. The
+    reported 1-sigma error is the half-width of the central 68.27% interval of that
+    t distribution (``scale`` = 1.07 x the t scale).
     """
-    from scipy import optimize
+    from scipy import optimize, stats
+
+    nu = _STUDENT_NU
 
     def nll(theta):
-        floor2, frac2 = np.exp(theta)
-        var = node_var + av_err[None, :] ** 2 + floor2 + frac2 * node_pred**2
-        dens = np.exp(-0.5 * (av[None, :] - node_pred) ** 2 / var) / np.sqrt(2 * np.pi * var)
+        kappa, floor2, frac2 = np.exp(theta)
+        scale2 = kappa * node_var + av_err[None, :] ** 2 + floor2 + frac2 * node_pred**2
+        dens = stats.t.pdf((av[None, :] - node_pred) / np.sqrt(scale2), nu) / np.sqrt(scale2)
         return -np.sum(np.log(np.maximum(node_weight @ dens, 1e-300)))
 
     best = None
-    for start in ((np.log(0.01), np.log(0.01)), (np.log(0.05), np.log(1e-4)), (np.log(1e-4), np.log(0.05))):
-        res = optimize.minimize(nll, np.array(start), method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6})
+    for start in ((0.0, np.log(0.01), np.log(0.01)), (np.log(0.3), np.log(0.05), np.log(1e-4)), (np.log(0.3), np.log(1e-4), np.log(0.05))):
+        res = optimize.minimize(nll, np.array(start), method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6, "maxiter": 2000})
         if best is None or res.fun < best.fun:
             best = res
-    floor2, frac2 = np.exp(best.x)
-    return {"kappa": 1.0, "floor": float(np.sqrt(floor2)), "frac": float(np.sqrt(frac2)), "scale": 1.0}
+    kappa, floor2, frac2 = np.exp(best.x)
+    # the reported 1-sigma error is the half-width of the central 68.27% interval
+    scale = float(stats.t.ppf(0.5 + 0.6827 / 2, nu))
+    return {"kappa": float(kappa), "floor": float(np.sqrt(floor2)), "frac": float(np.sqrt(frac2)), "scale": scale}
+
+
+# ----------------------------------------------------------------------------- lossless state
+
+_STATE_ARRAYS = ("av_", "av_err_", "_resid_", "_post_var_", "n_tracers_", "counts_", "differential_")
+_STATE_SCALARS = ("uncertainty_scheme_", "n_draws_", "sky_passes_", "walk_variance_", "distance_smoothing_")
+_PARAMS = ("nside", "ordering", "uncertainty", "n_draws", "n_folds", "random_state")
+
+
+def model_state(model):
+    """Everything a fitted model needs to answer, as plain numbers and arrays.
+
+    Returns a dict with ``params`` (constructor parameters), ``grid`` (nside, ordering,
+    distance_edges), ``layer`` (parameters, errors, covariance), ``scatter``, ``scalars``,
+    ``arrays`` (name -> ndarray) and ``tracers`` (name -> ndarray, plus law, rv and
+    excess_kind). :func:`model_from_state` rebuilds a model that answers bit for bit the same.
+    """
+    model._check_fitted()
+    g = model.grid_
+    params = {k: getattr(model, k) for k in _PARAMS}
+    params["sky_passes"] = [int(p) for p in np.atleast_1d(model.sky_passes)]
+    t = model.tracers_
+    tracers = {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")}
+    for k in ("excess", "excess_err"):
+        v = getattr(t, k, None)
+        if v is not None:
+            tracers[k] = np.asarray(v, float)
+    return {
+        "params": params,
+        "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
+        "layer": {**model.layer_.as_dict(), "scatter": model.layer_.scatter, "n_used": model.layer_.n_used,
+                  "covariance": np.asarray(model.layer_.covariance, float)},
+        "scatter": dict(model.scatter_),
+        "scalars": {k: getattr(model, k) for k in _STATE_SCALARS},
+        "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
+        "tracers": tracers,
+        "tracer_info": {"law": t.law, "rv": float(t.rv), "excess_kind": getattr(t, "excess_kind", "A_V"),
+                        "meta": dict(getattr(t, "meta", {}) or {})},
+        "cv": model.cv_.copy() if hasattr(model, "cv_") else None,
+    }
+
+
+def model_from_state(state):
+    """Rebuild a fitted :class:`ExtinctionModel` from :func:`model_state` output."""
+    from .tracers import TracerSet
+
+    p = dict(state["params"])
+    m = ExtinctionModel(**{k: p[k] for k in _PARAMS if k in p}, sky_passes=tuple(p.get("sky_passes", (0,))))
+    g = state["grid"]
+    m.distance_edges = np.asarray(g["distance_edges"], float) * u.pc
+    m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
+    lay = state["layer"]
+    m.layer_ = DustLayer(
+        a0=float(lay["a0"]), h=float(lay["h"]), z_sun=float(lay["z_sun"]),
+        a0_err=float(lay["a0_err"]), h_err=float(lay["h_err"]), z_sun_err=float(lay["z_sun_err"]),
+        scatter=float(lay.get("scatter", 0.0)), n_used=int(lay.get("n_used", 0)),
+        covariance=np.asarray(lay.get("covariance", np.zeros((3, 3))), float),
+    )
+    m.scatter_ = {k: float(v) for k, v in state["scatter"].items()}
+    for k, v in state["scalars"].items():
+        setattr(m, k, v)
+    for k, v in state["arrays"].items():
+        setattr(m, k, np.asarray(v))
+    tr = state["tracers"]
+    info = state["tracer_info"]
+    ts = TracerSet.from_arrays(tr["l"], tr["b"], tr["distance"], tr["distance_err"], tr["av"], tr["av_err"],
+                               name=tr.get("name"), law=info["law"], rv=info["rv"])
+    m.tracers_ = ts
+    if state.get("cv") is not None:
+        m.cv_ = state["cv"]
+    return m

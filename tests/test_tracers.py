@@ -1,0 +1,789 @@
+"""Tests for dustkit.tracers: catalogue ingestion into validated tracer and target sets."""
+
+import dataclasses
+import hashlib
+import subprocess
+import sys
+import time
+import warnings
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.coordinates import Angle
+from astropy.table import QTable, Table
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from dustkit._errors import AssumptionWarning, CatalogError, ParameterError, RowsRejectedWarning
+from dustkit.tracers import (
+    COLUMN_KEYS,
+    DEFAULT_REJECT_LIMITS,
+    SUFFIX_FORMATS,
+    TargetList,
+    TracerSet,
+    read_targets,
+    read_tracers,
+)
+
+# Check values copied from the project's reference list, with their sources.
+# North Galactic Pole and Galactic centre in ICRS (computed; astropy agrees to < 0.1 arcsec).
+NGP_RA, NGP_DEC = 192.85948, 27.12825
+GC_RA, GC_DEC = 266.40499, -28.93617
+# ICRS (0, 0) -> Galactic (computed).
+ORIGIN_L, ORIGIN_B = 96.33727, -60.18855
+# mu0 = 5 log10(d / pc) - 5: 10 pc -> 0, 1 kpc -> 10, 2.5 kpc -> 11.98970 (computed from the formula).
+MODULUS_CASES = [(0.0, 10.0), (10.0, 1000.0), (11.98970, 2500.0)]
+# Gaia EDR3 parallax zero point, Lindegren et al. 2021 (A&A 649, A4).
+GAIA_EDR3_ZERO_POINT = -0.017  # mas
+# HEALPix (Gorski et al. 2005, ApJ 622, 759): NSIDE 64 pixel area in deg^2; whole sky 4 pi sr.
+NSIDE64_PIXEL_AREA = 0.839294
+FULL_SKY_DEG2 = 4 * np.pi * (180 / np.pi) ** 2
+
+
+def _quiet(func, *args, **kwargs):
+    """Call ``func`` with dustkit's warnings silenced (for tests about something else)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AssumptionWarning)
+        warnings.simplefilter("ignore", RowsRejectedWarning)
+        return func(*args, **kwargs)
+
+
+def _catalogue(n=12, seed=3):
+    """A small invented cluster catalogue (no real objects)."""
+    rng = np.random.default_rng(seed)
+    return Table(
+        {
+            "Cluster": [f"Invented-{i:03d}" for i in range(n)],
+            "GLON": rng.uniform(0, 360, n),
+            "GLAT": rng.uniform(-20, 20, n),
+            "Dist": rng.uniform(200, 5000, n) * u.pc,
+            "e_Dist": rng.uniform(10, 300, n) * u.pc,
+            "EBV": rng.uniform(0.0, 2.0, n),
+            "e_EBV": rng.uniform(0.01, 0.1, n),
+        }
+    )
+
+
+def _angle_diff(a, b):
+    return (np.asarray(a) - np.asarray(b) + 180.0) % 360.0 - 180.0
+
+
+# ======================================================================================
+# Coordinates
+# ======================================================================================
+
+
+def test_icrs_to_galactic_reference_points():
+    t = Table(
+        {
+            "ra": [NGP_RA, GC_RA, 0.0],
+            "dec": [NGP_DEC, GC_DEC, 0.0],
+            "distance": [100.0, 200.0, 300.0] * u.pc,
+            "ebv": [0.1, 0.2, 0.3],
+            "ebv_err": [0.01, 0.01, 0.01],
+            "distance_err": [1.0, 1.0, 1.0] * u.pc,
+        }
+    )
+    ts = read_tracers(t)
+    # North Galactic Pole: b = +90 (computed reference; tolerance 1e-4 deg = 0.36 arcsec)
+    assert ts.b[0] == pytest.approx(90.0, abs=1e-4)
+    # Galactic centre: l = b = 0 (computed reference)
+    assert abs(_angle_diff(ts.l[1], 0.0)) < 1e-4
+    assert ts.b[1] == pytest.approx(0.0, abs=1e-4)
+    # ICRS (0, 0) -> (96.33727, -60.18855) deg (computed reference)
+    assert ts.l[2] == pytest.approx(ORIGIN_L, abs=1e-4)
+    assert ts.b[2] == pytest.approx(ORIGIN_B, abs=1e-4)
+    assert ts.meta["columns"]["ra"] == "ra"
+
+
+@pytest.mark.parametrize(
+    "ra_name, dec_name",
+    [("RAJ2000", "DEJ2000"), ("RA_ICRS", "DE_ICRS"), ("RAdeg", "DEdeg"), ("_RA", "_DE"), ("Ra", "Dec")],
+)
+def test_equatorial_spellings_recognised(ra_name, dec_name):
+    # common practice: catalogue services spell ICRS columns these ways
+    t = Table({ra_name: [0.0], dec_name: [0.0], "dist_pc": [100.0], "E(B-V)": [0.2]})
+    ts = _quiet(read_tracers, t)
+    assert ts.l[0] == pytest.approx(ORIGIN_L, abs=1e-4)  # computed reference, see above
+    assert ts.meta["columns"]["ra"] == ra_name and ts.meta["columns"]["dec"] == dec_name
+
+
+@pytest.mark.parametrize("l_name, b_name", [("l", "b"), ("GLON", "GLAT"), ("glon", "glat"), ("_Glon", "_Glat"), ("LII", "BII")])
+def test_galactic_spellings_recognised_and_longitude_wrapped(l_name, b_name):
+    t = Table({l_name: [-10.0, 370.0 - 20.0, 0.0], b_name: [5.0, -5.0, 0.0], "dist": [1.0, 2.0, 3.0] * u.kpc, "Av": [1.0, 2.0, 3.0]})
+    ts = _quiet(read_tracers, t)
+    # l is wrapped to [0, 360) (common practice: l = -10 deg is l = 350 deg)
+    np.testing.assert_allclose(ts.l, [350.0, 350.0, 0.0])
+    np.testing.assert_allclose(ts.b, [5.0, -5.0, 0.0])
+
+
+def test_sexagesimal_strings_match_astropy_angles():
+    # The north Galactic pole written as sexagesimal strings (computed reference values above).
+    ra_s = Angle(NGP_RA, u.deg).to_string(unit=u.hourangle, sep=":", precision=3)
+    dec_s = Angle(NGP_DEC, u.deg).to_string(unit=u.deg, sep=":", precision=2, alwayssign=True)
+    t = Table(
+        {
+            "RAJ2000": [ra_s, "00 00 00.0", "18h00m00s"],
+            "DEJ2000": [dec_s, "-00 30 00", "-29d00m00s"],
+            "dist": [1.0, 2.0, 3.0] * u.kpc,
+            "e_dist": [0.1, 0.1, 0.1] * u.kpc,
+            "ebv": [0.1, 0.1, 0.1],
+            "e_ebv": [0.01, 0.01, 0.01],
+        }
+    )
+    with pytest.warns(AssumptionWarning, match="sexagesimal"):
+        ts = read_tracers(t)
+    assert ts.b[0] == pytest.approx(90.0, abs=1e-3)
+    # the other two rows agree with astropy's own parsing of the same strings (reference library)
+    from astropy.coordinates import SkyCoord
+
+    ref = SkyCoord(["00 00 00.0", "18h00m00s"], ["-00 30 00", "-29d00m00s"], unit=(u.hourangle, u.deg)).galactic
+    np.testing.assert_allclose(_angle_diff(ts.l[1:], ref.l.deg), 0.0, atol=1e-8)
+    np.testing.assert_allclose(ts.b[1:], ref.b.deg, atol=1e-8)
+
+
+# ======================================================================================
+# Distances
+# ======================================================================================
+
+
+@pytest.mark.parametrize("mu, d_pc", MODULUS_CASES)
+def test_distance_modulus_worked_values(mu, d_pc):
+    # mu0 = 5 log10(d/pc) - 5 (REFERENCES: 10 pc -> 0, 1 kpc -> 10, 2.5 kpc -> 11.98970)
+    t = Table({"l": [30.0], "b": [1.0], "DM": [mu], "e_DM": [0.1], "ebv": [0.3], "e_ebv": [0.02]})
+    ts = read_tracers(t)
+    assert ts.distance_kind == "distance modulus"
+    assert ts.distance[0] == pytest.approx(d_pc, rel=2e-6)
+    # sigma_d = d ln(10)/5 sigma_mu (first-order propagation, common practice)
+    assert ts.distance_err[0] == pytest.approx(d_pc * np.log(10) / 5 * 0.1, rel=2e-6)
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.floats(min_value=1.0, max_value=1.0e5))
+def test_distance_modulus_round_trip(d):
+    # mu0 = 5 log10(d/pc) - 5 inverted by the reader (computed)
+    mu = 5 * np.log10(d) - 5
+    t = Table({"l": [1.0], "b": [2.0], "mu0": [mu], "e_mu0": [0.05], "av": [1.0], "e_av": [0.1]})
+    ts = read_tracers(t)
+    assert ts.distance[0] == pytest.approx(d, rel=1e-10)
+
+
+def test_parallax_with_gaia_edr3_zero_point():
+    # corrected parallax = parallax - zero point, zero point -0.017 mas (Lindegren et al. 2021, A&A 649, A4);
+    # d = 1000 / parallax[mas] pc (common practice).
+    t = Table({"l": [10.0, 20.0], "b": [0.0, 1.0], "parallax": [1.983, 0.983] * u.mas,
+               "parallax_error": [0.02, 0.01] * u.mas, "ebv": [0.5, 0.6], "ebv_err": [0.02, 0.02]})
+    ts = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT * u.mas)
+    np.testing.assert_allclose(ts.distance, [500.0, 1000.0], rtol=1e-12)
+    # sigma_d = 1000 sigma_plx / plx^2 pc
+    np.testing.assert_allclose(ts.distance_err, [1000 * 0.02 / 2.0**2, 1000 * 0.01 / 1.0**2], rtol=1e-12)
+    assert ts.distance_kind == "parallax"
+    assert any("zero point -0.017 mas" in a for a in ts.meta["assumptions"])
+    # a plain number for the zero point is taken as mas
+    ts2 = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT)
+    np.testing.assert_array_equal(ts2.distance, ts.distance)
+    # a parallax column in arcsec is converted to mas
+    t["parallax"] = t["parallax"].to(u.arcsec)
+    t["parallax_error"] = t["parallax_error"].to(u.arcsec)
+    ts3 = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT * u.mas)
+    np.testing.assert_allclose(ts3.distance, [500.0, 1000.0], rtol=1e-12)
+
+
+def test_parallax_zero_point_decides_rejection():
+    # plx - zp <= 0 is rejected: with zp = -0.017 mas, -0.010 mas becomes +0.007 mas (kept, 142857 pc)
+    # while -0.020 mas stays negative and -0.017 mas becomes 0 (both rejected); Lindegren et al. 2021 zero point.
+    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "plx": [-0.010, -0.020, -0.017] * u.mas,
+               "e_plx": [0.001, 0.001, 0.001] * u.mas, "ebv": [0.1, 0.1, 0.1], "e_ebv": [0.01] * 3})
+    with pytest.warns(RowsRejectedWarning, match=r"2 of 3 rows rejected"):
+        ts = read_tracers(t, parallax_zero_point=-0.017 * u.mas)
+    assert len(ts) == 1
+    assert ts.distance[0] == pytest.approx(1000 / 0.007, rel=1e-9)
+    rej = ts.rejected
+    assert list(rej["row"]) == [1, 2]
+    assert all("parallax" in r and "<= 0" in r and "'plx'" in r for r in rej["reason"])
+    assert list(rej["column"]) == ["plx", "plx"]
+    assert list(rej["value"]) == ["-0.02", "-0.017"]
+
+
+def test_noisy_parallaxes_warn_and_say_why():
+    # 1/parallax is biased once the fractional error exceeds ~20% (Bailer-Jones 2015, PASP 127, 994)
+    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "plx": [1.0, 1.0, 1.0] * u.mas,
+               "e_plx": [0.05, 0.25, 0.5] * u.mas, "ebv": [0.1, 0.1, 0.1], "e_ebv": [0.01] * 3})
+    with pytest.warns(AssumptionWarning) as record:
+        ts = read_tracers(t)
+    texts = [str(w.message) for w in record if issubclass(w.category, AssumptionWarning)]
+    noisy = [m for m in texts if "fractional error" in m]
+    assert len(noisy) == 1
+    assert "2 of 3" in noisy[0] and "20%" in noisy[0] and "Bailer-Jones 2015" in noisy[0] and "biased" in noisy[0]
+    assert len(ts) == 3  # kept, not dropped
+
+
+def test_apparent_modulus_corrected_by_av():
+    # (m - M)_V = mu0 + A_V (REFERENCES, distances); A_V = R_V E(B-V) with R_V = 3.1 (Savage & Mathis 1979).
+    ebv = 0.5
+    av = 3.1 * ebv
+    t = Table({"l": [40.0], "b": [2.0], "(m-M)V": [10.0 + av], "e_(m-M)V": [0.1], "E(B-V)": [ebv], "e_E(B-V)": [0.03]})
+    ts = read_tracers(t)
+    assert ts.distance_kind == "apparent V modulus"
+    assert ts.av[0] == pytest.approx(av, rel=1e-12)
+    assert ts.distance[0] == pytest.approx(1000.0, rel=1e-9)  # mu0 = 10 -> 1 kpc
+    # errors of (m-M)_V and A_V added in quadrature
+    sigma_mu = np.hypot(0.1, 3.1 * 0.03)
+    assert ts.distance_err[0] == pytest.approx(1000.0 * np.log(10) / 5 * sigma_mu, rel=1e-9)
+    # Under R_V = 4 A_V = 2.0, mu0 = 11.55 - 2.0 = 9.55 -> d = 10^(9.55/5 + 1) pc (computed)
+    ts4 = ts.with_law("ccm89", 4.0)
+    assert ts4.av[0] == pytest.approx(2.0, rel=1e-12)
+    assert ts4.distance[0] == pytest.approx(10 ** (9.55 / 5 + 1), rel=1e-9)
+    assert ts.distance[0] == pytest.approx(1000.0, rel=1e-9)  # the original is unchanged
+
+
+def test_distance_units_from_column_name_argument_and_bare_number():
+    base = {"l": [10.0, 20.0], "b": [0.0, 1.0], "ebv": [0.1, 0.2], "e_ebv": [0.01, 0.01]}
+    # unit in the column name (common practice: dist_kpc)
+    ts = _quiet(read_tracers, Table({**base, "dist_kpc": [1.5, 2.0], "e_dist_kpc": [0.1, 0.2]}))
+    np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
+    np.testing.assert_allclose(ts.distance_err, [100.0, 200.0])
+    # unit from the column (QTable / file unit)
+    ts = _quiet(read_tracers, QTable({**base, "Dist": [1.5, 2.0] * u.kpc}))
+    np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
+    # explicit argument wins over a bare number
+    ts = _quiet(read_tracers, Table({**base, "Dist": [1.5, 2.0]}), distance_unit="kpc")
+    np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
+    ts = _quiet(read_tracers, Table({**base, "Dist": [1.5, 2.0]}), distance_unit=u.kpc)
+    np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
+    # a bare number is taken as pc, with a warning that names the assumption and says it looks like kpc
+    with pytest.warns(AssumptionWarning, match=r"no unit; assuming the distances are in pc.*looks like kpc"):
+        ts = read_tracers(Table({**base, "Dist": [1.5, 2.0], "e_Dist": [0.1, 0.1]}))
+    np.testing.assert_allclose(ts.distance, [1.5, 2.0])
+    # ... and does not claim kpc when the values look like pc
+    with pytest.warns(AssumptionWarning) as record:
+        read_tracers(Table({**base, "Dist": [1500.0, 2000.0], "e_Dist": [10.0, 10.0]}))
+    msgs = [str(w.message) for w in record]
+    assert any("assuming the distances are in pc" in m for m in msgs)
+    assert not any("looks like kpc" in m for m in msgs)
+
+
+def test_kpc_pc_round_trip_through_to_table():
+    ts = _quiet(read_tracers, _catalogue())
+    t = ts.to_table()
+    assert t["distance"].unit == u.pc and t["l"].unit == u.deg and t["av"].unit == u.mag
+    out = QTable({"name": t["name"], "l": t["l"], "b": t["b"], "dist": t["distance"].to(u.kpc),
+                  "dist_err": t["distance_err"].to(u.kpc), "av": t["av"], "av_err": t["av_err"]})
+    back = read_tracers(out)
+    np.testing.assert_allclose(back.distance, ts.distance, rtol=1e-13)
+    np.testing.assert_allclose(back.distance_err, ts.distance_err, rtol=1e-13)
+    np.testing.assert_allclose(back.av, ts.av, rtol=1e-13)
+    np.testing.assert_array_equal(back.name, ts.name)
+
+
+def test_unit_from_ecsv_file(tmp_path):
+    t = _catalogue()
+    t["Dist"] = np.asarray(t["Dist"]) / 1000.0 * u.kpc
+    t["e_Dist"] = np.asarray(t["e_Dist"]) / 1000.0 * u.kpc
+    path = tmp_path / "clusters.ecsv"
+    t.write(path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)  # no unit assumption needed
+        ts = read_tracers(path)
+    np.testing.assert_allclose(ts.distance, np.asarray(_catalogue()["Dist"]), rtol=1e-12)
+    assert "kpc" in " ".join(ts.meta["assumptions"])
+
+
+def test_upper_case_unit_from_fits_file(tmp_path):
+    # FITS files often carry units in upper case ('KPC'); astropy does not parse them strictly
+    t = _catalogue()
+    t["Dist"] = np.asarray(t["Dist"]) / 1000.0
+    t["Dist"].unit = "KPC"
+    t["e_Dist"] = np.asarray(t["e_Dist"]) / 1000.0
+    t["e_Dist"].unit = "KPC"
+    path = tmp_path / "clusters.fits"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        t.write(path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)
+        ts = read_tracers(path)
+    np.testing.assert_allclose(ts.distance, np.asarray(_catalogue()["Dist"]), rtol=1e-12)
+    np.testing.assert_allclose(ts.distance_err, np.asarray(_catalogue()["e_Dist"]), rtol=1e-12)
+
+
+def test_distance_column_with_magnitude_unit_is_refused_with_hint():
+    t = QTable({"l": [1.0], "b": [0.0], "dist": [10.0] * u.mag, "ebv": [0.1]})
+    with pytest.raises(CatalogError, match=r"'dist'.*not a length.*distance_modulus"):
+        _quiet(read_tracers, t)
+
+
+# ======================================================================================
+# Reddening
+# ======================================================================================
+
+
+def test_ebv_to_av_and_with_law_scales_by_rv_ratio():
+    # A_V = R_V E(B-V) (definition of R_V; Savage & Mathis 1979; CCM89)
+    t = _catalogue()
+    ts = read_tracers(t)
+    assert ts.excess_kind == "E(B-V)"
+    np.testing.assert_allclose(ts.av, 3.1 * np.asarray(t["EBV"]), rtol=1e-12)
+    np.testing.assert_allclose(ts.av_err, 3.1 * np.asarray(t["e_EBV"]), rtol=1e-12)
+    np.testing.assert_array_equal(ts.excess, np.asarray(t["EBV"]))
+    ts5 = ts.with_law("ccm89", 5.0)
+    np.testing.assert_allclose(ts5.av / ts.av, 5.0 / 3.1, rtol=1e-12)
+    np.testing.assert_allclose(ts5.av_err / ts.av_err, 5.0 / 3.1, rtol=1e-12)
+    assert ts5.rv == 5.0 and ts.rv == 3.1
+    np.testing.assert_array_equal(ts5.distance, ts.distance)
+
+
+def test_av_input_is_kept_under_another_law():
+    t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "dist": [1.0, 2.0] * u.kpc, "A_V": [1.2, 2.5], "e_A_V": [0.1, 0.2]})
+    ts = _quiet(read_tracers, t)
+    assert ts.excess_kind == "A_V"
+    np.testing.assert_array_equal(ts.av, [1.2, 2.5])
+    ts2 = ts.with_law("odonnell94", 4.0)
+    np.testing.assert_array_equal(ts2.av, ts.av)
+    assert ts2.law == "odonnell94" and ts2.rv == 4.0
+
+
+def test_other_colour_excess_goes_through_bands():
+    bands = pytest.importorskip("dustkit.bands")
+    t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "dist": [1.0, 2.0] * u.kpc,
+               "E(J-Ks)": [0.2, 0.5], "e_E(J-Ks)": [0.02, 0.03]})
+    ts = _quiet(read_tracers, t)
+    assert ts.excess_kind == "E(J-Ks)" and ts.excess_color == ("J", "Ks")
+    av, av_err = bands.excess_to_av(np.array([0.2, 0.5]), np.array([0.02, 0.03]), "J", "Ks", law="ccm89", rv=3.1)
+    np.testing.assert_allclose(ts.av, av, rtol=1e-12)
+    np.testing.assert_allclose(ts.av_err, av_err, rtol=1e-12)
+    # E(J-Ks)/E(B-V) = 0.48-0.53 in the literature (from memory; 0.53 CCM89 at 2MASS wavelengths, computed)
+    ratio = ts.av / np.array([0.2, 0.5]) / 3.1  # = E(B-V)/E(J-Ks)
+    assert np.all((1 / ratio > 0.48) & (1 / ratio < 0.535))
+    # an explicit excess column with its colour given as an argument gives the same A_V
+    t2 = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "dist": [1.0, 2.0] * u.kpc, "red": [0.2, 0.5], "e_red": [0.02, 0.03]})
+    ts2 = _quiet(read_tracers, t2, columns={"excess": "red"}, excess_color=("J", "Ks"))
+    np.testing.assert_allclose(ts2.av, ts.av, rtol=1e-12)
+    ts3 = _quiet(read_tracers, t2, columns={"excess": "red", "excess_err": "e_red"}, excess_color="J-Ks")
+    np.testing.assert_allclose(ts3.av_err, ts.av_err, rtol=1e-12)
+    # with_law re-derives through the new law
+    ts4 = ts.with_law("fitzpatrick99", 3.1)
+    av4, _ = bands.excess_to_av(np.array([0.2, 0.5]), np.array([0.02, 0.03]), "J", "Ks", law="fitzpatrick99", rv=3.1)
+    np.testing.assert_allclose(ts4.av, av4, rtol=1e-12)
+
+
+def test_excess_without_known_colour_is_refused():
+    t = Table({"l": [1.0], "b": [0.0], "dist": [1.0] * u.kpc, "red": [0.2]})
+    with pytest.raises(CatalogError, match=r"'red'.*excess_color"):
+        _quiet(read_tracers, t, columns={"excess": "red"})
+
+
+def test_default_errors_are_documented_and_announced():
+    t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "Dist": [1000.0, 2000.0] * u.pc, "EBV": [0.1, 0.4]})
+    with pytest.warns(AssumptionWarning) as record:
+        ts = read_tracers(t)
+    msgs = [str(w.message) for w in record]
+    assert any("No error column for the distance 'Dist'" in m and "10%" in m for m in msgs)
+    assert any("No error column for the reddening 'EBV'" in m and "0.05 mag" in m for m in msgs)
+    np.testing.assert_allclose(ts.distance_err, [100.0, 200.0])
+    np.testing.assert_allclose(ts.excess_err, [0.05, 0.05])
+    np.testing.assert_allclose(ts.av_err, [3.1 * 0.05] * 2)
+    # A_V input: the same default expressed in A_V (R_V x 0.05 mag)
+    t2 = Table({"l": [1.0], "b": [0.0], "Dist": [1000.0] * u.pc, "e_Dist": [50.0] * u.pc, "AV": [1.0]})
+    ts2 = _quiet(read_tracers, t2, default_excess_err=0.1)
+    assert ts2.av_err[0] == pytest.approx(0.31)
+
+
+def test_empty_or_zero_error_gets_default_and_is_counted():
+    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "Dist": [1000.0, 2000.0, 500.0] * u.pc,
+               "e_Dist": [0.0, np.nan, 20.0] * u.pc, "EBV": [0.1, 0.4, 0.2], "e_EBV": [0.02, 0.03, 0.04]})
+    with pytest.warns(AssumptionWarning, match=r"2 rows have an empty or zero error in 'e_Dist'"):
+        ts = read_tracers(t)
+    np.testing.assert_allclose(ts.distance_err, [100.0, 200.0, 20.0])
+
+
+# ======================================================================================
+# Bad input: each rejection reason names the column and the value
+# ======================================================================================
+
+
+def _bad_rows_case(tmp_path):
+    csv = (
+        "name,l,b,dist,e_dist,ebv,e_ebv\n"
+        "ok-1,10,1,1000,50,0.3,0.02\n"
+        "blank-dist,10,1,,50,0.3,0.02\n"
+        "nan-dist,10,1,nan,50,0.3,0.02\n"
+        "text-dist,10,1,far,50,0.3,0.02\n"
+        "high-b,10,95,1000,50,0.3,0.02\n"
+        "neg-dist,10,1,-100,50,0.3,0.02\n"
+        "zero-dist,10,1,0,50,0.3,0.02\n"
+        "huge-ebv,10,1,1000,50,25,0.02\n"
+        "very-neg-ebv,10,1,1000,50,-0.5,0.02\n"
+        "slightly-neg-ebv,10,1,1000,50,-0.05,0.02\n"
+        "neg-err,10,1,1000,-5,0.3,0.02\n"
+        "ok-2,20,-2,2000,100,0.5,0.03\n"
+    )
+    path = tmp_path / "bad.csv"
+    path.write_text(csv)
+    return path
+
+
+def test_every_bad_row_is_rejected_with_its_reason(tmp_path):
+    path = _bad_rows_case(tmp_path)
+    with pytest.warns(RowsRejectedWarning, match=r"^9 of 12 rows rejected: .*See TracerSet.rejected"):
+        ts = read_tracers(path, distance_unit="pc")
+    assert list(ts.name) == ["ok-1", "slightly-neg-ebv", "ok-2"]
+    # negative-but-plausible reddening is noise around zero and is kept (documented)
+    assert ts.excess[1] == pytest.approx(-0.05)
+    rej = {r["name"]: (r["reason"], r["column"], r["value"], r["row"]) for r in ts.rejected}
+    assert rej["blank-dist"][:3] == ("missing value in 'dist'", "dist", "(empty)")
+    assert rej["blank-dist"][3] == 1  # 0-based input row index
+    assert rej["nan-dist"][:2] == ("missing value in 'dist'", "dist")
+    assert rej["text-dist"][:3] == ("non-numeric value in 'dist'", "dist", "far")
+    assert rej["high-b"][:3] == ("'b' outside [-90, 90] deg", "b", "95")
+    assert rej["neg-dist"][:3] == ("distance <= 0 in 'dist'", "dist", "-100")
+    assert rej["zero-dist"][:3] == ("distance <= 0 in 'dist'", "dist", "0")
+    assert rej["huge-ebv"][:3] == ("E(B-V) in 'ebv' outside [-0.3, 20] mag", "ebv", "25")  # issue's absurd limits
+    assert rej["very-neg-ebv"][:3] == ("E(B-V) in 'ebv' outside [-0.3, 20] mag", "ebv", "-0.5")
+    assert rej["neg-err"][:3] == ("negative error in 'e_dist'", "e_dist", "-5")
+    assert len(ts.rejected) == 9
+    assert ts.meta["rejected_by_reason"]["distance <= 0 in 'dist'"] == 2
+    assert sum(ts.meta["rejected_by_reason"].values()) == 9
+    assert set(ts.rejected.colnames) == {"row", "name", "reason", "column", "value"}
+    # counted by reason in the summary
+    s = ts.summary()
+    assert "Rejected:  9 rows" in s
+    assert "2  distance <= 0 in 'dist'" in s and "2  missing value in 'dist'" in s
+
+
+def test_dec_out_of_range_and_absurd_av_rejected():
+    t = Table({"ra": [10.0, 20.0, 30.0, 400.0], "dec": [-91.0, 10.0, 10.0, 0.0], "dist": [1.0, 2.0, 3.0, 4.0] * u.kpc,
+               "e_dist": [0.1] * 4 * u.kpc,
+               "A_V": [1.0, 70.0, 1.0, 1.0], "e_A_V": [0.1] * 4})
+    with pytest.warns(RowsRejectedWarning, match="3 of 4"):
+        ts = read_tracers(t)
+    reasons = list(ts.rejected["reason"])
+    assert reasons[0] == "'dec' outside [-90, 90] deg"
+    # A_V limits are the E(B-V) limits [-0.3, 20] times R_V = 3.1 -> [-0.93, 62]
+    assert reasons[1].startswith("A_V in 'A_V' outside the A_V range [-0.93, 62] mag")
+    assert reasons[2] == "'ra' outside [0, 360] deg"
+    assert list(ts.rejected["value"]) == ["-91", "70", "400"]
+
+
+def test_reject_limits_can_be_changed():
+    t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "dist": [1.0, 300.0] * u.kpc, "e_dist": [0.1, 0.1] * u.kpc,
+               "ebv": [0.1, 0.1], "e_ebv": [0.01] * 2})
+    ts = _quiet(read_tracers, t)
+    assert len(ts) == 1 and "outside (0, 200000] pc" in ts.rejected["reason"][0]
+    ts = read_tracers(t, reject_limits={"distance": (0, 5e5)})
+    assert len(ts) == 2
+    assert DEFAULT_REJECT_LIMITS["ebv"] == (-0.3, 20.0)
+    with pytest.raises(ParameterError, match="'reject_limits'"):
+        read_tracers(t, reject_limits={"colour": (0, 1)})
+
+
+def test_missing_required_columns_list_what_was_found_and_needed():
+    t = Table({"l": [1.0], "b": [0.0], "ebv": [0.1], "mag_V": [12.0]})
+    with pytest.raises(CatalogError) as exc:
+        read_tracers(t)
+    msg = str(exc.value)
+    assert "No distance column" in msg and "'mag_V'" in msg and "parallax" in msg and "dist" in msg and "Hint" in msg
+    t = Table({"l": [1.0], "b": [0.0], "dist": [100.0]})
+    with pytest.raises(CatalogError, match=r"No reddening column.*Columns found: 'l', 'b', 'dist'.*E\(B-V\)"):
+        read_tracers(t)
+    t = Table({"x": [1.0], "y": [0.0], "dist": [100.0], "ebv": [0.1]})
+    with pytest.raises(CatalogError, match=r"No position columns.*'x', 'y'.*glon/glat.*ra/dec"):
+        read_tracers(t)
+
+
+def test_colour_error_column_is_not_mistaken_for_a_reddening():
+    # VizieR convention (common practice): 'e_B-V' is the error of the colour 'B-V', not E(B-V)
+    t = Table({"l": [1.0], "b": [0.0], "dist": [100.0] * u.pc, "B-V": [0.8], "e_B-V": [0.02]})
+    with pytest.raises(CatalogError, match="No reddening column"):
+        read_tracers(t)
+
+
+def test_all_rows_rejected_or_no_rows_is_an_error():
+    t = Table({"l": [1.0, 2.0], "b": [95.0, 0.0], "dist": [100.0, -1.0] * u.pc, "ebv": [0.1, 0.1]})
+    with pytest.raises(CatalogError, match=r"No usable tracer.*all 2 rows were rejected.*'b' outside"):
+        _quiet(read_tracers, t)
+    with pytest.raises(CatalogError, match="has no rows"):
+        _quiet(read_tracers, t[:0])
+
+
+def test_unreadable_or_missing_file_names_path_and_hint(tmp_path):
+    bad = tmp_path / "broken.fits"
+    bad.write_bytes(b"this is not a FITS file")
+    with pytest.raises(CatalogError) as exc:
+        read_tracers(bad)
+    assert str(bad) in str(exc.value) and "Hint" in str(exc.value)
+    missing = tmp_path / "nothere.csv"
+    with pytest.raises(CatalogError, match=r"nothere\.csv' does not exist"):
+        read_tracers(missing)
+    with pytest.raises(ParameterError, match="'source'"):
+        read_tracers(42)
+
+
+def test_bad_columns_mapping():
+    t = _catalogue()
+    with pytest.raises(CatalogError, match=r"columns=\{'ebv': 'E_BV'\} names a column that is not in"):
+        read_tracers(t, columns={"ebv": "E_BV"})
+    with pytest.raises(ParameterError, match="'columns'"):
+        read_tracers(t, columns={"reddening": "EBV"})
+    with pytest.raises(CatalogError, match="several reddening columns"):
+        read_tracers(t, columns={"ebv": "EBV", "av": "EBV"})
+    assert "excess_err" in COLUMN_KEYS and "apparent_modulus" in COLUMN_KEYS
+
+
+# ======================================================================================
+# Sources and formats
+# ======================================================================================
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".ecsv", ".fits", ".vot", ".parquet"])
+def test_same_tracers_from_every_file_format(tmp_path, suffix):
+    t = _catalogue(n=25)
+    t["EBV"][3] = 99.0  # one rejected row, to compare the reports as well
+    ref = _quiet(read_tracers, t)
+    path = tmp_path / f"clusters{suffix}"
+    fmt = {".vot": "votable"}.get(suffix)
+    t.write(path, format=fmt) if fmt else t.write(path)
+    ts = _quiet(read_tracers, path)
+    for attr in ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "row"):
+        np.testing.assert_array_equal(getattr(ts, attr), getattr(ref, attr), err_msg=f"{suffix}: {attr}")
+    np.testing.assert_array_equal(ts.name, ref.name)
+    assert list(ts.rejected["reason"]) == list(ref.rejected["reason"])
+    assert ts.meta["sha256_of"] == "file"
+    assert ts.meta["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert suffix in SUFFIX_FORMATS
+
+
+def test_pandas_dataframe_input():
+    pd = pytest.importorskip("pandas")
+    t = _catalogue()
+    df = pd.DataFrame({c: np.asarray(t[c]) for c in t.colnames})
+    ts = _quiet(read_tracers, df)
+    ref = _quiet(read_tracers, t)
+    np.testing.assert_array_equal(ts.distance, ref.distance)
+    np.testing.assert_array_equal(ts.av, ref.av)
+    np.testing.assert_array_equal(ts.name, ref.name)
+    assert "pandas DataFrame" in ts.meta["source"] and ts.meta["sha256_of"] == "arrays"
+    # NaN from pandas is a missing value
+    df.loc[2, "Dist"] = np.nan
+    ts = _quiet(read_tracers, df)
+    assert list(ts.rejected["reason"]) == ["missing value in 'Dist'"]
+
+
+def test_explicit_mapping_wins_over_recognition():
+    t = _catalogue()
+    t["Red"] = np.asarray(t["EBV"]) * 2
+    t["plx"] = 1000.0 / np.asarray(t["Dist"])
+    ts = _quiet(read_tracers, t, columns={"ebv": "Red", "parallax": "plx", "name": "e_EBV"})
+    np.testing.assert_allclose(ts.excess, np.asarray(t["Red"]))
+    np.testing.assert_allclose(ts.distance, np.asarray(t["Dist"]), rtol=1e-12)
+    assert ts.distance_kind == "parallax"
+    assert ts.meta["columns"]["ebv"] == "Red" and ts.meta["columns"]["parallax"] == "plx"
+    np.testing.assert_array_equal(ts.name, np.asarray(t["e_EBV"]).astype(str))
+    # an explicit mapping is matched case-insensitively when there is no exact match
+    ts = _quiet(read_tracers, t, columns={"ebv": "red"})
+    np.testing.assert_allclose(ts.excess, np.asarray(t["Red"]))
+
+
+def test_several_candidate_columns_are_announced():
+    t = _catalogue()
+    t["plx"] = 1000.0 / np.asarray(t["Dist"])
+    with pytest.warns(AssumptionWarning, match=r"Several distance columns found: 'Dist' \(distance\), 'plx' \(parallax\); using 'Dist'"):
+        read_tracers(t)
+
+
+# ======================================================================================
+# TracerSet behaviour
+# ======================================================================================
+
+
+def test_summary_contents(tmp_path):
+    path = _bad_rows_case(tmp_path)
+    ts = _quiet(read_tracers, path, distance_unit="pc")
+    s = ts.summary()
+    assert "3 tracers" in s and "12 input rows" in s and "9 rejected" in s
+    assert "l 10.00 .. 20.00 deg" in s and "b -2.00 .. 1.00 deg" in s
+    assert "HEALPix pixels at NSIDE 64" in s
+    assert "1000 .. 2000 pc" in s
+    assert "A_V:" in s and "E(B-V)" in s and "R_V = 3.1" in s
+    assert "missing value in 'dist'" in s
+    assert "statistical" in s  # the usual caution
+    assert "bad.csv" in s
+
+
+def test_sky_area_uses_healpix_pixel_area():
+    # three tracers inside one NSIDE-64 pixel: area = one pixel, 0.839294 deg^2 (Gorski et al. 2005)
+    ts = TracerSet.from_arrays([45.0, 45.01, 45.02], [10.0, 10.01, 10.0], [100, 200, 300], [10, 10, 10], [1, 1, 1], [0.1, 0.1, 0.1])
+    area, npix = ts.sky_area()
+    assert npix == 1
+    assert area.to_value(u.deg**2) == pytest.approx(NSIDE64_PIXEL_AREA, rel=1e-5)
+    # a tracer longitude range that wraps through l = 0 is reported as one arc
+    ts = TracerSet.from_arrays([350.0, 355.0, 5.0], [0, 0, 0], [100] * 3, [10] * 3, [1] * 3, [0.1] * 3)
+    assert "l 350.00 .. 5.00 deg (through l = 0)" in ts.summary()
+    ts = TracerSet.from_arrays(np.arange(0.0, 360.0, 5.0), np.zeros(72), np.full(72, 100.0), 10.0, 1.0, 0.1)
+    assert "l all longitudes" in ts.summary()
+
+
+def test_sky_area_of_the_whole_sky():
+    # points uniform on the sphere occupy all 12 NSIDE^2 pixels: area 4 pi sr (Gorski et al. 2005)
+    rng = np.random.default_rng(5)
+    n = 50_000
+    lon = rng.uniform(0, 360, n)
+    lat = np.degrees(np.arcsin(rng.uniform(-1, 1, n)))
+    ts = TracerSet.from_arrays(lon, lat, np.full(n, 100.0), 10.0, 1.0, 0.1)
+    area, npix = ts.sky_area(nside=4)
+    assert npix == 192 and area.to_value(u.deg**2) == pytest.approx(FULL_SKY_DEG2, rel=1e-9)
+    with pytest.raises(ParameterError, match="'nside'"):
+        ts.sky_area(nside=12)
+
+
+def test_from_arrays_quantities_plain_arrays_and_validation():
+    ts = TracerSet.from_arrays(
+        [10.0, 20.0] * u.deg, [1.0, -1.0] * u.deg, [1.0, 2.0] * u.kpc, [0.1, 0.2] * u.kpc,
+        [1.0, 2.0] * u.mag, [0.1, 0.1] * u.mag, name=["a", "b"], rv=3.1,
+    )
+    np.testing.assert_allclose(ts.distance, [1000.0, 2000.0])
+    np.testing.assert_array_equal(ts.name, ["a", "b"])
+    plain = TracerSet.from_arrays([10.0, 20.0], [1.0, -1.0], [1000.0, 2000.0], [100.0, 200.0], [1.0, 2.0], [0.1, 0.1])
+    np.testing.assert_allclose(plain.distance, ts.distance)
+    np.testing.assert_array_equal(plain.name, ["row 0", "row 1"])
+    with pytest.warns(RowsRejectedWarning, match="1 of 2"):
+        bad = TracerSet.from_arrays([10.0, 20.0], [1.0, 100.0], [1000.0, 2000.0], [100.0, 200.0], [1.0, 2.0], [0.1, 0.1])
+    assert len(bad) == 1 and bad.rejected["row"][0] == 1
+    with pytest.raises(ParameterError, match="'distance'"):
+        TracerSet.from_arrays([1.0], [1.0], [1.0] * u.mag, [0.1], [1.0], [0.1])
+
+
+def test_tracerset_is_frozen_and_subset_keeps_rows():
+    ts = _quiet(read_tracers, _catalogue())
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        ts.rv = 4.0
+    with pytest.raises(ValueError):
+        ts.av[0] = 99.0  # read-only arrays
+    mask = ts.distance > 2000
+    sub = ts.subset(mask)
+    assert len(sub) == int(mask.sum())
+    np.testing.assert_array_equal(sub.row, ts.row[mask])
+    np.testing.assert_array_equal(sub.av, ts.av[mask])
+    idx = ts.subset(np.array([0, 2]))
+    np.testing.assert_array_equal(idx.name, ts.name[[0, 2]])
+    with pytest.raises(ParameterError, match="'mask'"):
+        ts.subset(np.ones(3, dtype=bool))
+
+
+def test_to_table_units_and_meta():
+    ts = _quiet(read_tracers, _catalogue())
+    t = ts.to_table()
+    assert isinstance(t, QTable)
+    assert t["l"].unit == u.deg and t["distance_err"].unit == u.pc and t["av_err"].unit == u.mag
+    assert t.meta["excess_kind"] == "E(B-V)" and t.meta["rv"] == 3.1 and t.meta["law"] == "ccm89"
+    assert ts.meta["n_input"] == 12 and ts.meta["sha256_of"] == "arrays" and len(ts.meta["sha256"]) == 64
+    st = ts.summary_table()
+    assert st["n_tracers"][0] == 12 and st["sky_area"].unit == u.deg**2
+
+
+def test_law_and_rv_are_validated():
+    t = _catalogue()
+    with pytest.raises(ParameterError, match="'rv'"):
+        read_tracers(t, rv=-1.0)
+    pytest.importorskip("dustkit.laws")
+    with pytest.raises(ParameterError, match="'law'"):
+        read_tracers(t, law="no-such-law")
+
+
+def test_million_rows_in_seconds():
+    # vectorised ingestion (DEVELOPERS.md: no Python loops over tracers); generous bound for shared CI machines
+    rng = np.random.default_rng(11)
+    n = 1_000_000
+    t = Table({"ra": rng.uniform(0, 360, n), "dec": rng.uniform(-90, 90, n), "plx": rng.uniform(-0.2, 3, n) * u.mas,
+               "e_plx": rng.uniform(0.01, 0.2, n) * u.mas, "ebv": rng.uniform(-0.5, 3, n), "e_ebv": np.full(n, 0.03)})
+    start = time.perf_counter()
+    ts = _quiet(read_tracers, t)
+    elapsed = time.perf_counter() - start
+    assert len(ts) + len(ts.rejected) == n
+    assert elapsed < 15.0, f"reading 10^6 rows took {elapsed:.1f} s"
+
+
+# ======================================================================================
+# Targets
+# ======================================================================================
+
+
+def test_read_targets_keeps_every_row_and_flags_bad_ones():
+    t = Table({"id": ["T1", "T2", "T3", "T4"], "RAJ2000": [0.0, 10.0, 20.0, 30.0], "DEJ2000": [0.0, 95.0, 10.0, 10.0],
+               "plx": [2.0, 1.0, -1.0, 0.5] * u.mas, "Vmag": [10.0, 11.0, 12.0, 13.0]})
+    with pytest.warns(RowsRejectedWarning, match=r"2 of 4 target rows cannot be placed"):
+        tl = read_targets(t)
+    assert isinstance(tl, TargetList) and len(tl) == 4
+    np.testing.assert_array_equal(tl.valid, [True, False, False, True])
+    assert tl.l[0] == pytest.approx(ORIGIN_L, abs=1e-4)  # computed reference, see top of file
+    assert np.isnan(tl.l[1]) and np.isnan(tl.distance[2])
+    np.testing.assert_allclose(tl.distance[[0, 3]], [500.0, 2000.0])
+    assert list(tl.rejected["name"]) == ["T2", "T3"]
+    assert tl.table.colnames == t.colnames and len(tl.table) == 4  # input kept as it is
+    out = tl.to_table()
+    assert out["distance"].unit == u.pc and "Vmag" in out.colnames and list(out["valid"]) == [True, False, False, True]
+
+
+def test_read_targets_refuses_apparent_modulus():
+    t = Table({"l": [1.0], "b": [0.0], "(m-M)V": [11.0]})
+    with pytest.raises(CatalogError, match=r"apparent V modulus.*needs the reddening"):
+        read_targets(t)
+    t2 = Table({"l": [1.0], "b": [0.0], "mod": [11.0]})
+    with pytest.raises(CatalogError, match=r"apparent modulus cannot place a target"):
+        read_targets(t2, columns={"apparent_modulus": "mod"})
+
+
+def test_read_targets_units_and_missing_distance():
+    t = Table({"glon": [10.0], "glat": [1.0], "d_kpc": [2.5]})
+    tl = read_targets(t)
+    assert tl.distance[0] == pytest.approx(2500.0)
+    assert tl.distance_err[0] == 0.0  # a plain target distance is taken as exact (documented)
+    with pytest.warns(AssumptionWarning, match="No error column for the distance"):
+        tl = read_targets(t, default_distance_frac_err=0.2)
+    assert tl.distance_err[0] == pytest.approx(500.0)
+    with pytest.raises(CatalogError, match="No distance column"):
+        read_targets(Table({"glon": [10.0], "glat": [1.0]}))
+
+
+def test_tracers_module_imports_only_computation_libraries():
+    # layering rule (DEVELOPERS.md): computation code never imports matplotlib, ipywidgets or IPython,
+    # not even lazily; nor healpy, because importing it loads matplotlib.pyplot.
+    import ast
+
+    import dustkit.tracers as mod
+
+    tree = ast.parse(open(mod.__file__, encoding="utf-8").read())
+    imported = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            imported.update(a.name.split(".")[0] for a in node.names)
+        elif isinstance(node, ast.ImportFrom) and node.level == 0:
+            imported.add(node.module.split(".")[0])
+    assert imported <= {"hashlib", "os", "re", "warnings", "dataclasses", "pathlib", "numpy", "astropy", "pandas"}, imported
+    # and the summary adds no plotting module to a fresh process (beyond what the package import did)
+    code = (
+        "import sys; sys.path.insert(0, '.');"
+        "from dustkit.tracers import TracerSet;"
+        "ts = TracerSet.from_arrays([1.0, 2.0], [0.0, 1.0], [100.0, 200.0], [10.0, 20.0], [1.0, 2.0], [0.1, 0.1]);"
+        "before = set(sys.modules); ts.summary(); ts.sky_area();"
+        "print(sorted(m for m in set(sys.modules) - before if m.split('.')[0] in ('matplotlib', 'healpy', 'ipywidgets', 'IPython')))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
+
+
+def test_galactic_preferred_over_equatorial_and_empty_names_filled(tmp_path):
+    # both position systems present: the Galactic columns are used as given (no conversion) and that is noted
+    path = tmp_path / "both.csv"
+    path.write_text(
+        "Name,RAJ2000,DEJ2000,_Glon,_Glat,Dist,e_Dist,EBV,e_EBV\n"
+        "Invented-A,0,0,10,1,1000,50,0.3,0.02\n"
+        ",0,0,20,2,2000,90,0.4,0.02\n"
+    )
+    ts = read_tracers(path, distance_unit="pc")
+    np.testing.assert_array_equal(ts.l, [10.0, 20.0])
+    assert any("Galactic columns ('_Glon', '_Glat') used" in a for a in ts.meta["assumptions"])
+    # a missing name becomes 'row <input row index>'
+    np.testing.assert_array_equal(ts.name, ["Invented-A", "row 1"])
