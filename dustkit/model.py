@@ -3,10 +3,11 @@
 How a model is built (``ExtinctionModel.fit``):
 
 1. Fit the smooth exponential dust layer to all tracers (:func:`dustkit.layer.fit_layer`).
-2. Draw Monte Carlo realisations of each tracer's distance (log-normal) and A_V (normal)
-   and take the residual from the layer at the drawn distance, so a tracer informs the
-   cumulative extinction at its own uncertain distance. Large catalogues skip the draws and
-   use the scatter within bins instead (``uncertainty_scheme_`` records which).
+2. Take each tracer's residual from the layer (the extinction the layer does not explain)
+   and spread it over Monte Carlo draws of its distance (log-normal) and A_V (normal), so
+   a tracer informs the cumulative extinction at its own uncertain distance. Large
+   catalogues skip the draws and use the scatter within bins instead
+   (``uncertainty_scheme_`` records which).
 3. Accumulate weighted sums of the residuals per (pixel, distance edge) with linear
    (cloud-in-cell) weights in distance: the sufficient statistics of the model.
 4. Smooth the statistics on the sky with a neighbour kernel (HEALPix 8-neighbours,
@@ -15,10 +16,11 @@ How a model is built (``ExtinctionModel.fit``):
    Striebel 1965, AIAA J. 3, 1445). Where a pixel has no tracers the residual relaxes to 0,
    i.e. the model falls back to the layer, with an uncertainty that grows with distance;
    beyond the last tracer the residual is carried forward with growing uncertainty.
-5. Choose the sky kernel width and the random-walk strength by K-fold cross-validation on
-   held-out tracers, and calibrate the predictive uncertainty (the scatter of extinction
-   around the model on scales it cannot resolve) on the same held-out residuals, so that
-   1-sigma intervals cover about 68% of the truth.
+5. Choose the sky kernel width, the distance kernel width and the random-walk strength by
+   K-fold cross-validation on held-out tracers, and calibrate the predictive uncertainty
+   (the scatter of extinction around the model on scales it cannot resolve) by maximum
+   likelihood on the same held-out tracers, integrating over their distance errors, so
+   that 1-sigma intervals cover about 68% of the truth.
 6. Enforce non-decreasing cumulative A_V along every pixel's sight line by weighted
    isotonic regression (Barlow et al. 1972).
 

@@ -1,0 +1,214 @@
+"""The extinction model: grid rules, monotone profiles, fallback to the layer, accuracy.
+
+The simulated regions here are invented (a layer plus clouds with made-up positions); they
+stand in for a sky where the true extinction is known, so the model can be scored.
+"""
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.coordinates import SkyCoord
+
+from dustkit import ExtinctionModel, ModelNotFittedError, ParameterError
+from dustkit._isotonic import isotonic_rows
+from dustkit.grid import Grid
+from dustkit.simulate import Cloud, DustField, simulate_tracers
+from dustkit.tracers import read_tracers
+
+# An invented region: layer with a0 = 1 mag/kpc, h = 120 pc, z_sun = 20 pc (the order of the
+# open-cluster values of Joshi 2005) plus six clouds of different sizes and distances.
+CLOUDS = (
+    Cloud(30, 1, 600, 3.0, 30, 1.2),
+    Cloud(45, -2, 1500, 2.0, 40, 0.8),
+    Cloud(60, 3, 900, 5.0, 30, 0.6),
+    Cloud(70, -1, 2500, 1.5, 50, 1.5),
+    Cloud(38, 4, 2000, 4.0, 40, 1.0),
+    Cloud(52, 0, 350, 1.0, 20, 0.7),
+)
+FIELD = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=CLOUDS)
+REGION = dict(l_range=(20, 80), b_range=(-10, 10), distance_max=5000)
+
+
+@pytest.fixture(scope="module")
+def region():
+    rng = np.random.default_rng(2024)
+    # errors as the model is meant for: 8-15% in distance, 0.02-0.05 mag in E(B-V)
+    tracers = simulate_tracers(FIELD, 3000, rng=rng, **REGION)
+    heldout = simulate_tracers(FIELD, 5000, rng=rng, **REGION)
+    model = ExtinctionModel(quiet=True).fit(read_tracers(tracers))
+    return tracers, heldout, model
+
+
+def test_accuracy_against_truth_at_held_out_positions(region):
+    _, held, model = region
+    l, b, d = (np.asarray(held[k]) for k in ("l", "b", "true_distance"))
+    truth = FIELD.av(l, b, d)
+    av, av_err = model.av(l * u.deg, b * u.deg, d * u.pc)
+    err = av.to_value(u.mag) - truth
+    layer_err = model.layer_av(l * u.deg, b * u.deg, d * u.pc).to_value(u.mag) - truth
+    rms, rms_layer = np.sqrt(np.mean(err**2)), np.sqrt(np.mean(layer_err**2))
+    coverage = np.mean(np.abs(err) <= av_err.to_value(u.mag))
+    print(f"RMS {rms:.3f} mag (layer alone {rms_layer:.3f}), median |error| "
+          f"{np.median(np.abs(err)):.3f} mag, 1-sigma coverage {coverage:.3f}")
+    # required: at least 50% lower RMS than the smooth layer alone
+    assert rms <= 0.5 * rms_layer
+    # honest predictive uncertainties: 1-sigma intervals hold 60-76% of the truth
+    assert 0.60 <= coverage <= 0.76
+
+
+def test_cumulative_extinction_never_decreases(region):
+    _, _, model = region
+    assert np.all(np.diff(model.av_, axis=1) >= -1e-12)
+    assert np.all(model.differential_ >= -1e-9)
+    rng = np.random.default_rng(5)
+    for l, b in zip(rng.uniform(20, 80, 20), rng.uniform(-10, 10, 20)):
+        p = model.profile(l * u.deg, b * u.deg)
+        assert np.all(np.diff(p["av"].to_value(u.mag)) >= 0)
+
+
+def test_answer_varies_inside_a_pixel(region):
+    _, _, model = region
+    g = model.grid_
+    lc, bc = g.pixel_centres([g.pixel(40.0, 0.5)])
+    # two points inside the same pixel, 0.4 deg apart in latitude, near the plane
+    l = np.array([lc[0], lc[0]])
+    b = np.array([bc[0] - 0.2, bc[0] + 0.2])
+    assert g.pixel(l, b)[0] == g.pixel(l, b)[1]
+    av, _ = model.av(l * u.deg, b * u.deg, [1500, 1500] * u.pc)
+    assert abs(av[0] - av[1]) > 0.005 * u.mag
+
+
+def test_falls_back_to_layer_with_larger_error_where_there_are_no_tracers(region):
+    _, _, model = region
+    # l = 200 deg is far outside the region: no tracers anywhere near
+    av, err = model.av(200 * u.deg, 2 * u.deg, 2000 * u.pc)
+    lay = model.layer_av(200 * u.deg, 2 * u.deg, 2000 * u.pc)
+    assert av.to_value(u.mag) == pytest.approx(lay.to_value(u.mag), rel=1e-9)
+    _, err_in = model.av(50 * u.deg, 2 * u.deg, 2000 * u.pc)
+    assert err > err_in
+
+
+def test_skycoord_and_arrays_agree(region):
+    _, _, model = region
+    c = SkyCoord(l=[30, 50] * u.deg, b=[1, -2] * u.deg, distance=[700, 2500] * u.pc, frame="galactic")
+    a1, e1 = model.av(c)
+    a2, e2 = model.av([30, 50] * u.deg, [1, -2] * u.deg, [0.7, 2.5] * u.kpc)
+    assert np.array_equal(a1, a2) and np.array_equal(e1, e2)
+    a3, _ = model.av(c.icrs)  # any frame is accepted
+    assert np.allclose(a3, a1, atol=1e-9 * u.mag)
+
+
+def test_query_bands_follow_the_law(region):
+    import extinction
+
+    _, _, model = region
+    t = model.query([45] * u.deg, [0] * u.deg, [2] * u.kpc, bands=("Ks",))
+    from dustkit.bands import get_band
+
+    lam = get_band("Ks").wavelength.to_value(u.AA)
+    # the independent `extinction` package's CCM89 gives A_Ks/A_V at the same wavelength
+    ratio = extinction.ccm89(np.array([lam]), 1.0, 3.1)[0]
+    assert float((t["a_Ks"] / t["av"])[0]) == pytest.approx(ratio, rel=1e-6)
+    assert t["a_Ks_err"].unit == u.mag and "caution" in t.meta
+
+
+def test_distance_error_of_a_target_widens_its_uncertainty(region):
+    _, _, model = region
+    _, e0 = model.av(40 * u.deg, 0 * u.deg, 2 * u.kpc)
+    _, e1 = model.av(40 * u.deg, 0 * u.deg, 2 * u.kpc, distance_err=300 * u.pc)
+    assert e1 > e0
+
+
+def test_cone_profile_lists_tracers_and_is_monotone(region):
+    _, _, model = region
+    p = model.profile(30 * u.deg, 1 * u.deg, radius=2 * u.deg)
+    assert p["distance"].unit == u.pc and p["av"].unit == u.mag
+    assert len(p.meta["tracers"]) > 5
+    # behind the invented cloud at 600 pc the profile holds about its column (1.2 mag) over the layer
+    gain = p["av"] - p["av_layer"]
+    assert gain[p["distance"] > 1000 * u.pc].mean() > 0.5 * u.mag
+
+
+def test_same_seed_same_model(region):
+    tracers, _, model = region
+    again = ExtinctionModel(quiet=True).fit(read_tracers(tracers))
+    assert np.array_equal(again.av_, model.av_)
+
+
+def test_binned_table(region):
+    tracers, _, model = region
+    t = model.to_table()
+    assert {"pixel", "l", "b", "distance_min", "distance_max", "av", "av_err", "differential", "n_tracers"} <= set(t.colnames)
+    assert t["differential"].unit == u.mag / u.kpc
+    assert t.meta["nside"] == 32 and t.meta["ordering"] == "RING"
+    # every tracer inside the distance range is counted once
+    inside = np.asarray(tracers["distance"]) < model.grid_.distance_edges[-1]
+    assert model.counts_.sum() == inside.sum()
+
+
+def test_unfitted_model_says_so():
+    with pytest.raises(ModelNotFittedError, match="fit"):
+        ExtinctionModel().av(1 * u.deg, 2 * u.deg, 3 * u.pc)
+
+
+@pytest.mark.parametrize("nside", [12, 0, 2048, 3.5, "32"])
+def test_bad_nside_message(nside):
+    # the project's one message shape
+    with pytest.raises(ParameterError, match=rf"The 'nside' parameter must be a power of two between 1 and 1024\. Got {nside!r} instead\."):
+        Grid(nside, [0, 100])
+
+
+def test_grid_too_big_is_refused_with_its_size():
+    with pytest.raises(ParameterError, match=r"needs about [0-9.]+ GiB"):
+        Grid(1024, np.linspace(0, 10000, 201))
+
+
+@pytest.mark.parametrize("edges", [[100, 50], [0], [-10, 100], [0, np.nan]])
+def test_bad_distance_edges(edges):
+    with pytest.raises(ParameterError, match="distance_edges"):
+        Grid(16, edges)
+
+
+def test_linear_and_log_grids():
+    g = Grid.linear(6 * u.kpc, 200 * u.pc, nside=16)
+    assert g.n_bins == 30 and g.distance_edges[-1] == 6000
+    lg = Grid.log(50 * u.pc, 10 * u.kpc, 20, nside=16, ordering="nested")
+    assert lg.n_bins == 20 and lg.nest and lg.distance_edges[0] == 0
+    # HEALPix: N_pix = 12 NSIDE^2 (Gorski et al. 2005); NSIDE 64 pixel area 0.839294 deg^2
+    assert Grid(64, [0, 1]).npix == 12 * 64**2
+    assert Grid(64, [0, 1]).pixel_area.to_value(u.deg**2) == pytest.approx(0.839294, abs=1e-6)
+
+
+def test_isotonic_rows_match_scipy():
+    from scipy.optimize import isotonic_regression  # reference implementation (PAVA)
+
+    rng = np.random.default_rng(3)
+    y = rng.normal(size=(200, 15)).cumsum(axis=1) * rng.choice([-1, 1], size=(200, 1))
+    w = rng.uniform(0.1, 5, size=y.shape)
+    ours = isotonic_rows(y, w)
+    ref = np.array([isotonic_regression(y[i], weights=w[i]).x for i in range(200)])
+    assert np.allclose(ours, ref, atol=1e-12)
+
+
+def test_bin_scatter_scheme_is_recorded():
+    t = simulate_tracers(FIELD, 800, rng=4, **REGION)
+    m = ExtinctionModel(nside=16, uncertainty="bin-scatter", quiet=True).fit(read_tracers(t))
+    assert m.uncertainty_scheme_ == "bin-scatter" and m.n_draws_ == 1
+    with pytest.raises(ParameterError, match="uncertainty"):
+        ExtinctionModel(uncertainty="bootstrap").fit(read_tracers(t))
+
+
+def test_computation_layer_imports_no_plotting_or_widgets():
+    code = (
+        "import sys, numpy as np, astropy.units as u, dustkit\n"
+        "from dustkit.simulate import DustField, simulate_tracers\n"
+        "t = simulate_tracers(DustField(), 300, l_range=(0, 40), b_range=(-5, 5), rng=1)\n"
+        "m = dustkit.ExtinctionModel(nside=8, quiet=True).fit(dustkit.read_tracers(t))\n"
+        "m.av(10 * u.deg, 1 * u.deg, 1 * u.kpc); m.profile(10 * u.deg, 1 * u.deg, radius=2 * u.deg)\n"
+        "bad = [k for k in ('matplotlib.pyplot', 'ipywidgets', 'IPython') if k in sys.modules]\n"
+        "assert not bad, bad\n"
+    )
+    subprocess.run([sys.executable, "-c", code], check=True)
