@@ -160,7 +160,7 @@ def _smooth(stats, kernel):
     sm = (k @ flat).reshape(shape)
     sm2 = (k2 @ s[:, 3].reshape(shape[0], -1)).reshape((shape[0],) + shape[2:])
     sm[:, 3] = sm2  # the sum of squared weights takes the squared kernel (Kish effective size)
-    return np.moveaxis(sm, 0, -2)
+    return np.ascontiguousarray(np.moveaxis(sm, 0, -2))
 
 
 def _distance_kernel(edges_pc, sigma_pc):
@@ -177,8 +177,9 @@ def _distance_kernel(edges_pc, sigma_pc):
 def _smooth_distance(stats, kernel):
     """Apply a distance kernel along the last axis of statistics of shape (5, ..., E)."""
     g, g2 = kernel
-    out = stats @ g.T
-    out[3] = stats[3] @ g2.T
+    E = stats.shape[-1]
+    out = (stats.reshape(-1, E) @ g.T).reshape(stats.shape)
+    out[3] = (stats[3].reshape(-1, E) @ g2.T).reshape(stats.shape[1:])
     return out
 
 
@@ -205,36 +206,39 @@ def _kalman_smooth(mean, obs_var, edges_pc, q):
     """Random-walk Kalman filter + RTS smoother along the last axis (distance edges).
 
     State: the cumulative residual R_k; R_k = R_{k-1} + eta, var(eta) = q * (e_k - e_{k-1}) [kpc].
-    Vectorised over all leading axes (pixels, folds).
+    Nodes without an observation have ``obs_var = inf``. Vectorised over the leading axes
+    (pixels); the loop runs over the few tens of distance edges only.
     """
     E = edges_pc.size
-    step = np.diff(edges_pc) / 1000.0
-    shape = mean.shape[:-1]
-    xf = np.zeros(mean.shape)
-    pf = np.zeros(mean.shape)
-    xp = np.zeros(mean.shape)
-    pp = np.zeros(mean.shape)
-    x = np.zeros(shape)
-    p = np.full(shape, q * edges_pc[0] / 1000.0)
+    shape = mean.shape
+    m = np.ascontiguousarray(mean.reshape(-1, E).T)  # (E, P): each step reads contiguous rows
+    ov = np.ascontiguousarray(obs_var.reshape(-1, E).T)
+    has = np.isfinite(ov)
+    ov = np.where(has, ov, 0.0)
+    step = q * np.diff(edges_pc) / 1000.0
+    P = m.shape[1]
+    xf = np.empty((E, P))
+    pf = np.empty((E, P))
+    pp = np.empty((E, P))
+    x = np.zeros(P)
+    p = np.full(P, q * edges_pc[0] / 1000.0)
     for k in range(E):  # loop over distance edges, vectorised over pixels
         if k > 0:
-            p = p + q * step[k - 1]
-        xp[..., k], pp[..., k] = x, p
-        ov = obs_var[..., k]
-        has = np.isfinite(ov)
-        gain = np.where(has, p / np.where(has, p + ov, 1.0), 0.0)
-        gain = np.where(has & (p + ov == 0), 0.0, gain)
-        x = x + gain * (mean[..., k] - x)
+            p = p + step[k - 1]
+        pp[k] = p
+        denom = p + ov[k]
+        gain = np.divide(p, denom, out=np.zeros(P), where=has[k] & (denom > 0))
+        x = x + gain * (m[k] - x)
         p = (1.0 - gain) * p
-        xf[..., k], pf[..., k] = x, p
+        xf[k] = x
+        pf[k] = p
     xs = xf.copy()
     ps = pf.copy()
     for k in range(E - 2, -1, -1):
-        with np.errstate(divide="ignore", invalid="ignore"):
-            g = np.where(pp[..., k + 1] > 0, pf[..., k] / pp[..., k + 1], 0.0)
-        xs[..., k] = xf[..., k] + g * (xs[..., k + 1] - xp[..., k + 1])
-        ps[..., k] = pf[..., k] + g * g * (ps[..., k + 1] - pp[..., k + 1])
-    return xs, np.maximum(ps, 0.0)
+        g = np.divide(pf[k], pp[k + 1], out=np.zeros(P), where=pp[k + 1] > 0)
+        xs[k] = xf[k] + g * (xs[k + 1] - xf[k])
+        ps[k] = pf[k] + g * g * (ps[k + 1] - pp[k + 1])
+    return xs.T.reshape(shape), np.maximum(ps, 0.0).T.reshape(shape)
 
 
 def _interp(grid, values, l, b, d):
@@ -427,37 +431,71 @@ class ExtinctionModel:
         rows = []
         best = None
         dkern = {sd: _distance_kernel(edges, sd) for sd in self._distance_sigmas(edges)}
-        for p in passes:
-            sky_total = _smooth(total, kernels[p])
-            sky_folds = _smooth(stats, kernels[p])
-            for sd, dk in dkern.items():
-                sm_total = _smooth_distance(sky_total, dk)
-                sm_folds = _smooth_distance(sky_folds, dk)
-                obs = [_node_observations(sm_total - sm_folds[:, f]) for f in range(folds)]
-                for q in walk:
-                    pred = np.empty(take.size)
-                    pvar = np.empty(take.size)
-                    prior = q * edges / 1000.0
-                    for f in range(folds):  # a handful of folds
-                        m, ov, _ = obs[f]
-                        r, pv = _kalman_smooth(m, ov, edges, q)
-                        sel = take[fold[take] == f]
-                        (ri, vi), _, _ = _interp(grid, (full(r, 0.0), full(pv, prior)), l[sel], b[sel], d[sel])
-                        where = np.searchsorted(take, sel)
-                        pred[where] = np.maximum(layer._av(b[sel], d[sel]) + ri, 0.0)
-                        pvar[where] = vi
-                    mse = float(np.mean((av[take] - pred) ** 2))
-                    rows.append((p, sd, q, mse))
-                    if best is None or mse < best[3]:
-                        best = (p, sd, q, mse, pred, pvar)
+        sigmas = sorted(dkern)
+        interp_cache = {}
+        for f in range(folds):  # interpolation weights of each fold's held-out tracers, reused
+            sel = take[fold[take] == f]
+            pix_f, w_f = grid.interp_weights(l[sel], b[sel])
+            k_f, f_f = grid.edge_position(d[sel])
+            interp_cache[f] = (np.searchsorted(take, sel), pix_f, w_f, k_f, np.clip(f_f, 0, 1), layer._av(b[sel], d[sel]))
+        obs_cache = {}
+        sky_cache = {}
+
+        def observations(p, sd):
+            if (p, sd) not in obs_cache:
+                if p not in sky_cache:
+                    sky_cache[p] = (_smooth(total, kernels[p]), _smooth(stats, kernels[p]))
+                sky_total, sky_folds = sky_cache[p]
+                sm_total = _smooth_distance(sky_total, dkern[sd])
+                sm_folds = _smooth_distance(sky_folds, dkern[sd])
+                obs_cache[(p, sd)] = [_node_observations(sm_total - sm_folds[:, f]) for f in range(folds)]
+            return obs_cache[(p, sd)]
+
+        scores = {}
+
+        def score(p, sd, q):
+            if (p, sd, q) in scores:
+                return scores[(p, sd, q)][0]
+            pred = np.empty(take.size)
+            pvar = np.empty(take.size)
+            prior = q * edges / 1000.0
+            for f, (m, ov, _) in enumerate(observations(p, sd)):  # a handful of folds
+                r, pv = _kalman_smooth(m, ov, edges, q)
+                where, pix_f, w_f, k_f, f_f, lay_f = interp_cache[f]
+                rf, pf = full(r, 0.0), full(pv, prior)
+                lo_r, hi_r = np.sum(rf[pix_f, k_f] * w_f, 0), np.sum(rf[pix_f, k_f + 1] * w_f, 0)
+                lo_v, hi_v = np.sum(pf[pix_f, k_f] * w_f, 0), np.sum(pf[pix_f, k_f + 1] * w_f, 0)
+                pred[where] = np.maximum(lay_f + lo_r + f_f * (hi_r - lo_r), 0.0)
+                pvar[where] = lo_v + f_f * (hi_v - lo_v)
+            mse = float(np.mean((av[take] - pred) ** 2))
+            scores[(p, sd, q)] = (mse, pred, pvar)
+            rows.append((p, sd, q, mse))
+            return mse
+
+        # coordinate search over (sky passes, distance kernel, random-walk strength): each
+        # parameter in turn over its candidates, the others held, until nothing improves
+        current = [passes[0], sigmas[min(1, len(sigmas) - 1)], walk[len(walk) // 2]]
+        candidates = [passes, sigmas, list(walk)]
+        for _ in range(3):
+            before = tuple(current)
+            for i, cand in enumerate(candidates):
+                trial = {c: score(*(current[:i] + [c] + current[i + 1:])) for c in cand}
+                current[i] = min(trial, key=trial.get)
+            if tuple(current) == before:
+                break
+        p_best, sd_best, q_best = current
+        _, pred, pvar = scores[tuple(current)]
+        best = (p_best, sd_best, q_best, None, pred, pvar)
         p_best, sd_best, q_best, _, pred, pvar = best
 
         # calibrate the unresolved scatter on held-out tracers, integrating over each one's
         # distance uncertainty (Gauss-Hermite nodes in log distance)
         gh_x, gh_w = np.polynomial.hermite_e.hermegauss(7)
         gh_w = gh_w / gh_w.sum()
-        sm_total = _smooth_distance(_smooth(total, kernels[p_best]), dkern[sd_best])
-        sm_folds = _smooth_distance(_smooth(stats, kernels[p_best]), dkern[sd_best])
+        sm_total = _smooth_distance(sky_cache[p_best][0], dkern[sd_best])
+        sm_folds = _smooth_distance(sky_cache[p_best][1], dkern[sd_best])
+        if take.size > 5000:  # a few thousand held-out tracers pin down three numbers
+            take = np.sort(rng.choice(take, 5000, replace=False))
         frac_err = np.where(d[take] > 0, de[take] / d[take], 0.0)
         node_pred = np.empty((gh_x.size, take.size))
         node_var = np.empty((gh_x.size, take.size))
@@ -475,7 +513,8 @@ class ExtinctionModel:
         self.scatter_ = _calibrate_scatter(av[take], ae[take], node_pred, node_var, gh_w)
 
         # final model from all tracers
-        sm = _smooth_distance(_smooth(total, kernels[p_best]), dkern[sd_best])
+        sm = _smooth_distance(sky_cache[p_best][0], dkern[sd_best])
+        del sky_cache, obs_cache
         m, ov, neff = _node_observations(sm)
         r, pv = _kalman_smooth(m, ov, edges, q_best)
         r, pv, neff = full(r, 0.0), full(pv, q_best * edges / 1000.0), full(neff, 0.0)
@@ -770,14 +809,18 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
     reported 1-sigma error is the half-width of the central 68.27% interval of that
     t distribution (``scale`` = 1.07 x the t scale).
     """
-    from scipy import optimize, stats
+    from scipy import optimize, special
 
     nu = _STUDENT_NU
+    resid2 = (av[None, :] - node_pred) ** 2
+    ae2 = av_err[None, :] ** 2
+    pred2 = node_pred**2
+    log_c = float(special.gammaln((nu + 1) / 2) - special.gammaln(nu / 2) - 0.5 * np.log(nu * np.pi))
 
     def nll(theta):
         kappa, floor2, frac2 = np.exp(theta)
-        scale2 = kappa * node_var + av_err[None, :] ** 2 + floor2 + frac2 * node_pred**2
-        dens = stats.t.pdf((av[None, :] - node_pred) / np.sqrt(scale2), nu) / np.sqrt(scale2)
+        scale2 = kappa * node_var + ae2 + floor2 + frac2 * pred2
+        dens = np.exp(log_c - 0.5 * (nu + 1) * np.log1p(resid2 / (nu * scale2))) / np.sqrt(scale2)
         return -np.sum(np.log(np.maximum(node_weight @ dens, 1e-300)))
 
     best = None
@@ -787,7 +830,7 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
             best = res
     kappa, floor2, frac2 = np.exp(best.x)
     # the reported 1-sigma error is the half-width of the central 68.27% interval
-    scale = float(stats.t.ppf(0.5 + 0.6827 / 2, nu))
+    scale = float(special.stdtrit(nu, 0.5 + 0.6827 / 2))
     return {"kappa": float(kappa), "floor": float(np.sqrt(floor2)), "frac": float(np.sqrt(frac2)), "scale": scale}
 
 
