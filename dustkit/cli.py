@@ -1,0 +1,690 @@
+"""The ``dustkit`` command: build, query and export extinction models from a shell.
+
+A thin layer over the library: every command calls the same functions a Python user would
+(:func:`dustkit.tracers.read_tracers`, :class:`dustkit.model.ExtinctionModel`,
+:mod:`dustkit.io`, :mod:`dustkit.plotting`). Errors are reported as one line on stderr with
+exit status 2 (bad command line or option value) or 1 (the job failed); ``--debug`` shows
+the traceback. Progress bars appear only on a terminal and never with ``--quiet``.
+
+Run ``dustkit --help`` or ``dustkit COMMAND --help``.
+"""
+
+import argparse
+import json
+import sys
+import traceback
+import warnings
+from pathlib import Path
+
+__all__ = ["main", "build_parser"]
+
+_PROG = "dustkit"
+_DEMO_FILES = ("veyra_clusters.csv", "veyra_targets.csv", "veyra_field.json")
+
+
+class _UsageError(Exception):
+    """A bad option value found after parsing (exit status 2)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    """ArgumentParser whose errors are one line on stderr (exit status 2)."""
+
+    def error(self, message):
+        sys.stderr.write(f"{self.prog}: error: {_with_help_hint(message, self.prog)}\n")
+        sys.exit(2)
+
+
+def _one_line(text):
+    return " ".join(str(text).split())
+
+
+def _with_help_hint(text, prog):
+    text = _one_line(text)
+    if "Hint:" in text:
+        return text
+    return f"{text.rstrip('.')}. Hint: see '{prog} --help'."
+
+
+# ============================================================================ parser
+
+_EPILOGS = {
+    "build": """examples:
+  dustkit build clusters.csv -o model.fits
+  dustkit build clusters.fits -o model.fits --nside 64 --distance-max 5000 --distance-step 250
+  dustkit build stars.csv -o model.fits --column ebv=EBV_MAG --column distance=D --distance-unit kpc
+  dustkit build clusters.csv -o model.fits --distance-edges 0,250,500,1000,2000,4000 --law odonnell94 --rv 3.1""",
+    "estimate": """examples:
+  dustkit estimate model.fits targets.csv -o targets_av.csv
+  dustkit estimate model.fits targets.ecsv -o targets_av.ecsv --band J --band Ks
+  dustkit estimate model.fits targets.csv -o out.csv --column distance=dist --distance-unit kpc
+
+The output keeps every input column and adds av and av_err (mag) and a_BAND, a_BAND_err for
+each --band. Rows without a usable position or distance keep empty (NaN) values.""",
+    "layer": """examples:
+  dustkit layer clusters.csv
+  dustkit layer clusters.csv --json > layer.json
+
+a0 is in mag/kpc, h and z_sun in pc.""",
+    "profile": """examples:
+  dustkit profile model.fits --l 58 --b 1 -o sightline.png
+  dustkit profile model.fits --l 32.5 --b -2 --radius 1.5 -o cone.pdf""",
+    "export": """examples:
+  dustkit export model.fits -o table.ecsv
+  dustkit export model.fits -o table.csv
+  dustkit export model.fits -o table.fits --maps slices.fits
+
+The table has one row per informed pixel and distance bin: pixel, l, b, distance_min,
+distance_max, av_near, av, av_err, differential, n_tracers. The maps file holds one
+full-sky HEALPix map of A_V per distance edge (healpy.read_map(path, field=k)), then the
+error maps.""",
+    "laws": """example:
+  dustkit laws""",
+    "bands": """example:
+  dustkit bands""",
+    "demo": """examples:
+  dustkit demo
+  dustkit demo --out /tmp/veyra
+
+Runs the whole job on the invented Veyra Field (a made-up region, not a real one): reads the
+cluster catalogue (with a few deliberately bad rows), fits the dust layer, builds and saves a
+model, exports the table and slice maps, draws figures and estimates extinction for a target
+list. Files from an earlier demo run in the same folder are replaced.""",
+}
+
+
+def _common(sub):
+    """--quiet/--debug also after the command name (defaults suppressed so they do not reset)."""
+    sub.add_argument("--quiet", action="store_true", default=argparse.SUPPRESS,
+                     help="print only errors and warnings; no progress bars")
+    sub.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                     help="show the full traceback on errors")
+
+
+def _add_catalogue_options(p):
+    p.add_argument("--column", action="append", default=[], metavar="KEY=NAME",
+                   help="use column NAME for KEY (repeatable), e.g. --column ebv=EBV --column distance=Dist; "
+                        "keys: name, l, b, ra, dec, distance, distance_modulus, apparent_modulus, parallax, "
+                        "ebv, av, excess and KEY_err")
+    p.add_argument("--distance-unit", metavar="UNIT",
+                   help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
+
+
+def _add_law_options(p):
+    p.add_argument("--law", default="ccm89", help="extinction law for reddening -> A_V (default ccm89; see 'dustkit laws')")
+    p.add_argument("--rv", type=float, default=3.1, help="R_V (default 3.1)")
+
+
+def build_parser():
+    """The ``dustkit`` argument parser."""
+    from . import __version__
+
+    parser = _Parser(
+        prog=_PROG,
+        description="Build interstellar extinction models from star-cluster and field-star catalogues, "
+                    "and query them. Extinction estimates are statistical: check them against local data "
+                    "before using them for science or instrument time.",
+        epilog="example:\n  dustkit demo\n\nRun 'dustkit COMMAND --help' for each command's options.",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"dustkit {__version__}")
+    parser.add_argument("--quiet", action="store_true", help="print only errors and warnings; no progress bars")
+    parser.add_argument("--debug", action="store_true", help="show the full traceback on errors")
+    subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    def sub(name, help_text):
+        p = subs.add_parser(name, help=help_text, description=help_text, epilog=_EPILOGS[name],
+                            formatter_class=argparse.RawDescriptionHelpFormatter)
+        _common(p)
+        p.set_defaults(func=globals()[f"_cmd_{name}"])
+        return p
+
+    p = sub("build", "Build a model from a tracer catalogue and save it as a FITS model file.")
+    p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue (CSV, ECSV, FITS table, VOTable, Parquet)")
+    p.add_argument("-o", "--output", required=True, metavar="MODEL.fits", help="model file to write")
+    p.add_argument("--nside", type=int, default=32, help="HEALPix NSIDE of the sky pixels (power of two; default 32)")
+    p.add_argument("--distance-max", type=float, metavar="PC", help="last distance edge in pc (default 6000)")
+    p.add_argument("--distance-step", type=float, metavar="PC", help="distance bin width in pc (default 200)")
+    p.add_argument("--distance-edges", metavar="E0,E1,...",
+                   help="explicit distance edges in pc, comma-separated (instead of --distance-max/--distance-step)")
+    _add_law_options(p)
+    _add_catalogue_options(p)
+    p.add_argument("--overwrite", action="store_true", help="replace MODEL.fits if it exists")
+
+    p = sub("estimate", "Estimate A_V (and A in other bands) for a list of targets from a saved model.")
+    p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
+    p.add_argument("targets", metavar="TARGETS", help="table of targets with l/b or ra/dec and a distance")
+    p.add_argument("-o", "--output", required=True, metavar="OUT.csv", help="output table (.csv, .ecsv or .fits)")
+    p.add_argument("--band", action="append", default=[], metavar="BAND",
+                   help="also give A in BAND (repeatable; see 'dustkit bands')")
+    _add_catalogue_options(p)
+    p.add_argument("--overwrite", action="store_true", help="replace OUT if it exists")
+
+    p = sub("layer", "Fit the smooth exponential dust layer to a tracer catalogue and print it.")
+    p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue")
+    p.add_argument("--json", action="store_true",
+                   help="print JSON with keys a0, a0_err (mag/kpc), h, h_err, z_sun, z_sun_err (pc)")
+    _add_law_options(p)
+    _add_catalogue_options(p)
+
+    p = sub("profile", "Plot cumulative A_V against distance along a sight line.")
+    p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
+    p.add_argument("--l", type=float, required=True, metavar="DEG", help="Galactic longitude (deg)")
+    p.add_argument("--b", type=float, required=True, metavar="DEG", help="Galactic latitude (deg)")
+    p.add_argument("--radius", type=float, metavar="DEG", help="average over a cone of this radius (deg)")
+    p.add_argument("-o", "--output", required=True, metavar="FIG.png", help="figure file (.png, .pdf, .svg)")
+    p.add_argument("--overwrite", action="store_true", help="replace FIG if it exists")
+
+    p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
+    p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
+    p.add_argument("-o", "--output", required=True, metavar="TABLE", help="table file (.ecsv, .fits or .csv)")
+    p.add_argument("--maps", metavar="MAPS.fits", help="also write HEALPix maps of A_V at every distance edge")
+    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
+
+    sub("laws", "List the extinction laws.")
+    sub("bands", "List the photometric bands.")
+
+    p = sub("demo", "Run the whole job on the invented demo field and show where everything went.")
+    p.add_argument("--out", default="dustkit_demo_output", metavar="DIR", help="output folder (default ./dustkit_demo_output)")
+    return parser
+
+
+# ============================================================================ helpers
+
+class _Out:
+    """Printing that respects --quiet."""
+
+    def __init__(self, quiet, notes=True):
+        self.quiet = quiet
+        self.notes = notes
+
+    def note(self, text):
+        """A note about the data (rows left out, ...): on stderr, even with --quiet."""
+        if self.notes:
+            sys.stderr.write(f"note: {_one_line(text)}\n")
+
+    def __call__(self, *lines):
+        if not self.quiet:
+            for line in lines:
+                print(line)
+        sys.stdout.flush()
+
+
+def _columns(pairs):
+    from .tracers import COLUMN_KEYS
+
+    out = {}
+    for item in pairs:
+        key, sep, name = item.partition("=")
+        key, name = key.strip(), name.strip()
+        if not sep or not key or not name:
+            raise _UsageError(f"--column takes KEY=NAME (e.g. --column ebv=EBV). Got {item!r} instead")
+        if key not in COLUMN_KEYS:
+            raise _UsageError(f"--column key must be one of {', '.join(COLUMN_KEYS)}. Got {key!r} instead")
+        out[key] = name
+    return out or None
+
+
+def _check_law(args):
+    from ._validation import check_real
+    from .laws import get_law
+
+    get_law(args.law)
+    check_real("rv", args.rv, 0, 20, low_inclusive=False)
+
+
+def _grid_options(args):
+    import numpy as np
+    from astropy import units as u
+
+    from ._validation import check_nside, check_real
+
+    check_nside(args.nside)
+    kw = {"nside": args.nside}
+    if args.distance_edges is not None:
+        if args.distance_max is not None or args.distance_step is not None:
+            raise _UsageError("give either --distance-edges or --distance-max/--distance-step, not both")
+        try:
+            edges = np.array([float(x) for x in args.distance_edges.split(",") if x.strip()])
+        except ValueError:
+            raise _UsageError(
+                f"--distance-edges takes comma-separated distances in pc, e.g. 0,250,500,1000. "
+                f"Got {args.distance_edges!r} instead") from None
+        from .grid import Grid
+
+        Grid(args.nside, edges)  # validates: increasing, non-negative, at least two
+        kw["distance_edges"] = edges * u.pc
+    else:
+        dmax = 6000.0 if args.distance_max is None else check_real("distance_max", args.distance_max, 0, 1e6,
+                                                                       low_inclusive=False)
+        step = 200.0 if args.distance_step is None else check_real("distance_step", args.distance_step, 0, dmax,
+                                                                       low_inclusive=False)
+        kw["distance_max"] = dmax * u.pc
+        kw["distance_step"] = step * u.pc
+    return kw
+
+
+def _read_tracers(args, path):
+    from .tracers import read_tracers
+
+    return read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,
+                        law=args.law, rv=args.rv)
+
+
+def _layer_lines(layer):
+    return [
+        "Dust layer (exponential in height, fitted to all tracers):",
+        f"  a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc   (mid-plane A_V per kpc)",
+        f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        (scale height)",
+        f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        (height of the Sun above the mid-plane)",
+        f"  scatter of tracers around it: {layer.scatter:.3f} mag (from {layer.n_used} tracers)",
+    ]
+
+
+def _quiet_flag(args):
+    return True if args.quiet else None
+
+
+def _save_figure(fig, path, overwrite):
+    """Write a figure atomically (through dustkit.io's writer, so errors read the same)."""
+    from .io import _atomic_write
+
+    fmt = Path(path).suffix.lower().lstrip(".")
+    if fmt not in ("png", "pdf", "svg", "eps", "jpg", "jpeg"):
+        raise _UsageError(f"the figure file must end in .png, .pdf, .svg or .eps. Got {str(path)!r} instead")
+    return _atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=150), overwrite, what="figure")
+
+
+def _profile_figure(model, l_deg, b_deg, radius_deg=None):
+    """A sight-line figure: dustkit.plotting.plot_profile when available, else a plain plot."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from astropy import units as u
+
+    radius = None if radius_deg is None else radius_deg * u.deg
+    try:
+        from .plotting import plot_profile
+    except ImportError:
+        plot_profile = None
+    if plot_profile is not None:
+        ax = plot_profile(model, l_deg * u.deg, b_deg * u.deg, radius=radius)
+        return ax.figure
+    prof = model.profile(l_deg * u.deg, b_deg * u.deg, radius=radius)
+    fig, ax = plt.subplots(figsize=(6.4, 4.2), layout="constrained")
+    d = prof["distance"].to_value(u.pc)
+    a = prof["av"].to_value(u.mag)
+    e = prof["av_err"].to_value(u.mag)
+    ax.fill_between(d, a - e, a + e, alpha=0.3, label="1-sigma")
+    ax.plot(d, a, label="model")
+    ax.plot(d, prof["av_layer"].to_value(u.mag), ls="--", label="smooth layer")
+    ax.set_xlabel("Distance [pc]")
+    ax.set_ylabel("A_V [mag]")
+    ax.set_title(f"l = {l_deg:g} deg, b = {b_deg:g} deg" + (f", radius {radius_deg:g} deg" if radius_deg else ""))
+    ax.legend()
+    return fig
+
+
+def _sky_figure(model, distance_pc):
+    """A sky map at one distance if dustkit.plotting provides plot_sky, else None."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from astropy import units as u
+
+    try:
+        from .plotting import plot_sky
+    except ImportError:
+        return None
+    ax = plot_sky(model, distance_pc * u.pc)
+    return ax.figure
+
+
+# ============================================================================ commands
+
+def _cmd_build(args, out):
+    from .io import _check_target, save_model
+    from .model import CAUTION, ExtinctionModel
+
+    kw = _grid_options(args)
+    _check_law(args)
+    columns = _columns(args.column)
+    _check_target(args.output, args.overwrite)  # fail before a long build, not after
+    tracers = _read_tracers(args, args.catalog)
+    out(tracers.summary(), "")
+    if columns:
+        out(f"Column mapping given: {columns}")
+    out(f"Building the model (NSIDE {args.nside}) from {len(tracers)} tracers ...")
+    model = ExtinctionModel(**kw, quiet=_quiet_flag(args)).fit(tracers)
+    out(*_layer_lines(model.layer_))
+    g = model.grid_
+    out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
+        f"({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); {len(model.informed_pixels())} pixels informed "
+        f"by tracers; sky smoothing {model.sky_passes_} passes; uncertainty '{model.uncertainty_scheme_}'.")
+    path = save_model(model, args.output, overwrite=args.overwrite)
+    out(f"Wrote the model to {path}", f"Caution: {CAUTION}")
+    return 0
+
+
+def _cmd_estimate(args, out):
+    import numpy as np
+    from astropy import units as u
+    from astropy.table import Table
+
+    from .bands import get_band
+    from .io import _check_target, _format_for, load_model, write_table
+    from .model import CAUTION
+    from .tracers import read_targets
+
+    bands = list(dict.fromkeys(args.band))
+    for band in bands:
+        get_band(band)
+    columns = _columns(args.column)
+    _format_for(args.output, None)
+    _check_target(args.output, args.overwrite)
+    model = load_model(args.model)
+    from ._errors import RowsRejectedWarning
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
+        targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit)
+    ok = np.asarray(targets.valid)
+    table = Table(targets.table, copy=True)
+    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    for c in names:
+        if c in table.colnames:
+            table.rename_column(c, f"input_{c}")
+    n = len(table)
+    values = {c: np.full(n, np.nan) for c in names}
+    if ok.any():
+        q = model.query(np.asarray(targets.l)[ok] * u.deg, np.asarray(targets.b)[ok] * u.deg,
+                        np.asarray(targets.distance)[ok] * u.pc,
+                        distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands))
+        for c in names:
+            values[c][ok] = q[c].to_value(u.mag)
+    for c in names:
+        table[c] = values[c] * u.mag
+    table.meta["caution"] = CAUTION
+    table.meta["model"] = str(args.model)
+    path = write_table(table, args.output, overwrite=args.overwrite)
+    n_bad = int((~ok).sum())
+    out(f"Estimated extinction for {int(ok.sum())} of {n} targets with the model {args.model} "
+        f"(law {model.law!r}, R_V = {model.rv:g}).")
+    if n_bad:
+        rej = targets.rejected
+        reasons, counts = np.unique(np.asarray(rej["reason"]), return_counts=True)
+        why = "; ".join(f"{c} {r}" for r, c in zip(reasons, counts))
+        rows = ", ".join(f"row {int(r)} ({nm})" for r, nm in zip(rej["row"][:5], rej["name"][:5]))
+        msg = (f"{n_bad} of {n} targets have no usable position or distance and keep empty (NaN) "
+               f"extinction values: {why} [{rows}{', ...' if n_bad > 5 else ''}]")
+        out.note(msg)
+    out(f"Wrote {path} (every input column plus {', '.join(names)}; mag)", f"Caution: {CAUTION}")
+    return 0
+
+
+def _cmd_layer(args, out):
+    from .layer import fit_layer
+
+    _check_law(args)
+    tracers = _read_tracers(args, args.catalog)
+    layer = fit_layer(tracers)
+    if args.json:
+        d = layer.as_dict()
+        print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
+        return 0
+    out(tracers.summary(), "", *_layer_lines(layer))
+    return 0
+
+
+def _cmd_profile(args, out):
+    import numpy as np
+
+    from ._validation import check_real
+    from .io import _check_target, load_model
+
+    check_real("b", args.b, -90, 90)
+    check_real("l", args.l, -360, 720)
+    if args.radius is not None:
+        check_real("radius", args.radius, 0, 90, low_inclusive=False)
+    _check_target(args.output, args.overwrite)
+    model = load_model(args.model)
+    fig = _profile_figure(model, args.l, args.b, args.radius)
+    path = _save_figure(fig, args.output, args.overwrite)
+    from astropy import units as u
+
+    prof = model.profile(args.l * u.deg, args.b * u.deg, radius=None if args.radius is None else args.radius * u.deg)
+    e = model.grid_.distance_edges
+    want = np.unique(np.linspace(0, e[-1], 7)[1:])
+    out(f"A_V toward l = {args.l:g} deg, b = {args.b:g} deg" + (f" (cone radius {args.radius:g} deg)" if args.radius else "") + ":")
+    d = prof["distance"].to_value(u.pc)
+    for w in want:
+        k = int(np.argmin(np.abs(d - w)))
+        out(f"  {d[k]:7.0f} pc   A_V = {prof['av'][k].value:6.2f} +- {prof['av_err'][k].value:.2f} mag")
+    out(f"Wrote {path}")
+    return 0
+
+
+def _cmd_export(args, out):
+    from .io import _check_target, _format_for, export_table, load_model, write_slice_maps
+
+    _format_for(args.output, None)
+    _check_target(args.output, args.overwrite)
+    if args.maps:
+        _check_target(args.maps, args.overwrite)
+    model = load_model(args.model)
+    path = export_table(model, args.output, overwrite=args.overwrite)
+    g = model.grid_
+    out(f"Wrote {path} ({len(model.informed_pixels())} informed pixels x {g.n_bins} distance bins)")
+    if args.maps:
+        mpath = write_slice_maps(model, args.maps, overwrite=args.overwrite)
+        out(f"Wrote {mpath} ({g.n_edges} HEALPix maps of A_V, NSIDE {g.nside}, {g.ordering.upper()}, "
+            f"Galactic; then {g.n_edges} error maps; uninformed pixels are UNSEEN)")
+    return 0
+
+
+def _cmd_laws(args, out):
+    from .laws import list_laws
+
+    t = list_laws()
+    show = t[[c for c in ("name", "title", "rv_min", "rv_max", "wavelength_min", "wavelength_max", "notes") if c in t.colnames]]
+    print("\n".join(show.pformat(max_lines=-1, max_width=-1)))
+    if "citation" in t.colnames:
+        print("\nCitations:")
+        for row in t:
+            print(f"  {row['name']}: {row['citation']}")
+    return 0
+
+
+def _cmd_bands(args, out):
+    from .bands import band_table
+
+    t = band_table()
+    print("\n".join(t.pformat(max_lines=-1, max_width=-1)))
+    desc = t.meta.get("description")
+    if desc:
+        print(f"\n{desc}")
+    return 0
+
+
+def _demo_data_dir():
+    """The packaged demo files (dustkit/data), falling back to a source tree's data_demo/."""
+    here = Path(__file__).resolve().parent
+    for folder in (here / "data", here.parent / "data_demo"):
+        if all((folder / f).is_file() for f in _DEMO_FILES):
+            return folder
+    raise FileNotFoundError(
+        f"The demo data ({', '.join(_DEMO_FILES)}) are missing from {here / 'data'}. "
+        "Hint: reinstall dustkit, or run 'python data_demo/make_demo.py' in a source checkout."
+    )
+
+
+def _cmd_demo(args, out):
+    import time
+
+    import numpy as np
+    from astropy import units as u
+
+    from .io import export_table, save_model, write_slice_maps
+    from .layer import fit_layer
+    from .model import CAUTION, ExtinctionModel
+    from .tracers import read_tracers
+
+    t_start = time.perf_counter()
+    data = _demo_data_dir()
+    folder = Path(args.out).expanduser()
+    folder.mkdir(parents=True, exist_ok=True)
+    field = json.loads((data / "veyra_field.json").read_text())
+    written = []
+
+    out("dustkit demo: the Veyra Field, an invented survey field (l = 20..80 deg, |b| < 10 deg) with 400 "
+        "invented clusters. Nothing here is a real object.", "")
+    out(f"1. Reading the cluster catalogue {data / 'veyra_clusters.csv'}")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the summary below reports the rejected rows and assumptions
+        tracers = read_tracers(data / "veyra_clusters.csv")
+    out(tracers.summary())
+    if len(tracers.rejected):
+        out("   Rejected rows (kept out of the model, reported here):")
+        for line in tracers.rejected.pformat(max_lines=-1, max_width=-1):
+            out("     " + line)
+    out("")
+
+    out("2. Fitting the smooth dust layer")
+    layer = fit_layer(tracers)
+    out(*("   " + s for s in _layer_lines(layer)))
+    truth = field["layer"]
+    out(f"   (the invented truth: a0 = {truth['a0']} mag/kpc, h = {truth['h']} pc, z_sun = {truth['z_sun']} pc)", "")
+
+    out("3. Building the model (NSIDE 32, distance bins of 250 pc out to 5 kpc)")
+    model = ExtinctionModel(nside=32, distance_max=5000 * u.pc, distance_step=250 * u.pc,
+                            quiet=_quiet_flag(args)).fit(tracers)
+    out(f"   {len(model.informed_pixels())} sky pixels informed; sky smoothing {model.sky_passes_} passes; "
+        f"calibrated scatter floor {model.scatter_['floor']:.3f} mag + {100 * model.scatter_['frac']:.1f}% of A_V")
+    written.append(("model file", save_model(model, folder / "veyra_model.fits", overwrite=True)))
+    written.append(("binned table (ECSV, units kept)", export_table(model, folder / "veyra_table.ecsv", overwrite=True)))
+    written.append(("binned table (CSV, for spreadsheets)", export_table(model, folder / "veyra_table.csv", overwrite=True)))
+    written.append(("HEALPix slice maps", write_slice_maps(model, folder / "veyra_slices.fits", overwrite=True)))
+    out("")
+
+    out("4. Estimating extinction for the target list")
+    est = argparse.Namespace(model=str(folder / "veyra_model.fits"), targets=str(data / "veyra_targets.csv"),
+                             output=str(folder / "veyra_targets_av.csv"), band=["J", "Ks"], column=[],
+                             distance_unit=None, overwrite=True, quiet=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _cmd_estimate(est, _Out(True, notes=False))  # the listing below shows the row left empty
+    from astropy.table import Table
+
+    res = Table.read(folder / "veyra_targets_av.csv", format="ascii.csv")
+    written.append(("target estimates", folder / "veyra_targets_av.csv"))
+    dist = np.asarray(res["dist_kpc"].filled(np.nan) if hasattr(res["dist_kpc"], "filled") else res["dist_kpc"], float)
+    for row, dk in zip(res, dist):
+        if np.isfinite(row["av"]):
+            out(f"   {row['target']:<8s} {dk:5.2f} kpc  A_V = {row['av']:5.2f} +- {row['av_err']:.2f} mag   "
+                f"A_Ks = {row['a_Ks']:.2f} mag")
+        else:
+            out(f"   {row['target']:<8s}   (no distance: left empty)")
+    # the field is invented, so the truth is known: how well does the model recover it?
+    from .simulate import Cloud, DustField
+    from .tracers import read_targets
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tg = read_targets(data / "veyra_targets.csv")
+    dust = DustField(a0=truth["a0"], h=truth["h"], z_sun=truth["z_sun"],
+                     clouds=tuple(Cloud(**c) for c in field["clouds"].values()))
+    ok = np.asarray(tg.valid)
+    true_av = dust.av(np.asarray(tg.l)[ok], np.asarray(tg.b)[ok], np.asarray(tg.distance)[ok])
+    est_av = np.asarray(res["av"], float)[ok]
+    est_err = np.asarray(res["av_err"], float)[ok]
+    within = np.mean(np.abs(est_av - true_av) <= est_err)
+    out(f"   Against the invented truth: median |error| {np.median(np.abs(est_av - true_av)):.2f} mag; "
+        f"{100 * within:.0f}% of targets within their 1-sigma error (about 68% expected).", "")
+
+    out("5. Figures")
+    figs = []
+    for name, (lc, bc) in (("Long Shadow", (58.0, 1.0)), ("Veyra Veil", (32.0, 2.0))):
+        fig = _profile_figure(model, lc, bc)
+        fname = folder / f"profile_{name.lower().replace(' ', '_')}.png"
+        figs.append((f"sight line toward the {name} cloud (l = {lc:g}, b = {bc:g})", _save_figure(fig, fname, True)))
+    sky = _sky_figure(model, 2000.0)
+    if sky is not None:
+        figs.append(("sky map of A_V out to 2 kpc", _save_figure(sky, folder / "sky_2kpc.png", True)))
+    import matplotlib.pyplot as plt
+
+    plt.close("all")
+    written.extend(figs)
+    out(f"   {len(figs)} figures drawn", "")
+
+    out(f"Done in {time.perf_counter() - t_start:.0f} s. Files in {folder.resolve()}:")
+    for what, path in written:
+        out(f"  {what:<70s} {path}")
+    out("", "Next: dustkit estimate MODEL TARGETS -o OUT.csv with your own target list; "
+            "dustkit build CATALOG -o MODEL.fits with your own catalogue.", f"Caution: {CAUTION}")
+    return 0
+
+
+# ============================================================================ entry point
+
+def _show_warning_factory(quiet, debug):
+    from ._errors import DustkitWarning, RowsRejectedWarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        if not issubclass(category, DustkitWarning) and not debug:
+            return
+        if quiet and not issubclass(category, RowsRejectedWarning):
+            return
+        sys.stderr.write(f"warning: {_one_line(message)}\n")
+
+    return show
+
+
+def main(argv=None):
+    """Run the ``dustkit`` command; returns the exit status (0 ok, 1 failed, 2 bad usage)."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # --help, --version, usage errors (already printed)
+        return exc.code if isinstance(exc.code, int) else 2
+    if not getattr(args, "command", None):
+        parser.print_help(sys.stderr)
+        return 2
+    quiet = bool(getattr(args, "quiet", False))
+    debug = bool(getattr(args, "debug", False))
+    args.quiet, args.debug = quiet, debug
+    prog = f"{_PROG} {args.command}"
+
+    from ._errors import DustkitError, ParameterError
+
+    old_show = warnings.showwarning
+    warnings.showwarning = _show_warning_factory(quiet, debug)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("default")
+            warnings.showwarning = _show_warning_factory(quiet, debug)
+            return int(args.func(args, _Out(quiet)) or 0)
+    except (_UsageError, ParameterError) as exc:
+        if debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: error: {_with_help_hint(exc, prog)}\n")
+        return 2
+    except KeyboardInterrupt:
+        sys.stderr.write(f"{prog}: interrupted\n")
+        return 130
+    except (DustkitError, OSError) as exc:
+        if debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        return 1
+    except Exception as exc:  # a bug or an unexpected library failure: still one line
+        if debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: error: unexpected {type(exc).__name__}: {_one_line(exc).rstrip('.')} "
+                         "(run with --debug for the traceback and please report it)\n")
+        return 1
+    finally:
+        warnings.showwarning = old_show
+
+
+if __name__ == "__main__":
+    sys.exit(main())

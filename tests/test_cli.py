@@ -1,0 +1,326 @@
+"""The ``dustkit`` command, run as a subprocess on small invented catalogues.
+
+The command is a thin layer over the library, so its answers are checked against the
+Python API on the same inputs (bit for bit where the file format keeps every digit). Error
+behaviour follows common practice for command-line tools: one line on stderr, exit status 2
+for a bad command line or option value, 1 for a failed job, no traceback without --debug.
+"""
+
+import json
+import os
+import subprocess
+import sys
+import warnings
+
+import healpy as hp
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.coordinates import SkyCoord
+from astropy.table import QTable, Table
+
+from dustkit.cli import main
+from dustkit.io import load_model
+from dustkit.layer import fit_layer
+from dustkit.model import CAUTION, ExtinctionModel
+from dustkit.simulate import Cloud, DustField, simulate_tracers
+from dustkit.tracers import read_tracers
+
+# an invented field for these tests
+FIELD = DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=(Cloud(200.0, 2.0, 800.0, 3.0, 40.0, 1.0),))
+BUILD_OPTS = ["--nside", "16", "--distance-max", "4000", "--distance-step", "250", "--distance-unit", "kpc"]
+COMMANDS = ("build", "estimate", "layer", "profile", "export", "laws", "bands", "demo")
+
+
+def run(*args, cwd=None, check_rc=None):
+    """Run ``python -m dustkit.cli ARGS`` in a new process; return (returncode, stdout, stderr)."""
+    env = dict(os.environ, PYTHONWARNINGS="ignore::DeprecationWarning")
+    p = subprocess.run([sys.executable, "-m", "dustkit.cli", *map(str, args)], capture_output=True, text=True,
+                       cwd=cwd, env=env, timeout=120)
+    if check_rc is not None:
+        assert p.returncode == check_rc, (p.returncode, p.stdout, p.stderr)
+    return p.returncode, p.stdout, p.stderr
+
+
+@pytest.fixture
+def call(capsys, monkeypatch):
+    """Run ``dustkit.cli.main(ARGS)`` in this process (the same code without the start-up time).
+
+    Returns a function like :func:`run`. The process-level behaviour (entry point, exit status
+    of the interpreter) is covered by the tests that use :func:`run`.
+    """
+
+    def _call(*args, cwd=None, check_rc=None):
+        if cwd is not None:
+            monkeypatch.chdir(cwd)
+        capsys.readouterr()
+        rc = main([str(a) for a in args])
+        out, err = capsys.readouterr()
+        if check_rc is not None:
+            assert rc == check_rc, (rc, out, err)
+        return rc, out, err
+
+    return _call
+
+
+def one_line_error(stderr):
+    lines = [s for s in stderr.splitlines() if s.strip() and not s.startswith("warning:")]
+    assert len(lines) == 1, stderr
+    assert "Traceback" not in stderr
+    return lines[0]
+
+
+@pytest.fixture(scope="module")
+def files(tmp_path_factory):
+    """A small tracer catalogue (unit-less distances in kpc, one bad row) and a target list."""
+    d = tmp_path_factory.mktemp("cli")
+    sim = simulate_tracers(FIELD, 250, l_range=(180, 220), b_range=(-8, 8), distance_max=4000, rng=7,
+                           name_prefix="Testfield")
+    cat = Table()
+    cat["name"] = sim["name"]
+    cat["glon"] = np.asarray(sim["l"])
+    cat["glat"] = np.asarray(sim["b"])
+    cat["dist"] = np.asarray(sim["distance"]) / 1000.0  # kpc, no unit in the file
+    cat["e_dist"] = np.asarray(sim["distance_err"]) / 1000.0
+    cat["ebv"] = np.asarray(sim["ebv"])
+    cat["e_ebv"] = np.asarray(sim["ebv_err"])
+    cat["glat"][10] = 97.0  # a typo: |b| > 90
+    cat.write(d / "cat.csv", format="ascii.csv")
+
+    rng = np.random.default_rng(3)
+    n = 12
+    c = SkyCoord(l=rng.uniform(185, 215, n) * u.deg, b=rng.uniform(-5, 5, n) * u.deg, frame="galactic").icrs
+    tg = Table()
+    tg["target"] = [f"T{i:02d}" for i in range(n)]
+    tg["ra"] = c.ra.deg
+    tg["dec"] = c.dec.deg
+    tg["dist_kpc"] = np.round(rng.uniform(0.3, 3.5, n), 3)
+    tg["dist_kpc"][4] = np.nan  # no distance: kept, with empty extinction
+    tg["note"] = ["keep me"] * n
+    tg.write(d / "targets.csv", format="ascii.csv")
+    return d
+
+
+@pytest.fixture(scope="module")
+def built(files):
+    rc, out, err = run("build", files / "cat.csv", "-o", files / "model.fits", *BUILD_OPTS)
+    assert rc == 0, err
+    return files / "model.fits", out, err
+
+
+def _api_tracers(files):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return read_tracers(files / "cat.csv", distance_unit="kpc")
+
+
+def test_build_prints_the_job_and_writes_a_model(built, files):
+    path, out, err = built
+    assert "249 tracers" in out and "1 rejected" in out
+    assert "'glat' outside [-90, 90] deg" in out  # rejected rows by reason
+    assert "a0" in out and "mag/kpc" in out and "z_sun" in out
+    assert f"Wrote the model to {path}" in out
+    assert CAUTION in out
+    assert "warning: 1 of 250 rows rejected" in err
+    # the command is the library: the same model as the Python API builds, answer for answer
+    api = ExtinctionModel(nside=16, distance_max=4000 * u.pc, distance_step=250 * u.pc, quiet=True).fit(_api_tracers(files))
+    cli = load_model(path)
+    rng = np.random.default_rng(1)
+    l, b, d = rng.uniform(180, 220, 500) * u.deg, rng.uniform(-8, 8, 500) * u.deg, rng.uniform(0, 5000, 500) * u.pc
+    assert np.array_equal(api.av(l, b, d)[0], cli.av(l, b, d)[0])
+    assert np.array_equal(api.av(l, b, d)[1], cli.av(l, b, d)[1])
+
+
+def test_build_with_edges_law_and_column_mapping(files, tmp_path, call):
+    out_path = tmp_path / "m2.fits"
+    rc, out, err = call("--quiet", "build", files / "cat.csv", "-o", out_path, "--nside", "8",
+                       "--distance-edges", "0,500,1000,2000,4000", "--law", "odonnell94", "--rv", "3.1",
+                       "--column", "ebv=ebv", "--column", "distance=dist", "--distance-unit", "kpc")
+    assert rc == 0, err
+    assert out == ""  # --quiet
+    m = load_model(out_path)
+    assert np.array_equal(m.grid_.distance_edges, [0, 500, 1000, 2000, 4000])
+    assert m.law == "odonnell94" and m.grid_.nside == 8
+
+
+def test_build_refuses_to_overwrite(built, files, call):
+    path = built[0]
+    before = path.read_bytes()
+    rc, out, err = call("build", files / "cat.csv", "-o", path, *BUILD_OPTS)
+    assert rc == 1
+    assert "already exists" in one_line_error(err) and "--overwrite" in err
+    assert path.read_bytes() == before
+
+
+def test_estimate_keeps_input_columns_and_matches_the_api(built, files, tmp_path):
+    out_path = tmp_path / "est.csv"
+    rc, out, err = run("estimate", built[0], files / "targets.csv", "-o", out_path, "--band", "J", "--band", "Ks")
+    assert rc == 0, err
+    assert "11 of 12 targets" in out and CAUTION in out
+    assert "1 of 12 targets have no usable position or distance" in err and "T04" in err
+    res = Table.read(out_path, format="ascii.csv")
+    assert res.colnames == ["target", "ra", "dec", "dist_kpc", "note",
+                            "av", "av_err", "a_J", "a_J_err", "a_Ks", "a_Ks_err"]
+    src = Table.read(files / "targets.csv", format="ascii.csv")
+    assert list(res["target"]) == list(src["target"]) and list(res["note"]) == ["keep me"] * 12
+    assert np.array_equal(res["ra"], src["ra"])
+    bad = res["target"] == "T04"
+    assert np.all(np.isnan(np.asarray(res["av"], float)[bad]))
+    ok = ~bad
+    # the same answers from the Python API (ICRS -> Galactic with astropy; distances in kpc)
+    model = load_model(built[0])
+    c = SkyCoord(ra=np.asarray(src["ra"])[ok] * u.deg, dec=np.asarray(src["dec"])[ok] * u.deg).galactic
+    q = model.query(c.l, c.b, np.asarray(src["dist_kpc"])[ok] * u.kpc, bands=("J", "Ks"))
+    for col in ("av", "av_err", "a_J", "a_J_err", "a_Ks", "a_Ks_err"):
+        assert np.allclose(np.asarray(res[col], float)[ok], q[col].to_value(u.mag), rtol=1e-12, atol=0), col
+    # A_Ks / A_V for CCM89 at R_V 3.1 is about 0.11-0.12 (CCM89 Table 3 gives 0.114 at K)
+    ratio = np.asarray(res["a_Ks"], float)[ok] / np.asarray(res["av"], float)[ok]
+    assert np.allclose(ratio, ratio[0]) and 0.10 < ratio[0] < 0.125
+
+
+def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):
+    out_path = tmp_path / "est.ecsv"
+    call("--quiet", "estimate", built[0], files / "targets.csv", "-o", out_path, check_rc=0)
+    res = QTable.read(out_path)
+    assert res["av"].unit == u.mag and res["av_err"].unit == u.mag
+    assert "statistical" in res.meta["caution"]
+
+
+def test_layer_json_has_the_keys_and_the_api_values(files):
+    rc, out, err = run("layer", files / "cat.csv", "--json", "--distance-unit", "kpc")
+    assert rc == 0, err
+    got = json.loads(out)
+    assert list(got) == ["a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err"]
+    want = fit_layer(_api_tracers(files)).as_dict()
+    assert got == {k: float(v) for k, v in want.items()}
+    # a sanity check on the invented field: mid-plane extinction near the 0.9 mag/kpc put in
+    assert 0.6 < got["a0"] < 1.3
+
+
+def test_layer_text(files, call):
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc")
+    assert rc == 0, err
+    assert "a0" in out and "mag/kpc" in out and "h " in out and "z_sun" in out and "pc" in out
+
+
+def test_export_table_and_maps(built, tmp_path, call):
+    rc, out, err = call("export", built[0], "-o", tmp_path / "t.ecsv", "--maps", tmp_path / "maps.fits")
+    assert rc == 0, err
+    model = load_model(built[0])
+    t = QTable.read(tmp_path / "t.ecsv")
+    want = model.to_table()
+    for c in want.colnames:
+        assert np.array_equal(t[c], want[c]), c
+    m, h = hp.read_map(tmp_path / "maps.fits", field=5, h=True)
+    h = dict(h)
+    assert (h["NSIDE"], h["ORDERING"], h["COORDSYS"]) == (16, "RING", "G")
+    pix = model.informed_pixels()
+    assert np.array_equal(m[pix], model.av_[pix, 5])
+    rc, out, err = call("export", built[0], "-o", tmp_path / "t.csv")
+    assert rc == 0 and Table.read(tmp_path / "t.csv", format="ascii.csv").colnames == want.colnames
+    rc, out, err = call("export", built[0], "-o", tmp_path / "t.xlsx")
+    assert rc == 1 and "suffix" in one_line_error(err)
+
+
+def test_profile_writes_a_figure(built, tmp_path, call):
+    rc, out, err = call("profile", built[0], "--l", "200", "--b", "2", "--radius", "1.5", "-o", tmp_path / "p.png")
+    assert rc == 0, err
+    assert (tmp_path / "p.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification)
+    assert "A_V toward l = 200 deg" in out
+
+
+def test_laws_and_bands(call):
+    rc, out, err = call("laws", check_rc=0)
+    assert "ccm89" in out and "Cardelli" in out and "ApJ 345, 245" in out  # CCM89 reference
+    rc, out, err = call("bands", check_rc=0)
+    assert "Ks" in out and "micron" in out
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_help_on_every_command_has_an_example(command, call):
+    rc, out, err = call(command, "--help")
+    assert rc == 0 and "example" in out and f"dustkit {command}" in out
+
+
+def test_python_m_dustkit_and_version():
+    p = subprocess.run([sys.executable, "-m", "dustkit", "--version"], capture_output=True, text=True, timeout=60)
+    assert p.returncode == 0 and p.stdout.startswith("dustkit ")
+
+
+_BAD = {
+    # the three the issue names, each in a new process: bad NSIDE, missing column, unreadable file
+    "bad_nside": (["build", "{cat}", "-o", "m.fits", "--nside", "12"], 2,
+                  "The 'nside' parameter must be a power of two between 1 and 1024. Got 12 instead."),
+    "missing_column": (["build", "{cat}", "-o", "m.fits", "--column", "ebv=no_such_column"], 1, "no_such_column"),
+    "unreadable_file": (["build", "{garbage}", "-o", "m.fits"], 1, "Could not read catalogue file"),
+    # more, in this process
+    "bad_column_key": (["build", "{cat}", "-o", "m.fits", "--column", "colour=x"], 2, "--column key must be one of"),
+    "no_file": (["build", "{dir}/missing.csv", "-o", "m.fits"], 1, "does not exist"),
+    "no_output": (["build", "{cat}"], 2, "required: -o/--output"),
+    "edges_and_max": (["build", "{cat}", "-o", "m.fits", "--distance-edges", "0,100", "--distance-max", "500"], 2,
+                      "not both"),
+    "bad_edges": (["build", "{cat}", "-o", "m.fits", "--distance-edges", "0,1k"], 2, "--distance-edges takes"),
+    "bad_law": (["build", "{cat}", "-o", "m.fits", "--law", "nope"], 2, "The 'law' parameter must be one of"),
+    "csv_as_model": (["estimate", "{cat}", "{targets}", "-o", "x.csv"], 1, "not a readable dustkit model file"),
+    "bad_band": (["estimate", "{model}", "{targets}", "-o", "x.csv", "--band", "Q9"], 2, "The 'band' parameter"),
+    "bad_latitude": (["profile", "{model}", "--l", "10", "--b", "95", "-o", "p.png"], 2, "The 'b' parameter"),
+    "no_command": (["nosuchcommand"], 2, "invalid choice"),
+}
+_IN_NEW_PROCESS = ("bad_nside", "missing_column", "unreadable_file")
+
+
+@pytest.mark.parametrize("case", list(_BAD))
+def test_bad_input_gives_one_line_and_a_status(case, files, built, tmp_path, call):
+    args, status, expect = _BAD[case]
+    (tmp_path / "garbage.csv").write_bytes(b"\x00\xff\x13 not a table \x00" * 50)
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0],
+            "garbage": tmp_path / "garbage.csv", "dir": tmp_path}
+    runner = run if case in _IN_NEW_PROCESS else call
+    rc, out, err = runner(*[a.format(**fill) for a in args], cwd=tmp_path)
+    assert rc == status, (rc, err)
+    line = one_line_error(err)
+    assert line.startswith("dustkit") and ": error: " in line
+    assert expect in line
+    assert not (tmp_path / "m.fits").exists()
+
+
+def test_debug_shows_the_traceback(tmp_path, call):
+    rc, out, err = call("--debug", "build", tmp_path / "missing.csv", "-o", tmp_path / "m.fits")
+    assert rc == 1 and "Traceback" in err and "does not exist" in err
+
+
+def test_demo_runs_the_whole_job(tmp_path):
+    out_dir = tmp_path / "demo"
+    rc, out, err = run("demo", "--out", out_dir, cwd=tmp_path)
+    assert rc == 0, err
+    for name in ("veyra_model.fits", "veyra_table.ecsv", "veyra_table.csv", "veyra_slices.fits",
+                 "veyra_targets_av.csv", "profile_long_shadow.png", "profile_veyra_veil.png"):
+        assert (out_dir / name).stat().st_size > 0, name
+    assert "invented" in out
+    assert "4 rejected" in out and "'GLAT' outside [-90, 90] deg" in out and "non-numeric value" in out
+    assert str(out_dir / "veyra_model.fits") in out
+    assert CAUTION in out
+    est = Table.read(out_dir / "veyra_targets_av.csv", format="ascii.csv")
+    assert len(est) == 20 and int(np.isnan(np.asarray(est["av"], float)).sum()) == 1
+    m = load_model(out_dir / "veyra_model.fits")
+    assert m.grid_.nside == 32 and len(m.tracers_) == 396
+
+
+def test_every_help_example_is_a_valid_command_line():
+    import shlex
+
+    from dustkit.bands import get_band
+    from dustkit.cli import _EPILOGS, build_parser
+    from dustkit.laws import get_law
+
+    parser = build_parser()
+    examples = [line.strip() for text in _EPILOGS.values() for line in text.splitlines()
+                if line.strip().startswith("dustkit ")]
+    assert len(examples) >= len(COMMANDS)
+    for line in examples:
+        words = shlex.split(line.split(">")[0])[1:]
+        args = parser.parse_args(words)
+        if getattr(args, "law", None):
+            get_law(args.law)
+        for band in getattr(args, "band", []) or []:
+            get_band(band)
