@@ -1,0 +1,296 @@
+"""Tests of the explorer panel without a browser: set controls in Python, check the model and figures.
+
+The figures the explorer draws must equal those of the plotting functions with the same
+parameters (the explorer holds no science of its own). Models are built from a small
+simulated catalogue of an invented region (dustkit.simulate).
+"""
+
+import importlib.util
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.table import Table
+from matplotlib.backend_bases import MouseEvent
+from matplotlib.figure import Figure
+
+pytest.importorskip("ipywidgets", reason="the explorer needs ipywidgets")
+
+from dustkit import plotting  # noqa: E402
+from dustkit.bands import a_band_over_av  # noqa: E402
+from dustkit.simulate import Cloud, DustField, simulate_tracers  # noqa: E402
+from dustkit.tracers import read_tracers  # noqa: E402
+from dustkit.ui import Explorer  # noqa: E402
+
+FIELD = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(300.0, -1.0, 600.0, 2.5, 30.0, 1.0),))
+# quick models: few folds and smoothing candidates, so a rebuild takes about a second
+FAST = dict(nside=8, distance_max=3000 * u.pc, distance_step=250 * u.pc, n_folds=3, sky_passes=(0, 1), n_draws=16)
+HAS_IO = importlib.util.find_spec("dustkit.io") is not None
+
+
+@pytest.fixture(scope="module")
+def catalogue():
+    # an invented region around l = 300 deg
+    return simulate_tracers(FIELD, 400, l_range=(285, 315), b_range=(-6, 6), distance_max=3000, rng=11)
+
+
+@pytest.fixture(scope="module")
+def tracers(catalogue):
+    return read_tracers(catalogue)
+
+
+@pytest.fixture(scope="module")
+def explorer(tracers):
+    pytest.importorskip("ipympl", reason="interactive figures need ipympl")
+    return Explorer(tracers, figures="interactive", **FAST)
+
+
+def _line(ax, gid):
+    lines = [ln for ln in ax.lines if ln.get_gid() == gid]
+    assert len(lines) == 1, gid
+    return lines[0]
+
+
+def _assert_same_drawing(ax, ref):
+    """Same lines (data and style), same filled areas and meshes, same labels."""
+    assert [ln.get_gid() for ln in ax.lines] == [ln.get_gid() for ln in ref.lines]
+    for a, b in zip(ax.lines, ref.lines):
+        np.testing.assert_allclose(np.asarray(a.get_xdata(), float), np.asarray(b.get_xdata(), float))
+        np.testing.assert_allclose(np.asarray(a.get_ydata(), float), np.asarray(b.get_ydata(), float))
+        assert a.get_linestyle() == b.get_linestyle() and a.get_color() == b.get_color()
+    assert len(ax.collections) == len(ref.collections)
+    for a, b in zip(ax.collections, ref.collections):
+        if a.get_array() is not None:
+            np.testing.assert_allclose(np.asarray(a.get_array()), np.asarray(b.get_array()))
+            assert a.get_clim() == b.get_clim()
+        for pa, pb in zip(a.get_paths(), b.get_paths()):
+            np.testing.assert_allclose(pa.vertices, pb.vertices)
+    assert (ax.get_xlabel(), ax.get_ylabel(), ax.get_title()) == (ref.get_xlabel(), ref.get_ylabel(), ref.get_title())
+    assert ax.get_xlim() == ref.get_xlim()
+
+
+def _reference_profile(explorer):
+    ref = Figure(layout="constrained").add_subplot()
+    return plotting.plot_profile(explorer.model, ax=ref, **explorer.profile_parameters())
+
+
+def _reference_sky(explorer):
+    ref = Figure(layout="constrained").add_subplot()
+    return plotting.plot_sky(explorer.model, ax=ref, **explorer.sky_parameters())
+
+
+def _ok(explorer):
+    assert "dustkit-error" not in explorer.status._dom_classes, explorer.status.value
+
+
+# ----------------------------------------------------------------------------- build and figures
+
+def test_initial_panel(explorer, tracers):
+    _ok(explorer)
+    assert explorer.model.law == "ccm89" and explorer.rv == pytest.approx(3.1)
+    assert explorer.model.grid_.nside == 8
+    assert explorer.tracers is explorer.model.tracers_
+    # R_V limits come from the law registry: CCM89 is defined for R_V 2-6 (Cardelli et al. 1989)
+    assert (explorer.rv_widget.min, explorer.rv_widget.max) == (2.0, 6.0)
+    assert not explorer.rv_widget.disabled
+    assert explorer.distance_widget.max == 3000.0 and explorer.distance_widget.step == 250.0
+    classes = {c for w in (explorer.law_widget, explorer.rv_widget, explorer.status, explorer._profile_view,
+                           explorer._sky_view, explorer.export_button) for c in w._dom_classes}
+    assert {"dustkit-law", "dustkit-rv", "dustkit-status", "dustkit-profile", "dustkit-sky", "dustkit-export"} <= classes
+    assert "Model built" in explorer.status.value and "400 tracers" in explorer.status.value
+    # interactive figures: the canvases are widgets in the panel
+    assert explorer._sky_view is explorer.sky_fig.canvas
+    # the sky view zooms on the tracers (around l = 300), longitude increasing to the left
+    x0, x1 = explorer.sky_ax.get_xlim()
+    assert x0 > x1 and x1 <= 285 and x0 >= 315
+
+
+def test_figures_equal_plotting_functions(explorer):
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    _assert_same_drawing(explorer.sky_ax, _reference_sky(explorer))
+
+
+def test_rv_rederives_av_and_redraws(explorer, tracers):
+    before = _line(explorer.profile_ax, "dustkit-profile").get_ydata().copy()
+    explorer.rv_widget.value = 4.0
+    _ok(explorer)
+    assert explorer.rv == pytest.approx(4.0) and explorer.model.rv == pytest.approx(4.0)
+    # A_V = R_V E(B-V) for E(B-V) input (definition of R_V; common practice)
+    np.testing.assert_allclose(explorer.tracers.av, 4.0 * tracers.excess)
+    np.testing.assert_allclose(explorer.tracers.av / tracers.av, 4.0 / 3.1)
+    after = _line(explorer.profile_ax, "dustkit-profile").get_ydata()
+    assert after.max() > 1.15 * before.max()  # more A_V for the same reddening
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    explorer.rv_widget.value = 3.1
+    _ok(explorer)
+    assert "from the cache" in explorer.status.value
+
+
+def test_law_chooser_sets_rv_limits(explorer):
+    explorer.law_widget.value = "gordon23"
+    _ok(explorer)
+    assert explorer.model.law == "gordon23"
+    assert (explorer.rv_widget.min, explorer.rv_widget.max) == (2.3, 5.6)  # Gordon et al. 2023 range
+    explorer.law_widget.value = "rieke85"
+    _ok(explorer)
+    # Rieke & Lebofsky 1985 have a fixed R_V = 3.09
+    assert explorer.rv_widget.disabled and explorer.rv == pytest.approx(3.09)
+    assert explorer.model.law == "rieke85"
+    explorer.law_widget.value = "ccm89"
+    _ok(explorer)
+    assert not explorer.rv_widget.disabled and explorer.rv == pytest.approx(3.1)  # the last free R_V comes back
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+
+
+def test_sight_line_controls(explorer):
+    explorer.l_widget.value = 302.0
+    explorer.b_widget.value = -1.5
+    explorer.radius_widget.value = 2.0
+    _ok(explorer)
+    prof = explorer.model.profile(302 * u.deg, -1.5 * u.deg, radius=2 * u.deg)
+    np.testing.assert_allclose(_line(explorer.profile_ax, "dustkit-profile").get_ydata(), prof["av"].to_value(u.mag))
+    assert "302.00" in explorer.profile_ax.get_title() and "cone radius 2" in explorer.profile_ax.get_title()
+    cross = _line(explorer.sky_ax, "dustkit-mark")
+    assert (cross.get_xdata()[0], cross.get_ydata()[0]) == (302.0, -1.5)
+    explorer.radius_widget.value = 0.0
+    assert "single sight line" in explorer.profile_ax.get_title()
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    _assert_same_drawing(explorer.sky_ax, _reference_sky(explorer))
+
+
+def test_click_on_sky_map_picks_sight_line(explorer):
+    ax = explorer.sky_ax
+    x, y = ax.transData.transform((296.0, 2.0))
+    event = MouseEvent("button_press_event", explorer.sky_fig.canvas, x, y, button=1)
+    explorer.sky_fig.canvas.callbacks.process("button_press_event", event)
+    _ok(explorer)
+    assert explorer.l == pytest.approx(296.0, abs=1e-3) and explorer.b == pytest.approx(2.0, abs=1e-3)
+    assert "296.00" in explorer.profile_ax.get_title()
+    # a right click does nothing
+    x, y = explorer.sky_ax.transData.transform((310.0, 0.0))
+    explorer.sky_fig.canvas.callbacks.process(
+        "button_press_event", MouseEvent("button_press_event", explorer.sky_fig.canvas, x, y, button=3))
+    assert explorer.l == pytest.approx(296.0, abs=1e-3)
+
+
+def test_distance_slider_and_map_kind(explorer):
+    explorer.distance_widget.value = 1000.0
+    _ok(explorer)
+    assert "1 kpc" in explorer.sky_ax.get_title()
+    mesh = [c for c in explorer.sky_ax.collections if c.get_gid() == "dustkit-sky"][0]
+    before = np.asarray(mesh.get_array()).copy()
+    explorer.distance_widget.value = 2500.0
+    mesh = [c for c in explorer.sky_ax.collections if c.get_gid() == "dustkit-sky"][0]
+    assert np.mean(np.asarray(mesh.get_array())) > np.mean(before)  # cumulative A_V grows with distance
+    explorer.kind_widget.value = "differential"
+    assert "mag/kpc" in explorer.sky_ax.collections[0].colorbar.ax.get_ylabel()
+    _assert_same_drawing(explorer.sky_ax, _reference_sky(explorer))
+    explorer.kind_widget.value = "cumulative"
+
+
+def test_band_chooser(explorer):
+    explorer.quantity_widget.value = "Ks"
+    _ok(explorer)
+    assert "Ks" in explorer.profile_ax.get_ylabel() and "[mag]" in explorer.profile_ax.get_ylabel()
+    prof = explorer.model.profile(explorer.l * u.deg, explorer.b * u.deg)
+    y = _line(explorer.profile_ax, "dustkit-profile").get_ydata()
+    np.testing.assert_allclose(y, prof["av"].to_value(u.mag) * float(a_band_over_av("Ks", explorer.law, explorer.rv)))
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    explorer.quantity_widget.value = "ebv"
+    assert "E(B-V)" in explorer.profile_ax.get_ylabel()
+    explorer.quantity_widget.value = "av"
+
+
+# ----------------------------------------------------------------------------- errors and export
+
+def test_errors_are_shown_and_the_panel_keeps_working(explorer):
+    model = explorer.model
+    explorer.step_widget.value = 5000.0  # larger than the maximum distance
+    explorer.rebuild_button.click()
+    assert "dustkit-error" in explorer.status._dom_classes
+    assert "distance step" in explorer.status.value and "5000" in explorer.status.value
+    assert explorer.model is model  # the old model is kept
+    explorer.step_widget.value = 250.0
+    explorer.radius_widget.value = 1.0
+    _ok(explorer)
+    assert "cone radius 1" in explorer.profile_ax.get_title()
+
+
+@pytest.mark.skipif(not HAS_IO, reason="dustkit.io (export_table) is not available yet")
+def test_export_writes_a_table(explorer, tmp_path):
+    explorer.format_widget.value = "csv"
+    assert explorer.filename_widget.value.endswith(".csv")
+    target = tmp_path / "region_table.csv"
+    explorer.filename_widget.value = str(target)
+    explorer.export_button.click()
+    _ok(explorer)
+    assert target.exists() and str(target) in explorer.status.value
+    table = Table.read(target, format="ascii.csv")
+    assert len(table) == len(explorer.model.to_table())
+    assert {"l", "b", "distance_min", "distance_max", "av", "av_err"} <= set(table.colnames)
+    # exporting again without "replace" fails in the panel and keeps the file
+    content = target.read_bytes()
+    explorer.export_button.click()
+    assert "dustkit-error" in explorer.status._dom_classes
+    assert target.read_bytes() == content
+    explorer.filename_widget.value = str(tmp_path / "no_such_folder" / "t.csv")
+    explorer.export_button.click()
+    assert "dustkit-error" in explorer.status._dom_classes and "no_such_folder" in explorer.status.value
+    explorer.distance_widget.value = 1750.0 if explorer.distance != 1750.0 else 2000.0  # still working
+    _ok(explorer)
+    assert "Sky map" in explorer.status.value
+
+
+# ----------------------------------------------------------------------------- other ways in
+
+def test_static_figures_and_given_model(explorer, tracers):
+    other = Explorer(tracers, model=explorer.model, figures="static")
+    assert other.model is explorer.model  # no rebuild
+    # static figures are PNG images (PNG signature, ISO/IEC 15948) of the current figures
+    assert other._profile_view.value[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "dustkit-sky" in other._sky_view._dom_classes
+    before = other._profile_view.value
+    x, y = other.sky_ax.transData.transform((300.0, -1.0))
+    other.sky_fig.canvas.callbacks.process(
+        "button_press_event", MouseEvent("button_press_event", other.sky_fig.canvas, x, y, button=1))
+    assert other.l == pytest.approx(300.0, abs=1e-3) and other.b == pytest.approx(-1.0, abs=1e-3)
+    assert other._profile_view.value != before  # the image was redrawn
+    _assert_same_drawing(other.profile_ax, _reference_profile(other))
+
+
+def test_from_file(catalogue, tmp_path):
+    path = tmp_path / "invented_clusters.ecsv"
+    catalogue.write(path)
+    ex = Explorer.from_file(path, figures="static", model_params=FAST)
+    _ok(ex)
+    assert len(ex.tracers) == len(catalogue)
+    assert ex.model.grid_.nside == 8
+
+
+def test_bad_parameters_fail_before_building(tracers):
+    from dustkit._errors import ParameterError
+
+    with pytest.raises(ParameterError, match="'figures'"):
+        Explorer(tracers, figures="3d")
+    with pytest.raises(TypeError):
+        Explorer(tracers, no_such_option=1)
+
+
+def test_feature_marks_follow_the_step_search(explorer):
+    pytest.importorskip("dustkit.features", reason="dustkit.features is not available yet")
+    explorer.select(300.0, -1.0, radius=2.5)  # toward the invented cloud at 600 pc
+    explorer.features_widget.value = True
+    _ok(explorer)
+    found = explorer.profile_parameters()["features"]
+    assert found is not None and "distance" in found.colnames
+    marks = [ln for ln in explorer.profile_ax.lines if ln.get_gid() == "dustkit-feature"]
+    assert len(marks) == len(found)
+    np.testing.assert_allclose(sorted(ln.get_xdata()[0] for ln in marks),
+                               np.sort(found["distance"].to_value(u.kpc)))
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    explorer.features_widget.value = False
+    assert not [ln for ln in explorer.profile_ax.lines if ln.get_gid() == "dustkit-feature"]
