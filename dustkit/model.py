@@ -575,12 +575,17 @@ class ExtinctionModel:
             lv = np.atleast_1d(to_value("l", l, u.deg)).astype(float)
             bv = np.atleast_1d(to_value("b", b, u.deg)).astype(float)
             dv = np.atleast_1d(to_value("distance", distance, u.pc)).astype(float)
-        lv, bv, dv = np.broadcast_arrays(lv, bv, dv)
+        shape = np.broadcast_shapes(
+            np.shape(getattr(l, "value", l)) if not isinstance(l, SkyCoord) else l.shape,
+            np.shape(getattr(b, "value", b)) if b is not None else (),
+            np.shape(getattr(distance, "value", distance)),
+        )
+        lv, bv, dv = (np.ravel(x) for x in np.broadcast_arrays(lv, bv, dv))
         if np.any(np.abs(bv) > 90) or not np.all(np.isfinite(bv)):
             raise param_error("b", "a latitude in [-90, 90] deg", bv[~(np.abs(bv) <= 90)][:3].tolist())
         if np.any(dv < 0) or not np.all(np.isfinite(dv)):
             raise param_error("distance", "finite and non-negative", dv[~(dv >= 0)][:3].tolist())
-        return np.mod(lv, 360.0), bv, dv
+        return np.mod(lv, 360.0), bv, dv, shape
 
     def _av_arrays(self, l, b, d, distance_err=None):
         grid = self.grid_
@@ -622,16 +627,16 @@ class ExtinctionModel:
         av, av_err : Quantity['mag']
         """
         self._check_fitted()
-        lv, bv, dv = self._positions(l, b, distance)
-        de = None if distance_err is None else np.broadcast_to(to_value("distance_err", distance_err, u.pc), dv.shape)
+        lv, bv, dv, shape = self._positions(l, b, distance)
+        de = None if distance_err is None else np.broadcast_to(to_value("distance_err", distance_err, u.pc), shape).ravel()
         a, e = self._av_arrays(lv, bv, dv, de)
-        return a * u.mag, e * u.mag
+        return a.reshape(shape) * u.mag, e.reshape(shape) * u.mag
 
     def layer_av(self, l, b=None, distance=None):
         """A_V (mag) of the fitted smooth layer alone at the given positions."""
         self._check_fitted()
-        lv, bv, dv = self._positions(l, b, distance)
-        return self.layer_._av(bv, dv) * u.mag
+        lv, bv, dv, shape = self._positions(l, b, distance)
+        return self.layer_._av(bv, dv).reshape(shape) * u.mag
 
     def query(self, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None):
         """A table of answers: position, A_V, its error, the layer's A_V, and A in each band.
@@ -640,8 +645,8 @@ class ExtinctionModel:
         (:func:`dustkit.bands.av_to_band`).
         """
         self._check_fitted()
-        lv, bv, dv = self._positions(l, b, distance)
-        de = None if distance_err is None else np.broadcast_to(to_value("distance_err", distance_err, u.pc), dv.shape)
+        lv, bv, dv, shape = self._positions(l, b, distance)
+        de = None if distance_err is None else np.broadcast_to(to_value("distance_err", distance_err, u.pc), shape).ravel()
         a, e = self._av_arrays(lv, bv, dv, de)
         t = QTable()
         t["l"] = lv * u.deg

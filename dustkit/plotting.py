@@ -282,7 +282,8 @@ def plot_profile(
         ax.set_ylabel(quantity_label(quantity, band))
         where = f"$l$ = {lv:.2f}°, $b$ = {bv:+.2f}°"
         where += f", cone radius {rad:g}°" if rad else ", single sight line"
-        ax.set_title(where)
+        where += f" ({law}, $R_V$ = {rv:g})"
+        ax.set_title(where, fontsize="medium")
         ax.legend(loc="lower right")
     return ax
 
