@@ -68,6 +68,14 @@ a0 is in mag/kpc, h and z_sun in pc.""",
     "profile": """examples:
   dustkit profile model.fits --l 58 --b 1 -o sightline.png
   dustkit profile model.fits --l 32.5 --b -2 --radius 1.5 -o cone.pdf""",
+    "features": """examples:
+  dustkit features model.fits -o features.csv
+  dustkit features model.fits -o features.ecsv --min-delta-av 0.3 --detections pixels.ecsv
+
+One row per dust feature (a step in A_V against distance found in neighbouring sky pixels
+at a consistent distance): feature, l, b (deg), extent (deg), distance, distance_err (pc),
+delta_av, delta_av_err, delta_av_max (mag), n_tracers, n_pixels, significance (BIC
+improvement over no step). Steps are statistical: check them against local data.""",
     "export": """examples:
   dustkit export model.fits -o table.ecsv
   dustkit export model.fits -o table.csv
@@ -173,6 +181,18 @@ def build_parser():
     p.add_argument("--radius", type=float, metavar="DEG", help="average over a cone of this radius (deg)")
     p.add_argument("-o", "--output", required=True, metavar="FIG.png", help="figure file (.png, .pdf, .svg)")
     p.add_argument("--overwrite", action="store_true", help="replace FIG if it exists")
+
+    p = sub("features", "Find dust features: steps in A_V against distance, merged across the sky.")
+    p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
+    p.add_argument("-o", "--output", required=True, metavar="OUT.csv", help="feature table (.csv, .ecsv or .fits)")
+    p.add_argument("--min-delta-av", type=float, default=0.2, metavar="MAG",
+                   help="smallest step kept per pixel, mag (default 0.2)")
+    p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
+                   help="least BIC improvement of a step over no step (default 10)")
+    p.add_argument("--radius", type=float, metavar="DEG", help="cone radius around each pixel centre (default: the pixel size)")
+    p.add_argument("--detections", metavar="PIXELS.ecsv", help="also write the per-pixel steps")
+    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap resampling (default 0)")
+    p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
@@ -479,6 +499,38 @@ def _cmd_export(args, out):
         mpath = write_slice_maps(model, args.maps, overwrite=args.overwrite)
         out(f"Wrote {mpath} ({g.n_edges} HEALPix maps of A_V, NSIDE {g.nside}, {g.ordering.upper()}, "
             f"Galactic; then {g.n_edges} error maps; uninformed pixels are UNSEEN)")
+    return 0
+
+
+def _cmd_features(args, out):
+    from astropy import units as u
+
+    from ._validation import check_real
+    from .features import detect_features
+    from .io import _check_target, _format_for, load_model, write_table
+
+    check_real("min_delta_av", args.min_delta_av, 0, 100)
+    if args.radius is not None:
+        check_real("radius", args.radius, 0, 90, low_inclusive=False)
+    for path in (args.output, args.detections):
+        if path:
+            _format_for(path, None)
+            _check_target(path, args.overwrite)
+    model = load_model(args.model)
+    feats, det = detect_features(
+        model, radius=None if args.radius is None else args.radius * u.deg, min_delta_av=args.min_delta_av * u.mag,
+        min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
+        return_detections=True)
+    path = write_table(feats, args.output, overwrite=args.overwrite)
+    out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels searched:")
+    for r in feats:
+        out(f"  #{r['feature']}: l = {r['l'].value:7.2f} deg, b = {r['b'].value:+6.2f} deg, extent {r['extent'].value:.1f} deg, "
+            f"distance {r['distance'].value:6.0f} +- {r['distance_err'].value:.0f} pc, "
+            f"delta A_V {r['delta_av'].value:.2f} +- {r['delta_av_err'].value:.2f} mag ({r['n_pixels']} pixels)")
+    out(f"Wrote {path}")
+    if args.detections:
+        out(f"Wrote {write_table(det, args.detections, overwrite=args.overwrite)}")
+    out(feats.meta["caution"])
     return 0
 
 

@@ -391,6 +391,7 @@ def plot_sky(
     vmax=None,
     mark=None,
     resolution=None,
+    features=None,
 ):
     """Map of extinction on the sky at one distance.
 
@@ -418,6 +419,10 @@ def plot_sky(
     resolution : float, optional
         Grid step of the map in deg (default: a quarter of a model pixel, at most 600
         columns).
+    features : Table, optional
+        Dust features (:func:`dustkit.features.detect_features`) to draw as a layer: a
+        circle of each feature's ``extent`` around its ``l``, ``b``, labelled with its
+        ``distance`` (gid ``'dustkit-features'``).
 
     Returns
     -------
@@ -496,6 +501,8 @@ def plot_sky(
             _sky_tracers(ax, model.tracers_, d_pc, mollweide, (l_min, l_max, b_min, b_max))
         if mark is not None:
             _mark_sight_line(ax, mark, mollweide, l_min)
+        if features is not None and len(features):
+            _sky_features(ax, features, mollweide, l_min)
         fig = ax.figure
         fig.colorbar(mesh, ax=ax, label=clabel, shrink=0.9 if mollweide else 1.0,
                      orientation="horizontal" if mollweide else "vertical",
@@ -569,6 +576,38 @@ def _mark_sight_line(ax, mark, mollweide, l_min):
         else:
             xs, ys = x0 + dl, bb
         ax.plot(xs, ys, color=COLORS["vermillion"], lw=1.5, gid="dustkit-mark-cone")[0].set_in_layout(False)
+
+
+def _sky_features(ax, features, mollweide, l_min):
+    """Feature layer: a circle of each feature's extent, its distance written beside it."""
+    names = features.colnames
+    for col in ("l", "b", "distance"):
+        if col not in names:
+            raise param_error("features", "a table with 'l', 'b' and 'distance' columns", names)
+    fl = _column(features, "l", u.deg)
+    fb = _column(features, "b", u.deg)
+    fd = _column(features, "distance", u.pc)
+    fr = _column(features, "extent", u.deg) if "extent" in names else np.full(fl.size, 0.5)
+    t = np.linspace(0, 2 * np.pi, 91)
+    label = "dust feature"
+    for lm, bm, rad, d in zip(fl, fb, np.maximum(fr, 0.05), fd):
+        sb, cb = np.sin(np.radians(bm)), np.cos(np.radians(bm))
+        sr, cr = np.sin(np.radians(rad)), np.cos(np.radians(rad))
+        bb = np.degrees(np.arcsin(np.clip(sb * cr + cb * sr * np.cos(t), -1, 1)))
+        dl = np.degrees(np.arctan2(np.sin(t) * sr * cb, cr - sb * np.sin(np.radians(bb))))
+        if mollweide:
+            xs, ys = np.radians(-((lm + dl + 180.0) % 360.0 - 180.0)), np.radians(bb)
+            xt, yt = np.radians(-((lm + 180.0) % 360.0 - 180.0)), np.radians(min(bm + rad, 89.0))
+        else:
+            x0 = float(_unwrap_into(lm, l_min))
+            xs, ys, xt, yt = x0 + dl, bb, x0, bm + rad
+        line, = ax.plot(xs, ys, color=COLORS["vermillion"], lw=1.4, label=label, gid="dustkit-features")
+        line.set_in_layout(False)
+        text = f"{d / 1000:.2f} kpc" if d >= 1000 else f"{d:.0f} pc"
+        txt = ax.annotate(text, (xt, yt), xytext=(0, 2), textcoords="offset points", ha="center",
+                          va="bottom", fontsize=7, color=COLORS["vermillion"])
+        txt.set_in_layout(False)
+        label = None
 
 
 def sky_position(ax, x, y):

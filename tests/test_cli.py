@@ -324,3 +324,18 @@ def test_every_help_example_is_a_valid_command_line():
             get_law(args.law)
         for band in getattr(args, "band", []) or []:
             get_band(band)
+
+
+def test_features_command_writes_the_table_the_api_gives(built, tmp_path, call):
+    from dustkit.features import detect_features
+
+    out_csv = tmp_path / "features.csv"
+    rc, out, err = call("features", built[0], "-o", out_csv, "--seed", "0")
+    assert rc == 0, err
+    got = Table.read(out_csv, format="ascii.csv")
+    want = detect_features(load_model(built[0]), random_state=0, quiet=True)
+    assert len(got) == len(want)
+    assert {"l", "b", "extent", "distance", "distance_err", "delta_av", "delta_av_err", "n_tracers"} <= set(got.colnames)
+    # refuses to overwrite unless asked
+    rc, out, err = call("features", built[0], "-o", out_csv)
+    assert rc == 1 and "overwrite" in one_line_error(err)
