@@ -611,7 +611,7 @@ def _cmd_demo(args, out):
     model = ExtinctionModel(nside=32, distance_max=5000 * u.pc, distance_step=250 * u.pc,
                             quiet=_quiet_flag(args)).fit(tracers)
     out(f"   {len(model.informed_pixels())} sky pixels informed; sky smoothing {model.sky_passes_} passes; "
-        f"calibrated scatter floor {model.scatter_['floor']:.3f} mag + {100 * model.scatter_['frac']:.1f}% of A_V")
+        f"calibrated unresolved scatter {model.scatter_['root']:.3f} mag x sqrt(A_V / mag) + {100 * model.scatter_['frac']:.1f}% of A_V")
     written.append(("model file", save_model(model, folder / "veyra_model.fits", overwrite=True)))
     written.append(("binned table (ECSV, units kept)", export_table(model, folder / "veyra_table.ecsv", overwrite=True)))
     written.append(("binned table (CSV, for spreadsheets)", export_table(model, folder / "veyra_table.csv", overwrite=True)))

@@ -270,7 +270,7 @@ def _model_hdus(model):
     h["LAYHE"] = (lay["h_err"], "[pc] error of LAYH")
     h["LAYZSUN"] = (lay["z_sun"], "[pc] height of the Sun above the mid-plane")
     h["LAYZSUNE"] = (lay["z_sun_err"], "[pc] error of LAYZSUN")
-    h["SCFLOOR"] = (sc["floor"], "[mag] unresolved scatter floor")
+    h["SCROOT"] = (sc["root"], "[mag] unresolved scatter at A_V = 1 mag, sqrt term")
     h["SCFRAC"] = (sc["frac"], "unresolved scatter fraction of A_V")
     h["SCKAPPA"] = (sc["kappa"], "scale of the posterior variance")
     h["SCSCALE"] = (sc["scale"], "overall scale of the predictive variance")

@@ -311,7 +311,7 @@ class ExtinctionModel:
     uncertainty_scheme_ : str
     sky_passes_, walk_variance_ : chosen smoothing (passes, mag^2/kpc)
     scatter_ : dict
-        Calibrated unresolved scatter: ``sigma^2 = scale^2 (floor^2 + (frac * A_V)^2)``.
+        Calibrated predictive variance: ``scale^2 (kappa * post_var + root^2 * A_V + (frac * A_V)^2)``.
     cv_ : astropy.table.Table
         Cross-validation score of every candidate setting.
     """
@@ -549,7 +549,8 @@ class ExtinctionModel:
 
     def _predictive_var(self, post_var, av):
         s = self.scatter_
-        return s["scale"] ** 2 * (s["kappa"] * post_var + s["floor"] ** 2 + (s["frac"] * np.asarray(av)) ** 2)
+        av = np.asarray(av)
+        return s["scale"] ** 2 * (s["kappa"] * post_var + s["root"] ** 2 * av + (s["frac"] * av) ** 2)
 
     # -- answers
     def _check_fitted(self):
@@ -806,7 +807,9 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
     (quadrature nodes ``j`` with weights ``node_weight``) of Student-t densities (8 degrees
     of freedom: clouds give heavier tails than a normal) centred on the model's prediction
     at that distance, with squared scale ``kappa * node_var + av_err^2 + sigma_u^2``, where
-    ``sigma_u^2 = floor^2 + (frac * A)^2`` is the unresolved scatter. Integrating over the
+    ``sigma_u^2 = root^2 * A + (frac * A)^2`` is the unresolved scatter (A in mag): a term
+    growing like the square root of the column, as for many small clouds, and one
+    proportional to it, as for a few large ones; both vanish where A_V does (near the Sun). Integrating over the
     distance (rather than linearising it with a slope) keeps the tracers' distance errors
     from being mistaken for, or hiding, the model's own error. The model's own variance
     enters with a fitted factor ``kappa``: the node variances come from the spread of
@@ -823,8 +826,8 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
     log_c = float(special.gammaln((nu + 1) / 2) - special.gammaln(nu / 2) - 0.5 * np.log(nu * np.pi))
 
     def nll(theta):
-        kappa, floor2, frac2 = np.exp(theta)
-        scale2 = kappa * node_var + ae2 + floor2 + frac2 * pred2
+        kappa, root2, frac2 = np.exp(theta)
+        scale2 = kappa * node_var + ae2 + root2 * node_pred + frac2 * pred2 + 1e-8
         dens = np.exp(log_c - 0.5 * (nu + 1) * np.log1p(resid2 / (nu * scale2))) / np.sqrt(scale2)
         return -np.sum(np.log(np.maximum(node_weight @ dens, 1e-300)))
 
@@ -833,10 +836,10 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
         res = optimize.minimize(nll, np.array(start), method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6, "maxiter": 2000})
         if best is None or res.fun < best.fun:
             best = res
-    kappa, floor2, frac2 = np.exp(best.x)
+    kappa, root2, frac2 = np.exp(best.x)
     # the reported 1-sigma error is the half-width of the central 68.27% interval
     scale = float(special.stdtrit(nu, 0.5 + 0.6827 / 2))
-    return {"kappa": float(kappa), "floor": float(np.sqrt(floor2)), "frac": float(np.sqrt(frac2)), "scale": scale}
+    return {"kappa": float(kappa), "root": float(np.sqrt(root2)), "frac": float(np.sqrt(frac2)), "scale": scale}
 
 
 # ----------------------------------------------------------------------------- lossless state
