@@ -128,6 +128,31 @@ def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_wei
     return out
 
 
+def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None, out=None):
+    """Add one chunk of tracers to the per-fold statistics ``out`` (the per-tracer step of a build).
+
+    With ``rng`` (Monte Carlo scheme) each tracer's ``draws`` draws are spread bilinearly over
+    the 4 nearest pixels, the transpose of the interpolation that answers queries; without
+    it (bin-scatter scheme, for very large catalogues) each tracer goes to its own pixel,
+    which is 4 times cheaper, and the sky kernel chosen by cross-validation does the
+    spreading. Shared by :meth:`ExtinctionModel.fit` and :mod:`dustkit.scale`.
+    """
+    weight = 1.0 / (ae**2 + max(layer.scatter, _WEIGHT_FLOOR_MAG) ** 2)
+    dd, rr = _draw_residuals(layer, b, d, de, av, ae, draws, rng)
+    if rng is None:
+        return _accumulate(grid, out.shape[1], grid.pixel(l, b), fold, dd, rr, weight[None, :], 1.0 / draws, None, out=out)
+    sky_pix, sky_w = grid.interp_weights(l, b)
+    return _accumulate(grid, out.shape[1], sky_pix, fold, dd, rr, weight[None, :], 1.0 / draws, sky_w, out=out)
+
+
+def _counts(grid, l, b, d):
+    """Tracers per (pixel, distance bin) from nominal positions, flat (npix * n_bins)."""
+    pix = grid.pixel(l, b)
+    k, f = grid.edge_position(d)
+    inside = f <= 1.0
+    return np.bincount(pix[inside] * grid.n_bins + k[inside], minlength=grid.npix * grid.n_bins)
+
+
 def _neighbour_matrix(grid):
     """Sparse (npix, npix) matrix of one sky-smoothing pass: 1 on the diagonal, beta for neighbours."""
     npix = grid.npix
@@ -383,23 +408,16 @@ class ExtinctionModel:
 
         layer = fit_layer(tracers, random_state=self.random_state)
         fold = rng.integers(0, folds, n)
-        pix = grid.pixel(l, b)
-        sky_pix, sky_w = grid.interp_weights(l, b)
-        # inverse-variance weights including the intrinsic scatter around the layer, so that a
-        # few very precise tracers do not dominate a node
-        weight = 1.0 / (ae**2 + max(layer.scatter, _WEIGHT_FLOOR_MAG) ** 2)
         stats = np.zeros((5, folds, grid.npix, grid.n_edges))
         chunk = max(1, 2_000_000 // draws)
+        draw_rng = rng if scheme == "monte-carlo" else None
         bar = progress(range(0, n, chunk), total=-(-n // chunk), desc="accumulating tracers", quiet=self.quiet)
         for s in bar:
             sl = slice(s, s + chunk)
-            dd, rr = _draw_residuals(layer, b[sl], d[sl], de[sl], av[sl], ae[sl], draws, rng if scheme == "monte-carlo" else None)
-            _accumulate(grid, folds, sky_pix[:, sl], fold[sl], dd, rr, weight[sl][None, :], 1.0 / draws, sky_w[:, sl], out=stats)
+            _chunk_statistics(grid, layer, l[sl], b[sl], d[sl], de[sl], av[sl], ae[sl], fold[sl], draws, draw_rng, out=stats)
         self._finish(grid, layer, stats, passes, (l, b, d, de, av, ae, fold), scheme, draws, rng)
         self.tracers_ = tracers
-        k, f = grid.edge_position(d)
-        inside = f <= 1.0
-        self.counts_ = np.bincount(pix[inside] * grid.n_bins + k[inside], minlength=grid.npix * grid.n_bins).reshape(grid.npix, grid.n_bins)
+        self.counts_ = _counts(grid, l, b, d).reshape(grid.npix, grid.n_bins)
         return self
 
     def _finish(self, grid, layer, stats, passes, heldout, scheme, draws, rng):
@@ -441,14 +459,24 @@ class ExtinctionModel:
         obs_cache = {}
         sky_cache = {}
 
+        def sky(p):
+            # one sky smoothing at a time: each holds (1 + folds) copies of the statistics
+            if p not in sky_cache:
+                sky_cache.clear()
+                sky_cache[p] = (_smooth(total, kernels[p]), _smooth(stats, kernels[p]))
+            return sky_cache[p]
+
         def observations(p, sd):
             if (p, sd) not in obs_cache:
-                if p not in sky_cache:
-                    sky_cache[p] = (_smooth(total, kernels[p]), _smooth(stats, kernels[p]))
-                sky_total, sky_folds = sky_cache[p]
+                obs_cache.clear()  # scores are cached, so a setting is never smoothed twice
+                sky_total, sky_folds = sky(p)
                 sm_total = _smooth_distance(sky_total, dkern[sd])
-                sm_folds = _smooth_distance(sky_folds, dkern[sd])
-                obs_cache[(p, sd)] = [_node_observations(sm_total - sm_folds[:, f]) for f in range(folds)]
+                obs = []
+                for f in range(folds):  # one fold's smoothed sums at a time
+                    sm_f = _smooth_distance(sky_folds[:, f], dkern[sd])
+                    obs.append(_node_observations(sm_total - sm_f))
+                    del sm_f
+                obs_cache[(p, sd)] = obs
             return obs_cache[(p, sd)]
 
         scores = {}
@@ -492,15 +520,16 @@ class ExtinctionModel:
         # distance uncertainty (Gauss-Hermite nodes in log distance)
         gh_x, gh_w = np.polynomial.hermite_e.hermegauss(7)
         gh_w = gh_w / gh_w.sum()
-        sm_total = _smooth_distance(sky_cache[p_best][0], dkern[sd_best])
-        sm_folds = _smooth_distance(sky_cache[p_best][1], dkern[sd_best])
+        obs_cache.clear()
+        sky_total, sky_folds = sky(p_best)
+        sm_total = _smooth_distance(sky_total, dkern[sd_best])
         if take.size > 5000:  # a few thousand held-out tracers pin down three numbers
             take = np.sort(rng.choice(take, 5000, replace=False))
         frac_err = np.where(d[take] > 0, de[take] / d[take], 0.0)
         node_pred = np.empty((gh_x.size, take.size))
         node_var = np.empty((gh_x.size, take.size))
         for f in range(folds):
-            m, ov, _ = _node_observations(sm_total - sm_folds[:, f])
+            m, ov, _ = _node_observations(sm_total - _smooth_distance(sky_folds[:, f], dkern[sd_best]))
             r, pv = _kalman_smooth(m, ov, edges, q_best)
             rf, pf = full(r, 0.0), full(pv, q_best * edges / 1000.0)
             isel = np.nonzero(fold[take] == f)[0]
@@ -513,8 +542,8 @@ class ExtinctionModel:
         self.scatter_ = _calibrate_scatter(av[take], ae[take], node_pred, node_var, gh_w)
 
         # final model from all tracers
-        sm = _smooth_distance(sky_cache[p_best][0], dkern[sd_best])
-        del sky_cache, obs_cache
+        sm = sm_total
+        del sky_cache, obs_cache, sky_total, sky_folds, stats
         m, ov, neff = _node_observations(sm)
         r, pv = _kalman_smooth(m, ov, edges, q_best)
         r, pv, neff = full(r, 0.0), full(pv, q_best * edges / 1000.0), full(neff, 0.0)

@@ -1,0 +1,859 @@
+"""Out-of-core and distributed builds for catalogues larger than memory (dask).
+
+:func:`build_from_parquet` builds the same :class:`~dustkit.model.ExtinctionModel` as
+``ExtinctionModel(uncertainty="bin-scatter").fit(tracers)`` from a Parquet file, a folder
+of Parquet files, or a large FITS table, reading it in row chunks so that peak memory does
+not grow with the catalogue.
+
+How the build runs
+------------------
+Pass 1 (sample)
+    Every chunk is read and validated with the same rules as
+    :func:`dustkit.tracers.read_tracers` (rows are rejected, counted by reason and reported
+    once with a :class:`~dustkit._errors.RowsRejectedWarning`). A deterministic uniform
+    random sample is kept: the rows with the smallest values of a 64-bit hash of their row
+    number (a "bottom-k" sample, which merges exactly across chunks and workers). The
+    smooth dust layer is fitted to the sample (``layer_sample`` rows), and its first
+    ``heldout_sample`` rows are the held-out tracers of the cross-validation that chooses
+    the smoothing and calibrates the uncertainties.
+Pass 2 (sufficient statistics)
+    Every chunk adds its tracers to the per-fold sums of weights and weighted residuals
+    from the layer per (pixel, distance edge) (see :func:`dustkit.model._accumulate`).
+    Each tracer's fold is a hash of its position among the accepted rows, so it does not
+    depend on the chunking or on which worker reads it. Chunks are processed by dask: one
+    task per chunk, in as many parallel chains as there are threads (each chain adds its
+    chunks into one array), then the chains' arrays are summed pairwise. With a
+    ``dask.distributed`` client the tasks run on the cluster; otherwise on dask's local
+    threaded scheduler.
+Finish
+    Exactly as in memory (:meth:`ExtinctionModel._finish`): cross-validation over sky and
+    distance smoothing and random-walk strength, calibration of the unresolved scatter,
+    and isotonic regression.
+
+How the large path differs from the per-tracer Monte Carlo scheme
+-----------------------------------------------------------------
+The in-memory build of a small catalogue (up to 300 000 tracers by default) draws Monte
+Carlo realisations of each tracer's distance and A_V, so a tracer spreads over the distance
+bins its uncertainty allows. The large path uses the ``'bin-scatter'`` scheme: each tracer
+enters once at its nominal distance, and the uncertainty of a node comes from the weighted
+scatter of the tracers around it (distance errors show up as that scatter). The
+unresolved-scatter calibration still integrates over each held-out tracer's distance
+uncertainty. Two further differences, both for catalogues larger than the samples: the
+layer is fitted to a ``layer_sample``-row sample, and the candidate random-walk strengths
+and the calibration use the ``heldout_sample`` held-out rows instead of all tracers.
+For the same tracers, the same layer, the same held-out rows and folds assigned by
+:func:`fold_of_rows`, the per-fold statistics, the tracer counts and the final model equal
+the in-memory ``'bin-scatter'`` build to floating-point summation tolerance (the final
+cumulative A_V depends on the sums over all folds only, so it agrees whatever the folds
+whenever the cross-validation picks the same smoothing).
+
+Memory
+------
+Peak memory is set by the grid and the chunk size, not by the catalogue: each parallel
+chain holds one statistics array of ``5 x n_folds x npix x n_edges`` float64 (NSIDE 64,
+51 edges, 5 folds: 0.5 GB) and one chunk of rows (about 0.3 GB per million rows while it
+is being added). The number of local chains is capped so that their arrays stay under
+2 GiB. The finishing step needs what the in-memory build of the same grid needs.
+"""
+
+import functools
+import os
+import time
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from astropy import units as u
+
+from ._errors import AssumptionWarning, CatalogError, RowsRejectedWarning
+from ._progress import progress
+from ._validation import check_int, param_error
+from .layer import DustLayer, fit_layer
+from .model import _WEIGHT_FLOOR_MAG, ExtinctionModel, _accumulate, _draw_residuals
+
+__all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
+
+try:  # the per-chunk step shared with ExtinctionModel.fit
+    from .model import _chunk_statistics, _counts
+except ImportError:  # model.py without the shared helpers: the same steps, spelled out here
+
+    def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None, out=None):
+        weight = 1.0 / (ae**2 + max(layer.scatter, _WEIGHT_FLOOR_MAG) ** 2)
+        sky_pix, sky_w = grid.interp_weights(l, b)
+        dd, rr = _draw_residuals(layer, b, d, de, av, ae, draws, rng)
+        return _accumulate(grid, out.shape[1], sky_pix, fold, dd, rr, weight[None, :], 1.0 / draws, sky_w, out=out)
+
+    def _counts(grid, l, b, d):
+        pix = grid.pixel(l, b)
+        k, f = grid.edge_position(d)
+        inside = f <= 1.0
+        return np.bincount(pix[inside] * grid.n_bins + k[inside], minlength=grid.npix * grid.n_bins)
+
+#: Column names read by default (our names -> names in the file); override with ``columns=``.
+DEFAULT_COLUMNS = {
+    "l": "l",
+    "b": "b",
+    "distance": "distance",
+    "distance_err": "distance_err",
+    "av": "av",
+    "av_err": "av_err",
+}
+_ROLES = tuple(DEFAULT_COLUMNS)
+_UNITS = {"l": u.deg, "b": u.deg, "distance": u.pc, "distance_err": u.pc, "av": u.mag, "av_err": u.mag}
+_PARQUET_SUFFIXES = (".parquet", ".parq", ".pq")
+_FITS_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz")
+_LOCAL_STATS_BUDGET = 2 * 2**30  # bytes of statistics arrays held by local parallel chains
+_EXAMPLES_PER_REASON = 5
+
+# the same validation rules as dustkit.tracers.read_tracers (A_V catalogues in deg, pc, mag)
+_EBV_LIMITS = (-0.3, 20.0)         # mag of E(B-V) (tracers.DEFAULT_REJECT_LIMITS)
+_DISTANCE_LIMITS = (0.0, 2.0e5)    # pc (tracers.DEFAULT_REJECT_LIMITS)
+_DEFAULT_DISTANCE_FRAC_ERR = 0.10  # read_tracers default_distance_frac_err
+_DEFAULT_EXCESS_ERR = 0.05         # read_tracers default_excess_err (mag of E(B-V))
+
+
+# ----------------------------------------------------------------------------- row hashing
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def _mix64(z):
+    """SplitMix64 finaliser (a bijection of uint64; Steele, Lea & Flood 2014, OOPSLA)."""
+    z = z ^ (z >> np.uint64(30))
+    z = z * np.uint64(0xBF58476D1CE4E5B9)
+    z = z ^ (z >> np.uint64(27))
+    z = z * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
+def _row_hash(index, seed, stream):
+    """64-bit hash of row numbers, seeded; ``stream`` separates independent uses."""
+    idx = np.asarray(index, dtype=np.int64).astype(np.uint64)
+    base = _mix64(np.array([np.uint64(int(seed) & 0xFFFFFFFF) * np.uint64(4) + np.uint64(stream)]))[0]
+    with np.errstate(over="ignore"):
+        return _mix64(base + (idx + np.uint64(1)) * _GOLDEN)
+
+
+def fold_of_rows(index, n_folds, random_state=0):
+    """Cross-validation fold of tracers from their row numbers (deterministic hash).
+
+    Parameters
+    ----------
+    index : array_like of int
+        Position of each tracer among the accepted rows of the catalogue (0, 1, 2, ...).
+    n_folds : int
+        Number of folds.
+    random_state : int
+        Seed (``ExtinctionModel.random_state``).
+
+    Returns
+    -------
+    ndarray of int
+        Fold of each row, uniform in ``0 .. n_folds - 1``. The same row gets the same fold
+        whichever chunk, file or worker it is read by, which is what lets a chunked build
+        equal the in-memory one.
+    """
+    n_folds = check_int("n_folds", n_folds, 1, 10_000)
+    h = _row_hash(index, _seed(random_state), 0)
+    return ((h >> np.uint64(32)) % np.uint64(n_folds)).astype(np.int64)
+
+
+def _seed(random_state):
+    if random_state is None:
+        return 0
+    return check_int("random_state", random_state, 0, 2**63 - 1)
+
+
+# ----------------------------------------------------------------------------- reading chunks
+
+@dataclass(frozen=True)
+class _Chunk:
+    """Rows ``start:stop`` of one file; ``row0`` is the catalogue row number of ``start``."""
+
+    kind: str  # "parquet" or "fits"
+    path: str
+    start: int
+    stop: int
+    row0: int
+    hdu: int = 1
+    row_groups: tuple = ()
+    group_start: int = 0  # first row of row_groups[0] within the file
+
+
+def _find_files(source):
+    """Sorted list of (kind, path) for a file or a folder of Parquet files."""
+    p = Path(os.fspath(source)).expanduser()
+    if not p.exists():
+        raise CatalogError(f"No such file or folder: {str(p)!r}. Hint: check the path.")
+    if p.is_dir():
+        files = sorted(q for q in p.rglob("*") if q.is_file() and q.suffix.lower() in _PARQUET_SUFFIXES)
+        if not files:
+            raise CatalogError(
+                f"The folder {str(p)!r} holds no Parquet files (*.parquet, *.parq, *.pq). "
+                "Hint: point to the folder that holds the catalogue's parts, or to one file."
+            )
+        return [("parquet", str(q)) for q in files]
+    name = p.name.lower()
+    if name.endswith(_PARQUET_SUFFIXES):
+        return [("parquet", str(p))]
+    if name.endswith(_FITS_SUFFIXES):
+        return [("fits", str(p))]
+    raise CatalogError(
+        f"Cannot tell the format of {str(p)!r} from its name. "
+        "Hint: out-of-core builds read Parquet (.parquet, or a folder of them) and FITS tables (.fits)."
+    )
+
+
+def _resolve(names, columns, where):
+    """Map our column roles to the file's column names (case-insensitive)."""
+    lower = {}
+    for n in names:
+        lower.setdefault(n.lower(), n)
+    out = {}
+    for role in _ROLES:
+        want = columns[role]
+        got = want if want in names else lower.get(str(want).lower())
+        if got is None:
+            raise CatalogError(
+                f"Column {want!r} (for {role}) is missing from {where}; it has {', '.join(map(repr, names))}. "
+                f"Hint: pass columns={{'{role}': '<name in the file>'}}."
+            )
+        out[role] = got
+    return out
+
+
+def _plan(files, chunk_size, columns, hdu):
+    """Chunks of every file, the column names in each file, and the unit factors."""
+    import pyarrow.parquet as pq
+
+    chunks = []
+    row0 = 0
+    colmaps = {}
+    scales = {}
+    for kind, path in files:
+        if kind == "parquet":
+            try:
+                pf = pq.ParquetFile(path)
+            except Exception as exc:  # pyarrow raises several types for a bad file
+                raise CatalogError(f"Cannot read the Parquet file {path!r}: {exc}. Hint: check the file.") from None
+            names = list(pf.schema_arrow.names)
+            colmaps[path] = _resolve(names, columns, f"the Parquet file {path!r}")
+            scales[path] = {r: 1.0 for r in _ROLES}
+            md = pf.metadata
+            sizes = np.array([md.row_group(i).num_rows for i in range(md.num_row_groups)], dtype=np.int64)
+            starts = np.concatenate([[0], np.cumsum(sizes)])
+            n = int(starts[-1])
+            for s in range(0, n, chunk_size):
+                e = min(s + chunk_size, n)
+                first = int(np.searchsorted(starts, s, side="right") - 1)
+                last = int(np.searchsorted(starts, e, side="left") - 1)
+                chunks.append(_Chunk("parquet", path, s, e, row0 + s, row_groups=tuple(range(first, last + 1)),
+                                     group_start=int(starts[first])))
+        else:
+            from astropy.io import fits
+
+            with fits.open(path, memmap=True) as hl:
+                index = hdu
+                if index is None:
+                    index = next((i for i, h in enumerate(hl) if isinstance(h, fits.BinTableHDU)), None)
+                    if index is None:
+                        raise CatalogError(f"The FITS file {path!r} has no binary table. Hint: pass hdu=<index>.")
+                h = hl[index]
+                if not isinstance(h, (fits.BinTableHDU, fits.TableHDU)):
+                    raise CatalogError(f"HDU {index} of {path!r} is not a table. Hint: pass hdu=<index of the table>.")
+                names = list(h.columns.names)
+                cmap = _resolve(names, columns, f"the FITS table {path!r}[{index}]")
+                sc = {}
+                for role, name in cmap.items():
+                    unit = h.columns[name].unit
+                    sc[role] = 1.0
+                    if unit:
+                        try:
+                            sc[role] = float(u.Unit(unit, parse_strict="silent").to(_UNITS[role]))
+                        except (ValueError, TypeError, u.UnitsError):
+                            try:
+                                sc[role] = float(u.Unit(str(unit).strip().lower()).to(_UNITS[role]))
+                            except (ValueError, TypeError, u.UnitsError):
+                                raise CatalogError(
+                                    f"Column {name!r} in {path!r} has unit {unit!r}, which is not convertible to "
+                                    f"{_UNITS[role]}. Hint: fix the unit or map another column with columns=."
+                                ) from None
+                n = int(h.header.get("NAXIS2", 0))
+            colmaps[path] = cmap
+            scales[path] = sc
+            for s in range(0, n, chunk_size):
+                chunks.append(_Chunk("fits", path, s, min(s + chunk_size, n), row0 + s, hdu=int(index)))
+        row0 += n
+    return chunks, colmaps, scales, row0
+
+
+def _read_chunk(chunk, colmap, scale):
+    """The six columns of a chunk as float64 arrays in deg, pc, mag (NaN for nulls)."""
+    n = chunk.stop - chunk.start
+    if chunk.kind == "parquet":
+        import pyarrow.parquet as pq
+
+        pf = pq.ParquetFile(chunk.path)
+        names = [colmap[r] for r in _ROLES]
+        parts = {r: [] for r in _ROLES}
+        pos = chunk.group_start
+        for batch in pf.iter_batches(batch_size=min(max(n, 1024), 262_144), row_groups=list(chunk.row_groups),
+                                     columns=names, use_threads=False):
+            lo = max(chunk.start - pos, 0)
+            hi = min(chunk.stop - pos, batch.num_rows)
+            pos += batch.num_rows
+            if hi <= lo:
+                if pos >= chunk.stop:
+                    break
+                continue
+            sub = batch.slice(lo, hi - lo)
+            for r, name in zip(_ROLES, names):
+                col = sub.column(name)
+                vals = np.asarray(col.to_numpy(zero_copy_only=False), dtype=float)
+                if col.null_count:
+                    vals = np.where(np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool), np.nan, vals)
+                parts[r].append(vals)
+            if pos >= chunk.stop:
+                break
+        out = {r: (np.concatenate(parts[r]) if parts[r] else np.zeros(0)) for r in _ROLES}
+    else:
+        from astropy.io import fits
+
+        with fits.open(chunk.path, memmap=True) as hl:
+            # slice the rows first: only this chunk is read (and scaled, for TSCAL columns)
+            data = hl[chunk.hdu].data[chunk.start:chunk.stop]
+            out = {}
+            for r in _ROLES:
+                col = data.field(colmap[r])
+                vals = np.array(col, dtype=float)
+                mask = getattr(col, "mask", None)
+                if mask is not None and np.any(mask):
+                    vals[np.asarray(mask, bool)] = np.nan
+                out[r] = vals
+            del data
+    for r in _ROLES:
+        if scale[r] != 1.0:
+            out[r] = out[r] * scale[r]
+        if out[r].size != n:
+            raise CatalogError(f"Read {out[r].size} rows instead of {n} from {chunk.path!r}; the file changed during the build?")
+    return out
+
+
+# ----------------------------------------------------------------------------- validation
+
+def _reasons(colmap):
+    """Rejection reasons, in the order they are checked (the first one found is reported)."""
+    c = colmap
+    lo_av, hi_av = _EBV_LIMITS
+    return (
+        ("l", f"missing or non-finite value in {c['l']!r}"),
+        ("b", f"missing or non-finite value in {c['b']!r}"),
+        ("b", f"{c['b']!r} outside [-90, 90] deg"),
+        ("l", f"{c['l']!r} outside [-180, 360] deg"),
+        ("av", f"missing or non-finite value in {c['av']!r}"),
+        ("av_err", f"infinite value in {c['av_err']!r}"),
+        ("av_err", f"negative error in {c['av_err']!r}"),
+        ("av", f"A_V in {c['av']!r} outside [{lo_av:g}, {hi_av:g}] mag times R_V"),
+        ("distance", f"missing or non-finite value in {c['distance']!r}"),
+        ("distance", f"distance <= 0 in {c['distance']!r}"),
+        ("distance_err", f"infinite value in {c['distance_err']!r}"),
+        ("distance_err", f"negative error in {c['distance_err']!r}"),
+        ("distance", f"distance in {c['distance']!r} outside ({_DISTANCE_LIMITS[0]:g}, {_DISTANCE_LIMITS[1]:g}] pc"),
+    )
+
+
+def _validate(a, rv):
+    """Reason code per row (-1 = accepted) and the cleaned arrays of accepted rows.
+
+    The rules are those of :func:`dustkit.tracers.read_tracers` for an A_V catalogue in deg,
+    pc and mag: rows with a missing position, distance or A_V, ``|b| > 90``, ``l`` outside
+    [-180, 360], distance outside (0, 2e5] pc, A_V outside R_V x [-0.3, 20] mag or a
+    negative error are rejected; a missing or zero error takes the catalogue default (10% of
+    the distance; 0.05 mag of E(B-V) times R_V for A_V); ``l`` is wrapped into [0, 360).
+    """
+    l, b, d, de, av, ae = (a[r] for r in _ROLES)
+    with np.errstate(invalid="ignore"):
+        tests = (
+            ~np.isfinite(l),
+            ~np.isfinite(b),
+            np.abs(b) > 90,
+            (l < -180) | (l > 360),
+            ~np.isfinite(av),
+            np.isinf(ae),
+            ae < 0,
+            (av / rv < _EBV_LIMITS[0]) | (av / rv > _EBV_LIMITS[1]),
+            ~np.isfinite(d),
+            d <= 0,
+            np.isinf(de),
+            de < 0,
+            ~((d > _DISTANCE_LIMITS[0]) & (d <= _DISTANCE_LIMITS[1])),
+        )
+    code = np.full(l.size, -1, dtype=np.int16)
+    for k, bad in enumerate(tests):
+        code[(code < 0) & bad] = k
+    keep = code < 0
+    lk = np.mod(l[keep], 360.0)
+    lk = np.where(lk >= 360.0, 0.0, lk)
+    dk = d[keep]
+    dek = de[keep]
+    dek = np.where(np.isfinite(dek) & (dek > 0), dek, _DEFAULT_DISTANCE_FRAC_ERR * dk)
+    aek = ae[keep]
+    aek = np.where(np.isfinite(aek) & (aek > 0), aek, rv * _DEFAULT_EXCESS_ERR)
+    return code, (lk, b[keep], dk, dek, av[keep], aek)
+
+
+def _rejection_record(code, a, chunk, colmap, n_reasons):
+    """Counts by reason and a few examples (file, row, column, value) of rejected rows."""
+    counts = np.bincount(code[code >= 0], minlength=n_reasons).astype(np.int64)
+    examples = []
+    reasons = _reasons(colmap)
+    for k in np.nonzero(counts)[0]:
+        role = reasons[k][0]
+        for i in np.nonzero(code == k)[0][:_EXAMPLES_PER_REASON]:
+            examples.append((chunk.path, int(chunk.start + i), reasons[k][1], colmap[role], float(a[role][i])))
+    return counts, examples
+
+
+# ----------------------------------------------------------------------------- pass 1: sample
+
+def _pass1_link(acc, cid, chunk, colmap, scale, k, seed, rv):
+    """Validate one chunk and merge its bottom-k rows (by row hash) into the running sample."""
+    a = _read_chunk(chunk, colmap, scale)
+    code, clean = _validate(a, rv)
+    keep = np.nonzero(code < 0)[0]
+    file_row = chunk.row0 + keep  # catalogue row number (before rejection)
+    key = _row_hash(file_row, seed, 1)
+    if key.size > k:
+        sel = np.argpartition(key, k - 1)[:k]
+    else:
+        sel = np.arange(key.size)
+    n_reasons = len(_reasons(colmap))
+    counts, examples = _rejection_record(code, a, chunk, colmap, n_reasons)
+    part = {
+        "key": key[sel],
+        "file_row": file_row[sel],
+        "chunk": np.full(sel.size, cid, dtype=np.int64),
+        "local": sel.astype(np.int64),  # position among the chunk's accepted rows
+        "data": np.stack([c[sel] for c in clean]),
+    }
+    if acc is None:
+        acc = {"sample": None, "valid": {}, "rows": 0, "counts": {}, "examples": [], "defaults": {}}
+    acc["valid"][cid] = int(keep.size)
+    for role in ("distance_err", "av_err"):  # missing or zero errors that took the default
+        v = a[role][keep]
+        acc["defaults"][role] = acc["defaults"].get(role, 0) + int(np.count_nonzero(~(np.isfinite(v) & (v > 0))))
+    acc["rows"] += chunk.stop - chunk.start
+    for j in np.nonzero(counts)[0]:
+        reason = _reasons(colmap)[j][1]
+        acc["counts"][reason] = acc["counts"].get(reason, 0) + int(counts[j])
+    room = 50 - len(acc["examples"])
+    if room > 0:
+        acc["examples"].extend(examples[:room])
+    acc["sample"] = _merge_samples(acc["sample"], part, k)
+    return acc
+
+
+def _merge_samples(s1, s2, k):
+    if s1 is None:
+        return s2
+    if s2 is None:
+        return s1
+    m = {f: np.concatenate([s1[f], s2[f]], axis=-1) for f in s1}
+    if m["key"].size > k:
+        sel = np.argpartition(m["key"], k - 1)[:k]
+        m = {f: v[..., sel] for f, v in m.items()}
+    return m
+
+
+def _pass1_combine(k, *accs):
+    out = None
+    for a in accs:
+        if a is None:
+            continue
+        if out is None:
+            out = a
+            continue
+        out["valid"].update(a["valid"])
+        for r, c in a["defaults"].items():
+            out["defaults"][r] = out["defaults"].get(r, 0) + c
+        out["rows"] += a["rows"]
+        for r, c in a["counts"].items():
+            out["counts"][r] = out["counts"].get(r, 0) + c
+        out["examples"] = (out["examples"] + a["examples"])[:50]
+        out["sample"] = _merge_samples(out["sample"], a["sample"], k)
+    return out
+
+
+# ----------------------------------------------------------------------------- pass 2: sums
+
+def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, rv):
+    """Add one chunk's tracers to the per-fold sufficient statistics and the tracer counts."""
+    a = _read_chunk(chunk, colmap, scale)
+    _, (l, b, d, de, av, ae) = _validate(a, rv)
+    del a
+    if acc is None:
+        acc = (np.zeros((5, n_folds, grid.npix, grid.n_edges)), np.zeros(grid.npix * grid.n_bins, dtype=np.int64))
+    stats, counts = acc
+    if l.size == 0:
+        return acc
+    fold = fold_of_rows(offset + np.arange(l.size), n_folds, seed)
+    _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, 1, None, out=stats)
+    counts += _counts(grid, l, b, d)
+    return acc
+
+
+def _pass2_combine(*accs):
+    out = None
+    for a in accs:
+        if a is None:
+            continue
+        if out is None:
+            out = a
+        else:
+            np.add(out[0], a[0], out=out[0])
+            np.add(out[1], a[1], out=out[1])
+    return out
+
+
+# ----------------------------------------------------------------------------- scheduling
+
+def _run_chains(link, combine, chunks, args_of, n_chains, client, desc, quiet, tag):
+    """Run ``link(acc, *args_of(i, chunk))`` over chunks in ``n_chains`` chains, then ``combine``.
+
+    One dask task per chunk; chunk ``i`` joins chain ``i % n_chains``, so at most
+    ``n_chains`` accumulators exist at once; the chains' accumulators are then summed in a
+    binary tree. Progress advances per chunk.
+    """
+    import dask
+
+    token = dask.base.tokenize(tag, os.getpid(), id(chunks), np.random.SeedSequence().entropy)
+    bar = progress(total=len(chunks), desc=desc, quiet=quiet)
+    try:
+        if client is not None:
+            from distributed import as_completed
+
+            last = [None] * n_chains
+            futures = []
+            for i, ch in enumerate(chunks):
+                j = i % n_chains
+                last[j] = client.submit(link, last[j], *args_of(i, ch), key=f"dustkit-{tag}-{i}-{token}", pure=False)
+                futures.append(last[j])
+            # hold each link only until it is done, so finished accumulators can be freed
+            done = as_completed(futures)
+            del futures
+            for fut in done:
+                if fut.status == "error":
+                    fut.result()  # raises the task's exception here
+                bar.update(1)
+                del fut
+            total = _tree(lambda i, a, b: client.submit(combine, a, b, key=f"dustkit-{tag}-sum-{i}-{token}", pure=False),
+                          [f for f in last if f is not None])
+            del last
+            return total.result()
+
+        from dask.callbacks import Callback
+
+        class _Progress(Callback):
+            def _posttask(self, key, result, dsk, state, worker_id):
+                if isinstance(key, str) and key.startswith(f"dustkit-{tag}-") and not key.startswith(f"dustkit-{tag}-sum"):
+                    bar.update(1)
+
+        last = [None] * n_chains
+        for i, ch in enumerate(chunks):
+            j = i % n_chains
+            last[j] = dask.delayed(link, pure=False)(last[j], *args_of(i, ch), dask_key_name=f"dustkit-{tag}-{i}-{token}")
+        total = _tree(lambda i, a, b: dask.delayed(combine, pure=False)(a, b, dask_key_name=f"dustkit-{tag}-sum-{i}-{token}"),
+                      [x for x in last if x is not None])
+        with _Progress():
+            return dask.compute(total, scheduler="threads", num_workers=n_chains)[0]
+    finally:
+        bar.close()
+
+
+def _tree(pair, items):
+    """Sum ``items`` pairwise, level by level (a binary tree), with ``pair(i, a, b)``.
+
+    Each summing task holds two accumulators, however many chains there are.
+    """
+    count = 0
+    while len(items) > 1:
+        nxt = []
+        for j in range(0, len(items) - 1, 2):
+            nxt.append(pair(count, items[j], items[j + 1]))
+            count += 1
+        if len(items) % 2:
+            nxt.append(items[-1])
+        items = nxt
+    return items[0]
+
+
+def _n_chains(client, stats_bytes, n_chunks):
+    if client is not None:
+        threads = sum(client.nthreads().values()) if hasattr(client, "nthreads") else 1
+        n = max(1, int(threads))
+    else:
+        import dask
+
+        threads = dask.config.get("num_workers", None) or os.cpu_count() or 1
+        n = max(1, min(int(threads), int(_LOCAL_STATS_BUDGET // max(stats_bytes, 1))))
+    return max(1, min(n, n_chunks))
+
+
+# ----------------------------------------------------------------------------- public API
+
+_MODEL_PARAMS = ("nside", "distance_max", "distance_step", "distance_edges", "ordering", "uncertainty",
+                 "n_folds", "sky_passes", "random_state")
+
+
+def build_from_parquet(
+    path_or_folder,
+    *,
+    columns=None,
+    chunk_size=1_000_000,
+    client=None,
+    layer=None,
+    layer_sample=200_000,
+    heldout_sample=50_000,
+    law="ccm89",
+    rv=3.1,
+    hdu=None,
+    quiet=None,
+    **model_params,
+):
+    """Build an extinction model from a catalogue larger than memory, chunk by chunk.
+
+    Parameters
+    ----------
+    path_or_folder : str or path-like
+        A Parquet file, a folder of Parquet files (read recursively, in sorted path order),
+        or a FITS table (read through a memory map).
+    columns : dict, optional
+        Our column names -> the file's: keys among ``l``, ``b`` (Galactic, deg),
+        ``distance``, ``distance_err`` (pc), ``av``, ``av_err`` (mag). Parquet columns carry
+        no units and are taken in these units; FITS columns with a ``TUNIT`` are converted.
+    chunk_size : int
+        Rows read and processed at a time (memory per parallel task grows with it).
+    client : distributed.Client, optional
+        Run the tasks on this dask cluster (files must be readable by its workers at the
+        same path). Without one, dask's local threaded scheduler is used.
+    layer : DustLayer, optional
+        Use this smooth layer instead of fitting one to the sample (e.g. to reproduce
+        another build exactly).
+    layer_sample : int
+        Rows of the deterministic random sample the layer is fitted to.
+    heldout_sample : int
+        Rows of that sample used as held-out tracers by the cross-validation.
+    law, rv
+        Extinction law and R_V the catalogue's A_V refers to (kept with the model; they
+        set the conversion to other bands and the A_V rejection limits).
+    hdu : int, optional
+        FITS HDU of the table (default: the first binary table).
+    quiet : bool, optional
+        Hide progress bars (default: shown on a terminal only).
+    **model_params
+        :class:`~dustkit.model.ExtinctionModel` parameters: ``nside``, ``distance_max``,
+        ``distance_step``, ``distance_edges``, ``ordering``, ``n_folds``, ``sky_passes``,
+        ``random_state``. ``uncertainty`` may only be ``'bin-scatter'`` (or ``'auto'``).
+
+    Returns
+    -------
+    ExtinctionModel
+        Fitted, with ``uncertainty_scheme_ == 'bin-scatter'``. ``tracers_`` holds the
+        sample (not the whole catalogue); ``build_info_`` records the source, rows read,
+        used and rejected (by reason, with examples), the chunking, the samples and the
+        held-out rows (``heldout_rows``: positions among the accepted rows) and the
+        wall time of each step (``seconds``).
+
+    Notes
+    -----
+    See the module docstring for the two passes and how the result relates to the
+    in-memory build. Rows are numbered in file order across the sorted files; rejected
+    rows are reported with a :class:`~dustkit._errors.RowsRejectedWarning`.
+    """
+    unknown = sorted(set(model_params) - set(_MODEL_PARAMS))
+    if unknown:
+        raise param_error(unknown[0], f"one of the model parameters {', '.join(_MODEL_PARAMS)}", model_params[unknown[0]])
+    scheme = model_params.pop("uncertainty", "bin-scatter")
+    if scheme not in ("bin-scatter", "auto"):
+        raise param_error(
+            "uncertainty",
+            "'bin-scatter' for out-of-core builds (per-tracer Monte Carlo draws are for in-memory "
+            "catalogues: use ExtinctionModel.fit)",
+            scheme,
+        )
+    chunk_size = check_int("chunk_size", chunk_size, 1, 2**40)
+    layer_sample = check_int("layer_sample", layer_sample, 10, 2**40)
+    heldout_sample = check_int("heldout_sample", heldout_sample, 10, 2**40)
+    if layer is not None and not isinstance(layer, DustLayer):
+        raise param_error("layer", "a DustLayer (e.g. another model's layer_)", type(layer).__name__)
+    from .tracers import _check_law
+
+    law, rv = _check_law(law, float(rv))
+    cols = dict(DEFAULT_COLUMNS)
+    if columns is not None:
+        if not isinstance(columns, dict) or set(columns) - set(_ROLES):
+            raise param_error("columns", f"a dict with keys among {', '.join(_ROLES)}", columns)
+        cols.update(columns)
+
+    model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
+    grid = model._make_grid()
+    seed = _seed(model.random_state)
+    n_folds = check_int("n_folds", model.n_folds, 2, 50)
+
+    files = _find_files(path_or_folder)
+    chunks, colmaps, scales, n_rows = _plan(files, chunk_size, cols, hdu)
+    if not chunks:
+        raise CatalogError(f"{os.fspath(path_or_folder)!r} has no rows; nothing to build from.")
+    stats_bytes = 5 * n_folds * grid.npix * grid.n_edges * 8
+    n_chains = _n_chains(client, stats_bytes, len(chunks))
+
+    # pass 1: validate, count, sample
+    clock = [time.perf_counter()]
+    seconds = {}
+
+    def lap(name):
+        now = time.perf_counter()
+        seconds[name] = now - clock[0]
+        clock[0] = now
+
+    k = max(layer_sample, heldout_sample)
+    p1 = _run_chains(
+        _pass1_link, functools.partial(_pass1_combine, k), chunks,
+        lambda i, ch: (i, ch, colmaps[ch.path], scales[ch.path], k, seed, rv),
+        n_chains, client, "reading and sampling (pass 1 of 2)", quiet, "sample",
+    )
+    lap("pass 1 (read, validate, sample)")
+    valid = np.array([p1["valid"][i] for i in range(len(chunks))], dtype=np.int64)
+    offsets = np.concatenate([[0], np.cumsum(valid)])
+    n_used = int(offsets[-1])
+    n_rejected = n_rows - n_used
+    if n_used < 10:
+        raise CatalogError(
+            f"A model needs at least 10 tracers; {os.fspath(path_or_folder)!r} has {n_used} usable rows of {n_rows}"
+            + (f" (rejected: {_reason_text(p1['counts'])})" if n_rejected else "")
+            + ". Hint: check the columns (columns={...}) and their units."
+        )
+    if n_rejected:
+        warnings.warn(
+            f"{n_rejected} of {n_rows} rows rejected: {_reason_text(p1['counts'])}. "
+            "See model.build_info_['rejected_examples'] for examples.",
+            RowsRejectedWarning,
+            stacklevel=2,
+        )
+
+    if any(kind == "parquet" for kind, _ in files):
+        warnings.warn(
+            "Parquet columns carry no units: took l and b in deg, distance and distance_err in pc, "
+            "av and av_err in mag. Hint: convert the columns before the build if they are in other units.",
+            AssumptionWarning,
+            stacklevel=2,
+        )
+    filled = {r: c for r, c in p1["defaults"].items() if c}
+    if filled:
+        warnings.warn(
+            "; ".join(
+                f"{c} rows have a missing or zero {r!s} ({cols[r]!r}); used "
+                + ("10% of the distance" if r == "distance_err" else f"{rv * _DEFAULT_EXCESS_ERR:.3g} mag")
+                for r, c in filled.items()
+            ) + " (the defaults of read_tracers).",
+            AssumptionWarning,
+            stacklevel=2,
+        )
+
+    # the sample in catalogue order: the layer's tracers and the held-out tracers
+    s = p1["sample"]
+    gidx = offsets[s["chunk"]] + s["local"]
+    by_key = np.argsort(s["key"], kind="stable")
+    layer_rows = np.sort(gidx[by_key[:layer_sample]])
+    held_rows = np.sort(gidx[by_key[:heldout_sample]])
+    order = np.argsort(gidx)
+    gidx_sorted = gidx[order]
+    data = s["data"][:, order]
+    file_row = s["file_row"][order]
+
+    from .tracers import TracerSet
+
+    def sample_set(rows):
+        pos = np.searchsorted(gidx_sorted, rows)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # rows were validated above; defaults already applied
+            return TracerSet.from_arrays(*data[:, pos], name=np.char.add("row ", file_row[pos].astype(str)),
+                                         law=law, rv=rv), pos
+
+    layer_set, _ = sample_set(layer_rows)
+    if len(layer_set) != layer_rows.size:
+        raise RuntimeError("internal error: the sample changed on re-validation")  # pragma: no cover
+    layer_given = layer is not None
+    if layer is None:
+        layer = fit_layer(layer_set, random_state=model.random_state)
+    lap("layer fit")
+
+    # pass 2: per-fold sufficient statistics, chunk by chunk
+    sums = _run_chains(
+        _pass2_link, _pass2_combine, chunks,
+        lambda i, ch: (ch, colmaps[ch.path], scales[ch.path], int(offsets[i]), grid, layer, n_folds, seed, rv),
+        n_chains, client, "accumulating tracers (pass 2 of 2)", quiet, "stats",
+    )
+    lap("pass 2 (sufficient statistics)")
+
+    # finish exactly as in memory, on the held-out rows
+    pos = np.searchsorted(gidx_sorted, held_rows)
+    hl, hb, hd, hde, hav, hae = data[:, pos]
+    heldout = (hl, hb, hd, hde, hav, hae, fold_of_rows(held_rows, n_folds, seed))
+    _, draws, folds, passes = model._check_params(n_used)
+    rng = np.random.default_rng(model.random_state)
+    counts = sums[1]
+    box = [sums[0]]
+    del sums
+    # hand over the only reference, so that _finish can free the full array once it has
+    # taken the pixels it needs
+    model._finish(grid, layer, box.pop(), passes, heldout, "bin-scatter", 1, rng)
+    lap("finish (cross-validation, calibration, isotonic)")
+    model.counts_ = counts.reshape(grid.npix, grid.n_bins)
+    model.tracers_ = layer_set
+    if isinstance(getattr(layer_set, "meta", None), dict):
+        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows),
+                               "sample_of": n_used})
+    model.build_info_ = {
+        "source": os.fspath(path_or_folder),
+        "files": [p for _, p in files],
+        "n_rows": int(n_rows),
+        "n_used": n_used,
+        "n_rejected": int(n_rejected),
+        "rejected_by_reason": dict(p1["counts"]),
+        "default_errors": filled,
+        "rejected_examples": _examples_table(p1["examples"]),
+        "chunk_size": chunk_size,
+        "n_chunks": len(chunks),
+        "n_parallel": n_chains,
+        "layer_sample": int(layer_rows.size),
+        "heldout_sample": int(held_rows.size),
+        "heldout_rows": held_rows,
+        "layer_given": layer_given,
+        "scheduler": "distributed" if client is not None else "threads",
+        "seconds": seconds,
+    }
+    return model
+
+
+def build_from_fits(path, *, hdu=None, **kwargs):
+    """Build a model from a large FITS table read through a memory map, chunk by chunk.
+
+    The same as :func:`build_from_parquet` (all its keyword arguments apply) for one FITS
+    file; ``hdu`` selects the table (default: the first binary table).
+    """
+    return build_from_parquet(path, hdu=hdu, **kwargs)
+
+
+def _reason_text(counts):
+    return "; ".join(f"{c} {r}" for r, c in sorted(counts.items(), key=lambda x: -x[1]))
+
+
+def _examples_table(examples):
+    from astropy.table import Table
+
+    t = Table(names=("file", "row", "reason", "column", "value"), dtype=(str, np.int64, str, str, float))
+    for e in examples:
+        t.add_row(e)
+    return t

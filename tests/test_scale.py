@@ -1,0 +1,256 @@
+"""Out-of-core and distributed builds (dustkit.scale) against the in-memory build.
+
+The catalogues are simulated from an invented region (a dust layer plus clouds with
+made-up positions), written to Parquet / FITS in a temporary folder and read back in
+chunks. The checks: the chunked build equals the in-memory build of the same tracers, a
+two-worker dask cluster gives the same model as one process, bad rows are rejected like
+``read_tracers`` does and counted, and bad parameters get clear errors.
+"""
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+from astropy import units as u
+from astropy.table import Table
+
+from dustkit import CatalogError, ParameterError
+from dustkit._errors import AssumptionWarning, RowsRejectedWarning
+from dustkit.layer import fit_layer
+from dustkit.model import ExtinctionModel, _chunk_statistics
+from dustkit.scale import _validate, build_from_fits, build_from_parquet, fold_of_rows
+from dustkit.simulate import Cloud, DustField, simulate_tracers
+from dustkit.tracers import TracerSet, read_tracers
+
+# An invented region: an exponential layer (a0 = 1 mag/kpc, h = 120 pc, z_sun = 20 pc) and
+# three clouds with made-up positions.
+FIELD = DustField(
+    a0=1.0, h=120.0, z_sun=20.0,
+    clouds=(Cloud(30, 1, 600, 3.0, 30, 1.2), Cloud(50, -3, 1500, 2.0, 40, 0.8), Cloud(60, 2, 2500, 4.0, 40, 1.0)),
+)
+# every Parquet build announces that bare columns are taken in deg, pc and mag (checked below)
+pytestmark = pytest.mark.filterwarnings("ignore:Parquet columns carry no units:dustkit._errors.AssumptionWarning")
+
+PARAMS = dict(nside=16, distance_max=4000 * u.pc, distance_step=250 * u.pc)
+HELDOUT = 1500  # held-out rows of the cross-validation (keeps the calibration quick)
+COLUMNS = ("l", "b", "distance", "distance_err", "av", "av_err")
+
+
+def _arrays(tracers):
+    return tuple(np.asarray(getattr(tracers, k), float) for k in COLUMNS)
+
+
+@pytest.fixture(scope="module")
+def catalogue(tmp_path_factory):
+    """20 000 simulated tracers as three Parquet files with several row groups each."""
+    t = simulate_tracers(FIELD, 20_000, l_range=(10, 70), b_range=(-10, 10), distance_max=4000, rng=7)
+    tracers = read_tracers(t)
+    df = pd.DataFrame({k: v for k, v in zip(COLUMNS, _arrays(tracers))})
+    folder = tmp_path_factory.mktemp("catalogue")
+    for i, rows in enumerate(np.array_split(np.arange(len(df)), 3)):
+        df.iloc[rows].to_parquet(folder / f"part-{i:02d}.parquet", row_group_size=3000)
+    return tracers, df, folder
+
+
+@pytest.fixture(scope="module")
+def chunked(catalogue):
+    _, _, folder = catalogue
+    # 2 500-row chunks: chunks cross row groups, and files end inside a chunk's span
+    return build_from_parquet(folder, chunk_size=2500, heldout_sample=HELDOUT, quiet=True, **PARAMS)
+
+
+def _in_memory(tracers, heldout_rows, random_state=0, n_folds=5):
+    """The in-memory bin-scatter build: all tracers accumulated at once, then finished.
+
+    The same steps as ExtinctionModel.fit (layer fit, one `_chunk_statistics` call over every
+    tracer, `_finish`), with the fold of each tracer from its row number and the given
+    held-out rows, so the result can be compared with the chunked build exactly.
+    """
+    l, b, d, de, av, ae = _arrays(tracers)
+    m = ExtinctionModel(uncertainty="bin-scatter", n_folds=n_folds, random_state=random_state, quiet=True, **PARAMS)
+    grid = m._make_grid()
+    layer = fit_layer(tracers, random_state=random_state)
+    fold = fold_of_rows(np.arange(l.size), n_folds, random_state)
+    stats = np.zeros((5, n_folds, grid.npix, grid.n_edges))
+    _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, 1, None, out=stats)
+    _, _, _, passes = m._check_params(l.size)
+    h = heldout_rows
+    m._finish(grid, layer, stats, passes, (l[h], b[h], d[h], de[h], av[h], ae[h], fold[h]), "bin-scatter", 1,
+              np.random.default_rng(random_state))
+    return m, stats
+
+
+def test_chunked_parquet_folder_equals_in_memory_build(catalogue, chunked):
+    tracers, _, _ = catalogue
+    info = chunked.build_info_
+    assert info["n_rows"] == info["n_used"] == len(tracers) and info["n_rejected"] == 0
+    assert len(info["files"]) == 3 and info["n_chunks"] == 9  # 6667-row files in 2500-row chunks
+    ref, stats = _in_memory(tracers, info["heldout_rows"])
+    # the layer is fitted to the same tracers (the whole catalogue is smaller than the sample)
+    assert chunked.layer_.as_dict() == pytest.approx(ref.layer_.as_dict(), rel=1e-12)
+    # counts are integer sums: exact (np.bincount of pixel x bin, common practice)
+    l, b, d = _arrays(tracers)[:3]
+    k, f = ref.grid_.edge_position(d)
+    inside = f <= 1
+    direct = np.bincount(ref.grid_.pixel(l, b)[inside] * ref.grid_.n_bins + k[inside],
+                         minlength=ref.grid_.npix * ref.grid_.n_bins).reshape(ref.grid_.npix, -1)
+    assert np.array_equal(chunked.counts_, direct)
+    assert chunked.counts_.sum() == np.count_nonzero(inside)
+    # parts defined by sums: equal to floating-point summation tolerance
+    assert np.allclose(chunked.n_tracers_, ref.n_tracers_, rtol=1e-9, atol=1e-12)
+    assert np.allclose(chunked.av_, ref.av_, rtol=1e-9, atol=1e-12)
+    # the same smoothing chosen, and the calibrated errors agree (an optimiser sits in between)
+    assert (chunked.sky_passes_, chunked.walk_variance_, chunked.distance_smoothing_) == (
+        ref.sky_passes_, pytest.approx(ref.walk_variance_, rel=1e-12), ref.distance_smoothing_)
+    assert np.allclose(chunked.av_err_, ref.av_err_, rtol=1e-6, atol=1e-6)
+    assert chunked.uncertainty_scheme_ == "bin-scatter"
+    # and the model answers like the in-memory one at arbitrary positions
+    lq, bq, dq = np.array([31.0, 50.5, 64.0]), np.array([0.7, -2.5, 1.0]), np.array([800.0, 2000.0, 3500.0])
+    a1, e1 = chunked.av(lq * u.deg, bq * u.deg, dq * u.pc)
+    a2, e2 = ref.av(lq * u.deg, bq * u.deg, dq * u.pc)
+    assert np.allclose(a1.value, a2.value, rtol=1e-9) and np.allclose(e1.value, e2.value, rtol=1e-6, atol=1e-6)
+
+
+def test_result_does_not_depend_on_chunk_size(catalogue, chunked):
+    _, _, folder = catalogue
+    other = build_from_parquet(folder, chunk_size=7000, heldout_sample=HELDOUT, quiet=True, **PARAMS)
+    assert other.build_info_["n_chunks"] == 3
+    assert np.array_equal(other.build_info_["heldout_rows"], chunked.build_info_["heldout_rows"])
+    assert np.array_equal(other.counts_, chunked.counts_)
+    assert np.allclose(other.av_, chunked.av_, rtol=1e-9, atol=1e-12)
+    assert np.allclose(other.av_err_, chunked.av_err_, rtol=1e-6, atol=1e-6)
+
+
+def test_same_as_extinction_model_fit_on_a_small_catalogue(tmp_path):
+    # with every tracer held out (the in-memory default below 50 000 tracers) the chunked
+    # build and ExtinctionModel.fit see the same layer, the same sums and the same held-out set
+    t = simulate_tracers(FIELD, 2500, l_range=(20, 60), b_range=(-8, 8), distance_max=4000, rng=3)
+    tracers = read_tracers(t)
+    pd.DataFrame(dict(zip(COLUMNS, _arrays(tracers)))).to_parquet(tmp_path / "small.parquet", row_group_size=700)
+    fit = ExtinctionModel(uncertainty="bin-scatter", quiet=True, **PARAMS).fit(tracers)
+    big = build_from_parquet(tmp_path / "small.parquet", chunk_size=1000, quiet=True, **PARAMS)
+    assert big.build_info_["heldout_sample"] == len(tracers)
+    assert big.layer_.as_dict() == pytest.approx(fit.layer_.as_dict(), rel=1e-12)
+    assert np.array_equal(big.counts_, fit.counts_)
+    # the final arrays come from the sums over all folds: equal whatever the folds
+    assert np.allclose(big.n_tracers_, fit.n_tracers_, rtol=1e-9, atol=1e-12)
+    assert np.allclose(big.av_, fit.av_, rtol=1e-9, atol=1e-12)
+
+
+def test_two_worker_local_cluster_equals_single_process(catalogue, chunked):
+    distributed = pytest.importorskip("distributed")
+    _, _, folder = catalogue
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # cluster start-up chatter
+        with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                      dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+            remote = build_from_parquet(folder, chunk_size=2500, client=client, heldout_sample=HELDOUT, quiet=True,
+                                        **PARAMS)
+    assert remote.build_info_["scheduler"] == "distributed" and remote.build_info_["n_parallel"] == 2
+    assert np.array_equal(remote.counts_, chunked.counts_)
+    assert np.array_equal(remote.build_info_["heldout_rows"], chunked.build_info_["heldout_rows"])
+    assert np.allclose(remote.av_, chunked.av_, rtol=1e-9, atol=1e-12)
+    assert np.allclose(remote.n_tracers_, chunked.n_tracers_, rtol=1e-9, atol=1e-12)
+    assert np.allclose(remote.av_err_, chunked.av_err_, rtol=1e-6, atol=1e-6)
+
+
+def test_fits_table_in_chunks_with_units(catalogue, chunked, tmp_path):
+    _, df, _ = catalogue
+    t = Table.from_pandas(df)
+    t["distance"] = t["distance"] / 1000.0  # kpc, declared with TUNIT: converted to pc
+    t["distance"].unit = u.kpc
+    t.rename_column("av", "A_V")
+    t.write(tmp_path / "catalogue.fits")
+    m = build_from_fits(tmp_path / "catalogue.fits", columns={"av": "A_V"}, chunk_size=4000,
+                        heldout_sample=HELDOUT, quiet=True, **PARAMS)
+    assert m.build_info_["n_chunks"] == 5
+    assert np.array_equal(m.counts_, chunked.counts_)
+    assert np.allclose(m.av_, chunked.av_, rtol=1e-9, atol=1e-12)
+
+
+def test_bad_rows_rejected_like_read_tracers_and_counted(tmp_path, monkeypatch):
+    rng = np.random.default_rng(5)
+    n = 400
+    df = pd.DataFrame({
+        "l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n), "distance": rng.uniform(200, 3000, n),
+        "distance_err": rng.uniform(20, 200, n), "av": rng.uniform(0.1, 3, n), "av_err": rng.uniform(0.02, 0.2, n),
+    })
+    df.loc[0, "l"] = np.nan
+    df.loc[1, "b"] = 95.0
+    df.loc[2, "distance"] = -10.0
+    df.loc[3, "av_err"] = -0.1
+    df.loc[4, "av"] = 500.0
+    df.loc[5, "distance"] = 3e5
+    df.loc[6, "l"] = -200.0
+    df.loc[7, "distance_err"] = 0.0  # a zero error takes the default, the row is kept
+    df.loc[8, "av_err"] = np.nan
+    df.loc[9, "l"] = -20.0  # wrapped to 340
+    # the row checks equal read_tracers' (TracerSet.from_arrays) on the same values
+    arrays = {k: df[k].to_numpy(float) for k in COLUMNS}
+    code, clean = _validate(arrays, 3.1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = TracerSet.from_arrays(*(arrays[k] for k in COLUMNS))
+    assert np.count_nonzero(code >= 0) == len(ts.rejected) == 7
+    assert np.array_equal(np.sort(np.nonzero(code >= 0)[0]), np.sort(np.asarray(ts.rejected["row"])))
+    for mine, theirs in zip(clean, _arrays(ts)):
+        assert np.array_equal(mine, theirs)
+    # the build rejects, counts and reports them
+    df.to_parquet(tmp_path / "bad.parquet")
+    bars = []
+
+    class Bar:  # records the progress reported by the build
+        def __init__(self, total=None, desc=None, quiet=None):
+            self.total, self.desc, self.n = total, desc, 0
+            bars.append(self)
+
+        def update(self, k=1):
+            self.n += k
+
+        def close(self):
+            pass
+
+    monkeypatch.setattr("dustkit.scale.progress", Bar)
+    with pytest.warns(RowsRejectedWarning, match="7 of 400 rows rejected"), \
+            pytest.warns(AssumptionWarning, match="1 rows have a missing or zero distance_err"), \
+            pytest.warns(AssumptionWarning, match="Parquet columns carry no units"):
+        m = build_from_parquet(tmp_path / "bad.parquet", chunk_size=150, quiet=False, sky_passes=(0, 1), **PARAMS)
+    # progress is reported per chunk (400 rows in 150-row chunks), for both passes
+    assert [(b.desc, b.total, b.n) for b in bars] == [
+        ("reading and sampling (pass 1 of 2)", 3, 3), ("accumulating tracers (pass 2 of 2)", 3, 3)]
+    info = m.build_info_
+    assert (info["n_rows"], info["n_used"], info["n_rejected"]) == (400, 393, 7)
+    assert sum(info["rejected_by_reason"].values()) == 7
+    assert sorted(info["rejected_examples"]["row"]) == [0, 1, 2, 3, 4, 5, 6]
+    assert m.counts_.sum() <= 393 and len(m.tracers_) == 393
+    assert info["default_errors"] == {"distance_err": 1, "av_err": 1}
+
+
+def test_folds_from_row_numbers():
+    # deterministic, independent of how rows are split, about uniform (common practice)
+    rows = np.arange(200_000)
+    f = fold_of_rows(rows, 5, random_state=0)
+    assert np.array_equal(f[1000:2000], fold_of_rows(np.arange(1000, 2000), 5, random_state=0))
+    share = np.bincount(f, minlength=5) / rows.size
+    assert np.all(np.abs(share - 0.2) < 0.005)
+    other = fold_of_rows(rows, 5, random_state=1)
+    assert 0.15 < np.mean(other == f) < 0.25  # another seed gives an unrelated assignment
+
+
+def test_clear_errors(catalogue, tmp_path):
+    _, df, folder = catalogue
+    with pytest.raises(CatalogError, match=r"Column 'av_err' \(for av_err\) is missing.*columns="):
+        df.drop(columns="av_err").iloc[:100].to_parquet(tmp_path / "noerr.parquet")
+        build_from_parquet(tmp_path / "noerr.parquet", quiet=True)
+    with pytest.raises(ParameterError, match="The 'uncertainty' parameter must be 'bin-scatter'"):
+        build_from_parquet(folder, uncertainty="monte-carlo", quiet=True)
+    with pytest.raises(ParameterError, match="The 'chunk_size' parameter must be an integer"):
+        build_from_parquet(folder, chunk_size=0, quiet=True)
+    with pytest.raises(ParameterError, match="'n_draws' parameter"):
+        build_from_parquet(folder, n_draws=10, quiet=True)
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(CatalogError, match="holds no Parquet files"):
+        build_from_parquet(tmp_path / "empty", quiet=True)
+    with pytest.raises(CatalogError, match="No such file or folder"):
+        build_from_parquet(tmp_path / "missing", quiet=True)
