@@ -57,7 +57,8 @@ _WEIGHT_FLOOR_MAG = 0.05  # mag; keeps a few very precise tracers from dominatin
 _NEIGHBOUR_WEIGHT = 0.25  # weight of each of the 8 neighbours in one sky-smoothing pass
 _PRIOR_COUNT = 2.0        # pseudo-count pooling a node's scatter toward its edge's median
 _STUDENT_NU = 8.0         # degrees of freedom of the predictive distribution
-_MC_LIMIT = 300_000       # above this many tracers "auto" switches to the bin-scatter scheme
+_MC_LIMIT = 300_000
+_CACHE_BYTES = 768 * 2**20  # smoothed statistics kept during cross-validation when they fit       # above this many tracers "auto" switches to the bin-scatter scheme
 _STATS = ("w", "wr", "wr2", "w2", "n")
 
 
@@ -458,17 +459,21 @@ class ExtinctionModel:
             interp_cache[f] = (np.searchsorted(take, sel), pix_f, w_f, k_f, np.clip(f_f, 0, 1), layer._av(b[sel], d[sel]))
         obs_cache = {}
         sky_cache = {}
+        # small grids keep every smoothing they make; large ones one at a time (each sky
+        # smoothing holds (1 + folds) copies of the statistics)
+        keep_all = 2 * len(passes) * stats.nbytes < _CACHE_BYTES
 
         def sky(p):
-            # one sky smoothing at a time: each holds (1 + folds) copies of the statistics
             if p not in sky_cache:
-                sky_cache.clear()
+                if not keep_all:
+                    sky_cache.clear()
                 sky_cache[p] = (_smooth(total, kernels[p]), _smooth(stats, kernels[p]))
             return sky_cache[p]
 
         def observations(p, sd):
             if (p, sd) not in obs_cache:
-                obs_cache.clear()  # scores are cached, so a setting is never smoothed twice
+                if not keep_all:
+                    obs_cache.clear()
                 sky_total, sky_folds = sky(p)
                 sm_total = _smooth_distance(sky_total, dkern[sd])
                 obs = []
@@ -504,7 +509,7 @@ class ExtinctionModel:
         # parameter in turn over its candidates, the others held, until nothing improves
         current = [passes[0], sigmas[min(1, len(sigmas) - 1)], walk[len(walk) // 2]]
         candidates = [passes, sigmas, list(walk)]
-        for _ in range(3):
+        for _ in range(2):
             before = tuple(current)
             for i, cand in enumerate(candidates):
                 trial = {c: score(*(current[:i] + [c] + current[i + 1:])) for c in cand}
@@ -861,7 +866,7 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
         return -np.sum(np.log(np.maximum(node_weight @ dens, 1e-300)))
 
     best = None
-    for start in ((0.0, np.log(0.01), np.log(0.01)), (np.log(0.3), np.log(0.05), np.log(1e-4)), (np.log(0.3), np.log(1e-4), np.log(0.05))):
+    for start in ((0.0, np.log(0.01), np.log(0.01)), (np.log(0.1), np.log(0.05), np.log(1e-3))):
         res = optimize.minimize(nll, np.array(start), method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6, "maxiter": 2000})
         if best is None or res.fun < best.fun:
             best = res
