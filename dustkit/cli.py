@@ -11,6 +11,7 @@ Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 
 import argparse
 import json
+import os
 import sys
 import traceback
 import warnings
@@ -52,7 +53,8 @@ _EPILOGS = {
   dustkit build clusters.csv -o model.fits
   dustkit build clusters.fits -o model.fits --nside 64 --distance-max 5000 --distance-step 250
   dustkit build stars.csv -o model.fits --column ebv=EBV_MAG --column distance=D --distance-unit kpc
-  dustkit build clusters.csv -o model.fits --distance-edges 0,250,500,1000,2000,4000 --law odonnell94 --rv 3.1""",
+  dustkit build clusters.csv -o model.fits --distance-edges 0,250,500,1000,2000,4000 --law odonnell94 --rv 3.1
+  dustkit build field_stars/ -o model.fits --nside 64 --chunk-size 2000000""",
     "estimate": """examples:
   dustkit estimate model.fits targets.csv -o targets_av.csv
   dustkit estimate model.fits targets.ecsv -o targets_av.ecsv --band J --band Ks
@@ -156,6 +158,10 @@ def build_parser():
                    help="explicit distance edges in pc, comma-separated (instead of --distance-max/--distance-step)")
     _add_law_options(p)
     _add_catalogue_options(p)
+    p.add_argument("--chunk-size", type=int, metavar="ROWS",
+                   help="build out of core, reading ROWS rows at a time (automatic for a folder of Parquet "
+                        "files; for catalogues larger than memory, with columns l, b, distance, distance_err, "
+                        "av, av_err)")
     p.add_argument("--overwrite", action="store_true", help="replace MODEL.fits if it exists")
 
     p = sub("estimate", "Estimate A_V (and A in other bands) for a list of targets from a saved model.")
@@ -370,12 +376,15 @@ def _cmd_build(args, out):
     _check_law(args)
     columns = _columns(args.column)
     _check_target(args.output, args.overwrite)  # fail before a long build, not after
-    tracers = _read_tracers(args, args.catalog)
-    out(tracers.summary(), "")
-    if columns:
-        out(f"Column mapping given: {columns}")
-    out(f"Building the model (NSIDE {args.nside}) from {len(tracers)} tracers ...")
-    model = ExtinctionModel(**kw, quiet=_quiet_flag(args)).fit(tracers)
+    if os.path.isdir(args.catalog) or args.chunk_size is not None:
+        model = _build_out_of_core(args, kw, columns, out)
+    else:
+        tracers = _read_tracers(args, args.catalog)
+        out(tracers.summary(), "")
+        if columns:
+            out(f"Column mapping given: {columns}")
+        out(f"Building the model (NSIDE {args.nside}) from {len(tracers)} tracers ...")
+        model = ExtinctionModel(**kw, quiet=_quiet_flag(args)).fit(tracers)
     out(*_layer_lines(model.layer_))
     g = model.grid_
     out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
@@ -384,6 +393,24 @@ def _cmd_build(args, out):
     path = save_model(model, args.output, overwrite=args.overwrite)
     out(f"Wrote the model to {path}", f"Caution: {CAUTION}")
     return 0
+
+
+def _build_out_of_core(args, kw, columns, out):
+    """The chunked (dask) build of ``dustkit build`` for a Parquet folder or --chunk-size."""
+    from .scale import build_from_parquet
+
+    chunk = 1_000_000 if args.chunk_size is None else args.chunk_size
+    if chunk < 1:
+        raise _UsageError(f"--chunk-size must be a positive number of rows. Got {chunk} instead")
+    out(f"Building out of core from {args.catalog} in chunks of {chunk} rows (NSIDE {args.nside}) ...")
+    model = build_from_parquet(args.catalog, columns=columns or None, chunk_size=chunk, law=args.law,
+                               rv=args.rv, quiet=_quiet_flag(args), **kw)
+    info = model.build_info_
+    out(f"Read {info['n_rows']} rows in {info['n_chunks']} chunks: {info['n_used']} tracers used, "
+        f"{info['n_rejected']} rejected.")
+    for reason, count in info["rejected_by_reason"].items():
+        out(f"  {count:>10}  {reason}")
+    return model
 
 
 def _cmd_estimate(args, out):

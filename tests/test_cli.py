@@ -339,3 +339,22 @@ def test_features_command_writes_the_table_the_api_gives(built, tmp_path, call):
     # refuses to overwrite unless asked
     rc, out, err = call("features", built[0], "-o", out_csv)
     assert rc == 1 and "overwrite" in one_line_error(err)
+
+
+def test_build_from_a_parquet_folder_in_chunks(tmp_path, call):
+    # a folder of Parquet files goes through the out-of-core (dask) build
+    sim = simulate_tracers(FIELD, 3000, l_range=(180, 220), b_range=(-8, 8), distance_max=4000, rng=9)
+    folder = tmp_path / "stars"
+    folder.mkdir()
+    cols = {"l": sim["l"], "b": sim["b"], "distance": sim["distance"], "distance_err": sim["distance_err"],
+            "av": 3.1 * np.asarray(sim["ebv"]), "av_err": 3.1 * np.asarray(sim["ebv_err"])}
+    t = Table({k: np.asarray(v, float) for k, v in cols.items()})
+    t[:1500].write(folder / "part0.parquet")
+    t[1500:].write(folder / "part1.parquet")
+    rc, out, err = call("build", folder, "-o", tmp_path / "m.fits", "--nside", "16", "--chunk-size", "1000")
+    assert rc == 0, err
+    assert "in 4 chunks" in out and "3000 tracers used" in out
+    model = load_model(tmp_path / "m.fits")
+    assert model.uncertainty_scheme_ == "bin-scatter" and model.grid_.nside == 16
+    rc, out, err = call("build", folder, "-o", tmp_path / "m2.fits", "--chunk-size", "0")
+    assert rc == 2 and "--chunk-size" in one_line_error(err)
