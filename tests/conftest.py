@@ -64,3 +64,11 @@ def jupyter_env(jupyter_dirs, monkeypatch):
         monkeypatch.setenv(var, value)
     monkeypatch.delenv("MPLBACKEND", raising=False)
     return jupyter_dirs
+
+
+@pytest.fixture(autouse=True)
+def _close_figures():
+    """Close the figures a test opened, so a long run does not pile them up."""
+    yield
+    if "matplotlib.pyplot" in sys.modules:
+        sys.modules["matplotlib.pyplot"].close("all")
