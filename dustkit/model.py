@@ -408,7 +408,11 @@ class ExtinctionModel:
         rng = np.random.default_rng(self.random_state)
 
         layer = fit_layer(tracers, random_state=self.random_state)
-        fold = rng.integers(0, folds, n)
+        # folds from a hash of the row number, as in the chunked builds (dustkit.scale): the
+        # same tracers give the same model whichever way they are read
+        from .scale import fold_of_rows
+
+        fold = fold_of_rows(np.arange(n), folds, self.random_state)
         stats = np.zeros((5, folds, grid.npix, grid.n_edges))
         chunk = max(1, 2_000_000 // draws)
         draw_rng = rng if scheme == "monte-carlo" else None

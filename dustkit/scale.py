@@ -18,7 +18,8 @@ Pass 1 (sample)
     the smoothing and calibrates the uncertainties.
 Pass 2 (sufficient statistics)
     Every chunk adds its tracers to the per-fold sums of weights and weighted residuals
-    from the layer per (pixel, distance edge) (see :func:`dustkit.model._accumulate`).
+    from the layer per (pixel, distance edge), with the model's own per-chunk step
+    (``dustkit.model._chunk_statistics``, as in :meth:`ExtinctionModel.fit`).
     Each tracer's fold is a hash of its position among the accepted rows, so it does not
     depend on the chunking or on which worker reads it. Chunks are processed by dask: one
     task per chunk, in as many parallel chains as there are threads (each chain adds its
@@ -35,8 +36,9 @@ How the large path differs from the per-tracer Monte Carlo scheme
 The in-memory build of a small catalogue (up to 300 000 tracers by default) draws Monte
 Carlo realisations of each tracer's distance and A_V, so a tracer spreads over the distance
 bins its uncertainty allows. The large path uses the ``'bin-scatter'`` scheme: each tracer
-enters once at its nominal distance, and the uncertainty of a node comes from the weighted
-scatter of the tracers around it (distance errors show up as that scatter). The
+enters once at its nominal distance and in its own sky pixel (the sky kernel chosen by
+cross-validation does the spreading), and the uncertainty of a node comes from the
+weighted scatter of the tracers around it (distance errors show up as that scatter). The
 unresolved-scatter calibration still integrates over each held-out tracer's distance
 uncertainty. Two further differences, both for catalogues larger than the samples: the
 layer is fitted to a ``layer_sample``-row sample, and the candidate random-walk strengths
@@ -70,25 +72,9 @@ from ._errors import AssumptionWarning, CatalogError, RowsRejectedWarning
 from ._progress import progress
 from ._validation import check_int, param_error
 from .layer import DustLayer, fit_layer
-from .model import _WEIGHT_FLOOR_MAG, ExtinctionModel, _accumulate, _draw_residuals
+from .model import ExtinctionModel, _chunk_statistics, _counts
 
 __all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
-
-try:  # the per-chunk step shared with ExtinctionModel.fit
-    from .model import _chunk_statistics, _counts
-except ImportError:  # model.py without the shared helpers: the same steps, spelled out here
-
-    def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None, out=None):
-        weight = 1.0 / (ae**2 + max(layer.scatter, _WEIGHT_FLOOR_MAG) ** 2)
-        sky_pix, sky_w = grid.interp_weights(l, b)
-        dd, rr = _draw_residuals(layer, b, d, de, av, ae, draws, rng)
-        return _accumulate(grid, out.shape[1], sky_pix, fold, dd, rr, weight[None, :], 1.0 / draws, sky_w, out=out)
-
-    def _counts(grid, l, b, d):
-        pix = grid.pixel(l, b)
-        k, f = grid.edge_position(d)
-        inside = f <= 1.0
-        return np.bincount(pix[inside] * grid.n_bins + k[inside], minlength=grid.npix * grid.n_bins)
 
 #: Column names read by default (our names -> names in the file); override with ``columns=``.
 DEFAULT_COLUMNS = {

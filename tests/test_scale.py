@@ -136,6 +136,7 @@ def test_same_as_extinction_model_fit_on_a_small_catalogue(tmp_path):
     # the final arrays come from the sums over all folds: equal whatever the folds
     assert np.allclose(big.n_tracers_, fit.n_tracers_, rtol=1e-9, atol=1e-12)
     assert np.allclose(big.av_, fit.av_, rtol=1e-9, atol=1e-12)
+    assert np.allclose(big.av_err_, fit.av_err_, rtol=1e-6, atol=1e-6)  # same folds: same calibration
 
 
 def test_two_worker_local_cluster_equals_single_process(catalogue, chunked):
