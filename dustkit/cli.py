@@ -162,6 +162,9 @@ def build_parser():
                    help="build out of core, reading ROWS rows at a time (automatic for a folder of Parquet "
                         "files; for catalogues larger than memory, with columns l, b, distance, distance_err, "
                         "av, av_err)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run the out-of-core build on this dask scheduler (e.g. tcp://host:8786; "
+                        "default: local threads)")
     p.add_argument("--overwrite", action="store_true", help="replace MODEL.fits if it exists")
 
     p = sub("estimate", "Estimate A_V (and A in other bands) for a list of targets from a saved model.")
@@ -298,7 +301,7 @@ def _read_tracers(args, path):
 
 def _layer_lines(layer):
     return [
-        "Dust layer (exponential in height, fitted to all tracers):",
+        "Dust layer (exponential in height, robust fit to the tracers):",
         f"  a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc   (mid-plane A_V per kpc)",
         f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        (scale height)",
         f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        (height of the Sun above the mid-plane)",
@@ -376,7 +379,7 @@ def _cmd_build(args, out):
     _check_law(args)
     columns = _columns(args.column)
     _check_target(args.output, args.overwrite)  # fail before a long build, not after
-    if os.path.isdir(args.catalog) or args.chunk_size is not None:
+    if os.path.isdir(args.catalog) or args.chunk_size is not None or args.scheduler:
         model = _build_out_of_core(args, kw, columns, out)
     else:
         tracers = _read_tracers(args, args.catalog)
@@ -403,8 +406,18 @@ def _build_out_of_core(args, kw, columns, out):
     if chunk < 1:
         raise _UsageError(f"--chunk-size must be a positive number of rows. Got {chunk} instead")
     out(f"Building out of core from {args.catalog} in chunks of {chunk} rows (NSIDE {args.nside}) ...")
-    model = build_from_parquet(args.catalog, columns=columns or None, chunk_size=chunk, law=args.law,
-                               rv=args.rv, quiet=_quiet_flag(args), **kw)
+    client = None
+    if args.scheduler:
+        from distributed import Client
+
+        client = Client(args.scheduler, timeout="20s")
+        out(f"Using the dask scheduler at {args.scheduler}")
+    try:
+        model = build_from_parquet(args.catalog, columns=columns or None, chunk_size=chunk, law=args.law,
+                                   rv=args.rv, client=client, quiet=_quiet_flag(args), **kw)
+    finally:
+        if client is not None:
+            client.close()
     info = model.build_info_
     out(f"Read {info['n_rows']} rows in {info['n_chunks']} chunks: {info['n_used']} tracers used, "
         f"{info['n_rejected']} rejected.")

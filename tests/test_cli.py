@@ -358,3 +358,13 @@ def test_build_from_a_parquet_folder_in_chunks(tmp_path, call):
     assert model.uncertainty_scheme_ == "bin-scatter" and model.grid_.nside == 16
     rc, out, err = call("build", folder, "-o", tmp_path / "m2.fits", "--chunk-size", "0")
     assert rc == 2 and "--chunk-size" in one_line_error(err)
+    # the same build on a dask cluster (local, on 127.0.0.1) gives the same model
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        rc, out, err = call("build", folder, "-o", tmp_path / "m3.fits", "--nside", "16", "--chunk-size", "1000",
+                            "--scheduler", cluster.scheduler_address)
+    assert rc == 0, err
+    assert "dask scheduler" in out
+    assert np.allclose(load_model(tmp_path / "m3.fits").av_, model.av_, rtol=1e-9, atol=1e-12)
