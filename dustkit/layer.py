@@ -35,12 +35,12 @@ def _layer_av_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
     x = -s * d * mu / h_pc
     with np.errstate(divide="ignore", invalid="ignore"):
         g = np.where(np.abs(x) > 1e-8, np.expm1(x) / np.where(x == 0, 1.0, x), 1.0 + 0.5 * x)
-        same = a0 * np.exp(-np.abs(z0) / h_pc) * d * g
+        out = np.asarray(a0 * np.exp(-np.abs(z0) / h_pc) * d * g, dtype=float).copy()
+    if crossing.any():
         # crossing the mid-plane: two one-sided integrals, |mu| >= |z0|/d > 0 here
-        cross = a0 * h_pc / np.abs(mu) * (
-            -np.expm1(-np.abs(z0) / h_pc) - np.expm1(-np.abs(z1) / h_pc)
-        )
-    return np.where(crossing, cross, same)
+        muc, z0c, z1c = (np.broadcast_to(v, crossing.shape)[crossing] for v in (mu, z0, z1))
+        out[crossing] = a0 * h_pc / np.abs(muc) * (-np.expm1(-np.abs(z0c) / h_pc) - np.expm1(-np.abs(z1c) / h_pc))
+    return out
 
 
 def _layer_slope_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):

@@ -129,7 +129,7 @@ def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_wei
     return out
 
 
-def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None, out=None):
+def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None, out=None, pix=None):
     """Add one chunk of tracers to the per-fold statistics ``out`` (the per-tracer step of a build).
 
     With ``rng`` (Monte Carlo scheme) each tracer's ``draws`` draws are spread bilinearly over
@@ -141,14 +141,15 @@ def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None,
     weight = 1.0 / (ae**2 + max(layer.scatter, _WEIGHT_FLOOR_MAG) ** 2)
     dd, rr = _draw_residuals(layer, b, d, de, av, ae, draws, rng)
     if rng is None:
-        return _accumulate(grid, out.shape[1], grid.pixel(l, b), fold, dd, rr, weight[None, :], 1.0 / draws, None, out=out)
+        pix = grid.pixel(l, b) if pix is None else pix
+        return _accumulate(grid, out.shape[1], pix, fold, dd, rr, weight[None, :], 1.0 / draws, None, out=out)
     sky_pix, sky_w = grid.interp_weights(l, b)
     return _accumulate(grid, out.shape[1], sky_pix, fold, dd, rr, weight[None, :], 1.0 / draws, sky_w, out=out)
 
 
-def _counts(grid, l, b, d):
+def _counts(grid, l, b, d, pix=None):
     """Tracers per (pixel, distance bin) from nominal positions, flat (npix * n_bins)."""
-    pix = grid.pixel(l, b)
+    pix = grid.pixel(l, b) if pix is None else pix
     k, f = grid.edge_position(d)
     inside = f <= 1.0
     return np.bincount(pix[inside] * grid.n_bins + k[inside], minlength=grid.npix * grid.n_bins)
@@ -416,13 +417,15 @@ class ExtinctionModel:
         stats = np.zeros((5, folds, grid.npix, grid.n_edges))
         chunk = max(1, 2_000_000 // draws)
         draw_rng = rng if scheme == "monte-carlo" else None
+        pix = grid.pixel(l, b)  # once, for the statistics and the counts
         bar = progress(range(0, n, chunk), total=-(-n // chunk), desc="accumulating tracers", quiet=self.quiet)
         for s in bar:
             sl = slice(s, s + chunk)
-            _chunk_statistics(grid, layer, l[sl], b[sl], d[sl], de[sl], av[sl], ae[sl], fold[sl], draws, draw_rng, out=stats)
+            _chunk_statistics(grid, layer, l[sl], b[sl], d[sl], de[sl], av[sl], ae[sl], fold[sl], draws, draw_rng,
+                              out=stats, pix=pix[sl])
         self._finish(grid, layer, stats, passes, (l, b, d, de, av, ae, fold), scheme, draws, rng)
         self.tracers_ = tracers
-        self.counts_ = _counts(grid, l, b, d).reshape(grid.npix, grid.n_bins)
+        self.counts_ = _counts(grid, l, b, d, pix).reshape(grid.npix, grid.n_bins)
         return self
 
     def _finish(self, grid, layer, stats, passes, heldout, scheme, draws, rng):

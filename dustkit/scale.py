@@ -484,8 +484,9 @@ def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, r
     if l.size == 0:
         return acc
     fold = fold_of_rows(offset + np.arange(l.size), n_folds, seed)
-    _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, 1, None, out=stats)
-    counts += _counts(grid, l, b, d)
+    pix = grid.pixel(l, b)  # once, for the statistics and the counts
+    _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, 1, None, out=stats, pix=pix)
+    counts += _counts(grid, l, b, d, pix)
     return acc
 
 
