@@ -892,6 +892,8 @@ def save_figure(fig, path, overwrite=False, dpi=300, **savefig_kwargs):
     """
     import pathlib
 
+    from .io import _file_mode
+
     fig = getattr(fig, "figure", fig) if not hasattr(fig, "savefig") else fig
     path = pathlib.Path(os.fspath(path)).expanduser()
     suffix = path.suffix.lower().lstrip(".")
@@ -908,6 +910,7 @@ def save_figure(fig, path, overwrite=False, dpi=300, **savefig_kwargs):
     try:
         with os.fdopen(fd, "wb") as fh:
             fig.savefig(fh, format=suffix, dpi=dpi, **savefig_kwargs)
+        os.chmod(tmp, _file_mode(path))  # the permissions a plain write would give, not mkstemp's 0600
         os.replace(tmp, path)
     except BaseException:
         try:

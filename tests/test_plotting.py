@@ -367,3 +367,21 @@ def test_plotting_does_not_import_widgets():
     code = "import dustkit.plotting, sys; print('ipywidgets' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_saved_figure_has_ordinary_file_permissions(tmp_path):
+    # a figure written through a temporary file must end up readable like any file the user
+    # writes (umask-based permissions, common practice), not private to the writer
+    import os
+    import stat
+
+    import matplotlib.pyplot as plt
+
+    from dustkit.plotting import save_figure
+
+    fig, ax = plt.subplots()
+    ax.plot([0, 1], [0, 1])
+    path = save_figure(fig, tmp_path / "f.png")
+    mask = os.umask(0)
+    os.umask(mask)
+    assert stat.S_IMODE(os.stat(path).st_mode) == 0o666 & ~mask
