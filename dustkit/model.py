@@ -59,7 +59,6 @@ _PRIOR_COUNT = 2.0        # pseudo-count pooling a node's scatter toward its edg
 _STUDENT_NU = 8.0         # degrees of freedom of the predictive distribution
 _MC_LIMIT = 300_000
 _CACHE_BYTES = 768 * 2**20  # smoothed statistics kept during cross-validation when they fit       # above this many tracers "auto" switches to the bin-scatter scheme
-_STATS = ("w", "wr", "wr2", "w2", "n")
 
 
 # ----------------------------------------------------------------------------- internals
@@ -646,11 +645,11 @@ class ExtinctionModel:
         grid = self.grid_
         k, _ = grid.edge_position(d)
         e = grid.distance_edges
-        lo = np.maximum(self.layer_._av(b, e[k]), 0)
-        (rl, rh), _, _ = _interp(grid, (self._resid_, self._resid_), l, b, e[k])
-        (rh,), _, _ = _interp(grid, (self._resid_,), l, b, np.minimum(e[k + 1], e[-1]))
-        hi = self.layer_._av(b, e[k + 1]) + rh
-        return np.maximum(hi - (lo + rl), 0.0) / (e[k + 1] - e[k])
+        (r_near,), _, _ = _interp(grid, (self._resid_,), l, b, e[k])
+        (r_far,), _, _ = _interp(grid, (self._resid_,), l, b, e[k + 1])
+        near = self.layer_._av(b, e[k]) + r_near
+        far = self.layer_._av(b, e[k + 1]) + r_far
+        return np.maximum(far - near, 0.0) / (e[k + 1] - e[k])
 
     def av(self, l, b=None, distance=None, distance_err=None):
         """A_V and its predictive 1-sigma uncertainty at arbitrary positions.
