@@ -150,7 +150,8 @@ def test_sexagesimal_strings_match_astropy_angles():
 
 @pytest.mark.parametrize("mu, d_pc", MODULUS_CASES)
 def test_distance_modulus_worked_values(mu, d_pc):
-    # mu0 = 5 log10(d/pc) - 5 (REFERENCES: 10 pc -> 0, 1 kpc -> 10, 2.5 kpc -> 11.98970)
+    # mu0 = 5 log10(d/pc) - 5, the definition of the distance modulus (common practice):
+    # 10 pc -> 0, 1 kpc -> 10, 2.5 kpc -> 11.98970 (computed)
     t = Table({"l": [30.0], "b": [1.0], "DM": [mu], "e_DM": [0.1], "ebv": [0.3], "e_ebv": [0.02]})
     ts = read_tracers(t)
     assert ts.distance_kind == "distance modulus"
@@ -220,7 +221,8 @@ def test_noisy_parallaxes_warn_and_say_why():
 
 
 def test_apparent_modulus_corrected_by_av():
-    # (m - M)_V = mu0 + A_V (REFERENCES, distances); A_V = R_V E(B-V) with R_V = 3.1 (Savage & Mathis 1979).
+    # (m - M)_V = mu0 + A_V (definition of the apparent modulus, common practice); A_V = R_V E(B-V)
+    # with R_V = 3.1 (Savage & Mathis 1979).
     ebv = 0.5
     av = 3.1 * ebv
     t = Table({"l": [40.0], "b": [2.0], "(m-M)V": [10.0 + av], "e_(m-M)V": [0.1], "E(B-V)": [ebv], "e_E(B-V)": [0.03]})
