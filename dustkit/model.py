@@ -431,7 +431,7 @@ class ExtinctionModel:
         """Choose smoothing by cross-validation, calibrate errors, and fill learned arrays."""
         l, b, d, de, av, ae, fold = heldout
         folds = stats.shape[1]
-        lc, bc = grid.pixel_centres()
+        _, bc = grid.pixel_centres()
         edges = grid.distance_edges
         layer_c = layer._av(bc[:, None], edges[None, :])
         kernels = _kernels(grid, passes)
@@ -454,7 +454,6 @@ class ExtinctionModel:
         n = l.size
         take = np.arange(n) if n <= 50_000 else np.sort(rng.choice(n, 50_000, replace=False))
         rows = []
-        best = None
         dkern = {sd: _distance_kernel(edges, sd) for sd in self._distance_sigmas(edges)}
         sigmas = sorted(dkern)
         interp_cache = {}
@@ -494,20 +493,16 @@ class ExtinctionModel:
 
         def score(p, sd, q):
             if (p, sd, q) in scores:
-                return scores[(p, sd, q)][0]
+                return scores[(p, sd, q)]
             pred = np.empty(take.size)
-            pvar = np.empty(take.size)
-            prior = q * edges / 1000.0
             for f, (m, ov, _) in enumerate(observations(p, sd)):  # a handful of folds
-                r, pv = _kalman_smooth(m, ov, edges, q)
+                r, _ = _kalman_smooth(m, ov, edges, q)
                 where, pix_f, w_f, k_f, f_f, lay_f = interp_cache[f]
-                rf, pf = full(r, 0.0), full(pv, prior)
+                rf = full(r, 0.0)
                 lo_r, hi_r = np.sum(rf[pix_f, k_f] * w_f, 0), np.sum(rf[pix_f, k_f + 1] * w_f, 0)
-                lo_v, hi_v = np.sum(pf[pix_f, k_f] * w_f, 0), np.sum(pf[pix_f, k_f + 1] * w_f, 0)
                 pred[where] = np.maximum(lay_f + lo_r + f_f * (hi_r - lo_r), 0.0)
-                pvar[where] = lo_v + f_f * (hi_v - lo_v)
             mse = float(np.mean((av[take] - pred) ** 2))
-            scores[(p, sd, q)] = (mse, pred, pvar)
+            scores[(p, sd, q)] = mse
             rows.append((p, sd, q, mse))
             return mse
 
@@ -523,9 +518,6 @@ class ExtinctionModel:
             if tuple(current) == before:
                 break
         p_best, sd_best, q_best = current
-        _, pred, pvar = scores[tuple(current)]
-        best = (p_best, sd_best, q_best, None, pred, pvar)
-        p_best, sd_best, q_best, _, pred, pvar = best
 
         # calibrate the unresolved scatter on held-out tracers, integrating over each one's
         # distance uncertainty (Gauss-Hermite nodes in log distance)
@@ -553,9 +545,8 @@ class ExtinctionModel:
         self.scatter_ = _calibrate_scatter(av[take], ae[take], node_pred, node_var, gh_w)
 
         # final model from all tracers
-        sm = sm_total
-        del sky_cache, obs_cache, sky_total, sky_folds, stats
-        m, ov, neff = _node_observations(sm)
+        del sky_cache, obs_cache, sky_folds, stats
+        m, ov, neff = _node_observations(sm_total)
         r, pv = _kalman_smooth(m, ov, edges, q_best)
         r, pv, neff = full(r, 0.0), full(pv, q_best * edges / 1000.0), full(neff, 0.0)
         a_nodes = layer_c + r
