@@ -21,25 +21,66 @@ _PC_PER_KPC = 1000.0
 
 def _layer_av_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
     """Closed-form layer A_V (mag) on plain float arrays; distances and heights in pc."""
-    b = np.asarray(b_deg, dtype=float)
+    mu = np.sin(np.deg2rad(np.asarray(b_deg, dtype=float)))
+    return _layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc)
+
+
+def _layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc, out=None, work=None):
+    """Closed-form layer A_V (mag) from ``mu = sin(b)`` and distance (pc).
+
+    ``out`` and ``work`` (two float and two bool arrays of the broadcast shape) are
+    optional buffers, so that builds over millions of tracers reuse memory block after
+    block. Branch-free: one ``expm1`` per element serves both cases (the sight line stays
+    on one side of the mid-plane, or crosses it), and the cases are blended arithmetically
+    (a masked copy costs more than the whole formula on large arrays).
+    """
+    mu = np.asarray(mu, dtype=float)
     d = np.asarray(distance_pc, dtype=float)
-    mu = np.sin(np.deg2rad(b))
+    shape = np.broadcast_shapes(mu.shape, d.shape)
+    if out is None:
+        out = np.empty(shape)
+    if work is None:
+        work = (np.empty(shape), np.empty(shape), np.empty(shape, bool), np.empty(shape, bool))
+    x, t, crossing, zero = work
     a0 = a0_mag_per_kpc / _PC_PER_KPC
-    z0 = np.full(np.broadcast(mu, d).shape, float(z_sun_pc))
-    z1 = z0 + d * mu
-    # side of the mid-plane where the sight line starts; at z0 == 0 it is the side it heads to
-    s = np.where(z0 != 0, np.sign(z0), np.sign(mu))
-    s = np.where(s == 0, 1.0, s)
-    crossing = s * z1 < 0
-    # same side: a0 exp(-|z0|/h) d g(x), g(x) = expm1(x)/x, x = -s d mu / h (stable as mu -> 0)
-    x = -s * d * mu / h_pc
-    with np.errstate(divide="ignore", invalid="ignore"):
-        g = np.where(np.abs(x) > 1e-8, np.expm1(x) / np.where(x == 0, 1.0, x), 1.0 + 0.5 * x)
-        out = np.asarray(a0 * np.exp(-np.abs(z0) / h_pc) * d * g, dtype=float).copy()
-    if crossing.any():
-        # crossing the mid-plane: two one-sided integrals, |mu| >= |z0|/d > 0 here
-        muc, z0c, z1c = (np.broadcast_to(v, crossing.shape)[crossing] for v in (mu, z0, z1))
-        out[crossing] = a0 * h_pc / np.abs(muc) * (-np.expm1(-np.abs(z0c) / h_pc) - np.expm1(-np.abs(z1c) / h_pc))
+    z0 = float(z_sun_pc)
+    h = float(h_pc)
+    np.multiply(d, mu, out=x)  # height gained along the sight line: z1 = z0 + x
+    crosses = False
+    if z0 != 0:
+        (np.less if z0 > 0 else np.greater)(x, -z0, out=crossing)  # ends on the other side of the mid-plane
+        crosses = bool(crossing.any())
+        # x' = -s d mu / h with s the side the sight line starts on
+        np.multiply(x, -np.sign(z0) / h, out=x)
+    else:
+        np.abs(x, out=x)  # from the mid-plane: s is the side it heads to
+        np.multiply(x, -1.0 / h, out=x)
+    np.minimum(x, 700.0, out=x)  # only crossing lines reach x' > |z0|/h; keeps exp finite
+    np.expm1(x, out=out)  # E = exp(x') - 1
+    if crosses:
+        # two one-sided integrals, a0 h / |mu| (1 - exp(-|z0|/h) + 1 - exp(-|z1|/h)), with
+        # exp(-|z1|/h) = exp(|z0|/h) / (1 + E) on a crossing line (there |mu| >= |z0| / d > 0);
+        # kept finite elsewhere so that the blend below is exact
+        np.add(out, 1.0, out=t)
+        np.maximum(t, 1e-200, out=t)
+        np.divide(np.exp(abs(z0) / h), t, out=t)
+        np.subtract(1.0 - np.expm1(-abs(z0) / h), t, out=t)
+        np.multiply(t, a0 * h, out=t)
+        np.equal(mu, 0.0, out=zero)
+        np.abs(t, out=t)
+        np.divide(t, np.add(np.abs(mu), zero), out=t)
+    # one side: a0 exp(-|z0|/h) d g(x'), g = E / x' (stable as mu -> 0; g(0) = 1)
+    np.equal(x, 0.0, out=zero)
+    np.add(x, zero, out=x)   # x' = 0 gives E / 1 + 1 = 1
+    np.divide(out, x, out=out)
+    np.add(out, zero, out=out)
+    np.multiply(out, d, out=out)
+    np.multiply(out, a0 * np.exp(-abs(z0) / h), out=out)
+    if crosses:  # exact blend: a * 1 + b * 0 = a for finite a, b
+        np.multiply(t, crossing, out=t)
+        np.logical_not(crossing, out=crossing)
+        np.multiply(out, crossing, out=out)
+        np.add(out, t, out=out)
     return out
 
 

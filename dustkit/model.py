@@ -38,6 +38,7 @@ from scipy import sparse
 from . import _healpix
 from ._errors import CatalogError, ModelNotFittedError
 from ._isotonic import isotonic_rows
+from ._sums import tracer_sums
 from ._progress import progress
 from ._validation import check_choice, check_int, check_real, param_error, to_value
 from .grid import Grid
@@ -57,8 +58,9 @@ _WEIGHT_FLOOR_MAG = 0.05  # mag; keeps a few very precise tracers from dominatin
 _NEIGHBOUR_WEIGHT = 0.25  # weight of each of the 8 neighbours in one sky-smoothing pass
 _PRIOR_COUNT = 2.0        # pseudo-count pooling a node's scatter toward its edge's median
 _STUDENT_NU = 8.0         # degrees of freedom of the predictive distribution
-_MC_LIMIT = 300_000
-_CACHE_BYTES = 768 * 2**20  # smoothed statistics kept during cross-validation when they fit       # above this many tracers "auto" switches to the bin-scatter scheme
+_MC_LIMIT = 300_000       # above this many tracers "auto" switches to the bin-scatter scheme
+_HELDOUT_MAX = 50_000     # above this many tracers, one held-out set of at most this size
+_CACHE_BYTES = 768 * 2**20  # smoothed statistics kept during cross-validation when they fit
 
 
 # ----------------------------------------------------------------------------- internals
@@ -74,46 +76,35 @@ def _draw_residuals(layer, b, d, d_err, av, av_err, n_draws, rng):
     its error) is spread over ``n_draws`` log-normal draws of its distance: the residual,
     the part of the extinction the smooth layer does not explain, is what is placed at the
     tracer's uncertain distance. (Differencing the layer at each drawn distance instead adds
-    the layer's own slope times the distance error as noise to every draw.) With
-    ``rng is None`` the nominal values are used (bin-scatter scheme).
+    the layer's own slope times the distance error as noise to every draw.)
 
     Returns distances (n_draws, n) and residuals (n_draws, n).
     """
     base = av - layer._av(b, d)
-    if rng is None:
-        return d[None, :], base[None, :]
     frac = np.where(d > 0, d_err / d, 0.0)
     dd = d[None, :] * np.exp(rng.standard_normal((n_draws, d.size)) * frac[None, :])
     rr = base[None, :] + rng.standard_normal((n_draws, d.size)) * av_err[None, :]
     return dd, rr
 
 
-def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_weight=None, out=None):
-    """Add one chunk of (draws of) tracers to the per-fold sufficient statistics.
+def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_weight, out):
+    """Add one chunk of draws of tracers to the per-fold sufficient statistics.
 
     ``out`` has shape (5, n_folds, npix, n_edges): sums of w, w r, w r^2, w^2, n with
-    cloud-in-cell weights in distance. ``per_draw`` is 1 / n_draws. ``pix`` has shape
-    (1, n) for nearest-pixel assignment, or (4, n) with ``sky_weight`` (4, n) for bilinear
-    assignment on the sky (the transpose of the interpolation used to answer queries).
+    cloud-in-cell weights in distance. ``per_draw`` is 1 / n_draws. ``pix`` and
+    ``sky_weight`` have shape (4, n): bilinear assignment on the sky (the transpose of the
+    interpolation used to answer queries).
     """
     E = grid.n_edges
     size = n_folds * grid.npix * E
-    if out is None:
-        out = np.zeros((5, n_folds, grid.npix, E))
     flat = out.reshape(5, size)
     k, f = grid.edge_position(dist)
-    beyond = f > 1.0
-    f = np.clip(f, 0.0, 1.0)
-    cic = ((0, (1.0 - f) * ~beyond), (1, np.where(beyond, 1.0, f)))
+    f = np.clip(f, 0.0, 1.0)  # beyond the last edge: all weight on the last edge
     wt = np.broadcast_to(weight, dist.shape)
-    if sky_weight is None:
-        pix = np.asarray(pix).reshape(1, 1, -1)
-        sky_weight = np.ones((1, 1, 1))
-    else:
-        pix = np.asarray(pix)[:, None, :]
-        sky_weight = np.asarray(sky_weight)[:, None, :]
-    row = (np.asarray(fold).reshape(1, 1, -1) * grid.npix + pix) * E  # (S, 1, n)
-    for shift, c in cic:
+    pix = np.asarray(pix)[:, None, :]
+    sky_weight = np.asarray(sky_weight)[:, None, :]
+    row = (np.asarray(fold).reshape(1, 1, -1) * grid.npix + pix) * E  # (4, 1, n)
+    for shift, c in ((0, 1.0 - f), (1, f)):
         c = c * per_draw  # (draws, n)
         idx = (row + (k + shift)[None]).ravel()
         cs = (sky_weight * c[None]).ravel()
@@ -128,27 +119,61 @@ def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_wei
     return out
 
 
-def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws=1, rng=None, out=None, pix=None):
-    """Add one chunk of tracers to the per-fold statistics ``out`` (the per-tracer step of a build).
+def _weight_floor(layer):
+    """mag added in quadrature to each tracer's A_V error in its weight."""
+    return max(layer.scatter, _WEIGHT_FLOOR_MAG)
 
-    With ``rng`` (Monte Carlo scheme) each tracer's ``draws`` draws are spread bilinearly over
-    the 4 nearest pixels, the transpose of the interpolation that answers queries; without
-    it (bin-scatter scheme, for very large catalogues) each tracer goes to its own pixel,
-    which is 4 times cheaper, and the sky kernel chosen by cross-validation does the
-    spreading. Shared by :meth:`ExtinctionModel.fit` and :mod:`dustkit.scale`.
+
+def heldout_rows(n, n_folds, random_state=0):
+    """Rows held out to choose the smoothing and calibrate the errors, or None for K-fold.
+
+    Up to ``_HELDOUT_MAX`` tracers every tracer is held out once (K-fold cross-validation,
+    folds from :func:`dustkit.scale.fold_of_rows`). Larger catalogues hold out one random
+    set of ``min(_HELDOUT_MAX, n // n_folds)`` rows (sorted) and train on all the others:
+    tens of thousands of held-out tracers pin down a handful of smoothing and error
+    parameters, and the finishing cost no longer grows with the number of folds.
     """
-    weight = 1.0 / (ae**2 + max(layer.scatter, _WEIGHT_FLOOR_MAG) ** 2)
+    if n <= _HELDOUT_MAX:
+        return None
+    m = min(_HELDOUT_MAX, n // n_folds)
+    return np.sort(np.random.default_rng([int(random_state) & 0xFFFFFFFF, 0x4E1D]).choice(n, m, replace=False))
+
+
+def _nominal_statistics(grid, layer, l, b, d, av, ae, fold=None, n_folds=1, held=None, bar=None, threads=None):
+    """Statistics of the bin-scatter scheme: ``(total, fold_stats, counts)`` (see ``_finish``).
+
+    Either ``fold`` (K-fold: the fold of every tracer, ``0 .. n_folds - 1``) or ``held``
+    (the rows of one held-out set) is given. Shared by :meth:`ExtinctionModel.fit` and the
+    chunks of :mod:`dustkit.scale`.
+    """
+    wf = _weight_floor(layer)
+    if fold is not None:
+        stats, counts = tracer_sums(grid, layer, wf, l, b, d, av, ae, fold, n_folds, bar=bar, threads=threads)
+        return stats.sum(axis=1), stats, counts
+    stats, counts = tracer_sums(grid, layer, wf, l, b, d, av, ae, bar=bar, threads=threads)
+    h = np.asarray(held, dtype=np.int64)
+    fold_stats, _ = tracer_sums(grid, layer, wf, l[h], b[h], d[h], av[h], ae[h], threads=threads)
+    return stats[:, 0], fold_stats, counts
+
+
+def _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, draws, rng, out):
+    """Add one chunk of tracers' Monte Carlo draws to the per-fold statistics ``out``.
+
+    Each tracer's ``draws`` draws of distance and A_V are spread bilinearly over the 4
+    nearest pixels, the transpose of the interpolation that answers queries. (The
+    bin-scatter scheme, for very large catalogues, takes nominal values instead and puts
+    each tracer in its own pixel, which is cheaper; the sky kernel chosen by
+    cross-validation does the spreading: :func:`dustkit._sums.tracer_sums`.)
+    """
+    weight = 1.0 / (ae**2 + _weight_floor(layer) ** 2)
     dd, rr = _draw_residuals(layer, b, d, de, av, ae, draws, rng)
-    if rng is None:
-        pix = grid.pixel(l, b) if pix is None else pix
-        return _accumulate(grid, out.shape[1], pix, fold, dd, rr, weight[None, :], 1.0 / draws, None, out=out)
     sky_pix, sky_w = grid.interp_weights(l, b)
-    return _accumulate(grid, out.shape[1], sky_pix, fold, dd, rr, weight[None, :], 1.0 / draws, sky_w, out=out)
+    return _accumulate(grid, out.shape[1], sky_pix, fold, dd, rr, weight[None, :], 1.0 / draws, sky_w, out)
 
 
-def _counts(grid, l, b, d, pix=None):
+def _counts(grid, l, b, d):
     """Tracers per (pixel, distance bin) from nominal positions, flat (npix * n_bins)."""
-    pix = grid.pixel(l, b) if pix is None else pix
+    pix = grid.pixel(l, b)
     k, f = grid.edge_position(d)
     inside = f <= 1.0
     return np.bincount(pix[inside] * grid.n_bins + k[inside], minlength=grid.npix * grid.n_bins)
@@ -408,39 +433,67 @@ class ExtinctionModel:
         rng = np.random.default_rng(self.random_state)
 
         layer = fit_layer(tracers, random_state=self.random_state)
-        # folds from a hash of the row number, as in the chunked builds (dustkit.scale): the
-        # same tracers give the same model whichever way they are read
-        from .scale import fold_of_rows
+        bar = progress(total=n, desc="accumulating tracers", quiet=self.quiet)
+        held = heldout_rows(n, folds, self.random_state)
+        k_fold = held is None
+        if k_fold:
+            # every tracer held out once; folds from a hash of the row number, as in the
+            # chunked builds (dustkit.scale): the same tracers give the same model whichever
+            # way they are read
+            from .scale import fold_of_rows
 
-        fold = fold_of_rows(np.arange(n), folds, self.random_state)
-        stats = np.zeros((5, folds, grid.npix, grid.n_edges))
-        chunk = max(1, 2_000_000 // draws)
-        draw_rng = rng if scheme == "monte-carlo" else None
-        pix = grid.pixel(l, b)  # once, for the statistics and the counts
-        bar = progress(range(0, n, chunk), total=-(-n // chunk), desc="accumulating tracers", quiet=self.quiet)
-        for s in bar:
-            sl = slice(s, s + chunk)
-            _chunk_statistics(grid, layer, l[sl], b[sl], d[sl], de[sl], av[sl], ae[sl], fold[sl], draws, draw_rng,
-                              out=stats, pix=pix[sl])
-        self._finish(grid, layer, stats, passes, (l, b, d, de, av, ae, fold), scheme, draws, rng)
+            fold = fold_of_rows(np.arange(n), folds, self.random_state)
+            held, held_fold = np.arange(n), fold
+        else:
+            held_fold = np.zeros(held.size, dtype=np.int64)
+        with bar:
+            if scheme == "monte-carlo":
+                if k_fold:
+                    slot, n_slots = fold, folds
+                else:  # the held-out set in slot 0, all other tracers in slot 1
+                    slot, n_slots = np.ones(n, dtype=np.int64), 2
+                    slot[held] = 0
+                stats = np.zeros((5, n_slots, grid.npix, grid.n_edges))
+                chunk = max(1, 2_000_000 // draws)
+                for s in range(0, n, chunk):
+                    sl = slice(s, s + chunk)
+                    _chunk_statistics(grid, layer, l[sl], b[sl], d[sl], de[sl], av[sl], ae[sl], slot[sl], draws, rng,
+                                      out=stats)
+                    bar.update(min(chunk, n - s))
+                counts = _counts(grid, l, b, d)
+                total = stats.sum(axis=1)
+                fold_stats = stats if k_fold else stats[:, :1]
+                del stats
+            else:
+                total, fold_stats, counts = _nominal_statistics(
+                    grid, layer, l, b, d, av, ae, fold=fold if k_fold else None, n_folds=folds,
+                    held=None if k_fold else held, bar=bar)
+        self._finish(grid, layer, total, fold_stats, passes,
+                     (l[held], b[held], d[held], de[held], av[held], ae[held], held_fold), scheme, draws, rng)
         self.tracers_ = tracers
-        self.counts_ = _counts(grid, l, b, d, pix).reshape(grid.npix, grid.n_bins)
+        self.counts_ = counts.reshape(grid.npix, grid.n_bins)
         return self
 
-    def _finish(self, grid, layer, stats, passes, heldout, scheme, draws, rng):
-        """Choose smoothing by cross-validation, calibrate errors, and fill learned arrays."""
+    def _finish(self, grid, layer, total, fold_stats, passes, heldout, scheme, draws, rng):
+        """Choose smoothing by cross-validation, calibrate errors, and fill learned arrays.
+
+        ``total`` (5, npix, n_edges) holds the statistics of all tracers, ``fold_stats``
+        (5, n_folds, npix, n_edges) those of the held-out tracers of each fold, and
+        ``heldout`` their arrays (l, b, d, d_err, A_V, A_V_err, fold). Fold ``f`` is
+        predicted from ``total - fold_stats[:, f]``.
+        """
         l, b, d, de, av, ae, fold = heldout
-        folds = stats.shape[1]
+        folds = fold_stats.shape[1]
         _, bc = grid.pixel_centres()
         edges = grid.distance_edges
         layer_c = layer._av(bc[:, None], edges[None, :])
         kernels = _kernels(grid, passes)
         # work only on pixels within reach of the tracers through the widest kernel
-        reach = kernels[max(passes)][0] @ (stats[0].sum(axis=(0, 2)) > 0).astype(float)
+        reach = kernels[max(passes)][0] @ (total[0].sum(axis=1) > 0).astype(float)
         active = np.nonzero(reach > 0)[0]
         kernels = {p: (k[active][:, active].tocsr(), k2[active][:, active].tocsr()) for p, (k, k2) in kernels.items()}
-        stats = stats[:, :, active, :]
-        total = stats.sum(axis=1)
+        stats = fold_stats[:, :, active, :]
+        total = total[:, active, :]
         resid_var = float(np.var(av - layer._av(b, d)))
         span_kpc = max(float(np.median(d)) / 1000.0, 0.1)
         walk = resid_var / span_kpc * np.array([0.1, 0.3, 1.0, 3.0, 10.0])
@@ -450,9 +503,7 @@ class ExtinctionModel:
             out[active] = values
             return out
 
-        # held-out evaluation set (all tracers of small catalogues, a subset of large ones)
-        n = l.size
-        take = np.arange(n) if n <= 50_000 else np.sort(rng.choice(n, 50_000, replace=False))
+        take = np.arange(l.size)  # the held-out tracers (at most _HELDOUT_MAX)
         rows = []
         dkern = {sd: _distance_kernel(edges, sd) for sd in self._distance_sigmas(edges)}
         sigmas = sorted(dkern)

@@ -72,7 +72,7 @@ from ._errors import AssumptionWarning, CatalogError, RowsRejectedWarning
 from ._progress import progress
 from ._validation import check_int, param_error
 from .layer import DustLayer, fit_layer
-from .model import ExtinctionModel, _chunk_statistics, _counts
+from .model import ExtinctionModel, _nominal_statistics
 
 __all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
 
@@ -473,20 +473,30 @@ def _pass1_combine(k, *accs):
 
 # ----------------------------------------------------------------------------- pass 2: sums
 
-def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, rv):
-    """Add one chunk's tracers to the per-fold sufficient statistics and the tracer counts."""
+def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, rv, held):
+    """Add one chunk's tracers to the statistics (all tracers, held-out folds) and the counts.
+
+    ``held`` is None for K-fold cross-validation (every row in a fold from its row number),
+    else the sorted positions of the held-out rows among the accepted rows.
+    """
     a = _read_chunk(chunk, colmap, scale)
     _, (l, b, d, de, av, ae) = _validate(a, rv)
     del a
     if acc is None:
-        acc = (np.zeros((5, n_folds, grid.npix, grid.n_edges)), np.zeros(grid.npix * grid.n_bins, dtype=np.int64))
-    stats, counts = acc
+        shape = (grid.npix, grid.n_edges)
+        acc = (np.zeros((5,) + shape), np.zeros((5, n_folds if held is None else 1) + shape),
+               np.zeros(grid.npix * grid.n_bins, dtype=np.int64))
     if l.size == 0:
         return acc
-    fold = fold_of_rows(offset + np.arange(l.size), n_folds, seed)
-    pix = grid.pixel(l, b)  # once, for the statistics and the counts
-    _chunk_statistics(grid, layer, l, b, d, de, av, ae, fold, 1, None, out=stats, pix=pix)
-    counts += _counts(grid, l, b, d, pix)
+    if held is None:
+        fold, local = fold_of_rows(offset + np.arange(l.size), n_folds, seed), None
+    else:
+        fold = None
+        local = held[np.searchsorted(held, offset):np.searchsorted(held, offset + l.size)] - offset
+    total, fold_stats, counts = _nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds,
+                                                    held=local, threads=1)
+    for mine, part in zip(acc, (total, fold_stats, counts)):
+        mine += part
     return acc
 
 
@@ -498,8 +508,8 @@ def _pass2_combine(*accs):
         if out is None:
             out = a
         else:
-            np.add(out[0], a[0], out=out[0])
-            np.add(out[1], a[1], out=out[1])
+            for mine, part in zip(out, a):
+                mine += part
     return out
 
 
@@ -692,7 +702,7 @@ def build_from_parquet(
     chunks, colmaps, scales, n_rows = _plan(files, chunk_size, cols, hdu)
     if not chunks:
         raise CatalogError(f"{os.fspath(path_or_folder)!r} has no rows; nothing to build from.")
-    stats_bytes = 5 * n_folds * grid.npix * grid.n_edges * 8
+    stats_bytes = 5 * (1 + n_folds) * grid.npix * grid.n_edges * 8
     n_chains = _n_chains(client, stats_bytes, len(chunks))
 
     # pass 1: validate, count, sample
@@ -753,7 +763,10 @@ def build_from_parquet(
     gidx = offsets[s["chunk"]] + s["local"]
     by_key = np.argsort(s["key"], kind="stable")
     layer_rows = np.sort(gidx[by_key[:layer_sample]])
-    held_rows = np.sort(gidx[by_key[:heldout_sample]])
+    # every row held out once (K-fold) when the catalogue fits in the held-out sample; else
+    # one held-out set of the first rows of the sample (at most a fold's worth)
+    k_fold = n_used <= heldout_sample
+    held_rows = np.sort(gidx[by_key[:n_used if k_fold else min(heldout_sample, n_used // n_folds)]])
     order = np.argsort(gidx)
     gidx_sorted = gidx[order]
     data = s["data"][:, order]
@@ -776,10 +789,11 @@ def build_from_parquet(
         layer = fit_layer(layer_set, random_state=model.random_state)
     lap("layer fit")
 
-    # pass 2: per-fold sufficient statistics, chunk by chunk
+    # pass 2: sufficient statistics, chunk by chunk
     sums = _run_chains(
         _pass2_link, _pass2_combine, chunks,
-        lambda i, ch: (ch, colmaps[ch.path], scales[ch.path], int(offsets[i]), grid, layer, n_folds, seed, rv),
+        lambda i, ch: (ch, colmaps[ch.path], scales[ch.path], int(offsets[i]), grid, layer, n_folds, seed, rv,
+                       None if k_fold else held_rows),
         n_chains, client, "accumulating tracers (pass 2 of 2)", quiet, "stats",
     )
     lap("pass 2 (sufficient statistics)")
@@ -787,15 +801,13 @@ def build_from_parquet(
     # finish exactly as in memory, on the held-out rows
     pos = np.searchsorted(gidx_sorted, held_rows)
     hl, hb, hd, hde, hav, hae = data[:, pos]
-    heldout = (hl, hb, hd, hde, hav, hae, fold_of_rows(held_rows, n_folds, seed))
+    held_fold = fold_of_rows(held_rows, n_folds, seed) if k_fold else np.zeros(held_rows.size, dtype=np.int64)
+    heldout = (hl, hb, hd, hde, hav, hae, held_fold)
     _, draws, folds, passes = model._check_params(n_used)
     rng = np.random.default_rng(model.random_state)
-    counts = sums[1]
-    box = [sums[0]]
+    total, fold_stats, counts = sums
     del sums
-    # hand over the only reference, so that _finish can free the full array once it has
-    # taken the pixels it needs
-    model._finish(grid, layer, box.pop(), passes, heldout, "bin-scatter", 1, rng)
+    model._finish(grid, layer, total, fold_stats, passes, heldout, "bin-scatter", 1, rng)
     lap("finish (cross-validation, calibration, isotonic)")
     model.counts_ = counts.reshape(grid.npix, grid.n_bins)
     model.tracers_ = layer_set
