@@ -5,14 +5,16 @@ import numpy as np
 __all__ = []
 
 
-def isotonic_rows(y, w, max_cells=20_000_000):
+def isotonic_rows(y, w, max_cells=1_000_000):
     """Weighted least-squares non-decreasing fit of each row of ``y`` (shape (n, K)).
 
     Uses the min-max formula of isotonic regression,
     ``f_k = max_{i<=k} min_{j>=k} mean_w(y[i..j])`` (Barlow et al. 1972, Statistical
     Inference under Order Restrictions, Thm 1.4), vectorised over rows with cumulative
     sums: O(K^2) per row, which is cheap for the tens of distance edges of a model.
-    Rows that are already non-decreasing are returned unchanged without work.
+    Rows that are already non-decreasing are returned unchanged without work. Rows are
+    processed in chunks of about ``max_cells`` (row, i, j) cells, which keeps the working
+    arrays in the CPU cache.
     """
     y = np.asarray(y, float)
     w = np.asarray(w, float)

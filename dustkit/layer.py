@@ -170,7 +170,7 @@ class DustLayer:
         )
 
 
-def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=200_000, random_state=0):
+def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=50_000, random_state=0):
     """Fit an exponential dust layer to a tracer set by robust weighted least squares.
 
     Parameters
@@ -220,16 +220,18 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=2
     hi = np.array([50.0, 5000.0, 300.0])
     p = np.clip(np.asarray(initial, float), lo + 1e-9, hi - 1e-9)
     scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)
+    mu = np.sin(np.deg2rad(b))
+    buf = (np.empty(b.size), np.empty(b.size), np.empty(b.size, bool), np.empty(b.size, bool))
     for _ in range(3):
         slope = _layer_slope_pc(b, d, *p)
         sigma = np.sqrt(ae**2 + (slope * de) ** 2 + scatter**2)
 
         def resid(q):
-            return (av - _layer_av_pc(b, d, *q)) / sigma
+            return (av - _layer_av_mu(mu, d, *q, work=buf)) / sigma
 
         sol = optimize.least_squares(resid, p, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale, x_scale=[1.0, 100.0, 10.0])
         p = sol.x
-        raw = av - _layer_av_pc(b, d, *p)
+        raw = av - _layer_av_mu(mu, d, *p, work=buf)
         mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
         meas = np.sqrt(np.median(ae**2 + (slope * de) ** 2))
         scatter = float(np.sqrt(max(mad**2 - meas**2, (0.01) ** 2)))

@@ -203,22 +203,23 @@ def _kernels(grid, passes_list):
 
 
 def _smooth(stats, kernel):
-    """Apply a sky kernel to statistics of shape (5, ..., npix, E)."""
-    k, k2 = kernel
+    """Apply a sky kernel to statistics of shape (5, ..., npix, E) (``None``: no smoothing)."""
+    if kernel is None:
+        return stats
+    k, k2 = kernel  # (rows, npix): all pixels, or some rows of the kernel
     s = np.moveaxis(stats, -2, 0)  # (npix, 5, ..., E)
-    shape = s.shape
-    flat = s.reshape(shape[0], -1)
+    shape = (k.shape[0],) + s.shape[1:]
+    flat = s.reshape(s.shape[0], -1)
     sm = (k @ flat).reshape(shape)
-    sm2 = (k2 @ s[:, 3].reshape(shape[0], -1)).reshape((shape[0],) + shape[2:])
+    sm2 = (k2 @ s[:, 3].reshape(s.shape[0], -1)).reshape((shape[0],) + shape[2:])
     sm[:, 3] = sm2  # the sum of squared weights takes the squared kernel (Kish effective size)
     return np.ascontiguousarray(np.moveaxis(sm, 0, -2))
 
 
 def _distance_kernel(edges_pc, sigma_pc):
-    """Gaussian smoothing matrices (G, G squared) along the distance edges; identity for sigma 0."""
+    """Gaussian smoothing matrices (G, G squared) along the distance edges; None for sigma 0."""
     if sigma_pc <= 0:
-        eye = np.eye(edges_pc.size)
-        return eye, eye
+        return None
     g = np.exp(-0.5 * ((edges_pc[:, None] - edges_pc[None, :]) / sigma_pc) ** 2)
     g[0] = 0.0
     g[0, 0] = 1.0  # the node at the first edge is not blurred into farther ones
@@ -226,12 +227,23 @@ def _distance_kernel(edges_pc, sigma_pc):
 
 
 def _smooth_distance(stats, kernel):
-    """Apply a distance kernel along the last axis of statistics of shape (5, ..., E)."""
+    """Apply a distance kernel along the last axis of statistics of shape (5, ..., E) (``None``: none)."""
+    if kernel is None:
+        return stats
     g, g2 = kernel
     E = stats.shape[-1]
     out = (stats.reshape(-1, E) @ g.T).reshape(stats.shape)
     out[3] = (stats[3].reshape(-1, E) @ g2.T).reshape(stats.shape[1:])
     return out
+
+
+def _pixel_median(values, good):
+    """Median of ``values`` over the pixels (axis -2) where ``good``, for each other index; NaN where none."""
+    v = np.sort(np.where(good, values, np.inf).swapaxes(-1, -2), axis=-1)  # (..., E, P)
+    c = np.count_nonzero(good, axis=-2)  # (..., E)
+    lo = np.take_along_axis(v, np.maximum((c - 1) // 2, 0)[..., None], axis=-1)[..., 0]
+    hi = np.take_along_axis(v, np.maximum(c // 2, 0)[..., None], axis=-1)[..., 0]
+    return np.where(c > 0, 0.5 * (lo + hi), np.nan)
 
 
 def _node_observations(st):
@@ -244,9 +256,11 @@ def _node_observations(st):
         neff = np.minimum(neff, n)
     good = neff > 0.05
     # pool each node's scatter with the median scatter at its edge (few tracers -> pooled value)
-    vmed = np.array([np.median(var[..., j][good[..., j]]) if good[..., j].any() else np.nan for j in range(var.shape[-1])])
-    fallback = np.nanmedian(vmed) if np.isfinite(vmed).any() else 0.01
-    vmed = np.where(np.isfinite(vmed), vmed, fallback)
+    vmed = _pixel_median(var, good)  # (..., E)
+    finite = np.isfinite(vmed)
+    fallback = _pixel_median(vmed[..., None], finite[..., None])  # over the edges: (..., 1)
+    fallback = np.where(np.isfinite(fallback), fallback, 0.01)
+    vmed = np.where(finite, vmed, fallback)[..., None, :]
     vreg = (neff * var + _PRIOR_COUNT * vmed) / (neff + _PRIOR_COUNT)
     with np.errstate(divide="ignore", invalid="ignore"):
         obs_var = np.where(good, vreg / np.maximum(neff, 1e-12), np.inf)
@@ -290,6 +304,26 @@ def _kalman_smooth(mean, obs_var, edges_pc, q):
         xs[k] = xf[k] + g * (xs[k + 1] - xf[k])
         ps[k] = pf[k] + g * g * (ps[k + 1] - pp[k + 1])
     return xs.T.reshape(shape), np.maximum(ps, 0.0).T.reshape(shape)
+
+
+def _prediction_matrix(grid, pos, n_rows, l, b, d, sky_weights=None):
+    """Sparse (n, (P + 1) * n_edges) matrix from flattened node arrays to values at (l, b, d).
+
+    Bilinear on the sky, linear in distance (as :func:`_interp`); ``pos`` maps each
+    HEALPix pixel to its row among the P = ``n_rows`` rows of the node arrays, or to row
+    P (one shared row for all other pixels). ``sky_weights`` are the positions' (pixels,
+    weights) from ``grid.interp_weights`` when already known.
+    """
+    pix, w = grid.interp_weights(l, b) if sky_weights is None else sky_weights
+    k, f = grid.edge_position(d)
+    f = np.clip(f, 0.0, 1.0)
+    E = grid.n_edges
+    col = pos[pix] * E + k[None, :]
+    n = np.asarray(l).size
+    data = np.concatenate([(w * (1.0 - f)).ravel(), (w * f).ravel()])
+    cols = np.concatenate([col.ravel(), col.ravel() + 1])
+    rows = np.tile(np.arange(n), 8)
+    return sparse.csr_matrix((data, (rows, cols)), shape=(n, (n_rows + 1) * E))
 
 
 def _interp(grid, values, l, b, d):
@@ -491,7 +525,8 @@ class ExtinctionModel:
         # work only on pixels within reach of the tracers through the widest kernel
         reach = kernels[max(passes)][0] @ (total[0].sum(axis=1) > 0).astype(float)
         active = np.nonzero(reach > 0)[0]
-        kernels = {p: (k[active][:, active].tocsr(), k2[active][:, active].tocsr()) for p, (k, k2) in kernels.items()}
+        kernels = {p: None if p == 0 else (k[active][:, active].tocsr(), k2[active][:, active].tocsr())
+                   for p, (k, k2) in kernels.items()}
         stats = fold_stats[:, :, active, :]
         total = total[:, active, :]
         resid_var = float(np.var(av - layer._av(b, d)))
@@ -503,41 +538,58 @@ class ExtinctionModel:
             out[active] = values
             return out
 
-        take = np.arange(l.size)  # the held-out tracers (at most _HELDOUT_MAX)
+        # Cross-validation works on the rows each fold's held-out tracers need: the nodes of
+        # their 4 interpolation pixels, computed from the other tracers (all minus the fold),
+        # for all folds stacked into one set of rows. One more row stands for every other
+        # pixel (no tracers: residual 0, prior variance), so predictions at held-out tracers
+        # are one sparse product with fixed interpolation weights.
+        members = [np.nonzero(fold == f)[0] for f in range(folds)]
+        sky_w = [grid.interp_weights(l[i], b[i]) for i in members]
+        in_active = np.full(grid.npix, -1)
+        in_active[active] = np.arange(active.size)
+        fold_rows = [np.unique(in_active[pix][in_active[pix] >= 0]) for pix, _ in sky_w]
+        start = np.concatenate([[0], np.cumsum([r.size for r in fold_rows])])
+        n_rows = int(start[-1])
+        maps = []
+        for f, r in enumerate(fold_rows):
+            m = np.full(grid.npix, n_rows)
+            m[active[r]] = start[f] + np.arange(r.size)
+            maps.append(m)
+
+        def extend(values, fill):
+            return np.concatenate([values, np.reshape(fill, (1, -1)) * np.ones((1, edges.size))]).ravel()
+
         rows = []
         dkern = {sd: _distance_kernel(edges, sd) for sd in self._distance_sigmas(edges)}
         sigmas = sorted(dkern)
-        interp_cache = {}
-        for f in range(folds):  # interpolation weights of each fold's held-out tracers, reused
-            sel = take[fold[take] == f]
-            pix_f, w_f = grid.interp_weights(l[sel], b[sel])
-            k_f, f_f = grid.edge_position(d[sel])
-            interp_cache[f] = (np.searchsorted(take, sel), pix_f, w_f, k_f, np.clip(f_f, 0, 1), layer._av(b[sel], d[sel]))
+        lay_held = layer._av(b, d)
+        weights = [_prediction_matrix(grid, maps[f], n_rows, l[i], b[i], d[i], sky_w[f]) for f, i in enumerate(members)]
+        row_kernels = {p: None if k is None else [(k[0][r].tocsr(), k[1][r].tocsr()) for r in fold_rows]
+                       for p, k in kernels.items()}
         obs_cache = {}
         sky_cache = {}
-        # small grids keep every smoothing they make; large ones one at a time (each sky
-        # smoothing holds (1 + folds) copies of the statistics)
-        keep_all = 2 * len(passes) * stats.nbytes < _CACHE_BYTES
+        # small grids keep every smoothing they make; large ones one at a time
+        keep_all = len(passes) * 5 * n_rows * edges.size * 8 < _CACHE_BYTES
 
         def sky(p):
+            """Sky-smoothed statistics of each fold's training tracers at its rows, stacked (5, n_rows, E)."""
             if p not in sky_cache:
                 if not keep_all:
                     sky_cache.clear()
-                sky_cache[p] = (_smooth(total, kernels[p]), _smooth(stats, kernels[p]))
+                parts = []
+                for f, r in enumerate(fold_rows):
+                    if row_kernels[p] is None:
+                        parts.append(total[:, r] - stats[:, f][:, r])
+                    else:
+                        parts.append(_smooth(total, row_kernels[p][f]) - _smooth(stats[:, f], row_kernels[p][f]))
+                sky_cache[p] = np.concatenate(parts, axis=1)
             return sky_cache[p]
 
         def observations(p, sd):
             if (p, sd) not in obs_cache:
                 if not keep_all:
                     obs_cache.clear()
-                sky_total, sky_folds = sky(p)
-                sm_total = _smooth_distance(sky_total, dkern[sd])
-                obs = []
-                for f in range(folds):  # one fold's smoothed sums at a time
-                    sm_f = _smooth_distance(sky_folds[:, f], dkern[sd])
-                    obs.append(_node_observations(sm_total - sm_f))
-                    del sm_f
-                obs_cache[(p, sd)] = obs
+                obs_cache[(p, sd)] = _node_observations(_smooth_distance(sky(p), dkern[sd]))
             return obs_cache[(p, sd)]
 
         scores = {}
@@ -545,14 +597,12 @@ class ExtinctionModel:
         def score(p, sd, q):
             if (p, sd, q) in scores:
                 return scores[(p, sd, q)]
-            pred = np.empty(take.size)
-            for f, (m, ov, _) in enumerate(observations(p, sd)):  # a handful of folds
-                r, _ = _kalman_smooth(m, ov, edges, q)
-                where, pix_f, w_f, k_f, f_f, lay_f = interp_cache[f]
-                rf = full(r, 0.0)
-                lo_r, hi_r = np.sum(rf[pix_f, k_f] * w_f, 0), np.sum(rf[pix_f, k_f + 1] * w_f, 0)
-                pred[where] = np.maximum(lay_f + lo_r + f_f * (hi_r - lo_r), 0.0)
-            mse = float(np.mean((av[take] - pred) ** 2))
+            m, ov, _ = observations(p, sd)
+            r = extend(_kalman_smooth(m, ov, edges, q)[0], 0.0)  # all folds at once
+            pred = np.empty(l.size)
+            for f, i in enumerate(members):
+                pred[i] = np.maximum(lay_held[i] + weights[f] @ r, 0.0)
+            mse = float(np.mean((av - pred) ** 2))
             scores[(p, sd, q)] = mse
             rows.append((p, sd, q, mse))
             return mse
@@ -575,31 +625,33 @@ class ExtinctionModel:
         gh_x, gh_w = np.polynomial.hermite_e.hermegauss(7)
         gh_w = gh_w / gh_w.sum()
         obs_cache.clear()
-        sky_total, sky_folds = sky(p_best)
-        sm_total = _smooth_distance(sky_total, dkern[sd_best])
+        take = np.arange(l.size)
         if take.size > 5000:  # a few thousand held-out tracers pin down three numbers
             take = np.sort(rng.choice(take, 5000, replace=False))
         frac_err = np.where(d[take] > 0, de[take] / d[take], 0.0)
         node_pred = np.empty((gh_x.size, take.size))
         node_var = np.empty((gh_x.size, take.size))
+        prior = q_best * edges / 1000.0
+        m, ov, _ = observations(p_best, sd_best)
+        r, pv = _kalman_smooth(m, ov, edges, q_best)
+        r, pv = extend(r, 0.0), extend(pv, prior)
         for f in range(folds):
-            m, ov, _ = _node_observations(sm_total - _smooth_distance(sky_folds[:, f], dkern[sd_best]))
-            r, pv = _kalman_smooth(m, ov, edges, q_best)
-            rf, pf = full(r, 0.0), full(pv, q_best * edges / 1000.0)
             isel = np.nonzero(fold[take] == f)[0]
             sel = take[isel]
+            pix_w = grid.interp_weights(l[sel], b[sel])
             for j, xj in enumerate(gh_x):
                 dj = d[sel] * np.exp(xj * frac_err[isel])
-                (ri, vi), _, _ = _interp(grid, (rf, pf), l[sel], b[sel], dj)
-                node_pred[j, isel] = np.maximum(layer._av(b[sel], dj) + ri, 0.0)
-                node_var[j, isel] = vi
+                wj = _prediction_matrix(grid, maps[f], n_rows, l[sel], b[sel], dj, pix_w)
+                node_pred[j, isel] = np.maximum(layer._av(b[sel], dj) + wj @ r, 0.0)
+                node_var[j, isel] = wj @ pv
         self.scatter_ = _calibrate_scatter(av[take], ae[take], node_pred, node_var, gh_w)
+        sm_total = _smooth_distance(_smooth(total, kernels[p_best]), dkern[sd_best])
 
         # final model from all tracers
-        del sky_cache, obs_cache, sky_folds, stats
+        del sky_cache, obs_cache, stats
         m, ov, neff = _node_observations(sm_total)
         r, pv = _kalman_smooth(m, ov, edges, q_best)
-        r, pv, neff = full(r, 0.0), full(pv, q_best * edges / 1000.0), full(neff, 0.0)
+        r, pv, neff = full(r, 0.0), full(pv, prior), full(neff, 0.0)
         a_nodes = layer_c + r
         a_iso = isotonic_rows(a_nodes, 1.0 / (pv + 1e-6))
         a_iso = np.maximum(a_iso, 0.0)
@@ -902,20 +954,59 @@ def _calibrate_scatter(av, av_err, node_pred, node_var, node_weight):
     from scipy import optimize, special
 
     nu = _STUDENT_NU
-    resid2 = (av[None, :] - node_pred) ** 2
-    ae2 = av_err[None, :] ** 2
+    resid2 = (av[None, :] - node_pred) ** 2 / nu
+    ae2 = av_err[None, :] ** 2 + 1e-8
     pred2 = node_pred**2
-    log_c = float(special.gammaln((nu + 1) / 2) - special.gammaln(nu / 2) - 0.5 * np.log(nu * np.pi))
+    c = float(np.exp(special.gammaln((nu + 1) / 2) - special.gammaln(nu / 2) - 0.5 * np.log(nu * np.pi)))
+    assert nu == 8.0  # (1 + x)^-(nu+1)/2 below is written out as 1 / ((1 + x)^4 sqrt(1 + x))
+    s2 = np.empty_like(node_pred)
+    t = np.empty_like(node_pred)
+    u = np.empty_like(node_pred)
+    g = np.empty_like(node_pred)
 
     def nll(theta):
+        """Negative log-likelihood and its gradient in theta = log(kappa, root^2, frac^2)."""
         kappa, root2, frac2 = np.exp(theta)
-        scale2 = kappa * node_var + ae2 + root2 * node_pred + frac2 * pred2 + 1e-8
-        dens = np.exp(log_c - 0.5 * (nu + 1) * np.log1p(resid2 / (nu * scale2))) / np.sqrt(scale2)
-        return -np.sum(np.log(np.maximum(node_weight @ dens, 1e-300)))
+        # squared scale S and the t density c (1 + R/S)^-(nu+1)/2 / sqrt(S), R = r^2 / nu
+        np.multiply(node_var, kappa, out=s2)
+        np.add(s2, ae2, out=s2)
+        np.add(s2, root2 * node_pred, out=s2)
+        np.add(s2, frac2 * pred2, out=s2)
+        np.divide(resid2, s2, out=u)
+        np.add(u, 1.0, out=u)                 # 1 + R/S
+        np.sqrt(u, out=t)
+        np.multiply(t, u, out=t)
+        np.multiply(t, u, out=t)
+        np.multiply(t, u, out=t)
+        np.multiply(t, u, out=t)              # (1 + R/S)^(9/2)
+        np.reciprocal(u, out=u)
+        np.negative(u, out=u)
+        np.add(u, 1.0, out=u)                 # (R/S) / (1 + R/S)
+        np.multiply(u, (nu + 1) / 2, out=u)
+        np.subtract(u, 0.5, out=u)
+        np.divide(u, s2, out=g)               # d log(density) / dS
+        np.sqrt(s2, out=u)
+        np.multiply(t, u, out=t)
+        np.reciprocal(t, out=t)               # density / c
+        dens = node_weight @ t
+        dens = np.maximum(dens, 1e-300 / c)
+        np.multiply(g, t, out=g)
+        grad = np.array([
+            -np.sum((node_weight @ (g * node_var)) / dens) * kappa,
+            -np.sum((node_weight @ (g * node_pred)) / dens) * root2,
+            -np.sum((node_weight @ (g * pred2)) / dens) * frac2,
+        ])
+        return -np.sum(np.log(c * dens)), grad
 
+    # the likelihood has more than one basin (the model's own variance and the unresolved
+    # scatter can trade places): start a gradient search from the best points of a coarse grid
+    grid = np.log(np.array(np.meshgrid([1e-3, 1e-2, 0.1, 1.0, 10.0], [1e-6, 1e-3, 1e-2, 0.1],
+                                       [1e-6, 1e-4, 1e-3, 1e-2, 0.1], indexing="ij")).reshape(3, -1).T)
+    values = np.array([nll(theta)[0] for theta in grid])
     best = None
-    for start in ((0.0, np.log(0.01), np.log(0.01)), (np.log(0.1), np.log(0.05), np.log(1e-3))):
-        res = optimize.minimize(nll, np.array(start), method="Nelder-Mead", options={"xatol": 1e-3, "fatol": 1e-6, "maxiter": 2000})
+    for start in grid[np.argsort(values)[:3]]:
+        res = optimize.minimize(nll, start, jac=True, method="L-BFGS-B",
+                                bounds=[(-12.0, 6.0), (-25.0, 3.0), (-25.0, 3.0)])
         if best is None or res.fun < best.fun:
             best = res
     kappa, root2, frac2 = np.exp(best.x)

@@ -610,7 +610,7 @@ def build_from_parquet(
     chunk_size=1_000_000,
     client=None,
     layer=None,
-    layer_sample=200_000,
+    layer_sample=50_000,
     heldout_sample=50_000,
     law="ccm89",
     rv=3.1,
