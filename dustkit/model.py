@@ -190,15 +190,23 @@ def _neighbour_matrix(grid):
     return (m + sparse.identity(npix, format="csr")).tocsr()
 
 
-def _kernels(grid, passes_list):
-    """Sky kernels (K, K squared element-wise) for each number of smoothing passes."""
+def _kernels(grid, passes_list, pixels):
+    """Sky kernels (K, K squared element-wise) for each number of smoothing passes.
+
+    Restricted to ``pixels`` (rows and columns): the rows are computed as ``K[pixels] =
+    K_1[pixels] K_1 ... K_1``, so the cost grows with the pixels in use, not the sky; paths
+    through other pixels are kept. No smoothing (0 passes) is ``None``.
+    """
     one = _neighbour_matrix(grid)
     out = {}
-    k = sparse.identity(grid.npix, format="csr")
+    k = sparse.csr_matrix((np.ones(pixels.size), (np.arange(pixels.size), pixels)), shape=(pixels.size, grid.npix))
     for p in range(max(passes_list) + 1):
-        if p in passes_list:
-            out[p] = (k, k.multiply(k).tocsr())
-        k = (one @ k).tocsr()
+        if p in passes_list and p > 0:
+            kk = k[:, pixels].tocsr()
+            out[p] = (kk, kk.multiply(kk).tocsr())
+        elif p in passes_list:
+            out[p] = None
+        k = (k @ one).tocsr()
     return out
 
 
@@ -521,12 +529,13 @@ class ExtinctionModel:
         _, bc = grid.pixel_centres()
         edges = grid.distance_edges
         layer_c = layer._av(bc[:, None], edges[None, :])
-        kernels = _kernels(grid, passes)
         # work only on pixels within reach of the tracers through the widest kernel
-        reach = kernels[max(passes)][0] @ (total[0].sum(axis=1) > 0).astype(float)
+        reach = (total[0].sum(axis=1) > 0).astype(float)
+        one = _neighbour_matrix(grid)
+        for _ in range(max(passes)):
+            reach = one @ reach
         active = np.nonzero(reach > 0)[0]
-        kernels = {p: None if p == 0 else (k[active][:, active].tocsr(), k2[active][:, active].tocsr())
-                   for p, (k, k2) in kernels.items()}
+        kernels = _kernels(grid, passes, active)
         stats = fold_stats[:, :, active, :]
         total = total[:, active, :]
         resid_var = float(np.var(av - layer._av(b, d)))
@@ -578,10 +587,8 @@ class ExtinctionModel:
                     sky_cache.clear()
                 parts = []
                 for f, r in enumerate(fold_rows):
-                    if row_kernels[p] is None:
-                        parts.append(total[:, r] - stats[:, f][:, r])
-                    else:
-                        parts.append(_smooth(total, row_kernels[p][f]) - _smooth(stats[:, f], row_kernels[p][f]))
+                    train = total - stats[:, f]  # the fold's training tracers
+                    parts.append(train[:, r] if row_kernels[p] is None else _smooth(train, row_kernels[p][f]))
                 sky_cache[p] = np.concatenate(parts, axis=1)
             return sky_cache[p]
 
