@@ -25,6 +25,7 @@ def pixarea_deg2(nside):
 
 
 _PARALLEL_MIN = 200_000  # positions above which the work is split over the CPU's cores
+_BLOCK = 32_768          # positions per block of element-wise work
 
 
 def _split(func, n, *arrays):
@@ -158,14 +159,101 @@ def pix2ang(nside, pixels, nest=False):
     return np.asarray(l, float), np.asarray(b, float)
 
 
+_RINGS = {}
+
+
+def _ring_table(nside):
+    """Per ring 0 .. 4 nside: first pixel, pixels in the ring, colatitude (rad), shifted (0/1).
+
+    HEALPix ring geometry (Gorski et al. 2005, section 4); rings 0 and 4 nside are the
+    poles (placeholders, not used for pixels).
+    """
+    table = _RINGS.get(nside)
+    if table is not None:
+        return table
+    npix = 12 * nside * nside
+    ring = np.arange(4 * nside + 1)
+    north = np.where(ring > 2 * nside, 4 * nside - ring, ring)
+    cap = north < nside
+    tmp = north * north * (4.0 / npix)
+    theta = np.where(cap, np.arctan2(np.sqrt(tmp * (2 - tmp)), 1 - tmp),
+                     np.arccos(np.clip((2 * nside - north) * (8.0 * nside / npix), -1, 1)))
+    count = np.where(cap, 4 * north, 4 * nside)
+    shifted = np.where(cap, 1, ((north - nside) & 1) == 0).astype(float)
+    start = np.where(cap, 2 * north * (north - 1), 2 * nside * (nside - 1) + (north - nside) * 4 * nside)
+    south = north != ring
+    theta = np.where(south, np.pi - theta, theta)
+    start = np.where(south, npix - start - count, start)
+    table = _RINGS[nside] = (start.astype(np.int64), count.astype(np.int64), theta, shifted)
+    return table
+
+
+def _interp_ring(nside, l_deg, b_deg):
+    """RING pixels and weights (4, n) of bilinear interpolation at (l, b), in numpy.
+
+    The HEALPix interpolation of the reference library: the two rings around the point,
+    in each the two pixel centres around its longitude, weights linear in longitude within
+    a ring and in colatitude between the rings, with the pole handled by the four pixels
+    around it (Gorski et al. 2005). Equal to ``healpy.get_interp_weights`` (checked in the
+    tests).
+    """
+    start, count, ring_theta, shifted = _ring_table(nside)
+    npix = 12 * nside * nside
+    theta = np.pi / 2 - np.deg2rad(b_deg)
+    phi = np.deg2rad(np.mod(l_deg, 360.0))
+    z = np.cos(theta)
+    az = np.abs(z)
+    polar = np.floor(nside * np.sqrt(3 * (1 - az)))
+    ir1 = np.where(az <= 2.0 / 3.0, np.floor(nside * (2 - 1.5 * z)),
+                   np.where(z > 0, polar, 4 * nside - polar - 1)).astype(np.int64)
+    ir2 = ir1 + 1
+    pix = np.empty((4,) + theta.shape, dtype=np.int64)
+    wgt = np.empty((4,) + theta.shape)
+    for j, ir in ((0, ir1), (2, ir2)):
+        r = np.clip(ir, 1, 4 * nside - 1)  # rings 0 and 4 nside: the poles, fixed below
+        nr = count[r]
+        dphi = 2 * np.pi / nr
+        tmp = phi / dphi - 0.5 * shifted[r]
+        i1 = np.floor(tmp).astype(np.int64)
+        w1 = (phi - (i1 + 0.5 * shifted[r]) * dphi) / dphi
+        pix[j] = start[r] + np.mod(i1, nr)
+        pix[j + 1] = start[r] + np.mod(i1 + 1, nr)
+        wgt[j] = 1 - w1
+        wgt[j + 1] = w1
+    theta1, theta2 = ring_theta[ir1], ring_theta[np.minimum(ir2, 4 * nside)]
+    north, south = ir1 == 0, ir2 == 4 * nside
+    mid = ~(north | south)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        wt = np.where(north, theta / theta2, np.where(south, (theta - theta1) / (np.pi - theta1),
+                                                      (theta - theta1) / (theta2 - theta1)))
+    wgt[0:2] *= np.where(mid | south, 1 - wt, 1.0)
+    wgt[2:4] *= np.where(mid | north, wt, 1.0)
+    if north.any():  # above the first ring: the pole's share goes to the 4 pixels around it
+        fac = (1 - wt[north]) * 0.25
+        wgt[0:2, north] = fac
+        wgt[2:4, north] += fac
+        pix[0:2, north] = (pix[2:4, north] + 2) & 3
+    if south.any():
+        fac = wt[south] * 0.25
+        wgt[0:2, south] += fac
+        wgt[2:4, south] = fac
+        pix[2:4, south] = ((pix[0:2, south] + 2) & 3) + npix - 4
+    return pix, wgt
+
+
 def interp_weights(nside, l_deg, b_deg, nest=False):
     """Bilinear interpolation pixels and weights, each (4, n) (as healpy.get_interp_weights)."""
     l = np.asarray(l_deg, float)
     b = np.asarray(b_deg, float)
 
     def one(x, y):
-        p, w = _hp.get_interp_weights(nside, x, y, nest=nest, lonlat=True)
-        return np.asarray(p), np.asarray(w)
+        if x.ndim != 1 or x.size <= _BLOCK:
+            p, w = _interp_ring(nside, x, y)
+        else:  # in cache-sized blocks: temporaries of the whole array cost more than the arithmetic
+            p, w = np.empty((4, x.size), dtype=np.int64), np.empty((4, x.size))
+            for s in range(0, x.size, _BLOCK):
+                p[:, s:s + _BLOCK], w[:, s:s + _BLOCK] = _interp_ring(nside, x[s:s + _BLOCK], y[s:s + _BLOCK])
+        return (ring_to_nested(nside, p) if nest else p), w
 
     if l.ndim != 1 or l.shape != b.shape:
         return one(l, b)

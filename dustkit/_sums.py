@@ -22,6 +22,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 
 from . import _healpix
+from .grid import _edges_info, edge_index
 from .layer import _layer_av_mu
 
 __all__ = []
@@ -61,63 +62,6 @@ class _Scratch:
         v.pix = tuple(a[:n] for a in self.pix)
         v.m = tuple(a[:n] for a in self.m)
         return v
-
-
-def _edges_info(edges):
-    """(first edge, step) when the edges are evenly spaced, else None."""
-    steps = np.diff(edges)
-    step = float(edges[1] - edges[0])
-    if np.allclose(steps, step, rtol=1e-12, atol=0.0):
-        return float(edges[0]), step
-    return None
-
-
-def edge_index(edges, d, k_out=None, f_out=None, uniform=None, work=None):
-    """Lower edge ``k`` and fraction ``f`` of each distance (as :meth:`Grid.edge_position`).
-
-    Evenly spaced edges take one division and a floor, then a check against the edges
-    themselves, so the result equals ``np.searchsorted(edges, d, side="right") - 1``;
-    others use ``np.searchsorted``. Distances beyond the last edge get the last bin with
-    ``f > 1``; below the first edge, bin 0 with ``f < 0``. ``work`` is optional buffers
-    (two float, one int64, two bool arrays of the size of ``d``).
-    """
-    d = np.asarray(d, float)
-    nb = edges.size - 1
-    if work is None:
-        work = (np.empty(d.shape), np.empty(d.shape), np.empty(d.shape, np.int64),
-                np.empty(d.shape, bool), np.empty(d.shape, bool))
-    lo, gap, j, m1, m2 = work
-    k = np.empty(d.shape, dtype=np.int64) if k_out is None else k_out
-    f = np.empty(d.shape) if f_out is None else f_out
-    if uniform is None:
-        uniform = _edges_info(edges)
-    if uniform is not None:
-        e0, step = uniform
-        np.subtract(d, e0, out=f)
-        np.multiply(f, 1.0 / step, out=f)
-        np.floor(f, out=f)
-        np.clip(f, 0, nb - 1, out=f)
-        np.copyto(k, f, casting="unsafe")
-        # rounding in d / step can put a distance next to an edge in the wrong bin: check
-        np.take(edges, k, out=lo)
-        np.less(d, lo, out=m1)
-        np.less(0, k, out=m2)
-        m1 &= m2
-        k -= m1
-        np.add(k, 1, out=j)
-        np.take(edges, j, out=lo)
-        np.greater_equal(d, lo, out=m1)
-        np.less(k, nb - 1, out=m2)
-        m1 &= m2
-        k += m1
-    else:
-        k[...] = np.searchsorted(edges, d, side="right") - 1
-        np.clip(k, 0, nb - 1, out=k)
-    np.take(edges, k, out=lo)
-    np.take(np.diff(edges), k, out=gap)
-    np.subtract(d, lo, out=f)
-    np.divide(f, gap, out=f)
-    return k, f
 
 
 def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch, at, scratch, beyond):

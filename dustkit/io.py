@@ -344,8 +344,13 @@ def _model_hdus(model):
 
     cv = state.get("cv")
     if cv is not None and len(cv):
-        cvh = fits.table_to_hdu(Table(cv))
+        cvt = Table(cv)
+        scheme = cvt.meta.pop("validation", None)
+        cvt.meta.clear()
+        cvh = fits.table_to_hdu(cvt)
         cvh.name = "CV"
+        if scheme:
+            cvh.header["CVSCHEME"] = (str(scheme), "how the smoothing was chosen")
         hdus.append(cvh)
     return fits.HDUList(hdus)
 
@@ -593,6 +598,9 @@ def _model_from_parts(path, parts):
         for c, unit in (("distance_smoothing", u.pc), ("walk_variance", u.mag**2 / u.kpc), ("cv_mse", u.mag**2)):
             if c in cv.colnames and cv[c].unit is None:
                 cv[c].unit = unit
+        scheme = cv.meta.pop("CVSCHEME", None)
+        if scheme:
+            cv.meta["validation"] = scheme
         model.cv_ = cv
     return model
 
