@@ -72,13 +72,12 @@ def _direct_sums(grid, layer, floor, l, b, d, av, ae, slot, n_slots):
     pix = hp.ang2pix(grid.nside, l, b, nest=grid.nest, lonlat=True)
     e = grid.distance_edges
     k = np.clip(np.searchsorted(e, d, side="right") - 1, 0, e.size - 2)
-    f = np.clip((d - e[k]) / (e[k + 1] - e[k]), 0.0, 1.0)
+    nearest = np.argmin(np.abs(d[:, None] - e[None, :]), axis=1)  # beyond the last edge: the last edge
     r = av - layer._av(b, d)
     w = 1.0 / (ae**2 + floor**2)
     out = np.zeros((5, n_slots, grid.npix, grid.n_edges))
-    for c, kk in ((1.0 - f, k), (f, k + 1)):
-        for j, q in enumerate((w, w * r, w * r * r, w * w, np.ones_like(w))):
-            np.add.at(out[j], (slot, pix, kk), q * c)
+    for j, q in enumerate((w, w * r, w * r * r, w * w, np.ones_like(w))):
+        np.add.at(out[j], (slot, pix, nearest), q)
     inside = (d - e[k]) / (e[k + 1] - e[k]) <= 1.0
     counts = np.zeros((grid.npix, grid.n_bins), dtype=np.int64)
     np.add.at(counts, (pix[inside], k[inside]), 1)
@@ -87,11 +86,13 @@ def _direct_sums(grid, layer, floor, l, b, d, av, ae, slot, n_slots):
 
 @pytest.mark.parametrize("ordering", ["ring", "nested"])
 def test_tracer_sums_equal_direct_accumulation(ordering):
+    # each tracer's weight, weighted residual etc. summed at its nearest distance edge
     rng = np.random.default_rng(7)
     n = 300_000  # more than one batch of blocks, several threads
     l, b = rng.uniform(0, 360, n), np.rad2deg(np.arcsin(rng.uniform(-0.9, 0.9, n)))
     d = rng.uniform(0, 7000, n)  # some beyond the last edge (6 kpc)
     d[:41] = np.arange(41) * 150.0  # exactly on edges
+    d[41:81] = np.arange(40) * 150.0 + 75.0001  # just past bin midpoints
     av, ae = rng.normal(1.0, 1.0, n), rng.uniform(0.02, 0.2, n)
     slot = rng.integers(0, 3, n)
     grid = Grid(16, np.arange(41) * 150.0, ordering)
