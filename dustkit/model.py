@@ -2,14 +2,18 @@
 
 How a model is built (``ExtinctionModel.fit``):
 
-1. Fit the smooth exponential dust layer to all tracers (:func:`dustkit.layer.fit_layer`).
+1. Fit the smooth exponential dust layer to the tracers (:func:`dustkit.layer.fit_layer`;
+   a random 50 000 of them in larger catalogues).
 2. Take each tracer's residual from the layer (the extinction the layer does not explain)
    and spread it over Monte Carlo draws of its distance (log-normal) and A_V (normal), so
    a tracer informs the cumulative extinction at its own uncertain distance. Large
    catalogues skip the draws and use the scatter within bins instead
    (``uncertainty_scheme_`` records which).
-3. Accumulate weighted sums of the residuals per (pixel, distance edge) with linear
-   (cloud-in-cell) weights in distance: the sufficient statistics of the model.
+3. Accumulate weighted sums of the residuals per (pixel, distance edge): the sufficient
+   statistics of the model. Monte Carlo draws are split between the two edges around
+   them with linear (cloud-in-cell) weights and spread bilinearly over the 4 nearest
+   pixels; in the bin-scatter scheme each tracer goes whole to its own pixel and nearest
+   edge, in one fast pass (:mod:`dustkit._sums`).
 4. Smooth the statistics on the sky with a neighbour kernel (HEALPix 8-neighbours,
    repeated passes) and combine along each sight line with a random-walk state-space model
    of the cumulative residual (Kalman filter + Rauch-Tung-Striebel smoother; Rauch, Tung &
@@ -17,16 +21,20 @@ How a model is built (``ExtinctionModel.fit``):
    i.e. the model falls back to the layer, with an uncertainty that grows with distance;
    beyond the last tracer the residual is carried forward with growing uncertainty.
 5. Choose the sky kernel width, the distance kernel width and the random-walk strength by
-   K-fold cross-validation on held-out tracers, and calibrate the predictive uncertainty
-   (the scatter of extinction around the model on scales it cannot resolve) by maximum
-   likelihood on the same held-out tracers, integrating over their distance errors, so
-   that 1-sigma intervals cover about 68% of the truth.
+   cross-validation on held-out tracers (K-fold up to 50 000 tracers; above, one random
+   held-out set of 50 000, the others training), and calibrate the predictive
+   uncertainty (the scatter of extinction around the model on scales it cannot resolve)
+   by maximum likelihood on held-out tracers, integrating over their distance errors, so
+   that 1-sigma intervals cover about 68% of the truth. The held-out tracers are
+   predicted only where they are: the nodes of their interpolation pixels, computed from
+   the training tracers' sums (``cv_.meta["validation"]`` records the scheme).
 6. Enforce non-decreasing cumulative A_V along every pixel's sight line by weighted
    isotonic regression (Barlow et al. 1972).
 
 Answers at any (l, b, d) evaluate the layer at the exact position and add the binned
-residual interpolated bilinearly on the sky (``healpy.get_interp_weights``) and linearly in
-distance, so the answer is not constant across a pixel.
+residual interpolated bilinearly on the sky (the HEALPix interpolation of
+``healpy.get_interp_weights``, computed in numpy blocks by :mod:`dustkit._healpix`) and
+linearly in distance, so the answer is not constant across a pixel.
 """
 
 import os
@@ -409,7 +417,9 @@ class ExtinctionModel:
         Monte Carlo draws per tracer (default: about 2 million draws in total, 8 to 64 per
         tracer).
     n_folds : int
-        Folds of the cross-validation that chooses the smoothing and calibrates the errors.
+        Folds of the cross-validation that chooses the smoothing and calibrates the errors
+        (up to 50 000 tracers; larger catalogues hold out one set of
+        ``min(50 000, n / n_folds)`` tracers instead).
     sky_passes : sequence of int
         Candidate numbers of neighbour-smoothing passes on the sky (0 = none).
     random_state : int
@@ -438,7 +448,8 @@ class ExtinctionModel:
     scatter_ : dict
         Calibrated predictive variance: ``scale^2 (kappa * post_var + root^2 * A_V + (frac * A_V)^2)``.
     cv_ : astropy.table.Table
-        Cross-validation score of every candidate setting.
+        Cross-validation score of every candidate setting; ``cv_.meta["validation"]``
+        says how the tracers were held out.
     """
 
     def __init__(

@@ -13,15 +13,16 @@ Pass 1 (sample)
     once with a :class:`~dustkit._errors.RowsRejectedWarning`). A deterministic uniform
     random sample is kept: the rows with the smallest values of a 64-bit hash of their row
     number (a "bottom-k" sample, which merges exactly across chunks and workers). The
-    smooth dust layer is fitted to the sample (``layer_sample`` rows), and its first
-    ``heldout_sample`` rows are the held-out tracers of the cross-validation that chooses
-    the smoothing and calibrates the uncertainties.
+    smooth dust layer is fitted to the sample (``layer_sample`` rows). Catalogues of at
+    most ``heldout_sample`` rows are cross-validated K-fold over all rows (each row's fold
+    a hash of its position among the accepted rows); larger ones hold out the first
+    ``min(heldout_sample, n / n_folds)`` rows of the sample as one held-out set.
 Pass 2 (sufficient statistics)
-    Every chunk adds its tracers to the per-fold sums of weights and weighted residuals
-    from the layer per (pixel, distance edge), with the model's own per-chunk step
-    (``dustkit.model._chunk_statistics``, as in :meth:`ExtinctionModel.fit`).
-    Each tracer's fold is a hash of its position among the accepted rows, so it does not
-    depend on the chunking or on which worker reads it. Chunks are processed by dask: one
+    Every chunk adds its tracers to the sums of weights and weighted residuals from the
+    layer per (pixel, distance edge), and its held-out rows to the held-out sums, with the
+    model's own per-tracer step (:func:`dustkit.model._nominal_statistics`, as in
+    :meth:`ExtinctionModel.fit`). Neither depends on the chunking or on which worker reads
+    a chunk. Chunks are processed by dask: one
     task per chunk, in as many parallel chains as there are threads (each chain adds its
     chunks into one array), then the chains' arrays are summed pairwise. With a
     ``dask.distributed`` client the tasks run on the cluster; otherwise on dask's local
@@ -40,21 +41,18 @@ enters once at its nominal distance and in its own sky pixel (the sky kernel cho
 cross-validation does the spreading), and the uncertainty of a node comes from the
 weighted scatter of the tracers around it (distance errors show up as that scatter). The
 unresolved-scatter calibration still integrates over each held-out tracer's distance
-uncertainty. Two further differences, both for catalogues larger than the samples: the
-layer is fitted to a ``layer_sample``-row sample, and the candidate random-walk strengths
-and the calibration use the ``heldout_sample`` held-out rows instead of all tracers.
-For the same tracers, the same layer, the same held-out rows and folds assigned by
-:func:`fold_of_rows`, the per-fold statistics, the tracer counts and the final model equal
-the in-memory ``'bin-scatter'`` build to floating-point summation tolerance (the final
-cumulative A_V depends on the sums over all folds only, so it agrees whatever the folds
-whenever the cross-validation picks the same smoothing).
+uncertainty. For the same tracers, the same layer and the same held-out rows, the
+statistics, the tracer counts and the final model equal the in-memory ``'bin-scatter'``
+build to floating-point summation tolerance. (In memory, catalogues above 50 000 tracers
+hold out a random set drawn from the row numbers; here the held-out rows come from the
+hashed sample, so the two pick different, equally random, held-out sets.)
 
 Memory
 ------
 Peak memory is set by the grid and the chunk size, not by the catalogue: each parallel
-chain holds one statistics array of ``5 x n_folds x npix x n_edges`` float64 (NSIDE 64,
-51 edges, 5 folds: 0.5 GB) and one chunk of rows (about 0.3 GB per million rows while it
-is being added). The number of local chains is capped so that their arrays stay under
+chain holds statistics arrays of ``5 x (1 + n_folds) x npix x n_edges`` float64 at most
+(NSIDE 64, 51 edges, K-fold: 0.6 GB; one held-out set: 0.2 GB) and one chunk of rows
+(about 0.3 GB per million rows while it is being added). The number of local chains is capped so that their arrays stay under
 2 GiB. The finishing step needs what the in-memory build of the same grid needs.
 """
 
@@ -640,7 +638,8 @@ def build_from_parquet(
     layer_sample : int
         Rows of the deterministic random sample the layer is fitted to.
     heldout_sample : int
-        Rows of that sample used as held-out tracers by the cross-validation.
+        Catalogues up to this many rows are cross-validated K-fold over all rows; larger
+        ones hold out ``min(heldout_sample, n / n_folds)`` rows of the sample.
     law, rv
         Extinction law and R_V the catalogue's A_V refers to (kept with the model; they
         set the conversion to other bands and the A_V rejection limits).

@@ -951,8 +951,8 @@ class _Context:
         counts = self.rej.counts()
         if file_sha is None:
             sha = hashlib.sha256()
-            for a in arrays:
-                sha.update(np.ascontiguousarray(a).tobytes())
+            for a in arrays:  # hashed in place: no byte copies of large arrays
+                sha.update(np.ascontiguousarray(a).reshape(-1).view(np.uint8))
             digest, of = sha.hexdigest(), "arrays"
         else:
             digest, of = file_sha, "file"
@@ -1712,8 +1712,8 @@ def _reddening(table, cols, ctx, law, rv, default_err, limits, excess_color):
 
 def _names(table, cols):
     n = len(table)
-    if "name" not in cols:
-        return np.char.add("row ", np.arange(n).astype(str)) if n else np.zeros(0, dtype=str)
+    if "name" not in cols:  # "row <i>", as narrow a string type as the numbers allow
+        return np.char.add("row ", np.arange(n).astype(f"U{len(str(max(n - 1, 0)))}")) if n else np.zeros(0, dtype=str)
     col = table[cols["name"]]
     data = np.asarray(col.data.data if isinstance(col, MaskedColumn) else getattr(col, "value", col))
     if data.dtype.kind == "S":
@@ -1782,15 +1782,16 @@ def _build_tracers(
         }.get(kind, f"A_V from {kind} through law {law!r} with R_V = {rv:g} (dustkit.bands.excess_to_av)")
     )
     arrays = [l[keep], b[keep], d[keep], d_err[keep], av[keep], av_err[keep]]
-    meta = ctx.meta(file_sha, arrays + [names[keep].astype("U")])
+    kept_names = names[keep].astype("U", copy=False)
+    meta = ctx.meta(file_sha, arrays + [kept_names])
     ts = TracerSet(
-        l=l[keep],
-        b=b[keep],
-        distance=d[keep],
-        distance_err=d_err[keep],
-        av=av[keep],
-        av_err=av_err[keep],
-        name=names[keep],
+        l=arrays[0],
+        b=arrays[1],
+        distance=arrays[2],
+        distance_err=arrays[3],
+        av=arrays[4],
+        av_err=arrays[5],
+        name=kept_names,
         excess=excess[keep],
         excess_err=excess_err[keep],
         excess_kind=kind,
