@@ -296,33 +296,42 @@ def _kalman_smooth(mean, obs_var, edges_pc, q):
     E = edges_pc.size
     shape = mean.shape
     m = np.ascontiguousarray(mean.reshape(-1, E).T)  # (E, P): each step reads contiguous rows
-    ov = np.ascontiguousarray(obs_var.reshape(-1, E).T)
-    has = np.isfinite(ov)
-    ov = np.where(has, ov, 0.0)
+    ov = np.ascontiguousarray(obs_var.reshape(-1, E).T)  # inf where a node has no observation
     step = q * np.diff(edges_pc) / 1000.0
     P = m.shape[1]
-    xf = np.empty((E, P))
-    pf = np.empty((E, P))
-    pp = np.empty((E, P))
+    xf = np.empty((E, P))  # filtered, then (in place) smoothed mean
+    pf = np.empty((E, P))  # filtered, then smoothed variance
+    pp = np.empty((E, P))  # predicted variance
     x = np.zeros(P)
     p = np.full(P, q * edges_pc[0] / 1000.0)
+    gain, tmp = np.empty(P), np.empty(P)
     for k in range(E):  # loop over distance edges, vectorised over pixels
         if k > 0:
-            p = p + step[k - 1]
+            p += step[k - 1]
         pp[k] = p
-        denom = p + ov[k]
-        gain = np.divide(p, denom, out=np.zeros(P), where=has[k] & (denom > 0))
-        x = x + gain * (m[k] - x)
-        p = (1.0 - gain) * p
+        np.add(p, ov[k], out=tmp)
+        tmp += 1e-300  # no observation: gain p / inf = 0; nothing known yet (p = 0): 0
+        np.divide(p, tmp, out=gain)
+        np.subtract(m[k], x, out=tmp)
+        tmp *= gain
+        x += tmp
+        np.subtract(1.0, gain, out=tmp)
+        p *= tmp
         xf[k] = x
         pf[k] = p
-    xs = xf.copy()
-    ps = pf.copy()
-    for k in range(E - 2, -1, -1):
-        g = np.divide(pf[k], pp[k + 1], out=np.zeros(P), where=pp[k + 1] > 0)
-        xs[k] = xf[k] + g * (xs[k + 1] - xf[k])
-        ps[k] = pf[k] + g * g * (ps[k + 1] - pp[k + 1])
-    return xs.T.reshape(shape), np.maximum(ps, 0.0).T.reshape(shape)
+    g, g2 = gain, np.empty(P)
+    for k in range(E - 2, -1, -1):  # Rauch-Tung-Striebel pass, in place
+        np.add(pp[k + 1], 1e-300, out=tmp)  # a walk of zero strength: pf = pp = 0, gain 0
+        np.divide(pf[k], tmp, out=g)
+        np.subtract(xf[k + 1], xf[k], out=tmp)
+        tmp *= g
+        xf[k] += tmp
+        np.multiply(g, g, out=g2)
+        np.subtract(pf[k + 1], pp[k + 1], out=tmp)
+        tmp *= g2
+        pf[k] += tmp
+    np.maximum(pf, 0.0, out=pf)
+    return xf.T.reshape(shape), pf.T.reshape(shape)
 
 
 def _prediction_matrix(grid, pos, n_rows, l, b, d, sky_weights=None):
