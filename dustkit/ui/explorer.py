@@ -292,7 +292,9 @@ class Explorer:
             layout=W.Layout(width=_CONTROL_WIDTH, min_width=_CONTROL_WIDTH),
         )
         figures = W.VBox([self._sky_view, self._profile_view])
-        self.panel = W.HBox([controls, figures])
+        # the figures keep their own heights (a stretched column would share the controls'
+        # extra height out between them as blank space)
+        self.panel = W.HBox([controls, figures], layout=W.Layout(align_items="flex-start"))
         self.panel.add_class("dustkit-explorer")
 
         self.law_widget.observe(self._on_law, "value")
