@@ -270,7 +270,7 @@ def _model_hdus(model):
     h["LAYHE"] = (lay["h_err"], "[pc] error of LAYH")
     h["LAYZSUN"] = (lay["z_sun"], "[pc] height of the Sun above the mid-plane")
     h["LAYZSUNE"] = (lay["z_sun_err"], "[pc] error of LAYZSUN")
-    h["SCROOT"] = (sc["root"], "[mag] unresolved scatter at A_V = 1 mag, sqrt term")
+    h["SCROOT"] = (sc["root"], "[mag] scatter, sqrt term at A_V = 1 mag")
     h["SCFRAC"] = (sc["frac"], "unresolved scatter fraction of A_V")
     h["SCKAPPA"] = (sc["kappa"], "scale of the posterior variance")
     h["SCSCALE"] = (sc["scale"], "overall scale of the predictive variance")
@@ -332,7 +332,7 @@ def _model_hdus(model):
     th["DISTKIND"] = (str(getattr(model.tracers_, "distance_kind", "distance")), "how distances were given")
     th["CATSHA"] = str(tmeta.get("sha256", ""))
     th["CATSHAOF"] = str(tmeta.get("sha256_of", ""))
-    th["TRMETA"] = (json.dumps(_jsonable(tmeta), ensure_ascii=True), "tracer-set metadata (JSON)")
+    th["TRMETA"] = json.dumps(_jsonable(tmeta), ensure_ascii=True)  # tracer-set metadata (JSON); long: no comment
 
     hdus = [fits.PrimaryHDU(), sky, edges, st, trh]
     ph = hdus[0].header
@@ -350,7 +350,7 @@ def _model_hdus(model):
         cvh = fits.table_to_hdu(cvt)
         cvh.name = "CV"
         if scheme:
-            cvh.header["CVSCHEME"] = (str(scheme), "how the smoothing was chosen")
+            cvh.header["CVSCHEME"] = str(scheme)  # how the smoothing was chosen
         hdus.append(cvh)
     return fits.HDUList(hdus)
 
@@ -592,6 +592,7 @@ def _model_from_parts(path, parts):
             changes[k] = tracers[k]
     if "ROW" in trd.columns.names:
         changes["row"] = np.asarray(trd["ROW"], np.int64)
+    changes["name"] = ts.name  # as stored in the file
     model.tracers_ = replace(ts, **changes)
     if state["cv"] is not None:
         cv = state["cv"]

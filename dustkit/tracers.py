@@ -206,6 +206,34 @@ def _frozen(arr, dtype=float):
     return a
 
 
+def _row_names(rows):
+    """``"row <i>"`` for input row numbers, in as narrow a string type as the numbers allow."""
+    rows = np.asarray(rows, dtype=np.int64)
+    if rows.size == 0:
+        return np.zeros(0, dtype="U4")
+    return np.char.add("row ", rows.astype(f"U{len(str(int(rows.max())))}"))
+
+
+class _Names:
+    """``TracerSet.name``: the names given, or ``"row <i>"`` made from ``row`` on first use.
+
+    Catalogues of millions of field stars rarely carry names; making ten million strings
+    up front cost seconds and gigabytes for nothing.
+    """
+
+    def __get__(self, obj, objtype=None):
+        if obj is None:
+            return None  # the dataclass default: no names given
+        names = obj.__dict__.get("_names")
+        if names is None:
+            names = _frozen(_row_names(obj.row), dtype=str)
+            obj.__dict__["_names"] = names
+        return names
+
+    def __set__(self, obj, value):
+        obj.__dict__["_names"] = None if value is None else _frozen(value, dtype=str)
+
+
 @dataclass(frozen=True, eq=False)
 class TracerSet:
     """A validated set of extinction tracers.
@@ -258,9 +286,9 @@ class TracerSet:
     distance_err: np.ndarray
     av: np.ndarray
     av_err: np.ndarray
-    name: np.ndarray
     excess: np.ndarray
     excess_err: np.ndarray
+    name: np.ndarray = _Names()
     excess_kind: str = "A_V"
     law: str = "ccm89"
     rv: float = 3.1
@@ -276,16 +304,17 @@ class TracerSet:
         n = np.size(self.l)
         for attr in ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err"):
             object.__setattr__(self, attr, _frozen(getattr(self, attr)))
-        object.__setattr__(self, "name", _frozen(self.name, dtype=str))
         row = np.arange(n) if self.row is None else self.row
         object.__setattr__(self, "row", _frozen(row, dtype=np.int64))
         for attr in ("apparent_modulus", "apparent_modulus_err"):
             if getattr(self, attr) is not None:
                 object.__setattr__(self, attr, _frozen(getattr(self, attr)))
         object.__setattr__(self, "rv", float(self.rv))
-        for attr in ("b", "distance", "distance_err", "av", "av_err", "name", "excess", "excess_err", "row"):
-            if np.shape(getattr(self, attr)) != (n,):
-                raise param_error(attr, f"a 1-d array of the same length as 'l' ({n})", np.shape(getattr(self, attr)))
+        given = {a: getattr(self, a) for a in ("b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "row")}
+        given["name"] = self.__dict__.get("_names")  # None: made from the row numbers when asked
+        for attr, value in given.items():
+            if value is not None and np.shape(value) != (n,):
+                raise param_error(attr, f"a 1-d array of the same length as 'l' ({n})", np.shape(value))
 
     def __len__(self):
         return int(self.l.size)
@@ -387,7 +416,7 @@ class TracerSet:
             distance_err=self.distance_err[sel],
             av=self.av[sel],
             av_err=self.av_err[sel],
-            name=self.name[sel],
+            name=None if self.__dict__.get("_names") is None else self.name[sel],
             excess=self.excess[sel],
             excess_err=self.excess_err[sel],
             row=self.row[sel],
@@ -431,6 +460,7 @@ class TracerSet:
             f"(was {self.law!r}, R_V = {self.rv:g})"
         ]
         changes["meta"] = meta
+        changes["name"] = self.__dict__.get("_names")  # None: still made from the row numbers
         return replace(self, **changes)
 
     # ----------------------------------------------------------------------------------
@@ -904,7 +934,7 @@ class _Rejections:
         order = np.argsort(rows, kind="stable")
         t = Table()
         t["row"] = rows[order].astype(np.int64)
-        t["name"] = np.asarray(names)[rows][order].astype(str)
+        t["name"] = (_row_names(rows) if names is None else np.asarray(names)[rows])[order].astype(str)
         t["reason"] = np.concatenate([np.full(p[0].size, p[1]) for p in parts])[order].astype(str)
         t["column"] = np.concatenate([np.full(p[0].size, p[2]) for p in parts])[order].astype(str)
         t["value"] = np.concatenate([p[3] for p in parts])[order].astype(str)
@@ -1712,8 +1742,8 @@ def _reddening(table, cols, ctx, law, rv, default_err, limits, excess_color):
 
 def _names(table, cols):
     n = len(table)
-    if "name" not in cols:  # "row <i>", as narrow a string type as the numbers allow
-        return np.char.add("row ", np.arange(n).astype(f"U{len(str(max(n - 1, 0)))}")) if n else np.zeros(0, dtype=str)
+    if "name" not in cols:  # "row <i>", made only when someone asks (TracerSet.name)
+        return None
     col = table[cols["name"]]
     data = np.asarray(col.data.data if isinstance(col, MaskedColumn) else getattr(col, "value", col))
     if data.dtype.kind == "S":
@@ -1782,8 +1812,8 @@ def _build_tracers(
         }.get(kind, f"A_V from {kind} through law {law!r} with R_V = {rv:g} (dustkit.bands.excess_to_av)")
     )
     arrays = [l[keep], b[keep], d[keep], d_err[keep], av[keep], av_err[keep]]
-    kept_names = names[keep].astype("U", copy=False)
-    meta = ctx.meta(file_sha, arrays + [kept_names])
+    kept_names = None if names is None else names[keep].astype("U", copy=False)
+    meta = ctx.meta(file_sha, arrays + [np.flatnonzero(keep) if kept_names is None else kept_names])
     ts = TracerSet(
         l=arrays[0],
         b=arrays[1],

@@ -652,6 +652,14 @@ def test_from_arrays_quantities_plain_arrays_and_validation():
     with pytest.warns(RowsRejectedWarning, match="1 of 2"):
         bad = TracerSet.from_arrays([10.0, 20.0], [1.0, 100.0], [1000.0, 2000.0], [100.0, 200.0], [1.0, 2.0], [0.1, 0.1])
     assert len(bad) == 1 and bad.rejected["row"][0] == 1
+    # unnamed rows are called after their input row, also when rows are rejected or selected
+    assert list(bad.name) == ["row 0"] and list(bad.rejected["name"]) == ["row 1"]
+    with pytest.warns(RowsRejectedWarning):
+        gap = TracerSet.from_arrays([1.0, 2.0, 3.0, 4.0], [1.0, 95.0, 2.0, 3.0], [500.0] * 4, [50.0] * 4,
+                                    [1.0] * 4, [0.1] * 4)
+    assert list(gap.name) == ["row 0", "row 2", "row 3"]
+    assert list(gap.subset([False, True, True]).name) == ["row 2", "row 3"]
+    assert list(gap.with_law("fitzpatrick99", 3.1).name) == ["row 0", "row 2", "row 3"]
     with pytest.raises(ParameterError, match="'distance'"):
         TracerSet.from_arrays([1.0], [1.0], [1.0] * u.mag, [0.1], [1.0], [0.1])
 
