@@ -201,14 +201,14 @@ def _neighbour_matrix(grid):
     return (m + sparse.identity(npix, format="csr")).tocsr()
 
 
-def _kernels(grid, passes_list, pixels):
+def _kernels(grid, passes_list, pixels, one):
     """Sky kernels (K, K squared element-wise) for each number of smoothing passes.
 
     Restricted to ``pixels`` (rows and columns): the rows are computed as ``K[pixels] =
     K_1[pixels] K_1 ... K_1``, so the cost grows with the pixels in use, not the sky; paths
-    through other pixels are kept. No smoothing (0 passes) is ``None``.
+    through other pixels are kept. No smoothing (0 passes) is ``None``. ``one`` is the
+    one-pass matrix (:func:`_neighbour_matrix`).
     """
-    one = _neighbour_matrix(grid)
     out = {}
     k = sparse.csr_matrix((np.ones(pixels.size), (np.arange(pixels.size), pixels)), shape=(pixels.size, grid.npix))
     for p in range(max(passes_list) + 1):
@@ -587,10 +587,11 @@ class ExtinctionModel:
         for _ in range(max(passes)):
             reach = one @ reach
         active = np.nonzero(reach > 0)[0]
-        kernels = _kernels(grid, passes, active)
+        kernels = _kernels(grid, passes, active, one)
         stats = fold_stats[:, :, active, :]
         total = total[:, active, :]
-        resid_var = float(np.var(av - layer._av(b, d)))
+        lay_held = layer._av(b, d)  # the layer at the held-out tracers
+        resid_var = float(np.var(av - lay_held))
         span_kpc = max(float(np.median(d)) / 1000.0, 0.1)
         walk = resid_var / span_kpc * np.array([0.1, 0.3, 1.0, 3.0, 10.0])
 
@@ -623,7 +624,6 @@ class ExtinctionModel:
         rows = []
         dkern = {sd: _distance_kernel(edges, sd) for sd in self._distance_sigmas(edges)}
         sigmas = sorted(dkern)
-        lay_held = layer._av(b, d)
         weights = [_prediction_matrix(grid, maps[f], n_rows, l[i], b[i], d[i], sky_w[f]) for f, i in enumerate(members)]
         row_kernels = {p: None if k is None else [(k[0][r].tocsr(), k[1][r].tocsr()) for r in fold_rows]
                        for p, k in kernels.items()}
@@ -697,7 +697,8 @@ class ExtinctionModel:
         for f in range(folds):
             isel = np.nonzero(fold[take] == f)[0]
             sel = take[isel]
-            pix_w = grid.interp_weights(l[sel], b[sel])
+            at = np.searchsorted(members[f], sel)  # sel is part of fold f: reuse its sky weights
+            pix_w = (sky_w[f][0][:, at], sky_w[f][1][:, at])
             for j, xj in enumerate(gh_x):
                 dj = d[sel] * np.exp(xj * frac_err[isel])
                 wj = _prediction_matrix(grid, maps[f], n_rows, l[sel], b[sel], dj, pix_w)
