@@ -450,23 +450,32 @@ def _merge_samples(s1, s2, k):
     return m
 
 
-def _pass1_combine(k, *accs):
+def _combine(accs, merge):
+    """Merge chain accumulators (skipping empty chains) into the first with ``merge(out, other)``."""
     out = None
     for a in accs:
         if a is None:
             continue
         if out is None:
             out = a
-            continue
-        out["valid"].update(a["valid"])
-        for r, c in a["defaults"].items():
-            out["defaults"][r] = out["defaults"].get(r, 0) + c
-        out["rows"] += a["rows"]
-        for r, c in a["counts"].items():
-            out["counts"][r] = out["counts"].get(r, 0) + c
-        out["examples"] = (out["examples"] + a["examples"])[:50]
-        out["sample"] = _merge_samples(out["sample"], a["sample"], k)
+        else:
+            merge(out, a)
     return out
+
+
+def _pass1_merge(k, out, a):
+    out["valid"].update(a["valid"])
+    for r, c in a["defaults"].items():
+        out["defaults"][r] = out["defaults"].get(r, 0) + c
+    out["rows"] += a["rows"]
+    for r, c in a["counts"].items():
+        out["counts"][r] = out["counts"].get(r, 0) + c
+    out["examples"] = (out["examples"] + a["examples"])[:50]
+    out["sample"] = _merge_samples(out["sample"], a["sample"], k)
+
+
+def _pass1_combine(k, *accs):
+    return _combine(accs, functools.partial(_pass1_merge, k))
 
 
 # ----------------------------------------------------------------------------- pass 2: sums
@@ -493,22 +502,17 @@ def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, r
         local = held[np.searchsorted(held, offset):np.searchsorted(held, offset + l.size)] - offset
     total, fold_stats, counts = _nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds,
                                                     held=local, threads=1)
-    for mine, part in zip(acc, (total, fold_stats, counts)):
-        mine += part
+    _pass2_merge(acc, (total, fold_stats, counts))
     return acc
 
 
+def _pass2_merge(out, a):
+    for mine, part in zip(out, a):
+        mine += part
+
+
 def _pass2_combine(*accs):
-    out = None
-    for a in accs:
-        if a is None:
-            continue
-        if out is None:
-            out = a
-        else:
-            for mine, part in zip(out, a):
-                mine += part
-    return out
+    return _combine(accs, _pass2_merge)
 
 
 # ----------------------------------------------------------------------------- scheduling
