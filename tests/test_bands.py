@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from astropy import units as u
 from astropy.table import Table
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from dustkit._errors import AssumptionWarning, LawRangeError, ParameterError
@@ -349,8 +349,11 @@ def test_wide_flat_passband_lies_between_edge_values():
     temperature=st.floats(3000.0, 30000.0),
 )
 def test_band_extinction_is_monotone_in_av(av, temperature):
-    # more dust never makes a star brighter: A_band increases with A_V
-    av = np.sort(np.array(av))
+    # more dust never makes a star brighter: A_band increases with A_V. Values closer than
+    # 1 micro-mag are one A_V for this purpose (a single bit apart, floating-point rounding
+    # in the passband integrals can order them either way)
+    av = np.unique(np.round(np.array(av), 6))
+    assume(av.size >= 2)
     coeff = passband_a_over_av(example_passband_path(), av=av, temperature=temperature * u.K)
     a_band = coeff * av
     assert np.all(np.diff(a_band) > 0)
