@@ -13,7 +13,7 @@ from scipy.special import ndtr
 
 from .layer import _layer_av_pc
 
-__all__ = ["Cloud", "DustField", "simulate_tracers", "random_clouds"]
+__all__ = ["Cloud", "DustField", "ClumpyField", "simulate_tracers", "random_clouds"]
 
 
 @dataclass(frozen=True)
@@ -156,3 +156,70 @@ def simulate_tracers(
     t["true_av"] = av_true * u.mag
     t.meta["rv"] = rv
     return t
+
+
+class ClumpyField:
+    """An exponential layer with log-normal small-scale structure, plus clouds (invented, for tests).
+
+    The density is ``a0 exp(-|z| / h) exp(sigma g - sigma^2 / 2)`` with ``g`` a unit-variance
+    Gaussian random field of Gaussian correlation length ``corr_length`` (pc), drawn on a
+    Cartesian grid of ``cell`` pc around the Sun (``extent`` pc in x and y, ``height`` pc in
+    z; outside it the layer is smooth), plus the clouds of :class:`DustField`. Cumulative
+    A_V is integrated numerically along each sight line in steps of ``cell / 2``.
+    """
+
+    def __init__(self, a0=1.0, h=120.0, z_sun=20.0, sigma=1.0, corr_length=40.0, clouds=(),
+                 extent=4500.0, height=400.0, cell=25.0, seed=0):
+        self.a0, self.h, self.z_sun = float(a0), float(h), float(z_sun)
+        self.sigma, self.corr_length, self.cell = float(sigma), float(corr_length), float(cell)
+        self.clouds = tuple(clouds)
+        self.extent, self.height = float(extent), float(height)
+        rng = np.random.default_rng(seed)
+        nxy = int(np.ceil(2 * extent / cell)) + 1
+        nz = int(np.ceil(2 * height / cell)) + 1
+        white = rng.standard_normal((nxy, nxy, nz))
+        kx = np.fft.fftfreq(nxy, d=cell) * 2 * np.pi
+        kz = np.fft.fftfreq(nz, d=cell) * 2 * np.pi
+        k2 = kx[:, None, None] ** 2 + kx[None, :, None] ** 2 + kz[None, None, :] ** 2
+        amp = np.exp(-0.25 * k2 * corr_length**2)  # square root of a Gaussian power spectrum
+        g = np.fft.ifftn(np.fft.fftn(white) * amp).real
+        g /= g.std()
+        self._g = g.astype(np.float32)
+        self._origin = np.array([-extent, -extent, -height])
+
+    def _density(self, x, y, z):
+        from scipy.ndimage import map_coordinates
+
+        zg = z  # heights relative to the mid-plane
+        idx = np.vstack([(x - self._origin[0]) / self.cell, (y - self._origin[1]) / self.cell,
+                         (zg - self._origin[2]) / self.cell])
+        g = map_coordinates(self._g, idx, order=1, mode="constant", cval=0.0)
+        inside = (np.abs(x) <= self.extent) & (np.abs(y) <= self.extent) & (np.abs(zg) <= self.height)
+        clump = np.where(inside, np.exp(self.sigma * g - 0.5 * self.sigma**2), 1.0)
+        return self.a0 / 1000.0 * np.exp(-np.abs(zg) / self.h) * clump
+
+    def av(self, l, b, distance):
+        """True cumulative A_V (mag) toward (l, b) [deg] out to ``distance`` [pc]."""
+        l, b, d = np.broadcast_arrays(*(np.asarray(x, float) for x in (l, b, distance)))
+        shape = l.shape
+        l, b, d = l.ravel(), b.ravel(), d.ravel()
+        out = np.empty(l.size)
+        step = self.cell / 2
+        for s in range(0, l.size, 2000):  # blocks of sight lines, each integrated by the midpoint rule
+            lb, bb, db = l[s:s + 2000], b[s:s + 2000], d[s:s + 2000]
+            n_steps = int(np.ceil(db.max() / step)) if db.size else 0
+            frac = (np.arange(n_steps) + 0.5) / max(n_steps, 1)
+            r = db[:, None] * frac[None, :]
+            lr, br = np.deg2rad(lb)[:, None], np.deg2rad(bb)[:, None]
+            x, y = r * np.cos(br) * np.cos(lr), r * np.cos(br) * np.sin(lr)
+            z = self.z_sun + r * np.sin(br)
+            rho = self._density(x.ravel(), y.ravel(), z.ravel()).reshape(r.shape)
+            out[s:s + 2000] = rho.sum(axis=1) * db / max(n_steps, 1)
+        for c in self.clouds:
+            sep = _separation_deg(l, b, c.l, c.b)
+            out = out + c.av * np.exp(-0.5 * (sep / c.radius) ** 2) * ndtr((d - c.distance) / c.depth)
+        return out.reshape(shape)
+
+    def layer_av(self, b, distance):
+        """A_V (mag) of the smooth layer alone."""
+        return _layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)

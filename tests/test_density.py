@@ -1,0 +1,136 @@
+"""The 3-D log-normal density model: invariants, honesty of its errors, and its prior.
+
+All dust fields here are invented (``dustkit.simulate``); the truth is known exactly, so the
+model is scored against it.
+"""
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.table import vstack
+
+import dustkit
+from dustkit.density import DensityModel
+from dustkit.density.estimator import default_distance_edges, duplicate_weights
+from dustkit.density.lattice import Lattice, active_pixels
+from dustkit.grid import Grid
+from dustkit.simulate import Cloud, DustField, simulate_tracers
+
+FIELD = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 1000, 3.0, 30, 1.2),))
+REGION = dict(l_range=(25, 55), b_range=(-8, 8))
+FAST = dict(amplitudes=(1.0,), lengths=[150] * u.pc, n_samples=32)
+
+
+def _tracers(n, seed, field=FIELD, **kw):
+    t = simulate_tracers(field, n, rng=np.random.default_rng(seed), **{**REGION, "distance_max": 3000, **kw})
+    return t, dustkit.read_tracers(t)
+
+
+@pytest.fixture(scope="module")
+def fitted():
+    t, tr = _tracers(500, 1)
+    return t, DensityModel(quiet=True).fit(tr)
+
+
+def test_lattice_adjoint_is_the_transpose():
+    # dot-product test of an operator and its adjoint: <y, T x> = <T^T y, x> (common practice)
+    grid = Grid(16, default_distance_edges(3000.0))
+    pix = active_pixels(grid, np.array([40.0, 50.0]), np.array([0.0, 3.0]), 12.0)
+    lat = Lattice(grid, pix, 0.8, 200.0)
+    rng = np.random.default_rng(0)
+    x, y = rng.standard_normal(lat.shape), rng.standard_normal(lat.shape)
+    assert np.sum(y * lat.forward(x)) == pytest.approx(np.sum(x * lat.adjoint(y)), rel=1e-10)
+
+
+def test_prior_has_the_stated_variance_and_correlation():
+    # f = T xi with unit-norm kernel rows: every cell has variance s^2, and neighbouring bins
+    # correlate as an AR(1) process, exp(-spacing / L) (definition of the prior)
+    grid = Grid(16, default_distance_edges(2000.0))
+    pix = active_pixels(grid, np.array([40.0]), np.array([0.0]), 15.0)
+    lat = Lattice(grid, pix, 0.7, 300.0)
+    f = lat.forward(np.random.default_rng(1).standard_normal((*lat.shape, 400)))
+    assert np.mean(f.var(axis=2)) == pytest.approx(0.7**2, rel=0.03)
+    k = 10
+    r = np.mean([np.corrcoef(f[k, p], f[k + 1, p])[0, 1] for p in range(0, lat.n_pix, 5)])
+    assert r == pytest.approx(lat.phi[k + 1], abs=0.04)
+
+
+def test_cumulative_extinction_is_monotone_and_density_positive(fitted):
+    _, m = fitted
+    assert np.all(np.diff(m.av_, axis=1) >= -1e-12)
+    assert np.all(m.differential_ >= -1e-9)
+    prof = m.profile(40 * u.deg, 0 * u.deg)
+    assert np.all(np.diff(prof["av"].value) >= -1e-12)
+
+
+def test_accuracy_and_coverage_on_a_small_region(fitted):
+    t, m = fitted
+    h = simulate_tracers(FIELD, 3000, rng=np.random.default_rng(7), **REGION, distance_max=3000)
+    l, b, d = (np.asarray(h[k]) for k in ("l", "b", "true_distance"))
+    truth = FIELD.av(l, b, d)
+    a, e = (x.value for x in m.av(l * u.deg, b * u.deg, d * u.pc))
+    rms = np.sqrt(np.mean((a - truth) ** 2))
+    rms_layer = np.sqrt(np.mean((m.layer_av(l * u.deg, b * u.deg, d * u.pc).value - truth) ** 2))
+    coverage = np.mean(np.abs(a - truth) <= e)
+    print(f"density model: RMS {rms:.3f} mag vs layer {rms_layer:.3f}; 1-sigma coverage {coverage:.3f}")
+    assert rms < 0.6 * rms_layer
+    assert 0.55 <= coverage <= 0.90  # a 1-sigma interval holds 68% of a Gaussian (common practice)
+
+
+def test_errors_widen_to_the_prior_away_from_tracers(fitted):
+    _, m = fitted
+    # 150 deg from every tracer: the answer is the prior (layer median, prior spread)
+    a, e = m.av(200 * u.deg, 0 * u.deg, 2 * u.kpc)
+    s, n, prior_only = m.support(200 * u.deg, 0 * u.deg, 2 * u.kpc)
+    assert prior_only and s == pytest.approx(0.0, abs=1e-9)
+    assert a.value == pytest.approx(m.layer_av(200 * u.deg, 0 * u.deg, 2 * u.kpc).value, rel=1e-9)
+    informed = m.av(40 * u.deg, 0 * u.deg, 2 * u.kpc)[1]
+    assert e > 2 * informed
+
+
+def test_duplicating_every_tracer_does_not_shrink_the_errors():
+    t, tr = _tracers(300, 3)
+    once = DensityModel(quiet=True, **FAST).fit(tr)
+    twice = DensityModel(quiet=True, **FAST).fit(dustkit.read_tracers(vstack([t, t])))
+    assert twice.build_report_["duplicate_groups"] == 300
+    l, b, d = np.full(50, 40.0), np.linspace(-5, 5, 50), np.full(50, 1500.0)
+    e1 = once.av(l * u.deg, b * u.deg, d * u.pc)[1].value
+    e2 = twice.av(l * u.deg, b * u.deg, d * u.pc)[1].value
+    assert np.median(e2 / e1) > 0.95
+
+
+def test_duplicate_weights_group_near_copies():
+    l = np.array([30.0, 30.0, 30.00001, 50.0])
+    b = np.array([1.0, 1.0, 1.0, 2.0])
+    d = np.array([1000.0, 1000.0, 1001.0, 1000.0])
+    av = np.array([1.0, 1.0, 1.01, 1.0])
+    w, groups = duplicate_weights(l, b, d, av, np.full(4, 0.05))
+    assert groups == 1
+    np.testing.assert_allclose(w, [1 / 3, 1 / 3, 1 / 3, 1.0])
+
+
+def test_tracers_beyond_the_grid_only_bound_its_far_end():
+    # a cloud at 2.6 kpc behind a grid that ends at 2 kpc: far tracers must not lift the far edge
+    field = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 2600, 6.0, 40, 1.5),))
+    t, tr = _tracers(500, 5, field=field, distance_max=4000)
+    m = DensityModel(quiet=True, distance_max=2 * u.kpc, **FAST).fit(tr)
+    ll, bb = np.linspace(35, 45, 30), np.linspace(-3, 3, 30)
+    a = m.av(ll * u.deg, bb * u.deg, np.full(30, 1900) * u.pc)[0].value
+    truth = field.av(ll, bb, np.full(30, 1900.0))
+    assert abs(np.median(a - truth)) < 0.15
+
+
+@pytest.mark.parametrize("n", [30, 60])
+def test_small_catalogues_neither_collapse_nor_explode(n):
+    field = DustField(a0=1.0, h=120.0, z_sun=20.0)
+    t = simulate_tracers(field, n, rng=np.random.default_rng(n), l_range=(100, 115), b_range=(-6, 6),
+                         distance_max=2500, ebv_err=(0.05, 0.05), distance_frac_err=(0.1, 0.1))
+    m = DensityModel(quiet=True).fit(dustkit.read_tracers(t))
+    h = simulate_tracers(field, 1500, rng=np.random.default_rng(n + 1), l_range=(100, 115), b_range=(-6, 6),
+                         distance_max=2500)
+    l, b, d = (np.asarray(h[k]) for k in ("l", "b", "true_distance"))
+    a, e = (x.value for x in m.av(l * u.deg, b * u.deg, d * u.pc))
+    truth = field.av(l, b, d)
+    at_1kpc = m.av(107 * u.deg, 0 * u.deg, 1 * u.kpc)[1].value
+    assert 0.03 < at_1kpc < 1.0  # 0.05 mag E(B-V) errors are 0.155 mag in A_V: sigma cannot be ~0
+    assert 0.5 <= np.mean(np.abs(a - truth) <= e) <= 0.95
