@@ -24,7 +24,7 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
-from . import _healpix
+from ._lib import healpix
 from .grid import _edges_info, edge_index
 from .layer import _layer_av_mu
 
@@ -53,7 +53,7 @@ class _Scratch:
         self.u = np.empty(size)
         self.f = np.empty(size)
         self.t = (np.empty(size), np.empty(size))
-        self.pix = _healpix._work(size)  # for the pixel index (3 float, 3 int64)
+        self.pix = healpix.work_buffers(size)  # for the pixel index (3 float, 3 int64)
         self.k = np.empty(size, dtype=np.int64)
         self.m = (np.empty(size, dtype=bool), np.empty(size, dtype=bool))
 
@@ -75,7 +75,7 @@ def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch
     mu, u, f = sc.mu, sc.u, sc.f
     np.multiply(b, np.pi / 180.0, out=mu)
     np.sin(mu, out=mu)
-    pix = _healpix.pixel_from_z(grid.nside, l, mu, nest=grid.nest, work=sc.pix)
+    pix = healpix.pixel_from_z(grid.nside, l, mu, nest=grid.nest, work=sc.pix)
     E, nb = grid.n_edges, grid.n_bins
     k, _ = edge_index(grid.distance_edges, d, sc.k, f, uniform, work=sc.t + sc.pix[3:4] + sc.m)
     # counts per (pixel, bin), with one more bin per pixel for tracers beyond the last edge

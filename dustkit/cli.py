@@ -254,7 +254,7 @@ def _columns(pairs):
 
 
 def _check_law(args):
-    from ._validation import check_real
+    from ._lib.validation import check_real
     from .laws import get_law
 
     get_law(args.law)
@@ -265,7 +265,7 @@ def _grid_options(args):
     import numpy as np
     from astropy import units as u
 
-    from ._validation import check_nside, check_real
+    from ._lib.validation import check_nside, check_real
 
     check_nside(args.nside)
     kw = {"nside": args.nside}
@@ -314,13 +314,15 @@ def _quiet_flag(args):
 
 
 def _save_figure(fig, path, overwrite):
-    """Write a figure atomically (through dustkit.io's writer, so errors read the same)."""
-    from .io import _atomic_write
+    """Write a figure atomically, with the figure suffixes of the format registry."""
+    from ._lib.formats import atomic_write, format_for
+    from .exceptions import FileFormatError
 
-    fmt = Path(path).suffix.lower().lstrip(".")
-    if fmt not in ("png", "pdf", "svg", "eps", "jpg", "jpeg"):
-        raise _UsageError(f"the figure file must end in .png, .pdf, .svg or .eps. Got {str(path)!r} instead")
-    return _atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=150), overwrite, what="figure")
+    try:
+        fmt = format_for(path, "figure")
+    except FileFormatError as exc:  # a bad option value: usage error, as for other options
+        raise _UsageError(str(exc).rstrip(".")) from None
+    return atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=150), overwrite, what="figure")
 
 
 def _profile_figure(model, l_deg, b_deg, radius_deg=None):
@@ -372,13 +374,14 @@ def _sky_figure(model, distance_pc):
 # ============================================================================ commands
 
 def _cmd_build(args, out):
-    from .io import _check_target, save_model
+    from ._lib.formats import check_target
+    from .io import save_model
     from .model import CAUTION, ExtinctionModel
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
-    _check_target(args.output, args.overwrite)  # fail before a long build, not after
+    check_target(args.output, args.overwrite)  # fail before a long build, not after
     if os.path.isdir(args.catalog) or args.chunk_size is not None or args.scheduler:
         model = _build_out_of_core(args, kw, columns, out)
     else:
@@ -432,7 +435,8 @@ def _cmd_estimate(args, out):
     from astropy.table import Table
 
     from .bands import get_band
-    from .io import _check_target, _format_for, load_model, write_table
+    from ._lib.formats import check_target, format_for
+    from .io import load_model, write_table
     from .model import CAUTION
     from .tracers import read_targets
 
@@ -440,10 +444,10 @@ def _cmd_estimate(args, out):
     for band in bands:
         get_band(band)
     columns = _columns(args.column)
-    _format_for(args.output, None)
-    _check_target(args.output, args.overwrite)
+    format_for(args.output, "table")
+    check_target(args.output, args.overwrite)
     model = load_model(args.model)
-    from ._errors import RowsRejectedWarning
+    from .exceptions import RowsRejectedWarning
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
@@ -499,14 +503,15 @@ def _cmd_layer(args, out):
 def _cmd_profile(args, out):
     import numpy as np
 
-    from ._validation import check_real
-    from .io import _check_target, load_model
+    from ._lib.validation import check_real
+    from ._lib.formats import check_target
+    from .io import load_model
 
     check_real("b", args.b, -90, 90)
     check_real("l", args.l, -360, 720)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
-    _check_target(args.output, args.overwrite)
+    check_target(args.output, args.overwrite)
     model = load_model(args.model)
     fig = _profile_figure(model, args.l, args.b, args.radius)
     path = _save_figure(fig, args.output, args.overwrite)
@@ -525,12 +530,13 @@ def _cmd_profile(args, out):
 
 
 def _cmd_export(args, out):
-    from .io import _check_target, _format_for, export_table, load_model, write_slice_maps
+    from ._lib.formats import check_target, format_for
+    from .io import export_table, load_model, write_slice_maps
 
-    _format_for(args.output, None)
-    _check_target(args.output, args.overwrite)
+    format_for(args.output, "table")
+    check_target(args.output, args.overwrite)
     if args.maps:
-        _check_target(args.maps, args.overwrite)
+        check_target(args.maps, args.overwrite)
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
     g = model.grid_
@@ -545,17 +551,18 @@ def _cmd_export(args, out):
 def _cmd_features(args, out):
     from astropy import units as u
 
-    from ._validation import check_real
+    from ._lib.validation import check_real
     from .features import detect_features
-    from .io import _check_target, _format_for, load_model, write_table
+    from ._lib.formats import check_target, format_for
+    from .io import load_model, write_table
 
     check_real("min_delta_av", args.min_delta_av, 0, 100)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
     for path in (args.output, args.detections):
         if path:
-            _format_for(path, None)
-            _check_target(path, args.overwrite)
+            format_for(path, "table")
+            check_target(path, args.overwrite)
     model = load_model(args.model)
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg, min_delta_av=args.min_delta_av * u.mag,
@@ -719,7 +726,7 @@ def _cmd_demo(args, out):
 # ============================================================================ entry point
 
 def _show_warning_factory(quiet, debug):
-    from ._errors import DustkitWarning, RowsRejectedWarning
+    from .exceptions import DustkitWarning, RowsRejectedWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, DustkitWarning) and not debug:
@@ -746,7 +753,7 @@ def main(argv=None):
     args.quiet, args.debug = quiet, debug
     prog = f"{_PROG} {args.command}"
 
-    from ._errors import DustkitError, ParameterError
+    from .exceptions import DustkitError, FileFormatError, ParameterError
 
     old_show = warnings.showwarning
     warnings.showwarning = _show_warning_factory(quiet, debug)
@@ -755,6 +762,11 @@ def main(argv=None):
             warnings.simplefilter("default")
             warnings.showwarning = _show_warning_factory(quiet, debug)
             return int(args.func(args, _Out(quiet)) or 0)
+    except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
+        if debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        return 1
     except (_UsageError, ParameterError) as exc:
         if debug:
             traceback.print_exc()

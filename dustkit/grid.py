@@ -5,8 +5,8 @@ from dataclasses import dataclass
 import numpy as np
 from astropy import units as u
 
-from . import _healpix
-from ._validation import check_choice, check_int, check_nside, check_real, param_error, to_value
+from ._lib import healpix
+from ._lib.validation import check_choice, check_int, check_nside, check_real, param_error, to_value
 
 __all__ = ["Grid", "MAX_GRID_BYTES"]
 
@@ -73,7 +73,7 @@ class Grid:
 
     @property
     def npix(self):
-        return _healpix.nside2npix(self.nside)
+        return healpix.nside2npix(self.nside)
 
     @property
     def n_edges(self):
@@ -86,21 +86,21 @@ class Grid:
     @property
     def pixel_area(self):
         """Area of one pixel (Quantity, deg^2)."""
-        return _healpix.pixarea_deg2(self.nside) * u.deg**2
+        return healpix.pixarea_deg2(self.nside) * u.deg**2
 
     def pixel(self, l_deg, b_deg):
         """Pixel index of Galactic positions (plain degrees)."""
-        return _healpix.ang2pix(self.nside, l_deg, b_deg, nest=self.nest)
+        return healpix.ang2pix(self.nside, l_deg, b_deg, nest=self.nest)
 
     def pixel_centres(self, pixels=None):
         """Galactic (l, b) in degrees of pixel centres (all pixels by default)."""
         if pixels is None:
             pixels = np.arange(self.npix)
-        return _healpix.pix2ang(self.nside, pixels, nest=self.nest)
+        return healpix.pix2ang(self.nside, pixels, nest=self.nest)
 
     def interp_weights(self, l_deg, b_deg):
         """HEALPix bilinear interpolation pixels and weights, each of shape (4, n)."""
-        return _healpix.interp_weights(self.nside, l_deg, b_deg, nest=self.nest)
+        return healpix.interp_weights(self.nside, l_deg, b_deg, nest=self.nest)
 
     def edge_position(self, distance_pc):
         """Lower edge index ``k`` and fraction ``f`` in [0, 1] of each distance inside its bin.

@@ -33,7 +33,6 @@ moved over the target with :func:`os.replace`; a failed write leaves an existing
 
 import json
 import os
-import tempfile
 import textwrap
 import warnings
 from dataclasses import replace
@@ -43,8 +42,9 @@ import numpy as np
 from astropy import units as u
 from astropy.table import Table
 
-from ._errors import DustkitError, ModelFileError
-from ._validation import check_choice
+from .exceptions import DustkitError, ModelFileError
+from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
+from ._lib.validation import check_choice
 
 __all__ = [
     "save_model",
@@ -56,8 +56,8 @@ __all__ = [
     "MODEL_FILE_KIND",
 ]
 
-#: Export formats by file suffix (``format=`` accepts the values).
-EXPORT_FORMATS = {".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".fts": "fits", ".csv": "csv"}
+#: Export formats by file suffix (``format=`` accepts the values); the registry's table formats.
+EXPORT_FORMATS = TABLE_FORMATS
 #: Value of the ``DKFILE`` keyword that marks a dustkit model file.
 MODEL_FILE_KIND = "EXTINCTION MODEL"
 _FORMAT_VERSION = 1
@@ -90,76 +90,11 @@ def _version():
         return "unknown"
 
 
-def _check_target(path, overwrite):
-    """Return ``path`` as a Path after checking the folder exists and overwriting is allowed."""
-    if not isinstance(path, (str, os.PathLike)):
-        raise ModelFileError(f"The output path must be a file name; got {type(path).__name__} {path!r}.")
-    path = Path(path).expanduser()
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise ModelFileError(
-            f"Cannot write '{path}': the folder '{folder}' does not exist. Hint: create it first."
-        )
-    if path.is_dir():
-        raise ModelFileError(f"Cannot write '{path}': it is a folder. Hint: give a file name.")
-    if path.exists() and not overwrite:
-        raise ModelFileError(
-            f"'{path}' already exists; dustkit does not overwrite files unless asked. "
-            "Hint: pass overwrite=True (on the command line: --overwrite), or choose another name."
-        )
-    return path
-
-
-def _file_mode(path):
-    if path.exists():
-        return path.stat().st_mode & 0o7777
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
-
-
-def _atomic_write(path, write, overwrite=False, what="file"):
-    """Write through ``write(tmp_path)`` into a temporary file beside ``path``, then replace ``path``.
-
-    Any failure removes the temporary file and leaves an existing ``path`` untouched.
-    """
-    path = _check_target(path, overwrite)
-    folder = path.parent if str(path.parent) else Path(".")
-    suffix = "".join(path.suffixes[-1:])
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".part{suffix}", dir=folder)
-    os.close(fd)
-    os.unlink(tmp)  # writers (astropy, healpy, matplotlib) create the file themselves
-    try:
-        write(tmp)
-        os.chmod(tmp, _file_mode(path))
-        os.replace(tmp, path)
-    except BaseException as exc:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        if isinstance(exc, DustkitError) or not isinstance(exc, Exception):
-            raise
-        raise ModelFileError(
-            f"Could not write the {what} '{path}': {type(exc).__name__}: {str(exc).rstrip('.')}. "
-            + ("The existing file was left unchanged. " if path.exists() else "")
-            + ("Hint: check the free space and permissions of the folder." if isinstance(exc, OSError)
-               else "Hint: the data may hold values this format cannot store; try ECSV.")
-        ) from exc
-    return path
-
-
-def _format_for(path, format, choices=EXPORT_FORMATS):
+def _table_format(path, format):
+    """The table format: ``format`` when given (checked), else from the suffix (the registry)."""
     if format is not None:
-        return check_choice("format", format, tuple(sorted(set(choices.values()))))
-    suffix = Path(path).suffix.lower()
-    if suffix not in choices:
-        known = ", ".join(sorted(choices))
-        raise ModelFileError(
-            f"Cannot tell the table format of '{path}' from its suffix {suffix!r}. "
-            f"Hint: use one of {known}, or pass format='ecsv', 'fits' or 'csv'."
-        )
-    return choices[suffix]
+        return check_choice("format", format, tuple(sorted(set(TABLE_FORMATS.values()))))
+    return format_for(path, "table")
 
 
 def _fits_value(value):
@@ -406,7 +341,7 @@ def save_model(model, path, overwrite=False):
     """
     model._check_fitted()
     hdul = _model_hdus(model)
-    return _atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
+    return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
 
 
 def _bad_file(path, why, hint=None):
@@ -649,7 +584,7 @@ def write_table(table, path, format=None, overwrite=False):
     ECSV keeps units and metadata; FITS keeps units and puts simple metadata in header
     keywords; CSV keeps column names and values only (for spreadsheets).
     """
-    fmt = _format_for(path, format)
+    fmt = _table_format(path, format)
 
     def write(tmp):
         with warnings.catch_warnings():
@@ -663,7 +598,7 @@ def write_table(table, path, format=None, overwrite=False):
                 plain.meta.clear()
                 plain.write(tmp, format="ascii.csv")
 
-    return _atomic_write(path, write, overwrite, what=f"{fmt.upper()} table")
+    return atomic_write(path, write, overwrite, what=f"{fmt.upper()} table")
 
 
 def export_table(model, path, format=None, overwrite=False):
@@ -695,7 +630,7 @@ def export_table(model, path, format=None, overwrite=False):
     the metadata in header keywords; CSV has the same column names and units as listed here,
     with no metadata, for spreadsheets.
     """
-    _format_for(path, format)  # a bad suffix fails before the table is built
+    _table_format(path, format)  # a bad suffix fails before the table is built
     return write_table(model.to_table(), path, format=format, overwrite=overwrite)
 
 
@@ -763,4 +698,4 @@ def write_slice_maps(model, path, overwrite=False, errors=True, mask_uninformed=
 
     if len(maps) > 999:
         raise ModelFileError(f"Too many distance edges ({g.n_edges}) for one slice-map file (at most 999).")
-    return _atomic_write(path, write, overwrite, what="slice-map file")
+    return atomic_write(path, write, overwrite, what="slice-map file")

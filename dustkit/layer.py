@@ -11,8 +11,8 @@ import numpy as np
 from astropy import units as u
 from scipy import optimize
 
-from ._errors import CatalogError
-from ._validation import check_real, to_value
+from .exceptions import CatalogError
+from ._lib.validation import check_real, to_value
 
 __all__ = ["DustLayer", "layer_av", "fit_layer"]
 

@@ -33,7 +33,7 @@ How a model is built (``ExtinctionModel.fit``):
 
 Answers at any (l, b, d) evaluate the layer at the exact position and add the binned
 residual interpolated bilinearly on the sky (the HEALPix interpolation of
-``healpy.get_interp_weights``, computed in numpy blocks by :mod:`dustkit._healpix`) and
+``healpy.get_interp_weights``, computed in numpy blocks by :mod:`dustkit._lib.healpix`) and
 linearly in distance, so the answer is not constant across a pixel.
 """
 
@@ -46,12 +46,13 @@ from astropy.coordinates import SkyCoord
 from astropy.table import QTable
 from scipy import sparse
 
-from . import _healpix
-from ._errors import CatalogError, ModelNotFittedError
-from ._isotonic import isotonic_rows
+from ._lib import healpix
+from .exceptions import CatalogError, ModelNotFittedError
+from ._lib.isotonic import isotonic_rows
 from ._sums import tracer_sums
-from ._progress import progress
-from ._validation import check_choice, check_int, check_real, param_error, to_value
+from ._lib.progress import progress
+from ._lib.sky import separation_deg
+from ._lib.validation import check_choice, check_int, check_real, param_error, to_value
 from .grid import Grid
 from .layer import DustLayer, fit_layer
 
@@ -193,7 +194,7 @@ def _counts(grid, l, b, d):
 def _neighbour_matrix(grid):
     """Sparse (npix, npix) matrix of one sky-smoothing pass: 1 on the diagonal, beta for neighbours."""
     npix = grid.npix
-    nb = _healpix.neighbours(grid.nside, np.arange(npix), nest=grid.nest)
+    nb = healpix.neighbours(grid.nside, np.arange(npix), nest=grid.nest)
     rows = np.repeat(np.arange(npix)[None, :], nb.shape[0], axis=0)
     ok = nb >= 0
     data = np.full(ok.sum(), _NEIGHBOUR_WEIGHT)
@@ -908,10 +909,10 @@ class ExtinctionModel:
             rad = float(to_value("radius", radius, u.deg))
             check_real("radius", rad, 0, 90)
             fine = max(self.grid_.nside * 4, 64)
-            pp = _healpix.query_disc(fine, lv, bv, rad)
+            pp = healpix.query_disc(fine, lv, bv, rad)
             if pp.size == 0:
-                pp = np.atleast_1d(_healpix.ang2pix(fine, lv, bv))
-            pts_l, pts_b = _healpix.pix2ang(fine, pp)
+                pp = np.atleast_1d(healpix.ang2pix(fine, lv, bv))
+            pts_l, pts_b = healpix.pix2ang(fine, pp)
         L = np.repeat(pts_l, dv.size)
         B = np.repeat(pts_b, dv.size)
         D = np.tile(dv, pts_l.size)
@@ -930,9 +931,7 @@ class ExtinctionModel:
         t.meta.update({"l": lv, "b": bv, "radius": rad, "caution": CAUTION})
         tr = getattr(self, "tracers_", None)
         if tr is not None:
-            from .simulate import _separation_deg
-
-            sep = _separation_deg(tr.l, tr.b, lv, bv)
+            sep = separation_deg(tr.l, tr.b, lv, bv)
             inside = sep <= max(rad, self.grid_pixel_radius())
             t.meta["tracers"] = tr.subset(inside).to_table() if inside.any() else None
         return t

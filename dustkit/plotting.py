@@ -23,12 +23,13 @@ for planning instrument time.
 """
 
 import os
-import tempfile
 
 import numpy as np
 from astropy import units as u
 
-from ._validation import check_choice, check_real, param_error, to_value
+from ._lib.sky import separation_deg
+from ._lib.formats import atomic_write, check_target, format_for
+from ._lib.validation import check_choice, check_real, param_error, to_value
 
 __all__ = [
     "plot_profile",
@@ -105,7 +106,7 @@ def _new_axes(ax, figsize, projection=None):
 
 def _fitted(model):
     if not hasattr(model, "av_"):
-        from ._errors import ModelNotFittedError
+        from .exceptions import ModelNotFittedError
 
         raise ModelNotFittedError(
             "This ExtinctionModel is not fitted yet. Call fit(tracers) first, or load a saved model."
@@ -292,9 +293,8 @@ def _features_near(features, lon, lat, radius):
     """Features within ``radius`` deg of (lon, lat) when the table has ``l``/``b`` columns."""
     if "l" not in features.colnames or "b" not in features.colnames:
         return features
-    from .simulate import _separation_deg
 
-    sep = _separation_deg(_column(features, "l", u.deg), _column(features, "b", u.deg), lon, lat)
+    sep = separation_deg(_column(features, "l", u.deg), _column(features, "b", u.deg), lon, lat)
     return features[sep <= radius]
 
 
@@ -856,7 +856,6 @@ def _law_title(law):
 
 # ----------------------------------------------------------------------------- saving
 
-_FORMATS = ("png", "pdf", "svg", "eps")
 
 
 def settle_layout(fig, passes=2):
@@ -892,30 +891,11 @@ def save_figure(fig, path, overwrite=False, dpi=300, **savefig_kwargs):
     """
     import pathlib
 
-    from .io import _file_mode
-
     fig = getattr(fig, "figure", fig) if not hasattr(fig, "savefig") else fig
     path = pathlib.Path(os.fspath(path)).expanduser()
-    suffix = path.suffix.lower().lstrip(".")
-    if suffix not in _FORMATS:
-        raise param_error("path", "a file name ending in " + ", ".join("." + f for f in _FORMATS), str(path))
-    folder = path.parent if str(path.parent) else pathlib.Path(".")
-    if not folder.is_dir():
-        raise FileNotFoundError(f"Cannot write {str(path)!r}: the folder {str(folder)!r} does not exist. "
-                                "Hint: create it first, or choose another path.")
-    if path.exists() and not overwrite:
-        raise FileExistsError(f"{str(path)!r} already exists. Hint: pass overwrite=True to replace it.")
+    fmt = format_for(path, "figure")  # FileFormatError (a ParameterError) lists the suffixes
+    check_target(path, overwrite)  # OutputFolderError / OutputExistsError before the layout work
     settle_layout(fig)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fig.savefig(fh, format=suffix, dpi=dpi, **savefig_kwargs)
-        os.chmod(tmp, _file_mode(path))  # the permissions a plain write would give, not mkstemp's 0600
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=dpi, **savefig_kwargs), overwrite,
+                 what="figure")
     return path

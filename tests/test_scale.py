@@ -19,7 +19,8 @@ from dustkit import CatalogError, ParameterError
 from dustkit._errors import AssumptionWarning, RowsRejectedWarning
 from dustkit.layer import fit_layer
 from dustkit.model import ExtinctionModel, _nominal_statistics
-from dustkit.scale import _validate, build_from_fits, build_from_parquet, fold_of_rows
+from dustkit.scale import build_from_fits, build_from_parquet, fold_of_rows
+from dustkit.tracers.rules import validate_rows as _validate
 from dustkit.simulate import Cloud, DustField, simulate_tracers
 from dustkit.tracers import TracerSet, read_tracers
 

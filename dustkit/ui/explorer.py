@@ -37,14 +37,17 @@ import numpy as np
 from astropy import units as u
 
 from .. import plotting
-from .._errors import ModelNotFittedError
-from .._validation import check_choice, check_int, param_error, to_value
+from ..exceptions import ModelNotFittedError
+from .._lib.formats import TABLE_FORMATS
+from .._lib.validation import check_choice, check_int, param_error, to_value
 from ..model import CAUTION, ExtinctionModel
 
 __all__ = ["Explorer"]
 
 _NSIDES = (4, 8, 16, 32, 64, 128, 256)
-_FORMATS = {"ecsv": ".ecsv", "fits": ".fits", "csv": ".csv"}
+_FORMATS = {}  # table format -> its first suffix in the format registry ("ecsv" -> ".ecsv")
+for _suffix, _format in TABLE_FORMATS.items():
+    _FORMATS.setdefault(_format, _suffix)
 _CONTROL_WIDTH = "390px"
 _DESC = {"description_width": "125px"}
 
