@@ -151,9 +151,13 @@ def build_parser():
     p = sub("build", "Build a model from a tracer catalogue and save it as a FITS model file.")
     p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue (CSV, ECSV, FITS table, VOTable, Parquet)")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.fits", help="model file to write")
-    p.add_argument("--nside", type=int, default=32, help="HEALPix NSIDE of the sky pixels (power of two; default 32)")
-    p.add_argument("--distance-max", type=float, metavar="PC", help="last distance edge in pc (default 6000)")
-    p.add_argument("--distance-step", type=float, metavar="PC", help="distance bin width in pc (default 200)")
+    grid = _grid_defaults()
+    p.add_argument("--nside", type=int, default=grid["nside"],
+                   help=f"HEALPix NSIDE of the sky pixels (power of two; default {grid['nside']})")
+    p.add_argument("--distance-max", type=float, metavar="PC",
+                   help=f"last distance edge in pc (default {grid['distance_max']:g})")
+    p.add_argument("--distance-step", type=float, metavar="PC",
+                   help=f"distance bin width in pc (default {grid['distance_step']:g})")
     p.add_argument("--distance-edges", metavar="E0,E1,...",
                    help="explicit distance edges in pc, comma-separated (instead of --distance-max/--distance-step)")
     _add_law_options(p)
@@ -261,6 +265,17 @@ def _check_law(args):
     check_real("rv", args.rv, 0, 20, low_inclusive=False)
 
 
+def _grid_defaults():
+    """The grid parameters' defaults, from the model's constructor (one list of parameters): nside, pc, pc."""
+    from astropy import units as u
+
+    from .model import ExtinctionModel
+
+    d = ExtinctionModel.param_defaults()
+    return {"nside": d["nside"], "distance_max": d["distance_max"].to_value(u.pc),
+            "distance_step": d["distance_step"].to_value(u.pc)}
+
+
 def _grid_options(args):
     import numpy as np
     from astropy import units as u
@@ -283,9 +298,10 @@ def _grid_options(args):
         Grid(args.nside, edges)  # validates: increasing, non-negative, at least two
         kw["distance_edges"] = edges * u.pc
     else:
-        dmax = 6000.0 if args.distance_max is None else check_real("distance_max", args.distance_max, 0, 1e6,
+        defaults = _grid_defaults()
+        dmax = defaults["distance_max"] if args.distance_max is None else check_real("distance_max", args.distance_max, 0, 1e6,
                                                                        low_inclusive=False)
-        step = 200.0 if args.distance_step is None else check_real("distance_step", args.distance_step, 0, dmax,
+        step = defaults["distance_step"] if args.distance_step is None else check_real("distance_step", args.distance_step, 0, dmax,
                                                                        low_inclusive=False)
         kw["distance_max"] = dmax * u.pc
         kw["distance_step"] = step * u.pc
@@ -431,13 +447,12 @@ def _build_out_of_core(args, kw, columns, out):
 
 def _cmd_estimate(args, out):
     import numpy as np
-    from astropy import units as u
-    from astropy.table import Table
 
-    from .bands import get_band
     from ._lib.formats import check_target, format_for
+    from .answers import CAUTION, estimate_targets
+    from .bands import get_band
+    from .exceptions import RowsRejectedWarning
     from .io import load_model, write_table
-    from .model import CAUTION
     from .tracers import read_targets
 
     bands = list(dict.fromkeys(args.band))
@@ -447,35 +462,21 @@ def _cmd_estimate(args, out):
     format_for(args.output, "table")
     check_target(args.output, args.overwrite)
     model = load_model(args.model)
-    from .exceptions import RowsRejectedWarning
-
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
         targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit)
-    ok = np.asarray(targets.valid)
-    table = Table(targets.table, copy=True)
-    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
-    for c in names:
-        if c in table.colnames:
-            table.rename_column(c, f"input_{c}")
-    n = len(table)
-    values = {c: np.full(n, np.nan) for c in names}
-    if ok.any():
-        q = model.query(np.asarray(targets.l)[ok] * u.deg, np.asarray(targets.b)[ok] * u.deg,
-                        np.asarray(targets.distance)[ok] * u.pc,
-                        distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands))
-        for c in names:
-            values[c][ok] = q[c].to_value(u.mag)
-    for c in names:
-        table[c] = values[c] * u.mag
-    table.meta["caution"] = CAUTION
+    table = estimate_targets(model, targets, bands=bands)
     table.meta["model"] = str(args.model)
+    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    rej = targets.rejected
+    table.meta.pop("rejected_by_reason")
+    n_ok = table.meta.pop("n_estimated")
     path = write_table(table, args.output, overwrite=args.overwrite)
-    n_bad = int((~ok).sum())
-    out(f"Estimated extinction for {int(ok.sum())} of {n} targets with the model {args.model} "
+    n = len(table)
+    n_bad = n - n_ok
+    out(f"Estimated extinction for {n_ok} of {n} targets with the model {args.model} "
         f"(law {model.law!r}, R_V = {model.rv:g}).")
     if n_bad:
-        rej = targets.rejected
         reasons, counts = np.unique(np.asarray(rej["reason"]), return_counts=True)
         why = "; ".join(f"{c} {r}" for r, c in zip(reasons, counts))
         rows = ", ".join(f"row {int(r)} ({nm})" for r, nm in zip(rej["row"][:5], rej["name"][:5]))

@@ -90,7 +90,7 @@ from .exceptions import AssumptionWarning, ModelNotFittedError, RowsRejectedWarn
 from ._lib.progress import progress
 from ._lib.sky import separation_deg
 from ._lib.validation import check_int, check_real, param_error, to_value
-from .model import CAUTION
+from .answers import CAUTION
 
 __all__ = ["find_steps", "sight_line_features", "detect_features", "STEP_METHOD"]
 
@@ -568,9 +568,9 @@ def _model_tracers(model):
     tr = model.tracers_
     l, b, d, de, a, ae = (np.asarray(getattr(tr, k), float) for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
     dd = np.maximum(d, 1.0)
-    resid = a - model.layer_._av(b, dd)
+    resid = a - model.layer_.av_pc(b, dd)
     h = 0.01 * dd
-    slope = (model.layer_._av(b, dd + h) - model.layer_._av(b, dd - h)) / (2.0 * h)
+    slope = (model.layer_.av_pc(b, dd + h) - model.layer_.av_pc(b, dd - h)) / (2.0 * h)
     return l, b, d, de, resid, ae, slope
 
 

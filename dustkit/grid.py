@@ -8,7 +8,7 @@ from astropy import units as u
 from ._lib import healpix
 from ._lib.validation import check_choice, check_int, check_nside, check_real, param_error, to_value
 
-__all__ = ["Grid", "MAX_GRID_BYTES"]
+__all__ = ["Grid", "MAX_GRID_BYTES", "edges_info", "edge_index"]
 
 #: Largest grid dustkit agrees to allocate (bytes), counting the working arrays of a build.
 MAX_GRID_BYTES = 8 * 2**30
@@ -117,13 +117,16 @@ class Grid:
         )
 
 
-def _edges_info(edges):
+def edges_info(edges):
     """(first edge, step) when the edges are evenly spaced, else None."""
     steps = np.diff(edges)
     step = float(edges[1] - edges[0])
     if np.allclose(steps, step, rtol=1e-12, atol=0.0):
         return float(edges[0]), step
     return None
+
+
+_edges_info = edges_info  # old name
 
 
 def edge_index(edges, d, k_out=None, f_out=None, uniform=None, work=None):
@@ -144,7 +147,7 @@ def edge_index(edges, d, k_out=None, f_out=None, uniform=None, work=None):
     k = np.empty(d.shape, dtype=np.int64) if k_out is None else k_out
     f = np.empty(d.shape) if f_out is None else f_out
     if uniform is None:
-        uniform = _edges_info(edges)
+        uniform = edges_info(edges)
     if uniform is not None:
         e0, step = uniform
         np.subtract(d, e0, out=f)

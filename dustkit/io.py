@@ -44,6 +44,7 @@ from astropy.table import Table
 
 from .exceptions import DustkitError, ModelFileError
 from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
+from .build.finish import empty_pixel_fill
 from ._lib.validation import check_choice
 
 __all__ = [
@@ -110,28 +111,6 @@ def _fits_value(value):
 
 # ============================================================================ model files
 
-def _reconstruct(grid, layer, walk_variance, predictive_var):
-    """The model's arrays at pixels no tracer reaches, for every pixel (see model._finish).
-
-    Returns a dict attribute -> full (npix, ...) array.
-    """
-    edges = grid.distance_edges
-    lc, bc = grid.pixel_centres()
-    layer_c = layer._av(bc[:, None], edges[None, :])
-    shape = (grid.npix, edges.size)
-    post_var = np.broadcast_to(walk_variance * edges / 1000.0, shape).copy()
-    av = np.maximum(layer_c, 0.0)
-    return {
-        "_resid_": av - layer_c,
-        "_post_var_": post_var,
-        "av_": av,
-        "av_err_": np.sqrt(predictive_var(post_var, av)),
-        "n_tracers_": np.zeros(shape),
-        "counts_": np.zeros((grid.npix, grid.n_bins), dtype=np.int64),
-        "differential_": np.diff(av, axis=1) / (np.diff(edges) / 1000.0)[None, :],
-    }
-
-
 def _rows_differ(a, b):
     a = np.asarray(a)
     b = np.asarray(b)
@@ -142,7 +121,7 @@ def _rows_differ(a, b):
 def _stored_pixels(model):
     """Pixels to store: informed ones plus any whose arrays differ from the rebuilt defaults."""
     g = model.grid_
-    rebuilt = _reconstruct(g, model.layer_, model.walk_variance_, model._predictive_var)
+    rebuilt = empty_pixel_fill(g, model.layer_, model.walk_variance_, model.scatter_)
     need = np.zeros(g.npix, dtype=bool)
     need[model.informed_pixels()] = True
     for attr, arr in rebuilt.items():
@@ -339,7 +318,7 @@ def save_model(model, path, overwrite=False):
     Layout: see the module docstring. The sky table follows the HEALPix FITS convention
     (PIXTYPE, ORDERING, COORDSYS='G', NSIDE, INDXSCHM; Gorski et al. 2005).
     """
-    model._check_fitted()
+    model.check_fitted()
     hdul = _model_hdus(model)
     return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
 
@@ -513,7 +492,7 @@ def _model_from_parts(path, parts):
         warnings.simplefilter("ignore")  # the tracers were validated when the model was built
         model = model_from_state(state)
     # pixels not stored: rebuilt exactly as save_model checked they would be
-    arrays = _reconstruct(grid, model.layer_, model.walk_variance_, model._predictive_var)
+    arrays = empty_pixel_fill(grid, model.layer_, model.walk_variance_, model.scatter_)
     for attr, col in stored.items():
         arrays[attr][pixels] = col.astype(arrays[attr].dtype)
         setattr(model, attr, arrays[attr])
@@ -667,7 +646,7 @@ def write_slice_maps(model, path, overwrite=False, errors=True, mask_uninformed=
     """
     import healpy as hp
 
-    model._check_fitted()
+    model.check_fitted()
     g = model.grid_
     av = np.array(model.av_, dtype=np.float64)
     err = np.array(model.av_err_, dtype=np.float64)

@@ -20,7 +20,7 @@ Pass 1 (sample)
 Pass 2 (sufficient statistics)
     Every chunk adds its tracers to the sums of weights and weighted residuals from the
     layer per (pixel, distance edge), and its held-out rows to the held-out sums, with the
-    model's own per-tracer step (:func:`dustkit.model._nominal_statistics`, as in
+    model's own per-tracer step (:func:`dustkit.build.statistics.nominal_statistics`, as in
     :meth:`ExtinctionModel.fit`). Neither depends on the chunking or on which worker reads
     a chunk. Chunks are processed by dask: one
     task per chunk, in as many parallel chains as there are threads (each chain adds its
@@ -28,7 +28,8 @@ Pass 2 (sufficient statistics)
     ``dask.distributed`` client the tasks run on the cluster; otherwise on dask's local
     threaded scheduler.
 Finish
-    Exactly as in memory (:meth:`ExtinctionModel._finish`): cross-validation over sky and
+    Exactly as in memory, through the model's public seam
+    (:meth:`ExtinctionModel.fit_statistics`): cross-validation over sky and
     distance smoothing and random-walk strength, calibration of the unresolved scatter,
     and isotonic regression.
 
@@ -72,7 +73,9 @@ from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
 from .tracers.rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law, chunk_reasons, validate_rows
-from .model import ExtinctionModel, _nominal_statistics
+from .build.folds import HeldOut, fold_of_rows, row_hash, seed_of
+from .build.statistics import Statistics, nominal_statistics
+from .model import ExtinctionModel
 
 __all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
 
@@ -96,54 +99,7 @@ _EXAMPLES_PER_REASON = 5
 
 # ----------------------------------------------------------------------------- row hashing
 
-_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
-
-
-def _mix64(z):
-    """SplitMix64 finaliser (a bijection of uint64; Steele, Lea & Flood 2014, OOPSLA)."""
-    z = z ^ (z >> np.uint64(30))
-    z = z * np.uint64(0xBF58476D1CE4E5B9)
-    z = z ^ (z >> np.uint64(27))
-    z = z * np.uint64(0x94D049BB133111EB)
-    return z ^ (z >> np.uint64(31))
-
-
-def _row_hash(index, seed, stream):
-    """64-bit hash of row numbers, seeded; ``stream`` separates independent uses."""
-    idx = np.asarray(index, dtype=np.int64).astype(np.uint64)
-    base = _mix64(np.array([np.uint64(int(seed) & 0xFFFFFFFF) * np.uint64(4) + np.uint64(stream)]))[0]
-    with np.errstate(over="ignore"):
-        return _mix64(base + (idx + np.uint64(1)) * _GOLDEN)
-
-
-def fold_of_rows(index, n_folds, random_state=0):
-    """Cross-validation fold of tracers from their row numbers (deterministic hash).
-
-    Parameters
-    ----------
-    index : array_like of int
-        Position of each tracer among the accepted rows of the catalogue (0, 1, 2, ...).
-    n_folds : int
-        Number of folds.
-    random_state : int
-        Seed (``ExtinctionModel.random_state``).
-
-    Returns
-    -------
-    ndarray of int
-        Fold of each row, uniform in ``0 .. n_folds - 1``. The same row gets the same fold
-        whichever chunk, file or worker it is read by, which is what lets a chunked build
-        equal the in-memory one.
-    """
-    n_folds = check_int("n_folds", n_folds, 1, 10_000)
-    h = _row_hash(index, _seed(random_state), 0)
-    return ((h >> np.uint64(32)) % np.uint64(n_folds)).astype(np.int64)
-
-
-def _seed(random_state):
-    if random_state is None:
-        return 0
-    return check_int("random_state", random_state, 0, 2**63 - 1)
+# row hashing and folds: dustkit.build.folds (row_hash, fold_of_rows), shared with ExtinctionModel.fit
 
 
 # ----------------------------------------------------------------------------- reading chunks
@@ -336,7 +292,7 @@ def _pass1_link(acc, cid, chunk, colmap, scale, k, seed, rv):
     code, clean = validate_rows(a, rv)
     keep = np.nonzero(code < 0)[0]
     file_row = chunk.row0 + keep  # catalogue row number (before rejection)
-    key = _row_hash(file_row, seed, 1)
+    key = row_hash(file_row, seed, 1)
     if key.size > k:
         sel = np.argpartition(key, k - 1)[:k]
     else:
@@ -429,9 +385,8 @@ def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, r
     else:
         fold = None
         local = held[np.searchsorted(held, offset):np.searchsorted(held, offset + l.size)] - offset
-    total, fold_stats, counts = _nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds,
-                                                    held=local, threads=1)
-    _pass2_merge(acc, (total, fold_stats, counts))
+    stats = nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds, held=local, threads=1)
+    _pass2_merge(acc, tuple(stats))
     return acc
 
 
@@ -530,8 +485,9 @@ def _n_chains(client, stats_bytes, n_chunks):
 
 # ----------------------------------------------------------------------------- public API
 
-_MODEL_PARAMS = ("nside", "distance_max", "distance_step", "distance_edges", "ordering", "uncertainty",
-                 "n_folds", "sky_passes", "random_state")
+# the model parameters a chunked build takes: the constructor's, less the Monte Carlo draws (a
+# chunked build is bin-scatter) and quiet (an argument of its own here)
+_MODEL_PARAMS = tuple(p for p in ExtinctionModel.param_names() if p not in ("n_draws", "quiet"))
 
 
 def build_from_parquet(
@@ -624,8 +580,8 @@ def build_from_parquet(
         cols.update(columns)
 
     model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
-    grid = model._make_grid()
-    seed = _seed(model.random_state)
+    grid = model.make_grid()
+    seed = seed_of(model.random_state)
     n_folds = check_int("n_folds", model.n_folds, 2, 50)
 
     files = _find_files(path_or_folder)
@@ -733,15 +689,13 @@ def build_from_parquet(
     pos = np.searchsorted(gidx_sorted, held_rows)
     hl, hb, hd, hde, hav, hae = data[:, pos]
     held_fold = fold_of_rows(held_rows, n_folds, seed) if k_fold else np.zeros(held_rows.size, dtype=np.int64)
-    heldout = (hl, hb, hd, hde, hav, hae, held_fold)
-    _, draws, folds, passes = model._check_params(n_used)
+    heldout = HeldOut(hl, hb, hd, hde, hav, hae, held_fold)
+    plan = model.fit_plan(n_used)
     rng = np.random.default_rng(model.random_state)
-    total, fold_stats, counts = sums
+    statistics = Statistics(*sums)
     del sums
-    model._finish(grid, layer, total, fold_stats, passes, heldout, "bin-scatter", 1, rng)
+    model.fit_statistics(statistics, layer, heldout, plan, rng=rng, tracers=layer_set)
     lap("finish (cross-validation, calibration, isotonic)")
-    model.counts_ = counts.reshape(grid.npix, grid.n_bins)
-    model.tracers_ = layer_set
     if isinstance(getattr(layer_set, "meta", None), dict):
         layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows),
                                "sample_of": n_used})

@@ -12,7 +12,7 @@ from astropy.table import Table
 from scipy.special import ndtr
 
 from ._lib.sky import separation_deg
-from .layer import _layer_av_pc
+from .layer import layer_av_pc
 
 __all__ = ["Cloud", "DustField", "simulate_tracers", "random_clouds"]
 
@@ -57,7 +57,7 @@ class DustField:
         l = np.asarray(l, float)
         b = np.asarray(b, float)
         d = np.asarray(distance, float)
-        total = _layer_av_pc(b, d, self.a0, self.h, self.z_sun)
+        total = layer_av_pc(b, d, self.a0, self.h, self.z_sun)
         for c in self.clouds:  # a handful of clouds, each vectorised over all positions
             sep = separation_deg(l, b, c.l, c.b)
             total = total + c.av * np.exp(-0.5 * (sep / c.radius) ** 2) * ndtr((d - c.distance) / c.depth)
@@ -65,7 +65,7 @@ class DustField:
 
     def layer_av(self, b, distance):
         """A_V (mag) of the layer alone."""
-        return _layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)
+        return layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)
 
 
 def random_clouds(n, l_range, b_range, distance_range, rng, av_range=(0.3, 2.0), radius_range=(1.0, 4.0), depth=30.0):

@@ -119,10 +119,10 @@ class Explorer:
             step = float(np.median(np.diff(edges)))
             dmax = float(edges[-1])
         else:
-            defaults = ExtinctionModel()
-            nside = params.get("nside", defaults.nside)
-            step = float(to_value("distance_step", params.get("distance_step", defaults.distance_step), u.pc, u.pc))
-            dmax = float(to_value("distance_max", params.get("distance_max", defaults.distance_max), u.pc, u.pc))
+            defaults = ExtinctionModel.param_defaults()  # the one list of model parameters
+            nside = params.get("nside", defaults["nside"])
+            step = float(to_value("distance_step", params.get("distance_step", defaults["distance_step"]), u.pc, u.pc))
+            dmax = float(to_value("distance_max", params.get("distance_max", defaults["distance_max"]), u.pc, u.pc))
         for k in ("nside", "distance_step", "distance_max", "distance_edges"):
             params.pop(k, None)
         params.setdefault("quiet", True)
