@@ -34,7 +34,6 @@ from ._lib import healpix
 from ._lib.sky import separation_deg
 from ._lib.validation import check_real, param_error, to_value
 from .build.calibration import predictive_variance
-from .exceptions import RowsRejectedWarning
 
 __all__ = [
     "CAUTION",
@@ -297,16 +296,12 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
         ``meta["n_estimated"]`` the number of rows estimated and ``meta["rejected_by_reason"]``
         the rows left empty by reason (the rows themselves: ``TargetList.rejected``).
     """
-    import warnings
-
     from .tracers import TargetList, read_targets
 
     model.check_fitted()
     bands = list(dict.fromkeys(bands))
     if not isinstance(targets, TargetList):
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RowsRejectedWarning)  # reported in meta["rejected"]
-            targets = read_targets(targets, **read_options)
+        targets = read_targets(targets, **read_options)  # announces rows kept empty (RowsRejectedWarning)
     elif read_options:
         raise param_error(", ".join(read_options), "given only when targets is read here (not a TargetList)",
                           "reading options with a TargetList")

@@ -269,7 +269,7 @@ class Explorer:
             w.add_class(css)
 
         # figures (the sky extent is fixed by the tracers' positions, so the view is stable)
-        self.sky_extent = plotting._tracer_extent(base)
+        self.sky_extent = plotting.tracer_extent(base)
         if self.sky_extent == "all-sky":
             sky_size = (6.6, 4.0)
         else:
