@@ -50,7 +50,7 @@ def field_catalogue(n, workdir, seed=11):
     path = Path(workdir) / f"field_{n}_{seed}.npy"
     if path.exists():
         return np.load(path, mmap_mode=None)
-    from dustkit.layer import _layer_av_pc
+    from dustkit.layer import layer_av_pc as _layer_av_pc
 
     rng = np.random.default_rng(seed)
     out = np.empty((6, n))

@@ -48,7 +48,7 @@ def _rss_gib():
 
 
 def _batch(n, seed):
-    from dustkit.layer import _layer_av_pc
+    from dustkit.layer import layer_av_pc as _layer_av_pc
 
     rng = np.random.default_rng(seed)
     l = rng.uniform(0.0, 360.0, n)

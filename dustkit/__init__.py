@@ -10,7 +10,7 @@ science or for instrument time.
 
 __version__ = "0.1.0"
 
-from ._errors import (  # noqa: F401
+from .exceptions import (  # noqa: F401
     CatalogError,
     DustkitError,
     LawRangeError,

@@ -151,9 +151,13 @@ def build_parser():
     p = sub("build", "Build a model from a tracer catalogue and save it as a FITS model file.")
     p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue (CSV, ECSV, FITS table, VOTable, Parquet)")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.fits", help="model file to write")
-    p.add_argument("--nside", type=int, default=32, help="HEALPix NSIDE of the sky pixels (power of two; default 32)")
-    p.add_argument("--distance-max", type=float, metavar="PC", help="last distance edge in pc (default 6000)")
-    p.add_argument("--distance-step", type=float, metavar="PC", help="distance bin width in pc (default 200)")
+    grid = _grid_defaults()
+    p.add_argument("--nside", type=int, default=grid["nside"],
+                   help=f"HEALPix NSIDE of the sky pixels (power of two; default {grid['nside']})")
+    p.add_argument("--distance-max", type=float, metavar="PC",
+                   help=f"last distance edge in pc (default {grid['distance_max']:g})")
+    p.add_argument("--distance-step", type=float, metavar="PC",
+                   help=f"distance bin width in pc (default {grid['distance_step']:g})")
     p.add_argument("--distance-edges", metavar="E0,E1,...",
                    help="explicit distance edges in pc, comma-separated (instead of --distance-max/--distance-step)")
     _add_law_options(p)
@@ -254,18 +258,29 @@ def _columns(pairs):
 
 
 def _check_law(args):
-    from ._validation import check_real
+    from ._lib.validation import check_real
     from .laws import get_law
 
     get_law(args.law)
     check_real("rv", args.rv, 0, 20, low_inclusive=False)
 
 
+def _grid_defaults():
+    """The grid parameters' defaults, from the model's constructor (one list of parameters): nside, pc, pc."""
+    from astropy import units as u
+
+    from .model import ExtinctionModel
+
+    d = ExtinctionModel.param_defaults()
+    return {"nside": d["nside"], "distance_max": d["distance_max"].to_value(u.pc),
+            "distance_step": d["distance_step"].to_value(u.pc)}
+
+
 def _grid_options(args):
     import numpy as np
     from astropy import units as u
 
-    from ._validation import check_nside, check_real
+    from ._lib.validation import check_nside, check_real
 
     check_nside(args.nside)
     kw = {"nside": args.nside}
@@ -283,9 +298,10 @@ def _grid_options(args):
         Grid(args.nside, edges)  # validates: increasing, non-negative, at least two
         kw["distance_edges"] = edges * u.pc
     else:
-        dmax = 6000.0 if args.distance_max is None else check_real("distance_max", args.distance_max, 0, 1e6,
+        defaults = _grid_defaults()
+        dmax = defaults["distance_max"] if args.distance_max is None else check_real("distance_max", args.distance_max, 0, 1e6,
                                                                        low_inclusive=False)
-        step = 200.0 if args.distance_step is None else check_real("distance_step", args.distance_step, 0, dmax,
+        step = defaults["distance_step"] if args.distance_step is None else check_real("distance_step", args.distance_step, 0, dmax,
                                                                        low_inclusive=False)
         kw["distance_max"] = dmax * u.pc
         kw["distance_step"] = step * u.pc
@@ -314,13 +330,15 @@ def _quiet_flag(args):
 
 
 def _save_figure(fig, path, overwrite):
-    """Write a figure atomically (through dustkit.io's writer, so errors read the same)."""
-    from .io import _atomic_write
+    """Write a figure atomically, with the figure suffixes of the format registry."""
+    from ._lib.formats import atomic_write, format_for
+    from .exceptions import FileFormatError
 
-    fmt = Path(path).suffix.lower().lstrip(".")
-    if fmt not in ("png", "pdf", "svg", "eps", "jpg", "jpeg"):
-        raise _UsageError(f"the figure file must end in .png, .pdf, .svg or .eps. Got {str(path)!r} instead")
-    return _atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=150), overwrite, what="figure")
+    try:
+        fmt = format_for(path, "figure")
+    except FileFormatError as exc:  # a bad option value: usage error, as for other options
+        raise _UsageError(str(exc).rstrip(".")) from None
+    return atomic_write(path, lambda tmp: fig.savefig(tmp, format=fmt, dpi=150), overwrite, what="figure")
 
 
 def _profile_figure(model, l_deg, b_deg, radius_deg=None):
@@ -372,13 +390,14 @@ def _sky_figure(model, distance_pc):
 # ============================================================================ commands
 
 def _cmd_build(args, out):
-    from .io import _check_target, save_model
+    from ._lib.formats import check_target
+    from .io import save_model
     from .model import CAUTION, ExtinctionModel
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
-    _check_target(args.output, args.overwrite)  # fail before a long build, not after
+    check_target(args.output, args.overwrite)  # fail before a long build, not after
     if os.path.isdir(args.catalog) or args.chunk_size is not None or args.scheduler:
         model = _build_out_of_core(args, kw, columns, out)
     else:
@@ -428,50 +447,36 @@ def _build_out_of_core(args, kw, columns, out):
 
 def _cmd_estimate(args, out):
     import numpy as np
-    from astropy import units as u
-    from astropy.table import Table
 
+    from ._lib.formats import check_target, format_for
+    from .answers import CAUTION, estimate_targets
     from .bands import get_band
-    from .io import _check_target, _format_for, load_model, write_table
-    from .model import CAUTION
+    from .exceptions import RowsRejectedWarning
+    from .io import load_model, write_table
     from .tracers import read_targets
 
     bands = list(dict.fromkeys(args.band))
     for band in bands:
         get_band(band)
     columns = _columns(args.column)
-    _format_for(args.output, None)
-    _check_target(args.output, args.overwrite)
+    format_for(args.output, "table")
+    check_target(args.output, args.overwrite)
     model = load_model(args.model)
-    from ._errors import RowsRejectedWarning
-
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
         targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit)
-    ok = np.asarray(targets.valid)
-    table = Table(targets.table, copy=True)
-    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
-    for c in names:
-        if c in table.colnames:
-            table.rename_column(c, f"input_{c}")
-    n = len(table)
-    values = {c: np.full(n, np.nan) for c in names}
-    if ok.any():
-        q = model.query(np.asarray(targets.l)[ok] * u.deg, np.asarray(targets.b)[ok] * u.deg,
-                        np.asarray(targets.distance)[ok] * u.pc,
-                        distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands))
-        for c in names:
-            values[c][ok] = q[c].to_value(u.mag)
-    for c in names:
-        table[c] = values[c] * u.mag
-    table.meta["caution"] = CAUTION
+    table = estimate_targets(model, targets, bands=bands)
     table.meta["model"] = str(args.model)
+    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    rej = targets.rejected
+    table.meta.pop("rejected_by_reason")
+    n_ok = table.meta.pop("n_estimated")
     path = write_table(table, args.output, overwrite=args.overwrite)
-    n_bad = int((~ok).sum())
-    out(f"Estimated extinction for {int(ok.sum())} of {n} targets with the model {args.model} "
+    n = len(table)
+    n_bad = n - n_ok
+    out(f"Estimated extinction for {n_ok} of {n} targets with the model {args.model} "
         f"(law {model.law!r}, R_V = {model.rv:g}).")
     if n_bad:
-        rej = targets.rejected
         reasons, counts = np.unique(np.asarray(rej["reason"]), return_counts=True)
         why = "; ".join(f"{c} {r}" for r, c in zip(reasons, counts))
         rows = ", ".join(f"row {int(r)} ({nm})" for r, nm in zip(rej["row"][:5], rej["name"][:5]))
@@ -499,14 +504,15 @@ def _cmd_layer(args, out):
 def _cmd_profile(args, out):
     import numpy as np
 
-    from ._validation import check_real
-    from .io import _check_target, load_model
+    from ._lib.validation import check_real
+    from ._lib.formats import check_target
+    from .io import load_model
 
     check_real("b", args.b, -90, 90)
     check_real("l", args.l, -360, 720)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
-    _check_target(args.output, args.overwrite)
+    check_target(args.output, args.overwrite)
     model = load_model(args.model)
     fig = _profile_figure(model, args.l, args.b, args.radius)
     path = _save_figure(fig, args.output, args.overwrite)
@@ -525,12 +531,13 @@ def _cmd_profile(args, out):
 
 
 def _cmd_export(args, out):
-    from .io import _check_target, _format_for, export_table, load_model, write_slice_maps
+    from ._lib.formats import check_target, format_for
+    from .io import export_table, load_model, write_slice_maps
 
-    _format_for(args.output, None)
-    _check_target(args.output, args.overwrite)
+    format_for(args.output, "table")
+    check_target(args.output, args.overwrite)
     if args.maps:
-        _check_target(args.maps, args.overwrite)
+        check_target(args.maps, args.overwrite)
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
     g = model.grid_
@@ -545,17 +552,18 @@ def _cmd_export(args, out):
 def _cmd_features(args, out):
     from astropy import units as u
 
-    from ._validation import check_real
+    from ._lib.validation import check_real
     from .features import detect_features
-    from .io import _check_target, _format_for, load_model, write_table
+    from ._lib.formats import check_target, format_for
+    from .io import load_model, write_table
 
     check_real("min_delta_av", args.min_delta_av, 0, 100)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
     for path in (args.output, args.detections):
         if path:
-            _format_for(path, None)
-            _check_target(path, args.overwrite)
+            format_for(path, "table")
+            check_target(path, args.overwrite)
     model = load_model(args.model)
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg, min_delta_av=args.min_delta_av * u.mag,
@@ -719,7 +727,7 @@ def _cmd_demo(args, out):
 # ============================================================================ entry point
 
 def _show_warning_factory(quiet, debug):
-    from ._errors import DustkitWarning, RowsRejectedWarning
+    from .exceptions import DustkitWarning, RowsRejectedWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, DustkitWarning) and not debug:
@@ -746,7 +754,7 @@ def main(argv=None):
     args.quiet, args.debug = quiet, debug
     prog = f"{_PROG} {args.command}"
 
-    from ._errors import DustkitError, ParameterError
+    from .exceptions import DustkitError, FileFormatError, ParameterError
 
     old_show = warnings.showwarning
     warnings.showwarning = _show_warning_factory(quiet, debug)
@@ -755,6 +763,11 @@ def main(argv=None):
             warnings.simplefilter("default")
             warnings.showwarning = _show_warning_factory(quiet, debug)
             return int(args.func(args, _Out(quiet)) or 0)
+    except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
+        if debug:
+            traceback.print_exc()
+        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        return 1
     except (_UsageError, ParameterError) as exc:
         if debug:
             traceback.print_exc()

@@ -85,11 +85,12 @@ from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 from scipy.special import ndtr
 
-from . import _healpix
-from ._errors import AssumptionWarning, ModelNotFittedError, RowsRejectedWarning
-from ._progress import progress
-from ._validation import check_int, check_real, param_error, to_value
-from .model import CAUTION
+from ._lib import healpix
+from .exceptions import AssumptionWarning, ModelNotFittedError, RowsRejectedWarning
+from ._lib.progress import progress
+from ._lib.sky import separation_deg
+from ._lib.validation import check_int, check_real, param_error, to_value
+from .answers import CAUTION
 
 __all__ = ["find_steps", "sight_line_features", "detect_features", "STEP_METHOD"]
 
@@ -567,16 +568,10 @@ def _model_tracers(model):
     tr = model.tracers_
     l, b, d, de, a, ae = (np.asarray(getattr(tr, k), float) for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
     dd = np.maximum(d, 1.0)
-    resid = a - model.layer_._av(b, dd)
+    resid = a - model.layer_.av_pc(b, dd)
     h = 0.01 * dd
-    slope = (model.layer_._av(b, dd + h) - model.layer_._av(b, dd - h)) / (2.0 * h)
+    slope = (model.layer_.av_pc(b, dd + h) - model.layer_.av_pc(b, dd - h)) / (2.0 * h)
     return l, b, d, de, resid, ae, slope
-
-
-def _separation(l1, b1, l2, b2):
-    l1, b1, l2, b2 = (np.deg2rad(v) for v in (l1, b1, l2, b2))
-    s = np.sin((b2 - b1) / 2) ** 2 + np.cos(b1) * np.cos(b2) * np.sin((l2 - l1) / 2) ** 2
-    return np.rad2deg(2 * np.arcsin(np.sqrt(np.clip(s, 0, 1))))
 
 
 def sight_line_features(model_or_tracers, l, b, radius=None, **kwargs):
@@ -630,7 +625,7 @@ def sight_line_features(model_or_tracers, l, b, radius=None, **kwargs):
     random_state = kwargs.pop("random_state", 0)
     if kwargs:
         raise param_error(next(iter(kwargs)), "one of find_steps' settings", kwargs[next(iter(kwargs))])
-    inside = _separation(tl, tb, lv, bv) <= rad
+    inside = separation_deg(tl, tb, lv, bv) <= rad
     t = _find_steps_plain(d[inside], de[inside], a[inside], ae[inside], opts, random_state,
                           meta_extra={"l": lv, "b": bv, "radius": rad, "layer_subtracted": layer},
                           slope=None if slope is None else slope[inside])
@@ -642,7 +637,7 @@ def sight_line_features(model_or_tracers, l, b, radius=None, **kwargs):
 def _cone_members(grid, order, sorted_pix, tl, tb, lc, bc, rad, pix_rad):
     """Indices of tracers within ``rad`` deg of (lc, bc), via the pixels the cone touches."""
     # every pixel overlapping the cone has its centre within rad + (a pixel's largest half-size)
-    pix = _healpix.query_disc(grid.nside, lc, bc, rad + 1.5 * pix_rad, nest=grid.nest)
+    pix = healpix.query_disc(grid.nside, lc, bc, rad + 1.5 * pix_rad, nest=grid.nest)
     lo = np.searchsorted(sorted_pix, pix, side="left")
     hi = np.searchsorted(sorted_pix, pix, side="right")
     cnt = hi - lo
@@ -650,7 +645,7 @@ def _cone_members(grid, order, sorted_pix, tl, tb, lc, bc, rad, pix_rad):
         return np.zeros(0, int)
     starts = np.repeat(lo - np.concatenate([[0], np.cumsum(cnt)[:-1]]), cnt)
     idx = order[starts + np.arange(cnt.sum())]
-    return idx[_separation(tl[idx], tb[idx], lc, bc) <= rad]
+    return idx[separation_deg(tl[idx], tb[idx], lc, bc) <= rad]
 
 
 def _unit_vectors(l_deg, b_deg):
@@ -765,7 +760,7 @@ def _neighbour_pairs(pix, nside, nest):
         return np.zeros(0, int), np.zeros(0, int)
     order = np.argsort(pix, kind="stable")
     sp = pix[order]
-    nb = _healpix.neighbours(nside, pix, nest=nest)  # (8, n), -1 where none
+    nb = healpix.neighbours(nside, pix, nest=nest)  # (8, n), -1 where none
     src = np.repeat(np.arange(n)[None, :], nb.shape[0], axis=0).ravel()
     nb = nb.ravel()
     ok = nb >= 0
@@ -820,7 +815,7 @@ def _merge(det, members, grid, rad, merge_sigma):
     cvec = cvec / np.linalg.norm(cvec, axis=1, keepdims=True)
     cl = np.rad2deg(np.arctan2(cvec[:, 1], cvec[:, 0])) % 360.0
     cb = np.rad2deg(np.arcsin(np.clip(cvec[:, 2], -1.0, 1.0)))
-    off = _separation(l, b, cl[lab], cb[lab])
+    off = separation_deg(l, b, cl[lab], cb[lab])
     wsum = np.bincount(lab, w, n_feat)
     # RMS offset per axis (a 2-D Gaussian of sigma s has <r^2> = 2 s^2) plus the cone's own size
     extent = np.sqrt(np.bincount(lab, w * off**2, n_feat) / (2.0 * wsum) + rad**2 / 4.0)

@@ -5,10 +5,10 @@ from dataclasses import dataclass
 import numpy as np
 from astropy import units as u
 
-from . import _healpix
-from ._validation import check_choice, check_int, check_nside, check_real, param_error, to_value
+from ._lib import healpix
+from ._lib.validation import check_choice, check_int, check_nside, check_real, param_error, to_value
 
-__all__ = ["Grid", "MAX_GRID_BYTES"]
+__all__ = ["Grid", "MAX_GRID_BYTES", "edges_info", "edge_index"]
 
 #: Largest grid dustkit agrees to allocate (bytes), counting the working arrays of a build.
 MAX_GRID_BYTES = 8 * 2**30
@@ -73,7 +73,7 @@ class Grid:
 
     @property
     def npix(self):
-        return _healpix.nside2npix(self.nside)
+        return healpix.nside2npix(self.nside)
 
     @property
     def n_edges(self):
@@ -86,21 +86,21 @@ class Grid:
     @property
     def pixel_area(self):
         """Area of one pixel (Quantity, deg^2)."""
-        return _healpix.pixarea_deg2(self.nside) * u.deg**2
+        return healpix.pixarea_deg2(self.nside) * u.deg**2
 
     def pixel(self, l_deg, b_deg):
         """Pixel index of Galactic positions (plain degrees)."""
-        return _healpix.ang2pix(self.nside, l_deg, b_deg, nest=self.nest)
+        return healpix.ang2pix(self.nside, l_deg, b_deg, nest=self.nest)
 
     def pixel_centres(self, pixels=None):
         """Galactic (l, b) in degrees of pixel centres (all pixels by default)."""
         if pixels is None:
             pixels = np.arange(self.npix)
-        return _healpix.pix2ang(self.nside, pixels, nest=self.nest)
+        return healpix.pix2ang(self.nside, pixels, nest=self.nest)
 
     def interp_weights(self, l_deg, b_deg):
         """HEALPix bilinear interpolation pixels and weights, each of shape (4, n)."""
-        return _healpix.interp_weights(self.nside, l_deg, b_deg, nest=self.nest)
+        return healpix.interp_weights(self.nside, l_deg, b_deg, nest=self.nest)
 
     def edge_position(self, distance_pc):
         """Lower edge index ``k`` and fraction ``f`` in [0, 1] of each distance inside its bin.
@@ -117,13 +117,16 @@ class Grid:
         )
 
 
-def _edges_info(edges):
+def edges_info(edges):
     """(first edge, step) when the edges are evenly spaced, else None."""
     steps = np.diff(edges)
     step = float(edges[1] - edges[0])
     if np.allclose(steps, step, rtol=1e-12, atol=0.0):
         return float(edges[0]), step
     return None
+
+
+_edges_info = edges_info  # old name
 
 
 def edge_index(edges, d, k_out=None, f_out=None, uniform=None, work=None):
@@ -144,7 +147,7 @@ def edge_index(edges, d, k_out=None, f_out=None, uniform=None, work=None):
     k = np.empty(d.shape, dtype=np.int64) if k_out is None else k_out
     f = np.empty(d.shape) if f_out is None else f_out
     if uniform is None:
-        uniform = _edges_info(edges)
+        uniform = edges_info(edges)
     if uniform is not None:
         e0, step = uniform
         np.subtract(d, e0, out=f)

@@ -33,7 +33,6 @@ moved over the target with :func:`os.replace`; a failed write leaves an existing
 
 import json
 import os
-import tempfile
 import textwrap
 import warnings
 from dataclasses import replace
@@ -43,8 +42,10 @@ import numpy as np
 from astropy import units as u
 from astropy.table import Table
 
-from ._errors import DustkitError, ModelFileError
-from ._validation import check_choice
+from .exceptions import DustkitError, ModelFileError
+from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
+from .build.finish import empty_pixel_fill
+from ._lib.validation import check_choice
 
 __all__ = [
     "save_model",
@@ -56,8 +57,8 @@ __all__ = [
     "MODEL_FILE_KIND",
 ]
 
-#: Export formats by file suffix (``format=`` accepts the values).
-EXPORT_FORMATS = {".ecsv": "ecsv", ".fits": "fits", ".fit": "fits", ".fts": "fits", ".csv": "csv"}
+#: Export formats by file suffix (``format=`` accepts the values); the registry's table formats.
+EXPORT_FORMATS = TABLE_FORMATS
 #: Value of the ``DKFILE`` keyword that marks a dustkit model file.
 MODEL_FILE_KIND = "EXTINCTION MODEL"
 _FORMAT_VERSION = 1
@@ -90,76 +91,11 @@ def _version():
         return "unknown"
 
 
-def _check_target(path, overwrite):
-    """Return ``path`` as a Path after checking the folder exists and overwriting is allowed."""
-    if not isinstance(path, (str, os.PathLike)):
-        raise ModelFileError(f"The output path must be a file name; got {type(path).__name__} {path!r}.")
-    path = Path(path).expanduser()
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise ModelFileError(
-            f"Cannot write '{path}': the folder '{folder}' does not exist. Hint: create it first."
-        )
-    if path.is_dir():
-        raise ModelFileError(f"Cannot write '{path}': it is a folder. Hint: give a file name.")
-    if path.exists() and not overwrite:
-        raise ModelFileError(
-            f"'{path}' already exists; dustkit does not overwrite files unless asked. "
-            "Hint: pass overwrite=True (on the command line: --overwrite), or choose another name."
-        )
-    return path
-
-
-def _file_mode(path):
-    if path.exists():
-        return path.stat().st_mode & 0o7777
-    mask = os.umask(0)
-    os.umask(mask)
-    return 0o666 & ~mask
-
-
-def _atomic_write(path, write, overwrite=False, what="file"):
-    """Write through ``write(tmp_path)`` into a temporary file beside ``path``, then replace ``path``.
-
-    Any failure removes the temporary file and leaves an existing ``path`` untouched.
-    """
-    path = _check_target(path, overwrite)
-    folder = path.parent if str(path.parent) else Path(".")
-    suffix = "".join(path.suffixes[-1:])
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".part{suffix}", dir=folder)
-    os.close(fd)
-    os.unlink(tmp)  # writers (astropy, healpy, matplotlib) create the file themselves
-    try:
-        write(tmp)
-        os.chmod(tmp, _file_mode(path))
-        os.replace(tmp, path)
-    except BaseException as exc:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        if isinstance(exc, DustkitError) or not isinstance(exc, Exception):
-            raise
-        raise ModelFileError(
-            f"Could not write the {what} '{path}': {type(exc).__name__}: {str(exc).rstrip('.')}. "
-            + ("The existing file was left unchanged. " if path.exists() else "")
-            + ("Hint: check the free space and permissions of the folder." if isinstance(exc, OSError)
-               else "Hint: the data may hold values this format cannot store; try ECSV.")
-        ) from exc
-    return path
-
-
-def _format_for(path, format, choices=EXPORT_FORMATS):
+def _table_format(path, format):
+    """The table format: ``format`` when given (checked), else from the suffix (the registry)."""
     if format is not None:
-        return check_choice("format", format, tuple(sorted(set(choices.values()))))
-    suffix = Path(path).suffix.lower()
-    if suffix not in choices:
-        known = ", ".join(sorted(choices))
-        raise ModelFileError(
-            f"Cannot tell the table format of '{path}' from its suffix {suffix!r}. "
-            f"Hint: use one of {known}, or pass format='ecsv', 'fits' or 'csv'."
-        )
-    return choices[suffix]
+        return check_choice("format", format, tuple(sorted(set(TABLE_FORMATS.values()))))
+    return format_for(path, "table")
 
 
 def _fits_value(value):
@@ -175,28 +111,6 @@ def _fits_value(value):
 
 # ============================================================================ model files
 
-def _reconstruct(grid, layer, walk_variance, predictive_var):
-    """The model's arrays at pixels no tracer reaches, for every pixel (see model._finish).
-
-    Returns a dict attribute -> full (npix, ...) array.
-    """
-    edges = grid.distance_edges
-    lc, bc = grid.pixel_centres()
-    layer_c = layer._av(bc[:, None], edges[None, :])
-    shape = (grid.npix, edges.size)
-    post_var = np.broadcast_to(walk_variance * edges / 1000.0, shape).copy()
-    av = np.maximum(layer_c, 0.0)
-    return {
-        "_resid_": av - layer_c,
-        "_post_var_": post_var,
-        "av_": av,
-        "av_err_": np.sqrt(predictive_var(post_var, av)),
-        "n_tracers_": np.zeros(shape),
-        "counts_": np.zeros((grid.npix, grid.n_bins), dtype=np.int64),
-        "differential_": np.diff(av, axis=1) / (np.diff(edges) / 1000.0)[None, :],
-    }
-
-
 def _rows_differ(a, b):
     a = np.asarray(a)
     b = np.asarray(b)
@@ -207,7 +121,7 @@ def _rows_differ(a, b):
 def _stored_pixels(model):
     """Pixels to store: informed ones plus any whose arrays differ from the rebuilt defaults."""
     g = model.grid_
-    rebuilt = _reconstruct(g, model.layer_, model.walk_variance_, model._predictive_var)
+    rebuilt = empty_pixel_fill(g, model.layer_, model.walk_variance_, model.scatter_)
     need = np.zeros(g.npix, dtype=bool)
     need[model.informed_pixels()] = True
     for attr, arr in rebuilt.items():
@@ -404,9 +318,9 @@ def save_model(model, path, overwrite=False):
     Layout: see the module docstring. The sky table follows the HEALPix FITS convention
     (PIXTYPE, ORDERING, COORDSYS='G', NSIDE, INDXSCHM; Gorski et al. 2005).
     """
-    model._check_fitted()
+    model.check_fitted()
     hdul = _model_hdus(model)
-    return _atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
+    return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
 
 
 def _bad_file(path, why, hint=None):
@@ -578,7 +492,7 @@ def _model_from_parts(path, parts):
         warnings.simplefilter("ignore")  # the tracers were validated when the model was built
         model = model_from_state(state)
     # pixels not stored: rebuilt exactly as save_model checked they would be
-    arrays = _reconstruct(grid, model.layer_, model.walk_variance_, model._predictive_var)
+    arrays = empty_pixel_fill(grid, model.layer_, model.walk_variance_, model.scatter_)
     for attr, col in stored.items():
         arrays[attr][pixels] = col.astype(arrays[attr].dtype)
         setattr(model, attr, arrays[attr])
@@ -649,7 +563,7 @@ def write_table(table, path, format=None, overwrite=False):
     ECSV keeps units and metadata; FITS keeps units and puts simple metadata in header
     keywords; CSV keeps column names and values only (for spreadsheets).
     """
-    fmt = _format_for(path, format)
+    fmt = _table_format(path, format)
 
     def write(tmp):
         with warnings.catch_warnings():
@@ -663,7 +577,7 @@ def write_table(table, path, format=None, overwrite=False):
                 plain.meta.clear()
                 plain.write(tmp, format="ascii.csv")
 
-    return _atomic_write(path, write, overwrite, what=f"{fmt.upper()} table")
+    return atomic_write(path, write, overwrite, what=f"{fmt.upper()} table")
 
 
 def export_table(model, path, format=None, overwrite=False):
@@ -695,7 +609,7 @@ def export_table(model, path, format=None, overwrite=False):
     the metadata in header keywords; CSV has the same column names and units as listed here,
     with no metadata, for spreadsheets.
     """
-    _format_for(path, format)  # a bad suffix fails before the table is built
+    _table_format(path, format)  # a bad suffix fails before the table is built
     return write_table(model.to_table(), path, format=format, overwrite=overwrite)
 
 
@@ -732,7 +646,7 @@ def write_slice_maps(model, path, overwrite=False, errors=True, mask_uninformed=
     """
     import healpy as hp
 
-    model._check_fitted()
+    model.check_fitted()
     g = model.grid_
     av = np.array(model.av_, dtype=np.float64)
     err = np.array(model.av_err_, dtype=np.float64)
@@ -763,4 +677,4 @@ def write_slice_maps(model, path, overwrite=False, errors=True, mask_uninformed=
 
     if len(maps) > 999:
         raise ModelFileError(f"Too many distance edges ({g.n_edges}) for one slice-map file (at most 999).")
-    return _atomic_write(path, write, overwrite, what="slice-map file")
+    return atomic_write(path, write, overwrite, what="slice-map file")

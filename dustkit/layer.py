@@ -11,21 +11,21 @@ import numpy as np
 from astropy import units as u
 from scipy import optimize
 
-from ._errors import CatalogError
-from ._validation import check_real, to_value
+from .exceptions import CatalogError
+from ._lib.validation import check_real, to_value
 
-__all__ = ["DustLayer", "layer_av", "fit_layer"]
+__all__ = ["DustLayer", "layer_av", "fit_layer", "layer_av_pc", "layer_av_mu", "layer_slope_pc"]
 
 _PC_PER_KPC = 1000.0
 
 
-def _layer_av_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
+def layer_av_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
     """Closed-form layer A_V (mag) on plain float arrays; distances and heights in pc."""
     mu = np.sin(np.deg2rad(np.asarray(b_deg, dtype=float)))
-    return _layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc)
+    return layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc)
 
 
-def _layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc, out=None, work=None):
+def layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc, out=None, work=None):
     """Closed-form layer A_V (mag) from ``mu = sin(b)`` and distance (pc).
 
     ``out`` and ``work`` (two float and two bool arrays of the broadcast shape) are
@@ -84,10 +84,13 @@ def _layer_av_mu(mu, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc, out=None, work
     return out
 
 
-def _layer_slope_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
+def layer_slope_pc(b_deg, distance_pc, a0_mag_per_kpc, h_pc, z_sun_pc):
     """dA_V/dd (mag/pc) of the layer: the density at the end of the sight line."""
     z = z_sun_pc + np.asarray(distance_pc, float) * np.sin(np.deg2rad(np.asarray(b_deg, float)))
     return a0_mag_per_kpc / _PC_PER_KPC * np.exp(-np.abs(z) / h_pc)
+
+
+_layer_av_pc, _layer_av_mu, _layer_slope_pc = layer_av_pc, layer_av_mu, layer_slope_pc  # old names
 
 
 def layer_av(b, distance, a0=1.0 * u.mag / u.kpc, h=100 * u.pc, z_sun=20 * u.pc):
@@ -122,7 +125,7 @@ def layer_av(b, distance, a0=1.0 * u.mag / u.kpc, h=100 * u.pc, z_sun=20 * u.pc)
     a0v = float(to_value("a0", a0, u.mag / u.kpc))
     hv = float(to_value("h", h, u.pc))
     zv = float(to_value("z_sun", z_sun, u.pc))
-    return _layer_av_pc(bv, dv, a0v, hv, zv) * u.mag
+    return layer_av_pc(bv, dv, a0v, hv, zv) * u.mag
 
 
 @dataclass(frozen=True)
@@ -147,11 +150,16 @@ class DustLayer:
         """A_V (Quantity, mag) of the layer toward latitude ``b`` out to ``distance``."""
         return layer_av(b, distance, self.a0 * u.mag / u.kpc, self.h * u.pc, self.z_sun * u.pc)
 
-    def _av(self, b_deg, distance_pc):
-        return _layer_av_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
+    def av_pc(self, b_deg, distance_pc):
+        """A_V (mag) on plain float arrays: latitude in deg, distance in pc (no units checked)."""
+        return layer_av_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
 
-    def _slope(self, b_deg, distance_pc):
-        return _layer_slope_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
+    def slope_pc(self, b_deg, distance_pc):
+        """dA_V/dd (mag/pc) on plain float arrays: latitude in deg, distance in pc."""
+        return layer_slope_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
+
+    _av = av_pc  # old private names, kept for code written against them
+    _slope = slope_pc
 
     def as_dict(self):
         """The parameters and errors as a plain dict (mag/kpc and pc)."""
@@ -223,15 +231,15 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     mu = np.sin(np.deg2rad(b))
     buf = (np.empty(b.size), np.empty(b.size), np.empty(b.size, bool), np.empty(b.size, bool))
     for _ in range(3):
-        slope = _layer_slope_pc(b, d, *p)
+        slope = layer_slope_pc(b, d, *p)
         sigma = np.sqrt(ae**2 + (slope * de) ** 2 + scatter**2)
 
         def resid(q):
-            return (av - _layer_av_mu(mu, d, *q, work=buf)) / sigma
+            return (av - layer_av_mu(mu, d, *q, work=buf)) / sigma
 
         sol = optimize.least_squares(resid, p, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale, x_scale=[1.0, 100.0, 10.0])
         p = sol.x
-        raw = av - _layer_av_mu(mu, d, *p, work=buf)
+        raw = av - layer_av_mu(mu, d, *p, work=buf)
         mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
         meas = np.sqrt(np.median(ae**2 + (slope * de) ** 2))
         scatter = float(np.sqrt(max(mad**2 - meas**2, (0.01) ** 2)))

@@ -10,7 +10,7 @@ How the build runs
 Pass 1 (sample)
     Every chunk is read and validated with the same rules as
     :func:`dustkit.tracers.read_tracers` (rows are rejected, counted by reason and reported
-    once with a :class:`~dustkit._errors.RowsRejectedWarning`). A deterministic uniform
+    once with a :class:`~dustkit.exceptions.RowsRejectedWarning`). A deterministic uniform
     random sample is kept: the rows with the smallest values of a 64-bit hash of their row
     number (a "bottom-k" sample, which merges exactly across chunks and workers). The
     smooth dust layer is fitted to the sample (``layer_sample`` rows). Catalogues of at
@@ -20,7 +20,7 @@ Pass 1 (sample)
 Pass 2 (sufficient statistics)
     Every chunk adds its tracers to the sums of weights and weighted residuals from the
     layer per (pixel, distance edge), and its held-out rows to the held-out sums, with the
-    model's own per-tracer step (:func:`dustkit.model._nominal_statistics`, as in
+    model's own per-tracer step (:func:`dustkit.build.statistics.nominal_statistics`, as in
     :meth:`ExtinctionModel.fit`). Neither depends on the chunking or on which worker reads
     a chunk. Chunks are processed by dask: one
     task per chunk, in as many parallel chains as there are threads (each chain adds its
@@ -28,7 +28,8 @@ Pass 2 (sufficient statistics)
     ``dask.distributed`` client the tasks run on the cluster; otherwise on dask's local
     threaded scheduler.
 Finish
-    Exactly as in memory (:meth:`ExtinctionModel._finish`): cross-validation over sky and
+    Exactly as in memory, through the model's public seam
+    (:meth:`ExtinctionModel.fit_statistics`): cross-validation over sky and
     distance smoothing and random-walk strength, calibration of the unresolved scatter,
     and isotonic regression.
 
@@ -66,11 +67,15 @@ from pathlib import Path
 import numpy as np
 from astropy import units as u
 
-from ._errors import AssumptionWarning, CatalogError, RowsRejectedWarning
-from ._progress import progress
-from ._validation import check_int, param_error
+from .exceptions import AssumptionWarning, CatalogError, RowsRejectedWarning
+from ._lib.formats import CHUNKED_FORMATS, format_for
+from ._lib.progress import progress
+from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
-from .model import ExtinctionModel, _nominal_statistics
+from .tracers.rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law, chunk_reasons, validate_rows
+from .build.folds import HeldOut, fold_of_rows, row_hash, seed_of
+from .build.statistics import Statistics, nominal_statistics
+from .model import ExtinctionModel
 
 __all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
 
@@ -85,68 +90,16 @@ DEFAULT_COLUMNS = {
 }
 _ROLES = tuple(DEFAULT_COLUMNS)
 _UNITS = {"l": u.deg, "b": u.deg, "distance": u.pc, "distance_err": u.pc, "av": u.mag, "av_err": u.mag}
-_PARQUET_SUFFIXES = (".parquet", ".parq", ".pq")
-_FITS_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz")
 _LOCAL_STATS_BUDGET = 2 * 2**30  # bytes of statistics arrays held by local parallel chains
 _EXAMPLES_PER_REASON = 5
 
-# the same validation rules as dustkit.tracers.read_tracers (A_V catalogues in deg, pc, mag)
-_EBV_LIMITS = (-0.3, 20.0)         # mag of E(B-V) (tracers.DEFAULT_REJECT_LIMITS)
-_DISTANCE_LIMITS = (0.0, 2.0e5)    # pc (tracers.DEFAULT_REJECT_LIMITS)
-_DEFAULT_DISTANCE_FRAC_ERR = 0.10  # read_tracers default_distance_frac_err
-_DEFAULT_EXCESS_ERR = 0.05         # read_tracers default_excess_err (mag of E(B-V))
+# the validation rules, limits and default errors are those of read_tracers: one table in
+# dustkit.tracers.rules (validate_rows, chunk_reasons, DEFAULT_*)
 
 
 # ----------------------------------------------------------------------------- row hashing
 
-_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
-
-
-def _mix64(z):
-    """SplitMix64 finaliser (a bijection of uint64; Steele, Lea & Flood 2014, OOPSLA)."""
-    z = z ^ (z >> np.uint64(30))
-    z = z * np.uint64(0xBF58476D1CE4E5B9)
-    z = z ^ (z >> np.uint64(27))
-    z = z * np.uint64(0x94D049BB133111EB)
-    return z ^ (z >> np.uint64(31))
-
-
-def _row_hash(index, seed, stream):
-    """64-bit hash of row numbers, seeded; ``stream`` separates independent uses."""
-    idx = np.asarray(index, dtype=np.int64).astype(np.uint64)
-    base = _mix64(np.array([np.uint64(int(seed) & 0xFFFFFFFF) * np.uint64(4) + np.uint64(stream)]))[0]
-    with np.errstate(over="ignore"):
-        return _mix64(base + (idx + np.uint64(1)) * _GOLDEN)
-
-
-def fold_of_rows(index, n_folds, random_state=0):
-    """Cross-validation fold of tracers from their row numbers (deterministic hash).
-
-    Parameters
-    ----------
-    index : array_like of int
-        Position of each tracer among the accepted rows of the catalogue (0, 1, 2, ...).
-    n_folds : int
-        Number of folds.
-    random_state : int
-        Seed (``ExtinctionModel.random_state``).
-
-    Returns
-    -------
-    ndarray of int
-        Fold of each row, uniform in ``0 .. n_folds - 1``. The same row gets the same fold
-        whichever chunk, file or worker it is read by, which is what lets a chunked build
-        equal the in-memory one.
-    """
-    n_folds = check_int("n_folds", n_folds, 1, 10_000)
-    h = _row_hash(index, _seed(random_state), 0)
-    return ((h >> np.uint64(32)) % np.uint64(n_folds)).astype(np.int64)
-
-
-def _seed(random_state):
-    if random_state is None:
-        return 0
-    return check_int("random_state", random_state, 0, 2**63 - 1)
+# row hashing and folds: dustkit.build.folds (row_hash, fold_of_rows), shared with ExtinctionModel.fit
 
 
 # ----------------------------------------------------------------------------- reading chunks
@@ -171,22 +124,15 @@ def _find_files(source):
     if not p.exists():
         raise CatalogError(f"No such file or folder: {str(p)!r}. Hint: check the path.")
     if p.is_dir():
-        files = sorted(q for q in p.rglob("*") if q.is_file() and q.suffix.lower() in _PARQUET_SUFFIXES)
+        files = sorted(q for q in p.rglob("*") if q.is_file() and format_for(q, "chunked", strict=False) == "parquet")
         if not files:
+            parquet = ", ".join(f"*{s}" for s, f in sorted(CHUNKED_FORMATS.items()) if f == "parquet")
             raise CatalogError(
-                f"The folder {str(p)!r} holds no Parquet files (*.parquet, *.parq, *.pq). "
+                f"The folder {str(p)!r} holds no Parquet files ({parquet}). "
                 "Hint: point to the folder that holds the catalogue's parts, or to one file."
             )
         return [("parquet", str(q)) for q in files]
-    name = p.name.lower()
-    if name.endswith(_PARQUET_SUFFIXES):
-        return [("parquet", str(p))]
-    if name.endswith(_FITS_SUFFIXES):
-        return [("fits", str(p))]
-    raise CatalogError(
-        f"Cannot tell the format of {str(p)!r} from its name. "
-        "Hint: out-of-core builds read Parquet (.parquet, or a folder of them) and FITS tables (.fits)."
-    )
+    return [(format_for(p, "chunked"), str(p))]
 
 
 def _resolve(names, columns, where):
@@ -326,72 +272,11 @@ def _read_chunk(chunk, colmap, scale):
 
 # ----------------------------------------------------------------------------- validation
 
-def _reasons(colmap):
-    """Rejection reasons, in the order they are checked (the first one found is reported)."""
-    c = colmap
-    lo_av, hi_av = _EBV_LIMITS
-    return (
-        ("l", f"missing or non-finite value in {c['l']!r}"),
-        ("b", f"missing or non-finite value in {c['b']!r}"),
-        ("b", f"{c['b']!r} outside [-90, 90] deg"),
-        ("l", f"{c['l']!r} outside [-180, 360] deg"),
-        ("av", f"missing or non-finite value in {c['av']!r}"),
-        ("av_err", f"infinite value in {c['av_err']!r}"),
-        ("av_err", f"negative error in {c['av_err']!r}"),
-        ("av", f"A_V in {c['av']!r} outside [{lo_av:g}, {hi_av:g}] mag times R_V"),
-        ("distance", f"missing or non-finite value in {c['distance']!r}"),
-        ("distance", f"distance <= 0 in {c['distance']!r}"),
-        ("distance_err", f"infinite value in {c['distance_err']!r}"),
-        ("distance_err", f"negative error in {c['distance_err']!r}"),
-        ("distance", f"distance in {c['distance']!r} outside ({_DISTANCE_LIMITS[0]:g}, {_DISTANCE_LIMITS[1]:g}] pc"),
-    )
-
-
-def _validate(a, rv):
-    """Reason code per row (-1 = accepted) and the cleaned arrays of accepted rows.
-
-    The rules are those of :func:`dustkit.tracers.read_tracers` for an A_V catalogue in deg,
-    pc and mag: rows with a missing position, distance or A_V, ``|b| > 90``, ``l`` outside
-    [-180, 360], distance outside (0, 2e5] pc, A_V outside R_V x [-0.3, 20] mag or a
-    negative error are rejected; a missing or zero error takes the catalogue default (10% of
-    the distance; 0.05 mag of E(B-V) times R_V for A_V); ``l`` is wrapped into [0, 360).
-    """
-    l, b, d, de, av, ae = (a[r] for r in _ROLES)
-    with np.errstate(invalid="ignore"):
-        tests = (
-            ~np.isfinite(l),
-            ~np.isfinite(b),
-            np.abs(b) > 90,
-            (l < -180) | (l > 360),
-            ~np.isfinite(av),
-            np.isinf(ae),
-            ae < 0,
-            (av / rv < _EBV_LIMITS[0]) | (av / rv > _EBV_LIMITS[1]),
-            ~np.isfinite(d),
-            d <= 0,
-            np.isinf(de),
-            de < 0,
-            ~((d > _DISTANCE_LIMITS[0]) & (d <= _DISTANCE_LIMITS[1])),
-        )
-    code = np.full(l.size, -1, dtype=np.int16)
-    for k, bad in enumerate(tests):
-        code[(code < 0) & bad] = k
-    keep = code < 0
-    lk = np.mod(l[keep], 360.0)
-    lk = np.where(lk >= 360.0, 0.0, lk)
-    dk = d[keep]
-    dek = de[keep]
-    dek = np.where(np.isfinite(dek) & (dek > 0), dek, _DEFAULT_DISTANCE_FRAC_ERR * dk)
-    aek = ae[keep]
-    aek = np.where(np.isfinite(aek) & (aek > 0), aek, rv * _DEFAULT_EXCESS_ERR)
-    return code, (lk, b[keep], dk, dek, av[keep], aek)
-
-
 def _rejection_record(code, a, chunk, colmap, n_reasons):
     """Counts by reason and a few examples (file, row, column, value) of rejected rows."""
     counts = np.bincount(code[code >= 0], minlength=n_reasons).astype(np.int64)
     examples = []
-    reasons = _reasons(colmap)
+    reasons = chunk_reasons(colmap)
     for k in np.nonzero(counts)[0]:
         role = reasons[k][0]
         for i in np.nonzero(code == k)[0][:_EXAMPLES_PER_REASON]:
@@ -404,15 +289,15 @@ def _rejection_record(code, a, chunk, colmap, n_reasons):
 def _pass1_link(acc, cid, chunk, colmap, scale, k, seed, rv):
     """Validate one chunk and merge its bottom-k rows (by row hash) into the running sample."""
     a = _read_chunk(chunk, colmap, scale)
-    code, clean = _validate(a, rv)
+    code, clean = validate_rows(a, rv)
     keep = np.nonzero(code < 0)[0]
     file_row = chunk.row0 + keep  # catalogue row number (before rejection)
-    key = _row_hash(file_row, seed, 1)
+    key = row_hash(file_row, seed, 1)
     if key.size > k:
         sel = np.argpartition(key, k - 1)[:k]
     else:
         sel = np.arange(key.size)
-    n_reasons = len(_reasons(colmap))
+    n_reasons = len(chunk_reasons(colmap))
     counts, examples = _rejection_record(code, a, chunk, colmap, n_reasons)
     part = {
         "key": key[sel],
@@ -429,7 +314,7 @@ def _pass1_link(acc, cid, chunk, colmap, scale, k, seed, rv):
         acc["defaults"][role] = acc["defaults"].get(role, 0) + int(np.count_nonzero(~(np.isfinite(v) & (v > 0))))
     acc["rows"] += chunk.stop - chunk.start
     for j in np.nonzero(counts)[0]:
-        reason = _reasons(colmap)[j][1]
+        reason = chunk_reasons(colmap)[j][1]
         acc["counts"][reason] = acc["counts"].get(reason, 0) + int(counts[j])
     room = 50 - len(acc["examples"])
     if room > 0:
@@ -487,7 +372,7 @@ def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, r
     else the sorted positions of the held-out rows among the accepted rows.
     """
     a = _read_chunk(chunk, colmap, scale)
-    _, (l, b, d, de, av, ae) = _validate(a, rv)
+    _, (l, b, d, de, av, ae) = validate_rows(a, rv)
     del a
     if acc is None:
         shape = (grid.npix, grid.n_edges)
@@ -500,9 +385,8 @@ def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, r
     else:
         fold = None
         local = held[np.searchsorted(held, offset):np.searchsorted(held, offset + l.size)] - offset
-    total, fold_stats, counts = _nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds,
-                                                    held=local, threads=1)
-    _pass2_merge(acc, (total, fold_stats, counts))
+    stats = nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds, held=local, threads=1)
+    _pass2_merge(acc, tuple(stats))
     return acc
 
 
@@ -601,8 +485,9 @@ def _n_chains(client, stats_bytes, n_chunks):
 
 # ----------------------------------------------------------------------------- public API
 
-_MODEL_PARAMS = ("nside", "distance_max", "distance_step", "distance_edges", "ordering", "uncertainty",
-                 "n_folds", "sky_passes", "random_state")
+# the model parameters a chunked build takes: the constructor's, less the Monte Carlo draws (a
+# chunked build is bin-scatter) and quiet (an argument of its own here)
+_MODEL_PARAMS = tuple(p for p in ExtinctionModel.param_names() if p not in ("n_draws", "quiet"))
 
 
 def build_from_parquet(
@@ -669,7 +554,7 @@ def build_from_parquet(
     -----
     See the module docstring for the two passes and how the result relates to the
     in-memory build. Rows are numbered in file order across the sorted files; rejected
-    rows are reported with a :class:`~dustkit._errors.RowsRejectedWarning`.
+    rows are reported with a :class:`~dustkit.exceptions.RowsRejectedWarning`.
     """
     unknown = sorted(set(model_params) - set(_MODEL_PARAMS))
     if unknown:
@@ -687,9 +572,7 @@ def build_from_parquet(
     heldout_sample = check_int("heldout_sample", heldout_sample, 10, 2**40)
     if layer is not None and not isinstance(layer, DustLayer):
         raise param_error("layer", "a DustLayer (e.g. another model's layer_)", type(layer).__name__)
-    from .tracers import _check_law
-
-    law, rv = _check_law(law, float(rv))
+    law, rv = check_law(law, float(rv))
     cols = dict(DEFAULT_COLUMNS)
     if columns is not None:
         if not isinstance(columns, dict) or set(columns) - set(_ROLES):
@@ -697,8 +580,8 @@ def build_from_parquet(
         cols.update(columns)
 
     model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
-    grid = model._make_grid()
-    seed = _seed(model.random_state)
+    grid = model.make_grid()
+    seed = seed_of(model.random_state)
     n_folds = check_int("n_folds", model.n_folds, 2, 50)
 
     files = _find_files(path_or_folder)
@@ -754,7 +637,8 @@ def build_from_parquet(
         warnings.warn(
             "; ".join(
                 f"{c} rows have a missing or zero {r!s} ({cols[r]!r}); used "
-                + ("10% of the distance" if r == "distance_err" else f"{rv * _DEFAULT_EXCESS_ERR:.3g} mag")
+                + (f"{100 * DEFAULT_DISTANCE_FRAC_ERR:g}% of the distance" if r == "distance_err"
+                   else f"{rv * DEFAULT_EXCESS_ERR:.3g} mag")
                 for r, c in filled.items()
             ) + " (the defaults of read_tracers).",
             AssumptionWarning,
@@ -805,15 +689,13 @@ def build_from_parquet(
     pos = np.searchsorted(gidx_sorted, held_rows)
     hl, hb, hd, hde, hav, hae = data[:, pos]
     held_fold = fold_of_rows(held_rows, n_folds, seed) if k_fold else np.zeros(held_rows.size, dtype=np.int64)
-    heldout = (hl, hb, hd, hde, hav, hae, held_fold)
-    _, draws, folds, passes = model._check_params(n_used)
+    heldout = HeldOut(hl, hb, hd, hde, hav, hae, held_fold)
+    plan = model.fit_plan(n_used)
     rng = np.random.default_rng(model.random_state)
-    total, fold_stats, counts = sums
+    statistics = Statistics(*sums)
     del sums
-    model._finish(grid, layer, total, fold_stats, passes, heldout, "bin-scatter", 1, rng)
+    model.fit_statistics(statistics, layer, heldout, plan, rng=rng, tracers=layer_set)
     lap("finish (cross-validation, calibration, isotonic)")
-    model.counts_ = counts.reshape(grid.npix, grid.n_bins)
-    model.tracers_ = layer_set
     if isinstance(getattr(layer_set, "meta", None), dict):
         layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows),
                                "sample_of": n_used})

@@ -11,7 +11,8 @@ import numpy as np
 from astropy.table import Table
 from scipy.special import ndtr
 
-from .layer import _layer_av_pc
+from ._lib.sky import separation_deg
+from .layer import layer_av_pc
 
 __all__ = ["Cloud", "DustField", "ClumpyField", "simulate_tracers", "random_clouds"]
 
@@ -42,12 +43,6 @@ class Cloud:
     av: float
 
 
-def _separation_deg(l1, b1, l2, b2):
-    l1, b1, l2, b2 = (np.deg2rad(np.asarray(x, float)) for x in (l1, b1, l2, b2))
-    s = np.sin((b2 - b1) / 2) ** 2 + np.cos(b1) * np.cos(b2) * np.sin((l2 - l1) / 2) ** 2
-    return np.rad2deg(2 * np.arcsin(np.sqrt(np.clip(s, 0, 1))))
-
-
 @dataclass(frozen=True)
 class DustField:
     """An exponential layer (a0 mag/kpc, h pc, z_sun pc) plus clouds, with exact A_V."""
@@ -62,15 +57,15 @@ class DustField:
         l = np.asarray(l, float)
         b = np.asarray(b, float)
         d = np.asarray(distance, float)
-        total = _layer_av_pc(b, d, self.a0, self.h, self.z_sun)
+        total = layer_av_pc(b, d, self.a0, self.h, self.z_sun)
         for c in self.clouds:  # a handful of clouds, each vectorised over all positions
-            sep = _separation_deg(l, b, c.l, c.b)
+            sep = separation_deg(l, b, c.l, c.b)
             total = total + c.av * np.exp(-0.5 * (sep / c.radius) ** 2) * ndtr((d - c.distance) / c.depth)
         return total
 
     def layer_av(self, b, distance):
         """A_V (mag) of the layer alone."""
-        return _layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)
+        return layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)
 
 
 def random_clouds(n, l_range, b_range, distance_range, rng, av_range=(0.3, 2.0), radius_range=(1.0, 4.0), depth=30.0):

@@ -18,8 +18,11 @@ from astropy.table import Table
 from dustkit import CatalogError, ParameterError
 from dustkit._errors import AssumptionWarning, RowsRejectedWarning
 from dustkit.layer import fit_layer
-from dustkit.model import ExtinctionModel, _nominal_statistics
-from dustkit.scale import _validate, build_from_fits, build_from_parquet, fold_of_rows
+from dustkit.build.folds import HeldOut
+from dustkit.build.statistics import nominal_statistics
+from dustkit.model import ExtinctionModel
+from dustkit.scale import build_from_fits, build_from_parquet, fold_of_rows
+from dustkit.tracers.rules import validate_rows as _validate
 from dustkit.simulate import Cloud, DustField, simulate_tracers
 from dustkit.tracers import TracerSet, read_tracers
 
@@ -64,18 +67,18 @@ def _in_memory(tracers, heldout_rows, random_state=0, n_folds=5):
     """The in-memory bin-scatter build: all tracers accumulated at once, then finished.
 
     The same steps as ExtinctionModel.fit (layer fit, the statistics of every tracer and of
-    the held-out ones, `_finish`) with the given held-out rows, so the result can be
+    the held-out ones, the public seam `fit_statistics`) with the given held-out rows, so the result can be
     compared with the chunked build exactly.
     """
     l, b, d, de, av, ae = _arrays(tracers)
     m = ExtinctionModel(uncertainty="bin-scatter", n_folds=n_folds, random_state=random_state, quiet=True, **PARAMS)
-    grid = m._make_grid()
+    grid = m.make_grid()
     layer = fit_layer(tracers, random_state=random_state)
     h = heldout_rows
-    total, fold_stats, _ = _nominal_statistics(grid, layer, l, b, d, av, ae, held=h)
-    _, _, _, passes = m._check_params(l.size)
-    m._finish(grid, layer, total, fold_stats, passes, (l[h], b[h], d[h], de[h], av[h], ae[h], np.zeros(h.size, int)),
-              "bin-scatter", 1, np.random.default_rng(random_state))
+    stats = nominal_statistics(grid, layer, l, b, d, av, ae, held=h)
+    total = stats.total
+    m.fit_statistics(stats, layer, HeldOut(l[h], b[h], d[h], de[h], av[h], ae[h], np.zeros(h.size, int)),
+                     m.fit_plan(l.size), rng=np.random.default_rng(random_state))
     return m, total
 
 

@@ -37,14 +37,17 @@ import numpy as np
 from astropy import units as u
 
 from .. import plotting
-from .._errors import ModelNotFittedError
-from .._validation import check_choice, check_int, param_error, to_value
+from ..exceptions import ModelNotFittedError
+from .._lib.formats import TABLE_FORMATS
+from .._lib.validation import check_choice, check_int, param_error, to_value
 from ..model import CAUTION, ExtinctionModel
 
 __all__ = ["Explorer"]
 
 _NSIDES = (4, 8, 16, 32, 64, 128, 256)
-_FORMATS = {"ecsv": ".ecsv", "fits": ".fits", "csv": ".csv"}
+_FORMATS = {}  # table format -> its first suffix in the format registry ("ecsv" -> ".ecsv")
+for _suffix, _format in TABLE_FORMATS.items():
+    _FORMATS.setdefault(_format, _suffix)
 _CONTROL_WIDTH = "390px"
 _DESC = {"description_width": "125px"}
 
@@ -116,10 +119,10 @@ class Explorer:
             step = float(np.median(np.diff(edges)))
             dmax = float(edges[-1])
         else:
-            defaults = ExtinctionModel()
-            nside = params.get("nside", defaults.nside)
-            step = float(to_value("distance_step", params.get("distance_step", defaults.distance_step), u.pc, u.pc))
-            dmax = float(to_value("distance_max", params.get("distance_max", defaults.distance_max), u.pc, u.pc))
+            defaults = ExtinctionModel.param_defaults()  # the one list of model parameters
+            nside = params.get("nside", defaults["nside"])
+            step = float(to_value("distance_step", params.get("distance_step", defaults["distance_step"]), u.pc, u.pc))
+            dmax = float(to_value("distance_max", params.get("distance_max", defaults["distance_max"]), u.pc, u.pc))
         for k in ("nside", "distance_step", "distance_max", "distance_edges"):
             params.pop(k, None)
         params.setdefault("quiet", True)
@@ -266,7 +269,7 @@ class Explorer:
             w.add_class(css)
 
         # figures (the sky extent is fixed by the tracers' positions, so the view is stable)
-        self.sky_extent = plotting._tracer_extent(base)
+        self.sky_extent = plotting.tracer_extent(base)
         if self.sky_extent == "all-sky":
             sky_size = (6.6, 4.0)
         else:

@@ -1,0 +1,328 @@
+"""Answers of a fitted model: A_V with its uncertainty anywhere, sight-line profiles, target lists.
+
+The functions here take a *fitted model* and rely only on this small interface, so any
+model class that provides it (the binned :class:`~dustkit.model.ExtinctionModel`, or
+another model) answers through the same code:
+
+``model.check_fitted()``
+    raise :class:`~dustkit.exceptions.ModelNotFittedError` when not fitted;
+``model.av_pc(l, b, d, distance_err=None) -> (av, av_err)``
+    plain float arrays: l, b in deg, d and distance_err in pc, A_V and its 1-sigma error in mag;
+``model.layer_av_pc(l, b, d)``
+    A_V (mag) of the model's smooth part alone (plain arrays);
+``model.law``, ``model.rv``
+    the extinction law and R_V its A_V refers to;
+``model.grid_``
+    a :class:`~dustkit.grid.Grid` giving the model's sky resolution and distance range;
+``model.tracers_`` (optional)
+    the tracers it was built from (listed with cone profiles).
+
+:func:`interpolate` and :func:`binned_av` are the binned model's evaluation: the residual
+from the layer interpolated bilinearly on the sky (the HEALPix interpolation of
+``healpy.get_interp_weights``) and linearly in distance, plus the predictive variance.
+"""
+
+import os
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+from astropy import units as u
+from astropy.coordinates import SkyCoord
+from astropy.table import QTable, Table
+
+from ._lib import healpix
+from ._lib.sky import separation_deg
+from ._lib.validation import check_real, param_error, to_value
+from .build.calibration import predictive_variance
+
+__all__ = [
+    "CAUTION",
+    "interpolate",
+    "sky_positions",
+    "binned_av",
+    "binned_slope",
+    "av_quantities",
+    "query_table",
+    "profile_table",
+    "estimate_targets",
+]
+
+#: Shown wherever model answers are reported.
+CAUTION = (
+    "Extinction estimates from a model are statistical: they describe the average dust "
+    "toward a direction and distance, with an uncertainty that includes the typical "
+    "small-scale scatter. Check them against local data before using them for science or "
+    "for planning instrument time."
+)
+
+ANSWER_BLOCK = 32_768  # positions per block when answering many at once
+
+
+def interpolate(grid, values, l, b, d):
+    """Bilinear-on-the-sky, linear-in-distance interpolation of node arrays.
+
+    ``values`` is a tuple of arrays of shape (npix, n_edges). Distances beyond the last edge
+    take the last edge's value; the returned fraction ``f`` lets callers extrapolate. Many
+    positions are answered in cache-sized blocks, spread over the CPU's cores.
+    """
+    l, b, d = (np.asarray(x, float) for x in (l, b, d))
+    n = l.size
+    if n <= ANSWER_BLOCK or l.ndim != 1:
+        return _interp_block(grid, values, l, b, d)
+    out = [np.empty(n) for _ in values]
+    k, f = np.empty(n, dtype=np.int64), np.empty(n)
+
+    def run(lo_hi):
+        for s in range(*lo_hi, ANSWER_BLOCK):
+            e = min(s + ANSWER_BLOCK, lo_hi[1])
+            vals, k[s:e], f[s:e] = _interp_block(grid, values, l[s:e], b[s:e], d[s:e])
+            for o, v in zip(out, vals):
+                o[s:e] = v
+
+    workers = max(1, min(os.cpu_count() or 1, 8, n // ANSWER_BLOCK))
+    cuts = np.linspace(0, -(-n // ANSWER_BLOCK), workers + 1).astype(int) * ANSWER_BLOCK
+    spans = [(int(a), int(min(c, n))) for a, c in zip(cuts[:-1], cuts[1:]) if a < min(c, n)]
+    with ThreadPoolExecutor(len(spans)) as pool:
+        list(pool.map(run, spans))
+    return out, k, f
+
+
+def _interp_block(grid, values, l, b, d):
+    pix, wts = grid.interp_weights(l, b)
+    k, f = grid.edge_position(d)
+    fc = np.clip(f, 0.0, 1.0)
+    lin = pix * grid.n_edges + k  # (4, n) flat index of the lower edge
+    out = []
+    for v in values:
+        flat = np.ravel(v)
+        lo = np.einsum("ij,ij->j", np.take(flat, lin), wts)
+        hi = np.einsum("ij,ij->j", np.take(flat, lin + 1), wts)
+        out.append(lo + fc * (hi - lo))
+    return out, k, f
+
+
+def sky_positions(l, b=None, distance=None):
+    """Plain arrays from the answers' inputs: l (deg, in [0, 360)), b (deg), distance (pc), and the input shape.
+
+    ``l`` is a Galactic longitude (Quantity) with ``b`` and ``distance``, or a SkyCoord (any
+    frame) with distances (or ``distance=``). Latitudes outside [-90, 90] deg and negative or
+    non-finite distances raise ``ParameterError``.
+    """
+    if isinstance(l, SkyCoord):
+        c = l.galactic
+        lv = np.atleast_1d(c.l.deg).astype(float)
+        bv = np.atleast_1d(c.b.deg).astype(float)
+        if distance is None:
+            if c.distance.unit.physical_type != "length":
+                raise param_error("coords", "a SkyCoord with distances (or pass distance=)", "SkyCoord without distance")
+            distance = c.distance
+        dv = np.atleast_1d(to_value("distance", distance, u.pc)).astype(float)
+    else:
+        if b is None or distance is None:
+            raise param_error("l, b, distance", "given together (or pass one SkyCoord with distances)", "missing values")
+        lv = np.atleast_1d(to_value("l", l, u.deg)).astype(float)
+        bv = np.atleast_1d(to_value("b", b, u.deg)).astype(float)
+        dv = np.atleast_1d(to_value("distance", distance, u.pc)).astype(float)
+    shape = np.broadcast_shapes(
+        np.shape(getattr(l, "value", l)) if not isinstance(l, SkyCoord) else l.shape,
+        np.shape(getattr(b, "value", b)) if b is not None else (),
+        np.shape(getattr(distance, "value", distance)),
+    )
+    lv, bv, dv = (np.ravel(x) for x in np.broadcast_arrays(lv, bv, dv))
+    if np.any(np.abs(bv) > 90) or not np.all(np.isfinite(bv)):
+        raise param_error("b", "a latitude in [-90, 90] deg", bv[~(np.abs(bv) <= 90)][:3].tolist())
+    if np.any(dv < 0) or not np.all(np.isfinite(dv)):
+        raise param_error("distance", "finite and non-negative", dv[~(dv >= 0)][:3].tolist())
+    return np.mod(lv, 360.0), bv, dv, shape
+
+
+def binned_av(grid, layer, resid, post_var, walk_variance, scatter, l, b, d, distance_err=None):
+    """A_V and its predictive 1-sigma error (mag) of a binned model at plain positions (deg, pc).
+
+    The layer at the exact position plus the interpolated residual; beyond the last edge
+    the residual is carried forward with the random walk's growing variance. A target's own
+    ``distance_err`` (pc) enters through the local slope of the binned model.
+    """
+    (r, pv), k, f = interpolate(grid, (resid, post_var), l, b, d)
+    beyond = np.maximum(d - grid.distance_edges[-1], 0.0) / 1000.0
+    pv = pv + walk_variance * beyond  # carried forward with growing uncertainty
+    a = np.maximum(layer.av_pc(b, d) + r, 0.0)
+    var = predictive_variance(scatter, pv, a)
+    if distance_err is not None:
+        slope = binned_slope(grid, layer, resid, l, b, d)
+        var = var + (slope * distance_err) ** 2
+    return a, np.sqrt(var)
+
+
+def binned_slope(grid, layer, resid, l, b, d):
+    """Local dA_V/dd (mag/pc) of a binned model at the given positions (deg, pc)."""
+    k, _ = grid.edge_position(d)
+    e = grid.distance_edges
+    (r_near,), _, _ = interpolate(grid, (resid,), l, b, e[k])
+    (r_far,), _, _ = interpolate(grid, (resid,), l, b, e[k + 1])
+    near = layer.av_pc(b, e[k]) + r_near
+    far = layer.av_pc(b, e[k + 1]) + r_far
+    return np.maximum(far - near, 0.0) / (e[k + 1] - e[k])
+
+
+def _distance_errors(distance_err, shape):
+    if distance_err is None:
+        return None
+    return np.broadcast_to(to_value("distance_err", distance_err, u.pc), shape).ravel()
+
+
+def av_quantities(model, l, b=None, distance=None, distance_err=None):
+    """A_V and its predictive 1-sigma uncertainty (Quantity, mag) in the shape of the input."""
+    model.check_fitted()
+    lv, bv, dv, shape = sky_positions(l, b, distance)
+    a, e = model.av_pc(lv, bv, dv, _distance_errors(distance_err, shape))
+    return a.reshape(shape) * u.mag, e.reshape(shape) * u.mag
+
+
+def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None):
+    """A table of answers: position, A_V, its error, the smooth part's A_V, and A in each band.
+
+    Band extinctions use the model's law and R_V unless ``law``/``rv`` are given
+    (:func:`dustkit.bands.av_to_band`).
+    """
+    model.check_fitted()
+    lv, bv, dv, shape = sky_positions(l, b, distance)
+    a, e = model.av_pc(lv, bv, dv, _distance_errors(distance_err, shape))
+    t = QTable()
+    t["l"] = lv * u.deg
+    t["b"] = bv * u.deg
+    t["distance"] = dv * u.pc
+    t["av"] = a * u.mag
+    t["av_err"] = e * u.mag
+    t["av_layer"] = model.layer_av_pc(lv, bv, dv) * u.mag
+    if bands:
+        from .bands import av_to_band
+
+        law = law or model.law
+        rv = model.rv if rv is None else rv
+        for band in bands:
+            ab, abe = av_to_band(a, e, band, law=law, rv=rv)
+            t[f"a_{band}"] = np.asarray(ab) * u.mag
+            t[f"a_{band}_err"] = np.asarray(abe) * u.mag
+    t.meta["caution"] = CAUTION
+    return t
+
+
+def profile_table(model, l, b, radius=None, distances=None):
+    """Cumulative A_V against distance along one sight line (or averaged over a cone).
+
+    Parameters
+    ----------
+    l, b : Quantity['angle']
+        Centre of the sight line.
+    radius : Quantity['angle'], optional
+        Cone radius: the profile is averaged over the model's pixels inside the cone and
+        the tracers inside it are listed in ``meta['tracers']``.
+    distances : Quantity['length'], optional
+        Where to evaluate (default: 0 to the last edge in 200 steps).
+
+    Returns
+    -------
+    QTable
+        ``distance``, ``av``, ``av_err``, ``av_layer``; cumulative A_V is non-decreasing.
+    """
+    model.check_fitted()
+    lv = float(to_value("l", l, u.deg)) % 360.0
+    bv = float(to_value("b", b, u.deg))
+    check_real("b", bv, -90, 90)
+    e = model.grid_.distance_edges
+    if distances is None:
+        dv = np.linspace(0.0, e[-1], 201)
+    else:
+        dv = np.sort(np.atleast_1d(to_value("distances", distances, u.pc)).astype(float))
+    if radius is None:
+        pts_l, pts_b = np.array([lv]), np.array([bv])
+        rad = 0.0
+    else:
+        rad = float(to_value("radius", radius, u.deg))
+        check_real("radius", rad, 0, 90)
+        fine = max(model.grid_.nside * 4, 64)
+        pp = healpix.query_disc(fine, lv, bv, rad)
+        if pp.size == 0:
+            pp = np.atleast_1d(healpix.ang2pix(fine, lv, bv))
+        pts_l, pts_b = healpix.pix2ang(fine, pp)
+    L = np.repeat(pts_l, dv.size)
+    B = np.repeat(pts_b, dv.size)
+    D = np.tile(dv, pts_l.size)
+    a, err = model.av_pc(L, B, D)
+    a = a.reshape(pts_l.size, dv.size)
+    err = err.reshape(pts_l.size, dv.size)
+    lay = model.layer_av_pc(L, B, D).reshape(pts_l.size, dv.size)
+    av_mean = np.maximum.accumulate(a.mean(axis=0))
+    # spread across the cone adds to the uncertainty of a single target inside it
+    av_err = np.sqrt(np.mean(err**2, axis=0) + a.var(axis=0))
+    t = QTable()
+    t["distance"] = dv * u.pc
+    t["av"] = av_mean * u.mag
+    t["av_err"] = av_err * u.mag
+    t["av_layer"] = lay.mean(axis=0) * u.mag
+    t.meta.update({"l": lv, "b": bv, "radius": rad, "caution": CAUTION})
+    tr = getattr(model, "tracers_", None)
+    if tr is not None:
+        sep = separation_deg(tr.l, tr.b, lv, bv)
+        inside = sep <= max(rad, model.grid_pixel_radius())
+        t.meta["tracers"] = tr.subset(inside).to_table() if inside.any() else None
+    return t
+
+
+def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options):
+    """Extinction for a list of targets, keeping every input row and column.
+
+    Parameters
+    ----------
+    model : fitted model
+        An :class:`~dustkit.model.ExtinctionModel` (or any model with the interface in the
+        module docstring).
+    targets : TargetList, str, path-like, Table or pandas.DataFrame
+        A :class:`~dustkit.tracers.TargetList`, or anything :func:`dustkit.read_targets`
+        reads (``read_options`` are passed to it, e.g. ``columns=``, ``distance_unit=``).
+    bands : sequence of str
+        Bands whose extinction ``a_<band>`` (and ``a_<band>_err``) is added.
+    law, rv : optional
+        Law and R_V for the band extinctions (default: the model's).
+
+    Returns
+    -------
+    astropy.table.Table
+        Every input row in input order with every input column, plus ``av``, ``av_err``
+        (mag) and the band columns. Rows that cannot be placed (no usable position or
+        distance) keep NaN in the new columns; input columns with the same names as the
+        new ones are renamed ``input_<name>``. ``meta["caution"]`` carries the caution,
+        ``meta["n_estimated"]`` the number of rows estimated and ``meta["rejected_by_reason"]``
+        the rows left empty by reason (the rows themselves: ``TargetList.rejected``).
+    """
+    from .tracers import TargetList, read_targets
+
+    model.check_fitted()
+    bands = list(dict.fromkeys(bands))
+    if not isinstance(targets, TargetList):
+        targets = read_targets(targets, **read_options)  # announces rows kept empty (RowsRejectedWarning)
+    elif read_options:
+        raise param_error(", ".join(read_options), "given only when targets is read here (not a TargetList)",
+                          "reading options with a TargetList")
+    ok = np.asarray(targets.valid)
+    table = Table(targets.table, copy=True)
+    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    for c in names:
+        if c in table.colnames:
+            table.rename_column(c, f"input_{c}")
+    n = len(table)
+    values = {c: np.full(n, np.nan) for c in names}
+    if ok.any():
+        q = query_table(model, np.asarray(targets.l)[ok] * u.deg, np.asarray(targets.b)[ok] * u.deg,
+                        np.asarray(targets.distance)[ok] * u.pc,
+                        distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands), law=law, rv=rv)
+        for c in names:
+            values[c][ok] = q[c].to_value(u.mag)
+    for c in names:
+        table[c] = values[c] * u.mag
+    table.meta["caution"] = CAUTION
+    table.meta["n_estimated"] = int(ok.sum())
+    reasons, counts = np.unique(np.asarray(targets.rejected["reason"], dtype=str), return_counts=True)
+    table.meta["rejected_by_reason"] = {str(r): int(c) for r, c in zip(reasons, counts)}
+    return table

@@ -1,0 +1,103 @@
+"""Folds and held-out rows: which tracers validate the smoothing and calibrate the errors.
+
+The bottom of :mod:`dustkit.build`: plain numpy, nothing imported from the rest of the
+model. The in-memory fit and the chunked builds of :mod:`dustkit.scale` both take their
+folds from here, so the same tracers give the same model whichever way they are read.
+"""
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .._lib.validation import check_int
+
+__all__ = ["HELDOUT_MAX", "HeldOut", "mix64", "row_hash", "seed_of", "fold_of_rows", "heldout_rows"]
+
+#: Above this many tracers, one held-out set of at most this size instead of K folds.
+HELDOUT_MAX = 50_000
+
+
+@dataclass(frozen=True)
+class HeldOut:
+    """The held-out tracers: plain arrays in deg, pc and mag, and the fold of each.
+
+    Fold ``f`` is predicted from the statistics of all tracers minus those of fold ``f``.
+    """
+
+    l: np.ndarray
+    b: np.ndarray
+    distance: np.ndarray
+    distance_err: np.ndarray
+    av: np.ndarray
+    av_err: np.ndarray
+    fold: np.ndarray
+
+    @classmethod
+    def of_rows(cls, arrays, rows, fold):
+        """The rows ``rows`` of the six tracer arrays (l, b, d, d_err, A_V, A_V_err), in ``fold``."""
+        return cls(*(a[rows] for a in arrays), fold=np.asarray(fold, dtype=np.int64))
+
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+
+
+def mix64(z):
+    """SplitMix64 finaliser (a bijection of uint64; Steele, Lea & Flood 2014, OOPSLA)."""
+    z = z ^ (z >> np.uint64(30))
+    z = z * np.uint64(0xBF58476D1CE4E5B9)
+    z = z ^ (z >> np.uint64(27))
+    z = z * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
+def row_hash(index, seed, stream):
+    """64-bit hash of row numbers, seeded; ``stream`` separates independent uses."""
+    idx = np.asarray(index, dtype=np.int64).astype(np.uint64)
+    base = mix64(np.array([np.uint64(int(seed) & 0xFFFFFFFF) * np.uint64(4) + np.uint64(stream)]))[0]
+    with np.errstate(over="ignore"):
+        return mix64(base + (idx + np.uint64(1)) * _GOLDEN)
+
+
+def fold_of_rows(index, n_folds, random_state=0):
+    """Cross-validation fold of tracers from their row numbers (deterministic hash).
+
+    Parameters
+    ----------
+    index : array_like of int
+        Position of each tracer among the accepted rows of the catalogue (0, 1, 2, ...).
+    n_folds : int
+        Number of folds.
+    random_state : int
+        Seed (``ExtinctionModel.random_state``).
+
+    Returns
+    -------
+    ndarray of int
+        Fold of each row, uniform in ``0 .. n_folds - 1``. The same row gets the same fold
+        whichever chunk, file or worker it is read by, which is what lets a chunked build
+        equal the in-memory one.
+    """
+    n_folds = check_int("n_folds", n_folds, 1, 10_000)
+    h = row_hash(index, seed_of(random_state), 0)
+    return ((h >> np.uint64(32)) % np.uint64(n_folds)).astype(np.int64)
+
+
+def seed_of(random_state):
+    if random_state is None:
+        return 0
+    return check_int("random_state", random_state, 0, 2**63 - 1)
+
+
+def heldout_rows(n, n_folds, random_state=0):
+    """Rows held out to choose the smoothing and calibrate the errors, or None for K-fold.
+
+    Up to ``HELDOUT_MAX`` tracers every tracer is held out once (K-fold cross-validation,
+    folds from :func:`fold_of_rows`). Larger catalogues hold out one random
+    set of ``min(HELDOUT_MAX, n // n_folds)`` rows (sorted) and train on all the others:
+    tens of thousands of held-out tracers pin down a handful of smoothing and error
+    parameters, and the finishing cost no longer grows with the number of folds.
+    """
+    if n <= HELDOUT_MAX:
+        return None
+    m = min(HELDOUT_MAX, n // n_folds)
+    return np.sort(np.random.default_rng([int(random_state) & 0xFFFFFFFF, 0x4E1D]).choice(n, m, replace=False))

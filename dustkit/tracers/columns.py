@@ -1,0 +1,379 @@
+"""Column recognition: which column holds which role (see the package docstring for spellings)."""
+
+import re
+
+from ..exceptions import AssumptionWarning, CatalogError
+from .._lib.validation import param_error
+from .reddening import EXCESS_NAME, REDDENING_LIKE, is_bv, parse_color_name
+
+__all__ = [
+    "COLUMN_KEYS",
+    "NAME_ALIASES",
+    "GALACTIC_PAIRS",
+    "EQUATORIAL_PAIRS",
+    "VALUE_ALIASES",
+    "DISTANCE_LIKE",
+    "KIND_LABEL",
+    "norm",
+    "resolve_columns",
+]
+
+
+#: Keys accepted by the ``columns=`` mapping.
+COLUMN_KEYS = (
+    "name",
+    "l",
+    "b",
+    "ra",
+    "dec",
+    "distance",
+    "distance_err",
+    "distance_modulus",
+    "distance_modulus_err",
+    "apparent_modulus",
+    "apparent_modulus_err",
+    "parallax",
+    "parallax_err",
+    "ebv",
+    "ebv_err",
+    "av",
+    "av_err",
+    "excess",
+    "excess_err",
+)
+
+
+NAME_ALIASES = [
+    "name", "id", "cluster", "clustername", "clname", "object", "objname", "objectname",
+    "star", "starname", "sourceid", "source", "designation", "identifier", "mainid", "target",
+]
+
+
+GALACTIC_PAIRS = [  # specific spellings first: a lone 'b' may be a B magnitude
+    ("glon", "glat"), ("lii", "bii"), ("gall", "galb"), ("glondeg", "glatdeg"),
+    ("galacticlongitude", "galacticlatitude"), ("galon", "galat"), ("ldeg", "bdeg"), ("l", "b"),
+]
+
+
+EQUATORIAL_PAIRS = [
+    ("ra", "dec"), ("ra", "de"), ("raj2000", "dej2000"), ("raj2000", "decj2000"),
+    ("raicrs", "deicrs"), ("raicrs", "decicrs"), ("radeg", "dedeg"), ("radeg", "decdeg"),
+    ("rightascension", "declination"), ("raj2000deg", "dej2000deg"),
+]
+
+
+VALUE_ALIASES = {
+    "distance": [
+        "distance", "dist", "d", "dis", "distpc", "distkpc", "distancepc", "distancekpc",
+        "dpc", "dkpc", "dispc", "diskpc",
+    ],
+    "distance_modulus": [
+        "distancemodulus", "distmod", "dmod", "dm", "mu0", "mm0", "dm0", "truemodulus",
+        "truedistancemodulus", "modulus",
+    ],
+    "apparent_modulus": [
+        "apparentmodulus", "apparentdistancemodulus", "appmod", "mmv", "dmv", "muv", "dmodv",
+    ],
+    "parallax": ["parallax", "plx", "pi", "varpi", "parallaxmas", "plxmas"],
+    "ebv": ["ebv", "ebmv", "ebminusv", "reddening", "ebvmag"],
+    "av": ["av", "extinctionv", "extv", "avmag", "av0"],
+}
+
+
+_ERROR_PREFIX = re.compile(r"^e_")  # case-sensitive: 'E_BV' is a value, 'e_BV' an error
+
+
+_ERROR_WORD = re.compile(r"(^(err|error|sigma|sig|unc)_)|(_(err|error|sigma|sig|unc)$)", re.I)
+
+
+DISTANCE_LIKE = ("distance", "distance_modulus", "parallax", "apparent_modulus")
+
+
+KIND_LABEL = {
+    "distance": "distance",
+    "distance_modulus": "distance modulus",
+    "apparent_modulus": "apparent V modulus",
+    "parallax": "parallax",
+}
+
+
+def norm(name):
+    return re.sub(r"[^a-z0-9]", "", str(name).lower())
+
+
+def _spellings(role):
+    if role in VALUE_ALIASES:
+        return ", ".join(VALUE_ALIASES[role][:6])
+    if role in ("l", "b"):
+        return ", ".join("/".join(p) for p in [GALACTIC_PAIRS[-1]] + GALACTIC_PAIRS[:3])
+    if role in ("ra", "dec"):
+        return ", ".join("/".join(p) for p in EQUATORIAL_PAIRS[:5])
+    return ""
+
+
+def _found_text(table):
+    names = table.colnames
+    shown = ", ".join(repr(c) for c in names[:40])
+    return shown + (f" and {len(names) - 40} more" if len(names) > 40 else "")
+
+
+def resolve_columns(table, columns, ctx, want_reddening=True):
+    """Map roles to column names: explicit mapping first, then recognised spellings."""
+    explicit = _explicit_columns(table, columns, ctx, want_reddening)
+    names = list(table.colnames)
+    finder = _Finder(names, explicit)
+    cols = _position_columns(table, explicit, finder, ctx)
+    used = set(cols.values()) | set(explicit.values())
+    _distance_column(table, explicit, finder, ctx, want_reddening, cols, used)
+    used |= set(cols.values())
+    if want_reddening:
+        _reddening_column(table, explicit, finder, ctx, cols, used)
+        used |= set(cols.values())
+    if "name" in explicit:
+        cols["name"] = explicit["name"]
+    else:
+        c = finder.find(NAME_ALIASES, used)
+        if c is not None:
+            cols["name"] = c
+    used |= set(cols.values())
+    _error_columns(names, explicit, cols, used)
+    ctx.used = dict(cols)
+    return cols
+
+
+class _Finder:
+    """Recognised spellings among the columns that are neither explicit nor error columns."""
+
+    def __init__(self, names, explicit):
+        taken = set(explicit.values())
+        self.candidates = [c for c in names if c not in taken and not _looks_like_error(c, names)]
+        self.by_norm = {}
+        for c in self.candidates:
+            self.by_norm.setdefault(norm(c), c)
+
+    def find(self, aliases, exclude=()):
+        for a in aliases:
+            c = self.by_norm.get(a)
+            if c is not None and c not in exclude:
+                return c
+        return None
+
+
+def _explicit_columns(table, columns, ctx, want_reddening):
+    """The ``columns=`` mapping checked against the table: role -> column name as in the table."""
+    if columns is None:
+        columns = {}
+    if not isinstance(columns, dict):
+        raise param_error("columns", "a dict mapping roles to column names, e.g. {'ebv': 'E_BV'}", columns)
+    names = list(table.colnames)
+    lower = {}
+    for c in names:
+        lower.setdefault(c.lower(), c)
+    explicit = {}
+    for key, col in columns.items():
+        if key not in COLUMN_KEYS:
+            raise param_error("columns", f"a dict whose keys are among {', '.join(COLUMN_KEYS)}", key)
+        if col in names:
+            explicit[key] = col
+        elif isinstance(col, str) and col.lower() in lower:
+            explicit[key] = lower[col.lower()]
+        else:
+            raise CatalogError(
+                f"columns={{{key!r}: {col!r}}} names a column that is not in {ctx.desc}. "
+                f"Columns found: {_found_text(table)}."
+            )
+    if not want_reddening:
+        for key in REDDENING_LIKE + ("apparent_modulus",):
+            if key in explicit:
+                what = (
+                    "An apparent modulus cannot place a target: turning it into a distance needs the "
+                    "reddening, which is what is being estimated. Give a distance, a true distance modulus "
+                    "or a parallax instead."
+                    if key == "apparent_modulus"
+                    else "Targets need positions and distances only; reddening columns are not used."
+                )
+                raise CatalogError(f"columns={{{key!r}: {explicit[key]!r}}}: {what}")
+
+    return explicit
+
+
+def _position_columns(table, explicit, finder, ctx):
+    """``l``/``b`` or ``ra``/``dec``: the explicit pair (completed by recognition) or the first pair found."""
+    by_norm = finder.by_norm
+    cols = {}
+    pos_keys = [k for k in ("l", "b", "ra", "dec") if k in explicit]
+    if pos_keys:
+        gal = any(k in explicit for k in ("l", "b"))
+        equ = any(k in explicit for k in ("ra", "dec"))
+        if gal and equ:
+            raise CatalogError(
+                "columns= names both Galactic (l/b) and equatorial (ra/dec) columns; give one pair."
+            )
+        pair, pairs = (("l", "b"), GALACTIC_PAIRS) if gal else (("ra", "dec"), EQUATORIAL_PAIRS)
+        for i, k in enumerate(pair):
+            if k in explicit:
+                cols[k] = explicit[k]
+            else:
+                c = finder.find([p[i] for p in pairs], exclude=set(explicit.values()))
+                if c is None:
+                    raise CatalogError(
+                        f"columns= names {pair[1 - i]!r} but no {k!r} column was found in {ctx.desc}. "
+                        f"Columns found: {_found_text(table)}. Hint: add {k!r} to columns=."
+                    )
+                cols[k] = c
+    else:
+        chosen = None
+        for system, pairs in (("galactic", GALACTIC_PAIRS), ("icrs", EQUATORIAL_PAIRS)):
+            for pl, pb in pairs:
+                if pl in by_norm and pb in by_norm:
+                    chosen = (system, by_norm[pl], by_norm[pb])
+                    break
+            if chosen:
+                break
+        if chosen is None:
+            raise CatalogError(
+                f"No position columns found in {ctx.desc}. Columns found: {_found_text(table)}. "
+                f"Needed: Galactic longitude/latitude in deg (spellings: {_spellings('l')}, ...) or ICRS "
+                f"ra/dec in deg or sexagesimal (spellings: {_spellings('ra')}, ...). "
+                "Hint: name them explicitly, e.g. columns={'l': 'LON', 'b': 'LAT'}."
+            )
+        system, c1, c2 = chosen
+        if system == "galactic":
+            cols["l"], cols["b"] = c1, c2
+            other = [(by_norm[p], by_norm[q]) for p, q in EQUATORIAL_PAIRS if p in by_norm and q in by_norm]
+            if other:
+                ctx.assumptions.append(
+                    f"Galactic columns ({c1!r}, {c2!r}) used; equatorial columns {other[0]!r} also present, not used"
+                )
+        else:
+            cols["ra"], cols["dec"] = c1, c2
+    return cols
+
+
+def _distance_column(table, explicit, finder, ctx, want_reddening, cols, used):
+    """Add the one distance-like column (distance, modulus, parallax) to ``cols``."""
+    find = finder.find
+    exp_dist = [k for k in DISTANCE_LIKE if k in explicit]
+    if len(exp_dist) > 1:
+        raise CatalogError(
+            f"columns= names several distance columns ({', '.join(exp_dist)}); give only one of "
+            "distance, distance_modulus, parallax, apparent_modulus."
+        )
+    kinds = DISTANCE_LIKE if want_reddening else ("distance", "distance_modulus", "parallax")
+    if exp_dist:
+        cols[exp_dist[0]] = explicit[exp_dist[0]]
+    else:
+        found = [(k, find(VALUE_ALIASES[k], used)) for k in kinds]
+        found = [(k, c) for k, c in found if c is not None]
+        if not found:
+            if not want_reddening and find(VALUE_ALIASES["apparent_modulus"], used):
+                c = find(VALUE_ALIASES["apparent_modulus"], used)
+                raise CatalogError(
+                    f"The only distance-like column in {ctx.desc} is {c!r}, an apparent V modulus. It cannot "
+                    "place a target: turning it into a distance needs the reddening, which is what is being "
+                    "estimated. Hint: give a distance, a true distance modulus or a parallax column."
+                )
+            raise CatalogError(
+                f"No distance column found in {ctx.desc}. Columns found: {_found_text(table)}. Needed one of: "
+                + "; ".join(f"{KIND_LABEL[k]} ({_spellings(k)}, ...)" for k in kinds)
+                + ". Hint: name it explicitly, e.g. columns={'distance': 'Dist'} (and distance_unit='kpc' if so)."
+            )
+        cols[found[0][0]] = found[0][1]
+        if len(found) > 1:
+            ctx.note(
+                AssumptionWarning,
+                "Several distance columns found: "
+                + ", ".join(f"{c!r} ({KIND_LABEL[k]})" for k, c in found)
+                + f"; using {found[0][1]!r}. Pass columns={{'{found[0][0]}': ...}} (or another key) to choose.",
+            )
+
+
+def _reddening_column(table, explicit, finder, ctx, cols, used):
+    """Add the one reddening column (E(B-V), A_V or another colour excess) to ``cols``."""
+    find, candidates = finder.find, finder.candidates
+    exp_red = [k for k in REDDENING_LIKE if k in explicit]
+    if len(exp_red) > 1:
+        raise CatalogError(
+            f"columns= names several reddening columns ({', '.join(exp_red)}); give only one of ebv, av, excess."
+        )
+    if exp_red:
+        cols[exp_red[0]] = explicit[exp_red[0]]
+    else:
+        found = [(k, find(VALUE_ALIASES[k], used)) for k in ("ebv", "av")]
+        found_cols = {c for _, c in found}
+        exc = [
+            c
+            for c in candidates
+            if c not in used and c not in found_cols and EXCESS_NAME.match(c)
+            and not is_bv(parse_color_name(c))
+        ]
+        if exc:
+            found.append(("excess", exc[0]))
+        found = [(k, c) for k, c in found if c is not None]
+        if not found:
+            raise CatalogError(
+                f"No reddening column found in {ctx.desc}. Columns found: {_found_text(table)}. Needed one of: "
+                f"E(B-V) ({_spellings('ebv')}, ...); A_V ({_spellings('av')}, ...); another colour excess "
+                "named like E(BP-RP) or E_J_Ks. Hint: name it explicitly, e.g. columns={'ebv': 'Red'} or "
+                "columns={'excess': 'EBR'}, excess_color=('BP', 'RP')."
+            )
+        cols[found[0][0]] = found[0][1]
+        if len(found) > 1:
+            ctx.note(
+                AssumptionWarning,
+                "Several reddening columns found: "
+                + ", ".join(f"{c!r}" for k, c in found)
+                + f"; using {found[0][1]!r}. Pass columns={{'ebv': ...}}, {{'av': ...}} or {{'excess': ...}} to choose.",
+            )
+
+
+def _error_columns(names, explicit, cols, used):
+    """Add the error column of every value column found (explicit ``*_err`` keys first)."""
+    for role in list(cols):
+        if role in ("name", "l", "b", "ra", "dec"):
+            continue
+        key = f"{role}_err"
+        if key in explicit:
+            cols[key] = explicit[key]
+            continue
+        c = _find_error(names, cols[role], role, used)
+        if c is not None:
+            cols[key] = c
+            used.add(c)
+    for key, col in explicit.items():  # stray explicit *_err for an unused role
+        if key.endswith("_err") and key[:-4] not in cols:
+            raise CatalogError(
+                f"columns={{{key!r}: {col!r}}} gives the error of {key[:-4]!r}, but {key[:-4]!r} is not the "
+                f"column being used (using: {', '.join(f'{k}={v!r}' for k, v in cols.items())})."
+            )
+
+def _looks_like_error(colname, names):
+    """True for error-column names: 'e_X', 'err_X', 'X_err', 'sigma_X', ..., and 'eX' when 'X' is a column."""
+    if _ERROR_PREFIX.search(colname) or _ERROR_WORD.search(colname):
+        return True
+    return len(colname) > 1 and colname[0] == "e" and colname[1].isupper() and colname[1:] in names
+
+
+def _find_error(names, value_col, role, used):
+    by_norm = {}
+    for c in names:
+        if c not in used and c != value_col:
+            by_norm.setdefault(norm(c), c)
+    bases = [norm(value_col)] + [a for a in VALUE_ALIASES.get(role, []) if a != norm(value_col)]
+    for base in bases:
+        for cand in (
+            "e" + base,
+            base + "err",
+            "err" + base,
+            "error" + base,
+            "sigma" + base,
+            "sig" + base,
+            base + "error",
+            base + "sigma",
+            base + "unc",
+            "unc" + base,
+        ):
+            c = by_norm.get(cand)
+            if c is not None:
+                return c
+    return None

@@ -1,0 +1,197 @@
+"""The one table of rejection rules, limits and default errors for tracer catalogues.
+
+Both ways of reading a catalogue use what is written here: :func:`dustkit.tracers.read_tracers`
+(in memory, any columns and units) and the chunked reads of :mod:`dustkit.scale` (A_V
+catalogues in deg, pc and mag, larger than memory). A limit or a default changed here
+changes both; a rejection reason reads the same in both (``REASONS``).
+"""
+
+import numpy as np
+from astropy import units as u
+
+
+from .._lib.validation import check_real, param_error
+
+__all__ = [
+    "DEFAULT_REJECT_LIMITS",
+    "DEFAULT_DISTANCE_FRAC_ERR",
+    "DEFAULT_EXCESS_ERR",
+    "LATITUDE_RANGE",
+    "LONGITUDE_RANGE",
+    "RA_RANGE",
+    "PARALLAX_WARN_FRAC",
+    "KPC_HINT_MEDIAN",
+    "REASONS",
+    "CHUNK_RULES",
+    "reason",
+    "zero_point",
+    "check_limits",
+    "check_law",
+    "chunk_reasons",
+    "validate_rows",
+]
+
+#: Row rejection limits: E(B-V) in mag (A_V and other excesses are compared
+#: through their A_V = R_V * E(B-V) equivalent) and distance in pc.
+DEFAULT_REJECT_LIMITS = {"ebv": (-0.3, 20.0), "distance": (0.0, 2.0e5)}
+#: Fractional distance error assumed where a catalogue gives none (``default_distance_frac_err``).
+DEFAULT_DISTANCE_FRAC_ERR = 0.10
+#: Reddening error assumed where a catalogue gives none, mag of E(B-V) (``default_excess_err``).
+DEFAULT_EXCESS_ERR = 0.05
+#: Accepted Galactic latitude, Galactic longitude and right ascension, deg (inclusive).
+LATITUDE_RANGE = (-90.0, 90.0)
+LONGITUDE_RANGE = (-180.0, 360.0)
+RA_RANGE = (0.0, 360.0)
+#: Fractional parallax error above which 1/parallax is announced as a biased distance.
+PARALLAX_WARN_FRAC = 0.2
+#: A median distance (in the column's bare numbers) below this suggests kpc, not pc.
+KPC_HINT_MEDIAN = 30.0
+
+#: Why a row is rejected: reason -> message (``col`` is the column name, quoted by ``!r``).
+REASONS = {
+    "missing": "missing value in {col!r}",
+    "non_numeric": "non-numeric value in {col!r}",
+    "infinite": "infinite value in {col!r}",
+    "not_finite": "missing or non-finite value in {col!r}",  # chunked reads: null and NaN alike
+    "latitude": "{col!r} outside [{lo:g}, {hi:g}] deg",
+    "longitude": "{col!r} outside [{lo:g}, {hi:g}] deg",
+    "ra": "{col!r} outside [{lo:g}, {hi:g}] deg",
+    "negative_error": "negative error in {col!r}",
+    "distance_not_positive": "distance <= 0 in {col!r}",
+    "parallax_not_positive": "parallax{zero_point} <= 0 in {col!r}",
+    "distance_outside": "distance {word} {col!r} outside ({lo:g}, {hi:g}] pc",
+    "ebv_outside": "E(B-V) in {col!r} outside [{lo:g}, {hi:g}] mag",
+    "excess_outside": ("{kind} in {col!r} outside the A_V range [{av_lo:.3g}, {av_hi:.3g}] mag "
+                       "(E(B-V) limits [{lo:g}, {hi:g}] times R_V)"),
+    "av_outside": "A_V in {col!r} outside [{lo:g}, {hi:g}] mag times R_V",
+}
+
+#: The checks of a chunked read (A_V catalogue in deg, pc, mag), in the order they are made;
+#: a row is reported under the first one it fails: (role of the column, reason).
+CHUNK_RULES = (
+    ("l", "not_finite"),
+    ("b", "not_finite"),
+    ("b", "latitude"),
+    ("l", "longitude"),
+    ("av", "not_finite"),
+    ("av_err", "infinite"),
+    ("av_err", "negative_error"),
+    ("av", "av_outside"),
+    ("distance", "not_finite"),
+    ("distance", "distance_not_positive"),
+    ("distance_err", "infinite"),
+    ("distance_err", "negative_error"),
+    ("distance", "distance_outside"),
+)
+_RANGES = {"latitude": LATITUDE_RANGE, "longitude": LONGITUDE_RANGE, "ra": RA_RANGE}
+
+
+def reason(key, col, **values):
+    """The rejection message of ``key`` (see ``REASONS``) for column ``col``.
+
+    Position reasons take their range from the table unless ``lo``/``hi`` are given.
+    """
+    if key in _RANGES and "lo" not in values:
+        values["lo"], values["hi"] = _RANGES[key]
+    return REASONS[key].format(col=col, **values)
+
+
+def chunk_reasons(colmap, limits=None):
+    """``(role, message)`` of every rule in ``CHUNK_RULES`` for the file's column names ``colmap``."""
+    limits = DEFAULT_REJECT_LIMITS if limits is None else limits
+    extra = {"av_outside": dict(zip(("lo", "hi"), limits["ebv"])),
+             "distance_outside": dict(zip(("lo", "hi"), limits["distance"]), word="in")}
+    return tuple((role, reason(key, colmap[role], **extra.get(key, {}))) for role, key in CHUNK_RULES)
+
+
+def validate_rows(a, rv, limits=None):
+    """Reason code per row (-1 = accepted, else the index in ``CHUNK_RULES``) and the cleaned accepted rows.
+
+    ``a`` maps the roles ``l``, ``b``, ``distance``, ``distance_err``, ``av``, ``av_err`` to
+    float arrays in deg, pc and mag (NaN for nulls). The rules are those of
+    :func:`dustkit.tracers.read_tracers` for such a catalogue: a missing position, distance
+    or A_V, a latitude or longitude outside its range, a distance outside the limits, A_V
+    outside R_V times the E(B-V) limits, or a negative error rejects a row; a missing or
+    zero error takes the catalogue default (``DEFAULT_DISTANCE_FRAC_ERR`` of the distance;
+    ``DEFAULT_EXCESS_ERR`` times R_V for A_V); ``l`` is wrapped into [0, 360).
+    """
+    limits = DEFAULT_REJECT_LIMITS if limits is None else limits
+    l, b, d, de, av, ae = (a[r] for r in ("l", "b", "distance", "distance_err", "av", "av_err"))
+    (ebv_lo, ebv_hi), (d_lo, d_hi) = limits["ebv"], limits["distance"]
+    with np.errstate(invalid="ignore"):
+        values = {"l": l, "b": b, "distance": d, "distance_err": de, "av": av, "av_err": ae}
+        failing = {
+            "not_finite": lambda x: ~np.isfinite(x),
+            "infinite": np.isinf,
+            "negative_error": lambda x: x < 0,
+            "latitude": lambda x: (x < LATITUDE_RANGE[0]) | (x > LATITUDE_RANGE[1]),
+            "longitude": lambda x: (x < LONGITUDE_RANGE[0]) | (x > LONGITUDE_RANGE[1]),
+            "av_outside": lambda x: (x / rv < ebv_lo) | (x / rv > ebv_hi),
+            "distance_not_positive": lambda x: x <= 0,
+            "distance_outside": lambda x: ~((x > d_lo) & (x <= d_hi)),
+        }
+        code = np.full(l.size, -1, dtype=np.int16)
+        for k, (role, key) in enumerate(CHUNK_RULES):
+            code[(code < 0) & failing[key](values[role])] = k
+    keep = code < 0
+    lk = np.mod(l[keep], 360.0)
+    lk = np.where(lk >= 360.0, 0.0, lk)
+    dk = d[keep]
+    dek = de[keep]
+    dek = np.where(np.isfinite(dek) & (dek > 0), dek, DEFAULT_DISTANCE_FRAC_ERR * dk)
+    aek = ae[keep]
+    aek = np.where(np.isfinite(aek) & (aek > 0), aek, rv * DEFAULT_EXCESS_ERR)
+    return code, (lk, b[keep], dk, dek, av[keep], aek)
+
+
+def zero_point(zp):
+    """The parallax zero point in mas (a Quantity, or a plain number in mas)."""
+    if isinstance(zp, u.Quantity):
+        try:
+            return float(zp.to_value(u.mas))
+        except u.UnitConversionError:
+            raise param_error("parallax_zero_point", "an angle such as -0.017 * u.mas", zp) from None
+    return check_real("parallax_zero_point", zp, -10.0, 10.0)
+
+
+def check_limits(reject_limits):
+    """The rejection limits: ``DEFAULT_REJECT_LIMITS`` updated by ``reject_limits`` (checked)."""
+    limits = {k: tuple(v) for k, v in DEFAULT_REJECT_LIMITS.items()}
+    if reject_limits is None:
+        return limits
+    if not isinstance(reject_limits, dict):
+        raise param_error("reject_limits", "a dict like {'ebv': (-0.3, 20.0), 'distance': (0, 2e5)}", reject_limits)
+    for k, v in reject_limits.items():
+        if k not in limits:
+            raise param_error("reject_limits", f"a dict with keys among {', '.join(limits)}", k)
+        try:
+            lo, hi = v
+            if isinstance(lo, u.Quantity) or isinstance(hi, u.Quantity):
+                unit = u.pc if k == "distance" else u.mag
+                lo = u.Quantity(lo).to_value(unit)
+                hi = u.Quantity(hi).to_value(unit)
+            lo, hi = float(lo), float(hi)
+        except (TypeError, ValueError, u.UnitsError):
+            raise param_error(f"reject_limits['{k}']", "a (low, high) pair of numbers", v) from None
+        if not lo < hi:
+            raise param_error(f"reject_limits['{k}']", "a (low, high) pair with low < high", v)
+        limits[k] = (lo, hi)
+    return limits
+
+
+def check_law(law, rv):
+    """Validate the law name and R_V through dustkit.laws (when present); return (law, rv)."""
+    if not isinstance(law, str) or not law.strip():
+        raise param_error("law", "the name of an extinction law, e.g. 'ccm89'", law)
+    try:
+        from .. import laws
+    except ImportError:
+        return law, rv
+    if hasattr(laws, "get_law"):
+        obj = laws.get_law(law)
+        if hasattr(obj, "check_rv"):
+            rv = float(obj.check_rv(rv))
+        name = getattr(obj, "name", None)
+        if isinstance(name, str) and name:
+            law = name
+    return law, rv

@@ -1,0 +1,209 @@
+"""Value checks: numbers (and sexagesimal strings) from columns, positions, error columns, names."""
+
+import numpy as np
+from astropy import units as u
+from astropy.coordinates import SkyCoord
+from astropy.table import MaskedColumn
+
+from ..exceptions import AssumptionWarning, CatalogError
+from .._lib.units import as_unit
+from .context import Context
+from .rules import LATITUDE_RANGE, LONGITUDE_RANGE, RA_RANGE, reason
+
+__all__ = [
+    "numeric",
+    "to_unit",
+    "positions",
+    "error_values",
+    "names_of",
+]
+
+
+_MISSING_TOKENS = {"", "nan", "--", "null", "none", "na", "n/a", "-", "masked"}
+
+
+_SEXAGESIMAL = (
+    r"^\s*([+-]?)\s*(\d{1,3})(?:\s*[:hHdD\u00b0]\s*|\s+)(\d{1,2})(?:\s*[:mM']\s*|\s+)"
+    r"(\d{1,2}(?:\.\d*)?)\s*[sS\"]?\s*$"
+)
+
+
+def numeric(table, colname, ctx, *, sexagesimal=None):
+    """Return (float values, unit or None, raw column) and reject missing / non-numeric rows.
+
+    ``sexagesimal`` is ``"hour"`` or ``"deg"`` when strings like '12:30:00' are allowed.
+    """
+    col = table[colname]
+    unit = getattr(col, "unit", None)
+    if np.ndim(col) != 1:
+        raise CatalogError(
+            f"Column {colname!r} in {ctx.desc} has shape {np.shape(col)}; dustkit needs one number per row. "
+            "Hint: split it into separate columns."
+        )
+    mask = None
+    if isinstance(col, MaskedColumn):
+        mask = np.asarray(col.mask, dtype=bool) if np.ndim(col.mask) else np.full(len(col), bool(col.mask))
+        data = np.asarray(col.data.data)
+    elif hasattr(col, "unmasked") and hasattr(col, "mask"):  # astropy Masked quantity
+        mask = np.asarray(col.mask, dtype=bool)
+        data = np.asarray(getattr(col.unmasked, "value", col.unmasked))
+    elif isinstance(col, u.Quantity):
+        data = np.asarray(col.value)
+    else:
+        data = np.asarray(col)
+    if unit is not None and (unit == u.dimensionless_unscaled):
+        unit = None
+    nonnumeric = np.zeros(len(data), dtype=bool)
+    if data.dtype.kind in "fiub":
+        values = data.astype(float)
+    else:
+        strings = data.astype(str) if data.dtype.kind != "S" else np.char.decode(data, "utf-8", "replace")
+        try:
+            values = strings.astype(float)
+        except (TypeError, ValueError):
+            import pandas as pd
+
+            values = np.array(pd.to_numeric(pd.Series(strings), errors="coerce"), dtype=float)
+            bad = np.isnan(values)
+            stripped = np.char.lower(np.char.strip(strings))
+            blank = np.isin(stripped, list(_MISSING_TOKENS))
+            if sexagesimal is not None and (bad & ~blank).any():
+                sx = _parse_sexagesimal(strings[bad & ~blank], hours=(sexagesimal == "hour"))
+                values[np.flatnonzero(bad & ~blank)] = sx
+                bad = np.isnan(values)
+                if sexagesimal == "hour" and np.isfinite(sx).any():
+                    ctx.note(
+                        AssumptionWarning,
+                        f"Column {colname!r} holds sexagesimal strings; read as hours:minutes:seconds of right "
+                        "ascension (numbers in the same column are read as deg).",
+                    )
+                    unit = None
+            nonnumeric = bad & ~blank
+    missing = (np.isnan(values) & ~nonnumeric) | (mask if mask is not None else False)
+    values = np.where(mask, np.nan, values) if mask is not None else values
+    infinite = np.isinf(values)
+    ctx.rej.add(missing, reason("missing", colname), colname, col)
+    ctx.rej.add(nonnumeric, reason("non_numeric", colname), colname, col)
+    ctx.rej.add(infinite, reason("infinite", colname), colname, col)
+    values = np.where(np.isfinite(values), values, np.nan)
+    return values, unit, col
+
+
+def _parse_sexagesimal(strings, hours):
+    import pandas as pd
+
+    parts = pd.Series(strings).str.extract(_SEXAGESIMAL)
+    sign = np.where(parts[0].to_numpy() == "-", -1.0, 1.0)
+    d = pd.to_numeric(parts[1], errors="coerce").to_numpy(dtype=float)
+    m = pd.to_numeric(parts[2], errors="coerce").to_numpy(dtype=float)
+    s = pd.to_numeric(parts[3], errors="coerce").to_numpy(dtype=float)
+    ok = (m < 60) & (s < 60)
+    val = np.where(ok, sign * (d + m / 60.0 + s / 3600.0), np.nan)
+    return val * 15.0 if hours else val
+
+
+def _outside(x, limits):
+    """True where ``x`` lies outside the inclusive range ``limits``."""
+    return (x < limits[0]) | (x > limits[1])
+
+
+def to_unit(values, unit, target, colname, ctx, what):
+    """Convert ``values`` from a column unit to ``target``; None means no unit."""
+    if unit is None:
+        return values
+    try:
+        unit = as_unit(unit)
+        return values * unit.to(target)
+    except (ValueError, TypeError, u.UnitsError):
+        raise CatalogError(
+            f"Column {colname!r} in {ctx.desc} has unit {str(unit)!r}, which is not {what}. "
+            f"Hint: fix the column's unit or map the column to the right role with columns={{...}}."
+        ) from None
+
+
+def positions(table, cols, ctx):
+    """Galactic l, b in deg (NaN where rejected) and the mask of rows with a usable position."""
+    if "l" in cols:
+        lc, bc = cols["l"], cols["b"]
+        l, lu, lraw = numeric(table, lc, ctx)
+        b, bu, braw = numeric(table, bc, ctx)
+        l = to_unit(l, lu, u.deg, lc, ctx, "an angle")
+        b = to_unit(b, bu, u.deg, bc, ctx, "an angle")
+        ctx.rej.add(_outside(b, LATITUDE_RANGE), reason("latitude", bc), bc, braw)
+        ctx.rej.add(_outside(l, LONGITUDE_RANGE), reason("longitude", lc), lc, lraw)
+        ok = ctx.rej.code < 0
+        l = np.where(ok, np.mod(l, 360.0), np.nan)
+        b = np.where(ok, b, np.nan)
+    else:
+        rc, dc = cols["ra"], cols["dec"]
+        ra, ru, rraw = numeric(table, rc, ctx, sexagesimal="hour")
+        dec, du, draw = numeric(table, dc, ctx, sexagesimal="deg")
+        ra = to_unit(ra, ru, u.deg, rc, ctx, "an angle")
+        dec = to_unit(dec, du, u.deg, dc, ctx, "an angle")
+        ctx.rej.add(_outside(dec, LATITUDE_RANGE), reason("latitude", dc), dc, draw)
+        ctx.rej.add(_outside(ra, RA_RANGE), reason("ra", rc), rc, rraw)
+        ok = ctx.rej.code < 0
+        l = np.full(ctx.n, np.nan)
+        b = np.full(ctx.n, np.nan)
+        if ok.any():
+            gal = SkyCoord(ra=ra[ok] * u.deg, dec=dec[ok] * u.deg, frame="icrs").galactic
+            l[ok] = np.mod(gal.l.deg, 360.0)
+            b[ok] = gal.b.deg
+        ctx.assumptions.append(
+            f"ra/dec ({rc!r}, {dc!r}) taken as ICRS and converted to Galactic l, b with astropy.coordinates"
+        )
+    if l.size:
+        l = np.where(l >= 360.0, 0.0, l)
+    return l, b, ok
+
+
+def error_values(table, cols, key, ctx, default, value_desc, default_desc):
+    """Error column values (NaN where missing/zero is replaced by ``default``), negative ones rejected."""
+    colname = cols.get(key)
+    if colname is None:
+        if ctx.quiet_default_errors:
+            return np.broadcast_to(default, (ctx.n,)).astype(float), None, None
+        ctx.note(
+            AssumptionWarning,
+            f"No error column for {value_desc}; using the default {default_desc} for every row.",
+        )
+        return np.broadcast_to(default, (ctx.n,)).astype(float), None, None
+    col = table[colname]
+    # errors: missing/zero -> default, negative -> reject (do not reject missing errors)
+    sub = Context(table, ctx.desc)
+    vals, unit, raw = numeric(table, colname, sub)
+    # non-numeric text in an error column is bad input, reject those rows
+    for k, (why, c, r) in enumerate(sub.rej.reasons):
+        if why in (reason("non_numeric", c), reason("infinite", c)):
+            ctx.rej.add(sub.rej.code == k, why, c, r)
+    ctx.rej.add(vals < 0, reason("negative_error", colname), colname, col)
+    fill = ~(vals > 0)
+    fill &= ctx.rej.code < 0
+    vals = np.where(np.isfinite(vals) & (vals > 0), vals, np.nan)
+    if fill.any() and not ctx.quiet_default_errors:
+        ctx.note(
+            AssumptionWarning,
+            f"{int(fill.sum())} rows have an empty or zero error in {colname!r}; using the default "
+            f"{default_desc} for them.",
+        )
+    return np.where(np.isnan(vals), default, vals), unit, colname
+
+
+def names_of(table, cols):
+    n = len(table)
+    if "name" not in cols:  # "row <i>", made only when someone asks (TracerSet.name)
+        return None
+    col = table[cols["name"]]
+    data = np.asarray(col.data.data if isinstance(col, MaskedColumn) else getattr(col, "value", col))
+    if data.dtype.kind == "S":
+        data = np.char.decode(data, "utf-8", "replace")
+    names = data.astype(str)
+    empty = names == ""
+    if isinstance(col, MaskedColumn):
+        empty |= np.ma.getmaskarray(col)
+    if empty.any():
+        names = names.astype(object)
+        idx = np.flatnonzero(empty)
+        names[idx] = np.char.add("row ", idx.astype(str))
+        names = names.astype(str)
+    return names

@@ -1,0 +1,107 @@
+"""Tests for dustkit.answers: estimate_targets keeps every input row, and answers equal the model's own."""
+
+import warnings
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.table import Table
+
+from dustkit import CAUTION, ExtinctionModel, read_targets
+from dustkit.answers import estimate_targets
+from dustkit.exceptions import RowsRejectedWarning
+from dustkit.simulate import Cloud, DustField, simulate_tracers
+from dustkit.tracers import read_tracers
+
+# an invented field (simulated here; no real data): a layer and one cloud
+FIELD = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40.0, 0.0, 800.0, 3.0, 40.0, 1.0),))
+
+
+@pytest.fixture(scope="module")
+def model():
+    t = simulate_tracers(FIELD, 400, l_range=(20, 60), b_range=(-8, 8), distance_max=3000, rng=4)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tracers = read_tracers(t)
+    return ExtinctionModel(nside=8, distance_max=3000 * u.pc, distance_step=300 * u.pc, quiet=True).fit(tracers)
+
+
+def _mag(column):
+    """A table column in mag (a Table keeps the unit on the column)."""
+    return column.quantity.to_value(u.mag)
+
+
+def _targets():
+    # rows 1 (no distance) and 3 (|b| > 90) cannot be placed; 'av' clashes with an output column
+    return Table({
+        "name": ["T1", "T2", "T3", "T4", "T5"],
+        "l": [30.0, 35.0, 40.0, 45.0, 50.0] * u.deg,
+        "b": [1.0, -2.0, 0.5, 95.0, -1.0] * u.deg,
+        "distance": [500.0, np.nan, 1200.0, 900.0, 2500.0] * u.pc,
+        "av": [9.0, 9.0, 9.0, 9.0, 9.0],
+        "priority": [1, 2, 3, 4, 5],
+    })
+
+
+def test_estimate_targets_keeps_every_row_and_column(model):
+    with pytest.warns(RowsRejectedWarning, match="2 of 5"):  # the rows kept empty are announced
+        out = estimate_targets(model, _targets(), bands=("Ks",))
+    assert len(out) == 5 and list(out["name"]) == ["T1", "T2", "T3", "T4", "T5"]  # order kept
+    assert list(out["priority"]) == [1, 2, 3, 4, 5]
+    assert "input_av" in out.colnames and np.all(out["input_av"] == 9.0)  # clashing input renamed
+    av = _mag(out["av"])
+    assert np.isnan(av[[1, 3]]).all() and np.isfinite(av[[0, 2, 4]]).all()
+    assert np.isnan(_mag(out["a_Ks"])[[1, 3]]).all()
+    assert out.meta["caution"] == CAUTION
+    assert out.meta["n_estimated"] == 3 and sum(out.meta["rejected_by_reason"].values()) == 2
+
+
+def test_estimates_equal_the_models_own_answers(model):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        targets = read_targets(_targets())
+    out = estimate_targets(model, targets)
+    ok = np.asarray(targets.valid)
+    a, e = model.av(targets.l[ok] * u.deg, targets.b[ok] * u.deg, targets.distance[ok] * u.pc,
+                    distance_err=targets.distance_err[ok] * u.pc)
+    np.testing.assert_array_equal(_mag(out["av"])[ok], a.to_value(u.mag))
+    np.testing.assert_array_equal(_mag(out["av_err"])[ok], e.to_value(u.mag))
+
+
+def test_answers_work_for_any_model_with_the_answer_interface(model):
+    # a second model class answers through the same functions when it has av_pc and friends
+    class Shifted:
+        grid_, law, rv, tracers_ = model.grid_, model.law, model.rv, None
+
+        def check_fitted(self):
+            pass
+
+        def av_pc(self, l, b, d, distance_err=None):
+            a, e = model.av_pc(l, b, d, distance_err)
+            return a + 0.1, e
+
+        def layer_av_pc(self, l, b, d):
+            return model.layer_av_pc(l, b, d)
+
+        def grid_pixel_radius(self):
+            return model.grid_pixel_radius()
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        out = estimate_targets(Shifted(), _targets())
+        ref = estimate_targets(model, _targets())
+    np.testing.assert_allclose(_mag(out["av"])[[0, 2, 4]], _mag(ref["av"])[[0, 2, 4]] + 0.1)
+    from dustkit.answers import profile_table
+
+    p = profile_table(Shifted(), 40 * u.deg, 0 * u.deg)
+    assert np.all(np.diff(p["av"].to_value(u.mag)) >= 0)  # cumulative extinction never decreases
+
+
+def test_estimate_targets_refuses_reading_options_with_a_target_list(model):
+    from dustkit import ParameterError
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        targets = read_targets(_targets())
+    with pytest.raises(ParameterError, match="distance_unit"):
+        estimate_targets(model, targets, distance_unit="kpc")
