@@ -4,21 +4,23 @@ import time
 
 import numpy as np
 from astropy import units as u
-from astropy.table import Table
+from astropy.table import QTable, Table
 from scipy import optimize
 from scipy.spatial import cKDTree
 
-from .. import _healpix
-from .._errors import CatalogError, ModelNotFittedError
-from .._progress import progress
-from .._validation import check_int, check_nside, check_real, param_error, to_value
+import inspect
+
+from .._lib import healpix
+from .._lib.progress import progress
+from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
+from ..answers import CAUTION, av_quantities, profile_table, query_table, sky_positions
+from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
-from ..layer import fit_layer
-from ..model import ExtinctionModel
+from ..layer import DustLayer, fit_layer
 from .lattice import Lattice, active_pixels, chord, unit_vectors
 from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, tracer_terms
 
-__all__ = ["DensityModel", "default_distance_edges"]
+__all__ = ["DensityModel", "default_distance_edges", "duplicate_weights", "density_state", "density_from_state"]
 
 #: Floor on a tracer's A_V error (mag): no measurement of reddening is better than this.
 AV_ERR_FLOOR = 0.02
@@ -68,7 +70,7 @@ def duplicate_weights(l, b, d, av, av_err):
 
 def _blocks(l, b, d, n_folds, random_state):
     """Spatially blocked folds: HEALPix NSIDE 16 sky cells x 25%-deep shells, hashed to folds."""
-    pix = _healpix.ang2pix(16, l, b)
+    pix = healpix.ang2pix(16, l, b)
     shell = np.floor(np.log(np.maximum(d, 1.0)) / 0.25).astype(np.int64)
     key = pix * 1000 + shell
     uniq, inv = np.unique(key, return_inverse=True)
@@ -76,17 +78,20 @@ def _blocks(l, b, d, n_folds, random_state):
     return rng.integers(0, n_folds, uniq.size)[inv]
 
 
-class DensityModel(ExtinctionModel):
+class DensityModel:
     """3-D model of the dust density: log-normal, spatially correlated, with posterior uncertainties.
 
     The density in each cell (HEALPix pixel x distance bin) is the fitted smooth layer times
-    ``exp(f)``, with ``f`` a Gaussian field correlated along and across sight
-    lines (amplitude ``s``, correlation length ``L``), so cumulative A_V is non-decreasing
-    by construction. The amplitude and correlation length are chosen by cross-validation in
-    spatially blocked folds; the fraction ``tau`` of extinction the cells cannot resolve is
-    fitted by maximum likelihood on the held-out tracers. Answers come from samples of the
-    Laplace approximation of the posterior and widen to the prior where there are no
-    tracers.
+    ``exp(f)``, with ``f`` a Gaussian field correlated along and across sight lines
+    (amplitude ``s``, correlation length ``L``; :mod:`dustkit.density.lattice`), so the
+    density is positive and cumulative A_V non-decreasing by construction, with no
+    post-hoc step. Each tracer constrains the line integral of the density out to its own
+    uncertain distance (:mod:`dustkit.density.solver`). The amplitude and correlation
+    length are chosen by cross-validation in spatially blocked folds; what the cells cannot
+    resolve is measured on the same held-out tracers: a fraction ``tau`` of A_V everywhere
+    and, near tracers that the model missed, a local unresolved variance. Answers are the
+    posterior mode with the Laplace posterior's spread, which widens to the prior where
+    there are no tracers.
 
     Parameters
     ----------
@@ -94,7 +99,7 @@ class DensityModel(ExtinctionModel):
         HEALPix NSIDE of the cells (default 32, 1.8 deg).
     distance_max : Quantity['length']
         Far edge of the grid (default 6 kpc); the bins grow from 50 pc with distance
-        (see :func:`default_distance_edges`) unless ``distance_edges`` is given.
+        (:func:`default_distance_edges`) unless ``distance_edges`` is given.
     distance_edges : Quantity['length'], optional
     amplitudes : sequence of float
         Candidate prior standard deviations ``s`` of the log-density contrast.
@@ -103,27 +108,47 @@ class DensityModel(ExtinctionModel):
     n_folds : int
         Spatially blocked cross-validation folds.
     n_samples : int
-        Posterior samples kept for the answers.
+        Posterior samples kept for the answers (``draw``).
     active_radius : Quantity['angle']
         Pixels within this angle of a tracer carry free parameters; the rest keep the prior.
     random_state : int
     quiet : bool, optional
+        Hide the progress bar (default: shown only on a terminal).
 
     Attributes
     ----------
-    grid_, layer_, tracers_
-    amplitude_, length_, tau_ : chosen prior amplitude, correlation length (pc), unresolved fraction
+    grid_ : Grid
+    layer_ : DustLayer
+    tracers_ : TracerSet
+    amplitude_, length_, tau_ : float
+        Chosen prior amplitude, correlation length (pc) and unresolved fraction.
     av_, av_err_ : ndarray (npix, n_edges)
-        Posterior mean and standard deviation of cumulative A_V at pixel centres (the prior
-        where no tracer informs).
-    support_ : ndarray (npix, n_edges)
-        ``1 - posterior variance / prior variance``: 0 where the answer is the prior.
+        Cumulative A_V at pixel centres (posterior mode) and its posterior standard
+        deviation (the prior's where no tracer informs).
+    unresolved_ : ndarray (npix, n_edges)
+        Local variance (mag^2) of what the cells miss, from held-out tracers.
+    prior_err_, support_ : ndarray (npix, n_edges)
+        Prior standard deviation, and ``1 - posterior variance / prior variance`` (0: the
+        answer is the prior).
     n_tracers_ : ndarray (npix, n_edges)
-        Tracers in front of each node within the sky correlation width (kernel weighted).
-    samples_ : ndarray (n_active, n_edges, n_samples)
-        Posterior samples of cumulative A_V at the active pixels.
+        Kernel-weighted number of tracers in front of each node.
+    counts_ : ndarray (npix, n_bins) of int
+    differential_ : ndarray (npix, n_bins)
+        Mean extinction per unit distance in each bin (mag/kpc), never negative.
+    samples_ : ndarray (n_active, n_edges, n_samples), float32
+        Posterior deviations of cumulative A_V from ``av_`` at the active pixels.
+    active_pixels_ : ndarray of int
     cv_ : astropy.table.Table
-        Cross-validation score of each candidate.
+        Cross-validation score of each candidate (``meta["validation"]`` says how).
+    build_report_ : dict
+
+    Notes
+    -----
+    Regularised Bayesian inversion of line-of-sight extinctions into a 3-D density with a
+    correlated prior follows Lallement et al. (2019, A&A 625, A135) and Vergely et al.
+    (2022); the log-normal prior, Leike & Ensslin (2019, A&A 631, A32) and Edenhofer et al.
+    (2024, A&A 685, A82); per-tracer likelihoods marginalised over distance, Green et al.
+    (2019, ApJ 887, 93).
     """
 
     def __init__(
@@ -131,7 +156,7 @@ class DensityModel(ExtinctionModel):
         nside=32,
         distance_max=6000 * u.pc,
         distance_edges=None,
-        amplitudes=(0.3, 0.6, 1.2),
+        amplitudes=(0.15, 0.3, 0.6, 1.2),
         lengths=(150,) * u.pc,
         n_folds=3,
         n_samples=48,
@@ -149,10 +174,26 @@ class DensityModel(ExtinctionModel):
         self.active_radius = active_radius
         self.random_state = random_state
         self.quiet = quiet
-        self.ordering = "ring"
 
-    # -- parameters
-    def _make_grid(self):
+    # -- parameters (one list: the constructor's signature)
+    @classmethod
+    def param_names(cls):
+        """The names of the constructor parameters, in signature order."""
+        return tuple(p for p in inspect.signature(cls.__init__).parameters if p != "self")
+
+    def get_params(self):
+        """The parameters as given to the constructor (or set since), name -> value."""
+        return {k: getattr(self, k) for k in self.param_names()}
+
+    def set_params(self, **params):
+        """Set parameters by name; returns ``self``."""
+        for k, v in params.items():
+            check_choice("parameter name", k, self.param_names())
+            setattr(self, k, v)
+        return self
+
+    def make_grid(self):
+        """The HEALPix x distance grid these parameters describe (checked)."""
         check_nside(self.nside)
         if self.distance_edges is not None:
             edges = to_value("distance_edges", self.distance_edges, u.pc, default_unit=u.pc)
@@ -173,20 +214,18 @@ class DensityModel(ExtinctionModel):
     def fit(self, tracers):
         """Fit the density model to a :class:`~dustkit.tracers.TracerSet`; returns ``self``."""
         t_start = time.perf_counter()
-        grid = self._make_grid()
+        grid = self.make_grid()
         folds_n = check_int("n_folds", self.n_folds, 2, 20)
         n_samples = check_int("n_samples", self.n_samples, 4, 4096)
         radius = float(to_value("active_radius", self.active_radius, u.deg, default_unit=u.deg))
+        check_real("active_radius", radius, 0.0, 180.0, low_inclusive=False)
         cands = self._candidates()
         n = len(tracers)
         if n < 5:
-            raise CatalogError(f"The density model needs at least 5 tracers; got {n}. Hint: widen the region or add tracers.")
-        l = np.asarray(tracers.l, float)
-        b = np.asarray(tracers.b, float)
-        d = np.asarray(tracers.distance, float)
-        de = np.asarray(tracers.distance_err, float)
-        av = np.asarray(tracers.av, float)
-        ae = np.asarray(tracers.av_err, float)
+            raise CatalogError(f"The density model needs at least 5 tracers; got {n}. "
+                               "Hint: widen the region or add tracers.")
+        l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
+                               for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
         floored = int(np.sum(ae < AV_ERR_FLOOR))
         ae = np.maximum(ae, AV_ERR_FLOOR)
         layer = fit_layer(tracers)
@@ -195,76 +234,81 @@ class DensityModel(ExtinctionModel):
         fold = _blocks(l, b, d, folds_n, self.random_state)
         weight, n_groups = duplicate_weights(l, b, d, av, ae)
         rng = np.random.default_rng(self.random_state)
-        rows = []
-        best = None
+        rows, best = [], None
         bar = progress(total=len(cands) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
         with bar:
             for amp, length in cands:
                 lat = Lattice(grid, pixels, amp, length)
-                terms = tracer_terms(lat, layer._av, col, b, d, de, av, ae, weight)
-                full = fit_posterior(lat, terms, tau=0.1)  # fold fits start from it
-                resid, pvar, base = np.empty(n), np.empty(n), np.empty(n)
+                terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight)
+                full = fit_posterior(lat, terms, tau=0.1)  # the folds' fits start from it
+                resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
                 for k in range(folds_n):
-                    train = fold != k
-                    test = ~train
-                    if not test.any() or not train.any():
-                        bar.update(1)
-                        continue
-                    post = fit_posterior(lat, terms.subset(train), tau=0.1, xi0=full.xi, max_iter=4)
-                    xs = draw_samples(lat, post, 8, rng)
-                    mean, var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
-                    resid[test] = av[test] - mean
-                    pvar[test] = var + var_d
-                    base[test] = mean
+                    test = fold == k
+                    if test.any() and not test.all():
+                        post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4)
+                        xs = draw_samples(lat, post, 8, rng)
+                        base[test], var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
+                        resid[test] = av[test] - base[test]
+                        pvar[test] = var + var_d
                     bar.update(1)
                 ok = ~terms.censored
                 tau, score = _fit_tau(resid[ok], pvar[ok], ae[ok], base[ok])
+                spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2)
                 rows.append((amp, length, tau, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
-                             float(np.mean(np.abs(resid[ok]) <= np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2)))))
-                if best is None or score < best[3]:
-                    best, best_xi = rows[-1], full.xi
+                             float(np.mean(np.abs(resid[ok]) <= spread))))
+                if best is None or score < best[0][3]:
+                    best = (rows[-1], full.xi, resid.copy(), pvar.copy(), base.copy(), full.predicted)
                 bar.update(1)
-            amp, length, tau = best[0], best[1], best[2]
-            lat = Lattice(grid, pixels, amp, length)
-            terms = tracer_terms(lat, layer._av, col, b, d, de, av, ae, weight)
-            post = fit_posterior(lat, terms, tau=tau, xi0=best_xi, max_iter=20)
+            (amp, length, tau, *_), xi0, resid, pvar, base, fitted = best
+            # what held-out tracers missed beyond their predicted spread; a tracer that even the
+            # fit with it inside disagrees with is an outlier (a wrong member), not unresolved dust
+            z_fit = (av - fitted) / np.sqrt(ae**2 + (tau * fitted) ** 2)
+            consistent = NU / (NU + z_fit**2)
+            excess = np.where(terms.censored, 0.0, np.maximum(resid**2 - pvar - ae**2 - (tau * base) ** 2, 0.0))
+            # relative excess, bounded per tracer (a lone wrong member moves a pixel's prior at most
+            # as much as a real factor-e miss); the neighbours' agreement decides the rest
+            rel = np.minimum(excess / np.maximum(base, 0.1) ** 2, 1.0)
+            boost = _amplitude_boost(grid, pixels, l, b, rel, weight, amp)
+            excess *= consistent
+            lat = Lattice(grid, pixels, amp, length, boost)
+            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight)
+            post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)
-        self._store(grid, layer, lat, terms, post, xs, tau, tracers)
+        self._store(grid, layer, lat, post, xs, tau, tracers)
+        self.unresolved_ = _unresolved(grid, l, b, d, excess, weight)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "score", "rms", "coverage"))
         self.cv_["length"].unit = u.pc
         self.cv_["rms"].unit = u.mag
         self.cv_.meta["validation"] = (f"{folds_n} folds of spatial blocks (HEALPix NSIDE 16 cells x 25%-deep "
                                        "distance shells): neighbouring and duplicated tracers share a fold")
         self.build_report_ = {
-            "scheme": "3-D log-normal density", "n_tracers": n, "n_active_pixels": int(pixels.size),
-            "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": floored, "duplicate_groups": n_groups,
-            "converged": bool(post.converged), "seconds": time.perf_counter() - t_start,
+            "model": "3-D log-normal density", "n_tracers": n, "n_active_pixels": int(pixels.size),
+            "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": floored,
+            "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
+            "boosted_pixels": int(np.sum(lat.boost > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
+            "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
         }
-        self.uncertainty_scheme_ = "posterior"
         return self
 
-    def _store(self, grid, layer, lat, terms, post, xs, tau, tracers):
+    def _store(self, grid, layer, lat, post, xs, tau, tracers):
         e = grid.distance_edges
         npix = grid.npix
-        lc_all, bc_all = grid.pixel_centres()
-        inc = _layer_increments(layer, bc_all, e)                          # (npix, K)
+        _, bc_all = grid.pixel_centres()
+        inc = _layer_increments(layer, bc_all, e)                                   # (npix, K)
         prior_var = _prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
-        av_prior = np.concatenate([np.zeros((npix, 1)), np.cumsum(inc, axis=1)], axis=1)
-        # point estimate: the posterior mode (monotone: the density is positive); spread: the
-        # Laplace approximation propagated linearly to cumulative A_V (the delta method)
-        g = np.exp(post.f)                                                  # (K, P)
-        inc_act = inc[lat.pixels].T * g                                     # (K, P)
-        mode = np.concatenate([np.zeros((1, lat.n_pix)), np.cumsum(inc_act, axis=0)], axis=0)
-        dev = inc_act[:, :, None] * (lat.forward(xs) - post.f[:, :, None])  # (K, P, S)
-        cum = np.concatenate([np.zeros((1, *dev.shape[1:])), np.cumsum(dev, axis=0)], axis=0)  # (E, P, S)
-        av = av_prior.copy()
+        prior_var[lat.pixels] *= lat.boost[:, None] ** 2
+        av = np.concatenate([np.zeros((npix, 1)), np.cumsum(inc, axis=1)], axis=1)   # the prior (layer)
         var = prior_var.copy()
-        av[lat.pixels] = mode.T
+        # point estimate: the posterior mode (monotone: the density is positive); spread: the
+        # Laplace posterior propagated linearly to cumulative A_V (the delta method)
+        g = np.exp(post.f)
+        inc_act = inc[lat.pixels].T * g                                             # (K, P)
+        dev = inc_act[:, :, None] * (lat.forward(xs) - post.f[:, :, None])          # (K, P, S)
+        cum = np.concatenate([np.zeros((1, *dev.shape[1:])), np.cumsum(dev, axis=0)], axis=0)  # (E, P, S)
+        av[lat.pixels] = np.concatenate([np.zeros((1, lat.n_pix)), np.cumsum(inc_act, axis=0)], axis=0).T
         var[lat.pixels] = np.mean(cum**2, axis=2).T
-        self.grid_ = grid
-        self.layer_ = layer
-        self.tracers_ = tracers
+        self.grid_, self.layer_, self.tracers_ = grid, layer, tracers
         self.amplitude_, self.length_, self.tau_ = float(lat.amplitude), float(lat.length), float(tau)
         self.av_ = av
         self.av_err_ = np.sqrt(var)
@@ -272,72 +316,184 @@ class DensityModel(ExtinctionModel):
         with np.errstate(invalid="ignore", divide="ignore"):
             self.support_ = np.clip(1.0 - var / np.where(prior_var > 0, prior_var, np.inf), 0.0, 1.0)
         self.active_pixels_ = lat.pixels
-        self.samples_ = np.ascontiguousarray(np.transpose(cum, (1, 0, 2))).astype(np.float32)  # deviations
+        self.boost_ = lat.boost
+        self.samples_ = np.ascontiguousarray(np.transpose(cum, (1, 0, 2))).astype(np.float32)
         self.differential_ = np.diff(av, axis=1) / (np.diff(e) / 1000.0)
         counts = np.zeros((npix, e.size - 1), np.int64)
         k, _ = grid.edge_position(np.asarray(tracers.distance, float))
-        np.add.at(counts, (grid.pixel(np.asarray(tracers.l, float), np.asarray(tracers.b, float)), np.minimum(k, e.size - 2)), 1)
+        np.add.at(counts, (grid.pixel(np.asarray(tracers.l, float), np.asarray(tracers.b, float)),
+                           np.minimum(k, e.size - 2)), 1)
         self.counts_ = counts
         self.n_tracers_ = _informing(lat, counts, npix)
-        self._resid_ = av - av_prior
-        self._post_var_ = var
 
-    # -- answers (the interface of ExtinctionModel)
-    def _av_arrays(self, l, b, d, distance_err=None):
+    # -- answers (the interface of dustkit.answers)
+    def check_fitted(self):
+        """Raise :class:`~dustkit.exceptions.ModelNotFittedError` unless the model is fitted."""
+        if not hasattr(self, "av_"):
+            raise ModelNotFittedError("This DensityModel is not fitted yet. Call fit(tracers) first, or load a "
+                                      "saved model with dustkit.load_model(path).")
+
+    def _nodes(self, values, pix, wgt, k, f):
+        return np.sum(wgt * ((1 - f) * values[pix, k] + f * values[pix, k + 1]), axis=0)
+
+    def _locate(self, l, b, d):
         grid = self.grid_
         e = grid.distance_edges
         pix, wgt = grid.interp_weights(l, b)
         k, f = grid.edge_position(np.minimum(d, e[-1]))
         k = np.minimum(k, e.size - 2)
         f = np.clip(f, 0.0, 1.0)
-        a_lo, a_hi = self.av_[pix, k], self.av_[pix, k + 1]
-        v_lo, v_hi = self.av_err_[pix, k] ** 2, self.av_err_[pix, k + 1] ** 2
-        a_node = np.sum(wgt * ((1 - f) * a_lo + f * a_hi), axis=0)
-        v_node = np.sum(wgt * ((1 - f) * v_lo + f * v_hi), axis=0)
+        # the layer's latitude dependence inside a pixel: scale by layer(target) / layer(pixel centres)
         _, bc = grid.pixel_centres(pix.ravel())
         dd = np.minimum(d, e[-1])
-        lay_c = np.sum(wgt * self.layer_._av(bc.reshape(pix.shape), np.broadcast_to(dd, pix.shape)), axis=0)
-        lay_t = self.layer_._av(b, dd)
+        lay_c = np.sum(wgt * self.layer_.av_pc(bc.reshape(pix.shape), np.broadcast_to(dd, pix.shape)), axis=0)
+        lay_t = self.layer_.av_pc(b, dd)
         ratio = np.where(lay_c > 0, lay_t / np.maximum(lay_c, 1e-300), 1.0)
-        a = a_node * ratio
-        var = v_node * ratio**2
+        return pix, wgt, k, f, ratio, lay_t
+
+    def av_pc(self, l, b, d, distance_err=None):
+        """A_V and its 1-sigma uncertainty (mag) on plain arrays: l, b in deg, d (and distance_err) in pc."""
+        self.check_fitted()
+        l, b, d = (np.asarray(x, float) for x in (l, b, d))
+        e = self.grid_.distance_edges
+        pix, wgt, k, f, ratio, lay_t = self._locate(l, b, d)
+        a = self._nodes(self.av_, pix, wgt, k, f) * ratio
+        var = self._nodes(self.av_err_**2, pix, wgt, k, f) * ratio**2 + self._nodes(self.unresolved_, pix, wgt, k, f)
         beyond = d > e[-1]
-        if np.any(beyond):
-            extra = np.maximum(self.layer_._av(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
+        if np.any(beyond):  # past the grid: the layer's prior, carried on
+            extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
             a[beyond] += extra
             var[beyond] += (extra * self.amplitude_) ** 2
         var = var + (self.tau_ * a) ** 2
         if distance_err is not None:
-            var = var + (self._slope(l, b, d) * distance_err) ** 2
+            var = var + (self._slope(pix, wgt, k) * np.asarray(distance_err, float)) ** 2
         return a, np.sqrt(var)
 
-    def _slope(self, l, b, d):
-        grid = self.grid_
-        e = grid.distance_edges
-        k, _ = grid.edge_position(np.minimum(d, e[-1]))
-        k = np.minimum(k, e.size - 2)
-        pix, wgt = grid.interp_weights(l, b)
+    def _slope(self, pix, wgt, k):
+        e = self.grid_.distance_edges
         rise = np.sum(wgt * (self.av_[pix, k + 1] - self.av_[pix, k]), axis=0)
         return np.maximum(rise, 0.0) / (e[k + 1] - e[k])
 
-    def support(self, l, b=None, distance=None):
-        """How far each answer is informed by tracers: ``(support, n_tracers, prior_only)``.
+    def layer_av_pc(self, l, b, d):
+        """A_V (mag) of the smooth layer alone on plain arrays (deg, pc)."""
+        return self.layer_.av_pc(b, d)
 
-        ``support`` is ``1 - posterior variance / prior variance`` (0: the answer is the prior);
-        ``n_tracers`` the kernel-weighted number of tracers in front; ``prior_only`` flags
-        support below 0.1.
+    def av(self, l, b=None, distance=None, distance_err=None):
+        """A_V and its 1-sigma uncertainty (Quantity, mag) at arbitrary positions (see ExtinctionModel.av)."""
+        return av_quantities(self, l, b, distance, distance_err)
+
+    def layer_av(self, l, b=None, distance=None):
+        """A_V (mag) of the fitted smooth layer alone at the given positions."""
+        self.check_fitted()
+        lv, bv, dv, shape = sky_positions(l, b, distance)
+        return self.layer_.av_pc(bv, dv).reshape(shape) * u.mag
+
+    def query(self, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None, samples=0):
+        """A table of answers with how well each is supported; ``samples=N`` adds N posterior draws.
+
+        Columns as :meth:`dustkit.ExtinctionModel.query`, plus ``support`` (0 = the prior
+        only, 1 = fully set by tracers), ``n_tracers`` (kernel-weighted tracers in front),
+        ``prior_only`` (support below 0.1) and, with ``samples``, ``av_samples`` (n, N).
         """
-        self._check_fitted()
-        lv, bv, dv, shape = self._positions(l, b, distance)
-        grid = self.grid_
-        e = grid.distance_edges
-        pix, wgt = grid.interp_weights(lv, bv)
-        k, f = grid.edge_position(np.minimum(dv, e[-1]))
-        k = np.minimum(k, e.size - 2)
-        f = np.clip(f, 0.0, 1.0)
-        s = np.sum(wgt * ((1 - f) * self.support_[pix, k] + f * self.support_[pix, k + 1]), axis=0)
-        nt = np.sum(wgt * ((1 - f) * self.n_tracers_[pix, k] + f * self.n_tracers_[pix, k + 1]), axis=0)
-        return s.reshape(shape), nt.reshape(shape), (s < 0.1).reshape(shape)
+        t = query_table(self, l, b, distance, distance_err, bands, law, rv)
+        lv, bv, dv = (np.asarray(t[k].value, float) for k in ("l", "b", "distance"))
+        s, nt, prior_only = self._support_arrays(lv, bv, dv)
+        t["support"], t["n_tracers"], t["prior_only"] = s, nt, prior_only
+        if samples:
+            t["av_samples"] = self.draw(lv, bv, dv, samples) * u.mag
+        return t
+
+    def _support_arrays(self, l, b, d):
+        pix, wgt, k, f, _, _ = self._locate(l, b, d)
+        s = self._nodes(self.support_, pix, wgt, k, f)
+        nt = self._nodes(self.n_tracers_, pix, wgt, k, f)
+        return s, nt, s < 0.1
+
+    def support(self, l, b=None, distance=None):
+        """How far answers are informed by tracers: ``(support, n_tracers, prior_only)`` arrays."""
+        self.check_fitted()
+        lv, bv, dv, shape = sky_positions(l, b, distance)
+        return tuple(x.reshape(shape) for x in self._support_arrays(lv, bv, dv))
+
+    def draw(self, l, b, d, n_samples, random_state=0):
+        """Posterior draws of A_V (mag, plain arrays (n, n_samples)) at positions in deg and pc.
+
+        The first ``min(n_samples, stored)`` draws come from the stored posterior samples at
+        the active pixels (the prior's spread elsewhere), each plus the unresolved scatter;
+        the same call returns the same draws.
+        """
+        self.check_fitted()
+        l, b, d = (np.atleast_1d(np.asarray(x, float)) for x in (l, b, d))
+        n_samples = check_int("samples", n_samples, 1, 100_000)
+        a, err = self.av_pc(l, b, d)
+        rng = np.random.default_rng(random_state)
+        pix, wgt, k, f, ratio, _ = self._locate(l, b, d)
+        stored = self.samples_.shape[2]
+        slot = np.searchsorted(self.active_pixels_, pix)
+        slot = np.minimum(slot, self.active_pixels_.size - 1)
+        active = self.active_pixels_[slot] == pix
+        dev = np.zeros((l.size, n_samples))
+        use = min(n_samples, stored)
+        for j in range(4):  # the four interpolation pixels
+            sj = self.samples_[slot[j]]
+            lo = np.take_along_axis(sj, k[:, None, None].repeat(stored, 2), 1)[:, 0, :use]
+            hi = np.take_along_axis(sj, (k + 1)[:, None, None].repeat(stored, 2), 1)[:, 0, :use]
+            dev[:, :use] += (wgt[j] * active[j])[:, None] * ((1 - f)[:, None] * lo + f[:, None] * hi)
+        dev[:, :use] *= ratio[:, None]
+        explained = np.sqrt(np.mean(dev[:, :use] ** 2, axis=1)) if use else np.zeros(l.size)
+        rest = np.sqrt(np.maximum(err**2 - explained**2, 0.0))
+        dev[:, :use] += rest[:, None] * rng.standard_normal((l.size, use))
+        if n_samples > use:
+            dev[:, use:] = err[:, None] * rng.standard_normal((l.size, n_samples - use))
+        return np.maximum(a[:, None] + dev, 0.0)
+
+    @property
+    def law(self):
+        """Extinction law of the tracers the model was built from."""
+        return getattr(getattr(self, "tracers_", None), "law", "ccm89")
+
+    @property
+    def rv(self):
+        """R_V of the tracers the model was built from."""
+        return float(getattr(getattr(self, "tracers_", None), "rv", 3.1))
+
+    def profile(self, l, b, radius=None, distances=None):
+        """Cumulative A_V against distance along a sight line (see :func:`dustkit.answers.profile_table`)."""
+        return profile_table(self, l, b, radius, distances)
+
+    def grid_pixel_radius(self):
+        """Approximate angular radius of one sky pixel (deg)."""
+        return float(np.sqrt(self.grid_.pixel_area.to_value(u.deg**2) / np.pi))
+
+    def informed_pixels(self):
+        """Pixels where tracers inform the answer (support at least 0.1 somewhere along the line)."""
+        self.check_fitted()
+        return np.nonzero(self.support_.max(axis=1) >= 0.1)[0]
+
+    def to_table(self, pixels=None):
+        """The model on its grid: one row per pixel and distance bin (columns as ExtinctionModel.to_table, plus support)."""
+        self.check_fitted()
+        g = self.grid_
+        pixels = self.informed_pixels() if pixels is None else np.asarray(pixels, int)
+        lc, bc = g.pixel_centres(pixels)
+        nb, e = g.n_bins, g.distance_edges
+        t = QTable()
+        t["pixel"] = np.repeat(pixels, nb)
+        t["l"] = np.repeat(lc, nb) * u.deg
+        t["b"] = np.repeat(bc, nb) * u.deg
+        t["distance_min"] = np.tile(e[:-1], pixels.size) * u.pc
+        t["distance_max"] = np.tile(e[1:], pixels.size) * u.pc
+        t["av_near"] = self.av_[pixels, :-1].ravel() * u.mag
+        t["av"] = self.av_[pixels, 1:].ravel() * u.mag
+        err = np.sqrt(self.av_err_[pixels, 1:] ** 2 + self.unresolved_[pixels, 1:] + (self.tau_ * self.av_[pixels, 1:]) ** 2)
+        t["av_err"] = err.ravel() * u.mag
+        t["differential"] = self.differential_[pixels].ravel() * (u.mag / u.kpc)
+        t["n_tracers"] = self.counts_[pixels].ravel()
+        t["support"] = self.support_[pixels, 1:].ravel()
+        t.meta.update({"nside": g.nside, "ordering": g.ordering.upper(), "coordsys": "G", "law": self.law,
+                       "rv": self.rv, "model": "density",
+                       **{f"layer_{k}": v for k, v in self.layer_.as_dict().items()}, "caution": CAUTION})
+        return t
 
     def __repr__(self):
         if not hasattr(self, "av_"):
@@ -348,7 +504,7 @@ class DensityModel(ExtinctionModel):
 
 def _layer_increments(layer, b_deg, edges):
     n = np.size(b_deg)
-    cum = layer._av(np.repeat(b_deg, edges.size), np.tile(edges, n)).reshape(n, edges.size)
+    cum = layer.av_pc(np.repeat(b_deg, edges.size), np.tile(edges, n)).reshape(n, edges.size)
     return np.maximum(np.diff(cum, axis=1), 0.0)
 
 
@@ -399,3 +555,102 @@ def _fit_tau(resid, pvar, err, base):
 
     res = optimize.minimize_scalar(nll, bounds=(0.0, 1.0), method="bounded", options={"xatol": 1e-4})
     return float(res.x), float(res.fun)
+
+
+def _amplitude_boost(grid, pixels, l, b, rel_excess, weight, amplitude, sky_deg=2.0, prior_weight=3.0, cap=4.0):
+    """Per-pixel factor on the prior amplitude from held-out tracers' relative excess variance.
+
+    Where nearby held-out tracers miss by more than their predicted spread (relative to the
+    extinction predicted for them), the log-density there varies more than the sky-wide
+    amplitude allows: ``boost^2 = 1 + <excess / A^2> / s^2`` (kernel-weighted mean over
+    tracers within ``sky_deg``, shrunk by ``prior_weight`` tracers' worth of zero), capped
+    at ``cap``. An empirical-Bayes, heavier-tailed prior: clouds get the freedom they need
+    without loosening the prior over the smooth rest of the sky.
+    """
+    lc, bc = grid.pixel_centres(pixels)
+    pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(
+        cKDTree(unit_vectors(l, b)), chord(3 * sky_deg), output_type="coo_matrix")
+    ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
+    w = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[pairs.col]
+    num = np.bincount(pairs.row, w * rel_excess[pairs.col], minlength=pixels.size)
+    den = np.bincount(pairs.row, w, minlength=pixels.size)
+    return np.minimum(np.sqrt(1.0 + num / (den + prior_weight) / amplitude**2), cap)
+
+
+def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0):
+    """Local variance the cells miss (npix, n_edges), from held-out tracers' excess squared residuals.
+
+    Each tracer's excess (its held-out squared residual beyond the predicted variance)
+    spreads over nodes within a Gaussian of ``sky_deg`` on the sky and ``depth`` in log
+    distance, averaged with ``prior_weight`` tracers' worth of zero (so a lone miss does
+    not inflate a whole region). Zero far from tracers, where the prior's spread rules.
+    """
+    e = grid.distance_edges
+    lc, bc = grid.pixel_centres()
+    tree = cKDTree(unit_vectors(l, b))
+    pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(tree, chord(3 * sky_deg), output_type="coo_matrix")
+    pix, tr = pairs.row, pairs.col
+    ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
+    w_sky = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[tr]
+    out = np.zeros((grid.npix, e.size))
+    for j in range(1, e.size):  # one pass per distance edge, vectorised over pixel-tracer pairs
+        w = w_sky * np.exp(-0.5 * (np.log(e[j] / d[tr]) / depth) ** 2)
+        num = np.bincount(pix, w * excess[tr], minlength=grid.npix)
+        den = np.bincount(pix, w, minlength=grid.npix)
+        out[:, j] = num / (den + prior_weight)
+    return out
+
+
+_STATE_ARRAYS = ("av_", "av_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
+                 "differential_", "samples_", "active_pixels_", "boost_")
+_STATE_SCALARS = ("amplitude_", "length_", "tau_")
+
+
+def density_state(model):
+    """Everything a fitted :class:`DensityModel` needs to answer, as plain numbers and arrays."""
+    model.check_fitted()
+    g = model.grid_
+    t = model.tracers_
+    params = {k: v for k, v in model.get_params().items() if k not in ("quiet",)}
+    params = {k: (np.asarray(getattr(v, "value", v), float).tolist() if k in ("distance_max", "distance_edges",
+              "amplitudes", "lengths", "active_radius") and v is not None else v) for k, v in params.items()}
+    return {
+        "kind": "density",
+        "params": params,
+        "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
+        "layer": {**model.layer_.as_dict(), "scatter": model.layer_.scatter, "n_used": model.layer_.n_used,
+                  "covariance": np.asarray(model.layer_.covariance, float)},
+        "scalars": {k: float(getattr(model, k)) for k in _STATE_SCALARS},
+        "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
+        "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
+        "tracer_info": {"law": t.law, "rv": float(t.rv)},
+        "report": dict(getattr(model, "build_report_", {})),
+        "cv": model.cv_.copy() if hasattr(model, "cv_") else None,
+    }
+
+
+def density_from_state(state):
+    """Rebuild a fitted :class:`DensityModel` from :func:`density_state` output (answers bit for bit)."""
+    from ..tracers import TracerSet
+
+    p = dict(state["params"])
+    m = DensityModel(**{k: v for k, v in p.items() if k in DensityModel.param_names()})
+    g = state["grid"]
+    m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
+    lay = state["layer"]
+    m.layer_ = DustLayer(
+        a0=float(lay["a0"]), h=float(lay["h"]), z_sun=float(lay["z_sun"]),
+        a0_err=float(lay["a0_err"]), h_err=float(lay["h_err"]), z_sun_err=float(lay["z_sun_err"]),
+        scatter=float(lay.get("scatter", 0.0)), n_used=int(lay.get("n_used", 0)),
+        covariance=np.asarray(lay.get("covariance", np.zeros((3, 3))), float))
+    for k, v in state["scalars"].items():
+        setattr(m, k, float(v))
+    for k, v in state["arrays"].items():
+        setattr(m, k, np.asarray(v))
+    tr, info = state["tracers"], state["tracer_info"]
+    m.tracers_ = TracerSet.from_arrays(tr["l"], tr["b"], tr["distance"], tr["distance_err"], tr["av"], tr["av_err"],
+                                       name=tr.get("name"), law=info["law"], rv=info["rv"])
+    m.build_report_ = dict(state.get("report") or {})
+    if state.get("cv") is not None:
+        m.cv_ = state["cv"]
+    return m

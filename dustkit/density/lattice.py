@@ -68,7 +68,7 @@ class Lattice:
         Correlation length ``L`` (pc).
     """
 
-    def __init__(self, grid, pixels, amplitude, length):
+    def __init__(self, grid, pixels, amplitude, length, boost=None):
         self.grid = grid
         self.pixels = np.asarray(pixels, np.int64)
         self.amplitude = float(amplitude)
@@ -83,6 +83,9 @@ class Lattice:
         self.phi = np.exp(-spacing / self.length)
         self.phi[0] = 0.0
         self.innov = np.sqrt(1.0 - self.phi**2) * self.amplitude
+        # per-pixel factor on the amplitude (>= 1 where tracers show more structure than the
+        # rest of the sky): a cell of pixel p has prior standard deviation s * boost[p]
+        self.boost = np.ones(self.n_pix) if boost is None else np.asarray(boost, float)
         self.kernels = self._sky_kernels(unit_vectors(lc, bc))
 
     @property
@@ -134,8 +137,8 @@ class Lattice:
     def forward(self, xi):
         """``f = T xi``; ``xi`` of shape (n_bins, n_pix) or (n_bins, n_pix, m)."""
         step = self._apply_kernels(xi)
-        scale = self.innov.reshape(-1, *([1] * (xi.ndim - 1)))
-        step *= scale
+        step *= self.innov.reshape(-1, *([1] * (xi.ndim - 1)))
+        step *= self.boost.reshape(1, -1, *([1] * (xi.ndim - 2)))
         for k in range(1, self.n_bins):  # the AR(1) recursion along the sight lines
             step[k] += self.phi[k] * step[k - 1]
         return step
@@ -146,6 +149,7 @@ class Lattice:
         for k in range(self.n_bins - 2, -1, -1):
             u[k] += self.phi[k + 1] * u[k + 1]
         u *= self.innov.reshape(-1, *([1] * (y.ndim - 1)))
+        u *= self.boost.reshape(1, -1, *([1] * (y.ndim - 2)))
         return self._apply_kernels(u, transpose=True)
 
     def bin_correlation(self):

@@ -106,7 +106,7 @@ class Posterior:
     xi: np.ndarray          # white-noise coordinates at the mode (n_bins, n_pix)
     f: np.ndarray           # log-density contrast at the mode
     jac: sparse.csr_matrix  # d(mean A_i)/d f at the mode (n, n_bins * n_pix)
-    fisher: np.ndarray      # per-tracer weight of the Laplace approximation (1/mag^2)
+    fisher: np.ndarray      # per-tracer curvature weight of the Laplace approximation (1/mag^2)
     predicted: np.ndarray   # mean A_i at the mode
     iterations: int
     converged: bool
@@ -205,7 +205,9 @@ def fit_posterior(lattice, terms, tau, xi0=None, max_iter=12, cg_tol=1e-2, cg_it
             converged = True
             break
     z2 = r**2 / var
-    fisher = terms.weight * (NU + 1.0) / (NU + 3.0) / var
+    # curvature of the Student-t term at the mode in its Gauss-Newton form (the IRLS weight):
+    # an outlier (large z) informs the posterior less, a well-fitted tracer as a Gaussian would
+    fisher = terms.weight * (NU + 1.0) / (NU + z2) / var
     fisher = np.where(terms.censored & (r == 0), 0.0, fisher)
     jac = _jacobian(lattice, terms, g)
     return Posterior(xi, f, jac, fisher, mean, it, converged)
