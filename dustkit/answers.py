@@ -33,7 +33,7 @@ from astropy.table import QTable, Table
 from ._lib import healpix
 from ._lib.sky import separation_deg
 from ._lib.validation import check_real, param_error, to_value
-from .build.calibration import predictive_variance
+from .binned.calibration import predictive_variance
 
 __all__ = [
     "CAUTION",

@@ -44,7 +44,7 @@ from astropy.table import Table
 
 from .exceptions import DustkitError, ModelFileError
 from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
-from .build.finish import empty_pixel_fill
+from .binned.finish import empty_pixel_fill
 from ._lib.validation import check_choice
 
 __all__ = [
@@ -130,20 +130,47 @@ def _stored_pixels(model):
 
 
 def _model_hdus(model):
+    """The HDUs of a model file, in file order: primary, SKYMODEL, DISTANCE_EDGES, STATE, TRACERS, CV."""
     from astropy.io import fits
 
     from .model import model_state
 
     state = model_state(model)
+    version = _version()
+    tmeta = state["tracer_info"].get("meta") or {}
+    sky, edges = _sky_hdu(model, state, version), _edges_hdu(model.grid_)
+    st, trh = _state_hdu(model, state), _tracers_hdu(model, state)
+    hdus = [fits.PrimaryHDU(), sky, edges, st, trh]
+    ph = hdus[0].header
+    ph["DKFILE"] = (MODEL_FILE_KIND, "dustkit file kind")
+    ph["DKFORMAT"] = (_FORMAT_VERSION, "dustkit model file layout version")
+    ph["DUSTKIT"] = (version, "dustkit version that wrote the file")
+    ph["CATSHA"] = str(tmeta.get("sha256", ""))
+    ph.add_comment("Extinction estimates from a model are statistical; check them against local data.")
+
+    cv = state.get("cv")
+    if cv is not None and len(cv):
+        cvt = Table(cv)
+        scheme = cvt.meta.pop("validation", None)
+        cvt.meta.clear()
+        cvh = fits.table_to_hdu(cvt)
+        cvh.name = "CV"
+        if scheme:
+            cvh.header["CVSCHEME"] = str(scheme)  # how the smoothing was chosen
+        hdus.append(cvh)
+    return fits.HDUList(hdus)
+
+
+def _sky_hdu(model, state, version):
+    """SKYMODEL: one row per stored pixel, HEALPix keywords, and the record a reader of the header needs."""
+    from astropy.io import fits
+
     g = model.grid_
     lay = state["layer"]
     sc = state["scatter"]
     scal = state["scalars"]
-    params = state["params"]
     info = state["tracer_info"]
     tmeta = info.get("meta") or {}
-    version = _version()
-
     pixels = _stored_pixels(model)
     full = pixels.size == g.npix
     E, B = g.n_edges, g.n_bins
@@ -197,12 +224,29 @@ def _model_hdus(model):
     h["CATSHA"] = str(tmeta.get("sha256", ""))  # SHA-256 of the input catalogue
     h["CATSHAOF"] = (str(tmeta.get("sha256_of", "")), "what CATSHA is a checksum of")
     h.add_comment("Cumulative A_V (mag) per pixel at each distance edge (DISTANCE_EDGES extension).")
+    return sky
+
+
+def _edges_hdu(g):
+    from astropy.io import fits
 
     edges = fits.BinTableHDU.from_columns(
         [fits.Column(name="DISTANCE", format="D", unit="pc", array=g.distance_edges)], name="DISTANCE_EDGES"
     )
-    edges.header["NEDGES"] = E
+    edges.header["NEDGES"] = g.n_edges
+    return edges
 
+
+def _state_hdu(model, state):
+    """STATE: the exact float64 scalars (layer, scatter calibration, smoothing) and the constructor parameters."""
+    from astropy.io import fits
+
+    g = model.grid_
+    lay = state["layer"]
+    sc = state["scatter"]
+    scal = state["scalars"]
+    params = state["params"]
+    info = state["tracer_info"]
     # exact scalars (header floats may be rounded to 20 characters)
     values = {
         "a0": lay["a0"], "a0_err": lay["a0_err"], "h": lay["h"], "h_err": lay["h_err"],
@@ -227,7 +271,15 @@ def _model_hdus(model):
     sh["P_SEED"] = (-1 if params["random_state"] is None else int(params["random_state"]), "constructor parameter")
     sh["P_PASSES"] = (",".join(str(int(p)) for p in params["sky_passes"]), "constructor parameter")
     sh["LAW"] = str(info["law"])
+    return st
 
+
+def _tracers_hdu(model, state):
+    """TRACERS: the tracers the model was built from, with their metadata."""
+    from astropy.io import fits
+
+    info = state["tracer_info"]
+    tmeta = info.get("meta") or {}
     tr = state["tracers"]
     names = np.char.encode(np.asarray(tr["name"]).astype(str), "utf-8")  # FITS strings are bytes
     tcols = [fits.Column(name="NAME", format=f"{max(1, names.dtype.itemsize)}A", array=names)]
@@ -247,26 +299,7 @@ def _model_hdus(model):
     th["CATSHA"] = str(tmeta.get("sha256", ""))
     th["CATSHAOF"] = str(tmeta.get("sha256_of", ""))
     th["TRMETA"] = json.dumps(_jsonable(tmeta), ensure_ascii=True)  # tracer-set metadata (JSON); long: no comment
-
-    hdus = [fits.PrimaryHDU(), sky, edges, st, trh]
-    ph = hdus[0].header
-    ph["DKFILE"] = (MODEL_FILE_KIND, "dustkit file kind")
-    ph["DKFORMAT"] = (_FORMAT_VERSION, "dustkit model file layout version")
-    ph["DUSTKIT"] = (version, "dustkit version that wrote the file")
-    ph["CATSHA"] = str(tmeta.get("sha256", ""))
-    ph.add_comment("Extinction estimates from a model are statistical; check them against local data.")
-
-    cv = state.get("cv")
-    if cv is not None and len(cv):
-        cvt = Table(cv)
-        scheme = cvt.meta.pop("validation", None)
-        cvt.meta.clear()
-        cvh = fits.table_to_hdu(cvt)
-        cvh.name = "CV"
-        if scheme:
-            cvh.header["CVSCHEME"] = str(scheme)  # how the smoothing was chosen
-        hdus.append(cvh)
-    return fits.HDUList(hdus)
+    return trh
 
 
 def _jsonable(obj):
@@ -406,6 +439,29 @@ def load_model(path):
         raise _bad_file(path, f"{type(exc).__name__}: {exc}") from None
 
 
+def _stored_sky(path, sh, sky, grid):
+    """The pixels stored in SKYMODEL (explicit or implicit index) and their arrays by model attribute."""
+    scheme = str(sh.get("INDXSCHM", "")).upper()
+    if scheme == "EXPLICIT":
+        pixels = np.asarray(sky["PIXEL"], dtype=np.int64)
+    elif scheme == "IMPLICIT":
+        first, last = int(sh.get("FIRSTPIX", 0)), int(sh.get("LASTPIX", grid.npix - 1))
+        pixels = np.arange(first, last + 1)
+    else:
+        raise _bad_file(path, f"keyword INDXSCHM is {scheme!r}, expected 'EXPLICIT' or 'IMPLICIT'")
+    if pixels.size != len(sky) or (pixels.size and (pixels.min() < 0 or pixels.max() >= grid.npix)):
+        raise _bad_file(path, f"its pixel list does not fit NSIDE {grid.nside} ({len(sky)} rows)")
+    stored = {}
+    for name, attr, kind, _ in _SKY_COLUMNS:
+        col = np.asarray(sky[name])
+        n = grid.n_edges if kind == "edge" else grid.n_bins
+        col = col.reshape(len(sky), -1)
+        if col.shape[1] != n:
+            raise _bad_file(path, f"column {name} has {col.shape[1]} values per pixel, expected {n}")
+        stored[attr] = col
+    return pixels, stored
+
+
 def _model_from_parts(path, parts):
     from .model import model_from_state
 
@@ -441,24 +497,7 @@ def _model_from_parts(path, parts):
                for name in stt.columns.names if name.startswith("SCATTER_")}
     if not scatter:
         raise _bad_file(path, "its STATE extension has no scatter calibration")
-    scheme = str(sh.get("INDXSCHM", "")).upper()
-    if scheme == "EXPLICIT":
-        pixels = np.asarray(sky["PIXEL"], dtype=np.int64)
-    elif scheme == "IMPLICIT":
-        first, last = int(sh.get("FIRSTPIX", 0)), int(sh.get("LASTPIX", grid.npix - 1))
-        pixels = np.arange(first, last + 1)
-    else:
-        raise _bad_file(path, f"keyword INDXSCHM is {scheme!r}, expected 'EXPLICIT' or 'IMPLICIT'")
-    if pixels.size != len(sky) or (pixels.size and (pixels.min() < 0 or pixels.max() >= grid.npix)):
-        raise _bad_file(path, f"its pixel list does not fit NSIDE {nside} ({len(sky)} rows)")
-    stored = {}
-    for name, attr, kind, _ in _SKY_COLUMNS:
-        col = np.asarray(sky[name])
-        n = grid.n_edges if kind == "edge" else grid.n_bins
-        col = col.reshape(len(sky), -1)
-        if col.shape[1] != n:
-            raise _bad_file(path, f"column {name} has {col.shape[1]} values per pixel, expected {n}")
-        stored[attr] = col
+    pixels, stored = _stored_sky(path, sh, sky, grid)
 
     th, trd = parts["TRACERS"]
     tracers = {k: np.asarray(trd[k.upper()], float) for k in _TRACER_FLOATS if k.upper() in trd.columns.names}

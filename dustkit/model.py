@@ -13,7 +13,7 @@ How a model is built (``ExtinctionModel.fit``):
    statistics of the model. Monte Carlo draws are split between the two edges around
    them with linear (cloud-in-cell) weights and spread bilinearly over the 4 nearest
    pixels; in the bin-scatter scheme each tracer goes whole to its own pixel and nearest
-   edge, in one fast pass (:mod:`dustkit.build.statistics`).
+   edge, in one fast pass (:mod:`dustkit.binned.statistics`).
 4. Smooth the statistics on the sky with a neighbour kernel (HEALPix 8-neighbours,
    repeated passes) and combine along each sight line with a random-walk state-space model
    of the cumulative residual (Kalman filter + Rauch-Tung-Striebel smoother; Rauch, Tung &
@@ -40,7 +40,7 @@ This module is the estimator facade: parameters (read from the constructor signa
 :meth:`ExtinctionModel.get_params`), :meth:`~ExtinctionModel.fit`, the public seam
 :meth:`~ExtinctionModel.fit_statistics` that both ``fit`` and the chunked builds of
 :mod:`dustkit.scale` finish through, and the answers, which live in :mod:`dustkit.answers`.
-The build steps live in :mod:`dustkit.build`.
+The build steps live in :mod:`dustkit.binned`.
 """
 
 import inspect
@@ -53,9 +53,9 @@ from astropy.table import QTable
 from ._lib.progress import progress
 from ._lib.validation import check_choice, check_int, to_value
 from .answers import CAUTION, av_quantities, binned_av, profile_table, query_table, sky_positions
-from .build.finish import finish
-from .build.folds import HELDOUT_MAX, HeldOut, fold_of_rows, heldout_rows
-from .build.statistics import Statistics, monte_carlo_statistics, nominal_statistics, tracer_counts
+from .binned.finish import finish
+from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_rows, heldout_rows
+from .binned.statistics import Statistics, monte_carlo_statistics, nominal_statistics, tracer_counts
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
 from .layer import DustLayer, fit_layer
@@ -269,12 +269,12 @@ class ExtinctionModel:
 
         Parameters
         ----------
-        statistics : dustkit.build.statistics.Statistics
+        statistics : dustkit.binned.statistics.Statistics
             Sums over all tracers (``total``), over each fold's held-out tracers
             (``fold_stats``) and tracer counts, on ``plan.grid``.
         layer : DustLayer
             The smooth layer the residuals were taken from.
-        heldout : dustkit.build.folds.HeldOut
+        heldout : dustkit.binned.folds.HeldOut
             The held-out tracers (plain arrays) and their folds.
         plan : FitPlan
             From :meth:`fit_plan`.

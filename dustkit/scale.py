@@ -20,7 +20,7 @@ Pass 1 (sample)
 Pass 2 (sufficient statistics)
     Every chunk adds its tracers to the sums of weights and weighted residuals from the
     layer per (pixel, distance edge), and its held-out rows to the held-out sums, with the
-    model's own per-tracer step (:func:`dustkit.build.statistics.nominal_statistics`, as in
+    model's own per-tracer step (:func:`dustkit.binned.statistics.nominal_statistics`, as in
     :meth:`ExtinctionModel.fit`). Neither depends on the chunking or on which worker reads
     a chunk. Chunks are processed by dask: one
     task per chunk, in as many parallel chains as there are threads (each chain adds its
@@ -73,8 +73,8 @@ from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
 from .tracers.rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law, chunk_reasons, validate_rows
-from .build.folds import HeldOut, fold_of_rows, row_hash, seed_of
-from .build.statistics import Statistics, nominal_statistics
+from .binned.folds import HeldOut, fold_of_rows, row_hash, seed_of
+from .binned.statistics import Statistics, nominal_statistics
 from .model import ExtinctionModel
 
 __all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
@@ -99,7 +99,7 @@ _EXAMPLES_PER_REASON = 5
 
 # ----------------------------------------------------------------------------- row hashing
 
-# row hashing and folds: dustkit.build.folds (row_hash, fold_of_rows), shared with ExtinctionModel.fit
+# row hashing and folds: dustkit.binned.folds (row_hash, fold_of_rows), shared with ExtinctionModel.fit
 
 
 # ----------------------------------------------------------------------------- reading chunks
@@ -556,28 +556,14 @@ def build_from_parquet(
     in-memory build. Rows are numbered in file order across the sorted files; rejected
     rows are reported with a :class:`~dustkit.exceptions.RowsRejectedWarning`.
     """
-    unknown = sorted(set(model_params) - set(_MODEL_PARAMS))
-    if unknown:
-        raise param_error(unknown[0], f"one of the model parameters {', '.join(_MODEL_PARAMS)}", model_params[unknown[0]])
-    scheme = model_params.pop("uncertainty", "bin-scatter")
-    if scheme not in ("bin-scatter", "auto"):
-        raise param_error(
-            "uncertainty",
-            "'bin-scatter' for out-of-core builds (per-tracer Monte Carlo draws are for in-memory "
-            "catalogues: use ExtinctionModel.fit)",
-            scheme,
-        )
+    _check_model_params(model_params)
     chunk_size = check_int("chunk_size", chunk_size, 1, 2**40)
     layer_sample = check_int("layer_sample", layer_sample, 10, 2**40)
     heldout_sample = check_int("heldout_sample", heldout_sample, 10, 2**40)
     if layer is not None and not isinstance(layer, DustLayer):
         raise param_error("layer", "a DustLayer (e.g. another model's layer_)", type(layer).__name__)
     law, rv = check_law(law, float(rv))
-    cols = dict(DEFAULT_COLUMNS)
-    if columns is not None:
-        if not isinstance(columns, dict) or set(columns) - set(_ROLES):
-            raise param_error("columns", f"a dict with keys among {', '.join(_ROLES)}", columns)
-        cols.update(columns)
+    cols = _columns(columns)
 
     model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
     grid = model.make_grid()
@@ -592,14 +578,7 @@ def build_from_parquet(
     n_chains = _n_chains(client, stats_bytes, len(chunks))
 
     # pass 1: validate, count, sample
-    clock = [time.perf_counter()]
-    seconds = {}
-
-    def lap(name):
-        now = time.perf_counter()
-        seconds[name] = now - clock[0]
-        clock[0] = now
-
+    lap = _Clock()
     k = max(layer_sample, heldout_sample)
     p1 = _run_chains(
         _pass1_link, functools.partial(_pass1_combine, k), chunks,
@@ -617,60 +596,12 @@ def build_from_parquet(
             + (f" (rejected: {_reason_text(p1['counts'])})" if n_rejected else "")
             + ". Hint: check the columns (columns={...}) and their units."
         )
-    if n_rejected:
-        warnings.warn(
-            f"{n_rejected} of {n_rows} rows rejected: {_reason_text(p1['counts'])}. "
-            "See model.build_info_['rejected_examples'] for examples.",
-            RowsRejectedWarning,
-            stacklevel=2,
-        )
-
-    if any(kind == "parquet" for kind, _ in files):
-        warnings.warn(
-            "Parquet columns carry no units: took l and b in deg, distance and distance_err in pc, "
-            "av and av_err in mag. Hint: convert the columns before the build if they are in other units.",
-            AssumptionWarning,
-            stacklevel=2,
-        )
-    filled = {r: c for r, c in p1["defaults"].items() if c}
-    if filled:
-        warnings.warn(
-            "; ".join(
-                f"{c} rows have a missing or zero {r!s} ({cols[r]!r}); used "
-                + (f"{100 * DEFAULT_DISTANCE_FRAC_ERR:g}% of the distance" if r == "distance_err"
-                   else f"{rv * DEFAULT_EXCESS_ERR:.3g} mag")
-                for r, c in filled.items()
-            ) + " (the defaults of read_tracers).",
-            AssumptionWarning,
-            stacklevel=2,
-        )
-
-    # the sample in catalogue order: the layer's tracers and the held-out tracers
-    s = p1["sample"]
-    gidx = offsets[s["chunk"]] + s["local"]
-    by_key = np.argsort(s["key"], kind="stable")
-    layer_rows = np.sort(gidx[by_key[:layer_sample]])
-    # every row held out once (K-fold) when the catalogue fits in the held-out sample; else
-    # one held-out set of the first rows of the sample (at most a fold's worth)
+    filled = _announce(p1, n_rows - n_used, n_rows, files, cols, rv)
     k_fold = n_used <= heldout_sample
-    held_rows = np.sort(gidx[by_key[:n_used if k_fold else min(heldout_sample, n_used // n_folds)]])
-    order = np.argsort(gidx)
-    gidx_sorted = gidx[order]
-    data = s["data"][:, order]
-    file_row = s["file_row"][order]
+    layer_rows, held_rows, gidx_sorted, data, file_row = _sample_rows(
+        p1["sample"], offsets, layer_sample, n_used if k_fold else min(heldout_sample, n_used // n_folds))
 
-    from .tracers import TracerSet
-
-    def sample_set(rows):
-        pos = np.searchsorted(gidx_sorted, rows)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # rows were validated above; defaults already applied
-            return TracerSet.from_arrays(*data[:, pos], name=np.char.add("row ", file_row[pos].astype(str)),
-                                         law=law, rv=rv), pos
-
-    layer_set, _ = sample_set(layer_rows)
-    if len(layer_set) != layer_rows.size:
-        raise RuntimeError("internal error: the sample changed on re-validation")  # pragma: no cover
+    layer_set = _sample_set(layer_rows, gidx_sorted, data, file_row, law, rv)
     layer_given = layer is not None
     if layer is None:
         layer = fit_layer(layer_set, random_state=model.random_state)
@@ -686,10 +617,8 @@ def build_from_parquet(
     lap("pass 2 (sufficient statistics)")
 
     # finish exactly as in memory, on the held-out rows
-    pos = np.searchsorted(gidx_sorted, held_rows)
-    hl, hb, hd, hde, hav, hae = data[:, pos]
     held_fold = fold_of_rows(held_rows, n_folds, seed) if k_fold else np.zeros(held_rows.size, dtype=np.int64)
-    heldout = HeldOut(hl, hb, hd, hde, hav, hae, held_fold)
+    heldout = HeldOut(*data[:, np.searchsorted(gidx_sorted, held_rows)], held_fold)
     plan = model.fit_plan(n_used)
     rng = np.random.default_rng(model.random_state)
     statistics = Statistics(*sums)
@@ -716,9 +645,107 @@ def build_from_parquet(
         "heldout_rows": held_rows,
         "layer_given": layer_given,
         "scheduler": "distributed" if client is not None else "threads",
-        "seconds": seconds,
+        "seconds": lap.seconds,
     }
     return model
+
+
+class _Clock:
+    """Wall time of each step: ``lap(name)`` records the time since the previous lap."""
+
+    def __init__(self):
+        self.seconds = {}
+        self._last = time.perf_counter()
+
+    def __call__(self, name):
+        now = time.perf_counter()
+        self.seconds[name] = now - self._last
+        self._last = now
+
+
+def _sample_set(rows, gidx_sorted, data, file_row, law, rv):
+    """The sample's rows ``rows`` (positions among the accepted rows) as a TracerSet named by file row."""
+    from .tracers import TracerSet
+
+    pos = np.searchsorted(gidx_sorted, rows)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # rows were validated above; defaults already applied
+        ts = TracerSet.from_arrays(*data[:, pos], name=np.char.add("row ", file_row[pos].astype(str)), law=law, rv=rv)
+    if len(ts) != rows.size:
+        raise RuntimeError("internal error: the sample changed on re-validation")  # pragma: no cover
+    return ts
+
+
+def _check_model_params(model_params):
+    """Refuse parameters the model does not take, and a scheme other than bin-scatter (removed from the dict)."""
+    unknown = sorted(set(model_params) - set(_MODEL_PARAMS))
+    if unknown:
+        raise param_error(unknown[0], f"one of the model parameters {', '.join(_MODEL_PARAMS)}", model_params[unknown[0]])
+    scheme = model_params.pop("uncertainty", "bin-scatter")
+    if scheme not in ("bin-scatter", "auto"):
+        raise param_error(
+            "uncertainty",
+            "'bin-scatter' for out-of-core builds (per-tracer Monte Carlo draws are for in-memory "
+            "catalogues: use ExtinctionModel.fit)",
+            scheme,
+        )
+
+
+def _columns(columns):
+    """Our column roles -> the file's names: the defaults updated by ``columns`` (checked)."""
+    cols = dict(DEFAULT_COLUMNS)
+    if columns is not None:
+        if not isinstance(columns, dict) or set(columns) - set(_ROLES):
+            raise param_error("columns", f"a dict with keys among {', '.join(_ROLES)}", columns)
+        cols.update(columns)
+    return cols
+
+
+def _announce(p1, n_rejected, n_rows, files, cols, rv):
+    """Warn once about rejected rows, unit assumptions and default errors; return the defaults used by role."""
+    if n_rejected:
+        warnings.warn(
+            f"{n_rejected} of {n_rows} rows rejected: {_reason_text(p1['counts'])}. "
+            "See model.build_info_['rejected_examples'] for examples.",
+            RowsRejectedWarning,
+            stacklevel=3,
+        )
+    if any(kind == "parquet" for kind, _ in files):
+        warnings.warn(
+            "Parquet columns carry no units: took l and b in deg, distance and distance_err in pc, "
+            "av and av_err in mag. Hint: convert the columns before the build if they are in other units.",
+            AssumptionWarning,
+            stacklevel=3,
+        )
+    filled = {r: c for r, c in p1["defaults"].items() if c}
+    if filled:
+        warnings.warn(
+            "; ".join(
+                f"{c} rows have a missing or zero {r!s} ({cols[r]!r}); used "
+                + (f"{100 * DEFAULT_DISTANCE_FRAC_ERR:g}% of the distance" if r == "distance_err"
+                   else f"{rv * DEFAULT_EXCESS_ERR:.3g} mag")
+                for r, c in filled.items()
+            ) + " (the defaults of read_tracers).",
+            AssumptionWarning,
+            stacklevel=3,
+        )
+    return filled
+
+
+def _sample_rows(s, offsets, layer_sample, n_held):
+    """The sample in catalogue order: the layer's rows, the held-out rows and the sample's arrays.
+
+    Both row sets are positions among the accepted rows: the ``layer_sample`` and the
+    ``n_held`` rows of the sample with the smallest hash keys, sorted. Every row is held out
+    (K-fold) when the catalogue fits in the held-out sample; otherwise one held-out set of
+    the first rows of the sample (at most a fold's worth).
+    """
+    gidx = offsets[s["chunk"]] + s["local"]
+    by_key = np.argsort(s["key"], kind="stable")
+    layer_rows = np.sort(gidx[by_key[:layer_sample]])
+    held_rows = np.sort(gidx[by_key[:n_held]])
+    order = np.argsort(gidx)
+    return layer_rows, held_rows, gidx[order], s["data"][:, order], s["file_row"][order]
 
 
 def build_from_fits(path, *, hdu=None, **kwargs):

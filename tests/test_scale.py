@@ -18,8 +18,8 @@ from astropy.table import Table
 from dustkit import CatalogError, ParameterError
 from dustkit._errors import AssumptionWarning, RowsRejectedWarning
 from dustkit.layer import fit_layer
-from dustkit.build.folds import HeldOut
-from dustkit.build.statistics import nominal_statistics
+from dustkit.binned.folds import HeldOut
+from dustkit.binned.statistics import nominal_statistics
 from dustkit.model import ExtinctionModel
 from dustkit.scale import build_from_fits, build_from_parquet, fold_of_rows
 from dustkit.tracers.rules import validate_rows as _validate

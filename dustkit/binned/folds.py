@@ -1,6 +1,6 @@
 """Folds and held-out rows: which tracers validate the smoothing and calibrate the errors.
 
-The bottom of :mod:`dustkit.build`: plain numpy, nothing imported from the rest of the
+The bottom of :mod:`dustkit.binned`: plain numpy, nothing imported from the rest of the
 model. The in-memory fit and the chunked builds of :mod:`dustkit.scale` both take their
 folds from here, so the same tracers give the same model whichever way they are read.
 """

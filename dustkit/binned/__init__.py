@@ -8,7 +8,7 @@ Modules, from the bottom up (each imports only the ones above it in this list, p
 ``smoothing``    sky kernels, distance kernel, Kalman/RTS smoother along sight lines
 ``crossval``     predictions at held-out tracers and the choice of the smoothing
 ``calibration``  the predictive variance and its maximum-likelihood calibration
-``finish``       statistics -> :class:`~dustkit.build.finish.FitResult`; the empty-pixel fill
+``finish``       statistics -> :class:`~dustkit.binned.finish.FitResult`; the empty-pixel fill
 
 Nothing here knows about the estimator facade, files, figures or widgets.
 """

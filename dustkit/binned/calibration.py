@@ -29,7 +29,7 @@ def calibrate_on_heldout(rows, layer, setting, rng, max_tracers=5000):
     predicted from its fold's training tracers with the chosen ``setting`` (sky passes,
     distance kernel, walk strength), integrating over its distance uncertainty with
     7 Gauss-Hermite nodes in log distance. ``rows`` is a
-    :class:`dustkit.build.crossval.HeldOutRows`.
+    :class:`dustkit.binned.crossval.HeldOutRows`.
     """
     h = rows.heldout
     l, b, d, de, fold = h.l, h.b, h.distance, h.distance_err, h.fold

@@ -103,11 +103,11 @@ def finish(grid, layer, statistics, passes, heldout, rng):
     ----------
     grid : Grid
     layer : DustLayer
-    statistics : dustkit.build.statistics.Statistics
+    statistics : dustkit.binned.statistics.Statistics
         ``total`` and ``fold_stats`` are used (``counts`` are the caller's).
     passes : list of int
         Candidate numbers of sky-smoothing passes, sorted.
-    heldout : dustkit.build.folds.HeldOut
+    heldout : dustkit.binned.folds.HeldOut
         The held-out tracers, one fold each (fold ``f`` is predicted from
         ``total - fold_stats[:, f]``).
     rng : numpy.random.Generator

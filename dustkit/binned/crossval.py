@@ -44,7 +44,7 @@ class HeldOutRows:
     Parameters
     ----------
     grid : Grid
-    heldout : dustkit.build.folds.HeldOut
+    heldout : dustkit.binned.folds.HeldOut
     active : ndarray of int
         Pixels within reach of the tracers through the widest sky kernel.
     total, fold_stats : ndarray
