@@ -352,8 +352,31 @@ def save_model(model, path, overwrite=False):
     (PIXTYPE, ORDERING, COORDSYS='G', NSIDE, INDXSCHM; Gorski et al. 2005).
     """
     model.check_fitted()
-    hdul = _model_hdus(model)
+    hdul = _density_hdul(model) if _is_density(model) else _model_hdus(model)
     return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
+
+
+def _is_density(model):
+    from .density import DensityModel
+
+    return isinstance(model, DensityModel)
+
+
+def _density_hdul(model):
+    """A density model file: the same primary keywords, the density layout (dustkit.density.files)."""
+    from astropy.io import fits
+
+    from .density.files import MODEL_KIND, density_hdus
+
+    primary = fits.PrimaryHDU()
+    ph = primary.header
+    ph["DKFILE"] = (MODEL_FILE_KIND, "dustkit file kind")
+    ph["DKFORMAT"] = (_FORMAT_VERSION, "dustkit model file layout version")
+    ph["DKMODEL"] = (MODEL_KIND, "which dustkit model")
+    ph["DUSTKIT"] = (_version(), "dustkit version that wrote the file")
+    ph["LAW"], ph["RV"] = str(model.law), float(model.rv)
+    ph.add_comment("Extinction estimates from a model are statistical; check them against local data.")
+    return fits.HDUList([primary, *density_hdus(model)])
 
 
 def _bad_file(path, why, hint=None):
@@ -432,6 +455,10 @@ def load_model(path):
         damaged = [str(w.message) for w in caught if "checksum" in str(w.message).lower() or "datasum" in str(w.message).lower()]
         if damaged:
             raise _bad_file(path, f"its checksums do not match ({damaged[0].strip().rstrip('.')})")
+        if str(parts["STATE"][0].get("DKMODEL", "")) == "DENSITY":
+            from .density.files import density_from_parts
+
+            return density_from_parts(parts)
         return _model_from_parts(path, parts)
     except DustkitError:
         raise

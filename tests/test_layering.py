@@ -43,6 +43,7 @@ LAYERS = [
     ("dustkit.laws", "dustkit.bands", "dustkit.grid", "dustkit.layer", "dustkit.tracers"),
     ("dustkit.binned",),
     ("dustkit.answers",),
+    ("dustkit.density",),  # the 3-D density model: answers through dustkit.answers
     ("dustkit.model",),
     ("dustkit.features",),
     ("dustkit.io", "dustkit.scale"),
