@@ -18,6 +18,7 @@ from .exceptions import (  # noqa: F401
     ModelNotFittedError,
     ParameterError,
 )
+from .answers import estimate_targets  # noqa: F401
 from .bands import av_to_band, excess_to_av, get_band  # noqa: F401
 from .laws import get_law, list_laws  # noqa: F401
 from .layer import DustLayer, fit_layer  # noqa: F401
@@ -38,6 +39,7 @@ __all__ = [
     "__version__",
     "read_tracers",
     "read_targets",
+    "estimate_targets",
     "ExtinctionModel",
     "fit_layer",
     "DustLayer",

@@ -268,17 +268,7 @@ class Explorer:
         ]:
             w.add_class(css)
 
-        # figures (the sky extent is fixed by the tracers' positions, so the view is stable)
-        self.sky_extent = plotting.tracer_extent(base)
-        if self.sky_extent == "all-sky":
-            sky_size = (6.6, 4.0)
-        else:
-            sky_size = plotting.sky_figsize(self.sky_extent, width=6.6)
-        self.sky_fig, self._sky_view = self._new_figure(sky_size, "dustkit-sky")
-        self.profile_fig, self._profile_view = self._new_figure((6.6, 4.2), "dustkit-profile")
-        self.sky_ax = None
-        self.profile_ax = None
-        self._click_id = self.sky_fig.canvas.mpl_connect("button_press_event", self._on_sky_click)
+        self._build_figures(base)
 
         controls = W.VBox(
             [
@@ -300,6 +290,24 @@ class Explorer:
         self.panel = W.HBox([controls, figures], layout=W.Layout(align_items="flex-start"))
         self.panel.add_class("dustkit-explorer")
 
+        self._connect(base)
+
+    def _build_figures(self, base):
+        """The sky map and profile figures (the sky extent is fixed by the tracers, so the view is stable)."""
+        self.sky_extent = plotting.tracer_extent(base)
+        if self.sky_extent == "all-sky":
+            sky_size = (6.6, 4.0)
+        else:
+            sky_size = plotting.sky_figsize(self.sky_extent, width=6.6)
+        self.sky_fig, self._sky_view = self._new_figure(sky_size, "dustkit-sky")
+        self.profile_fig, self._profile_view = self._new_figure((6.6, 4.2), "dustkit-profile")
+        self.sky_ax = None
+        self.profile_ax = None
+        self._click_id = self.sky_fig.canvas.mpl_connect("button_press_event", self._on_sky_click)
+
+
+    def _connect(self, base):
+        """Wire the widgets to their callbacks (each runs inside the log Output area)."""
         self.law_widget.observe(self._on_law, "value")
         self.rv_widget.observe(self._on_rv, "value")
         self.rebuild_button.on_click(lambda _b: self._run(self._rebuild))
