@@ -211,7 +211,7 @@ class ClumpyField:
             rho = self._density(x.ravel(), y.ravel(), z.ravel()).reshape(r.shape)
             out[s:s + 2000] = rho.sum(axis=1) * db / max(n_steps, 1)
         for c in self.clouds:
-            sep = _separation_deg(l, b, c.l, c.b)
+            sep = separation_deg(l, b, c.l, c.b)
             out = out + c.av * np.exp(-0.5 * (sep / c.radius) ** 2) * ndtr((d - c.distance) / c.depth)
         return out.reshape(shape)
 

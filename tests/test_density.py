@@ -100,7 +100,9 @@ def test_duplicating_every_tracer_does_not_shrink_the_errors():
     l, b, d = np.full(50, 40.0), np.linspace(-5, 5, 50), np.full(50, 1500.0)
     e1 = once.av(l * u.deg, b * u.deg, d * u.pc)[1].value
     e2 = twice.av(l * u.deg, b * u.deg, d * u.pc)[1].value
-    assert np.median(e2 / e1) > 0.95
+    # without the duplicate weights the errors shrink by 1/sqrt(2) = 0.71 (common practice: n -> 2n);
+    # the draws add ~10% Monte Carlo noise to each variance
+    assert np.median(e2 / e1) > 0.85
 
 
 def test_duplicate_weights_group_near_copies():

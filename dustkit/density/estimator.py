@@ -156,10 +156,10 @@ class DensityModel:
         nside=32,
         distance_max=6000 * u.pc,
         distance_edges=None,
-        amplitudes=(0.15, 0.3, 0.6, 1.2),
+        amplitudes=(0.08, 0.2, 0.5, 1.2),
         lengths=(150,) * u.pc,
         n_folds=3,
-        n_samples=48,
+        n_samples=32,
         active_radius=4 * u.deg,
         random_state=0,
         quiet=None,
@@ -246,7 +246,7 @@ class DensityModel:
                     test = fold == k
                     if test.any() and not test.all():
                         post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4)
-                        xs = draw_samples(lat, post, 8, rng)
+                        xs = draw_samples(lat, post, 6, rng)
                         base[test], var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
                         resid[test] = av[test] - base[test]
                         pvar[test] = var + var_d

@@ -107,7 +107,9 @@ class Lattice:
         for w in np.unique(ladder):
             bins = np.nonzero(ladder == w)[0]
             k = self._kernel(tree, float(w))
-            self.groups.append((k, k.T.tocsr(), bins))
+            kt = k.T.tocsr()
+            # float32 copies serve the posterior draws, where single precision is ample
+            self.groups.append((k, kt, bins, k.astype(np.float32), kt.astype(np.float32)))
             for j in bins:
                 kernels[j] = k
         return kernels
@@ -128,28 +130,30 @@ class Lattice:
         """``G_k x_k`` (or ``G_k^T x_k``) for every bin, one sparse product per distinct kernel."""
         out = np.empty_like(x)
         tail = x.shape[2:]
-        for k, kt, bins in self.groups:
+        single = x.dtype == np.float32
+        for k, kt, bins, k32, kt32 in self.groups:
             block = np.moveaxis(x[bins], 0, 1).reshape(self.n_pix, -1)  # (P, bins * m)
-            res = (kt if transpose else k) @ block
+            op = (kt32 if transpose else k32) if single else (kt if transpose else k)
+            res = op @ block
             out[bins] = np.moveaxis(res.reshape(self.n_pix, bins.size, *tail), 1, 0)
         return out
 
     def forward(self, xi):
         """``f = T xi``; ``xi`` of shape (n_bins, n_pix) or (n_bins, n_pix, m)."""
         step = self._apply_kernels(xi)
-        step *= self.innov.reshape(-1, *([1] * (xi.ndim - 1)))
-        step *= self.boost.reshape(1, -1, *([1] * (xi.ndim - 2)))
+        step *= self.innov.reshape(-1, *([1] * (xi.ndim - 1))).astype(step.dtype)
+        step *= self.boost.reshape(1, -1, *([1] * (xi.ndim - 2))).astype(step.dtype)
         for k in range(1, self.n_bins):  # the AR(1) recursion along the sight lines
-            step[k] += self.phi[k] * step[k - 1]
+            step[k] += step.dtype.type(self.phi[k]) * step[k - 1]
         return step
 
     def adjoint(self, y):
         """``T^T y`` (the transpose of :meth:`forward`)."""
         u = y.copy()
         for k in range(self.n_bins - 2, -1, -1):
-            u[k] += self.phi[k + 1] * u[k + 1]
-        u *= self.innov.reshape(-1, *([1] * (y.ndim - 1)))
-        u *= self.boost.reshape(1, -1, *([1] * (y.ndim - 2)))
+            u[k] += u.dtype.type(self.phi[k + 1]) * u[k + 1]
+        u *= self.innov.reshape(-1, *([1] * (y.ndim - 1))).astype(u.dtype)
+        u *= self.boost.reshape(1, -1, *([1] * (y.ndim - 2))).astype(u.dtype)
         return self._apply_kernels(u, transpose=True)
 
     def bin_correlation(self):

@@ -145,17 +145,17 @@ def conjugate_gradient(apply, rhs, x0=None, tol=1e-4, max_iter=200):
     p = r.copy()
     axes = (0, 1)
     rr = np.sum(r * r, axis=axes)
-    stop = tol**2 * np.maximum(np.sum(rhs * rhs, axis=axes), 1e-300)
+    stop = tol**2 * np.maximum(np.sum(rhs * rhs, axis=axes), 1e-30)
     it = 0
     for it in range(1, max_iter + 1):
         if np.all(rr <= stop):
             break
         hp = apply(p)
-        alpha = rr / np.maximum(np.sum(p * hp, axis=axes), 1e-300)
+        alpha = rr / np.maximum(np.sum(p * hp, axis=axes), 1e-30)
         x += alpha * p
         r -= alpha * hp
         rr_new = np.sum(r * r, axis=axes)
-        p = r + (rr_new / np.maximum(rr, 1e-300)) * p
+        p = r + (rr_new / np.maximum(rr, 1e-30)) * p
         rr = rr_new
     return x, it
 
@@ -213,18 +213,23 @@ def fit_posterior(lattice, terms, tau, xi0=None, max_iter=12, cg_tol=1e-2, cg_it
     return Posterior(xi, f, jac, fisher, mean, it, converged)
 
 
-def draw_samples(lattice, post, n_samples, rng, cg_tol=3e-3, cg_iter=200):
-    """Samples of ``xi`` from the Laplace posterior (n_bins, n_pix, n_samples)."""
-    jac = post.jac
+def draw_samples(lattice, post, n_samples, rng, cg_tol=1e-2, cg_iter=200):
+    """Samples of ``xi`` from the Laplace posterior (n_bins, n_pix, n_samples).
+
+    The block of conjugate gradients runs in single precision (the draws are random to
+    begin with; the mode itself is found in double precision).
+    """
+    jac = post.jac.astype(np.float32)
     jac_t = jac.T.tocsr()
+    fisher = post.fisher.astype(np.float32)
     n = jac.shape[0]
-    eps_data = rng.standard_normal((n, n_samples)) * np.sqrt(post.fisher)[:, None]
-    eps_prior = rng.standard_normal((*lattice.shape, n_samples))
+    eps_data = (rng.standard_normal((n, n_samples)) * np.sqrt(post.fisher)[:, None]).astype(np.float32)
+    eps_prior = rng.standard_normal((*lattice.shape, n_samples)).astype(np.float32)
     # H^-1 (T'J' W^1/2 e1 + e2) = e2 + H^-1 (T'J' W^1/2 e1 - T'J'WJT e2): the right-hand side
     # then lies in the data's subspace, where a relative stopping rule of CG is meaningful
     shape = (*lattice.shape, n_samples)
     jt_e2 = jac @ lattice.forward(eps_prior).reshape(lattice.size, n_samples)
-    rhs = lattice.adjoint((jac_t @ (eps_data - post.fisher[:, None] * jt_e2)).reshape(shape))
-    dx, _ = conjugate_gradient(_hess_op(lattice, jac, jac_t, post.fisher), rhs, tol=cg_tol, max_iter=cg_iter)
+    rhs = lattice.adjoint((jac_t @ (eps_data - fisher[:, None] * jt_e2)).reshape(shape))
+    dx, _ = conjugate_gradient(_hess_op(lattice, jac, jac_t, fisher), rhs, tol=cg_tol, max_iter=cg_iter)
     dx += eps_prior
-    return post.xi[:, :, None] + dx
+    return post.xi[:, :, None] + dx.astype(np.float64)
