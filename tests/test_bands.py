@@ -773,3 +773,44 @@ def test_bands_command_shows_curves_and_coefficients(capsys):
     assert "none: effective wavelength only" in rows["RJ"] and "0.7000" in rows["RJ"]
     assert "outside law" in rows["W1"]  # F99 stops at 3.33 micron
     assert "4000 K blackbody" in out and "A_V / R_V" in out
+
+
+def test_star_temperatures_for_ingestion():
+    from dustkit.bands import star_temperatures
+
+    # intrinsic colours with a missing value and one beyond a 2000 K blackbody
+    res = star_temperatures(4, colour=[0.0, 0.82, np.nan, 9.0], colour_bands=("BP", "RP"))
+    t = res.temperature.to_value(u.K)
+    assert t[0] == pytest.approx(9600, rel=2e-3)  # the documented zero point
+    assert t[1] < t[0] and t[2] == 5800.0 and t[3] == pytest.approx(2000.0)
+    assert res.n_default == 1 and res.n_clipped == 1 and list(res.from_input) == [True, True, False, True]
+    assert "BP-RP" in res.source
+    # temperatures: NaN gets the default, out-of-range values the nearest edge
+    res = star_temperatures(3, temperature=[4500.0, np.nan, 2.0e5] * u.K, default=6000 * u.K)
+    np.testing.assert_allclose(res.temperature.to_value(u.K), [4500.0, 6000.0, 1.0e5])
+    assert res.n_default == 1 and res.n_clipped == 1
+    # no column at all: every row gets the default, counted
+    res = star_temperatures(5)
+    assert res.n_default == 5 and np.all(res.temperature == 5800 * u.K)
+    # the per-row result goes straight into a conversion
+    res = star_temperatures(2, colour=[0.0, 2.0], colour_bands=("BP", "RP"))
+    av, _ = excess_to_av([0.5, 0.5], 0.0, "BP", "RP", temperature=res.temperature)
+    assert av[0] < av[1]  # the redder star needs more A_V for the same E(BP-RP)
+    with pytest.raises(ParameterError, match="'colour_bands' parameter"):
+        star_temperatures(2, colour=[0.1, 0.2])
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    av=st.floats(-1.0, 40.0, allow_nan=False),
+    temperature=st.floats(2000.0, 100000.0),
+    law=st.sampled_from(["ccm89", "odonnell94", "fitzpatrick99", "gordon23"]),
+    pair=st.sampled_from([("BP", "RP"), ("g", "r"), ("J", "Ks"), ("U", "B"), ("V", "RJ"), ("g_PS1", "z_PS1")]),
+)
+def test_excess_round_trip_property(av, temperature, law, pair):
+    # A_V -> E(blue-red) -> A_V is the identity, and more dust means a larger excess
+    e, _ = av_to_excess(av, 0.0, *pair, law=law, temperature=temperature * u.K)
+    back, _ = excess_to_av(e, 0.0, *pair, law=law, temperature=temperature * u.K)
+    assert back == pytest.approx(av, abs=1e-9)
+    e2, _ = av_to_excess(av + 0.01, 0.0, *pair, law=law, temperature=temperature * u.K)
+    assert e2 > e

@@ -35,11 +35,13 @@ from .conversions import (
 from .passbands import (
     DEFAULT_AV,
     DEFAULT_TEMPERATURE,
+    StarTemperatures,
     blackbody_colour,
     colour_temperature,
     example_passband_path,
     passband_a_over_av,
     read_transmission,
+    star_temperatures,
 )
 from .registry import Band, add_band, get_band, parse_excess_name, registered_bands, remove_band
 
@@ -63,6 +65,8 @@ __all__ = [
     "example_passband_path",
     "blackbody_colour",
     "colour_temperature",
+    "star_temperatures",
+    "StarTemperatures",
     "DEFAULT_TEMPERATURE",
     "DEFAULT_AV",
 ]

@@ -19,6 +19,7 @@ interpolated (bilinear), so that millions of conversions take well under a secon
 import functools
 import os
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 from astropy import constants as const
@@ -42,6 +43,8 @@ __all__ = [
     "coefficient_table",
     "GRID_TEMPERATURES",
     "GRID_AV",
+    "StarTemperatures",
+    "star_temperatures",
 ]
 
 #: Blackbody temperature of the default source spectrum: a Sun-like star, typical
@@ -492,3 +495,95 @@ def colour_temperature(colour, blue, red):
     order = np.argsort(curve)
     log_t = np.interp(c, curve[order], np.log(GRID_TEMPERATURES)[order])
     return np.exp(log_t) * u.K
+
+
+@dataclass(frozen=True)
+class StarTemperatures:
+    """Per-row source temperatures for the band conversions (see :func:`star_temperatures`).
+
+    Attributes
+    ----------
+    temperature : Quantity['temperature']
+        One blackbody temperature per row, inside the tables' range.
+    from_input : ndarray of bool
+        True where the row's own temperature or colour was used.
+    n_default : int
+        Rows given the default temperature (missing value, or no column at all).
+    n_clipped : int
+        Rows whose temperature or colour lay beyond the tables' range and were set to its edge.
+    source : str
+        What the temperatures come from, for reports (e.g. ``"(BP-RP)_0 colour temperature"``).
+    """
+
+    temperature: u.Quantity
+    from_input: np.ndarray
+    n_default: int
+    n_clipped: int
+    source: str
+
+
+def star_temperatures(n_rows, *, temperature=None, colour=None, colour_bands=None, default=DEFAULT_TEMPERATURE):
+    """Per-row blackbody temperatures from a catalogue's temperature or intrinsic-colour column.
+
+    This is the one call ingestion needs before a passband conversion: rows with a
+    finite value use it, missing values get ``default`` (and are counted so that the
+    caller can announce them), values beyond the tables' range (2 000-100 000 K) are
+    set to the nearest edge and counted.
+
+    Parameters
+    ----------
+    n_rows : int
+        Number of rows.
+    temperature : Quantity['temperature'] or array_like, optional
+        Effective or colour temperature per row (bare numbers: kelvin). NaN = missing.
+    colour : float array or Quantity['mag'], optional
+        Intrinsic colour per row (instead of ``temperature``); NaN = missing.
+    colour_bands : (str, str), optional
+        The colour's bands, e.g. ``("BP", "RP")``; required with ``colour``.
+    default : Quantity['temperature'], optional
+        Temperature of rows without a value (default :data:`DEFAULT_TEMPERATURE`).
+
+    Returns
+    -------
+    StarTemperatures
+    """
+    from .registry import get_band
+
+    if isinstance(n_rows, bool) or not isinstance(n_rows, (int, np.integer)) or n_rows < 0:
+        raise param_error("n_rows", "a non-negative integer", n_rows)
+    t_default = float(temperature_input(default, DEFAULT_TEMPERATURE))
+    lo, hi = TEMPERATURE_RANGE
+    if temperature is not None and colour is not None:
+        raise param_error("colour", "None when a temperature is given (give one of the two)", "both")
+    if temperature is None and colour is None:
+        t = np.full(n_rows, t_default)
+        return StarTemperatures(t * u.K, np.zeros(n_rows, bool), n_rows, 0,
+                                f"default {t_default:g} K blackbody")
+    if temperature is not None:
+        if isinstance(temperature, u.Quantity):
+            try:
+                values = np.asarray(temperature.to_value(u.K, equivalencies=u.temperature()), dtype=float)
+            except u.UnitConversionError:
+                raise param_error("temperature", "a temperature (e.g. 5800 * u.K)", temperature.unit) from None
+        else:
+            values = np.asarray(temperature, dtype=float)
+        values = np.broadcast_to(values, (n_rows,)).copy()
+        ok = np.isfinite(values) & (values > 0)
+        clipped = ok & ((values < lo) | (values > hi))
+        values = np.clip(values, lo, hi)
+        source = "temperature column"
+    else:
+        if colour_bands is None or len(colour_bands) != 2:
+            raise param_error("colour_bands", "the colour's two bands, e.g. ('BP', 'RP')", colour_bands)
+        blue, red = get_band(colour_bands[0]), get_band(colour_bands[1])
+        c, _ = mag_input("colour", colour)
+        c = np.broadcast_to(c, (n_rows,)).copy()
+        ok = np.isfinite(c)
+        curve = _colour_curve(blue, red)
+        clipped = ok & ((c < curve.min()) | (c > curve.max()))
+        values = np.full(n_rows, np.nan)
+        if np.any(ok):
+            values[ok] = colour_temperature(np.clip(c[ok], curve.min(), curve.max()), blue, red).to_value(u.K)
+        source = f"({blue.name}-{red.name})_0 colour temperature"
+    values = np.where(ok, values, t_default)
+    return StarTemperatures(values * u.K, ok, int(np.count_nonzero(~ok)), int(np.count_nonzero(clipped)), source)
