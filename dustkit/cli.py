@@ -89,8 +89,15 @@ full-sky HEALPix map of A_V per distance edge (healpy.read_map(path, field=k)), 
 error maps.""",
     "laws": """example:
   dustkit laws""",
-    "bands": """example:
-  dustkit bands""",
+    "bands": """examples:
+  dustkit bands
+  dustkit bands --law fitzpatrick99 --temperature 4000 --av 1
+
+For each band: its system, where its transmission curve comes from (or that it has
+none, and the law is taken at its effective wavelength), the photon-weighted
+wavelength for the reference star, and A_band/A_V for that star (a blackbody at
+--temperature behind A_V = --av). Broad bands (Gaia G, BP, RP) depend strongly on
+the star: give the star's temperature when converting.""",
     "demo": """examples:
   dustkit demo
   dustkit demo --out /tmp/veyra
@@ -214,7 +221,13 @@ def build_parser():
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     sub("laws", "List the extinction laws.")
-    sub("bands", "List the photometric bands.")
+    p = sub("bands", "List the photometric bands and their coefficients for a reference star.")
+    p.add_argument("--law", default="ccm89", help="extinction law of the coefficients (default ccm89; see 'dustkit laws')")
+    p.add_argument("--rv", type=float, default=3.1, help="R_V (default 3.1)")
+    p.add_argument("--temperature", type=float, default=5800.0, metavar="K",
+                   help="blackbody temperature of the reference star in K (default 5800)")
+    p.add_argument("--av", type=float, default=0.1, metavar="MAG",
+                   help="A_V of the reference star in mag (default 0.1)")
 
     p = sub("demo", "Run the whole job on the invented demo field and show where everything went.")
     p.add_argument("--out", default="dustkit_demo_output", metavar="DIR", help="output folder (default ./dustkit_demo_output)")
@@ -596,13 +609,28 @@ def _cmd_laws(args, out):
 
 
 def _cmd_bands(args, out):
+    import astropy.units as u
+    from astropy.table import Table
+
     from .bands import band_table
 
-    t = band_table()
-    print("\n".join(t.pformat(max_lines=-1, max_width=-1)))
-    desc = t.meta.get("description")
-    if desc:
-        print(f"\n{desc}")
+    t = band_table(args.law, args.rv, temperature=args.temperature * u.K, av=args.av)
+    shown = Table()
+    shown["band"] = t["name"]
+    shown["system"] = t["system"]
+    shown["wavelength [micron]"] = [f"{w:.4f}" for w in t["reference_wavelength"].to_value(u.micron)]
+    shown["A/A_V"] = ["outside law" if k != k else f"{k:.4f}" for k in t["coefficient"]]
+    shown["transmission curve"] = t["curve"]
+    for name in ("band", "system", "transmission curve"):
+        shown[name].format = "<"
+    print("\n".join(shown.pformat(max_lines=-1, max_width=-1)))
+    print(f"\nReference star: a {args.temperature:g} K blackbody behind A_V = {args.av:g} mag, law "
+          f"{t.meta['law']} with R_V = {t.meta['rv']:g}. 'wavelength' is the star's photon-weighted mean "
+          "wavelength in the band (the effective wavelength for bands without a curve).")
+    print("Bands without a transmission curve use the law at their effective wavelength "
+          "(monochromatic): " + ", ".join(n for n, c in zip(t["name"], t["curve"]) if c.startswith("none")) + ".")
+    print("E(B-V) is the nominal reddening A_V / R_V under every law. Coefficients are statistical: "
+          "check them against local data before using them for science or instrument time.")
     return 0
 
 

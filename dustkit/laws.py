@@ -3,7 +3,7 @@
 Every law gives the ratio A(lambda)/A_V as a function of wavelength (and, for most
 laws, of R_V = A_V / E(B-V)). Each law declares once its short name, its citation,
 its valid wavelength range and its valid R_V range; asking for anything outside
-those ranges raises :class:`~dustkit._errors.LawRangeError` naming the law, the
+those ranges raises :class:`~dustkit.exceptions.LawRangeError` naming the law, the
 value and the valid range.
 
 The curves of the published R_V-dependent laws come from the ``dust_extinction``
@@ -37,8 +37,8 @@ import numpy as np
 from astropy import units as u
 from astropy.table import QTable
 
-from ._errors import LawRangeError, ParameterError
-from ._validation import param_error
+from .exceptions import LawRangeError, ParameterError
+from ._lib.validation import param_error
 
 __all__ = [
     "Law",
@@ -51,6 +51,7 @@ __all__ = [
     "DEFAULT_LAW",
     "get_law",
     "list_laws",
+    "wavelength_micron",
 ]
 
 #: Short name of the law used when none is given.
@@ -65,8 +66,26 @@ def _fmt(x):
     return f"{x:.4g}"
 
 
-def _wavelength_micron(wavelength, name="wavelength"):
-    """Convert a spectral Quantity (wavelength, wavenumber, frequency, energy) to micron."""
+def wavelength_micron(wavelength, name="wavelength"):
+    """Convert a spectral Quantity (wavelength, wavenumber, frequency, energy) to micron.
+
+    Parameters
+    ----------
+    wavelength : Quantity
+        Any spectral unit (length, wavenumber such as 1/micron, frequency, energy).
+    name : str, optional
+        Parameter name used in the error message.
+
+    Returns
+    -------
+    ndarray
+        Wavelengths in micron, plain floats, same shape as the input.
+
+    Raises
+    ------
+    ParameterError
+        Not a spectral Quantity, or a value that is not finite and positive.
+    """
     if not isinstance(wavelength, u.Quantity):
         raise param_error(
             name,
@@ -222,7 +241,7 @@ class Law:
         LawRangeError
             Some value lies outside the law's wavelength range.
         """
-        lam = _wavelength_micron(wavelength)
+        lam = wavelength_micron(wavelength)
         lo, hi = self.wavelength_range.to_value(u.micron)
         outside = (lam < lo * (1 - _EDGE_RTOL)) | (lam > hi * (1 + _EDGE_RTOL))
         if np.any(outside):

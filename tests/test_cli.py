@@ -173,9 +173,10 @@ def test_estimate_keeps_input_columns_and_matches_the_api(built, files, tmp_path
     q = model.query(c.l, c.b, np.asarray(src["dist_kpc"])[ok] * u.kpc, bands=("J", "Ks"))
     for col in ("av", "av_err", "a_J", "a_J_err", "a_Ks", "a_Ks_err"):
         assert np.allclose(np.asarray(res[col], float)[ok], q[col].to_value(u.mag), rtol=1e-12, atol=0), col
-    # A_Ks / A_V for CCM89 at R_V 3.1 is about 0.11-0.12 (CCM89 Table 3 gives 0.114 at K)
+    # A_Ks / A_V for CCM89 at R_V 3.1 is about 0.11-0.12 (CCM89 Table 3 gives 0.114 at K);
+    # the Ks passband coefficient falls very slightly as A_V grows (computed: 5e-4 relative)
     ratio = np.asarray(res["a_Ks"], float)[ok] / np.asarray(res["av"], float)[ok]
-    assert np.allclose(ratio, ratio[0]) and 0.10 < ratio[0] < 0.125
+    assert np.allclose(ratio, ratio[0], rtol=1e-3) and 0.10 < ratio[0] < 0.125
 
 
 def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):

@@ -311,3 +311,16 @@ def test_fast_on_large_arrays():
     values = get_law("ccm89").a_over_av(lam, 3.1)
     assert time.perf_counter() - start < 3.0
     assert values.shape == (10**6,) and np.all(np.isfinite(values))
+
+
+def test_wavelength_micron_accepts_any_spectral_unit():
+    # 5500 A = 0.55 um = 1/0.55 um^-1; c / 0.55 um in Hz (SI definition of c)
+    from dustkit.laws import wavelength_micron
+
+    np.testing.assert_allclose(wavelength_micron([5500.0, 11000.0] * u.AA), [0.55, 1.1], rtol=1e-12)
+    assert float(wavelength_micron(1.82 / u.micron)) == pytest.approx(1 / 1.82, rel=1e-12)
+    assert float(wavelength_micron((299792458.0 / 0.55e-6) * u.Hz)) == pytest.approx(0.55, rel=1e-12)
+    with pytest.raises(ParameterError, match="'wavelength' parameter"):
+        wavelength_micron(0.55)
+    with pytest.raises(ParameterError, match="'band' parameter.*finite and positive"):
+        wavelength_micron([-1.0, 1.0] * u.micron, "band")

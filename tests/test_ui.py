@@ -198,7 +198,8 @@ def test_band_chooser(explorer):
     assert "Ks" in explorer.profile_ax.get_ylabel() and "[mag]" in explorer.profile_ax.get_ylabel()
     prof = explorer.model.profile(explorer.l * u.deg, explorer.b * u.deg)
     y = _line(explorer.profile_ax, "dustkit-profile").get_ydata()
-    np.testing.assert_allclose(y, prof["av"].to_value(u.mag) * float(a_band_over_av("Ks", explorer.law, explorer.rv)))
+    av = prof["av"].to_value(u.mag)
+    np.testing.assert_allclose(y, av * a_band_over_av("Ks", explorer.law, explorer.rv, av=av))
     _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
     explorer.quantity_widget.value = "ebv"
     assert "E(B-V)" in explorer.profile_ax.get_ylabel()

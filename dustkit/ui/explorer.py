@@ -227,8 +227,15 @@ class Explorer:
                                            description="Cone radius [deg]", readout_format=".2f", style=_DESC,
                                            layout=full)
         quantities = [("A_V", "av"), ("E(B-V)", "ebv")]
-        bt = band_table()
-        quantities += [(f"A in {n} ({w:.2f} µm)", n) for n, w in zip(bt["name"], bt["wavelength"].to_value(u.micron))]
+        # the band registry (the same table as 'dustkit bands'), under the tracers' law
+        law_name = base.law if base.law in LAWS else None
+        bt = band_table(law_name, None if law_name is None else float(base.rv))
+        quantities += [
+            (f"A in {n} ({system}, {w:.2f} µm)", n)
+            for n, system, w, k in zip(bt["name"], bt["system"], bt["reference_wavelength"].to_value(u.micron),
+                                       bt["coefficient"])
+            if np.isfinite(k)  # bands outside the law's range cannot be shown
+        ]
         self.quantity_widget = W.Dropdown(options=quantities, value="av", description="Profile shows",
                                           style=_DESC, layout=full)
 
