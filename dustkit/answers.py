@@ -179,11 +179,14 @@ def av_quantities(model, l, b=None, distance=None, distance_err=None):
     return a.reshape(shape) * u.mag, e.reshape(shape) * u.mag
 
 
-def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None):
+def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None,
+                temperature=None):
     """A table of answers: position, A_V, its error, the smooth part's A_V, and A in each band.
 
-    Band extinctions use the model's law and R_V unless ``law``/``rv`` are given
-    (:func:`dustkit.bands.av_to_band`).
+    Band extinctions use the model's law and R_V unless ``law``/``rv`` are given, and are
+    integrated over each band's passband for a blackbody of ``temperature`` (K; a scalar or
+    one value per position; default :data:`dustkit.bands.DEFAULT_TEMPERATURE`) extincted by
+    the answer's own A_V (:func:`dustkit.bands.av_to_band`).
     """
     model.check_fitted()
     lv, bv, dv, shape = sky_positions(l, b, distance)
@@ -200,8 +203,14 @@ def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), la
 
         law = law or model.law
         rv = model.rv if rv is None else rv
+        temp = None
+        if temperature is not None:
+            if isinstance(temperature, u.Quantity):
+                temperature = temperature.to_value(u.K, equivalencies=u.temperature())
+            temp = np.broadcast_to(np.asarray(temperature, float), shape).ravel()
+            t.meta["temperature"] = temp[0] if np.all(temp == temp[0]) else "per position"
         for band in bands:
-            ab, abe = av_to_band(a, e, band, law=law, rv=rv)
+            ab, abe = av_to_band(a, e, band, law=law, rv=rv, temperature=temp)
             t[f"a_{band}"] = np.asarray(ab) * u.mag
             t[f"a_{band}_err"] = np.asarray(abe) * u.mag
     t.meta["caution"] = CAUTION

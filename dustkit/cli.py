@@ -167,6 +167,9 @@ def build_parser():
                    help=f"distance bin width in pc (default {grid['distance_step']:g})")
     p.add_argument("--distance-edges", metavar="E0,E1,...",
                    help="explicit distance edges in pc, comma-separated (instead of --distance-max/--distance-step)")
+    p.add_argument("--model", choices=("auto", "density", "binned"), default="auto",
+                   help="which model: the 3-D density model, the binned model, or 'auto' (default): density "
+                        "up to 20000 tracers, binned above, for out-of-core builds and with --distance-step")
     _add_law_options(p)
     _add_catalogue_options(p)
     p.add_argument("--chunk-size", type=int, metavar="ROWS",
@@ -405,26 +408,50 @@ def _sky_figure(model, distance_pc):
 def _cmd_build(args, out):
     from ._lib.formats import check_target
     from .io import save_model
-    from .model import CAUTION, ExtinctionModel
+    from .model import CAUTION
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
     check_target(args.output, args.overwrite)  # fail before a long build, not after
     if os.path.isdir(args.catalog) or args.chunk_size is not None or args.scheduler:
+        if args.model == "density":
+            raise _UsageError("the out-of-core build (a folder, --chunk-size or --scheduler) makes the binned "
+                              "model; drop --model density or read the catalogue in memory")
         model = _build_out_of_core(args, kw, columns, out)
     else:
+        from .model import build_model, choose_model
+
         tracers = _read_tracers(args, args.catalog)
         out(tracers.summary(), "")
         if columns:
             out(f"Column mapping given: {columns}")
-        out(f"Building the model (NSIDE {args.nside}) from {len(tracers)} tracers ...")
-        model = ExtinctionModel(**kw, quiet=_quiet_flag(args)).fit(tracers)
+        kind = choose_model(len(tracers), args.model)
+        why = "" if args.model != "auto" else (" (chosen for a catalogue of this size: the 3-D density model up to "
+                                               "20000 tracers, the binned model above)")
+        if args.model == "auto" and args.distance_step is not None:
+            kind, why = "binned", " (--distance-step asks for the binned model's fixed bins)"
+        out(f"Building the {kind} model (NSIDE {args.nside}) from {len(tracers)} tracers{why} ...")
+        if kind == "density":
+            kw = {k: v for k, v in kw.items() if k != "distance_step"}
+            if args.distance_step is not None:
+                raise _UsageError("--distance-step applies to the binned model; the density model's bins grow "
+                                  "with distance (give --distance-edges for your own)")
+        model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))
     out(*_layer_lines(model.layer_))
     g = model.grid_
-    out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
-        f"({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); {len(model.informed_pixels())} pixels informed "
-        f"by tracers; sky smoothing {model.sky_passes_} passes; uncertainty '{model.uncertainty_scheme_}'.")
+    if hasattr(model, "amplitude_"):
+        rep = model.build_report_
+        out(f"Model: 3-D log-normal density on {len(model.active_pixels_)} pixels of {g.pixel_area.value:.2f} deg^2 "
+            f"x {g.n_bins} distance bins ({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); chosen by "
+            f"spatially blocked cross-validation: amplitude {model.amplitude_:g}, correlation length "
+            f"{model.length_:.0f} pc, unresolved fraction {model.tau_:.3f}; {rep['duplicate_groups']} groups of "
+            f"near-duplicate tracers counted once; {rep['censored']} tracers beyond the grid used as bounds.")
+    else:
+        out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
+            f"({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); {len(model.informed_pixels())} pixels "
+            f"informed by tracers; sky smoothing {model.sky_passes_} passes; uncertainty "
+            f"'{model.uncertainty_scheme_}'.")
     path = save_model(model, args.output, overwrite=args.overwrite)
     out(f"Wrote the model to {path}", f"Caution: {CAUTION}")
     return 0

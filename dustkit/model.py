@@ -60,7 +60,11 @@ from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
 from .layer import DustLayer, fit_layer
 
-__all__ = ["ExtinctionModel", "CAUTION", "FitPlan", "model_state", "model_from_state", "heldout_rows"]
+__all__ = ["ExtinctionModel", "CAUTION", "FitPlan", "model_state", "model_from_state", "heldout_rows",
+           "DENSITY_LIMIT", "choose_model", "build_model"]
+
+#: Up to this many tracers the default model is the 3-D density model; above, the binned one.
+DENSITY_LIMIT = 20_000
 
 MC_LIMIT = 300_000  # above this many tracers "auto" switches to the bin-scatter scheme
 _HELDOUT_MAX = HELDOUT_MAX  # old name
@@ -355,13 +359,13 @@ class ExtinctionModel:
         lv, bv, dv, shape = sky_positions(l, b, distance)
         return self.layer_.av_pc(bv, dv).reshape(shape) * u.mag
 
-    def query(self, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None):
+    def query(self, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None, temperature=None):
         """A table of answers: position, A_V, its error, the layer's A_V, and A in each band.
 
         Band extinctions use the model's law and R_V unless ``law``/``rv`` are given
         (:func:`dustkit.bands.av_to_band`).
         """
-        return query_table(self, l, b, distance, distance_err, bands, law, rv)
+        return query_table(self, l, b, distance, distance_err, bands, law, rv, temperature)
 
     @property
     def law(self):
@@ -510,3 +514,36 @@ def model_from_state(state):
     if state.get("cv") is not None:
         m.cv_ = state["cv"]
     return m
+
+
+# ----------------------------------------------------------------------------- which model
+
+def choose_model(n_tracers, model="auto"):
+    """Which model a build of ``n_tracers`` uses: ``'density'`` or ``'binned'``.
+
+    ``'auto'`` picks the 3-D density model (:class:`dustkit.density.DensityModel`) up to
+    :data:`DENSITY_LIMIT` tracers, the size of cluster catalogues, and the binned model
+    (:class:`ExtinctionModel`, the path for millions of field stars) above.
+    """
+    choice = check_choice("model", model, ("auto", "density", "binned"))
+    if choice == "auto":
+        return "density" if n_tracers <= DENSITY_LIMIT else "binned"
+    return choice
+
+
+def build_model(tracers, model="auto", **params):
+    """Fit the model :func:`choose_model` picks for ``tracers``; ``params`` go to its constructor.
+
+    Parameters the chosen model does not take (e.g. ``distance_step`` for the density model,
+    whose bins grow with distance) raise ``ParameterError``. The fitted model records the
+    choice in ``model_kind_``.
+    """
+    from .density import DensityModel
+
+    kind = choose_model(len(tracers), model)
+    cls = DensityModel if kind == "density" else ExtinctionModel
+    for name in params:
+        check_choice(f"parameter of the {kind} model", name, cls.param_names())
+    fitted = cls(**params).fit(tracers)
+    fitted.model_kind_ = kind
+    return fitted

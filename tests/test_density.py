@@ -168,3 +168,27 @@ def test_draws_are_monotone_free_and_match_the_spread(fitted):
     a, e = m.av_pc(l, b, d)
     assert np.all(draws >= 0)
     assert np.median(draws.std(axis=1) / e) == pytest.approx(1.0, abs=0.15)
+
+
+def test_query_reports_support_draws_and_colour_dependent_bands(fitted):
+    _, m = fitted
+    l, b, d = [40, 40, 200] * u.deg, [0, 0, 0] * u.deg, [1.5, 1.5, 2.0] * u.kpc
+    hot = m.query(l, b, d, bands=("G",), temperature=[20000, 20000, 20000] * u.K, samples=10)
+    cool = m.query(l, b, d, bands=("G",), temperature=4000 * u.K)
+    assert hot["av_samples"].shape == (3, 10)
+    assert list(hot["prior_only"]) == [False, False, True]
+    # A_G / A_V is larger for a hot star than for a cool one behind the same dust
+    # (Gaia Collaboration, Babusiaux et al. 2018, A&A 616, A10; from memory)
+    assert np.all(hot["a_G"] / hot["av"] > cool["a_G"] / cool["av"])
+
+
+def test_auto_choice_picks_the_density_model_for_cluster_catalogues():
+    from dustkit.model import DENSITY_LIMIT, build_model, choose_model
+
+    assert choose_model(3000) == "density" and choose_model(DENSITY_LIMIT + 1) == "binned"
+    assert choose_model(10, "binned") == "binned"
+    _, tr = _tracers(60, 11)
+    m = build_model(tr, quiet=True, **FAST)
+    assert isinstance(m, DensityModel) and m.model_kind_ == "density"
+    with pytest.raises(dustkit.ParameterError, match="distance_step"):
+        build_model(tr, distance_step=100 * u.pc)

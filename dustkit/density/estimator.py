@@ -123,8 +123,10 @@ class DensityModel:
     amplitude_, length_, tau_ : float
         Chosen prior amplitude, correlation length (pc) and unresolved fraction.
     av_, av_err_ : ndarray (npix, n_edges)
-        Cumulative A_V at pixel centres (posterior mode) and its posterior standard
-        deviation (the prior's where no tracer informs).
+        Cumulative A_V at pixel centres (posterior mode) and its predictive 1-sigma error
+        (posterior, unresolved and ``tau`` parts together; the prior's where no tracer informs).
+    posterior_err_ : ndarray (npix, n_edges)
+        The posterior standard deviation alone.
     unresolved_ : ndarray (npix, n_edges)
         Local variance (mag^2) of what the cells miss, from held-out tracers.
     prior_err_, support_ : ndarray (npix, n_edges)
@@ -277,6 +279,7 @@ class DensityModel:
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.unresolved_ = _unresolved(grid, l, b, d, excess, weight)
+        self.av_err_ = np.sqrt(self.posterior_err_**2 + self.unresolved_ + (self.tau_ * self.av_) ** 2)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "score", "rms", "coverage"))
         self.cv_["length"].unit = u.pc
         self.cv_["rms"].unit = u.mag
@@ -311,7 +314,7 @@ class DensityModel:
         self.grid_, self.layer_, self.tracers_ = grid, layer, tracers
         self.amplitude_, self.length_, self.tau_ = float(lat.amplitude), float(lat.length), float(tau)
         self.av_ = av
-        self.av_err_ = np.sqrt(var)
+        self.posterior_err_ = np.sqrt(var)
         self.prior_err_ = np.sqrt(prior_var)
         with np.errstate(invalid="ignore", divide="ignore"):
             self.support_ = np.clip(1.0 - var / np.where(prior_var > 0, prior_var, np.inf), 0.0, 1.0)
@@ -358,7 +361,7 @@ class DensityModel:
         e = self.grid_.distance_edges
         pix, wgt, k, f, ratio, lay_t = self._locate(l, b, d)
         a = self._nodes(self.av_, pix, wgt, k, f) * ratio
-        var = self._nodes(self.av_err_**2, pix, wgt, k, f) * ratio**2 + self._nodes(self.unresolved_, pix, wgt, k, f)
+        var = self._nodes(self.posterior_err_**2, pix, wgt, k, f) * ratio**2 + self._nodes(self.unresolved_, pix, wgt, k, f)
         beyond = d > e[-1]
         if np.any(beyond):  # past the grid: the layer's prior, carried on
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
@@ -388,14 +391,15 @@ class DensityModel:
         lv, bv, dv, shape = sky_positions(l, b, distance)
         return self.layer_.av_pc(bv, dv).reshape(shape) * u.mag
 
-    def query(self, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None, samples=0):
+    def query(self, l, b=None, distance=None, distance_err=None, bands=(), law=None, rv=None, temperature=None,
+              samples=0):
         """A table of answers with how well each is supported; ``samples=N`` adds N posterior draws.
 
         Columns as :meth:`dustkit.ExtinctionModel.query`, plus ``support`` (0 = the prior
         only, 1 = fully set by tracers), ``n_tracers`` (kernel-weighted tracers in front),
         ``prior_only`` (support below 0.1) and, with ``samples``, ``av_samples`` (n, N).
         """
-        t = query_table(self, l, b, distance, distance_err, bands, law, rv)
+        t = query_table(self, l, b, distance, distance_err, bands, law, rv, temperature)
         lv, bv, dv = (np.asarray(t[k].value, float) for k in ("l", "b", "distance"))
         s, nt, prior_only = self._support_arrays(lv, bv, dv)
         t["support"], t["n_tracers"], t["prior_only"] = s, nt, prior_only
@@ -485,8 +489,7 @@ class DensityModel:
         t["distance_max"] = np.tile(e[1:], pixels.size) * u.pc
         t["av_near"] = self.av_[pixels, :-1].ravel() * u.mag
         t["av"] = self.av_[pixels, 1:].ravel() * u.mag
-        err = np.sqrt(self.av_err_[pixels, 1:] ** 2 + self.unresolved_[pixels, 1:] + (self.tau_ * self.av_[pixels, 1:]) ** 2)
-        t["av_err"] = err.ravel() * u.mag
+        t["av_err"] = self.av_err_[pixels, 1:].ravel() * u.mag
         t["differential"] = self.differential_[pixels].ravel() * (u.mag / u.kpc)
         t["n_tracers"] = self.counts_[pixels].ravel()
         t["support"] = self.support_[pixels, 1:].ravel()
@@ -601,7 +604,7 @@ def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_wei
     return out
 
 
-_STATE_ARRAYS = ("av_", "av_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
+_STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
                  "differential_", "samples_", "active_pixels_", "boost_")
 _STATE_SCALARS = ("amplitude_", "length_", "tau_")
 
