@@ -22,7 +22,8 @@ from .answers import estimate_targets  # noqa: F401
 from .bands import av_to_band, excess_to_av, get_band  # noqa: F401
 from .laws import get_law, list_laws  # noqa: F401
 from .layer import DustLayer, fit_layer  # noqa: F401
-from .model import CAUTION, ExtinctionModel  # noqa: F401
+from .model import CAUTION, ExtinctionModel, build_model  # noqa: F401
+from .density import DensityModel  # noqa: F401
 from .tracers import read_targets, read_tracers  # noqa: F401
 
 
@@ -41,6 +42,8 @@ __all__ = [
     "read_targets",
     "estimate_targets",
     "ExtinctionModel",
+    "DensityModel",
+    "build_model",
     "fit_layer",
     "DustLayer",
     "get_law",

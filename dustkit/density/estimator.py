@@ -158,8 +158,8 @@ class DensityModel:
         nside=32,
         distance_max=6000 * u.pc,
         distance_edges=None,
-        amplitudes=(0.08, 0.2, 0.5, 1.2),
-        lengths=(150,) * u.pc,
+        amplitudes=(0.1, 0.25, 0.6),
+        lengths=(150, 500) * u.pc,
         n_folds=3,
         n_samples=32,
         active_radius=4 * u.deg,
@@ -266,7 +266,8 @@ class DensityModel:
             # fit with it inside disagrees with is an outlier (a wrong member), not unresolved dust
             z_fit = (av - fitted) / np.sqrt(ae**2 + (tau * fitted) ** 2)
             consistent = NU / (NU + z_fit**2)
-            excess = np.where(terms.censored, 0.0, np.maximum(resid**2 - pvar - ae**2 - (tau * base) ** 2, 0.0))
+            # signed: a calibrated tracer scatters around zero; only the local average is clipped
+            excess = np.where(terms.censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
             # relative excess, bounded per tracer (a lone wrong member moves a pixel's prior at most
             # as much as a real factor-e miss); the neighbours' agreement decides the rest
             rel = np.minimum(excess / np.maximum(base, 0.1) ** 2, 1.0)
@@ -577,7 +578,7 @@ def _amplitude_boost(grid, pixels, l, b, rel_excess, weight, amplitude, sky_deg=
     w = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[pairs.col]
     num = np.bincount(pairs.row, w * rel_excess[pairs.col], minlength=pixels.size)
     den = np.bincount(pairs.row, w, minlength=pixels.size)
-    return np.minimum(np.sqrt(1.0 + num / (den + prior_weight) / amplitude**2), cap)
+    return np.minimum(np.sqrt(1.0 + np.maximum(num / (den + prior_weight), 0.0) / amplitude**2), cap)
 
 
 def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0):
@@ -600,7 +601,7 @@ def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_wei
         w = w_sky * np.exp(-0.5 * (np.log(e[j] / d[tr]) / depth) ** 2)
         num = np.bincount(pix, w * excess[tr], minlength=grid.npix)
         den = np.bincount(pix, w, minlength=grid.npix)
-        out[:, j] = num / (den + prior_weight)
+        out[:, j] = np.maximum(num / (den + prior_weight), 0.0)
     return out
 
 
