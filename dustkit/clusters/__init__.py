@@ -10,7 +10,7 @@ E. Mamajek's updated table, shipped by the MeanStars package). Results are estim
 check: see :data:`CAUTION`.
 """
 
-from .batch import fit_clusters
+from .batch import TRACER_COLUMNS, fit_clusters, tracer_row, tracer_table
 from .fit import (
     BINARY_OFFSET,
     CAUTION,
@@ -20,6 +20,7 @@ from .fit import (
     DegeneracyWarning,
     fit_cluster,
     fit_colour_colour,
+    colour_residuals,
     reddening_curve,
     shifted_sequence,
 )
@@ -39,6 +40,10 @@ __all__ = [
     "Photometry",
     "reddening_curve",
     "shifted_sequence",
+    "colour_residuals",
+    "tracer_row",
+    "tracer_table",
+    "TRACER_COLUMNS",
     "simulate_members",
     "DegeneracyWarning",
     "CAUTION",

@@ -25,7 +25,7 @@ from .._progress import progress
 from .._validation import param_error
 from .fit import CAUTION, DegeneracyWarning, fit_cluster
 
-__all__ = ["fit_clusters", "TRACER_COLUMNS"]
+__all__ = ["fit_clusters", "tracer_row", "tracer_table", "TRACER_COLUMNS"]
 
 #: Columns of :func:`fit_clusters`' table, in order.
 TRACER_COLUMNS = ("name", "l", "b", "ebv", "ebv_err", "mu0", "mu0_err", "distance_pc", "distance_pc_err",
@@ -62,6 +62,58 @@ def _positions(members, rows, weights):
     lon = np.degrees(np.arctan2(y, x)) % 360.0
     lat = np.degrees(np.arctan2(z, np.hypot(x, y)))
     return float(lon), float(lat)
+
+
+def tracer_row(fit, name, members=None, *, ebv=None, distance_modulus=None):
+    """One cluster's row of the tracer table (a dict keyed by :data:`TRACER_COLUMNS`).
+
+    Parameters
+    ----------
+    fit : ClusterFit
+    name : str
+    members : table-like, optional
+        For the position (membership-weighted mean of l/b or ra/dec); NaN without.
+    ebv, distance_modulus : float, optional
+        Values to use instead of the fitted ones (e.g. set by hand in a panel); the errors
+        and correlation stay the fit's, and ``flags`` gains ``"set_by_hand"``.
+    """
+    if members is not None:
+        if not isinstance(members, Table):
+            members = Table(members)
+        l, b = _positions(members, np.arange(len(members)), np.maximum(fit.weights, 0.0))
+    else:
+        l = b = np.nan
+    flags = list(fit.flags)
+    e = fit.ebv if ebv is None else float(ebv)
+    m = fit.distance_modulus if distance_modulus is None else float(distance_modulus)
+    if (ebv is not None and e != fit.ebv) or (distance_modulus is not None and m != fit.distance_modulus):
+        flags.append("set_by_hand")
+    d = 10.0 ** (m / 5.0 + 1.0)
+    return dict(zip(TRACER_COLUMNS, (
+        str(name), l, b, e, fit.ebv_err, m, fit.distance_modulus_err, d, d * np.log(10.0) / 5.0 * fit.distance_modulus_err,
+        fit.correlation, fit.n_members_used, fit.field_fraction, fit.binary_fraction, ",".join(flags),
+        ",".join(fit.observables))))
+
+
+def tracer_table(rows, meta=None):
+    """An astropy Table (units on the columns) from rows made by :func:`tracer_row`."""
+    t = Table()
+    units = {"l": u.deg, "b": u.deg, "ebv": u.mag, "ebv_err": u.mag, "mu0": u.mag, "mu0_err": u.mag,
+             "distance_pc": u.pc, "distance_pc_err": u.pc}
+    for cname in TRACER_COLUMNS:
+        values = [r[cname] for r in rows]
+        if cname in ("name", "flags", "observables"):
+            t[cname] = np.array(values, dtype=str) if values else np.array([], dtype=str)
+        elif cname == "n_members_used":
+            t[cname] = np.array(values, dtype=int)
+        else:
+            t[cname] = np.array(values, dtype=float)
+            if cname in units:
+                t[cname].unit = units[cname]
+    t["mu0"].description = "true distance modulus (extinction removed) from main-sequence fitting"
+    t["ebv_mu0_corr"].description = "correlation coefficient of ebv and mu0"
+    t.meta.update(meta or {})
+    return t
 
 
 def fit_clusters(members, cluster_column=None, *, law="ccm89", rv=3.1, quiet=None, return_fits=False, **kwargs):
@@ -140,33 +192,14 @@ def fit_clusters(members, cluster_column=None, *, law="ccm89", rv=3.1, quiet=Non
                     DegeneracyWarning, stacklevel=2)
         except CatalogError as exc:
             l, b = _positions(members, rows, np.ones(rows.size))
-            rows_out.append((name, l, b) + (np.nan,) * 7 + (0, np.nan, np.nan, f"failed: {exc}", ""))
+            rows_out.append(dict(zip(TRACER_COLUMNS, (name, l, b) + (np.nan,) * 7 + (0, np.nan, np.nan, f"failed: {exc}", ""))))
             notes[name] = [str(exc)]
             continue
         fits[name] = fit
-        l, b = _positions(members, rows, np.maximum(fit.weights, 0.0))
-        rows_out.append((name, l, b, fit.ebv, fit.ebv_err, fit.distance_modulus, fit.distance_modulus_err,
-                         fit.distance.to_value(u.pc), fit.distance_err.to_value(u.pc), fit.correlation,
-                         fit.n_members_used, fit.field_fraction, fit.binary_fraction, ",".join(fit.flags),
-                         ",".join(fit.observables)))
+        rows_out.append(tracer_row(fit, name, sub))
         notes[name] = list(fit.notes)
-    cols = list(zip(*rows_out))
-    t = Table()
-    units = {"l": u.deg, "b": u.deg, "ebv": u.mag, "ebv_err": u.mag, "mu0": u.mag, "mu0_err": u.mag,
-             "distance_pc": u.pc, "distance_pc_err": u.pc}
-    for cname, values in zip(TRACER_COLUMNS, cols):
-        if cname in ("name", "flags", "observables"):
-            t[cname] = np.array(values, dtype=str)
-        elif cname == "n_members_used":
-            t[cname] = np.array(values, dtype=int)
-        else:
-            t[cname] = np.array(values, dtype=float)
-            if cname in units:
-                t[cname].unit = units[cname]
-    t["mu0"].description = "true distance modulus (extinction removed) from main-sequence fitting"
-    t["ebv_mu0_corr"].description = "correlation coefficient of ebv and mu0"
     any_fit = next(iter(fits.values()), None)
-    t.meta.update({
+    t = tracer_table(rows_out, {
         "method": "main-sequence fitting of member photometry (dustkit.clusters.fit_clusters)",
         "law": str(any_fit.law if any_fit else law), "rv": float(rv),
         "sequence_source": any_fit.sequence_source if any_fit else "",

@@ -53,6 +53,7 @@ __all__ = [
     "fit_colour_colour",
     "reddening_curve",
     "shifted_sequence",
+    "colour_residuals",
     "DegeneracyWarning",
     "CAUTION",
     "BINARY_OFFSET",
@@ -71,6 +72,11 @@ PARALLAX_FLOOR = 0.010
 #: Systematic offset of the mean sequence's colour (mag) used when one diagram cannot
 #: separate E(B-V) from mu0 (metallicity and age shift colours by a few hundredths).
 SEQUENCE_COLOUR_SYSTEMATIC = 0.05
+#: Floor added in quadrature to E(B-V)'s error (mag): the mixture models an unresolved binary
+#: as brighter at the same colour, while real companions are redder; on simulated clusters
+#: with 30% binaries (companions anywhere down the sequence) this leaves E(B-V) biased by a
+#: few mmag. The floor is calibrated on those simulations (tests/test_clusters.py).
+EBV_FLOOR = 0.006
 
 CAUTION = (
     "Main-sequence fits are estimates to check, not measurements: the mean dwarf sequence is for "
@@ -274,6 +280,39 @@ def shifted_sequence(ebv, distance_modulus, blue, red, magnitude=None, *, law="c
     else:
         y = app[:, i[ybands[0]]] - app[:, i[ybands[1]]]
     return x, y
+
+
+def colour_residuals(members, ebv, distance_modulus, blue="B", red="V", magnitude="V", *, law="ccm89", rv=3.1,
+                     sequence=None):
+    """Each star's colour minus the shifted sequence's colour at the star's magnitude (mag).
+
+    Parameters
+    ----------
+    members : table-like
+    ebv, distance_modulus : float
+    blue, red, magnitude : str
+        The colour-magnitude diagram.
+    law, rv, sequence
+        As in :func:`fit_cluster`.
+
+    Returns
+    -------
+    ndarray
+        One value per row; NaN where the star lacks the photometry or lies outside the
+        sequence's magnitude range. Positive = redder than the sequence.
+    """
+    from .members import read_photometry
+
+    phot, _ = read_photometry(members)
+    x, _ = phot.quantity((blue, red))
+    y, _ = phot.quantity(magnitude)
+    sx, sy = shifted_sequence(ebv, distance_modulus, blue, red, magnitude, law=law, rv=rv, sequence=sequence)
+    order = np.argsort(sy)
+    sy, sx = sy[order], sx[order]
+    inside = np.isfinite(y) & (y >= sy[0]) & (y <= sy[-1])
+    out = np.full(x.shape, np.nan)
+    out[inside] = x[inside] - np.interp(y[inside], sy, sx)
+    return out
 
 
 # =============================================================================
@@ -714,8 +753,9 @@ def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax
         evolved_cut_value = evolved_cut if isinstance(evolved_cut, float) else None
 
     flags = []
-    cov = res["cov"]
+    cov = res["cov"].copy()
     stat_cov = cov.copy()
+    cov[0, 0] += EBV_FLOOR**2
     if colours_only:
         flags.append("colour_colour_only")
     else:
@@ -907,9 +947,9 @@ def _auto_evolved(res, values, ref_k):
     """Apparent magnitude (reference band) at or above which stars are taken as evolved.
 
     A member is an outlier when no point of the sequence (single or binary) matches it
-    within about 3 sigma per observable. Going down from the brightest star, the cut
-    takes the longest run of bright stars at least half of which are such outliers, and
-    needs at least two of them. Returns None when no such run exists.
+    within about 3 sigma per observable. The turn-off is the brightest star below which
+    three stars in a row fit the sequence; the stars above it are cut when at least two of
+    them are outliers. Returns None otherwise.
     """
     model = res["model"]
     e, m = res["ebv"], res["mu0"]
@@ -929,11 +969,13 @@ def _auto_evolved(res, values, ref_k):
     mag = values[:, ref_k]
     order = np.argsort(np.where(np.isfinite(mag), mag, np.inf))
     out_sorted = outlier[order]
-    frac = np.cumsum(out_sorted) / np.arange(1, out_sorted.size + 1)
-    cand = np.flatnonzero((frac >= 0.5) & out_sorted)
-    if cand.size == 0:
+    # the turn-off: the brightest point below which three stars in a row fit the sequence
+    good = ~out_sorted
+    run = good[:-2] & good[1:-1] & good[2:] if good.size >= 3 else np.zeros(0, bool)
+    if not run.any():
         return None
-    k = int(cand.max())
-    if np.count_nonzero(out_sorted[: k + 1]) < 2:
+    start = int(np.argmax(run))
+    if start == 0 or np.count_nonzero(out_sorted[:start]) < 2:
         return None
+    k = start - 1
     return float(mag[order[k]])

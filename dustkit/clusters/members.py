@@ -91,6 +91,37 @@ class Photometry:
         """True for observables that are magnitudes (they move with the distance modulus)."""
         return np.isclose(self.coefficients.sum(axis=1), 1.0)
 
+    def quantity(self, spec):
+        """Values and errors of a magnitude (``"V"``) or a colour (``("B", "V")`` or ``"B-V"``)
+        per star, from the magnitudes or colour columns the table has; NaN where missing."""
+        if isinstance(spec, str) and "-" in spec:
+            spec = tuple(spec.split("-", 1))
+        if isinstance(spec, str):
+            if spec in self.names:
+                k = self.names.index(spec)
+                return self.values[:, k], self.errors[:, k]
+            raise CatalogError(f"No {spec} magnitude in the members table (found: {', '.join(self.names)}).")
+        blue, red = spec
+        name = f"{blue}-{red}"
+        if name in self.names:
+            k = self.names.index(name)
+            return self.values[:, k], self.errors[:, k]
+        if blue in self.names and red in self.names:
+            kb, kr = self.names.index(blue), self.names.index(red)
+            return self.values[:, kb] - self.values[:, kr], np.hypot(self.errors[:, kb], self.errors[:, kr])
+        # a magnitude and a colour: V and B-V give B
+        for k, n in enumerate(self.names):
+            if "-" in n:
+                b1, b2 = n.split("-", 1)
+                if b2 == red and blue == b1:
+                    return self.values[:, k], self.errors[:, k]
+                if b1 == blue and b2 in self.names and red == b2:
+                    return self.values[:, k], self.errors[:, k]
+        if blue == "B" and red == "V" and "V" in self.names and "B-V" in self.names:
+            k = self.names.index("B-V")
+            return self.values[:, k], self.errors[:, k]
+        raise CatalogError(f"No {name} colour in the members table (found: {', '.join(self.names)}).")
+
     def subset(self, names):
         """The same stars with only the observables ``names``."""
         idx = [self.names.index(n) for n in names]
@@ -110,9 +141,16 @@ def _numeric(table, col, what):
             except (u.UnitConversionError, TypeError):
                 vals = np.asarray(c, dtype=float)
         else:
-            vals = np.asarray(c.filled(np.nan) if hasattr(c, "filled") else c, dtype=float)
+            vals = np.asarray(np.ma.getdata(c), dtype=float)
     except (TypeError, ValueError):
-        bad = next((v for v in np.asarray(c).astype(str) if not _is_float(v)), "?")
+        mask = np.asarray(getattr(c, "mask", np.zeros(len(c), bool)), dtype=bool)
+        text = np.asarray(np.ma.getdata(c)).astype(str)
+        empty = mask | np.isin(np.char.strip(text), ["", "--", "nan", "NaN", "..."])
+        if all(_is_float(v) for v in text[~empty]):  # an empty or partly empty column
+            out = np.full(len(c), np.nan)
+            out[~empty] = text[~empty].astype(float)
+            return out
+        bad = next((v for v in text[~empty] if not _is_float(v)), "?")
         raise CatalogError(
             f"The column {col!r} is not numeric (e.g. {bad!r}). Hint: clean it, or leave it out of the members table."
         ) from None

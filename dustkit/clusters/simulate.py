@@ -20,7 +20,7 @@ def _combine(m1, m2):
 
 def simulate_members(n_members, ebv, distance_modulus, *, bands=("U", "B", "V"), law="ccm89", rv=3.1,
                      binary_fraction=0.3, field_fraction=0.3, magnitude_limit=19.0, absolute_range=(-3.0, 9.0),
-                     intrinsic_scatter=0.015, error_floor=0.01, error_at_limit=0.05, n_evolved=0,
+                     intrinsic_scatter=0.02, error_floor=0.01, error_at_limit=0.05, n_evolved=0,
                      parallax_error=None, sequence=None, l=None, b=None, rng=None):
     """Draw an invented cluster's members (and field stars) from the intrinsic sequence.
 
