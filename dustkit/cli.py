@@ -682,7 +682,7 @@ def _cmd_demo(args, out):
     import numpy as np
     from astropy import units as u
 
-    from .io import export_table, save_model, write_slice_maps
+    from .io import export_table, save_model, write_slice_maps, write_table
     from .layer import fit_layer
     from .model import CAUTION, ExtinctionModel
     from .tracers import read_tracers
@@ -773,6 +773,27 @@ def _cmd_demo(args, out):
     plt.close("all")
     written.extend(figs)
     out(f"   {len(figs)} figures drawn", "")
+
+    members_file = data / "veyra_members.csv"
+    if members_file.is_file():  # main-sequence fits of invented member photometry (dustkit.clusters)
+        from astropy.table import Table as _Table
+
+        from .clusters import fit_clusters
+
+        out(f"6. Fitting E(B-V) and distance of 6 invented clusters from their members' photometry ({members_file.name})")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            fitted = fit_clusters(_Table.read(members_file, format="ascii.csv"), cluster_column="cluster",
+                                  quiet=_quiet_flag(args))
+        truth_file = data / "veyra_members_truth.json"
+        truth_ms = json.loads(truth_file.read_text())["clusters"] if truth_file.is_file() else {}
+        for row in fitted:
+            tr = truth_ms.get(str(row["name"]), {})
+            out(f"   {row['name']:<14s} E(B-V) = {row['ebv']:.3f} +- {row['ebv_err']:.3f} (truth {tr.get('ebv', float('nan')):.3f})   "
+                f"mu0 = {row['mu0']:.2f} +- {row['mu0_err']:.2f} (truth {tr.get('mu0', float('nan')):.2f}) mag")
+        written.append(("cluster fits from member photometry (a tracer table)",
+                        write_table(fitted, folder / "veyra_member_fits.ecsv", overwrite=True)))
+        out("")
 
     out(f"Done in {time.perf_counter() - t_start:.0f} s. Files in {folder.resolve()}:")
     for what, path in written:

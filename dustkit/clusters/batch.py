@@ -36,7 +36,12 @@ _CLUSTER_SPELLINGS = ("cluster", "cluster_name", "clustername", "cl", "name", "g
 
 def _positions(members, rows, weights):
     """Weighted mean Galactic l, b (deg) of rows; from l/b or ra/dec columns. NaN if none."""
-    lower = {c.lower(): c for c in members.colnames}
+    lower = {}
+    for c in members.colnames:  # exact names win: a 'B' magnitude is not the latitude 'b'
+        if len(c) > 1 or c.islower():
+            lower.setdefault(c.lower(), c)
+    for c in members.colnames:
+        lower[c] = c
     for lc, bc in (("glon", "glat"), ("l", "b"), ("lii", "bii")):
         if lc in lower and bc in lower:
             lon = np.asarray(members[lower[lc]], dtype=float)[rows]

@@ -835,6 +835,8 @@ def _optimise(args, colours_only, has_plx, start=None):
         for key in ("values", "errors", "prior", "plx", "plx_err"):
             if cargs[key] is not None:
                 cargs[key] = cargs[key][pick]
+    if cargs["plx"] is not None:  # the coarse mu0 steps are wide: so are the parallaxes there
+        cargs["plx_err"] = np.hypot(cargs["plx_err"], 0.2 * np.abs(np.nan_to_num(cargs["plx"])) + 0.05)
     coarse = _Model(**cargs, step=0.1)
     fine_args = args
     if colours_only:

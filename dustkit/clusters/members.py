@@ -129,7 +129,8 @@ class Photometry:
         bands = tuple(b for b, k in zip(self.bands, used) if k)
         coef = self.coefficients[idx][:, used]
         return Photometry(tuple(names), coef, bands, self.values[:, idx], self.errors[:, idx],
-                          {n: self.columns[n] for n in names}, self.probability, self.parallax, self.parallax_err)
+                          {k: v for k, v in self.columns.items() if k in names or k not in self.names},
+                          self.probability, self.parallax, self.parallax_err)
 
 
 def _numeric(table, col, what):
