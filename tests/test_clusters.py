@@ -277,3 +277,30 @@ def test_bad_input_is_named():
         fit_cluster(Table({"V": np.arange(10.0), "e_V": np.full(10, 0.01)}))
     with pytest.raises(CatalogError, match="at least 5"):
         fit_cluster(Table({"V": [10.0, 11.0, np.nan], "B-V": [0.5, 0.6, 0.7]}))
+
+
+def test_clusters_package_is_computation_only():
+    # layering rule (DESIGN.md): computation never imports matplotlib, ipywidgets or IPython, and no
+    # module imports a _private name from another module
+    import ast
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    import dustkit.clusters as pkg
+
+    for path in Path(pkg.__file__).parent.glob("*.py"):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                assert not {a.name.split(".")[0] for a in node.names} & {"matplotlib", "ipywidgets", "IPython"}, path
+            elif isinstance(node, ast.ImportFrom):
+                assert (node.module or "").split(".")[0] not in ("matplotlib", "ipywidgets", "IPython"), path
+                if node.level >= 1:
+                    assert not any(a.name.startswith("_") for a in node.names), (path, [a.name for a in node.names])
+    code = ("import sys; import dustkit.clusters as c; t = c.simulate_members(20, 0.3, 9.0, rng=1);"
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('matplotlib', 'ipywidgets', 'IPython')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
+                         cwd=str(Path(pkg.__file__).parents[2]))
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
