@@ -120,7 +120,7 @@ class ClusterFit:
         Rows left out as evolved stars above the turn-off.
     flags : tuple of str
         ``"ebv_mu0_degenerate"``, ``"colour_colour_only"``, ``"parallax_prior"``,
-        ``"evolved_cut"``, ``"few_members"``, ``"at_bound"``.
+        ``"evolved_cut"``, ``"few_members"``, ``"at_bound"``, ``"covariance_unreliable"``.
     observables : tuple of str
         Magnitudes and colours used.
     field_fraction, binary_fraction : float
@@ -789,6 +789,10 @@ def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax
                     f"To break the degeneracy add {hint}.", DegeneracyWarning, stacklevel=3)
     if res["at_bound"]:
         flags.append("at_bound")
+    if res["unreliable"]:
+        flags.append("covariance_unreliable")
+        notes.append("the likelihood is not curved like a peak at the best fit: the errors are rough (1 mag "
+                     "where undetermined); check the diagrams")
     weights = np.zeros(n_rows)
     weights[sel] = res["resp"]
     n_used = int(np.count_nonzero(weights >= 0.5))
@@ -912,11 +916,13 @@ def _optimise(args, colours_only, has_plx, start=None):
                  options={"xatol": 1e-3, "fatol": 2e-3, "maxiter": 3000, "initial_simplex": _simplex(x0, steps * 8)})
     x = r.x
     hess = _hessian(nlp, x, steps)
+    unreliable = False
     try:
         full = np.linalg.inv(hess)
         if not np.all(np.isfinite(full)) or np.any(np.diag(full) <= 0):
             raise np.linalg.LinAlgError
     except np.linalg.LinAlgError:
+        unreliable = True
         full = np.linalg.pinv(hess)
         full = np.where(np.isfinite(full), full, 0.0)
         np.fill_diagonal(full, np.maximum(np.abs(np.diag(full)), 1.0))
@@ -934,6 +940,7 @@ def _optimise(args, colours_only, has_plx, start=None):
     out["resp"] = resp
     out["model"] = model
     out["at_bound"] = bool(out["ebv"] <= -0.29 or out["ebv"] >= 4.9)
+    out["unreliable"] = unreliable
     return out
 
 
