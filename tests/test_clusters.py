@@ -18,6 +18,7 @@ from astropy import units as u
 from astropy.table import Table, vstack
 
 from dustkit import read_tracers
+from dustkit._errors import AssumptionWarning
 from dustkit.bands import get_band, q_method_ebv
 from dustkit.clusters import (
     DegeneracyWarning,
@@ -275,7 +276,7 @@ def test_bad_input_is_named():
         fit_cluster(Table({"x": [1.0, 2.0]}))
     with pytest.raises(CatalogError, match="at least two bands"):
         fit_cluster(Table({"V": np.arange(10.0), "e_V": np.full(10, 0.01)}))
-    with pytest.raises(CatalogError, match="at least 5"):
+    with pytest.raises(CatalogError, match="at least 5"), pytest.warns(AssumptionWarning, match="assuming 0.03 mag"):
         fit_cluster(Table({"V": [10.0, 11.0, np.nan], "B-V": [0.5, 0.6, 0.7]}))
 
 
