@@ -28,6 +28,8 @@ PACKAGE_DATA = HERE.parent / "dustkit" / "data"
 CATALOGUE = "veyra_clusters.csv"
 TARGETS = "veyra_targets.csv"
 FIELD = "veyra_field.json"
+MEMBERS = "veyra_members.csv"
+MEMBERS_TRUTH = "veyra_members_truth.json"
 
 SEED = 2026
 N_CLUSTERS = 400
@@ -96,6 +98,62 @@ def make_catalogue(field):
     return t, sim
 
 
+#: Invented clusters with member photometry (name: l deg, b deg, distance pc, photometry).
+#: Their E(B-V) is the invented field's A_V to that distance / R_V.
+MEMBER_CLUSTERS = {
+    "Veyra Lantern": (31.0, 1.5, 700.0, "UBV"),
+    "Veyra Quill": (46.5, -3.0, 1300.0, "UBV"),
+    "Veyra Harrow": (57.0, 0.5, 2100.0, "UBV"),
+    "Veyra Sable": (33.5, 2.5, 350.0, "Gaia+2MASS"),
+    "Veyra Tessel": (59.0, 1.8, 1200.0, "Gaia+2MASS"),
+    "Veyra Corrie": (69.5, 4.0, 1000.0, "Gaia+2MASS"),
+}
+MEMBERS_PER_CLUSTER = 60
+_GAIA_COLUMNS = {"G": "Gmag", "BP": "BPmag", "RP": "RPmag", "J": "Jmag", "Ks": "Ksmag"}
+
+
+def make_members(field):
+    """Invented member photometry (with 30% binaries and 30% field stars) of MEMBER_CLUSTERS."""
+    from dustkit.clusters import simulate_members
+
+    rng = np.random.default_rng(SEED + 3)
+    tables, truth = [], {}
+    for name, (l, b, d, system) in MEMBER_CLUSTERS.items():
+        av = float(field.av(np.array([l]), np.array([b]), np.array([d]))[0])
+        ebv = round(av / RV, 3)
+        mu0 = 5 * np.log10(d) - 5
+        bands = ("U", "B", "V") if system == "UBV" else ("G", "BP", "RP", "J", "Ks")
+        t = simulate_members(MEMBERS_PER_CLUSTER, ebv, mu0, bands=bands, rv=RV, l=l, b=b, rng=rng,
+                             parallax_error=None if system == "UBV" else 0.04,
+                             n_evolved=3 if system == "UBV" else 0)
+        out = Table()
+        out["cluster"] = [name] * len(t)
+        out["l"], out["b"] = t["l"], t["b"]
+        for band in ("U", "B", "V", "G", "BP", "RP", "J", "Ks"):
+            col = band if band in ("U", "B", "V") else _GAIA_COLUMNS[band]
+            if band in bands:
+                out[col] = t[band]
+                out[f"e_{col}"] = t[f"e_{band}"]
+            else:
+                out[col] = np.full(len(t), np.nan)
+                out[f"e_{col}"] = np.full(len(t), np.nan)
+        if "parallax" in t.colnames:
+            # the catalogue's parallaxes are too small by an invented zero point of 0.017 mas
+            out["parallax"] = np.round(t["parallax"] - 0.017, 4)
+            out["parallax_error"] = t["parallax_error"]
+        else:
+            out["parallax"] = np.full(len(t), np.nan)
+            out["parallax_error"] = np.full(len(t), np.nan)
+        tables.append(out)
+        truth[name] = {"l": l, "b": b, "distance": d, "mu0": round(float(mu0), 4), "ebv": ebv, "photometry": system,
+                       "n_rows": len(t), "n_true_members": int(np.count_nonzero(t["true_member"]))}
+    from astropy.table import vstack
+
+    members = vstack(tables, metadata_conflicts="silent")
+    members.meta = {}
+    return members, truth
+
+
 def make_targets(field):
     rng = np.random.default_rng(SEED + 2)
     n = 20
@@ -130,12 +188,21 @@ def main(out_dirs=(HERE, PACKAGE_DATA)):
         "rv": RV,
         "seed": SEED,
     }
+    members, members_truth = make_members(field)
+    members_info = {
+        "description": "Invented clusters of the Veyra Field with member photometry (dustkit demo). Not real objects.",
+        "clusters": members_truth,
+        "units": {"l": "deg", "b": "deg", "distance": "pc", "mu0": "mag", "ebv": "mag"},
+        "binary_fraction": 0.3, "field_fraction": 0.3, "parallax_zero_point_mas": -0.017, "rv": RV,
+    }
     for folder in out_dirs:
         folder = Path(folder)
         folder.mkdir(parents=True, exist_ok=True)
         cat.write(folder / CATALOGUE, format="ascii.csv", overwrite=True)
         targets.write(folder / TARGETS, format="ascii.csv", overwrite=True)
         (folder / FIELD).write_text(json.dumps(info, indent=1) + "\n")
+        members.write(folder / MEMBERS, format="ascii.csv", overwrite=True)
+        (folder / MEMBERS_TRUTH).write_text(json.dumps(members_info, indent=1) + "\n")
         print(f"wrote {folder / CATALOGUE} ({len(cat)} clusters), {folder / TARGETS} ({len(targets)} targets), "
               f"{folder / FIELD}")
 

@@ -22,6 +22,7 @@ from astropy.table import QTable, Table
 from dustkit.cli import main
 from dustkit.io import load_model
 from dustkit.layer import fit_layer
+from dustkit._errors import AssumptionWarning
 from dustkit.model import CAUTION, ExtinctionModel
 from dustkit.simulate import Cloud, DustField, simulate_tracers
 from dustkit.tracers import read_tracers
@@ -305,6 +306,11 @@ def test_demo_runs_the_whole_job(tmp_path):
     assert len(est) == 20 and int(np.isnan(np.asarray(est["av"], float)).sum()) == 1
     m = load_model(out_dir / "veyra_model.fits")
     assert m.grid_.nside == 32 and len(m.tracers_) == 396
+    # step 6: main-sequence fits of the invented member photometry, a tracer table read_tracers takes
+    fits = Table.read(out_dir / "veyra_member_fits.ecsv")
+    assert len(fits) == 6 and "Veyra Lantern" in out and "(truth" in out
+    with pytest.warns(AssumptionWarning, match="Several distance columns"):  # distance_pc and mu0: not an error
+        assert len(read_tracers(out_dir / "veyra_member_fits.ecsv").l) == 6
 
 
 def test_every_help_example_is_a_valid_command_line():

@@ -21,7 +21,7 @@ nbformat = pytest.importorskip("nbformat", reason="nbformat is needed to run the
 nbclient = pytest.importorskip("nbclient", reason="nbclient is needed to run the notebooks (pip install nbclient)")
 
 NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
-NAMES = ("explore_region.ipynb", "reddening_vs_distance.ipynb", "build_and_export.ipynb")
+NAMES = ("explore_region.ipynb", "reddening_vs_distance.ipynb", "build_and_export.ipynb", "members_to_map.ipynb")
 
 
 def _execute(name, tmp_path, monkeypatch):
@@ -158,3 +158,14 @@ def test_build_and_export_notebook(tmp_path, monkeypatch, jupyter_env):
 
     # the notebook's own check against the invented truth ran and printed its verdict
     assert re.search(r"median \|model - truth\| = [\d.]+ mag; \d+% of targets within 1 sigma", _stdout(nb))
+
+
+def test_members_to_map_notebook(tmp_path, monkeypatch, jupyter_env):
+    nb, out = _execute("members_to_map.ipynb", tmp_path, monkeypatch)
+    text = _stdout(nb)
+    # the six invented clusters are fitted, compared with their invented truth, and joined to a model
+    assert text.count("(truth") >= 12 and "Veyra Lantern" in text
+    assert "ebv_mu0_degenerate" in text  # the lone B, V diagram is flagged
+    fits = Table.read(out / "member_fits.ecsv")
+    assert len(fits) == 6 and {"mu0", "mu0_err", "ebv_mu0_corr", "distance_pc"} <= set(fits.colnames)
+    assert "model at the cluster: A_V" in text

@@ -6,6 +6,7 @@ simulated catalogue of an invented region (dustkit.simulate).
 """
 
 import importlib.util
+import warnings
 
 import matplotlib
 
@@ -295,3 +296,53 @@ def test_feature_marks_follow_the_step_search(explorer):
     _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
     explorer.features_widget.value = False
     assert not [ln for ln in explorer.profile_ax.lines if ln.get_gid() == "dustkit-feature"]
+
+
+# ----------------------------------------------------------------------------- cluster panel
+def test_cluster_panel_draws_what_the_plotting_function_draws(tmp_path):
+    # simulated members of an invented cluster (dustkit.clusters.simulate_members)
+    from dustkit import plotting_clusters
+    from dustkit.clusters import colour_residuals, fit_cluster, simulate_members
+    from dustkit.ui.cluster_panel import ClusterPanel
+
+    members = simulate_members(60, 0.5, 10.0, bands=("U", "B", "V"), rng=5, l=40.0, b=1.0)
+    fit = fit_cluster(members, evolved_cut=None)
+    panel = ClusterPanel(members, fit, name="Invented 1")
+    assert panel.ebv_widget.value == pytest.approx(fit.ebv, abs=0.005)
+    assert panel.mu0_widget.value == pytest.approx(fit.distance_modulus, abs=0.01)
+    assert panel.cc_ax is not None  # U-B is there
+
+    def same(ax, ref):
+        assert [ln.get_gid() for ln in ax.lines] == [ln.get_gid() for ln in ref.lines]
+        for a, b in zip(ax.lines, ref.lines):
+            np.testing.assert_allclose(np.asarray(a.get_xdata(), float), np.asarray(b.get_xdata(), float))
+            np.testing.assert_allclose(np.asarray(a.get_ydata(), float), np.asarray(b.get_ydata(), float))
+        assert (ax.get_xlabel(), ax.get_ylabel()) == (ref.get_xlabel(), ref.get_ylabel())
+        for a, b in zip(ax.collections, ref.collections):
+            np.testing.assert_allclose(a.get_offsets(), b.get_offsets())
+
+    # drive the sliders from Python: the figure follows, equal to the plotting function's
+    panel.ebv_widget.value = fit.ebv + 0.1
+    panel.mu0_widget.value = fit.distance_modulus - 0.3
+    assert panel.last_error is None
+    ref = plotting_clusters.plot_cluster_cmd(members, fit, ax=Figure(layout="constrained").add_subplot(),
+                                             **panel.plot_parameters())
+    same(panel.cmd_ax, ref)
+    assert panel.plot_parameters()["ebv"] == pytest.approx(fit.ebv + 0.1, abs=0.005)
+    # residuals update: too much reddening makes the members bluer than the sequence
+    res = colour_residuals(members, panel.ebv_widget.value, panel.mu0_widget.value)
+    assert panel.residual_median < -0.05
+    assert np.nanmedian(res[fit.weights > 0.5]) == pytest.approx(panel.residual_median)
+    # back to the fit, then accept: one tracer row with the fitted values
+    panel.reset_button.click()
+    assert panel.ebv_widget.value == pytest.approx(fit.ebv, abs=0.005)
+    assert abs(panel.residual_median) < 0.03
+    panel.accept_button.click()
+    table = panel.tracer_table
+    assert list(table["name"]) == ["Invented 1"] and table["mu0"][0] == pytest.approx(panel.mu0_widget.value)
+    assert table["l"][0] == pytest.approx(40.0, abs=0.05)
+    path = tmp_path / "t.ecsv"
+    table.write(path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert len(read_tracers(path).l) == 1
