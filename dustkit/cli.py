@@ -651,11 +651,12 @@ def _cmd_fit_clusters(args, out):
     """dustkit fit-clusters: member photometry -> one tracer row per cluster."""
     from .clusters import CAUTION as CLUSTER_CAUTION
     from .clusters import fit_clusters
-    from .io import _check_target, write_table
+    from ._lib.formats import check_target
+    from .io import write_table
     from .tracers import SUFFIX_FORMATS
 
     _check_law(args)
-    _check_target(args.output, args.overwrite)
+    check_target(args.output, args.overwrite)
     path = Path(args.members).expanduser()
     if not path.is_file():
         raise FileNotFoundError(f"No members table at '{path}'. Hint: check the path.")

@@ -36,6 +36,7 @@ LAYERS = [
     ("dustkit.exceptions",),
     ("dustkit._lib",),
     ("dustkit.laws", "dustkit.bands", "dustkit.grid", "dustkit.layer", "dustkit.tracers"),
+    ("dustkit.clusters",),  # member photometry -> reddening and distance (laws and bands only)
     ("dustkit.binned",),
     ("dustkit.answers",),
     ("dustkit.density",),  # the 3-D density model: answers through dustkit.answers
@@ -253,9 +254,18 @@ def test_shared_internals_import_nothing_but_the_exceptions():
 
 # Longer than the guide's limits (about 800 lines a module, 100 a function), and why.
 KNOWN_LONG_MODULES = {
+    "dustkit.cli": "every command's parser, help and printing in one place (fit-clusters and the demo's "
+                   "cluster step added); splitting the demo into its own module is the next step",
+    "dustkit.clusters.fit": "the mixture likelihood, the colour-colour fit and the joint fit share "
+                            "their helpers; to be split into likelihood and fitting modules",
 }
 KNOWN_LONG_FUNCTIONS = {
     ("dustkit.cli", "_cmd_demo"): "the demo's steps as the user sees them printed",
+    ("dustkit.clusters.members", "read_photometry"): "one recognition rule per photometric system, in order",
+    ("dustkit.cli", "build_parser"): "one block per command; the build command gained --model",
+    ("dustkit.clusters.fit", "_fit"): "the joint fit's steps (start, search, refine, curvature) in order; "
+                                      "to be split with the module",
+    ("dustkit.clusters.fit", "_optimise"): "coarse grid then local refinement of the joint fit",
 }
 
 

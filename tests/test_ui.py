@@ -301,7 +301,7 @@ def test_feature_marks_follow_the_step_search(explorer):
 # ----------------------------------------------------------------------------- cluster panel
 def test_cluster_panel_draws_what_the_plotting_function_draws(tmp_path):
     # simulated members of an invented cluster (dustkit.clusters.simulate_members)
-    from dustkit import plotting_clusters
+    from dustkit.plotting import clusters as cluster_plots
     from dustkit.clusters import colour_residuals, fit_cluster, simulate_members
     from dustkit.ui.cluster_panel import ClusterPanel
 
@@ -325,7 +325,7 @@ def test_cluster_panel_draws_what_the_plotting_function_draws(tmp_path):
     panel.ebv_widget.value = fit.ebv + 0.1
     panel.mu0_widget.value = fit.distance_modulus - 0.3
     assert panel.last_error is None
-    ref = plotting_clusters.plot_cluster_cmd(members, fit, ax=Figure(layout="constrained").add_subplot(),
+    ref = cluster_plots.plot_cluster_cmd(members, fit, ax=Figure(layout="constrained").add_subplot(),
                                              **panel.plot_parameters())
     same(panel.cmd_ax, ref)
     assert panel.plot_parameters()["ebv"] == pytest.approx(fit.ebv + 0.1, abs=0.005)

@@ -20,9 +20,9 @@ from astropy import units as u
 from astropy.coordinates import SkyCoord
 from astropy.table import Table
 
-from .._errors import CatalogError
-from .._progress import progress
-from .._validation import param_error
+from ..exceptions import CatalogError
+from .._lib.progress import progress
+from .._lib.validation import param_error
 from .fit import CAUTION, DegeneracyWarning, fit_cluster
 
 __all__ = ["fit_clusters", "tracer_row", "tracer_table", "TRACER_COLUMNS"]

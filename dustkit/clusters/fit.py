@@ -40,8 +40,8 @@ from astropy import units as u
 from scipy.optimize import minimize
 from scipy.special import log_ndtr
 
-from .._errors import CatalogError, DustkitWarning
-from .._validation import check_real, param_error
+from ..exceptions import CatalogError, DustkitWarning
+from .._lib.validation import check_real, param_error
 from ..bands import av_to_band
 from ..laws import get_law
 from .members import read_photometry
@@ -72,11 +72,12 @@ PARALLAX_FLOOR = 0.010
 #: Systematic offset of the mean sequence's colour (mag) used when one diagram cannot
 #: separate E(B-V) from mu0 (metallicity and age shift colours by a few hundredths).
 SEQUENCE_COLOUR_SYSTEMATIC = 0.05
-#: Floor added in quadrature to E(B-V)'s error (mag): the mixture models an unresolved binary
-#: as brighter at the same colour, while real companions are redder; on simulated clusters
-#: with 30% binaries (companions anywhere down the sequence) this leaves E(B-V) biased by a
-#: few mmag. The floor is calibrated on those simulations (tests/test_clusters.py).
-EBV_FLOOR = 0.006
+#: Floor added in quadrature to E(B-V)'s error (mag). The mixture models an unresolved binary
+#: as brighter at the same colour, while real companions are redder; with the reddening
+#: vector taken through the passbands at :data:`SEQUENCE_TEMPERATURE` the simulated clusters
+#: of tests/test_clusters.py (30% binaries) are covered as expected without a floor, so it is
+#: zero; raise it for member lists with many red companions.
+EBV_FLOOR = 0.0
 
 CAUTION = (
     "Main-sequence fits are estimates to check, not measurements: the mean dwarf sequence is for "
@@ -201,8 +202,17 @@ class ClusterFit:
 _RED_CACHE = {}
 
 
+#: Blackbody temperature (K) at which the passband coefficients of the reddening vector are
+#: taken: a late-B / early-A star, typical of the upper main sequence that carries U-B and the
+#: colour-magnitude fit of young clusters (cooler members' coefficients differ by a few per cent).
+SEQUENCE_TEMPERATURE = 10_000.0
+
+
 def reddening_curve(bands, law="ccm89", rv=3.1):
     """Extinction in each band as a function of E(B-V), through :func:`dustkit.bands.av_to_band`.
+
+    The coefficients are integrated over each band's passband for a star of
+    :data:`SEQUENCE_TEMPERATURE`.
 
     Whatever the band coefficients do with the amount of extinction (passband-integrated
     coefficients grow or shrink with A_V), this curve follows, because it is tabulated from
@@ -226,7 +236,8 @@ def reddening_curve(bands, law="ccm89", rv=3.1):
     if key not in _RED_CACHE:
         av = np.linspace(0.0, 15.0, 301)
         need = list(dict.fromkeys(list(bands) + ["B", "V"]))
-        a = {b: np.asarray(av_to_band(av, 0.0, b, law_obj, rv)[0], dtype=float) for b in need}
+        a = {b: np.asarray(av_to_band(av, 0.0, b, law_obj, rv, temperature=SEQUENCE_TEMPERATURE)[0], dtype=float)
+             for b in need}
         ebv = a["B"] - a["V"]
         table = np.column_stack([a[b] for b in bands]) if bands else np.zeros((av.size, 0))
         # a little room below zero (negative E(B-V) from noise), extrapolated linearly

@@ -14,8 +14,8 @@ import numpy as np
 from astropy import units as u
 from astropy.table import Table
 
-from .._errors import AssumptionWarning, CatalogError
-from .._validation import param_error
+from ..exceptions import AssumptionWarning, CatalogError
+from .._lib.validation import param_error
 from .sequence import SEQUENCE_BANDS
 
 __all__ = ["Photometry", "read_photometry", "DEFAULT_MAG_ERR"]

@@ -23,8 +23,8 @@ import numpy as np
 from astropy.table import Table
 from scipy.interpolate import PchipInterpolator
 
-from .._errors import CatalogError
-from .._validation import param_error
+from ..exceptions import CatalogError
+from .._lib.validation import param_error
 
 __all__ = ["MainSequence", "default_sequence", "read_sequence_file", "SEQUENCE_BANDS"]
 

@@ -7,7 +7,7 @@ binaries), so a fit can be checked against it. Nothing here describes a real clu
 import numpy as np
 from astropy.table import Table
 
-from .._validation import check_real, param_error
+from .._lib.validation import check_real, param_error
 from .fit import reddening_curve
 from .sequence import default_sequence
 

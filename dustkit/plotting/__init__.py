@@ -32,9 +32,12 @@ from .files import save_figure, settle_layout
 from .laws import plot_laws
 from .profiles import plot_profile
 from .sky import plot_sky, sky_figsize, sky_position, tracer_extent
+from .clusters import plot_cluster_cmd, plot_cluster_colour_colour
 
 __all__ = [
     "plot_profile",
+    "plot_cluster_cmd",
+    "plot_cluster_colour_colour",
     "plot_sky",
     "plot_face_on",
     "plot_laws",

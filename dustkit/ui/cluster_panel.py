@@ -1,7 +1,7 @@
 """A notebook panel for one cluster's main-sequence fit: look, adjust, accept.
 
 The panel shows the colour-magnitude diagram (and the colour-colour diagram when the
-members have U-B) drawn by :mod:`dustkit.plotting_clusters`, sliders for E(B-V) and mu0
+members have U-B) drawn by :mod:`dustkit.plotting.clusters`, sliders for E(B-V) and mu0
 that start at the fitted values (the sequence and the residuals follow them), and a button
 that adds the result as a row of a tracer table (:func:`dustkit.clusters.tracer_row`).
 It holds no science: every number comes from :mod:`dustkit.clusters`.
@@ -20,7 +20,7 @@ import ipywidgets as W
 import numpy as np
 from astropy.table import Table
 
-from .. import plotting_clusters
+from ..plotting import clusters as cluster_plots
 from ..clusters import CAUTION, colour_residuals, fit_cluster, read_photometry, tracer_row, tracer_table
 
 __all__ = ["ClusterPanel"]
@@ -102,7 +102,7 @@ class ClusterPanel:
 
     # ------------------------------------------------------------------ parameters
     def plot_parameters(self):
-        """Keyword arguments of :func:`dustkit.plotting_clusters.plot_cluster_cmd` for the current sliders."""
+        """Keyword arguments of :func:`dustkit.cluster_plots.plot_cluster_cmd` for the current sliders."""
         return dict(colour=self.colour, magnitude=self.magnitude, ebv=float(self.ebv_widget.value),
                     distance_modulus=float(self.mu0_widget.value))
 
@@ -130,10 +130,10 @@ class ClusterPanel:
     def _redraw(self):
         p = self.plot_parameters()
         self.cmd_fig.clear()
-        self.cmd_ax = plotting_clusters.plot_cluster_cmd(self.members, self.fit, ax=self.cmd_fig.add_subplot(), **p)
+        self.cmd_ax = cluster_plots.plot_cluster_cmd(self.members, self.fit, ax=self.cmd_fig.add_subplot(), **p)
         if self.cc_fig is not None:
             self.cc_fig.clear()
-            self.cc_ax = plotting_clusters.plot_cluster_colour_colour(self.members, self.fit, ebv=p["ebv"],
+            self.cc_ax = cluster_plots.plot_cluster_colour_colour(self.members, self.fit, ebv=p["ebv"],
                                                                       ax=self.cc_fig.add_subplot())
         res = colour_residuals(self.members, p["ebv"], p["distance_modulus"], self.colour[0], self.colour[1],
                                self.magnitude, law=self.fit.law, rv=self.fit.rv)

@@ -12,7 +12,7 @@ and differential reddening widens a cluster's sequence.
 
 import numpy as np
 
-from .clusters import read_photometry, reddening_curve, shifted_sequence
+from ..clusters import read_photometry, reddening_curve, shifted_sequence
 
 __all__ = ["plot_cluster_cmd", "plot_cluster_colour_colour", "CLUSTER_FIGURE_CAUTION"]
 
