@@ -748,7 +748,7 @@ def _cmd_demo(args, out):
 
     from .io import export_table, save_model, write_slice_maps, write_table
     from .layer import fit_layer
-    from .model import CAUTION, ExtinctionModel
+    from .model import CAUTION, build_model
     from .tracers import read_tracers
 
     t_start = time.perf_counter()
@@ -777,11 +777,12 @@ def _cmd_demo(args, out):
     truth = field["layer"]
     out(f"   (the invented truth: a0 = {truth['a0']} mag/kpc, h = {truth['h']} pc, z_sun = {truth['z_sun']} pc)", "")
 
-    out("3. Building the model (NSIDE 32, distance bins of 250 pc out to 5 kpc)")
-    model = ExtinctionModel(nside=32, distance_max=5000 * u.pc, distance_step=250 * u.pc,
-                            quiet=_quiet_flag(args)).fit(tracers)
-    out(f"   {len(model.informed_pixels())} sky pixels informed; sky smoothing {model.sky_passes_} passes; "
-        f"calibrated unresolved scatter {model.scatter_['root']:.3f} mag x sqrt(A_V / mag) + {100 * model.scatter_['frac']:.1f}% of A_V")
+    out("3. Building the 3-D density model (NSIDE 32, out to 5 kpc; the default for a catalogue of this size)")
+    model = build_model(tracers, nside=32, distance_max=5000 * u.pc, quiet=_quiet_flag(args))
+    rep = model.build_report_
+    out(f"   chosen by spatially blocked cross-validation: log-density amplitude {model.amplitude_:g}, "
+        f"correlation length {model.length_:.0f} pc; {rep['boosted_pixels']} pixels with a raised amplitude "
+        f"near clouds; built in {rep['seconds']:.0f} s")
     written.append(("model file", save_model(model, folder / "veyra_model.fits", overwrite=True)))
     written.append(("binned table (ECSV, units kept)", export_table(model, folder / "veyra_table.ecsv", overwrite=True)))
     written.append(("binned table (CSV, for spreadsheets)", export_table(model, folder / "veyra_table.csv", overwrite=True)))

@@ -192,3 +192,23 @@ def test_auto_choice_picks_the_density_model_for_cluster_catalogues():
     assert isinstance(m, DensityModel) and m.model_kind_ == "density"
     with pytest.raises(dustkit.ParameterError, match="distance_step"):
         build_model(tr, distance_step=100 * u.pc)
+
+
+def test_correlated_distance_and_av_errors_enter_the_likelihood():
+    # an apparent modulus makes the A_V error and the log-distance error correlated; the
+    # likelihood's variance must equal Var(A_true(d) + e_A) over the joint error distribution
+    # (Monte Carlo, common practice)
+    from dustkit.density.solver import TracerTerms, _noise, _nodes
+
+    x, w = _nodes(5)
+    slope = 1.0  # A_true grows linearly with the standardised log distance here
+    a_nodes = (1.0 + slope * 0.1 * x)[None, :]
+    rho, sa = -0.8, 0.1
+    terms = TracerTerms(np.zeros((1, 5, 1)), w, np.zeros(1, int), np.ones(1), np.array([sa]), np.zeros(1, bool),
+                        None, np.array([rho]), x)
+    _, var = _noise(terms, a_nodes, tau=0.0)
+    rng = np.random.default_rng(0)
+    z = rng.standard_normal((2, 400_000))
+    xd = z[0]                                           # true distance offset, standardised
+    e_a = sa * (-rho * xd + np.sqrt(1 - rho**2) * z[1])  # corr(e_A, e_d) = rho with e_d = -sigma x
+    assert var[0] == pytest.approx(np.var(1.0 + slope * 0.1 * xd + e_a), rel=0.02)

@@ -235,13 +235,15 @@ class DensityModel:
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
         weight, n_groups = duplicate_weights(l, b, d, av, ae)
+        corr = np.asarray(getattr(tracers, "av_distance_corr", None) if getattr(tracers, "av_distance_corr", None)
+                          is not None else np.zeros(n), float)
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         bar = progress(total=len(cands) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
         with bar:
             for amp, length in cands:
                 lat = Lattice(grid, pixels, amp, length)
-                terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight)
+                terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
                 full = fit_posterior(lat, terms, tau=0.1)  # the folds' fits start from it
                 resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
                 for k in range(folds_n):
@@ -274,7 +276,7 @@ class DensityModel:
             boost = _amplitude_boost(grid, pixels, l, b, rel, weight, amp)
             excess *= consistent
             lat = Lattice(grid, pixels, amp, length, boost)
-            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight)
+            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)

@@ -53,10 +53,16 @@ class TracerTerms:
     obs_err: np.ndarray
     censored: np.ndarray
     weight: np.ndarray = None  # likelihood weight: 1 / size of the tracer's near-duplicate group
+    corr: np.ndarray = None    # correlation of the A_V error with the log-distance error
+    nodes: np.ndarray = None   # the standardised log-distance offsets of the nodes
 
     def __post_init__(self):
         if self.weight is None:
             self.weight = np.ones(self.obs.size)
+        if self.corr is None:
+            self.corr = np.zeros(self.obs.size)
+        if self.nodes is None:
+            self.nodes = np.zeros(self.weights.size)
 
     @property
     def mean_coef(self):
@@ -64,10 +70,11 @@ class TracerTerms:
 
     def subset(self, mask):
         return TracerTerms(self.coef[mask], self.weights, self.col[mask], self.obs[mask], self.obs_err[mask],
-                           self.censored[mask], self.weight[mask])
+                           self.censored[mask], self.weight[mask], self.corr[mask], self.nodes)
 
 
-def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, weight=None, n_nodes=N_NODES):
+def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, weight=None, corr=None,
+                 n_nodes=N_NODES):
     """Build :class:`TracerTerms` for tracers on ``lattice``.
 
     ``layer_av(b_deg, d_pc)`` is the smooth layer's cumulative A_V (plain arrays).
@@ -87,8 +94,9 @@ def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, 
     reach = np.clip(dq[:, :, None], lo[None, None, :], hi[None, None, :])
     coef = layer_av(np.repeat(bb, q * lo.size), reach.ravel()).reshape(n, q, -1) - near
     coef = np.maximum(coef, 0.0)
+    corr = None if corr is None else np.clip(np.asarray(corr, float), -0.99, 0.99)
     return TracerTerms(coef, w, np.asarray(col, np.int64), np.asarray(av, float), np.asarray(av_err, float), censored,
-                       None if weight is None else np.asarray(weight, float))
+                       None if weight is None else np.asarray(weight, float), corr, x)
 
 
 def cumulative_at_nodes(terms, g):
@@ -114,7 +122,10 @@ class Posterior:
 
 def _noise(terms, a_nodes, tau):
     mean = a_nodes @ terms.weights
-    var_d = np.maximum((a_nodes**2) @ terms.weights - mean**2, 0.0)
+    # the extinction gained across the distance error, and (for correlated errors, as from an
+    # apparent modulus) its covariance with the A_V error: E[e_A | node] = -rho sigma_A x
+    cov = a_nodes @ (terms.weights * terms.nodes)
+    var_d = np.maximum((a_nodes**2) @ terms.weights - mean**2 - 2.0 * terms.corr * terms.obs_err * cov, 0.0)
     return mean, terms.obs_err**2 + var_d + (tau * mean) ** 2
 
 
