@@ -212,3 +212,14 @@ def test_correlated_distance_and_av_errors_enter_the_likelihood():
     xd = z[0]                                           # true distance offset, standardised
     e_a = sa * (-rho * xd + np.sqrt(1 - rho**2) * z[1])  # corr(e_A, e_d) = rho with e_d = -sigma x
     assert var[0] == pytest.approx(np.var(1.0 + slope * 0.1 * xd + e_a), rel=0.02)
+
+
+def test_a_change_of_rv_rescales_exactly_and_a_change_of_colour_refits(fitted):
+    _, m = fitted
+    m2 = m.with_law("ccm89", 3.6)
+    assert m2.how_.startswith("rescaled exactly")
+    # refitting from scratch at R_V = 3.6 gives the same answers (A_V = R_V E(B-V): definition of R_V)
+    ref = DensityModel(quiet=True).fit(m.tracers_.with_law("ccm89", 3.6))
+    l, b, d = np.linspace(30, 50, 50), np.linspace(-5, 5, 50), np.linspace(200, 2800, 50)
+    np.testing.assert_allclose(m2.av_pc(l, b, d)[0], ref.av_pc(l, b, d)[0], rtol=0.02, atol=0.01)
+    assert m2.layer_.a0 == pytest.approx(m.layer_.a0 * 3.6 / m.rv, rel=1e-12)

@@ -346,3 +346,16 @@ def test_cluster_panel_draws_what_the_plotting_function_draws(tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         assert len(read_tracers(path).l) == 1
+
+
+def test_a_density_model_follows_rv_changes_in_the_explorer(tracers):
+    from dustkit.density import DensityModel
+
+    model = DensityModel(nside=16, distance_max=3000 * u.pc, amplitudes=(0.5,), lengths=[150] * u.pc,
+                         n_samples=16, quiet=True).fit(tracers)
+    ex = Explorer(tracers, model=model, figures="static")
+    ex.rv_widget.value = 3.5
+    assert ex.last_error is None
+    assert ex.model.how_.startswith("rescaled exactly")  # E(B-V) tracers: A_V = R_V E(B-V)
+    assert "rescaled exactly" in ex.status.value
+    np.testing.assert_allclose(ex.model.av_, model.av_ * 3.5 / model.rv, rtol=1e-12)

@@ -244,7 +244,9 @@ class DensityModel:
             for amp, length in cands:
                 lat = Lattice(grid, pixels, amp, length)
                 terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
-                full = fit_posterior(lat, terms, tau=0.1)  # the folds' fits start from it
+                warm = getattr(self, "_warm_start", None)
+                warm = warm if warm is not None and warm.shape == lat.shape else None
+                full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
                 resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
                 for k in range(folds_n):
                     test = fold == k
@@ -281,6 +283,7 @@ class DensityModel:
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
+        self.mode_ = post.xi  # white-noise coordinates of the posterior mode (warm starts)
         self.unresolved_ = _unresolved(grid, l, b, d, excess, weight)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.unresolved_ + (self.tau_ * self.av_) ** 2)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "score", "rms", "coverage"))
@@ -501,11 +504,60 @@ class DensityModel:
                        **{f"layer_{k}": v for k, v in self.layer_.as_dict().items()}, "caution": CAUTION})
         return t
 
+    def with_law(self, law, rv):
+        """The model under another extinction law and R_V: rescaled exactly where that holds, else refitted.
+
+        Tracers given as E(B-V) have A_V = R_V E(B-V) under every law (the one E(B-V)
+        convention), so a change of R_V multiplies every tracer's A_V and error by the same
+        factor; the density model is then exactly the same with the layer, the answers and
+        their errors scaled by it (the likelihood, the prior and the cross-validation are
+        scale-free; exact as long as no tracer error sits on the 0.02 mag floor). Otherwise
+        (other colour excesses, apparent moduli) the model is refitted with the learned
+        amplitude and correlation length, warm-started from this model's posterior mode.
+        ``how_`` on the result says which.
+        """
+        import copy
+
+        self.check_fitted()
+        new_tracers = self.tracers_.with_law(law, rv)
+        old_av, new_av = np.asarray(self.tracers_.av, float), np.asarray(new_tracers.av, float)
+        old_err, new_err = np.asarray(self.tracers_.av_err, float), np.asarray(new_tracers.av_err, float)
+        ratio = float(new_tracers.rv) / float(self.tracers_.rv)
+        same_distances = np.array_equal(np.asarray(self.tracers_.distance), np.asarray(new_tracers.distance))
+        exact = (same_distances and np.allclose(new_av, ratio * old_av, rtol=1e-12, atol=0)
+                 and np.allclose(new_err, ratio * old_err, rtol=1e-12, atol=0)
+                 and np.all(np.minimum(old_err, new_err) >= AV_ERR_FLOOR))
+        if exact:
+            m = copy.copy(self)
+            for k in ("av_", "av_err_", "posterior_err_", "prior_err_", "differential_"):
+                setattr(m, k, getattr(self, k) * ratio)
+            m.unresolved_ = self.unresolved_ * ratio**2
+            m.samples_ = (self.samples_ * np.float32(ratio)).astype(np.float32)
+            lay = self.layer_
+            m.layer_ = DustLayer(a0=lay.a0 * ratio, h=lay.h, z_sun=lay.z_sun, a0_err=lay.a0_err * ratio,
+                                 h_err=lay.h_err, z_sun_err=lay.z_sun_err, scatter=lay.scatter * ratio,
+                                 n_used=lay.n_used, covariance=_scaled_cov(lay.covariance, ratio))
+            m.tracers_ = new_tracers
+            m.how_ = f"rescaled exactly by R_V'/R_V = {ratio:.4f}"
+            return m
+        m = DensityModel(**{**self.get_params(), "amplitudes": (self.amplitude_,),
+                            "lengths": (self.length_,) * u.pc})
+        m._warm_start = getattr(self, "mode_", None)
+        m.fit(new_tracers)
+        m.how_ = "refitted with the learned amplitude and correlation length"
+        return m
+
     def __repr__(self):
         if not hasattr(self, "av_"):
             return f"DensityModel(nside={self.nside}, not fitted)"
         return (f"DensityModel({self.grid_!r}, {len(self.tracers_)} tracers, {self.layer_}, "
                 f"s={self.amplitude_:.2f}, L={self.length_:.0f} pc, tau={self.tau_:.3f})")
+
+
+def _scaled_cov(cov, ratio):
+    """Layer covariance (a0, h, z_sun) after multiplying a0 by ``ratio``."""
+    scale = np.array([ratio, 1.0, 1.0])
+    return np.asarray(cov, float) * scale[:, None] * scale[None, :]
 
 
 def _layer_increments(layer, b_deg, edges):
@@ -608,7 +660,7 @@ def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_wei
 
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
-                 "differential_", "samples_", "active_pixels_", "boost_")
+                 "differential_", "samples_", "active_pixels_", "boost_", "mode_")
 _STATE_SCALARS = ("amplitude_", "length_", "tau_")
 
 

@@ -131,6 +131,9 @@ class Explorer:
 
         self._build_widgets(nside, step, dmax)
         self.model = None
+        # a 3-D density model given here follows law and R_V changes itself (exact rescaling
+        # for E(B-V) tracers, else a refit with its learned prior): DensityModel.with_law
+        self._density_base = model if (model is not None and hasattr(model, "with_law")) else None
         if model is not None:
             self.model = model
             self.tracers = model.tracers_
@@ -486,13 +489,18 @@ class Explorer:
             base = self._base_tracers
             tracers = base if (law == base.law and abs(rv - base.rv) < 1e-9) else base.with_law(law, rv)
             self.progress.value = 1
-            self._set_status(f"Building the model of {len(tracers)} tracers (NSIDE {nside}) ...")
-            model = ExtinctionModel(nside=nside, distance_max=dmax * u.pc, distance_step=step * u.pc,
-                                    **self._model_params).fit(tracers)
+            dens = self._density_base
+            if dens is not None and nside == dens.grid_.nside and dmax == float(dens.grid_.distance_edges[-1]):
+                self._set_status(f"Updating the density model of {len(tracers)} tracers for {law}, R_V = {rv:g} ...")
+                model = dens.with_law(law, rv)
+            else:
+                self._set_status(f"Building the model of {len(tracers)} tracers (NSIDE {nside}) ...")
+                model = ExtinctionModel(nside=nside, distance_max=dmax * u.pc, distance_step=step * u.pc,
+                                        **self._model_params).fit(tracers)
             self._cache[key] = model
             while len(self._cache) > self._cache_size:
                 self._cache.popitem(last=False)
-            how = "built"
+            how = getattr(model, "how_", "built")
         self.progress.value = 2
         self.model = model
         self.tracers = model.tracers_
