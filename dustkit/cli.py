@@ -159,8 +159,9 @@ def build_parser():
     p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue (CSV, ECSV, FITS table, VOTable, Parquet)")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.fits", help="model file to write")
     grid = _grid_defaults()
-    p.add_argument("--nside", type=int, default=grid["nside"],
-                   help=f"HEALPix NSIDE of the sky pixels (power of two; default {grid['nside']})")
+    p.add_argument("--nside", type=int, default=None,
+                   help=f"HEALPix NSIDE of the sky pixels (power of two; default: the binned model {grid['nside']}, "
+                        "the density model 32 for cluster catalogues and finer for dense samples)")
     p.add_argument("--distance-max", type=float, metavar="PC",
                    help=f"last distance edge in pc (default {grid['distance_max']:g})")
     p.add_argument("--distance-step", type=float, metavar="PC",
@@ -323,8 +324,10 @@ def _grid_options(args):
 
     from ._lib.validation import check_nside, check_real
 
-    check_nside(args.nside)
-    kw = {"nside": args.nside}
+    kw = {}
+    if args.nside is not None:  # each model has its own default (the density model's adapts to the catalogue)
+        check_nside(args.nside)
+        kw["nside"] = args.nside
     if args.distance_edges is not None:
         if args.distance_max is not None or args.distance_step is not None:
             raise _UsageError("give either --distance-edges or --distance-max/--distance-step, not both")
@@ -336,7 +339,7 @@ def _grid_options(args):
                 f"Got {args.distance_edges!r} instead") from None
         from .grid import Grid
 
-        Grid(args.nside, edges)  # validates: increasing, non-negative, at least two
+        Grid(args.nside or 32, edges)  # validates: increasing, non-negative, at least two
         kw["distance_edges"] = edges * u.pc
     else:
         defaults = _grid_defaults()
@@ -456,7 +459,7 @@ def _cmd_build(args, out):
                                                "20000 tracers, the binned model above)")
         if args.model == "auto" and args.distance_step is not None:
             kind, why = "binned", " (--distance-step asks for the binned model's fixed bins)"
-        out(f"Building the {kind} model (NSIDE {args.nside}) from {len(tracers)} tracers{why} ...")
+        out(f"Building the {kind} model from {len(tracers)} tracers{why} ...")
         if kind == "density":
             kw = {k: v for k, v in kw.items() if k != "distance_step"}
             if args.distance_step is not None:
@@ -489,7 +492,7 @@ def _build_out_of_core(args, kw, columns, out):
     chunk = 1_000_000 if args.chunk_size is None else args.chunk_size
     if chunk < 1:
         raise _UsageError(f"--chunk-size must be a positive number of rows. Got {chunk} instead")
-    out(f"Building out of core from {args.catalog} in chunks of {chunk} rows (NSIDE {args.nside}) ...")
+    out(f"Building out of core from {args.catalog} in chunks of {chunk} rows (NSIDE {args.nside or _grid_defaults()['nside']}) ...")
     client = None
     if args.scheduler:
         from distributed import Client

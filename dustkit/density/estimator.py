@@ -20,7 +20,8 @@ from ..layer import DustLayer, fit_layer
 from .lattice import Lattice, active_pixels, chord, unit_vectors
 from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, tracer_terms
 
-__all__ = ["DensityModel", "default_distance_edges", "duplicate_weights", "density_state", "density_from_state"]
+__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
+           "density_from_state"]
 
 #: Floor on a tracer's A_V error (mag): no measurement of reddening is better than this.
 AV_ERR_FLOOR = 0.02
@@ -39,6 +40,20 @@ def default_distance_edges(distance_max=6000.0, near_step=50.0, growth=0.1):
     if distance_max - edges[-2] < 0.3 * max(near_step, growth * edges[-2]):
         edges.pop(-2)
     return np.asarray(edges)
+
+
+def choose_nside(l_deg, b_deg, candidates=(128, 64), per_pixel=8):
+    """NSIDE for a catalogue: the finest candidate whose occupied pixels hold ``per_pixel`` tracers (median), else 32.
+
+    Cluster catalogues (a few thousand over the Galactic plane) get 32 (1.8 deg pixels);
+    dense field-star samples finer pixels, where the data resolve smaller structure.
+    """
+    for nside in candidates:
+        pix = healpix.ang2pix(nside, l_deg, b_deg)
+        counts = np.bincount(pix)
+        if np.median(counts[counts > 0]) >= per_pixel:
+            return nside
+    return 32
 
 
 def duplicate_weights(l, b, d, av, av_err):
@@ -95,8 +110,9 @@ class DensityModel:
 
     Parameters
     ----------
-    nside : int
-        HEALPix NSIDE of the cells (default 32, 1.8 deg).
+    nside : int or 'auto'
+        HEALPix NSIDE of the cells. ``'auto'`` (default): 32 (1.8 deg pixels) for catalogues of
+        clusters, finer where tracers are dense (:func:`choose_nside`).
     distance_max : Quantity['length']
         Far edge of the grid (default 6 kpc); the bins grow from 50 pc with distance
         (:func:`default_distance_edges`) unless ``distance_edges`` is given.
@@ -155,7 +171,7 @@ class DensityModel:
 
     def __init__(
         self,
-        nside=32,
+        nside="auto",
         distance_max=6000 * u.pc,
         distance_edges=None,
         amplitudes=(0.1, 0.25, 0.6),
@@ -194,16 +210,22 @@ class DensityModel:
             setattr(self, k, v)
         return self
 
-    def make_grid(self):
-        """The HEALPix x distance grid these parameters describe (checked)."""
-        check_nside(self.nside)
+    def make_grid(self, tracers=None):
+        """The HEALPix x distance grid these parameters describe (checked); ``nside='auto'`` needs the tracers."""
+        nside = self.nside
+        if isinstance(nside, str) and nside == "auto":
+            if tracers is None:
+                nside = 32
+            else:
+                nside = choose_nside(np.asarray(tracers.l, float), np.asarray(tracers.b, float))
+        check_nside(nside)
         if self.distance_edges is not None:
             edges = to_value("distance_edges", self.distance_edges, u.pc, default_unit=u.pc)
         else:
             dmax = float(to_value("distance_max", self.distance_max, u.pc, default_unit=u.pc))
             check_real("distance_max", dmax, 100.0, 1e5)
             edges = default_distance_edges(dmax)
-        return Grid(self.nside, edges, "ring")
+        return Grid(nside, edges, "ring")
 
     def _candidates(self):
         amps = [check_real("amplitudes", float(a), 0.0, 5.0, low_inclusive=False) for a in np.atleast_1d(self.amplitudes)]
@@ -216,7 +238,7 @@ class DensityModel:
     def fit(self, tracers):
         """Fit the density model to a :class:`~dustkit.tracers.TracerSet`; returns ``self``."""
         t_start = time.perf_counter()
-        grid = self.make_grid()
+        grid = self.make_grid(tracers)
         folds_n = check_int("n_folds", self.n_folds, 2, 20)
         n_samples = check_int("n_samples", self.n_samples, 4, 4096)
         radius = float(to_value("active_radius", self.active_radius, u.deg, default_unit=u.deg))
