@@ -54,7 +54,7 @@ from ._lib.progress import progress
 from ._lib.validation import check_choice, check_int, to_value
 from .answers import CAUTION, av_quantities, binned_av, profile_table, query_table, sky_positions
 from .binned.finish import finish
-from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_rows, heldout_rows
+from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, fold_of_rows, heldout_rows
 from .binned.statistics import Statistics, monte_carlo_statistics, nominal_statistics, tracer_counts
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
@@ -240,10 +240,10 @@ class ExtinctionModel:
         held = heldout_rows(n, folds, self.random_state)
         k_fold = held is None
         if k_fold:
-            # every tracer held out once; folds from a hash of the row number, as in the
-            # chunked builds (dustkit.scale): the same tracers give the same model whichever
-            # way they are read
-            fold = fold_of_rows(np.arange(n), folds, self.random_state)
+            # every tracer held out once; spatially blocked folds from a hash of the tracer's
+            # block of space, as in the chunked builds (dustkit.scale): the same tracers give
+            # the same model whichever way they are read, and duplicates share a fold
+            fold = fold_of_positions(tracers.l, tracers.b, tracers.distance, folds, self.random_state)
             held, held_fold = np.arange(n), fold
         else:
             held_fold = np.zeros(held.size, dtype=np.int64)

@@ -73,7 +73,7 @@ from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
 from .tracers.rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law, chunk_reasons, validate_rows
-from .binned.folds import HeldOut, fold_of_rows, row_hash, seed_of
+from .binned.folds import HeldOut, fold_of_positions, fold_of_rows, row_hash, seed_of
 from .binned.statistics import Statistics, nominal_statistics
 from .model import ExtinctionModel
 
@@ -381,7 +381,7 @@ def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, r
     if l.size == 0:
         return acc
     if held is None:
-        fold, local = fold_of_rows(offset + np.arange(l.size), n_folds, seed), None
+        fold, local = fold_of_positions(l, b, d, n_folds, seed), None
     else:
         fold = None
         local = held[np.searchsorted(held, offset):np.searchsorted(held, offset + l.size)] - offset
@@ -617,8 +617,10 @@ def build_from_parquet(
     lap("pass 2 (sufficient statistics)")
 
     # finish exactly as in memory, on the held-out rows
-    held_fold = fold_of_rows(held_rows, n_folds, seed) if k_fold else np.zeros(held_rows.size, dtype=np.int64)
-    heldout = HeldOut(*data[:, np.searchsorted(gidx_sorted, held_rows)], held_fold)
+    held_data = data[:, np.searchsorted(gidx_sorted, held_rows)]
+    held_fold = (fold_of_positions(held_data[0], held_data[1], held_data[2], n_folds, seed) if k_fold
+                 else np.zeros(held_rows.size, dtype=np.int64))
+    heldout = HeldOut(*held_data, held_fold)
     plan = model.fit_plan(n_used)
     rng = np.random.default_rng(model.random_state)
     statistics = Statistics(*sums)
