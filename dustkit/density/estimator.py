@@ -365,7 +365,22 @@ class DensityModel:
                                       "saved model with dustkit.load_model(path).")
 
     def _nodes(self, values, pix, wgt, k, f):
-        return np.sum(wgt * ((1 - f) * values[pix, k] + f * values[pix, k + 1]), axis=0)
+        """Bilinear on the sky, linear in distance: ``values`` (npix, n_edges) at the positions."""
+        flat = values.reshape(-1)
+        lo = pix * values.shape[1] + k
+        return np.sum(wgt * ((1 - f) * flat[lo] + f * flat[lo + 1]), axis=0)
+
+    def _layer_nodes(self):
+        """The layer's cumulative A_V at every pixel centre and edge (derived, cached)."""
+        cached = getattr(self, "_layer_nodes_cache", None)
+        if cached is None or cached[0] is not self.layer_:
+            g = self.grid_
+            _, bc = g.pixel_centres()
+            e = g.distance_edges
+            table = self.layer_.av_pc(np.repeat(bc, e.size), np.tile(e, bc.size)).reshape(bc.size, e.size)
+            cached = (self.layer_, table)
+            self._layer_nodes_cache = cached
+        return cached[1]
 
     def _locate(self, l, b, d):
         grid = self.grid_
@@ -375,9 +390,8 @@ class DensityModel:
         k = np.minimum(k, e.size - 2)
         f = np.clip(f, 0.0, 1.0)
         # the layer's latitude dependence inside a pixel: scale by layer(target) / layer(pixel centres)
-        _, bc = grid.pixel_centres(pix.ravel())
         dd = np.minimum(d, e[-1])
-        lay_c = np.sum(wgt * self.layer_.av_pc(bc.reshape(pix.shape), np.broadcast_to(dd, pix.shape)), axis=0)
+        lay_c = self._nodes(self._layer_nodes(), pix, wgt, k, f)
         lay_t = self.layer_.av_pc(b, dd)
         ratio = np.where(lay_c > 0, lay_t / np.maximum(lay_c, 1e-300), 1.0)
         return pix, wgt, k, f, ratio, lay_t
