@@ -153,7 +153,7 @@ def test_distance_modulus_worked_values(mu, d_pc):
     # mu0 = 5 log10(d/pc) - 5, the definition of the distance modulus (common practice):
     # 10 pc -> 0, 1 kpc -> 10, 2.5 kpc -> 11.98970 (computed)
     t = Table({"l": [30.0], "b": [1.0], "DM": [mu], "e_DM": [0.1], "ebv": [0.3], "e_ebv": [0.02]})
-    ts = read_tracers(t)
+    ts = read_tracers(t, distance_modulus_kind="true")
     assert ts.distance_kind == "distance modulus"
     assert ts.distance[0] == pytest.approx(d_pc, rel=2e-6)
     # sigma_d = d ln(10)/5 sigma_mu (first-order propagation, common practice)
@@ -170,54 +170,101 @@ def test_distance_modulus_round_trip(d):
     assert ts.distance[0] == pytest.approx(d, rel=1e-10)
 
 
+def _edsd_mode_kpc(plx, sig, L):
+    # Bailer-Jones 2015, PASP 127, 994, eq. for the mode under the exponentially decreasing space
+    # density prior: r^3 / L - 2 r^2 + (plx / sig^2) r - 1 / sig^2 = 0 (r in kpc, plx in mas);
+    # the real positive root with the highest posterior, from numpy's polynomial roots
+    roots = np.roots([1.0 / L, -2.0, plx / sig**2, -1.0 / sig**2])
+    roots = roots[(np.abs(roots.imag) < 1e-9) & (roots.real > 0)].real
+
+    def logpost(r):
+        return 2 * np.log(r) - r / L - (plx - 1 / r) ** 2 / (2 * sig**2)
+
+    return roots[np.argmax(logpost(roots))]
+
+
+def test_parallax_prior_mode_worked_value_and_cubic():
+    # Bailer-Jones 2015, PASP 127, 994: parallax 0.2 +- 0.1 mas, L = 1.35 kpc -> mode 4.11 kpc
+    t = Table({"l": [10.0], "b": [0.0], "plx": [0.2] * u.mas, "e_plx": [0.1] * u.mas,
+               "ebv": [0.5], "e_ebv": [0.02]})
+    ts = read_tracers(t, parallax_err_floor=0 * u.mas)
+    assert ts.distance[0] / 1000 == pytest.approx(4.11, abs=0.005)
+    assert ts.distance[0] / 1000 == pytest.approx(_edsd_mode_kpc(0.2, 0.1, 1.35), rel=1e-9)
+    # the asymmetric uncertainty: the 84th percentile lies further from the mode than the 16th
+    assert ts.distance_err_high[0] > ts.distance_err_low[0] > 0
+    assert ts.distance_err[0] == pytest.approx(0.5 * (ts.distance_err_low[0] + ts.distance_err_high[0]))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.floats(-1.0, 5.0), st.floats(0.005, 1.0), st.floats(0.3, 5.0))
+def test_parallax_prior_mode_is_the_cubic_root(plx, sig, L):
+    from dustkit.tracers.distances import parallax_posterior
+
+    mode, p16, p84 = parallax_posterior([plx], [sig], L)
+    assert mode[0] / 1000 == pytest.approx(_edsd_mode_kpc(plx, sig, L), rel=1e-7)
+    assert p84[0] > p16[0] and p84[0] > mode[0]
+
+
+def test_parallax_percentiles_match_direct_integration():
+    # the 16th/84th percentiles against a fine trapezoid integration of the same posterior (computed)
+    from dustkit.tracers.distances import parallax_posterior
+
+    for plx, sig in [(0.2, 0.1), (-0.1, 0.2), (1.0, 0.3)]:
+        r = np.linspace(1e-3, 60.0, 600001)
+        lp = 2 * np.log(r) - r / 1.35 - (plx - 1 / r) ** 2 / (2 * sig**2)
+        p = np.exp(lp - lp.max())
+        cdf = np.cumsum(p)
+        cdf /= cdf[-1]
+        q16, q84 = np.interp([0.16, 0.84], cdf, r)
+        _, p16, p84 = parallax_posterior([plx], [sig], 1.35)
+        assert p16[0] / 1000 == pytest.approx(q16, rel=5e-3)
+        assert p84[0] / 1000 == pytest.approx(q84, rel=5e-3)
+
+
 def test_parallax_with_gaia_edr3_zero_point():
     # corrected parallax = parallax - zero point, zero point -0.017 mas (Lindegren et al. 2021, A&A 649, A4);
-    # d = 1000 / parallax[mas] pc (common practice).
+    # a 1% parallax: the prior-based mode is within 0.1% of 1000 / parallax pc (common practice)
     t = Table({"l": [10.0, 20.0], "b": [0.0, 1.0], "parallax": [1.983, 0.983] * u.mas,
                "parallax_error": [0.02, 0.01] * u.mas, "ebv": [0.5, 0.6], "ebv_err": [0.02, 0.02]})
     ts = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT * u.mas)
-    np.testing.assert_allclose(ts.distance, [500.0, 1000.0], rtol=1e-12)
-    # sigma_d = 1000 sigma_plx / plx^2 pc
-    np.testing.assert_allclose(ts.distance_err, [1000 * 0.02 / 2.0**2, 1000 * 0.01 / 1.0**2], rtol=1e-12)
+    np.testing.assert_allclose(ts.distance, [500.0, 1000.0], rtol=1e-3)
+    floor = 0.01  # the default systematic floor, mas, added in quadrature
+    sig = np.hypot([0.02, 0.01], floor)
+    np.testing.assert_allclose(ts.distance / 1000, [_edsd_mode_kpc(p, s, 1.35) for p, s in zip([2.0, 1.0], sig)],
+                               rtol=1e-9)
+    # sigma_d close to 1000 sigma_plx / plx^2 pc for precise parallaxes
+    np.testing.assert_allclose(ts.distance_err, 1000 * sig / np.array([2.0, 1.0]) ** 2, rtol=0.02)
     assert ts.distance_kind == "parallax"
     assert any("zero point -0.017 mas" in a for a in ts.meta["assumptions"])
-    # a plain number for the zero point is taken as mas
+    assert any("Bailer-Jones 2015" in a and "0.01 mas" in a for a in ts.meta["assumptions"])
     ts2 = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT)
     np.testing.assert_array_equal(ts2.distance, ts.distance)
-    # a parallax column in arcsec is converted to mas
     t["parallax"] = t["parallax"].to(u.arcsec)
     t["parallax_error"] = t["parallax_error"].to(u.arcsec)
     ts3 = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT * u.mas)
-    np.testing.assert_allclose(ts3.distance, [500.0, 1000.0], rtol=1e-12)
+    np.testing.assert_allclose(ts3.distance, ts.distance, rtol=1e-9)
 
 
-def test_parallax_zero_point_decides_rejection():
-    # plx - zp <= 0 is rejected: with zp = -0.017 mas, -0.010 mas becomes +0.007 mas (kept, 142857 pc)
-    # while -0.020 mas stays negative and -0.017 mas becomes 0 (both rejected); Lindegren et al. 2021 zero point.
-    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "plx": [-0.010, -0.020, -0.017] * u.mas,
-               "e_plx": [0.001, 0.001, 0.001] * u.mas, "ebv": [0.1, 0.1, 0.1], "e_ebv": [0.01] * 3})
-    with pytest.warns(RowsRejectedWarning, match=r"2 of 3 rows rejected"):
-        ts = read_tracers(t, parallax_zero_point=-0.017 * u.mas)
-    assert len(ts) == 1
-    assert ts.distance[0] == pytest.approx(1000 / 0.007, rel=1e-9)
-    rej = ts.rejected
-    assert list(rej["row"]) == [1, 2]
-    assert all("parallax" in r and "<= 0" in r and "'plx'" in r for r in rej["reason"])
-    assert list(rej["column"]) == ["plx", "plx"]
-    assert list(rej["value"]) == ["-0.02", "-0.017"]
+def test_parallaxes_at_or_below_zero_get_prior_distances():
+    # every parallax with an error is kept (rejecting plx <= 0 biases the far sample, Bailer-Jones 2015);
+    # a parallax <= 0 without an error cannot be used and is rejected with its reason
+    t = Table({"l": [1.0, 2.0, 3.0, 4.0], "b": [0.0, 0.0, 0.0, 0.0], "plx": [-0.010, -0.020, 0.0, -0.1] * u.mas,
+               "e_plx": [0.05, 0.05, 0.05, np.nan] * u.mas, "ebv": [0.1] * 4, "e_ebv": [0.01] * 4})
+    with pytest.warns(RowsRejectedWarning, match=r"1 of 4 rows rejected"):
+        ts = _quiet_assumptions(read_tracers, t)
+    assert len(ts) == 3
+    # the prior's mode: the root of the cubic of Bailer-Jones 2015 (sigma with the 0.01 mas floor)
+    sig = np.hypot(0.05, 0.01)
+    np.testing.assert_allclose(ts.distance / 1000, [_edsd_mode_kpc(p, sig, 1.35) for p in (-0.01, -0.02, 0.0)],
+                               rtol=1e-9)
+    assert np.all(np.isfinite(ts.distance_err_low) & np.isfinite(ts.distance_err_high))
+    assert list(ts.rejected["row"]) == [3] and "without an error" in ts.rejected["reason"][0]
 
 
-def test_noisy_parallaxes_warn_and_say_why():
-    # 1/parallax is biased once the fractional error exceeds ~20% (Bailer-Jones 2015, PASP 127, 994)
-    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "plx": [1.0, 1.0, 1.0] * u.mas,
-               "e_plx": [0.05, 0.25, 0.5] * u.mas, "ebv": [0.1, 0.1, 0.1], "e_ebv": [0.01] * 3})
-    with pytest.warns(AssumptionWarning) as record:
-        ts = read_tracers(t)
-    texts = [str(w.message) for w in record if issubclass(w.category, AssumptionWarning)]
-    noisy = [m for m in texts if "fractional error" in m]
-    assert len(noisy) == 1
-    assert "2 of 3" in noisy[0] and "20%" in noisy[0] and "Bailer-Jones 2015" in noisy[0] and "biased" in noisy[0]
-    assert len(ts) == 3  # kept, not dropped
+def _quiet_assumptions(fn, *a, **k):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AssumptionWarning)
+        return fn(*a, **k)
 
 
 def test_apparent_modulus_corrected_by_av():
@@ -254,16 +301,16 @@ def test_distance_units_from_column_name_argument_and_bare_number():
     np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
     ts = _quiet(read_tracers, Table({**base, "Dist": [1.5, 2.0]}), distance_unit=u.kpc)
     np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
-    # a bare number is taken as pc, with a warning that names the assumption and says it looks like kpc
-    with pytest.warns(AssumptionWarning, match=r"no unit; assuming the distances are in pc.*looks like kpc"):
-        ts = read_tracers(Table({**base, "Dist": [1.5, 2.0], "e_Dist": [0.1, 0.1]}))
-    np.testing.assert_allclose(ts.distance, [1.5, 2.0])
-    # ... and does not claim kpc when the values look like pc
+    # bare numbers with a median below 30 are kpc read as pc: no cluster is that near (fact of the
+    # trade: the nearest star clusters are a few tens of pc away) -> the read stops, naming column, median, fix
+    with pytest.raises(CatalogError, match=r"'Dist'.*median value of 1\.75.*distance_unit='kpc'.*--distance-unit kpc"):
+        read_tracers(Table({**base, "Dist": [1.5, 2.0], "e_Dist": [0.1, 0.1]}))
+    # ... while distances that look like pc are read as pc, with the assumption said once
     with pytest.warns(AssumptionWarning) as record:
-        read_tracers(Table({**base, "Dist": [1500.0, 2000.0], "e_Dist": [10.0, 10.0]}))
+        ts = read_tracers(Table({**base, "Dist": [1500.0, 2000.0], "e_Dist": [10.0, 10.0]}))
     msgs = [str(w.message) for w in record]
     assert any("assuming the distances are in pc" in m for m in msgs)
-    assert not any("looks like kpc" in m for m in msgs)
+    np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
 
 
 def test_kpc_pc_round_trip_through_to_table():
@@ -578,7 +625,8 @@ def test_explicit_mapping_wins_over_recognition():
     t["plx"] = 1000.0 / np.asarray(t["Dist"])
     ts = _quiet(read_tracers, t, columns={"ebv": "Red", "parallax": "plx", "name": "e_EBV"})
     np.testing.assert_allclose(ts.excess, np.asarray(t["Red"]))
-    np.testing.assert_allclose(ts.distance, np.asarray(t["Dist"]), rtol=1e-12)
+    # the parallax (10% default error) is used through the distance prior: mode near 1 / parallax
+    np.testing.assert_allclose(ts.distance, np.asarray(t["Dist"]), rtol=0.05)
     assert ts.distance_kind == "parallax"
     assert ts.meta["columns"]["ebv"] == "Red" and ts.meta["columns"]["parallax"] == "plx"
     np.testing.assert_array_equal(ts.name, np.asarray(t["e_EBV"]).astype(str))
@@ -797,3 +845,69 @@ def test_galactic_preferred_over_equatorial_and_empty_names_filled(tmp_path):
     assert any("Galactic columns ('_Glon', '_Glat') used" in a for a in ts.meta["assumptions"])
     # a missing name becomes 'row <input row index>'
     np.testing.assert_array_equal(ts.name, ["Invented-A", "row 1"])
+
+
+# ======================================================================================
+# Modulus kinds and the A_V - distance correlation
+# ======================================================================================
+
+
+@pytest.mark.parametrize("name", ["dm", "distmod", "modulus", "distance_modulus", "DM"])
+def test_ambiguous_modulus_name_is_refused(name):
+    # (m-M)_V = mu0 + A_V (definition, common practice): a name that does not say which is not guessed
+    t = Table({"l": [30.0], "b": [1.0], name: [11.0], "ebv": [0.3], "e_ebv": [0.02]})
+    with pytest.raises(CatalogError, match=rf"{name!r}.*distance_modulus_kind='true' or 'apparent'.*--modulus-kind"):
+        _quiet_assumptions(read_tracers, t)
+    # ... and read as asked: mu0 = 11 -> 10^(11/5 + 1) pc; apparent: mu0 = 11 - 3.1 * 0.3 (computed)
+    ts = _quiet_assumptions(read_tracers, t, distance_modulus_kind="true")
+    assert ts.distance[0] == pytest.approx(10 ** (11 / 5 + 1), rel=1e-9) and ts.distance_kind == "distance modulus"
+    ts = _quiet_assumptions(read_tracers, t, distance_modulus_kind="apparent")
+    assert ts.distance[0] == pytest.approx(10 ** ((11 - 0.93) / 5 + 1), rel=1e-9)
+    assert ts.distance_kind == "apparent V modulus"
+    with pytest.raises(ParameterError, match="distance_modulus_kind"):
+        read_tracers(t, distance_modulus_kind="V")
+
+
+@pytest.mark.parametrize("name, kind", [("(m-M)0", "distance modulus"), ("mu0", "distance modulus"),
+                                        ("dm0", "distance modulus"), ("(m-M)V", "apparent V modulus"),
+                                        ("mM_V", "apparent V modulus"), ("apparent_modulus", "apparent V modulus")])
+def test_modulus_names_that_say_which(name, kind):
+    t = Table({"l": [30.0], "b": [1.0], name: [11.0], "ebv": [0.3], "e_ebv": [0.02]})
+    ts = _quiet_assumptions(read_tracers, t)
+    assert ts.distance_kind == kind
+
+
+def test_apparent_modulus_carries_the_anticorrelation():
+    # mu0 = (m-M)_V - A_V, so cov(A_V, mu0) = -var(A_V) and corr = -sigma_AV / sqrt(sigma_mV^2 + sigma_AV^2);
+    # ln d = mu0 ln10 / 5 + const keeps it (error propagation, common practice)
+    t = Table({"l": [40.0, 41.0], "b": [2.0, 2.0], "(m-M)V": [11.55, 12.0], "e_(m-M)V": [0.1, 0.2],
+               "E(B-V)": [0.5, 0.4], "e_E(B-V)": [0.03, 0.05]})
+    ts = read_tracers(t)
+    sav = 3.1 * np.array([0.03, 0.05])
+    np.testing.assert_allclose(ts.av_distance_corr, -sav / np.hypot([0.1, 0.2], sav), rtol=1e-12)
+    # kept by subset, with_law (re-derived from the new A_V error) and to_table
+    np.testing.assert_array_equal(ts.subset([1]).av_distance_corr, ts.av_distance_corr[[1]])
+    ts4 = ts.with_law("ccm89", 4.0)
+    np.testing.assert_allclose(ts4.av_distance_corr, -4 * np.array([0.03, 0.05]) / np.hypot([0.1, 0.2], 4 * np.array([0.03, 0.05])))
+    np.testing.assert_array_equal(ts.to_table()["av_distance_corr"], ts.av_distance_corr)
+    # independent errors elsewhere: zeros
+    assert np.all(_quiet(read_tracers, _catalogue()).av_distance_corr == 0)
+
+
+def test_ebv_mu0_correlation_column_is_kept_with_its_sign():
+    # corr(E(B-V), mu0) from cluster fits; A_V = R_V E(B-V) and ln d = mu0 ln10/5 + const are positive
+    # multiples, so corr(A_V, ln d) is the same number (error propagation, common practice)
+    t = Table({"l": [40.0, 41.0, 42.0], "b": [2.0, 2.0, 2.0], "mu0": [10.0, 11.0, 12.0], "e_mu0": [0.1] * 3,
+               "ebv": [0.5, 0.4, 0.3], "e_ebv": [0.03] * 3, "ebv_mu0_corr": [-0.6, 0.2, 1.5]})
+    with pytest.warns(RowsRejectedWarning, match=r"1 of 3"):
+        ts = read_tracers(t)
+    np.testing.assert_array_equal(ts.av_distance_corr, [-0.6, 0.2])
+    assert "outside [-1, 1]" in ts.rejected["reason"][0]
+
+
+def test_from_arrays_takes_and_keeps_the_correlation():
+    ts = TracerSet.from_arrays([10.0, 20.0], [1.0, 2.0], [1000.0, 2000.0], [100.0, 200.0], [1.0, 2.0], [0.1, 0.2],
+                               av_distance_corr=[-0.5, 0.0])
+    np.testing.assert_array_equal(ts.av_distance_corr, [-0.5, 0.0])
+    ts0 = TracerSet.from_arrays([10.0], [1.0], [1000.0], [100.0], [1.0], [0.1])
+    np.testing.assert_array_equal(ts0.av_distance_corr, [0.0])

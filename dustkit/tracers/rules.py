@@ -21,12 +21,18 @@ __all__ = [
     "RA_RANGE",
     "PARALLAX_WARN_FRAC",
     "KPC_HINT_MEDIAN",
+    "PARALLAX_LENGTH_SCALE",
+    "PARALLAX_ERR_FLOOR",
+    "AV_ERR_FLOOR",
+    "DISTANCE_FRAC_ERR_FLOOR",
     "REASONS",
     "CHUNK_RULES",
     "reason",
     "zero_point",
     "check_limits",
     "check_law",
+    "check_modulus_kind",
+    "check_duplicates",
     "chunk_reasons",
     "validate_rows",
 ]
@@ -44,8 +50,19 @@ LONGITUDE_RANGE = (-180.0, 360.0)
 RA_RANGE = (0.0, 360.0)
 #: Fractional parallax error above which 1/parallax is announced as a biased distance.
 PARALLAX_WARN_FRAC = 0.2
-#: A median distance (in the column's bare numbers) below this suggests kpc, not pc.
+#: A median distance (in the column's bare numbers) below this means kpc, not pc: reading stops.
 KPC_HINT_MEDIAN = 30.0
+#: Length scale of the exponentially decreasing space density prior for parallaxes, kpc
+#: (the value of the examples of Bailer-Jones 2015, PASP 127, 994).
+PARALLAX_LENGTH_SCALE = 1.35
+#: Systematic floor added in quadrature to parallax errors, mas. From memory of Gaia EDR3
+#: validation work (systematics of about 0.01 mas on small angular scales): it matters for
+#: cluster-mean parallaxes, whose statistical errors can be far smaller; user-settable.
+PARALLAX_ERR_FLOOR = 0.01
+#: Floor on per-tracer A_V errors used in every fit, mag (the same value as the 3-D model).
+AV_ERR_FLOOR = 0.02
+#: Floor on per-tracer fractional distance errors used in every fit (1%).
+DISTANCE_FRAC_ERR_FLOOR = 0.01
 
 #: Why a row is rejected: reason -> message (``col`` is the column name, quoted by ``!r``).
 REASONS = {
@@ -59,6 +76,8 @@ REASONS = {
     "negative_error": "negative error in {col!r}",
     "distance_not_positive": "distance <= 0 in {col!r}",
     "parallax_not_positive": "parallax{zero_point} <= 0 in {col!r}",
+    "parallax_no_error": "parallax{zero_point} <= 0 without an error in {col!r}",
+    "correlation_outside": "correlation in {col!r} outside [-1, 1]",
     "distance_outside": "distance {word} {col!r} outside ({lo:g}, {hi:g}] pc",
     "ebv_outside": "E(B-V) in {col!r} outside [{lo:g}, {hi:g}] mag",
     "excess_outside": ("{kind} in {col!r} outside the A_V range [{av_lo:.3g}, {av_hi:.3g}] mag "
@@ -152,6 +171,22 @@ def zero_point(zp):
         except u.UnitConversionError:
             raise param_error("parallax_zero_point", "an angle such as -0.017 * u.mas", zp) from None
     return check_real("parallax_zero_point", zp, -10.0, 10.0)
+
+
+def check_modulus_kind(kind):
+    """``distance_modulus_kind``: None, ``'true'`` or ``'apparent'``."""
+    if kind is None:
+        return None
+    if not isinstance(kind, str) or kind.strip().lower() not in ("true", "apparent"):
+        raise param_error("distance_modulus_kind", "'true' (mu0) or 'apparent' ((m-M)_V)", kind)
+    return kind.strip().lower()
+
+
+def check_duplicates(duplicates):
+    """``duplicates``: ``'merge'`` or ``'keep'``."""
+    if duplicates not in ("merge", "keep"):
+        raise param_error("duplicates", "'merge' or 'keep'", duplicates)
+    return duplicates
 
 
 def check_limits(reject_limits):
