@@ -15,7 +15,7 @@ from astropy.table import QTable, Table
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from dustkit._errors import AssumptionWarning, CatalogError, ParameterError, RowsRejectedWarning
+from dustkit._errors import AssumptionWarning, CatalogError, DuplicatesWarning, ParameterError, RowsRejectedWarning
 from dustkit.tracers import (
     COLUMN_KEYS,
     DEFAULT_REJECT_LIMITS,
@@ -911,3 +911,101 @@ def test_from_arrays_takes_and_keeps_the_correlation():
     np.testing.assert_array_equal(ts.av_distance_corr, [-0.5, 0.0])
     ts0 = TracerSet.from_arrays([10.0], [1.0], [1000.0], [100.0], [1.0], [0.1])
     np.testing.assert_array_equal(ts0.av_distance_corr, [0.0])
+
+
+# ======================================================================================
+# Duplicates
+# ======================================================================================
+
+
+def _dup_catalogue():
+    return Table({"name": ["A", "B", "C"], "l": [10.0, 20.0, 30.0], "b": [1.0, 2.0, 3.0],
+                  "dist": [1000.0, 2000.0, 3000.0] * u.pc, "e_dist": [100.0, 200.0, 300.0] * u.pc,
+                  "av": [1.0, 2.0, 3.0], "e_av": [0.1, 0.2, 0.3]})
+
+
+def test_exact_copies_are_merged_without_shrinking_errors():
+    # the same measurement twice is one measurement (common practice): values and errors unchanged
+    t = _dup_catalogue()
+    tt = Table(np.concatenate([t.as_array(), t.as_array()]))
+    with pytest.warns(DuplicatesWarning, match=r"6 of 6 rows are duplicates in 3 groups \(6 exact"):
+        ts = read_tracers(tt)
+    assert len(ts) == 3 and ts.meta["n_merged"] == 3
+    assert len(ts) + len(ts.rejected) + ts.meta["n_merged"] == len(tt)
+    np.testing.assert_allclose(ts.av_err, [0.1, 0.2, 0.3])
+    np.testing.assert_allclose(ts.distance_err, [100.0, 200.0, 300.0])
+    assert set(ts.duplicates["kind"]) <= {"exact"} and len(ts.duplicates) == 6
+    assert "Duplicates: 6 rows in 3 groups" in ts.summary()
+    # kept on request, still reported
+    with pytest.warns(DuplicatesWarning, match="kept"):
+        tk = read_tracers(tt, duplicates="keep")
+    assert len(tk) == 6 and len(tk.duplicates) == 6 and np.all(tk.duplicates["merged_into"] == -1)
+
+
+def test_near_duplicates_merge_by_inverse_variance():
+    # two compilations of one cluster 0.5 arcsec apart: inverse-variance mean x = sum(x/s^2)/sum(1/s^2),
+    # sigma = sum(1/s^2)^-1/2 (common practice)
+    t = Table({"name": ["A", "A2", "B"], "l": [10.0, 10.0 + 0.5 / 3600, 20.0], "b": [1.0, 1.0, 2.0],
+               "dist": [1000.0, 1100.0, 2000.0] * u.pc, "e_dist": [100.0, 50.0, 200.0] * u.pc,
+               "av": [1.0, 1.2, 2.0], "e_av": [0.1, 0.2, 0.2]})
+    with pytest.warns(DuplicatesWarning, match=r"2 of 3 rows"):
+        ts = read_tracers(t)
+    assert len(ts) == 2
+    w = 1 / np.array([0.1, 0.2]) ** 2
+    assert ts.av[0] == pytest.approx(np.sum(w * [1.0, 1.2]) / w.sum(), rel=1e-12)
+    assert ts.av_err[0] == pytest.approx(w.sum() ** -0.5, rel=1e-12)
+    wd = 1 / np.array([100.0, 50.0]) ** 2
+    assert ts.distance[0] == pytest.approx(np.sum(wd * [1000.0, 1100.0]) / wd.sum(), rel=1e-12)
+    assert list(ts.duplicates["row"]) == [0, 1] and list(ts.duplicates["kind"]) == ["near", "near"]
+    # the same place but A_V far outside the errors: two tracers
+    t["av"][1] = 3.0
+    ts = read_tracers(t)
+    assert len(ts) == 3 and len(ts.duplicates) == 0
+
+
+def test_same_name_is_a_duplicate():
+    t = _dup_catalogue()
+    t["name"][2] = "A"
+    with pytest.warns(DuplicatesWarning, match=r"2 of 3"):
+        ts = read_tracers(t)
+    assert len(ts) == 2 and list(ts.duplicates["name"]) == ["A", "A"]
+
+
+# ======================================================================================
+# Error floors in the fits
+# ======================================================================================
+
+
+def test_error_floors_are_public_and_applied_with_a_count():
+    from dustkit.tracers import rules
+
+    # the integrator's 3-D model floors A_V errors at 0.02 mag: the same public value here
+    assert rules.AV_ERR_FLOOR == 0.02
+    d = np.array([1000.0, 2000.0, 3000.0])
+    with pytest.warns(AssumptionWarning, match=r"1 of 3 tracers have an A_V error below 0.02 mag and 2 a distance"):
+        de, ae = rules.floor_errors(d, [0.0, 5.0, 300.0], [1e-6, 0.1, 0.2])
+    np.testing.assert_array_equal(ae, [0.02, 0.1, 0.2])
+    np.testing.assert_array_equal(de, [10.0, 20.0, 300.0])
+
+
+def test_layer_fit_not_captured_by_one_tiny_error():
+    # one E(B-V) error of 1e-6 among 60 tracers must not decide the layer: with the floor the fit matches
+    # the fit without that row's tiny error (simulated, exponential layer of Joshi 2005-like scale height)
+    from dustkit.layer import fit_layer
+    rng = np.random.default_rng(5)
+    n = 60
+    b = rng.uniform(-10, 10, n)
+    d = rng.uniform(200, 3000, n)
+    z = d * np.sin(np.radians(b)) + 15.0
+    av_true = 1.0 * 125.0 / np.maximum(np.abs(np.sin(np.radians(b))), 1e-3) * (1 - np.exp(-np.abs(z) / 125.0)) / 1000
+    ae = np.full(n, 0.1)
+    av = av_true + rng.normal(0, 0.1, n)
+    de = 0.1 * d
+    ae_tiny = ae.copy()
+    ae_tiny[7] = 3.1e-6
+    l = rng.uniform(0, 360, n)
+    ref = fit_layer(TracerSet.from_arrays(l, b, d, de, av, np.where(np.arange(n) == 7, 0.02, ae)))
+    with pytest.warns(AssumptionWarning, match=r"1 of 60 tracers have an A_V error below"):
+        got = fit_layer(TracerSet.from_arrays(l, b, d, de, av, ae_tiny))
+    assert got.h == pytest.approx(ref.h, rel=1e-9) and got.a0 == pytest.approx(ref.a0, rel=1e-9)
+    assert got.h_err < got.h  # a usable scale height, not 4 852 +- 10 341 pc

@@ -4,13 +4,16 @@ import numpy as np
 from astropy import units as u
 from astropy.table import MaskedColumn
 
-from ..exceptions import CatalogError, RowsRejectedWarning
+from ..exceptions import CatalogError, DuplicatesWarning, RowsRejectedWarning
 from .._lib.validation import check_real
 from .columns import DISTANCE_LIKE, KIND_LABEL, resolve_columns
 from .context import Context
 from .distances import distances
+from .duplicates import find_duplicates, merge_groups
 from .reddening import reddening
 from .rules import (
+    DUPLICATE_NSIGMA,
+    DUPLICATE_SEPARATION_ARCSEC,
     PARALLAX_ERR_FLOOR,
     PARALLAX_LENGTH_SCALE,
     check_duplicates,
@@ -97,9 +100,38 @@ def build_tracers(
             "A_V": "A_V taken as given",
         }.get(kind, f"A_V from {kind} through law {law!r} with R_V = {rv:g} (dustkit.bands.excess_to_av)")
     )
-    arrays = [l[keep], b[keep], d[keep], d_err[keep], av[keep], av_err[keep]]
+    rows = np.flatnonzero(keep)
     kept_names = None if names is None else names[keep].astype("U", copy=False)
-    meta = ctx.meta(file_sha, arrays + [np.flatnonzero(keep) if kept_names is None else kept_names])
+    per_row = dict(
+        l=l[keep], b=b[keep], distance=d[keep], distance_err=d_err[keep], av=av[keep], av_err=av_err[keep],
+        excess=excess[keep], excess_err=excess_err[keep], av_distance_corr=corr[keep], row=rows,
+    )
+    if bounds is not None:
+        per_row["distance_err_low"], per_row["distance_err_high"] = bounds[0][keep], bounds[1][keep]
+    if app is not None:
+        per_row["apparent_modulus"], per_row["apparent_modulus_err"] = app[keep], app_err[keep]
+    if kept_names is not None:
+        per_row["name"] = kept_names
+    group, exact, copied = find_duplicates(per_row["l"], per_row["b"], per_row["distance"], per_row["distance_err"],
+                                   per_row["av"], per_row["av_err"], kept_names)
+    sel, per_row, dup_report = merge_groups(group, exact, copied, per_row, rows, kept_names, duplicates)
+    n_merged = int(rows.size - sel.size)
+    if len(dup_report):
+        n_groups = int(np.unique(np.asarray(dup_report["group"])).size)
+        n_exact = int(np.sum(np.asarray(dup_report["kind"]) == "exact"))  # rows in sets of exact copies
+        what = (f"merged into {n_groups} tracers by inverse-variance means (exact copies counted once); "
+                "pass duplicates='keep' to keep them") if duplicates == "merge" else "kept (duplicates='keep')"
+        ctx.note(
+            DuplicatesWarning,
+            f"{len(dup_report)} of {n} rows are duplicates in {n_groups} groups ({n_exact} exact copies; the others "
+            f"the same name, or within {DUPLICATE_SEPARATION_ARCSEC:g} arcsec with distance and A_V within "
+            f"{DUPLICATE_NSIGMA:g} sigma): {what}. See TracerSet.duplicates for the groups.",
+        )
+    ctx.n_merged = n_merged
+    arrays = [per_row[k] for k in ("l", "b", "distance", "distance_err", "av", "av_err")]
+    meta = ctx.meta(file_sha, arrays + [per_row["row"] if kept_names is None else per_row["name"]])
+    meta["n_merged"] = n_merged
+    meta["duplicates"] = duplicates
     fields = dict(
         l=arrays[0],
         b=arrays[1],
@@ -107,22 +139,23 @@ def build_tracers(
         distance_err=arrays[3],
         av=arrays[4],
         av_err=arrays[5],
-        name=kept_names,
-        excess=excess[keep],
-        excess_err=excess_err[keep],
+        name=per_row.get("name"),
+        excess=per_row["excess"],
+        excess_err=per_row["excess_err"],
         excess_kind=kind,
         law=law,
         rv=rv,
         rejected=rejected,
         meta=meta,
-        row=np.flatnonzero(keep),
+        row=per_row["row"],
         distance_kind=KIND_LABEL[next(k for k in DISTANCE_LIKE if k in cols)],
         excess_color=color,
-        apparent_modulus=None if app is None else app[keep],
-        apparent_modulus_err=None if app_err is None else app_err[keep],
-        av_distance_corr=corr[keep],
-        distance_err_low=None if bounds is None else bounds[0][keep],
-        distance_err_high=None if bounds is None else bounds[1][keep],
+        apparent_modulus=per_row.get("apparent_modulus"),
+        apparent_modulus_err=per_row.get("apparent_modulus_err"),
+        av_distance_corr=per_row["av_distance_corr"],
+        distance_err_low=per_row.get("distance_err_low"),
+        distance_err_high=per_row.get("distance_err_high"),
+        duplicates=dup_report,
     )
     return fields, ctx.notes
 

@@ -30,6 +30,7 @@ from .values import names_of, positions
 
 __all__ = [
     "SUFFIX_FORMATS",
+    "catalogue_rows",
     "read_tracers",
     "read_targets",
 ]
@@ -275,6 +276,8 @@ def _load(source, fmt=None):
             "source", "a file path, an astropy Table/QTable or a pandas DataFrame", type(source).__name__
         )
     path = Path(source).expanduser()
+    if path.is_dir():
+        return _load_folder(path)
     if not path.is_file():
         raise CatalogError(
             f"Catalogue file '{path}' does not exist or is not a file. Hint: check the path "
@@ -299,3 +302,57 @@ def _load(source, fmt=None):
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             sha.update(chunk)
     return table, f"file '{path}'", sha.hexdigest()
+
+
+def _parquet_parts(path):
+    parts = sorted(q for q in Path(path).rglob("*") if q.is_file() and format_for(q, "catalogue", strict=False) == "parquet")
+    if not parts:
+        raise CatalogError(
+            f"The folder '{path}' holds no Parquet files. Hint: a catalogue folder holds the Parquet parts of one "
+            "table (part-0.parquet, part-1.parquet, ...)."
+        )
+    return parts
+
+
+def _load_folder(path):
+    """A folder of Parquet parts read as one table, in the order of the file names."""
+    from astropy.table import vstack
+
+    tables, sha = [], hashlib.sha256()
+    for q in _parquet_parts(path):
+        t, _, part_sha = _load(q)
+        tables.append(t)
+        sha.update(part_sha.encode())
+    table = tables[0] if len(tables) == 1 else vstack(tables, join_type="exact", metadata_conflicts="silent")
+    return table, f"folder '{path}' ({len(tables)} Parquet parts)", sha.hexdigest()
+
+
+def catalogue_rows(source):
+    """Number of rows of a catalogue file or Parquet folder from its metadata, or None if unknown.
+
+    Parquet: the footer's row count (all parts of a folder); FITS: NAXIS2 of the first table
+    extension. Other formats (CSV, ECSV, VOTable) carry no row count and give None.
+    """
+    path = Path(source).expanduser()
+    try:
+        if path.is_dir():
+            import pyarrow.parquet as pq
+
+            return int(sum(pq.ParquetFile(q).metadata.num_rows for q in _parquet_parts(path)))
+        fmt = format_for(path, "catalogue", strict=False)
+        if fmt == "parquet":
+            import pyarrow.parquet as pq
+
+            return int(pq.ParquetFile(path).metadata.num_rows)
+        if fmt == "fits":
+            from astropy.io import fits
+
+            with fits.open(path, memmap=True) as hdul:
+                for hdu in hdul[1:]:
+                    if hdu.header.get("XTENSION", "").strip() in ("BINTABLE", "TABLE"):
+                        return int(hdu.header.get("NAXIS2", 0))
+    except CatalogError:
+        raise
+    except Exception:  # unreadable metadata: let the reader report the problem
+        return None
+    return None

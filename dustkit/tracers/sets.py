@@ -416,6 +416,11 @@ class TracerSet:
                 f"median error {np.median(self.av_err):.2f} mag), from {self.excess_kind} with law "
                 f"{self.law!r}, R_V = {self.rv:g}"
             )
+        if len(self.duplicates):
+            n_groups = int(np.unique(np.asarray(self.duplicates["group"])).size)
+            how = (f"merged ({self.meta.get('n_merged', 0)} rows folded in)"
+                   if self.meta.get("duplicates", "merge") == "merge" else "kept")
+            lines.append(f"  Duplicates: {len(self.duplicates)} rows in {n_groups} groups, {how} (see .duplicates)")
         if len(self.rejected):
             lines.append(f"  Rejected:  {len(self.rejected)} rows (see .rejected)")
             reasons, counts = np.unique(np.asarray(self.rejected["reason"]), return_counts=True)
