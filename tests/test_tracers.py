@@ -1009,3 +1009,114 @@ def test_layer_fit_not_captured_by_one_tiny_error():
         got = fit_layer(TracerSet.from_arrays(l, b, d, de, av, ae_tiny))
     assert got.h == pytest.approx(ref.h, rel=1e-9) and got.a0 == pytest.approx(ref.a0, rel=1e-9)
     assert got.h_err < got.h  # a usable scale height, not 4 852 +- 10 341 pc
+
+
+# ======================================================================================
+# Command line and storage
+# ======================================================================================
+
+
+def test_cli_says_each_assumption_once_and_stops_on_kpc(tmp_path, capsys):
+    from dustkit.cli import main
+
+    rng = np.random.default_rng(2)
+    n = 60
+    t = Table({"l": rng.uniform(10, 20, n), "b": rng.uniform(-3, 3, n), "Dist": rng.uniform(0.3, 3.0, n),
+               "ebv": rng.uniform(0.1, 1.0, n), "e_ebv": np.full(n, 0.03)})
+    t.write(tmp_path / "c.csv")
+    assert main(["layer", str(tmp_path / "c.csv")]) == 1
+    err = capsys.readouterr().err
+    assert "median value of" in err and "--distance-unit kpc" in err
+    assert main(["layer", str(tmp_path / "c.csv"), "--distance-unit", "kpc"]) == 0
+    captured = capsys.readouterr()
+    text = captured.out + captured.err
+    # "No error column for the distance" is an assumption: printed in the summary, not again as a warning
+    assert text.count("No error column for the distance") == 1
+    t.rename_column("Dist", "dm")
+    t["dm"] = 5 * np.log10(np.asarray(t["dm"]) * 1000) - 5
+    t.write(tmp_path / "m.csv")
+    assert main(["layer", str(tmp_path / "m.csv")]) == 1
+    assert "--modulus-kind" in capsys.readouterr().err
+    assert main(["layer", str(tmp_path / "m.csv"), "--modulus-kind", "true"]) == 0
+
+
+def test_one_parquet_file_and_a_folder_of_parts_give_the_same_model(tmp_path):
+    pytest.importorskip("pyarrow")
+    from dustkit.model import ExtinctionModel
+    from dustkit.scale import build_path
+    from dustkit.tracers.reader import catalogue_rows
+
+    rng = np.random.default_rng(4)
+    n = 4000
+    t = Table({"l": rng.uniform(10, 30, n), "b": rng.uniform(-5, 5, n), "distance": rng.uniform(100, 3000, n) * u.pc,
+               "distance_err": rng.uniform(10, 100, n) * u.pc, "av": rng.uniform(0.1, 3, n),
+               "av_err": rng.uniform(0.05, 0.2, n)})
+    t.write(tmp_path / "one.parquet")
+    (tmp_path / "parts").mkdir()
+    for k in range(4):
+        t[k * 1000:(k + 1) * 1000].write(tmp_path / "parts" / f"part-{k}.parquet")
+    assert catalogue_rows(tmp_path / "one.parquet") == catalogue_rows(tmp_path / "parts") == n
+    assert build_path(tmp_path / "one.parquet") == build_path(tmp_path / "parts") == "memory"
+    one = _quiet(read_tracers, tmp_path / "one.parquet")
+    folder = _quiet(read_tracers, tmp_path / "parts")
+    for k in ("l", "b", "distance", "distance_err", "av", "av_err"):
+        np.testing.assert_array_equal(getattr(one, k), getattr(folder, k))
+    kw = dict(nside=8, distance_max=3000 * u.pc, distance_step=500 * u.pc, quiet=True)
+    m1 = ExtinctionModel(**kw).fit(one)
+    m2 = ExtinctionModel(**kw).fit(folder)
+    assert m1.uncertainty_scheme_ == m2.uncertainty_scheme_
+    np.testing.assert_array_equal(m1.av_, m2.av_)
+    np.testing.assert_array_equal(m1.av_err_, m2.av_err_)
+
+
+# ======================================================================================
+# Random corruptions of a valid catalogue
+# ======================================================================================
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.data())
+def test_corrupted_catalogues_never_crash_and_every_row_is_counted(data):
+    # property: whatever is done to a valid catalogue, reading it ends in a TracerSet or a dustkit error,
+    # and accepted + rejected + merged rows = input rows, each rejected row with its reason
+    from dustkit.exceptions import DustkitError
+
+    rng = np.random.default_rng(data.draw(st.integers(0, 2**16)))
+    n = 30
+    cols = {"name": np.array([f"C{i}" for i in range(n)]), "l": rng.uniform(0, 360, n), "b": rng.uniform(-20, 20, n),
+            "dist": rng.uniform(200, 4000, n), "e_dist": rng.uniform(10, 200, n), "ebv": rng.uniform(0, 2, n),
+            "e_ebv": rng.uniform(0.01, 0.1, n)}
+    cols = {k: v.astype(object) for k, v in cols.items()}
+    for _ in range(data.draw(st.integers(0, 6))):
+        what = data.draw(st.sampled_from(["blank", "text", "dup", "rename", "unit", "zero_err", "negative"]))
+        key = data.draw(st.sampled_from(sorted(cols)))
+        i = data.draw(st.integers(0, len(cols[key]) - 1))
+        if what == "blank":
+            cols[key][i] = ""
+        elif what == "text":
+            cols[key][i] = data.draw(st.sampled_from(["abc", "1,5", "--", "nan", "inf", "12:30:00"]))
+        elif what == "dup":
+            cols = {k: np.append(v, v[i]) for k, v in cols.items()}
+        elif what == "rename":
+            new = data.draw(st.sampled_from(["DM", "mu0", "plx", "Av", "x", "dist_kpc", "E(B-V)", "id"]))
+            if new not in cols:
+                cols = {(new if k == key else k): v for k, v in cols.items()}
+        elif what == "unit" and key in ("dist", "e_dist"):
+            cols[key] = np.array([v / 1000.0 if isinstance(v, float) else v for v in cols[key]], dtype=object)
+        elif what == "zero_err" and key.startswith("e_"):
+            cols[key][i] = 0.0
+        elif what == "negative":
+            cols[key][i] = -1.0
+    n_in = len(next(iter(cols.values())))
+    table = Table({k: np.array([str(x) for x in v]) if any(isinstance(x, str) for x in v) else v.astype(float)
+                   for k, v in cols.items()})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            ts = read_tracers(table)
+        except DustkitError as exc:
+            assert str(exc)  # a message, never a bare error
+            return
+    assert len(ts) + len(ts.rejected) + ts.meta["n_merged"] == n_in
+    assert all(isinstance(r, str) and r for r in ts.rejected["reason"])
+    assert np.all(np.isfinite(ts.av) & np.isfinite(ts.distance) & (ts.distance > 0) & (ts.av_err > 0))
