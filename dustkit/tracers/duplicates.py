@@ -24,7 +24,7 @@ __all__ = [
 
 def _pairs_same_key(key):
     """Index pairs (i, j) of neighbours in the order of ``key`` that share its value."""
-    order = np.argsort(key, kind="stable")
+    order = np.argsort(key)
     ks = key[order]
     same = np.flatnonzero(ks[1:] == ks[:-1])
     return order[same], order[same + 1]
@@ -59,16 +59,26 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     """
     n = l.size
     ii, jj = [], []
-    values = np.stack([l, b, d, d_err, av, av_err], axis=1)
-    order = np.lexsort(values.T[::-1])
-    vs = values[order]
-    same = np.all(vs[1:] == vs[:-1], axis=1)
+    # exact copies: one sort of a 64-bit hash of the six values, then neighbours compared exactly
+    cols = [np.ascontiguousarray(x, dtype=float) for x in (l, b, d, d_err, av, av_err)]
+    h = np.zeros(n, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for k, x in enumerate(cols):
+            h ^= (x.view(np.uint64) + np.uint64(k + 1)) * np.uint64(0x9E3779B97F4A7C15)
+            h = (h << np.uint64(13)) | (h >> np.uint64(51))
+    order = np.argsort(h)
+    hs = h[order]
+    cand = np.flatnonzero(hs[1:] == hs[:-1])
+    same_pair = np.ones(cand.size, dtype=bool)
+    for x in cols:
+        same_pair &= x[order[cand]] == x[order[cand + 1]]
+    cand = cand[same_pair]
     exact = np.zeros(n, dtype=bool)
-    exact[order[1:][same]] = True
+    exact[order[cand + 1]] = True
     copied = exact.copy()
-    copied[order[:-1][same]] = True
-    ii.append(order[:-1][same])
-    jj.append(order[1:][same])
+    copied[order[cand]] = True
+    ii.append(order[cand])
+    jj.append(order[cand + 1])
     if names is not None:
         i, j = _pairs_same_key(np.asarray(names))
         ii.append(i)
