@@ -124,6 +124,17 @@ def _add_catalogue_options(p):
                         "ebv, av, excess and KEY_err")
     p.add_argument("--distance-unit", metavar="UNIT",
                    help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
+    p.add_argument("--modulus-kind", choices=("true", "apparent"), default=None,
+                   help="what a modulus column whose name does not say (dm, distmod, modulus) holds: the true "
+                        "modulus mu0 or the apparent V modulus (m-M)_V; without it such a column is refused")
+
+
+def _add_tracer_options(p):
+    p.add_argument("--duplicates", choices=("merge", "keep"), default="merge",
+                   help="rows repeating a tracer (exact copies, same name, or same place with distance and A_V "
+                        "within their errors): merge each group into one tracer (default) or keep them")
+    p.add_argument("--parallax-floor", type=float, default=None, metavar="MAS",
+                   help="systematic error added in quadrature to parallax errors, mas (default 0.01)")
 
 
 def _add_law_options(p):
@@ -173,10 +184,15 @@ def build_parser():
                         "up to 20000 tracers, binned above, for out-of-core builds and with --distance-step")
     _add_law_options(p)
     _add_catalogue_options(p)
+    _add_tracer_options(p)
+    p.add_argument("--uncertainty", choices=("auto", "monte-carlo", "bin-scatter"), default="auto",
+                   help="uncertainty scheme (default auto: from the number of tracers, whatever the storage)")
     p.add_argument("--chunk-size", type=int, metavar="ROWS",
-                   help="build out of core, reading ROWS rows at a time (automatic for a folder of Parquet "
-                        "files; for catalogues larger than memory, with columns l, b, distance, distance_err, "
-                        "av, av_err)")
+                   help="build out of core, reading ROWS rows at a time (automatic for Parquet or FITS catalogues "
+                        "of more than 2 000 000 rows, from their metadata; for catalogues larger than memory, "
+                        "with columns l, b, distance, distance_err, av, av_err)")
+    p.add_argument("--in-memory", action="store_true",
+                   help="read the whole catalogue into memory whatever its size")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the out-of-core build on this dask scheduler (e.g. tcp://host:8786; "
                         "default: local threads)")
@@ -197,6 +213,7 @@ def build_parser():
                    help="print JSON with keys a0, a0_err (mag/kpc), h, h_err, z_sun, z_sun_err (pc)")
     _add_law_options(p)
     _add_catalogue_options(p)
+    _add_tracer_options(p)
 
     p = sub("profile", "Plot cumulative A_V against distance along a sight line.")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
@@ -352,11 +369,28 @@ def _grid_options(args):
     return kw
 
 
-def _read_tracers(args, path):
+def _read_tracers(args, path, summary_shown=True):
+    """read_tracers with the command's options. Assumptions go into the summary, so when it is
+    printed they are not printed again as warning lines (each assumption is said once)."""
+    from astropy import units as u
+
+    from .exceptions import AssumptionWarning
     from .tracers import read_tracers
 
-    return read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,
-                        law=args.law, rv=args.rv)
+    kw = {}
+    if getattr(args, "parallax_floor", None) is not None:
+        kw["parallax_err_floor"] = args.parallax_floor * u.mas
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        tracers = read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,
+                               law=args.law, rv=args.rv, distance_modulus_kind=getattr(args, "modulus_kind", None),
+                               duplicates=getattr(args, "duplicates", "merge"), **kw)
+    said = set(tracers.meta.get("assumptions", [])) if summary_shown and not getattr(args, "quiet", False) else set()
+    for w in record:
+        if issubclass(w.category, AssumptionWarning) and str(w.message) in said:
+            continue
+        warnings.showwarning(w.message, w.category, w.filename, w.lineno)
+    return tracers
 
 
 def _layer_lines(layer):
@@ -442,10 +476,15 @@ def _cmd_build(args, out):
     _check_law(args)
     columns = _columns(args.column)
     check_target(args.output, args.overwrite)  # fail before a long build, not after
-    if os.path.isdir(args.catalog) or args.chunk_size is not None or args.scheduler:
+    from .scale import build_path
+
+    path_kind = "memory" if getattr(args, "in_memory", False) else build_path(args.catalog, args.chunk_size, args.scheduler)
+    if path_kind == "chunked":
+        if getattr(args, "uncertainty", "auto") == "monte-carlo":
+            raise _UsageError("--uncertainty monte-carlo needs the in-memory build; add --in-memory")
         if args.model == "density":
-            raise _UsageError("the out-of-core build (a folder, --chunk-size or --scheduler) makes the binned "
-                              "model; drop --model density or read the catalogue in memory")
+            raise _UsageError("the out-of-core build (a catalogue this large, --chunk-size or --scheduler) makes "
+                              "the binned model; drop --model density or add --in-memory")
         model = _build_out_of_core(args, kw, columns, out)
     else:
         from .model import build_model, choose_model
@@ -465,6 +504,8 @@ def _cmd_build(args, out):
             if args.distance_step is not None:
                 raise _UsageError("--distance-step applies to the binned model; the density model's bins grow "
                                   "with distance (give --distance-edges for your own)")
+        if kind == "binned":
+            kw["uncertainty"] = getattr(args, "uncertainty", "auto")
         model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))
     out(*_layer_lines(model.layer_))
     g = model.grid_
@@ -532,7 +573,8 @@ def _cmd_estimate(args, out):
     model = load_model(args.model)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
-        targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit)
+        targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit,
+                               distance_modulus_kind=getattr(args, "modulus_kind", None))
     table = estimate_targets(model, targets, bands=bands)
     table.meta["model"] = str(args.model)
     names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
@@ -559,7 +601,7 @@ def _cmd_layer(args, out):
     from .layer import fit_layer
 
     _check_law(args)
-    tracers = _read_tracers(args, args.catalog)
+    tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
     layer = fit_layer(tracers)
     if args.json:
         d = layer.as_dict()

@@ -19,6 +19,7 @@ __all__ = [
     "DustkitWarning",
     "AssumptionWarning",
     "RowsRejectedWarning",
+    "DuplicatesWarning",
 ]
 
 
@@ -74,3 +75,7 @@ class AssumptionWarning(DustkitWarning):
 
 class RowsRejectedWarning(DustkitWarning):
     """Some input rows were rejected; the warning says how many and why."""
+
+
+class DuplicatesWarning(DustkitWarning):
+    """Some input rows repeat a tracer; the warning says how many and whether they were merged."""

@@ -13,6 +13,7 @@ from scipy import optimize
 
 from .exceptions import CatalogError
 from ._lib.validation import check_real, to_value
+from .tracers.rules import floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "layer_av_pc", "layer_av_mu", "layer_slope_pc"]
 
@@ -202,6 +203,9 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
 
     Notes
     -----
+    Per-tracer errors are floored first (A_V errors at ``dustkit.tracers.rules.AV_ERR_FLOOR``
+    = 0.02 mag, distance errors at ``DISTANCE_FRAC_ERR_FLOOR`` = 1% of the distance), with an
+    ``AssumptionWarning`` giving the count: one near-zero error would take all the weight.
     Each tracer's uncertainty combines its A_V error, its distance error times the layer's
     slope dA_V/dd, and an intrinsic scatter re-estimated from the residuals (1.4826 x MAD)
     over three passes. Parameter errors come from the Jacobian at the solution, scaled by
@@ -211,9 +215,9 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
     b = np.asarray(tracers.b, float)
     d = np.asarray(tracers.distance, float)
-    de = np.asarray(tracers.distance_err, float)
     av = np.asarray(tracers.av, float)
-    ae = np.asarray(tracers.av_err, float)
+    # per-tracer errors floored (AV_ERR_FLOOR mag, DISTANCE_FRAC_ERR_FLOOR of d), with a warning
+    de, ae = floor_errors(d, tracers.distance_err, tracers.av_err)
     n = b.size
     if n < 5:
         raise CatalogError(

@@ -59,6 +59,7 @@ from .binned.statistics import Statistics, monte_carlo_statistics, nominal_stati
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
 from .layer import DustLayer, fit_layer
+from .tracers.rules import floor_errors
 
 __all__ = ["ExtinctionModel", "CAUTION", "FitPlan", "model_state", "model_from_state", "heldout_rows",
            "DENSITY_LIMIT", "choose_model", "build_model"]
@@ -71,7 +72,22 @@ _HELDOUT_MAX = HELDOUT_MAX  # old name
 
 
 def _tracer_arrays(tracers):
-    return tuple(np.asarray(getattr(tracers, k), float) for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
+    """The tracers' arrays, errors floored for the fit (dustkit.tracers.rules.floor_errors, with a warning)."""
+    l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
+                           for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
+    de, ae = floor_errors(d, de, ae)
+    return l, b, d, de, av, ae
+
+
+@dataclass(frozen=True)
+class _Floored:
+    """Tracer arrays with floored errors, for fit_layer (which then has nothing left to floor)."""
+
+    b: np.ndarray
+    distance: np.ndarray
+    distance_err: np.ndarray
+    av: np.ndarray
+    av_err: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -236,7 +252,7 @@ class ExtinctionModel:
         plan = self.fit_plan(n)
         grid, folds = plan.grid, plan.n_folds
         rng = np.random.default_rng(self.random_state)
-        layer = fit_layer(tracers, random_state=self.random_state)
+        layer = fit_layer(_Floored(b, d, de, av, ae), random_state=self.random_state)
         held = heldout_rows(n, folds, self.random_state)
         k_fold = held is None
         if k_fold:

@@ -77,7 +77,8 @@ from .binned.folds import HeldOut, fold_of_positions, fold_of_rows, row_hash, se
 from .binned.statistics import Statistics, nominal_statistics
 from .model import ExtinctionModel
 
-__all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS"]
+__all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS", "OUT_OF_CORE_ROWS",
+           "build_path"]
 
 #: Column names read by default (our names -> names in the file); override with ``columns=``.
 DEFAULT_COLUMNS = {
@@ -770,3 +771,26 @@ def _examples_table(examples):
     for e in examples:
         t.add_row(e)
     return t
+
+
+#: Catalogues with more rows than this (from Parquet or FITS metadata) are built out of core by
+#: default. It is above ``dustkit.model.MC_LIMIT``, so both paths pick the same uncertainty
+#: scheme ('bin-scatter') for such a catalogue, and a smaller one is read into memory however
+#: it is stored (one file or a folder of parts).
+OUT_OF_CORE_ROWS = 2_000_000
+
+
+def build_path(source, chunk_size=None, scheduler=None):
+    """``'chunked'`` or ``'memory'``: how ``dustkit build`` reads ``source``.
+
+    Chunked when asked for (``chunk_size`` or a dask ``scheduler``), or when the catalogue's
+    metadata (Parquet footer, FITS header; :func:`dustkit.tracers.reader.catalogue_rows`)
+    says it has more than ``OUT_OF_CORE_ROWS`` rows; in memory otherwise (also for formats
+    without a row count, e.g. CSV).
+    """
+    if chunk_size is not None or scheduler:
+        return "chunked"
+    from .tracers.reader import catalogue_rows
+
+    n = catalogue_rows(source)
+    return "chunked" if n is not None and n > OUT_OF_CORE_ROWS else "memory"

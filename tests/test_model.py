@@ -193,7 +193,8 @@ def test_isotonic_rows_match_scipy():
     w = rng.uniform(0.1, 5, size=y.shape)
     ours = isotonic_rows(y, w)
     ref = np.array([isotonic_regression(y[i], weights=w[i]).x for i in range(200)])
-    assert np.allclose(ours, ref, atol=1e-12)
+    # pooled means of up to 15 values: a few hundred ulp of the largest value (float64 resolution)
+    assert np.max(np.abs(ours - ref)) <= 512 * np.finfo(float).eps * np.abs(y).max()
 
 
 def test_bin_scatter_scheme_is_recorded():

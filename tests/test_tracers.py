@@ -15,7 +15,7 @@ from astropy.table import QTable, Table
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from dustkit._errors import AssumptionWarning, CatalogError, ParameterError, RowsRejectedWarning
+from dustkit._errors import AssumptionWarning, CatalogError, DuplicatesWarning, ParameterError, RowsRejectedWarning
 from dustkit.tracers import (
     COLUMN_KEYS,
     DEFAULT_REJECT_LIMITS,
@@ -153,7 +153,7 @@ def test_distance_modulus_worked_values(mu, d_pc):
     # mu0 = 5 log10(d/pc) - 5, the definition of the distance modulus (common practice):
     # 10 pc -> 0, 1 kpc -> 10, 2.5 kpc -> 11.98970 (computed)
     t = Table({"l": [30.0], "b": [1.0], "DM": [mu], "e_DM": [0.1], "ebv": [0.3], "e_ebv": [0.02]})
-    ts = read_tracers(t)
+    ts = read_tracers(t, distance_modulus_kind="true")
     assert ts.distance_kind == "distance modulus"
     assert ts.distance[0] == pytest.approx(d_pc, rel=2e-6)
     # sigma_d = d ln(10)/5 sigma_mu (first-order propagation, common practice)
@@ -170,54 +170,101 @@ def test_distance_modulus_round_trip(d):
     assert ts.distance[0] == pytest.approx(d, rel=1e-10)
 
 
+def _edsd_mode_kpc(plx, sig, L):
+    # Bailer-Jones 2015, PASP 127, 994, eq. for the mode under the exponentially decreasing space
+    # density prior: r^3 / L - 2 r^2 + (plx / sig^2) r - 1 / sig^2 = 0 (r in kpc, plx in mas);
+    # the real positive root with the highest posterior, from numpy's polynomial roots
+    roots = np.roots([1.0 / L, -2.0, plx / sig**2, -1.0 / sig**2])
+    roots = roots[(np.abs(roots.imag) < 1e-9) & (roots.real > 0)].real
+
+    def logpost(r):
+        return 2 * np.log(r) - r / L - (plx - 1 / r) ** 2 / (2 * sig**2)
+
+    return roots[np.argmax(logpost(roots))]
+
+
+def test_parallax_prior_mode_worked_value_and_cubic():
+    # Bailer-Jones 2015, PASP 127, 994: parallax 0.2 +- 0.1 mas, L = 1.35 kpc -> mode 4.11 kpc
+    t = Table({"l": [10.0], "b": [0.0], "plx": [0.2] * u.mas, "e_plx": [0.1] * u.mas,
+               "ebv": [0.5], "e_ebv": [0.02]})
+    ts = read_tracers(t, parallax_err_floor=0 * u.mas)
+    assert ts.distance[0] / 1000 == pytest.approx(4.11, abs=0.005)
+    assert ts.distance[0] / 1000 == pytest.approx(_edsd_mode_kpc(0.2, 0.1, 1.35), rel=1e-9)
+    # the asymmetric uncertainty: the 84th percentile lies further from the mode than the 16th
+    assert ts.distance_err_high[0] > ts.distance_err_low[0] > 0
+    assert ts.distance_err[0] == pytest.approx(0.5 * (ts.distance_err_low[0] + ts.distance_err_high[0]))
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.floats(-1.0, 5.0), st.floats(0.005, 1.0), st.floats(0.3, 5.0))
+def test_parallax_prior_mode_is_the_cubic_root(plx, sig, L):
+    from dustkit.tracers.distances import parallax_posterior
+
+    mode, p16, p84 = parallax_posterior([plx], [sig], L)
+    assert mode[0] / 1000 == pytest.approx(_edsd_mode_kpc(plx, sig, L), rel=1e-7)
+    assert p84[0] > p16[0] and p84[0] > mode[0]
+
+
+def test_parallax_percentiles_match_direct_integration():
+    # the 16th/84th percentiles against a fine trapezoid integration of the same posterior (computed)
+    from dustkit.tracers.distances import parallax_posterior
+
+    for plx, sig in [(0.2, 0.1), (-0.1, 0.2), (1.0, 0.3)]:
+        r = np.linspace(1e-3, 60.0, 600001)
+        lp = 2 * np.log(r) - r / 1.35 - (plx - 1 / r) ** 2 / (2 * sig**2)
+        p = np.exp(lp - lp.max())
+        cdf = np.cumsum(p)
+        cdf /= cdf[-1]
+        q16, q84 = np.interp([0.16, 0.84], cdf, r)
+        _, p16, p84 = parallax_posterior([plx], [sig], 1.35)
+        assert p16[0] / 1000 == pytest.approx(q16, rel=5e-3)
+        assert p84[0] / 1000 == pytest.approx(q84, rel=5e-3)
+
+
 def test_parallax_with_gaia_edr3_zero_point():
     # corrected parallax = parallax - zero point, zero point -0.017 mas (Lindegren et al. 2021, A&A 649, A4);
-    # d = 1000 / parallax[mas] pc (common practice).
+    # a 1% parallax: the prior-based mode is within 0.1% of 1000 / parallax pc (common practice)
     t = Table({"l": [10.0, 20.0], "b": [0.0, 1.0], "parallax": [1.983, 0.983] * u.mas,
                "parallax_error": [0.02, 0.01] * u.mas, "ebv": [0.5, 0.6], "ebv_err": [0.02, 0.02]})
     ts = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT * u.mas)
-    np.testing.assert_allclose(ts.distance, [500.0, 1000.0], rtol=1e-12)
-    # sigma_d = 1000 sigma_plx / plx^2 pc
-    np.testing.assert_allclose(ts.distance_err, [1000 * 0.02 / 2.0**2, 1000 * 0.01 / 1.0**2], rtol=1e-12)
+    np.testing.assert_allclose(ts.distance, [500.0, 1000.0], rtol=1e-3)
+    floor = 0.01  # the default systematic floor, mas, added in quadrature
+    sig = np.hypot([0.02, 0.01], floor)
+    np.testing.assert_allclose(ts.distance / 1000, [_edsd_mode_kpc(p, s, 1.35) for p, s in zip([2.0, 1.0], sig)],
+                               rtol=1e-9)
+    # sigma_d close to 1000 sigma_plx / plx^2 pc for precise parallaxes
+    np.testing.assert_allclose(ts.distance_err, 1000 * sig / np.array([2.0, 1.0]) ** 2, rtol=0.02)
     assert ts.distance_kind == "parallax"
     assert any("zero point -0.017 mas" in a for a in ts.meta["assumptions"])
-    # a plain number for the zero point is taken as mas
+    assert any("Bailer-Jones 2015" in a and "0.01 mas" in a for a in ts.meta["assumptions"])
     ts2 = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT)
     np.testing.assert_array_equal(ts2.distance, ts.distance)
-    # a parallax column in arcsec is converted to mas
     t["parallax"] = t["parallax"].to(u.arcsec)
     t["parallax_error"] = t["parallax_error"].to(u.arcsec)
     ts3 = read_tracers(t, parallax_zero_point=GAIA_EDR3_ZERO_POINT * u.mas)
-    np.testing.assert_allclose(ts3.distance, [500.0, 1000.0], rtol=1e-12)
+    np.testing.assert_allclose(ts3.distance, ts.distance, rtol=1e-9)
 
 
-def test_parallax_zero_point_decides_rejection():
-    # plx - zp <= 0 is rejected: with zp = -0.017 mas, -0.010 mas becomes +0.007 mas (kept, 142857 pc)
-    # while -0.020 mas stays negative and -0.017 mas becomes 0 (both rejected); Lindegren et al. 2021 zero point.
-    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "plx": [-0.010, -0.020, -0.017] * u.mas,
-               "e_plx": [0.001, 0.001, 0.001] * u.mas, "ebv": [0.1, 0.1, 0.1], "e_ebv": [0.01] * 3})
-    with pytest.warns(RowsRejectedWarning, match=r"2 of 3 rows rejected"):
-        ts = read_tracers(t, parallax_zero_point=-0.017 * u.mas)
-    assert len(ts) == 1
-    assert ts.distance[0] == pytest.approx(1000 / 0.007, rel=1e-9)
-    rej = ts.rejected
-    assert list(rej["row"]) == [1, 2]
-    assert all("parallax" in r and "<= 0" in r and "'plx'" in r for r in rej["reason"])
-    assert list(rej["column"]) == ["plx", "plx"]
-    assert list(rej["value"]) == ["-0.02", "-0.017"]
+def test_parallaxes_at_or_below_zero_get_prior_distances():
+    # every parallax with an error is kept (rejecting plx <= 0 biases the far sample, Bailer-Jones 2015);
+    # a parallax <= 0 without an error cannot be used and is rejected with its reason
+    t = Table({"l": [1.0, 2.0, 3.0, 4.0], "b": [0.0, 0.0, 0.0, 0.0], "plx": [-0.010, -0.020, 0.0, -0.1] * u.mas,
+               "e_plx": [0.05, 0.05, 0.05, np.nan] * u.mas, "ebv": [0.1] * 4, "e_ebv": [0.01] * 4})
+    with pytest.warns(RowsRejectedWarning, match=r"1 of 4 rows rejected"):
+        ts = _quiet_assumptions(read_tracers, t)
+    assert len(ts) == 3
+    # the prior's mode: the root of the cubic of Bailer-Jones 2015 (sigma with the 0.01 mas floor)
+    sig = np.hypot(0.05, 0.01)
+    np.testing.assert_allclose(ts.distance / 1000, [_edsd_mode_kpc(p, sig, 1.35) for p in (-0.01, -0.02, 0.0)],
+                               rtol=1e-9)
+    assert np.all(np.isfinite(ts.distance_err_low) & np.isfinite(ts.distance_err_high))
+    assert list(ts.rejected["row"]) == [3] and "without an error" in ts.rejected["reason"][0]
 
 
-def test_noisy_parallaxes_warn_and_say_why():
-    # 1/parallax is biased once the fractional error exceeds ~20% (Bailer-Jones 2015, PASP 127, 994)
-    t = Table({"l": [1.0, 2.0, 3.0], "b": [0.0, 0.0, 0.0], "plx": [1.0, 1.0, 1.0] * u.mas,
-               "e_plx": [0.05, 0.25, 0.5] * u.mas, "ebv": [0.1, 0.1, 0.1], "e_ebv": [0.01] * 3})
-    with pytest.warns(AssumptionWarning) as record:
-        ts = read_tracers(t)
-    texts = [str(w.message) for w in record if issubclass(w.category, AssumptionWarning)]
-    noisy = [m for m in texts if "fractional error" in m]
-    assert len(noisy) == 1
-    assert "2 of 3" in noisy[0] and "20%" in noisy[0] and "Bailer-Jones 2015" in noisy[0] and "biased" in noisy[0]
-    assert len(ts) == 3  # kept, not dropped
+def _quiet_assumptions(fn, *a, **k):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", AssumptionWarning)
+        return fn(*a, **k)
 
 
 def test_apparent_modulus_corrected_by_av():
@@ -254,16 +301,16 @@ def test_distance_units_from_column_name_argument_and_bare_number():
     np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
     ts = _quiet(read_tracers, Table({**base, "Dist": [1.5, 2.0]}), distance_unit=u.kpc)
     np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
-    # a bare number is taken as pc, with a warning that names the assumption and says it looks like kpc
-    with pytest.warns(AssumptionWarning, match=r"no unit; assuming the distances are in pc.*looks like kpc"):
-        ts = read_tracers(Table({**base, "Dist": [1.5, 2.0], "e_Dist": [0.1, 0.1]}))
-    np.testing.assert_allclose(ts.distance, [1.5, 2.0])
-    # ... and does not claim kpc when the values look like pc
+    # bare numbers with a median below 30 are kpc read as pc: no cluster is that near (fact of the
+    # trade: the nearest star clusters are a few tens of pc away) -> the read stops, naming column, median, fix
+    with pytest.raises(CatalogError, match=r"'Dist'.*median value of 1\.75.*distance_unit='kpc'.*--distance-unit kpc"):
+        read_tracers(Table({**base, "Dist": [1.5, 2.0], "e_Dist": [0.1, 0.1]}))
+    # ... while distances that look like pc are read as pc, with the assumption said once
     with pytest.warns(AssumptionWarning) as record:
-        read_tracers(Table({**base, "Dist": [1500.0, 2000.0], "e_Dist": [10.0, 10.0]}))
+        ts = read_tracers(Table({**base, "Dist": [1500.0, 2000.0], "e_Dist": [10.0, 10.0]}))
     msgs = [str(w.message) for w in record]
     assert any("assuming the distances are in pc" in m for m in msgs)
-    assert not any("looks like kpc" in m for m in msgs)
+    np.testing.assert_allclose(ts.distance, [1500.0, 2000.0])
 
 
 def test_kpc_pc_round_trip_through_to_table():
@@ -578,7 +625,8 @@ def test_explicit_mapping_wins_over_recognition():
     t["plx"] = 1000.0 / np.asarray(t["Dist"])
     ts = _quiet(read_tracers, t, columns={"ebv": "Red", "parallax": "plx", "name": "e_EBV"})
     np.testing.assert_allclose(ts.excess, np.asarray(t["Red"]))
-    np.testing.assert_allclose(ts.distance, np.asarray(t["Dist"]), rtol=1e-12)
+    # the parallax (10% default error) is used through the distance prior: mode near 1 / parallax
+    np.testing.assert_allclose(ts.distance, np.asarray(t["Dist"]), rtol=0.05)
     assert ts.distance_kind == "parallax"
     assert ts.meta["columns"]["ebv"] == "Red" and ts.meta["columns"]["parallax"] == "plx"
     np.testing.assert_array_equal(ts.name, np.asarray(t["e_EBV"]).astype(str))
@@ -797,3 +845,278 @@ def test_galactic_preferred_over_equatorial_and_empty_names_filled(tmp_path):
     assert any("Galactic columns ('_Glon', '_Glat') used" in a for a in ts.meta["assumptions"])
     # a missing name becomes 'row <input row index>'
     np.testing.assert_array_equal(ts.name, ["Invented-A", "row 1"])
+
+
+# ======================================================================================
+# Modulus kinds and the A_V - distance correlation
+# ======================================================================================
+
+
+@pytest.mark.parametrize("name", ["dm", "distmod", "modulus", "distance_modulus", "DM"])
+def test_ambiguous_modulus_name_is_refused(name):
+    # (m-M)_V = mu0 + A_V (definition, common practice): a name that does not say which is not guessed
+    t = Table({"l": [30.0], "b": [1.0], name: [11.0], "ebv": [0.3], "e_ebv": [0.02]})
+    with pytest.raises(CatalogError, match=rf"{name!r}.*distance_modulus_kind='true' or 'apparent'.*--modulus-kind"):
+        _quiet_assumptions(read_tracers, t)
+    # ... and read as asked: mu0 = 11 -> 10^(11/5 + 1) pc; apparent: mu0 = 11 - 3.1 * 0.3 (computed)
+    ts = _quiet_assumptions(read_tracers, t, distance_modulus_kind="true")
+    assert ts.distance[0] == pytest.approx(10 ** (11 / 5 + 1), rel=1e-9) and ts.distance_kind == "distance modulus"
+    ts = _quiet_assumptions(read_tracers, t, distance_modulus_kind="apparent")
+    assert ts.distance[0] == pytest.approx(10 ** ((11 - 0.93) / 5 + 1), rel=1e-9)
+    assert ts.distance_kind == "apparent V modulus"
+    with pytest.raises(ParameterError, match="distance_modulus_kind"):
+        read_tracers(t, distance_modulus_kind="V")
+
+
+@pytest.mark.parametrize("name, kind", [("(m-M)0", "distance modulus"), ("mu0", "distance modulus"),
+                                        ("dm0", "distance modulus"), ("(m-M)V", "apparent V modulus"),
+                                        ("mM_V", "apparent V modulus"), ("apparent_modulus", "apparent V modulus")])
+def test_modulus_names_that_say_which(name, kind):
+    t = Table({"l": [30.0], "b": [1.0], name: [11.0], "ebv": [0.3], "e_ebv": [0.02]})
+    ts = _quiet_assumptions(read_tracers, t)
+    assert ts.distance_kind == kind
+
+
+def test_apparent_modulus_carries_the_anticorrelation():
+    # mu0 = (m-M)_V - A_V, so cov(A_V, mu0) = -var(A_V) and corr = -sigma_AV / sqrt(sigma_mV^2 + sigma_AV^2);
+    # ln d = mu0 ln10 / 5 + const keeps it (error propagation, common practice)
+    t = Table({"l": [40.0, 41.0], "b": [2.0, 2.0], "(m-M)V": [11.55, 12.0], "e_(m-M)V": [0.1, 0.2],
+               "E(B-V)": [0.5, 0.4], "e_E(B-V)": [0.03, 0.05]})
+    ts = read_tracers(t)
+    sav = 3.1 * np.array([0.03, 0.05])
+    np.testing.assert_allclose(ts.av_distance_corr, -sav / np.hypot([0.1, 0.2], sav), rtol=1e-12)
+    # kept by subset, with_law (re-derived from the new A_V error) and to_table
+    np.testing.assert_array_equal(ts.subset([1]).av_distance_corr, ts.av_distance_corr[[1]])
+    ts4 = ts.with_law("ccm89", 4.0)
+    np.testing.assert_allclose(ts4.av_distance_corr, -4 * np.array([0.03, 0.05]) / np.hypot([0.1, 0.2], 4 * np.array([0.03, 0.05])))
+    np.testing.assert_array_equal(ts.to_table()["av_distance_corr"], ts.av_distance_corr)
+    # independent errors elsewhere: zeros
+    assert np.all(_quiet(read_tracers, _catalogue()).av_distance_corr == 0)
+
+
+def test_ebv_mu0_correlation_column_is_kept_with_its_sign():
+    # corr(E(B-V), mu0) from cluster fits; A_V = R_V E(B-V) and ln d = mu0 ln10/5 + const are positive
+    # multiples, so corr(A_V, ln d) is the same number (error propagation, common practice)
+    t = Table({"l": [40.0, 41.0, 42.0], "b": [2.0, 2.0, 2.0], "mu0": [10.0, 11.0, 12.0], "e_mu0": [0.1] * 3,
+               "ebv": [0.5, 0.4, 0.3], "e_ebv": [0.03] * 3, "ebv_mu0_corr": [-0.6, 0.2, 1.5]})
+    with pytest.warns(RowsRejectedWarning, match=r"1 of 3"):
+        ts = read_tracers(t)
+    np.testing.assert_array_equal(ts.av_distance_corr, [-0.6, 0.2])
+    assert "outside [-1, 1]" in ts.rejected["reason"][0]
+
+
+def test_from_arrays_takes_and_keeps_the_correlation():
+    ts = TracerSet.from_arrays([10.0, 20.0], [1.0, 2.0], [1000.0, 2000.0], [100.0, 200.0], [1.0, 2.0], [0.1, 0.2],
+                               av_distance_corr=[-0.5, 0.0])
+    np.testing.assert_array_equal(ts.av_distance_corr, [-0.5, 0.0])
+    ts0 = TracerSet.from_arrays([10.0], [1.0], [1000.0], [100.0], [1.0], [0.1])
+    np.testing.assert_array_equal(ts0.av_distance_corr, [0.0])
+
+
+# ======================================================================================
+# Duplicates
+# ======================================================================================
+
+
+def _dup_catalogue():
+    return Table({"name": ["A", "B", "C"], "l": [10.0, 20.0, 30.0], "b": [1.0, 2.0, 3.0],
+                  "dist": [1000.0, 2000.0, 3000.0] * u.pc, "e_dist": [100.0, 200.0, 300.0] * u.pc,
+                  "av": [1.0, 2.0, 3.0], "e_av": [0.1, 0.2, 0.3]})
+
+
+def test_exact_copies_are_merged_without_shrinking_errors():
+    # the same measurement twice is one measurement (common practice): values and errors unchanged
+    t = _dup_catalogue()
+    tt = Table(np.concatenate([t.as_array(), t.as_array()]))
+    with pytest.warns(DuplicatesWarning, match=r"6 of 6 rows are duplicates in 3 groups \(6 exact"):
+        ts = read_tracers(tt)
+    assert len(ts) == 3 and ts.meta["n_merged"] == 3
+    assert len(ts) + len(ts.rejected) + ts.meta["n_merged"] == len(tt)
+    np.testing.assert_allclose(ts.av_err, [0.1, 0.2, 0.3])
+    np.testing.assert_allclose(ts.distance_err, [100.0, 200.0, 300.0])
+    assert set(ts.duplicates["kind"]) <= {"exact"} and len(ts.duplicates) == 6
+    assert "Duplicates: 6 rows in 3 groups" in ts.summary()
+    # kept on request, still reported
+    with pytest.warns(DuplicatesWarning, match="kept"):
+        tk = read_tracers(tt, duplicates="keep")
+    assert len(tk) == 6 and len(tk.duplicates) == 6 and np.all(tk.duplicates["merged_into"] == -1)
+
+
+def test_near_duplicates_merge_by_inverse_variance():
+    # two compilations of one cluster 0.5 arcsec apart: inverse-variance mean x = sum(x/s^2)/sum(1/s^2),
+    # sigma = sum(1/s^2)^-1/2 (common practice)
+    t = Table({"name": ["A", "A2", "B"], "l": [10.0, 10.0 + 0.5 / 3600, 20.0], "b": [1.0, 1.0, 2.0],
+               "dist": [1000.0, 1100.0, 2000.0] * u.pc, "e_dist": [100.0, 50.0, 200.0] * u.pc,
+               "av": [1.0, 1.2, 2.0], "e_av": [0.1, 0.2, 0.2]})
+    with pytest.warns(DuplicatesWarning, match=r"2 of 3 rows"):
+        ts = read_tracers(t)
+    assert len(ts) == 2
+    w = 1 / np.array([0.1, 0.2]) ** 2
+    assert ts.av[0] == pytest.approx(np.sum(w * [1.0, 1.2]) / w.sum(), rel=1e-12)
+    assert ts.av_err[0] == pytest.approx(w.sum() ** -0.5, rel=1e-12)
+    wd = 1 / np.array([100.0, 50.0]) ** 2
+    assert ts.distance[0] == pytest.approx(np.sum(wd * [1000.0, 1100.0]) / wd.sum(), rel=1e-12)
+    assert list(ts.duplicates["row"]) == [0, 1] and list(ts.duplicates["kind"]) == ["near", "near"]
+    # the same place but A_V far outside the errors: two tracers
+    t["av"][1] = 3.0
+    ts = read_tracers(t)
+    assert len(ts) == 3 and len(ts.duplicates) == 0
+
+
+def test_same_name_is_a_duplicate():
+    t = _dup_catalogue()
+    t["name"][2] = "A"
+    with pytest.warns(DuplicatesWarning, match=r"2 of 3"):
+        ts = read_tracers(t)
+    assert len(ts) == 2 and list(ts.duplicates["name"]) == ["A", "A"]
+
+
+# ======================================================================================
+# Error floors in the fits
+# ======================================================================================
+
+
+def test_error_floors_are_public_and_applied_with_a_count():
+    from dustkit.tracers import rules
+
+    # the integrator's 3-D model floors A_V errors at 0.02 mag: the same public value here
+    assert rules.AV_ERR_FLOOR == 0.02
+    d = np.array([1000.0, 2000.0, 3000.0])
+    with pytest.warns(AssumptionWarning, match=r"1 of 3 tracers have an A_V error below 0.02 mag and 2 a distance"):
+        de, ae = rules.floor_errors(d, [0.0, 5.0, 300.0], [1e-6, 0.1, 0.2])
+    np.testing.assert_array_equal(ae, [0.02, 0.1, 0.2])
+    np.testing.assert_array_equal(de, [10.0, 20.0, 300.0])
+
+
+def test_layer_fit_not_captured_by_one_tiny_error():
+    # one E(B-V) error of 1e-6 among 60 tracers must not decide the layer: with the floor the fit matches
+    # the fit without that row's tiny error (simulated, exponential layer of Joshi 2005-like scale height)
+    from dustkit.layer import fit_layer
+    rng = np.random.default_rng(5)
+    n = 60
+    b = rng.uniform(-10, 10, n)
+    d = rng.uniform(200, 3000, n)
+    z = d * np.sin(np.radians(b)) + 15.0
+    av_true = 1.0 * 125.0 / np.maximum(np.abs(np.sin(np.radians(b))), 1e-3) * (1 - np.exp(-np.abs(z) / 125.0)) / 1000
+    ae = np.full(n, 0.1)
+    av = av_true + rng.normal(0, 0.1, n)
+    de = 0.1 * d
+    ae_tiny = ae.copy()
+    ae_tiny[7] = 3.1e-6
+    l = rng.uniform(0, 360, n)
+    ref = fit_layer(TracerSet.from_arrays(l, b, d, de, av, np.where(np.arange(n) == 7, 0.02, ae)))
+    with pytest.warns(AssumptionWarning, match=r"1 of 60 tracers have an A_V error below"):
+        got = fit_layer(TracerSet.from_arrays(l, b, d, de, av, ae_tiny))
+    assert got.h == pytest.approx(ref.h, rel=1e-9) and got.a0 == pytest.approx(ref.a0, rel=1e-9)
+    assert got.h_err < got.h  # a usable scale height, not 4 852 +- 10 341 pc
+
+
+# ======================================================================================
+# Command line and storage
+# ======================================================================================
+
+
+def test_cli_says_each_assumption_once_and_stops_on_kpc(tmp_path, capsys):
+    from dustkit.cli import main
+
+    rng = np.random.default_rng(2)
+    n = 60
+    t = Table({"l": rng.uniform(10, 20, n), "b": rng.uniform(-3, 3, n), "Dist": rng.uniform(0.3, 3.0, n),
+               "ebv": rng.uniform(0.1, 1.0, n), "e_ebv": np.full(n, 0.03)})
+    t.write(tmp_path / "c.csv")
+    assert main(["layer", str(tmp_path / "c.csv")]) == 1
+    err = capsys.readouterr().err
+    assert "median value of" in err and "--distance-unit kpc" in err
+    assert main(["layer", str(tmp_path / "c.csv"), "--distance-unit", "kpc"]) == 0
+    captured = capsys.readouterr()
+    text = captured.out + captured.err
+    # "No error column for the distance" is an assumption: printed in the summary, not again as a warning
+    assert text.count("No error column for the distance") == 1
+    t.rename_column("Dist", "dm")
+    t["dm"] = 5 * np.log10(np.asarray(t["dm"]) * 1000) - 5
+    t.write(tmp_path / "m.csv")
+    assert main(["layer", str(tmp_path / "m.csv")]) == 1
+    assert "--modulus-kind" in capsys.readouterr().err
+    assert main(["layer", str(tmp_path / "m.csv"), "--modulus-kind", "true"]) == 0
+
+
+def test_one_parquet_file_and_a_folder_of_parts_give_the_same_model(tmp_path):
+    pytest.importorskip("pyarrow")
+    from dustkit.model import ExtinctionModel
+    from dustkit.scale import build_path
+    from dustkit.tracers.reader import catalogue_rows
+
+    rng = np.random.default_rng(4)
+    n = 4000
+    t = Table({"l": rng.uniform(10, 30, n), "b": rng.uniform(-5, 5, n), "distance": rng.uniform(100, 3000, n) * u.pc,
+               "distance_err": rng.uniform(10, 100, n) * u.pc, "av": rng.uniform(0.1, 3, n),
+               "av_err": rng.uniform(0.05, 0.2, n)})
+    t.write(tmp_path / "one.parquet")
+    (tmp_path / "parts").mkdir()
+    for k in range(4):
+        t[k * 1000:(k + 1) * 1000].write(tmp_path / "parts" / f"part-{k}.parquet")
+    assert catalogue_rows(tmp_path / "one.parquet") == catalogue_rows(tmp_path / "parts") == n
+    assert build_path(tmp_path / "one.parquet") == build_path(tmp_path / "parts") == "memory"
+    one = _quiet(read_tracers, tmp_path / "one.parquet")
+    folder = _quiet(read_tracers, tmp_path / "parts")
+    for k in ("l", "b", "distance", "distance_err", "av", "av_err"):
+        np.testing.assert_array_equal(getattr(one, k), getattr(folder, k))
+    kw = dict(nside=8, distance_max=3000 * u.pc, distance_step=500 * u.pc, quiet=True)
+    m1 = ExtinctionModel(**kw).fit(one)
+    m2 = ExtinctionModel(**kw).fit(folder)
+    assert m1.uncertainty_scheme_ == m2.uncertainty_scheme_
+    np.testing.assert_array_equal(m1.av_, m2.av_)
+    np.testing.assert_array_equal(m1.av_err_, m2.av_err_)
+
+
+# ======================================================================================
+# Random corruptions of a valid catalogue
+# ======================================================================================
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.data())
+def test_corrupted_catalogues_never_crash_and_every_row_is_counted(data):
+    # property: whatever is done to a valid catalogue, reading it ends in a TracerSet or a dustkit error,
+    # and accepted + rejected + merged rows = input rows, each rejected row with its reason
+    from dustkit.exceptions import DustkitError
+
+    rng = np.random.default_rng(data.draw(st.integers(0, 2**16)))
+    n = 30
+    cols = {"name": np.array([f"C{i}" for i in range(n)]), "l": rng.uniform(0, 360, n), "b": rng.uniform(-20, 20, n),
+            "dist": rng.uniform(200, 4000, n), "e_dist": rng.uniform(10, 200, n), "ebv": rng.uniform(0, 2, n),
+            "e_ebv": rng.uniform(0.01, 0.1, n)}
+    cols = {k: v.astype(object) for k, v in cols.items()}
+    for _ in range(data.draw(st.integers(0, 6))):
+        what = data.draw(st.sampled_from(["blank", "text", "dup", "rename", "unit", "zero_err", "negative"]))
+        key = data.draw(st.sampled_from(sorted(cols)))
+        i = data.draw(st.integers(0, len(cols[key]) - 1))
+        if what == "blank":
+            cols[key][i] = ""
+        elif what == "text":
+            cols[key][i] = data.draw(st.sampled_from(["abc", "1,5", "--", "nan", "inf", "12:30:00"]))
+        elif what == "dup":
+            cols = {k: np.append(v, v[i]) for k, v in cols.items()}
+        elif what == "rename":
+            new = data.draw(st.sampled_from(["DM", "mu0", "plx", "Av", "x", "dist_kpc", "E(B-V)", "id"]))
+            if new not in cols:
+                cols = {(new if k == key else k): v for k, v in cols.items()}
+        elif what == "unit" and key in ("dist", "e_dist"):
+            cols[key] = np.array([v / 1000.0 if isinstance(v, float) else v for v in cols[key]], dtype=object)
+        elif what == "zero_err" and key.startswith("e_"):
+            cols[key][i] = 0.0
+        elif what == "negative":
+            cols[key][i] = -1.0
+    n_in = len(next(iter(cols.values())))
+    table = Table({k: np.array([str(x) for x in v]) if any(isinstance(x, str) for x in v) else v.astype(float)
+                   for k, v in cols.items()})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            ts = read_tracers(table)
+        except DustkitError as exc:
+            assert str(exc)  # a message, never a bare error
+            return
+    assert len(ts) + len(ts.rejected) + ts.meta["n_merged"] == n_in
+    assert all(isinstance(r, str) and r for r in ts.rejected["reason"])
+    assert np.all(np.isfinite(ts.av) & np.isfinite(ts.distance) & (ts.distance > 0) & (ts.av_err > 0))

@@ -27,8 +27,10 @@ ra, dec               ICRS right ascension, declination in deg, or
                       ``RA_ICRS``/``DE_ICRS``, ``RAdeg``/``DEdeg``)
 distance              distance; unit from the column, the name (``dist_kpc``),
                       or ``distance_unit`` (``distance``, ``dist``, ``d``)
-distance_modulus      true distance modulus mu0 in mag (``dm``, ``mu0``, ``(m-M)0``)
-apparent_modulus      apparent V-band modulus (m-M)_V in mag (``(m-M)V``, ``dmv``)
+distance_modulus      true distance modulus mu0 in mag (``mu0``, ``(m-M)0``, ``dm0``);
+                      ``dm``, ``distmod``, ``modulus`` need ``distance_modulus_kind``
+apparent_modulus      apparent V-band modulus (m-M)_V in mag (``(m-M)V``, ``mM_V``, ``dmv``)
+ebv_mu0_corr          correlation of the E(B-V) and mu0 errors (-> ``av_distance_corr``)
 parallax              parallax in mas (``parallax``, ``plx``)
 ebv                   E(B-V) in mag (``E(B-V)``, ``ebv``, ``E_BV``, ``reddening``)
 av                    A_V in mag (``A_V``, ``Av``, ``A(V)``)
@@ -55,7 +57,8 @@ Package layout (each module imports only the ones above it in this list)
 ``values``     numbers from columns, positions, error columns, names
 ``reddening``  colour excess / A_V -> A_V
 ``columns``    column recognition
-``distances``  distance, modulus or parallax -> pc
+``distances``  distance, modulus or parallax -> pc (parallaxes through the distance prior)
+``duplicates`` exact and near-duplicate tracers: groups, report, inverse-variance merge
 ``assemble``   one table -> the fields of a TracerSet
 ``sets``       :class:`TracerSet`, :class:`TargetList`
 ``reader``     :func:`read_tracers`, :func:`read_targets`

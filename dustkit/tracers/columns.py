@@ -21,6 +21,7 @@ __all__ = [
 
 #: Keys accepted by the ``columns=`` mapping.
 COLUMN_KEYS = (
+    "ebv_mu0_corr",
     "name",
     "l",
     "b",
@@ -68,12 +69,14 @@ VALUE_ALIASES = {
         "dpc", "dkpc", "dispc", "diskpc",
     ],
     "distance_modulus": [
-        "distancemodulus", "distmod", "dmod", "dm", "mu0", "mm0", "dm0", "truemodulus",
-        "truedistancemodulus", "modulus",
+        "mu0", "mm0", "dm0", "dmod0", "distmod0", "truemodulus", "truedistancemodulus", "mmo",
     ],
     "apparent_modulus": [
-        "apparentmodulus", "apparentdistancemodulus", "appmod", "mmv", "dmv", "muv", "dmodv",
+        "apparentmodulus", "apparentdistancemodulus", "apparentvmodulus", "apparentmodulusv",
+        "appmod", "mmv", "dmv", "muv", "dmodv", "distmodv",
     ],
+    # names that do not say whether the modulus is true or apparent: read only with distance_modulus_kind
+    "modulus": ["distancemodulus", "distmod", "dmod", "dm", "modulus"],
     "parallax": ["parallax", "plx", "pi", "varpi", "parallaxmas", "plxmas"],
     "ebv": ["ebv", "ebmv", "ebminusv", "reddening", "ebvmag"],
     "av": ["av", "extinctionv", "extv", "avmag", "av0"],
@@ -264,6 +267,35 @@ def _distance_column(table, explicit, finder, ctx, want_reddening, cols, used):
         cols[exp_dist[0]] = explicit[exp_dist[0]]
     else:
         found = [(k, find(VALUE_ALIASES[k], used)) for k in kinds]
+        ambiguous = find(VALUE_ALIASES["modulus"], used)
+        if ambiguous is not None and not any(c for k, c in found if k != "distance" and c is not None):
+            kind = getattr(ctx, "modulus_kind", None)
+            if kind is None and not any(c for _, c in found):
+                raise CatalogError(
+                    f"Column {ambiguous!r} in {ctx.desc} is a distance modulus, but its name does not say whether "
+                    "it is the true modulus mu0 or the apparent V modulus (m-M)_V = mu0 + A_V (at E(B-V) = 1.5 "
+                    "the two differ by a factor 8.5 in distance). Hint: pass distance_modulus_kind='true' or "
+                    "'apparent' (command line: --modulus-kind true|apparent), or name the column explicitly, "
+                    "e.g. columns={'distance_modulus': ...} or columns={'apparent_modulus': ...}."
+                )
+            if kind is not None:
+                role = "distance_modulus" if kind == "true" else "apparent_modulus"
+                if role in kinds:
+                    found = [(k, ambiguous if k == role else c) for k, c in found]
+                    ctx.assumptions.append(
+                        f"modulus column {ambiguous!r} read as the "
+                        f"{'true modulus mu0' if kind == 'true' else 'apparent V modulus (m-M)_V'} "
+                        f"(distance_modulus_kind={kind!r})"
+                    )
+                else:
+                    found = [(k, c) for k, c in found]  # the apparent modulus cannot place a target
+                    if not any(c for _, c in found):
+                        raise CatalogError(
+                            f"The only distance-like column in {ctx.desc} is {ambiguous!r}, read as an apparent V "
+                            "modulus (distance_modulus_kind='apparent'). It cannot place a target: turning it into "
+                            "a distance needs the reddening, which is what is being estimated. Hint: give a "
+                            "distance, a true distance modulus or a parallax column."
+                        )
         found = [(k, c) for k, c in found if c is not None]
         if not found:
             if not want_reddening and find(VALUE_ALIASES["apparent_modulus"], used):

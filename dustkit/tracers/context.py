@@ -10,6 +10,7 @@ from ..exceptions import AssumptionWarning
 
 __all__ = [
     "empty_rejected",
+    "empty_duplicates",
     "row_names",
     "Rejections",
     "Context",
@@ -26,6 +27,14 @@ def empty_rejected():
             "column": np.zeros(0, dtype=str),
             "value": np.zeros(0, dtype=str),
         }
+    )
+
+
+def empty_duplicates():
+    """The empty table of duplicated input rows (columns of ``TracerSet.duplicates``)."""
+    return Table(
+        {"group": np.zeros(0, dtype=np.int64), "row": np.zeros(0, dtype=np.int64), "name": np.zeros(0, dtype="U1"),
+         "kind": np.zeros(0, dtype="U5"), "merged_into": np.zeros(0, dtype=np.int64)}
     )
 
 
@@ -108,6 +117,7 @@ class Context:
         self.assumptions = []
         self.used = {}
         self.quiet_default_errors = False
+        self.modulus_kind = None  # 'true' | 'apparent' for a modulus column whose name does not say
 
     def note(self, cls, msg, assumption=True):
         self.notes.append((cls, msg))

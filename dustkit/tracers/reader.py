@@ -16,12 +16,21 @@ from .assemble import build_tracers
 from .columns import resolve_columns
 from .context import Context, emit
 from .distances import distances
-from .rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_limits, zero_point
+from .rules import (
+    DEFAULT_DISTANCE_FRAC_ERR,
+    DEFAULT_EXCESS_ERR,
+    PARALLAX_ERR_FLOOR,
+    PARALLAX_LENGTH_SCALE,
+    check_limits,
+    check_modulus_kind,
+    zero_point,
+)
 from .sets import TargetList, TracerSet
 from .values import names_of, positions
 
 __all__ = [
     "SUFFIX_FORMATS",
+    "catalogue_rows",
     "read_tracers",
     "read_targets",
 ]
@@ -45,6 +54,10 @@ def read_tracers(
     reject_limits=None,
     excess_color=None,
     format=None,
+    distance_modulus_kind=None,
+    parallax_err_floor=PARALLAX_ERR_FLOOR * u.mas,
+    parallax_length_scale=PARALLAX_LENGTH_SCALE * u.kpc,
+    duplicates="merge",
 ):
     """Read a catalogue of extinction tracers into a validated :class:`TracerSet`.
 
@@ -84,6 +97,22 @@ def read_tracers(
         does not say it.
     format : str, optional
         astropy ``Table.read`` format, overriding the suffix map.
+    distance_modulus_kind : {None, 'true', 'apparent'}
+        What a modulus column whose name does not say it (``dm``, ``distmod``,
+        ``modulus``, ``distance_modulus``) holds: the true modulus mu0 or the apparent
+        V modulus (m-M)_V = mu0 + A_V. None (default): such a column stops the read
+        with a ``CatalogError`` instead of a guess.
+    parallax_err_floor : Quantity['angle'] or float
+        Systematic floor added in quadrature to parallax errors (0.01 mas; from memory
+        of Gaia EDR3 validation work; it matters for cluster-mean parallaxes).
+    parallax_length_scale : Quantity['length'] or float
+        Length scale of the exponentially decreasing space density prior (1.35 kpc;
+        plain numbers in kpc).
+    duplicates : {'merge', 'keep'}
+        Rows that repeat a tracer (exact copies; the same name; or positions within
+        1 arcsec with distance and A_V within their errors) are merged into one tracer
+        by inverse-variance means (default) or kept. Either way the groups are listed in
+        ``TracerSet.duplicates``.
 
     Returns
     -------
@@ -105,16 +134,17 @@ def read_tracers(
     Notes
     -----
     Distances: d = 10^(mu0/5 + 1) pc from a true modulus; mu0 = (m-M)_V - A_V
-    from an apparent V modulus (errors of (m-M)_V and A_V added in quadrature,
-    i.e. treated as independent); d = 1000 / (parallax - zero point) pc from a
-    parallax in mas. 1/parallax is biased when the fractional parallax error is
-    above about 10-20% (Bailer-Jones 2015, PASP 127, 994); such rows are kept
-    with a warning.
+    from an apparent V modulus (errors of (m-M)_V and A_V added in quadrature, and
+    their anti-correlation kept in ``av_distance_corr``); from a parallax, the mode
+    of the posterior under the exponentially decreasing space density prior
+    (Bailer-Jones 2015, PASP 127, 994), for every parallax including <= 0, with the
+    16th and 84th percentiles in ``distance_err_low``/``distance_err_high``.
+    A bare distance column with a median below 30 stops the read (kpc taken as pc).
 
     Rejected rows: missing (empty/NaN) or non-numeric values in a used column,
     |b| > 90 or |dec| > 90, ra outside [0, 360], l outside [-180, 360],
-    distance <= 0 or beyond the distance limit, parallax - zero point <= 0,
-    negative errors, and reddening outside the limits (E(B-V) < -0.3 or > 20 by
+    distance <= 0 or beyond the distance limit, parallax - zero point <= 0 without
+    an error, negative errors, and reddening outside the limits (E(B-V) < -0.3 or > 20 by
     default). Slightly negative reddening (e.g. E(B-V) = -0.05) is kept: it is
     measurement noise around zero and removing it would bias A_V upwards.
     Empty or zero errors are replaced by the defaults (with a warning).
@@ -134,6 +164,10 @@ def read_tracers(
         excess_color=excess_color,
         source_desc=desc,
         file_sha=file_sha,
+        distance_modulus_kind=distance_modulus_kind,
+        parallax_err_floor=parallax_err_floor,
+        parallax_length_scale=parallax_length_scale,
+        duplicates=duplicates,
     )
     emit(notes)
     return TracerSet(**fields)
@@ -148,6 +182,7 @@ def read_targets(
     default_distance_frac_err=None,
     reject_limits=None,
     format=None,
+    distance_modulus_kind=None,
 ):
     """Read positions and distances at which extinction is wanted.
 
@@ -158,7 +193,7 @@ def read_targets(
     columns : dict, optional
         Explicit mapping for ``name``, ``l``/``b`` or ``ra``/``dec``, ``distance``,
         ``distance_modulus``, ``parallax`` and their ``_err`` keys.
-    distance_unit, parallax_zero_point, reject_limits, format
+    distance_unit, parallax_zero_point, reject_limits, format, distance_modulus_kind
         As for :func:`read_tracers` (only the ``"distance"`` limit applies).
     default_distance_frac_err : float or None
         Fractional distance error assumed where the input gives none. None (the
@@ -181,6 +216,7 @@ def read_targets(
     """
     table, desc, file_sha = _load(source, format)
     ctx = Context(table, desc)
+    ctx.modulus_kind = check_modulus_kind(distance_modulus_kind)
     cols = resolve_columns(table, columns, ctx, want_reddening=False)
     limits = check_limits(reject_limits)
     if default_distance_frac_err is None:
@@ -194,7 +230,7 @@ def read_targets(
     if n == 0:
         raise CatalogError(f"{desc} has no rows; nothing to read.")
     l, b, _ = positions(table, cols, ctx)
-    d, d_err, _, _ = distances(table, cols, ctx, distance_unit, frac, zp, limits, None, None)
+    d, d_err, _, _, _ = distances(table, cols, ctx, distance_unit, frac, zp, limits, None, None, parallax_prior=False)
     valid = ctx.rej.code < 0
     l = np.where(valid, l, np.nan)
     b = np.where(valid, b, np.nan)
@@ -240,6 +276,8 @@ def _load(source, fmt=None):
             "source", "a file path, an astropy Table/QTable or a pandas DataFrame", type(source).__name__
         )
     path = Path(source).expanduser()
+    if path.is_dir():
+        return _load_folder(path)
     if not path.is_file():
         raise CatalogError(
             f"Catalogue file '{path}' does not exist or is not a file. Hint: check the path "
@@ -264,3 +302,57 @@ def _load(source, fmt=None):
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             sha.update(chunk)
     return table, f"file '{path}'", sha.hexdigest()
+
+
+def _parquet_parts(path):
+    parts = sorted(q for q in Path(path).rglob("*") if q.is_file() and format_for(q, "catalogue", strict=False) == "parquet")
+    if not parts:
+        raise CatalogError(
+            f"The folder '{path}' holds no Parquet files. Hint: a catalogue folder holds the Parquet parts of one "
+            "table (part-0.parquet, part-1.parquet, ...)."
+        )
+    return parts
+
+
+def _load_folder(path):
+    """A folder of Parquet parts read as one table, in the order of the file names."""
+    from astropy.table import vstack
+
+    tables, sha = [], hashlib.sha256()
+    for q in _parquet_parts(path):
+        t, _, part_sha = _load(q)
+        tables.append(t)
+        sha.update(part_sha.encode())
+    table = tables[0] if len(tables) == 1 else vstack(tables, join_type="exact", metadata_conflicts="silent")
+    return table, f"folder '{path}' ({len(tables)} Parquet parts)", sha.hexdigest()
+
+
+def catalogue_rows(source):
+    """Number of rows of a catalogue file or Parquet folder from its metadata, or None if unknown.
+
+    Parquet: the footer's row count (all parts of a folder); FITS: NAXIS2 of the first table
+    extension. Other formats (CSV, ECSV, VOTable) carry no row count and give None.
+    """
+    path = Path(source).expanduser()
+    try:
+        if path.is_dir():
+            import pyarrow.parquet as pq
+
+            return int(sum(pq.ParquetFile(q).metadata.num_rows for q in _parquet_parts(path)))
+        fmt = format_for(path, "catalogue", strict=False)
+        if fmt == "parquet":
+            import pyarrow.parquet as pq
+
+            return int(pq.ParquetFile(path).metadata.num_rows)
+        if fmt == "fits":
+            from astropy.io import fits
+
+            with fits.open(path, memmap=True) as hdul:
+                for hdu in hdul[1:]:
+                    if hdu.header.get("XTENSION", "").strip() in ("BINTABLE", "TABLE"):
+                        return int(hdu.header.get("NAXIS2", 0))
+    except CatalogError:
+        raise
+    except Exception:  # unreadable metadata: let the reader report the problem
+        return None
+    return None

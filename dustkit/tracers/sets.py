@@ -8,7 +8,7 @@ from astropy.table import QTable, Table
 
 from .._lib.validation import check_real, param_error
 from .assemble import build_tracers
-from .context import emit, empty_rejected, row_names
+from .context import emit, empty_duplicates, empty_rejected, row_names
 from .distances import modulus_to_distance
 from .reddening import reddening_to_av
 from .rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law
@@ -98,6 +98,21 @@ class TracerSet:
     apparent_modulus, apparent_modulus_err : ndarray or None
         The apparent V-band modulus the distance was derived from (so that
         :meth:`with_law` can re-derive it), else None.
+    av_distance_corr : ndarray
+        Correlation coefficient between the error of A_V and the error of ln(distance),
+        per tracer (0 where independent). From an apparent V modulus mu0 = (m-M)_V - A_V,
+        so delta mu0 = -R_V delta E(B-V): corr = -sigma_AV / sqrt(sigma_(m-M)V^2 + sigma_AV^2).
+        From an input column ``ebv_mu0_corr`` (corr of E(B-V) and a true modulus) the value
+        is kept (ln d = mu0 ln10/5 + const, A_V = R_V E(B-V): both positive multiples).
+    distance_err_low, distance_err_high : ndarray or None
+        Distances from parallaxes: mode minus 16th percentile and 84th percentile minus
+        mode of the distance posterior, pc (the lower one 0 where a skewed posterior has
+        its mode below the 16th percentile); ``distance_err`` is half the 16th-84th
+        percentile range. None for other distances.
+    duplicates : `~astropy.table.Table`
+        One row per input row that was found to duplicate another: ``group``, ``row``,
+        ``name``, ``kind`` (``"exact"`` or ``"near"``), ``merged_into`` (tracer row kept,
+        -1 when kept separately).
     """
 
     l: np.ndarray
@@ -119,6 +134,10 @@ class TracerSet:
     excess_color: tuple = None
     apparent_modulus: np.ndarray = None
     apparent_modulus_err: np.ndarray = None
+    av_distance_corr: np.ndarray = None
+    distance_err_low: np.ndarray = None
+    distance_err_high: np.ndarray = None
+    duplicates: Table = None
 
     def __post_init__(self):
         n = np.size(self.l)
@@ -126,7 +145,14 @@ class TracerSet:
             object.__setattr__(self, attr, frozen(getattr(self, attr)))
         row = np.arange(n) if self.row is None else self.row
         object.__setattr__(self, "row", frozen(row, dtype=np.int64))
-        for attr in ("apparent_modulus", "apparent_modulus_err"):
+        if self.av_distance_corr is None:
+            object.__setattr__(self, "av_distance_corr", np.zeros(n))
+        object.__setattr__(
+            self, "av_distance_corr", frozen(np.broadcast_to(np.asarray(self.av_distance_corr, float), (n,)))
+        )
+        if self.duplicates is None:
+            object.__setattr__(self, "duplicates", empty_duplicates())
+        for attr in ("apparent_modulus", "apparent_modulus_err", "distance_err_low", "distance_err_high"):
             if getattr(self, attr) is not None:
                 object.__setattr__(self, attr, frozen(getattr(self, attr)))
         object.__setattr__(self, "rv", float(self.rv))
@@ -147,7 +173,8 @@ class TracerSet:
 
     # ----------------------------------------------------------------------------------
     @classmethod
-    def from_arrays(cls, l, b, distance, distance_err, av, av_err, name=None, law="ccm89", rv=3.1):
+    def from_arrays(cls, l, b, distance, distance_err, av, av_err, name=None, law="ccm89", rv=3.1,
+                    av_distance_corr=None, duplicates="keep"):
         """Build a tracer set from arrays, validating them like a catalogue.
 
         Parameters
@@ -164,6 +191,11 @@ class TracerSet:
             Extinction law the A_V values refer to (kept for the record).
         rv : float
             R_V (kept for the record).
+        av_distance_corr : array_like, optional
+            Correlation of the A_V and ln-distance errors per tracer, in [-1, 1] (default 0).
+        duplicates : {'keep', 'merge'}
+            Keep duplicated rows (default: arrays are taken as given) or merge them as
+            :func:`read_tracers` does.
 
         Returns
         -------
@@ -192,6 +224,8 @@ class TracerSet:
         t["distance_err"] = qty(distance_err, u.pc, "distance_err")
         t["av"] = qty(av, u.mag, "av")
         t["av_err"] = qty(av_err, u.mag, "av_err")
+        if av_distance_corr is not None:
+            t["ebv_mu0_corr"] = qty(av_distance_corr, u.dimensionless_unscaled, "av_distance_corr").value
         cols = {k: k for k in t.colnames}
         fields, notes = build_tracers(
             t,
@@ -206,6 +240,7 @@ class TracerSet:
             excess_color=None,
             source_desc="arrays (TracerSet.from_arrays)",
             file_sha=None,
+            duplicates=duplicates,
         )
         emit(notes)
         return cls(**fields)
@@ -242,6 +277,9 @@ class TracerSet:
             row=self.row[sel],
             apparent_modulus=None if self.apparent_modulus is None else self.apparent_modulus[sel],
             apparent_modulus_err=None if self.apparent_modulus_err is None else self.apparent_modulus_err[sel],
+            av_distance_corr=self.av_distance_corr[sel],
+            distance_err_low=None if self.distance_err_low is None else self.distance_err_low[sel],
+            distance_err_high=None if self.distance_err_high is None else self.distance_err_high[sel],
             meta=meta,
         )
 
@@ -273,7 +311,9 @@ class TracerSet:
             d, d_err = modulus_to_distance(
                 self.apparent_modulus - av, np.hypot(self.apparent_modulus_err, av_err)
             )
-            changes.update(distance=d, distance_err=d_err)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                corr = -av_err / np.hypot(self.apparent_modulus_err, av_err)
+            changes.update(distance=d, distance_err=d_err, av_distance_corr=np.where(np.isfinite(corr), corr, 0.0))
         meta = dict(self.meta)
         meta["assumptions"] = list(meta.get("assumptions", [])) + [
             f"A_V re-derived from {self.excess_kind} with law {law!r}, R_V = {rv:g} "
@@ -288,7 +328,8 @@ class TracerSet:
         """Return the tracers as a ``QTable`` with units (deg, pc, mag).
 
         Columns: ``row``, ``name``, ``l``, ``b``, ``distance``, ``distance_err``,
-        ``av``, ``av_err``, ``excess``, ``excess_err``. ``meta`` carries the law,
+        ``av``, ``av_err``, ``excess``, ``excess_err``, ``av_distance_corr`` (and
+        ``distance_err_low``/``distance_err_high`` for parallaxes). ``meta`` carries the law,
         R_V, the excess kind and the source.
         """
         t = QTable()
@@ -302,6 +343,10 @@ class TracerSet:
         t["av_err"] = self.av_err * u.mag
         t["excess"] = self.excess * u.mag
         t["excess_err"] = self.excess_err * u.mag
+        t["av_distance_corr"] = np.array(self.av_distance_corr)
+        if self.distance_err_low is not None:
+            t["distance_err_low"] = self.distance_err_low * u.pc
+            t["distance_err_high"] = self.distance_err_high * u.pc
         t.meta.update(
             {
                 "excess_kind": self.excess_kind,
@@ -371,6 +416,11 @@ class TracerSet:
                 f"median error {np.median(self.av_err):.2f} mag), from {self.excess_kind} with law "
                 f"{self.law!r}, R_V = {self.rv:g}"
             )
+        if len(self.duplicates):
+            n_groups = int(np.unique(np.asarray(self.duplicates["group"])).size)
+            how = (f"merged ({self.meta.get('n_merged', 0)} rows folded in)"
+                   if self.meta.get("duplicates", "merge") == "merge" else "kept")
+            lines.append(f"  Duplicates: {len(self.duplicates)} rows in {n_groups} groups, {how} (see .duplicates)")
         if len(self.rejected):
             lines.append(f"  Rejected:  {len(self.rejected)} rows (see .rejected)")
             reasons, counts = np.unique(np.asarray(self.rejected["reason"]), return_counts=True)
