@@ -263,6 +263,8 @@ KNOWN_LONG_FUNCTIONS = {
     ("dustkit.cli", "_cmd_demo"): "the demo's steps as the user sees them printed",
     ("dustkit.clusters.members", "read_photometry"): "one recognition rule per photometric system, in order",
     ("dustkit.cli", "build_parser"): "one block per command; the build command gained --model",
+    ("dustkit.tracers.assemble", "build_tracers"): "the read's steps in order (columns, values, distances, "
+                                                   "reddening, floors, duplicates); to be split next",
     ("dustkit.clusters.fit", "_fit"): "the joint fit's steps (start, search, refine, curvature) in order; "
                                       "to be split with the module",
     ("dustkit.clusters.fit", "_optimise"): "coarse grid then local refinement of the joint fit",

@@ -23,8 +23,7 @@ from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, tracer
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
            "density_from_state"]
 
-#: Floor on a tracer's A_V error (mag): no measurement of reddening is better than this.
-AV_ERR_FLOOR = 0.02
+from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
 
 
 def default_distance_edges(distance_max=6000.0, near_step=50.0, growth=0.1):
