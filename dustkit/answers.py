@@ -45,6 +45,7 @@ __all__ = [
     "query_table",
     "profile_table",
     "estimate_targets",
+    "grid_table",
 ]
 
 #: Shown wherever model answers are reported.
@@ -335,3 +336,35 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
     reasons, counts = np.unique(np.asarray(targets.rejected["reason"], dtype=str), return_counts=True)
     table.meta["rejected_by_reason"] = {str(r): int(c) for r, c in zip(reasons, counts)}
     return table
+
+
+def grid_table(model, pixels=None):
+    """A gridded model as a table: one row per pixel and distance bin.
+
+    Columns: ``pixel``, ``l``, ``b`` (pixel centre, deg), ``distance_min``, ``distance_max``
+    (pc), ``av``, ``av_err`` (cumulative at the bin's far edge, mag), ``av_near`` (cumulative
+    at the near edge), ``differential`` (mag/kpc), ``n_tracers`` (tracers in the pixel and
+    bin). Only ``model.informed_pixels()`` are listed unless ``pixels`` is given. Needs the
+    model's node arrays ``av_``, ``av_err_`` (npix, n_edges), ``differential_`` and
+    ``counts_`` (npix, n_bins).
+    """
+    model.check_fitted()
+    g = model.grid_
+    pixels = model.informed_pixels() if pixels is None else np.asarray(pixels, int)
+    lc, bc = g.pixel_centres(pixels)
+    nb, e = g.n_bins, g.distance_edges
+    t = QTable()
+    t["pixel"] = np.repeat(pixels, nb)
+    t["l"] = np.repeat(lc, nb) * u.deg
+    t["b"] = np.repeat(bc, nb) * u.deg
+    t["distance_min"] = np.tile(e[:-1], pixels.size) * u.pc
+    t["distance_max"] = np.tile(e[1:], pixels.size) * u.pc
+    t["av_near"] = model.av_[pixels, :-1].ravel() * u.mag
+    t["av"] = model.av_[pixels, 1:].ravel() * u.mag
+    t["av_err"] = model.av_err_[pixels, 1:].ravel() * u.mag
+    t["differential"] = model.differential_[pixels].ravel() * (u.mag / u.kpc)
+    t["n_tracers"] = model.counts_[pixels].ravel()
+    t.meta.update({"nside": g.nside, "ordering": g.ordering.upper(), "coordsys": "G", "law": model.law,
+                   "rv": model.rv, **{f"layer_{k}": v for k, v in model.layer_.as_dict().items()},
+                   "caution": CAUTION})
+    return t

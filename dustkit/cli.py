@@ -11,7 +11,6 @@ Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 
 import argparse
 import json
-import os
 import sys
 import traceback
 import warnings

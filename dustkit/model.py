@@ -48,13 +48,12 @@ from dataclasses import dataclass
 
 import numpy as np
 from astropy import units as u
-from astropy.table import QTable
 
 from ._lib.progress import progress
 from ._lib.validation import check_choice, check_int, to_value
-from .answers import CAUTION, av_quantities, binned_av, profile_table, query_table, sky_positions
+from .answers import CAUTION, av_quantities, binned_av, grid_table, profile_table, query_table, sky_positions
 from .binned.finish import finish
-from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, fold_of_rows, heldout_rows
+from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, heldout_rows
 from .binned.statistics import Statistics, monte_carlo_statistics, nominal_statistics, tracer_counts
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
@@ -413,37 +412,7 @@ class ExtinctionModel:
         (tracers in the pixel and bin). Only pixels informed by tracers are listed unless
         ``pixels`` is given.
         """
-        self.check_fitted()
-        g = self.grid_
-        if pixels is None:
-            pixels = self.informed_pixels()
-        pixels = np.asarray(pixels, int)
-        lc, bc = g.pixel_centres(pixels)
-        nb = g.n_bins
-        e = g.distance_edges
-        t = QTable()
-        t["pixel"] = np.repeat(pixels, nb)
-        t["l"] = np.repeat(lc, nb) * u.deg
-        t["b"] = np.repeat(bc, nb) * u.deg
-        t["distance_min"] = np.tile(e[:-1], pixels.size) * u.pc
-        t["distance_max"] = np.tile(e[1:], pixels.size) * u.pc
-        t["av_near"] = self.av_[pixels, :-1].ravel() * u.mag
-        t["av"] = self.av_[pixels, 1:].ravel() * u.mag
-        t["av_err"] = self.av_err_[pixels, 1:].ravel() * u.mag
-        t["differential"] = self.differential_[pixels].ravel() * (u.mag / u.kpc)
-        t["n_tracers"] = self.counts_[pixels].ravel()
-        t.meta.update(
-            {
-                "nside": g.nside,
-                "ordering": g.ordering.upper(),
-                "coordsys": "G",
-                "law": self.law,
-                "rv": self.rv,
-                **{f"layer_{k}": v for k, v in self.layer_.as_dict().items()},
-                "caution": CAUTION,
-            }
-        )
-        return t
+        return grid_table(self, pixels)
 
     def informed_pixels(self):
         """Pixels whose estimate is informed by at least a tenth of a tracer (after smoothing)."""

@@ -4,7 +4,7 @@ import time
 
 import numpy as np
 from astropy import units as u
-from astropy.table import QTable, Table
+from astropy.table import Table
 from scipy import optimize
 from scipy.spatial import cKDTree
 
@@ -13,7 +13,7 @@ import inspect
 from .._lib import healpix
 from .._lib.progress import progress
 from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
-from ..answers import CAUTION, av_quantities, profile_table, query_table, sky_positions
+from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
 from ..layer import DustLayer, fit_layer
@@ -256,8 +256,8 @@ class DensityModel:
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
         weight, n_groups = duplicate_weights(l, b, d, av, ae)
-        corr = np.asarray(getattr(tracers, "av_distance_corr", None) if getattr(tracers, "av_distance_corr", None)
-                          is not None else np.zeros(n), float)
+        corr = getattr(tracers, "av_distance_corr", None)
+        corr = np.zeros(n) if corr is None else np.asarray(corr, float)
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         bar = progress(total=len(cands) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
@@ -516,27 +516,10 @@ class DensityModel:
         return np.nonzero(self.support_.max(axis=1) >= 0.1)[0]
 
     def to_table(self, pixels=None):
-        """The model on its grid: one row per pixel and distance bin (columns as ExtinctionModel.to_table, plus support)."""
-        self.check_fitted()
-        g = self.grid_
-        pixels = self.informed_pixels() if pixels is None else np.asarray(pixels, int)
-        lc, bc = g.pixel_centres(pixels)
-        nb, e = g.n_bins, g.distance_edges
-        t = QTable()
-        t["pixel"] = np.repeat(pixels, nb)
-        t["l"] = np.repeat(lc, nb) * u.deg
-        t["b"] = np.repeat(bc, nb) * u.deg
-        t["distance_min"] = np.tile(e[:-1], pixels.size) * u.pc
-        t["distance_max"] = np.tile(e[1:], pixels.size) * u.pc
-        t["av_near"] = self.av_[pixels, :-1].ravel() * u.mag
-        t["av"] = self.av_[pixels, 1:].ravel() * u.mag
-        t["av_err"] = self.av_err_[pixels, 1:].ravel() * u.mag
-        t["differential"] = self.differential_[pixels].ravel() * (u.mag / u.kpc)
-        t["n_tracers"] = self.counts_[pixels].ravel()
-        t["support"] = self.support_[pixels, 1:].ravel()
-        t.meta.update({"nside": g.nside, "ordering": g.ordering.upper(), "coordsys": "G", "law": self.law,
-                       "rv": self.rv, "model": "density",
-                       **{f"layer_{k}": v for k, v in self.layer_.as_dict().items()}, "caution": CAUTION})
+        """The model on its grid, one row per pixel and distance bin (:func:`dustkit.answers.grid_table`), plus ``support``."""
+        t = grid_table(self, pixels)
+        t["support"] = self.support_[np.asarray(t["pixel"]).reshape(-1, self.grid_.n_bins)[:, 0], 1:].ravel()
+        t.meta["model"] = "density"
         return t
 
     def with_law(self, law, rv):
