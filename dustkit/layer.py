@@ -15,7 +15,7 @@ from .exceptions import CatalogError
 from ._lib.validation import check_real, to_value
 from .tracers.rules import floor_errors
 
-__all__ = ["DustLayer", "layer_av", "fit_layer", "layer_av_pc", "layer_av_mu", "layer_slope_pc"]
+__all__ = ["DustLayer", "layer_av", "fit_layer", "sky_blocks", "layer_av_pc", "layer_av_mu", "layer_slope_pc"]
 
 _PC_PER_KPC = 1000.0
 
@@ -179,7 +179,8 @@ class DustLayer:
         )
 
 
-def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=50_000, random_state=0):
+def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=50_000, random_state=0, n_boot=0,
+              blocks=None):
     """Fit an exponential dust layer to a tracer set by robust weighted least squares.
 
     Parameters
@@ -195,7 +196,14 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         Larger sets are fitted on a random subset of this size (the layer has three
         parameters; more tracers do not change it).
     random_state : int
-        Seed for the subset.
+        Seed for the subset (and the bootstrap).
+    n_boot : int
+        With ``n_boot > 0``, the parameter errors and covariance come from a bootstrap over
+        ``blocks`` (resampled with replacement, ``n_boot`` times; each refit starts from the
+        solution), never smaller than the Jacobian's: clouds and clumps correlate the
+        residuals of neighbouring tracers, which the Jacobian treats as independent.
+    blocks : array of int, optional
+        Block label of each tracer for the bootstrap (default: :func:`sky_blocks`).
 
     Returns
     -------
@@ -228,13 +236,45 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         pick = np.random.default_rng(random_state).choice(n, max_tracers, replace=False)
         b, d, de, av, ae = b[pick], d[pick], de[pick], av[pick], ae[pick]
 
+    p, scatter, cov = _solve_layer(b, d, de, av, ae, initial, f_scale)
+    if n_boot and n_boot > 0:
+        labels = sky_blocks(tracers.l, tracers.b) if blocks is None else np.asarray(blocks)
+        if n > max_tracers:
+            labels = labels[pick]
+        cov = _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, int(n_boot), random_state, cov, scatter)
+    err = np.sqrt(np.clip(np.diag(cov), 0, None))
+    return DustLayer(
+        a0=float(p[0]), h=float(p[1]), z_sun=float(p[2]),
+        a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
+        scatter=scatter, n_used=int(b.size), covariance=cov,
+    )
+
+
+def sky_blocks(l_deg, b_deg, min_blocks=20):
+    """Bootstrap blocks: HEALPix cells of the coarsest NSIDE (2 to 64) with at least ``min_blocks`` occupied.
+
+    Falls back to single tracers when even NSIDE 64 leaves fewer (a small region).
+    """
+    from ._lib import healpix
+
+    l_deg, b_deg = np.asarray(l_deg, float), np.asarray(b_deg, float)
+    for nside in (2, 4, 8, 16, 32, 64):
+        pix = healpix.ang2pix(nside, l_deg, b_deg)
+        if np.unique(pix).size >= min_blocks:
+            return pix
+    return np.arange(l_deg.size)
+
+
+def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
+    """Robust weighted least squares of the layer; returns (params, intrinsic scatter, Jacobian covariance)."""
     lo = np.array([1e-4, 5.0, -300.0])
     hi = np.array([50.0, 5000.0, 300.0])
     p = np.clip(np.asarray(initial, float), lo + 1e-9, hi - 1e-9)
-    scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)
+    if scatter is None:
+        scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)
     mu = np.sin(np.deg2rad(b))
     buf = (np.empty(b.size), np.empty(b.size), np.empty(b.size, bool), np.empty(b.size, bool))
-    for _ in range(3):
+    for _ in range(n_pass):
         slope = layer_slope_pc(b, d, *p)
         sigma = np.sqrt(ae**2 + (slope * de) ** 2 + scatter**2)
 
@@ -255,9 +295,27 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         cov = np.linalg.inv(jac.T @ jac) * max(robust_var, 1e-12)
     except np.linalg.LinAlgError:
         cov = np.full((3, 3), np.nan)
-    err = np.sqrt(np.clip(np.diag(cov), 0, None))
-    return DustLayer(
-        a0=float(p[0]), h=float(p[1]), z_sun=float(p[2]),
-        a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
-        scatter=scatter, n_used=int(b.size), covariance=cov,
-    )
+    return p, scatter, cov
+
+
+def _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, n_boot, random_state, jac_cov, scatter):
+    """Covariance of the layer parameters from a block bootstrap, no smaller than ``jac_cov`` on the diagonal."""
+    uniq, inv = np.unique(labels, return_inverse=True)
+    members = np.argsort(inv, kind="stable")
+    starts = np.concatenate([[0], np.cumsum(np.bincount(inv))])
+    rng = np.random.default_rng(random_state + 1)
+    draws = []
+    for _ in range(n_boot):  # a few dozen refits of three parameters
+        pick = rng.integers(0, uniq.size, uniq.size)
+        idx = np.concatenate([members[starts[k]:starts[k + 1]] for k in pick])
+        if idx.size < 5:
+            continue
+        q, _, _ = _solve_layer(b[idx], d[idx], de[idx], av[idx], ae[idx], p, f_scale, n_pass=1, scatter=scatter)
+        draws.append(q)
+    if len(draws) < 5:
+        return jac_cov
+    boot = np.cov(np.asarray(draws).T)
+    var = np.maximum(np.diag(boot), np.diag(jac_cov))
+    sd_b = np.sqrt(np.maximum(np.diag(boot), 1e-300))
+    corr = boot / np.outer(sd_b, sd_b)
+    return corr * np.outer(np.sqrt(var), np.sqrt(var))

@@ -16,7 +16,7 @@ from .._lib.validation import check_choice, check_int, check_nside, check_real, 
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
-from ..layer import DustLayer, fit_layer
+from ..layer import DustLayer, fit_layer, layer_av_pc
 from .lattice import Lattice, active_pixels, chord, unit_vectors
 from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, tracer_terms
 
@@ -24,6 +24,9 @@ __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_
            "density_from_state"]
 
 from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
+
+#: Bootstrap resamples (over sky blocks) for the layer's parameter errors.
+LAYER_BOOTSTRAP = 30
 
 
 def default_distance_edges(distance_max=6000.0, near_step=50.0, growth=0.1):
@@ -173,7 +176,7 @@ class DensityModel:
         nside="auto",
         distance_max=6000 * u.pc,
         distance_edges=None,
-        amplitudes=(0.1, 0.25, 0.6),
+        amplitudes=(0.03, 0.1, 0.25, 0.6),
         lengths=(150, 500) * u.pc,
         n_folds=3,
         n_samples=32,
@@ -231,7 +234,7 @@ class DensityModel:
         lens = np.atleast_1d(to_value("lengths", self.lengths, u.pc, default_unit=u.pc)).astype(float)
         for x in lens:
             check_real("lengths", float(x), 1.0, 1e5)
-        return [(a, float(L)) for a in amps for L in lens]
+        return sorted(amps), sorted(float(L) for L in lens)
 
     # -- fitting
     def fit(self, tracers):
@@ -251,7 +254,8 @@ class DensityModel:
                                for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
         floored = int(np.sum(ae < AV_ERR_FLOOR))
         ae = np.maximum(ae, AV_ERR_FLOOR)
-        layer = fit_layer(tracers)
+        # layer errors by a bootstrap over sky blocks (clouds correlate neighbouring residuals)
+        layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=self.random_state)
         pixels = active_pixels(grid, l, b, radius)
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
@@ -260,45 +264,63 @@ class DensityModel:
         corr = np.zeros(n) if corr is None else np.asarray(corr, float)
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
-        bar = progress(total=len(cands) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
-        with bar:
-            for amp, length in cands:
-                lat = Lattice(grid, pixels, amp, length)
-                terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
-                warm = getattr(self, "_warm_start", None)
-                warm = warm if warm is not None and warm.shape == lat.shape else None
-                full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
-                resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
-                for k in range(folds_n):
-                    test = fold == k
-                    if test.any() and not test.all():
-                        post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4)
-                        xs = draw_samples(lat, post, 6, rng)
-                        base[test], var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
-                        resid[test] = av[test] - base[test]
-                        pvar[test] = var + var_d
-                    bar.update(1)
-                ok = ~terms.censored
-                tau, score = _fit_tau(resid[ok], pvar[ok], ae[ok], base[ok])
-                spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2)
-                rows.append((amp, length, tau, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
-                             float(np.mean(np.abs(resid[ok]) <= spread))))
-                if best is None or score < best[0][3]:
-                    best = (rows[-1], full.xi, resid.copy(), pvar.copy(), base.copy(), full.predicted)
+        amps, lens = cands
+        bar = progress(total=(len(amps) + len(lens) - 1) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
+
+        def evaluate(amp, length, warm):
+            lat = Lattice(grid, pixels, amp, length)
+            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
+            warm = warm if warm is not None and warm.shape == lat.shape else None
+            full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
+            resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
+            for k in range(folds_n):
+                test = fold == k
+                if test.any() and not test.all():
+                    post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4)
+                    xs = draw_samples(lat, post, 6, rng)
+                    base[test], var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
+                    resid[test] = av[test] - base[test]
+                    pvar[test] = var + var_d
                 bar.update(1)
+            ok = ~terms.censored
+            tau, score = _fit_tau(resid[ok], pvar[ok], ae[ok], base[ok])
+            spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2)
+            rows.append((amp, length, tau, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
+                         float(np.mean(np.abs(resid[ok]) <= spread))))
+            bar.update(1)
+            return rows[-1], full.xi, resid, pvar, base, full.predicted
+
+        with bar:
+            # coordinate search: the amplitudes at the longest length, then the other lengths at
+            # the best amplitude (each start from the previous mode, rescaled to the same f)
+            warm0 = getattr(self, "_warm_start", None)
+            prev = None
+            for amp in amps:
+                warm = warm0 if prev is None else prev[1] * (prev[0][0] / amp)
+                prev = evaluate(amp, lens[-1], warm)
+                if best is None or prev[0][3] < best[0][3]:
+                    best = prev
+            for length in lens[:-1][::-1]:
+                cand = evaluate(best[0][0], length, None)
+                if cand[0][3] < best[0][3]:
+                    best = cand
             (amp, length, tau, *_), xi0, resid, pvar, base, fitted = best
             # what held-out tracers missed beyond their predicted spread; a tracer that even the
             # fit with it inside disagrees with is an outlier (a wrong member), not unresolved dust
             z_fit = (av - fitted) / np.sqrt(ae**2 + (tau * fitted) ** 2)
             consistent = NU / (NU + z_fit**2)
             # signed: a calibrated tracer scatters around zero; only the local average is clipped
-            excess = np.where(terms.censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
-            # relative excess, bounded per tracer (a lone wrong member moves a pixel's prior at most
-            # as much as a real factor-e miss); the neighbours' agreement decides the rest
-            rel = np.minimum(excess / np.maximum(base, 0.1) ** 2, 1.0)
-            boost = _amplitude_boost(grid, pixels, l, b, rel, weight, amp)
+            censored = d > grid.distance_edges[-1]
+            excess = np.where(censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
+            ok = ~censored
+            noise = ae**2 + (tau * base) ** 2
+            # where held-out tracers are fitted better than predicted, a tighter prior (per pixel)
+            lower = np.minimum(_local_scale(grid, pixels, l[ok], b[ok], resid[ok], pvar[ok], noise[ok],
+                                            (weight * consistent)[ok]), 1.0)
             excess *= consistent
-            lat = Lattice(grid, pixels, amp, length, boost)
+            # where they miss, more freedom in the cells in front of them (per cell)
+            boost, cell_length = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp, length, lower)
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
@@ -306,7 +328,14 @@ class DensityModel:
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.mode_ = post.xi  # white-noise coordinates of the posterior mode (warm starts)
         self.unresolved_ = _unresolved(grid, l, b, d, excess, weight)
-        self.av_err_ = np.sqrt(self.posterior_err_**2 + self.unresolved_ + (self.tau_ * self.av_) ** 2)
+        # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
+        # leans on the prior; where tracers inform it, the field's posterior absorbs the
+        # layer's misfit (weight 1 - support)
+        layer_var = _layer_variance(layer, grid)
+        self.layer_err_ = np.sqrt((1.0 - self.support_) * layer_var)
+        self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
+        self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
+                               + (self.tau_ * self.av_) ** 2)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "score", "rms", "coverage"))
         self.cv_["length"].unit = u.pc
         self.cv_["rms"].unit = u.mag
@@ -316,7 +345,8 @@ class DensityModel:
             "model": "3-D log-normal density", "n_tracers": n, "n_active_pixels": int(pixels.size),
             "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": floored,
             "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
-            "boosted_pixels": int(np.sum(lat.boost > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
+            "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
+            "lowered_pixels": int(np.sum(lat.boost.max(axis=0) < 0.9)),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
         }
         return self
@@ -327,7 +357,8 @@ class DensityModel:
         _, bc_all = grid.pixel_centres()
         inc = _layer_increments(layer, bc_all, e)                                   # (npix, K)
         prior_var = _prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
-        prior_var[lat.pixels] *= lat.boost[:, None] ** 2
+        # active pixels: their own amplitudes and lengths, cell by cell
+        prior_var[lat.pixels] = lat.cumulative_prior_variance(inc[lat.pixels])
         av = np.concatenate([np.zeros((npix, 1)), np.cumsum(inc, axis=1)], axis=1)   # the prior (layer)
         var = prior_var.copy()
         # point estimate: the posterior mode (monotone: the density is positive); spread: the
@@ -346,7 +377,8 @@ class DensityModel:
         with np.errstate(invalid="ignore", divide="ignore"):
             self.support_ = np.clip(1.0 - var / np.where(prior_var > 0, prior_var, np.inf), 0.0, 1.0)
         self.active_pixels_ = lat.pixels
-        self.boost_ = lat.boost
+        self.boost_ = np.array(lat.boost)
+        self.pixel_length_ = np.array(lat.pixel_length)
         self.samples_ = np.ascontiguousarray(np.transpose(cum, (1, 0, 2))).astype(np.float32)
         self.differential_ = np.diff(av, axis=1) / (np.diff(e) / 1000.0)
         counts = np.zeros((npix, e.size - 1), np.int64)
@@ -402,7 +434,8 @@ class DensityModel:
         e = self.grid_.distance_edges
         pix, wgt, k, f, ratio, lay_t = self._locate(l, b, d)
         a = self._nodes(self.av_, pix, wgt, k, f) * ratio
-        var = self._nodes(self.posterior_err_**2, pix, wgt, k, f) * ratio**2 + self._nodes(self.unresolved_, pix, wgt, k, f)
+        var = (self._nodes(self.posterior_err_**2 + self.layer_err_**2, pix, wgt, k, f) * ratio**2
+               + self._nodes(self.unresolved_, pix, wgt, k, f))
         beyond = d > e[-1]
         if np.any(beyond):  # past the grid: the layer's prior, carried on
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
@@ -547,7 +580,7 @@ class DensityModel:
                  and np.all(np.minimum(old_err, new_err) >= AV_ERR_FLOOR))
         if exact:
             m = copy.copy(self)
-            for k in ("av_", "av_err_", "posterior_err_", "prior_err_", "differential_"):
+            for k in ("av_", "av_err_", "posterior_err_", "prior_err_", "differential_", "layer_err_"):
                 setattr(m, k, getattr(self, k) * ratio)
             m.unresolved_ = self.unresolved_ * ratio**2
             m.samples_ = (self.samples_ * np.float32(ratio)).astype(np.float32)
@@ -576,6 +609,28 @@ def _scaled_cov(cov, ratio):
     """Layer covariance (a0, h, z_sun) after multiplying a0 by ``ratio``."""
     scale = np.array([ratio, 1.0, 1.0])
     return np.asarray(cov, float) * scale[:, None] * scale[None, :]
+
+
+def _layer_variance(layer, grid):
+    """Variance (mag^2) of the layer's cumulative A_V at every pixel centre and edge from its parameter covariance.
+
+    The delta method with central differences in (a0, h, z_sun).
+    """
+    _, bc = grid.pixel_centres()
+    e = grid.distance_edges
+    bb, dd = np.repeat(bc, e.size), np.tile(e, bc.size)
+    p0 = np.array([layer.a0, layer.h, layer.z_sun], float)
+    steps = np.maximum(1e-4 * np.abs(p0), [1e-6, 1e-3, 1e-3])
+    jac = []
+    for j in range(3):
+        hi, lo = p0.copy(), p0.copy()
+        hi[j] += steps[j]
+        lo[j] -= steps[j]
+        jac.append((layer_av_pc(bb, dd, *hi) - layer_av_pc(bb, dd, *lo)) / (2 * steps[j]))
+    jac = np.asarray(jac)                                   # (3, npix * E)
+    cov = np.nan_to_num(np.asarray(layer.covariance, float))
+    var = np.einsum("in,ij,jn->n", jac, cov, jac)
+    return np.maximum(var, 0.0).reshape(bc.size, e.size)
 
 
 def _layer_increments(layer, b_deg, edges):
@@ -633,27 +688,69 @@ def _fit_tau(resid, pvar, err, base):
     return float(res.x), float(res.fun)
 
 
-def _amplitude_boost(grid, pixels, l, b, rel_excess, weight, amplitude, sky_deg=2.0, prior_weight=3.0, cap=4.0):
-    """Per-pixel factor on the prior amplitude from held-out tracers' relative excess variance.
+def _local_scale(grid, pixels, l, b, resid, pvar, noise, weight, sky_deg=2.0, prior_weight=1.0,
+                 low=0.1, cap=10.0, n_iter=6):
+    """Per-pixel factor on the prior amplitude, by local empirical Bayes on held-out tracers.
 
-    Where nearby held-out tracers miss by more than their predicted spread (relative to the
-    extinction predicted for them), the log-density there varies more than the sky-wide
-    amplitude allows: ``boost^2 = 1 + <excess / A^2> / s^2`` (kernel-weighted mean over
-    tracers within ``sky_deg``, shrunk by ``prior_weight`` tracers' worth of zero), capped
-    at ``cap``. An empirical-Bayes, heavier-tailed prior: clouds get the freedom they need
-    without loosening the prior over the smooth rest of the sky.
+    A held-out tracer's residual ``r`` has predicted variance ``noise + pvar`` (its own error
+    and the unresolved part, plus the posterior spread of the prediction, which the prior
+    sets where data are thin). Where the log-density varies by a factor ``beta`` more (or
+    less) than the sky-wide amplitude allows, that spread scales as ``beta^2 pvar``. Around
+    each active pixel, ``beta^2`` maximises the Gaussian likelihood of the held-out
+    residuals within ``sky_deg`` (Gaussian weights on the sky times each tracer's weight),
+    with a penalty worth ``prior_weight`` tracers pulling it toward 1, by Fisher scoring.
+    Without nearby held-out tracers, ``beta = 1``: the sky-wide prior. Clipped to
+    ``[low, cap]``: clouds get the freedom they need, the smooth rest of the sky a prior no
+    wider than its tracers allow. This is a heavier-tailed, non-stationary prior learned from
+    the data (an empirical-Bayes local scale, in the manner of scale-mixture priors).
     """
     lc, bc = grid.pixel_centres(pixels)
     pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(
         cKDTree(unit_vectors(l, b)), chord(3 * sky_deg), output_type="coo_matrix")
     ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
-    w = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[pairs.col]
-    num = np.bincount(pairs.row, w * rel_excess[pairs.col], minlength=pixels.size)
-    den = np.bincount(pairs.row, w, minlength=pixels.size)
-    return np.minimum(np.sqrt(1.0 + np.maximum(num / (den + prior_weight), 0.0) / amplitude**2), cap)
+    row, tr = pairs.row, pairs.col
+    w = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[tr]
+    p, r2, n0 = pvar[tr], resid[tr] ** 2, noise[tr]
+    # a typical tracer's information about the scale sets the strength of the pull toward 1
+    info_one = float(np.average((pvar / (pvar + noise)) ** 2, weights=np.maximum(weight, 1e-12))) / 2.0
+    beta2 = np.ones(pixels.size)
+    for _ in range(n_iter):
+        v = n0 + beta2[row] * p
+        score = np.bincount(row, w * p * (r2 - v) / v**2, minlength=pixels.size) / 2.0
+        info = np.bincount(row, w * p**2 / v**2, minlength=pixels.size) / 2.0
+        pull = prior_weight * info_one
+        beta2 = beta2 + (score - pull * (beta2 - 1.0)) / (info + pull)
+        beta2 = np.clip(beta2, low**2, cap**2)
+    return np.sqrt(beta2)
 
 
-def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0):
+def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, lower, max_amplitude=2.0,
+                shortest=60.0):
+    """Per-cell factor on the prior amplitude, and per-cell correlation length, from held-out misses.
+
+    The excess variance of held-out tracers (squared residual beyond its predicted
+    variance), spread on the sky and in log distance as for the unresolved variance, and
+    made non-decreasing with distance, says how much extinction variance the prior missed
+    out to each distance; its growth across a bin, ``dX_k``, sits in that bin. A cell whose
+    prior spread of extinction is ``s inc_k`` (``inc_k``: the layer's extinction in the bin)
+    gets ``boost^2 = lower^2 + dX_k / (s inc_k)^2``: compact clouds get the freedom they need
+    where tracers behind them miss and tracers in front do not. Capped so that ``s boost``
+    stays at most ``max_amplitude``; a raised cell also gets a correlation length shorter by
+    the same factor (at least ``shortest`` pc): the structure it stands for is compact.
+    """
+    e = grid.distance_edges
+    _, bc = grid.pixel_centres(pixels)
+    x = _unresolved(grid, l, b, d, excess, weight, pixels=pixels)        # (P, E)
+    dx = np.diff(np.maximum.accumulate(x, axis=1), axis=1)              # (P, K)
+    inc = _layer_increments(layer, bc, e)                               # (P, K)
+    boost2 = lower[:, None] ** 2 + dx / np.maximum((amplitude * inc) ** 2, 1e-12)
+    boost = np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
+    raised = np.maximum(boost / lower[None, :], 1.0)
+    cell_length = np.clip(length / raised, min(shortest, length), length)
+    return boost, cell_length
+
+
+def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
     """Local variance the cells miss (npix, n_edges), from held-out tracers' excess squared residuals.
 
     Each tracer's excess (its held-out squared residual beyond the predicted variance)
@@ -662,23 +759,24 @@ def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_wei
     not inflate a whole region). Zero far from tracers, where the prior's spread rules.
     """
     e = grid.distance_edges
-    lc, bc = grid.pixel_centres()
+    lc, bc = grid.pixel_centres(pixels)
+    n_out = lc.size
     tree = cKDTree(unit_vectors(l, b))
     pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(tree, chord(3 * sky_deg), output_type="coo_matrix")
     pix, tr = pairs.row, pairs.col
     ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
     w_sky = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[tr]
-    out = np.zeros((grid.npix, e.size))
+    out = np.zeros((n_out, e.size))
     for j in range(1, e.size):  # one pass per distance edge, vectorised over pixel-tracer pairs
         w = w_sky * np.exp(-0.5 * (np.log(e[j] / d[tr]) / depth) ** 2)
-        num = np.bincount(pix, w * excess[tr], minlength=grid.npix)
-        den = np.bincount(pix, w, minlength=grid.npix)
+        num = np.bincount(pix, w * excess[tr], minlength=n_out)
+        den = np.bincount(pix, w, minlength=n_out)
         out[:, j] = np.maximum(num / (den + prior_weight), 0.0)
     return out
 
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
-                 "differential_", "samples_", "active_pixels_", "boost_", "mode_")
+                 "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
 _STATE_SCALARS = ("amplitude_", "length_", "tau_")
 
 

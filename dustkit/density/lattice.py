@@ -68,7 +68,7 @@ class Lattice:
         Correlation length ``L`` (pc).
     """
 
-    def __init__(self, grid, pixels, amplitude, length, boost=None):
+    def __init__(self, grid, pixels, amplitude, length, boost=None, pixel_length=None):
         self.grid = grid
         self.pixels = np.asarray(pixels, np.int64)
         self.amplitude = float(amplitude)
@@ -80,13 +80,54 @@ class Lattice:
         lc, bc = grid.pixel_centres(self.pixels)
         self.l_centre, self.b_centre = lc, bc
         spacing = np.diff(np.concatenate([[0.0], self.centres]))
+        self.spacing = spacing
         self.phi = np.exp(-spacing / self.length)
         self.phi[0] = 0.0
         self.innov = np.sqrt(1.0 - self.phi**2) * self.amplitude
-        # per-pixel factor on the amplitude (>= 1 where tracers show more structure than the
-        # rest of the sky): a cell of pixel p has prior standard deviation s * boost[p]
-        self.boost = np.ones(self.n_pix) if boost is None else np.asarray(boost, float)
+        # per-pixel factor on the amplitude (above 1 where tracers show more structure than the
+        # rest of the sky, below 1 where less): a cell of pixel p has prior standard deviation
+        # s * boost[p]
+        # per pixel (P,) or per cell (K, P)
+        shape = (self.n_bins, self.n_pix)
+        self.boost = np.broadcast_to(np.ones(self.n_pix) if boost is None else np.asarray(boost, float), shape)
+        # correlation length along the sight line per pixel or per cell (compact clouds: shorter than L)
+        self.pixel_length = np.broadcast_to(np.full(self.n_pix, self.length) if pixel_length is None
+                                            else np.asarray(pixel_length, float), shape)
+        phi_px = np.exp(-spacing[:, None] / self.pixel_length)  # (K, P)
+        phi_px[0] = 0.0
+        self.phi_px = phi_px
+        self.innov_px = np.sqrt(1.0 - phi_px**2) * self.amplitude * self.boost
         self.kernels = self._sky_kernels(unit_vectors(lc, bc))
+
+    def cell_variance(self):
+        """Prior variance of ``f`` in every cell (n_bins, n_pix), by the AR(1) recursion."""
+        var = np.empty(self.shape)
+        var[0] = self.innov_px[0] ** 2
+        for k in range(1, self.n_bins):
+            var[k] = self.phi_px[k] ** 2 * var[k - 1] + self.innov_px[k] ** 2
+        return var
+
+    def cumulative_prior_variance(self, inc):
+        """Prior variance of the linearised cumulative extinction at every edge of the active pixels.
+
+        ``inc`` (n_pix, n_bins): the extinction of each bin at the prior median. Uses the
+        exact covariance of the AR(1) process with per-cell amplitudes and lengths
+        (``cov(f_j, f_k) = var_j prod_{j<m<=k} phi_m``); returns (n_pix, n_bins + 1).
+        """
+        k = self.n_bins
+        var = self.cell_variance().T                       # (P, K)
+        phi = self.phi_px.T                                # (P, K)
+        cov = np.zeros((self.n_pix, k, k))
+        for j in range(k):
+            cov[:, j, j] = var[:, j]
+            if j:
+                cov[:, :j, j] = cov[:, :j, j - 1] * phi[:, j, None]
+        cov = np.triu(cov) + np.transpose(np.triu(cov, 1), (0, 2, 1))
+        m = inc[:, :, None] * cov * inc[:, None, :]
+        cum = np.cumsum(np.cumsum(m, axis=1), axis=2)
+        out = np.zeros((self.n_pix, k + 1))
+        out[:, 1:] = np.diagonal(cum, axis1=1, axis2=2)
+        return out
 
     @property
     def shape(self):
@@ -141,24 +182,27 @@ class Lattice:
     def forward(self, xi):
         """``f = T xi``; ``xi`` of shape (n_bins, n_pix) or (n_bins, n_pix, m)."""
         step = self._apply_kernels(xi)
-        step *= self.innov.reshape(-1, *([1] * (xi.ndim - 1))).astype(step.dtype)
-        step *= self.boost.reshape(1, -1, *([1] * (xi.ndim - 2))).astype(step.dtype)
+        tail = (1,) * (xi.ndim - 2)
+        step *= self.innov_px.reshape(*self.shape, *tail).astype(step.dtype)
+        phi = self.phi_px.reshape(*self.shape, *tail).astype(step.dtype)
         for k in range(1, self.n_bins):  # the AR(1) recursion along the sight lines
-            step[k] += step.dtype.type(self.phi[k]) * step[k - 1]
+            step[k] += phi[k] * step[k - 1]
         return step
 
     def adjoint(self, y):
         """``T^T y`` (the transpose of :meth:`forward`)."""
         u = y.copy()
+        tail = (1,) * (y.ndim - 2)
+        phi = self.phi_px.reshape(*self.shape, *tail).astype(u.dtype)
         for k in range(self.n_bins - 2, -1, -1):
-            u[k] += u.dtype.type(self.phi[k + 1]) * u[k + 1]
-        u *= self.innov.reshape(-1, *([1] * (y.ndim - 1))).astype(u.dtype)
-        u *= self.boost.reshape(1, -1, *([1] * (y.ndim - 2))).astype(u.dtype)
+            u[k] += phi[k + 1] * u[k + 1]
+        u *= self.innov_px.reshape(*self.shape, *tail).astype(u.dtype)
         return self._apply_kernels(u, transpose=True)
 
-    def bin_correlation(self):
-        """Prior correlation of ``f`` between distance bins along one sight line (n_bins, n_bins)."""
-        logphi = np.log(np.maximum(self.phi, 1e-300))
+    def bin_correlation(self, length=None):
+        """Prior correlation of ``f`` between distance bins along a sight line of correlation ``length`` (n_bins, n_bins)."""
+        phi = self.phi if length is None else np.exp(-self.spacing / float(length))
+        logphi = np.log(np.maximum(phi, 1e-300))
         logphi[0] = 0.0
         c = np.cumsum(logphi)
         return np.exp(-np.abs(c[:, None] - c[None, :]))
