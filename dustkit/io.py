@@ -87,10 +87,8 @@ def _version():
         from importlib.metadata import version
 
         return version("dustkit")
-    except Exception:  # not installed (running from a source tree): the package's own version
-        from . import __version__
-
-        return str(__version__)
+    except Exception:  # not installed (running from a source tree)
+        return "unknown"
 
 
 def _table_format(path, format):

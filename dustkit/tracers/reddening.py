@@ -160,13 +160,13 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
     from .. import bands as _bands
 
     tcol, ccol = cols.get("temperature"), cols.get("intrinsic_color")
+    t_default = float(temperature_input(source_temperature, DEFAULT_TEMPERATURE, stacklevel=6))
     if kind in ("E(B-V)", "A_V"):
         for c, role in ((tcol, "temperature"), (ccol, "intrinsic_color")):
             if c is not None:
                 ctx.used.pop(role, None)
                 ctx.assumptions.append(f"column {c!r} not used: A_V from {kind} does not depend on the star")
         return None
-    t_default = float(temperature_input(source_temperature, DEFAULT_TEMPERATURE, stacklevel=6))
     lo_t, hi_t = TEMPERATURE_RANGE
     n = ctx.n
     what = f"the {kind} -> A_V conversion"
