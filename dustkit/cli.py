@@ -53,7 +53,14 @@ _EPILOGS = {
   dustkit build clusters.fits -o model.fits --nside 64 --distance-max 5000 --distance-step 250
   dustkit build stars.csv -o model.fits --column ebv=EBV_MAG --column distance=D --distance-unit kpc
   dustkit build clusters.csv -o model.fits --distance-edges 0,250,500,1000,2000,4000 --law odonnell94 --rv 3.1
-  dustkit build field_stars/ -o model.fits --nside 64 --chunk-size 2000000""",
+  dustkit build field_stars/ -o model.fits --nside 64 --chunk-size 2000000
+  dustkit build giants.csv -o model.fits --source-temperature 4500
+
+A colour excess other than E(B-V) (a column E(BP-RP), E(J-Ks), ...) is turned into A_V through
+the passbands of its two bands for each row's star: its temperature from a column teff (T_eff,
+logTeff, teff_gspphot, ...) or its intrinsic colour from a column such as (BP-RP)_0; rows and
+catalogues without one use --source-temperature (default 5800 K, announced). E(B-V) gives
+A_V = R_V E(B-V) whatever the star.""",
     "estimate": """examples:
   dustkit estimate model.fits targets.csv -o targets_av.csv
   dustkit estimate model.fits targets.ecsv -o targets_av.ecsv --band J --band Ks
@@ -120,7 +127,7 @@ def _add_catalogue_options(p):
     p.add_argument("--column", action="append", default=[], metavar="KEY=NAME",
                    help="use column NAME for KEY (repeatable), e.g. --column ebv=EBV --column distance=Dist; "
                         "keys: name, l, b, ra, dec, distance, distance_modulus, apparent_modulus, parallax, "
-                        "ebv, av, excess and KEY_err")
+                        "ebv, av, excess, temperature, intrinsic_color and KEY_err")
     p.add_argument("--distance-unit", metavar="UNIT",
                    help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
     p.add_argument("--modulus-kind", choices=("true", "apparent"), default=None,
@@ -134,6 +141,10 @@ def _add_tracer_options(p):
                         "within their errors): merge each group into one tracer (default) or keep them")
     p.add_argument("--parallax-floor", type=float, default=None, metavar="MAS",
                    help="systematic error added in quadrature to parallax errors, mas (default 0.01)")
+    p.add_argument("--source-temperature", type=float, default=None, metavar="K",
+                   help="blackbody temperature in K of the stars, for converting a colour excess other than "
+                        "E(B-V) (E(BP-RP), E(J-Ks), ...) to A_V where the catalogue has no temperature (teff) or "
+                        "intrinsic-colour ((BP-RP)_0) column or cell (default 5800; E(B-V) does not depend on it)")
 
 
 def _add_law_options(p):
@@ -379,6 +390,8 @@ def _read_tracers(args, path, summary_shown=True):
     kw = {}
     if getattr(args, "parallax_floor", None) is not None:
         kw["parallax_err_floor"] = args.parallax_floor * u.mas
+    if getattr(args, "source_temperature", None) is not None:
+        kw["source_temperature"] = args.source_temperature * u.K
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         tracers = read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,

@@ -76,8 +76,8 @@ _STATE_FLOATS = (
     "a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err", "layer_scatter",
     "walk_variance", "distance_smoothing", "rv",
 )
-_TRACER_FLOATS = ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err")
-_TRACER_UNITS = {"l": "deg", "b": "deg", "distance": "pc", "distance_err": "pc"}
+_TRACER_FLOATS = ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "temperature")
+_TRACER_UNITS = {"l": "deg", "b": "deg", "distance": "pc", "distance_err": "pc", "temperature": "K"}
 
 
 # ============================================================================ helpers
@@ -573,6 +573,13 @@ def _model_from_parts(path, parts):
     if "ROW" in trd.columns.names:
         changes["row"] = np.asarray(trd["ROW"], np.int64)
     changes["name"] = ts.name  # as stored in the file
+    kind = changes["excess_kind"]
+    if kind not in ("A_V", "E(B-V)") and kind.startswith("E("):  # the colour, for TracerSet.with_law
+        from .bands import parse_excess_name
+
+        changes["excess_color"] = parse_excess_name(kind, strict=False)
+    elif kind == "E(B-V)":
+        changes["excess_color"] = ("B", "V")
     model.tracers_ = replace(ts, **changes)
     if state["cv"] is not None:
         cv = state["cv"]

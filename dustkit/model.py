@@ -452,7 +452,7 @@ def model_state(model):
     params["sky_passes"] = [int(p) for p in np.atleast_1d(model.sky_passes)]
     t = model.tracers_
     tracers = {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")}
-    for k in ("excess", "excess_err"):
+    for k in ("excess", "excess_err", "temperature"):
         v = getattr(t, k, None)
         if v is not None:
             tracers[k] = np.asarray(v, float)

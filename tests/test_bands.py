@@ -814,3 +814,27 @@ def test_excess_round_trip_property(av, temperature, law, pair):
     assert back == pytest.approx(av, abs=1e-9)
     e2, _ = av_to_excess(av + 0.01, 0.0, *pair, law=law, temperature=temperature * u.K)
     assert e2 > e
+
+
+# ------------------------------------------------ Gaia DR2 passbands
+@pytest.mark.parametrize("colour", [0.0, 0.82, 2.0])
+@pytest.mark.parametrize("band", ["G", "BP", "RP"])
+def test_gaia_dr2_bands_against_babusiaux_fit(band, colour):
+    # Babusiaux et al. 2018 (A&A 616, A10) worked with the DR2 passbands: their Table 1 fit
+    # (coefficients from memory, tolerance 0.03) at A_0 = 0.3 for the DR2 bands too
+    assert _k0(f"{band}_DR2", "fitzpatrick99", colour, 0.3) == pytest.approx(_babusiaux(band, colour, 0.3), abs=0.03)
+
+
+def test_gaia_dr2_bands_are_registered_beside_the_default_dr3_ones():
+    table = band_table()
+    rows = {name: (system, curve) for name, system, curve in zip(table["name"], table["system"], table["curve"])}
+    for band in ("G", "BP", "RP"):
+        assert f"speclite 'gaiadr3-{band}'" in rows[band][1]  # the default G/BP/RP stay (E)DR3
+        assert rows[f"{band}_DR2"][0] == "Gaia DR2" and f"speclite 'gaiadr2-{band}'" in rows[f"{band}_DR2"][1]
+        assert get_band(f"Gaia DR2 {band}").name == f"{band}_DR2"
+        assert get_band(f"Gaia {band}").name == band
+    assert parse_excess_name("E(BP_DR2-RP_DR2)") == ("BP_DR2", "RP_DR2")
+    # the two releases' passbands differ, by little (Riello et al. 2021 revised them; common practice)
+    for band in ("G", "BP", "RP"):
+        dr2, dr3 = a_band_over_av(f"{band}_DR2"), a_band_over_av(band)
+        assert dr2 != dr3 and dr2 == pytest.approx(dr3, abs=0.02)

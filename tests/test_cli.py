@@ -375,3 +375,27 @@ def test_build_from_a_parquet_folder_in_chunks(tmp_path, call):
     assert rc == 0, err
     assert "dask scheduler" in out
     assert np.allclose(load_model(tmp_path / "m3.fits").av_, model.av_, rtol=1e-9, atol=1e-12)
+
+
+def test_source_temperature_option_reaches_the_reading(files, tmp_path, call):
+    # an E(BP-RP) catalogue without a temperature column: --source-temperature sets the star
+    # used to convert it to A_V; without it the 5800 K default is announced, once
+    from dustkit.bands import av_to_excess
+
+    cat = Table.read(files / "cat.csv", format="ascii.csv")
+    ebprp, _ = av_to_excess(3.1 * np.asarray(cat["ebv"]), None, "BP", "RP")
+    cat["E(BP-RP)"] = ebprp
+    cat.remove_columns(["ebv", "e_ebv"])
+    path = tmp_path / "bprp.csv"
+    cat.write(path, format="ascii.csv")
+    rc, out, err = call("layer", path, "--json", "--distance-unit", "kpc", "--source-temperature", "4000",
+                        check_rc=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        want = fit_layer(read_tracers(path, distance_unit="kpc", source_temperature=4000 * u.K)).as_dict()
+        default = fit_layer(read_tracers(path, distance_unit="kpc")).as_dict()
+    assert json.loads(out) == {k: float(v) for k, v in want.items()}
+    assert want["a0"] > default["a0"]  # cooler stars redden less in BP-RP: more A_V for the same E(BP-RP)
+    assert "No temperature" not in err
+    rc, out, err = call("layer", path, "--json", "--distance-unit", "kpc", check_rc=0)
+    assert err.count("No temperature or intrinsic-colour column") == 1 and "--source-temperature" in err

@@ -386,3 +386,29 @@ def test_io_never_imports_plotting_or_widgets_and_cli_only_lazily():
     top = [n for n in cli_tree.body if isinstance(n, (ast.Import, ast.ImportFrom))]
     assert "matplotlib" not in set(_imports(ast.Module(body=top, type_ignores=[])))
     assert "matplotlib" in set(_imports(cli_tree))
+
+
+def test_colour_excess_tracers_keep_their_temperatures_through_the_file(tmp_path):
+    # E(BP-RP) tracers with a temperature per star: the file keeps the temperatures, so the
+    # loaded tracers re-derive A_V under another law exactly as the original ones
+    from dustkit.bands import av_to_excess
+
+    t = simulate_tracers(FIELD, 200, l_range=(20, 60), b_range=(-8, 8), distance_max=4000, rng=5,
+                         name_prefix="Testfield")
+    teff = np.random.default_rng(5).uniform(3500.0, 12000.0, len(t))
+    ebprp, ebprp_err = av_to_excess(3.1 * np.asarray(t["ebv"]), 3.1 * np.asarray(t["ebv_err"]), "BP", "RP",
+                                    temperature=teff * u.K)
+    t["E(BP-RP)"], t["e_E(BP-RP)"], t["teff"] = ebprp * u.mag, ebprp_err * u.mag, teff
+    t.remove_columns(["ebv", "ebv_err"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(t)
+        model = ExtinctionModel(nside=8, distance_max=3000 * u.pc, distance_step=500 * u.pc, quiet=True).fit(ts)
+    path = io.save_model(model, tmp_path / "bprp.fits")
+    loaded = io.load_model(path)
+    t1, t2 = model.tracers_, loaded.tracers_
+    assert t2.excess_kind == "E(BP-RP)" and t2.excess_color == ("BP", "RP")
+    np.testing.assert_array_equal(t2.temperature, t1.temperature)
+    with fits.open(path) as hdul:
+        assert hdul["TRACERS"].columns["TEMPERATURE"].unit == "K"
+    np.testing.assert_array_equal(t2.with_law("fitzpatrick99", 3.3).av, t1.with_law("fitzpatrick99", 3.3).av)

@@ -1120,3 +1120,189 @@ def test_corrupted_catalogues_never_crash_and_every_row_is_counted(data):
     assert len(ts) + len(ts.rejected) + ts.meta["n_merged"] == n_in
     assert all(isinstance(r, str) and r for r in ts.rejected["reason"])
     assert np.all(np.isfinite(ts.av) & np.isfinite(ts.distance) & (ts.distance > 0) & (ts.av_err > 0))
+
+
+# ------------------------------------------------ per-row source temperatures (colour excesses)
+def _ebprp_catalogue(extra, excess=0.16):
+    """Invented E(BP-RP) tracers, one per row of the ``extra`` columns (no real objects)."""
+    n = len(next(iter(extra.values())))
+    t = Table({"name": [f"Invented-{i:02d}" for i in range(n)], "l": np.linspace(10.0, 40.0, n),
+               "b": np.linspace(-3.0, 3.0, n), "distance": np.linspace(400.0, 2000.0, n) * u.pc,
+               "E(BP-RP)": np.full(n, excess) * u.mag, "e_E(BP-RP)": np.full(n, 0.02) * u.mag})
+    for k, v in extra.items():
+        t[k] = v
+    return t
+
+
+def _k_g_after_ingestion(ts, law="fitzpatrick99"):
+    """A_G / A_0 per tracer, A_0 the monochromatic extinction at 550 nm (Gaia's convention)."""
+    from dustkit.bands import av_to_band
+    from dustkit.laws import get_law
+
+    a0_over_av = float(get_law(law).a_over_av(0.55 * u.micron, ts.rv))
+    a_g, _ = av_to_band(ts.av, None, "G", law=law, rv=ts.rv, temperature=ts.temperature * u.K)
+    return a_g / (ts.av * a0_over_av)
+
+
+def test_intrinsic_colour_column_gives_babusiaux_k_g_per_row():
+    # k_G = A_G/A_0 is about 0.96 at (BP-RP)_0 = 0 and 0.67 at 2.0 for small A_0
+    # (Gaia Collaboration, Babusiaux et al. 2018, A&A 616, A10; values from memory,
+    # tolerance 0.03). E(BP-RP) = 0.16 mag is A_0 of about 0.3 there.
+    t = _ebprp_catalogue({"(BP-RP)_0": [0.0, 2.0, 0.82]})
+    ts = _quiet(read_tracers, t, law="fitzpatrick99")
+    assert ts.meta["columns"]["intrinsic_color"] == "(BP-RP)_0"
+    a0 = ts.av * 0.98  # A_0 / A_V under F99 (computed), only to check A_0 is small
+    assert np.all((a0 > 0.2) & (a0 < 0.45))
+    k_g = _k_g_after_ingestion(ts)
+    assert k_g[0] == pytest.approx(0.96, abs=0.03)
+    assert k_g[1] == pytest.approx(0.67, abs=0.03)
+    assert k_g[2] == pytest.approx(0.83, abs=0.03)  # (BP-RP)_0 = 0.82: 0.83 (same source)
+    # the same E(BP-RP) means more dust in front of a cool star (smaller k_BP - k_RP)
+    assert ts.av[1] > 1.1 * ts.av[0]
+
+
+def test_temperature_column_is_used_per_row_and_kept():
+    # an A0 V star has T_eff about 9700 K and (BP-RP)_0 about 0 (Pecaut & Mamajek 2013,
+    # ApJS 208, 9; from memory): k_G about 0.96 at small A_0 (Babusiaux et al. 2018, from memory)
+    t = _ebprp_catalogue({"Teff": [9700.0, 4000.0, 10000.0, 5800.0]})
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(t, law="fitzpatrick99")
+    np.testing.assert_array_equal(ts.temperature, [9700.0, 4000.0, 10000.0, 5800.0])
+    assert ts.meta["columns"]["temperature"] == "Teff"
+    assert not any("No temperature" in str(w.message) for w in record)
+    k_g = _k_g_after_ingestion(ts)
+    assert k_g[0] == pytest.approx(0.96, abs=0.03)
+    # a 4 000 K and a 10 000 K star differ in A_G/A_V by well over 10% (issue 15; Babusiaux
+    # et al. 2018: k_G 0.96 -> 0.67 from (BP-RP)_0 = 0 to 2, from memory)
+    assert k_g[2] / k_g[1] > 1.10
+    # each row is the scalar conversion at its own temperature
+    from dustkit.bands import excess_to_av
+
+    for i, temp in enumerate(ts.temperature):
+        av, av_err = excess_to_av(0.16, 0.02, "BP", "RP", law="fitzpatrick99", rv=3.1, temperature=temp * u.K)
+        assert ts.av[i] == pytest.approx(av, rel=1e-12) and ts.av_err[i] == pytest.approx(av_err, rel=1e-12)
+    # the temperatures are a column of the table, in K
+    assert ts.to_table()["temperature"].unit == u.K
+
+
+@pytest.mark.parametrize("column", ["teff", "T_eff", "Teff_K", "teff_gspphot", "temperature"])
+def test_temperature_column_spellings(column):
+    t = _ebprp_catalogue({column: [4500.0, 7000.0]})
+    ts = _quiet(read_tracers, t)
+    assert ts.meta["columns"]["temperature"] == column
+    np.testing.assert_array_equal(ts.temperature, [4500.0, 7000.0])
+
+
+def test_log_temperature_and_explicit_columns():
+    t = _ebprp_catalogue({"logTeff": [np.log10(4500.0), np.log10(7000.0)]})
+    ts = _quiet(read_tracers, t)
+    np.testing.assert_allclose(ts.temperature, [4500.0, 7000.0], rtol=1e-12)
+    t2 = _ebprp_catalogue({"STAR_T": [4500.0, 7000.0], "C0": [1.2, 0.3]})
+    ts2 = _quiet(read_tracers, t2, columns={"temperature": "STAR_T"})
+    np.testing.assert_allclose(ts2.av, ts.av, rtol=1e-12)
+    ts3 = _quiet(read_tracers, t2, columns={"intrinsic_color": "C0"}, intrinsic_color_bands="BP-RP")
+    from dustkit.bands import colour_temperature
+
+    np.testing.assert_allclose(ts3.temperature, colour_temperature([1.2, 0.3], "BP", "RP").to_value(u.K))
+    with pytest.raises(CatalogError, match=r"'C0'.*intrinsic_color_bands"):
+        _quiet(read_tracers, t2, columns={"intrinsic_color": "C0"})
+
+
+def test_round_trip_per_row_and_under_another_law():
+    from dustkit.bands import av_to_excess
+
+    t = _ebprp_catalogue({"teff": [3500.0, 5000.0, 8000.0, 20000.0, 60000.0]}, excess=0.8)
+    ts = _quiet(read_tracers, t)
+    # E(BP-RP) -> A_V -> E(BP-RP) per row, each at its own star (round trip to 1e-6; common practice)
+    back, _ = av_to_excess(ts.av, None, "BP", "RP", law=ts.law, rv=ts.rv, temperature=ts.temperature * u.K)
+    np.testing.assert_allclose(back, ts.excess, atol=1e-6)
+    # with_law re-derives A_V with the same temperatures: the same round trip under the new law
+    t2 = ts.with_law("odonnell94", 3.6)
+    np.testing.assert_array_equal(t2.temperature, ts.temperature)
+    back2, _ = av_to_excess(t2.av, None, "BP", "RP", law="odonnell94", rv=3.6, temperature=t2.temperature * u.K)
+    np.testing.assert_allclose(back2, ts.excess, atol=1e-6)
+    assert not np.allclose(t2.av, ts.av, rtol=1e-3)  # R_V changed A_V
+    # subsets keep each tracer's temperature
+    sub = ts.subset(np.array([4, 0]))
+    np.testing.assert_array_equal(sub.temperature, [60000.0, 3500.0])
+    np.testing.assert_array_equal(sub.with_law("odonnell94", 3.6).av, t2.av[[4, 0]])
+
+
+def test_bad_temperature_cells_are_rejected_with_the_column_and_missing_ones_announced():
+    t = _ebprp_catalogue({"teff": np.array(["4000", "hot", "-300", "", "7000", "nan"])})
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(t, duplicates="keep")
+    # row counts preserved: every input row is a tracer or a rejected row with its reason
+    assert len(ts) + len(ts.rejected) == ts.meta["n_input"] == 6
+    rej = {int(r["row"]): (str(r["reason"]), str(r["column"]), str(r["value"])) for r in ts.rejected}
+    assert rej[1] == ("non-numeric value in 'teff'", "teff", "hot")
+    assert rej[2] == ("temperature <= 0 K in 'teff'", "teff", "-300")
+    assert set(rej) == {1, 2}
+    np.testing.assert_array_equal(ts.row, [0, 3, 4, 5])
+    np.testing.assert_array_equal(ts.temperature, [4000.0, 5800.0, 7000.0, 5800.0])
+    msgs = [str(w.message) for w in record]
+    missing = [m for m in msgs if "no value in 'teff'" in m]
+    assert len(missing) == 1 and missing[0].startswith("2 rows have") and "5800 K" in missing[0]
+    assert any("2 of 6 rows rejected" in m for m in msgs)
+
+
+def test_default_temperature_is_announced_once_and_can_be_chosen():
+    t = _ebprp_catalogue({"other": [1.0, 2.0]})
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(t)
+    said = [str(w.message) for w in record if "No temperature or intrinsic-colour column" in str(w.message)]
+    assert len(said) == 1 and "5800 K" in said[0] and "source_temperature" in said[0]
+    assert issubclass(next(w.category for w in record if str(w.message) == said[0]), AssumptionWarning)
+    assert said[0] in ts.meta["assumptions"]
+    np.testing.assert_array_equal(ts.temperature, [5800.0, 5800.0])
+    # a chosen temperature is used for every row (and recorded, not warned about)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        cool = read_tracers(t, source_temperature=4000 * u.K)
+    assert not any("No temperature" in str(w.message) for w in record)
+    np.testing.assert_array_equal(cool.temperature, [4000.0, 4000.0])
+    assert any("4000 K blackbody" in a for a in cool.meta["assumptions"])
+    assert np.all(cool.av > ts.av)  # cooler stars: smaller E(BP-RP)/A_V, so more A_V
+    # the default fills empty cells of a temperature column too
+    t["teff"] = np.ma.masked_array([4000.0, 0.0], mask=[False, True])
+    part = _quiet(read_tracers, t, source_temperature=4000 * u.K)
+    np.testing.assert_array_equal(part.temperature, [4000.0, 4000.0])
+    with pytest.raises(ParameterError, match="temperature"):
+        _quiet(read_tracers, t, source_temperature=500 * u.K)
+
+
+def test_ebv_tracers_do_not_depend_on_the_star():
+    # A_V = R_V E(B-V) under every law, whatever the star (the one E(B-V) convention)
+    t = _ebprp_catalogue({"teff": ["4000", "hot"]})
+    t.rename_column("E(BP-RP)", "E(B-V)")
+    t.rename_column("e_E(BP-RP)", "e_E(B-V)")
+    ts = _quiet(read_tracers, t)
+    assert len(ts) == 2 and len(ts.rejected) == 0  # the unused column rejects nothing
+    assert ts.temperature is None and "temperature" not in ts.meta["columns"]
+    np.testing.assert_allclose(ts.av, 3.1 * 0.16, rtol=1e-12)
+    assert any("'teff' not used" in a for a in ts.meta["assumptions"])
+
+
+def test_intrinsic_colour_names_are_told_from_moduli():
+    from dustkit.tracers.reddening import intrinsic_color_bands
+
+    for name, pair in (("(BP-RP)_0", ("BP", "RP")), ("bp_rp0", ("BP", "RP")), ("(B-V)0", ("B", "V")),
+                       ("BP-RP_int", ("BP", "RP")), ("intrinsic_J-Ks", ("J", "Ks")), ("(G-RP)_0", ("G", "RP"))):
+        assert intrinsic_color_bands(name) == pair, name
+    for name in ("(m-M)0", "mu0", "av0", "dm0", "BP-RP", "E(BP-RP)", "teff"):
+        assert intrinsic_color_bands(name) is None, name
+
+
+def test_gaia_dr2_excess_column_is_recognised():
+    t = _ebprp_catalogue({"teff": [4500.0, 7000.0]})
+    t.rename_column("E(BP-RP)", "E(BP_DR2-RP_DR2)")
+    t.rename_column("e_E(BP-RP)", "e_E(BP_DR2-RP_DR2)")
+    ts = _quiet(read_tracers, t)
+    assert ts.excess_kind == "E(BP_DR2-RP_DR2)" and ts.excess_color == ("BP_DR2", "RP_DR2")
+    from dustkit.bands import excess_to_av
+
+    av, _ = excess_to_av(0.16, 0.02, "BP_DR2", "RP_DR2", temperature=4500 * u.K)
+    assert ts.av[0] == pytest.approx(av, rel=1e-12)

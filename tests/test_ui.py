@@ -359,3 +359,36 @@ def test_a_density_model_follows_rv_changes_in_the_explorer(tracers):
     assert ex.model.how_.startswith("rescaled exactly")  # E(B-V) tracers: A_V = R_V E(B-V)
     assert "rescaled exactly" in ex.status.value
     np.testing.assert_allclose(ex.model.av_, model.av_ * 3.5 / model.rv, rtol=1e-12)
+
+
+def test_band_list_follows_the_law_and_rv(explorer):
+    def listed():
+        return {v: label for label, v in explorer.quantity_widget.options if v not in ("av", "ebv")}
+
+    # under CCM89, R_V = 3.1 the listed coefficients are a_band_over_av's for the reference star
+    assert explorer.law == "ccm89"
+    for band in ("V", "G", "Ks"):
+        assert explorer.band_coefficients[band] == a_band_over_av(band, "ccm89", 3.1)
+        assert f"A/A_V = {a_band_over_av(band, 'ccm89', 3.1):.3f}" in listed()[band]
+    explorer.quantity_widget.value = "G"
+    explorer.rv_widget.value = 5.0
+    _ok(explorer)
+    assert explorer.quantity_widget.value == "G"  # the choice stays
+    for band in ("B", "G", "Ks"):
+        k = a_band_over_av(band, "ccm89", 5.0)
+        assert explorer.band_coefficients[band] == k and f"A/A_V = {k:.3f}" in listed()[band]
+    # a larger R_V means a greyer law: less extinction in the blue per A_V (Cardelli et al. 1989)
+    assert explorer.band_coefficients["B"] < a_band_over_av("B", "ccm89", 3.1)
+    explorer.law_widget.value = "fitzpatrick99"
+    _ok(explorer)
+    rv = explorer.rv
+    for band in ("U", "G", "J"):
+        k = a_band_over_av(band, "fitzpatrick99", rv)
+        assert explorer.band_coefficients[band] == k and f"A/A_V = {k:.3f}" in listed()[band]
+    # the profile shows the chosen band under the new law
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    explorer.law_widget.value = "ccm89"
+    explorer.rv_widget.value = 3.1
+    explorer.quantity_widget.value = "av"
+    _ok(explorer)
+    assert explorer.band_coefficients["G"] == a_band_over_av("G", "ccm89", 3.1)

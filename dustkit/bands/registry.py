@@ -1,7 +1,8 @@
 """The band registry: photometric bands, their transmission curves and their names.
 
 Built-in bands carry the transmission curves shipped by the ``speclite`` package
-(Bessell 1990 Johnson-Cousins UBVRI, 2MASS JHKs, Gaia DR3 G/BP/RP, SDSS, Pan-STARRS1,
+(Bessell 1990 Johnson-Cousins UBVRI, 2MASS JHKs, Gaia (E)DR3 G/BP/RP -- the default
+``G``, ``BP``, ``RP`` -- and Gaia DR2 ``G_DR2``, ``BP_DR2``, ``RP_DR2``, SDSS, Pan-STARRS1,
 WISE). Bands without a curve (Johnson R, I and K, and bands added by wavelength
 only) use the law at their effective wavelength.
 """
@@ -108,6 +109,7 @@ _CCM_TABLE3 = "the x of Cardelli, Clayton & Mathis 1989 Table 3"
 _BESSELL = "Bessell 1990 (PASP 102, 1181) standard {} passband, speclite '{}'"
 _TWOMASS = "2MASS relative spectral response (Cohen, Wheaton & Megeath 2003, AJ 126, 1090), speclite '{}'"
 _GAIA = "Gaia EDR3/DR3 passband (ESA, Riello et al. 2021), speclite '{}'"
+_GAIA2 = "Gaia DR2 passband (ESA, released with DR2; Evans et al. 2018, A&A 616, A4), speclite '{}'"
 _SDSS = "SDSS 2.5 m response at airmass 1.3 (Doi et al. 2010, AJ 139, 1628), speclite '{}'"
 _PS1 = "Pan-STARRS1 response (Tonry et al. 2012, ApJ 750, 99), speclite '{}'"
 _WISE = "WISE relative spectral response (Wright et al. 2010, AJ 140, 1868), speclite '{}'"
@@ -142,6 +144,13 @@ _STANDARD_BANDS = (
      "gaiadr3-BP", _GAIA.format("gaiadr3-BP"), "BP"),
     ("RP", 0.78, "Gaia", ("G_RP", "GRP", "Grp", "G_rp", "RP_Gaia"), "from memory (Gaia RP; broad band)",
      "gaiadr3-RP", _GAIA.format("gaiadr3-RP"), "RP"),
+    # Gaia DR2 passbands, for DR2 photometry; G, BP, RP above are the (E)DR3 ones (the default)
+    ("G_DR2", 0.62, "Gaia DR2", ("GDR2", "G_Gaia2"), "from memory (Gaia DR2 G; very broad band)",
+     "gaiadr2-G", _GAIA2.format("gaiadr2-G"), "G"),
+    ("BP_DR2", 0.51, "Gaia DR2", ("BPDR2", "BP_Gaia2"), "from memory (Gaia DR2 BP; broad band)",
+     "gaiadr2-BP", _GAIA2.format("gaiadr2-BP"), "BP"),
+    ("RP_DR2", 0.78, "Gaia DR2", ("RPDR2", "RP_Gaia2"), "from memory (Gaia DR2 RP; broad band)",
+     "gaiadr2-RP", _GAIA2.format("gaiadr2-RP"), "RP"),
     ("u", 0.3551, "SDSS", ("u'", "u_SDSS"), "from memory (SDSS; Fukugita et al. 1996)",
      "sdss2010-u", _SDSS.format("sdss2010-u"), "u"),
     ("g", 0.4686, "SDSS", ("g'", "g_SDSS"), "from memory (SDSS; Fukugita et al. 1996)",
@@ -184,6 +193,15 @@ _SYSTEM_PREFIXES = {
     "2mass": ("2MASS",),
     "tmass": ("2MASS",),
     "gaia": ("Gaia",),
+    "gaiadr2": ("Gaia DR2",),
+    "gaia dr2": ("Gaia DR2",),
+    "gaia_dr2": ("Gaia DR2",),
+    "gaia-dr2": ("Gaia DR2",),
+    "dr2": ("Gaia DR2",),
+    "gaiadr3": ("Gaia",),
+    "gaia dr3": ("Gaia",),
+    "gaia_dr3": ("Gaia",),
+    "gaiaedr3": ("Gaia",),
     "sdss": ("SDSS",),
     "johnson": ("Johnson",),
     "cousins": ("Cousins",),

@@ -36,6 +36,12 @@ ebv                   E(B-V) in mag (``E(B-V)``, ``ebv``, ``E_BV``, ``reddening`
 av                    A_V in mag (``A_V``, ``Av``, ``A(V)``)
 excess                any other colour excess (``E(BP-RP)``, ``E_J_Ks``); its
                       colour from ``excess_color`` or the column name
+temperature           the source star's temperature in K, for converting a colour
+                      excess other than E(B-V) (``teff``, ``T_eff``, ``Teff_K``,
+                      ``temperature``, ``teff_gspphot``; ``logTeff`` in log10 K)
+intrinsic_color       the star's intrinsic colour instead (``(BP-RP)_0``, ``bp_rp0``,
+                      ``(B-V)_0``, ``intrinsic_BP-RP``); its colour from the name or
+                      ``intrinsic_color_bands``
 <key>_err             the error of any of the above (``e_X``, ``X_err``,
                       ``err_X``, ``sigma_X``, ``X_error``, ``eX``)
 ===================== =====================================================

@@ -48,6 +48,8 @@ def build_tracers(
     parallax_err_floor=None,
     parallax_length_scale=None,
     duplicates="merge",
+    source_temperature=None,
+    intrinsic_color_bands=None,
 ):
     """Validate a table of tracers: the fields of a ``TracerSet`` and the notes (warnings) to emit."""
     rv = check_real("rv", rv, 0.0, np.inf, low_inclusive=False)
@@ -74,7 +76,7 @@ def build_tracers(
         raise CatalogError(f"{source_desc} has no rows; nothing to read.")
     l, b, _ = positions(table, cols, ctx)
     excess, excess_err, kind, color, av, av_err = reddening(
-        table, cols, ctx, law, rv, default_err, limits, excess_color
+        table, cols, ctx, law, rv, default_err, limits, excess_color, source_temperature, intrinsic_color_bands
     )
     d, d_err, app, app_err, bounds = distances(
         table, cols, ctx, distance_unit, frac, zp, limits, av, av_err, floor, scale
@@ -112,6 +114,8 @@ def build_tracers(
         per_row["apparent_modulus"], per_row["apparent_modulus_err"] = app[keep], app_err[keep]
     if kept_names is not None:
         per_row["name"] = kept_names
+    if ctx.temperature is not None:
+        per_row["temperature"] = ctx.temperature[keep]
     group, exact, copied = find_duplicates(per_row["l"], per_row["b"], per_row["distance"], per_row["distance_err"],
                                    per_row["av"], per_row["av_err"], kept_names)
     sel, per_row, dup_report = merge_groups(group, exact, copied, per_row, rows, kept_names, duplicates)
@@ -156,6 +160,7 @@ def build_tracers(
         distance_err_low=per_row.get("distance_err_low"),
         distance_err_high=per_row.get("distance_err_high"),
         duplicates=dup_report,
+        temperature=per_row.get("temperature"),
     )
     return fields, ctx.notes
 

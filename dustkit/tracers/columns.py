@@ -4,7 +4,7 @@ import re
 
 from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.validation import param_error
-from .reddening import EXCESS_NAME, REDDENING_LIKE, is_bv, parse_color_name
+from .reddening import EXCESS_NAME, REDDENING_LIKE, intrinsic_color_bands, is_bv, parse_color_name
 
 __all__ = [
     "COLUMN_KEYS",
@@ -41,6 +41,8 @@ COLUMN_KEYS = (
     "av_err",
     "excess",
     "excess_err",
+    "temperature",
+    "intrinsic_color",
 )
 
 
@@ -80,6 +82,12 @@ VALUE_ALIASES = {
     "parallax": ["parallax", "plx", "pi", "varpi", "parallaxmas", "plxmas"],
     "ebv": ["ebv", "ebmv", "ebminusv", "reddening", "ebvmag"],
     "av": ["av", "extinctionv", "extv", "avmag", "av0"],
+    # the source star, for colour excesses converted through passbands ('log...' names: log10 K)
+    "temperature": [
+        "teff", "temperature", "tempk", "teffk", "tstar", "effectivetemperature", "sourcetemperature",
+        "startemperature", "temp", "teffgspphot", "teffgspspec", "teffval", "teffesphs",
+        "logteff", "logtemperature", "lgteff",
+    ],
 }
 
 
@@ -131,6 +139,8 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
     used |= set(cols.values())
     if want_reddening:
         _reddening_column(table, explicit, finder, ctx, cols, used)
+        used |= set(cols.values())
+        _star_column(explicit, finder, ctx, cols, used)
         used |= set(cols.values())
     if "name" in explicit:
         cols["name"] = explicit["name"]
@@ -336,7 +346,8 @@ def _reddening_column(table, explicit, finder, ctx, cols, used):
         exc = [
             c
             for c in candidates
-            if c not in used and c not in found_cols and EXCESS_NAME.match(c)
+            if c not in used and c not in found_cols
+            and (EXCESS_NAME.match(c) or (c[:2] in ("E(", "E[") and parse_color_name(c) is not None))
             and not is_bv(parse_color_name(c))
         ]
         if exc:
@@ -359,10 +370,27 @@ def _reddening_column(table, explicit, finder, ctx, cols, used):
             )
 
 
+def _star_column(explicit, finder, ctx, cols, used):
+    """Add the source star's temperature or intrinsic colour column, if any (explicit first)."""
+    for key in ("temperature", "intrinsic_color"):
+        if key in explicit:
+            cols[key] = explicit[key]
+            return
+    c = finder.find(VALUE_ALIASES["temperature"], used)
+    colours = [x for x in finder.candidates if x not in used and intrinsic_color_bands(x) is not None]
+    if c is not None:
+        cols["temperature"] = c
+        if colours:
+            ctx.assumptions.append(f"temperature column {c!r} used for the source star; intrinsic colour "
+                                   f"{colours[0]!r} also present, not used")
+    elif colours:
+        cols["intrinsic_color"] = colours[0]
+
+
 def _error_columns(names, explicit, cols, used):
     """Add the error column of every value column found (explicit ``*_err`` keys first)."""
     for role in list(cols):
-        if role in ("name", "l", "b", "ra", "dec"):
+        if role in ("name", "l", "b", "ra", "dec", "temperature", "intrinsic_color"):
             continue
         key = f"{role}_err"
         if key in explicit:

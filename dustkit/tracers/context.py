@@ -118,6 +118,7 @@ class Context:
         self.used = {}
         self.quiet_default_errors = False
         self.modulus_kind = None  # 'true' | 'apparent' for a modulus column whose name does not say
+        self.temperature = None  # per-row source temperatures of a colour-excess conversion (K)
 
     def note(self, cls, msg, assumption=True):
         self.notes.append((cls, msg))

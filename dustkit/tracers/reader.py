@@ -58,6 +58,8 @@ def read_tracers(
     parallax_err_floor=PARALLAX_ERR_FLOOR * u.mas,
     parallax_length_scale=PARALLAX_LENGTH_SCALE * u.kpc,
     duplicates="merge",
+    source_temperature=None,
+    intrinsic_color_bands=None,
 ):
     """Read a catalogue of extinction tracers into a validated :class:`TracerSet`.
 
@@ -113,6 +115,13 @@ def read_tracers(
         1 arcsec with distance and A_V within their errors) are merged into one tracer
         by inverse-variance means (default) or kept. Either way the groups are listed in
         ``TracerSet.duplicates``.
+    source_temperature : Quantity['temperature'], optional
+        Blackbody temperature of the source star for rows without their own temperature
+        or intrinsic colour (default 5800 K, ``dustkit.bands.DEFAULT_TEMPERATURE``). Used
+        only to turn a colour excess other than E(B-V) into A_V (see Notes).
+    intrinsic_color_bands : tuple of str or str, optional
+        ``(blue, red)`` bands (or ``"BP-RP"``) of an ``intrinsic_color`` column whose name
+        does not say it (names like ``(BP-RP)_0`` or ``bp_rp0`` say it).
 
     Returns
     -------
@@ -149,6 +158,19 @@ def read_tracers(
     measurement noise around zero and removing it would bias A_V upwards.
     Empty or zero errors are replaced by the defaults (with a warning).
     Equatorial columns are taken as ICRS (FK5 J2000 differs by < 0.1 arcsec).
+
+    Reddening -> A_V: A_V = R_V E(B-V) for E(B-V) under every law (the one E(B-V)
+    convention of :mod:`dustkit.bands`), whatever the star. Another colour excess
+    (E(BP-RP), E(J-Ks), E(G-RP), ...) is converted through the passbands of its two
+    bands for the row's star: its temperature from a column ``temperature`` (``teff``,
+    ``T_eff``, ``Teff_K``, ``teff_gspphot``, ``logTeff`` in log10 K, ...) or, failing
+    that, its intrinsic colour from a column ``intrinsic_color`` (``(BP-RP)_0``,
+    ``bp_rp0``, ``(B-V)_0``, ``intrinsic_BP-RP``; a blackbody of the same colour,
+    :func:`dustkit.bands.colour_temperature`). Rows without a value, and catalogues
+    without such a column, use ``source_temperature`` (announced with an
+    ``AssumptionWarning``). Text or infinite values and temperatures <= 0 reject the row;
+    values beyond the 2 000-100 000 K of the coefficient tables are set to the nearest
+    edge (announced). The temperatures used are kept in ``TracerSet.temperature``.
     """
     table, desc, file_sha = _load(source, format)
     fields, notes = build_tracers(
@@ -168,6 +190,8 @@ def read_tracers(
         parallax_err_floor=parallax_err_floor,
         parallax_length_scale=parallax_length_scale,
         duplicates=duplicates,
+        source_temperature=source_temperature,
+        intrinsic_color_bands=intrinsic_color_bands,
     )
     emit(notes)
     return TracerSet(**fields)

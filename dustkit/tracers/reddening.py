@@ -5,10 +5,13 @@ import re
 import numpy as np
 from astropy import units as u
 
-from ..exceptions import CatalogError
+from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.validation import param_error
+from .context import Context
 from .rules import reason
-from .values import error_values, numeric
+from .values import error_values, numeric, to_unit
+from ..bands import DEFAULT_TEMPERATURE
+from ..bands.inputs import TEMPERATURE_RANGE, temperature_input
 
 __all__ = [
     "EXCESS_NAME",
@@ -16,6 +19,8 @@ __all__ = [
     "parse_color_name",
     "is_bv",
     "reddening_to_av",
+    "intrinsic_color_bands",
+    "source_temperatures",
     "reddening",
 ]
 
@@ -28,7 +33,7 @@ EXCESS_NAME = re.compile(
 REDDENING_LIKE = ("ebv", "av", "excess")
 
 
-def _color_tuple(excess_color):
+def _color_tuple(excess_color, name="excess_color"):
     if excess_color is None:
         return None
     if isinstance(excess_color, str):
@@ -37,7 +42,7 @@ def _color_tuple(excess_color):
             return (parts[0], parts[1])
     elif isinstance(excess_color, (tuple, list)) and len(excess_color) == 2:
         return (str(excess_color[0]), str(excess_color[1]))
-    raise param_error("excess_color", "a (blue, red) pair of band names such as ('BP', 'RP') or 'BP-RP'", excess_color)
+    raise param_error(name, "a (blue, red) pair of band names such as ('BP', 'RP') or 'BP-RP'", excess_color)
 
 
 def parse_color_name(colname):
@@ -62,8 +67,13 @@ def is_bv(color):
     return color is not None and color[0].upper() == "B" and color[1].upper() == "V"
 
 
-def reddening_to_av(kind, color, excess, excess_err, law, rv):
-    """A_V and its error from the reddening as given."""
+def reddening_to_av(kind, color, excess, excess_err, law, rv, temperature=None):
+    """A_V and its error from the reddening as given.
+
+    ``temperature`` (K, a scalar or one per row; None: the default source) is the blackbody
+    temperature of the source for the passband conversion of a colour excess other than
+    E(B-V); E(B-V) (A_V = R_V E(B-V)) and A_V do not depend on it.
+    """
     excess = np.asarray(excess, dtype=float)
     excess_err = np.asarray(excess_err, dtype=float)
     if kind == "A_V":
@@ -79,14 +89,167 @@ def reddening_to_av(kind, color, excess, excess_err, law, rv):
             f"Converting {kind} to A_V needs dustkit.bands.excess_to_av, which is not available in this "
             "installation. Hint: give E(B-V) or A_V instead."
         )
-    av, av_err = _bands.excess_to_av(excess, excess_err, color[0], color[1], law=law, rv=rv)
+    t = None if temperature is None else np.asarray(temperature, dtype=float) * u.K
+    av, av_err = _bands.excess_to_av(excess, excess_err, color[0], color[1], law=law, rv=rv, temperature=t)
     av = av.to_value(u.mag) if isinstance(av, u.Quantity) else np.asarray(av, dtype=float)
     av_err = av_err.to_value(u.mag) if isinstance(av_err, u.Quantity) else np.asarray(av_err, dtype=float)
     return np.broadcast_to(av, excess.shape).astype(float), np.broadcast_to(av_err, excess.shape).astype(float)
 
 
-def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color):
-    """Return (excess, excess_err, kind, color, av, av_err); NaN where rejected."""
+#: Words around a colour name that mark it as intrinsic (unreddened): ``(BP-RP)_0``,
+#: ``bp_rp0``, ``BP-RP_int``, ``intrinsic_B-V``, ``dereddened_BP-RP``.
+_INTRINSIC_NAME = re.compile(
+    r"^(?:(?:intrinsic|int|dered|dereddened)[\s_\-]*)?\(?\s*(?P<inner>.+?)\s*\)?"
+    r"(?:[\s_\-]*(?:0|o|intrinsic|int|dered|dereddened))?$",
+    re.IGNORECASE,
+)
+_INTRINSIC_MARK = re.compile(
+    r"(^(intrinsic|int|dered|dereddened)[\s_\-]*)|([\s_\-)]*(0|intrinsic|int|dered|dereddened)$)", re.IGNORECASE
+)
+
+
+def intrinsic_color_bands(colname):
+    """(blue, red) of an intrinsic-colour column name such as ``(BP-RP)_0`` or ``bp_rp0``, else None.
+
+    The name must carry a mark of an intrinsic colour (a trailing ``0``/``_0``, or the words
+    ``intrinsic``, ``int``, ``dereddened``) and two registered bands, so that ``(m-M)0``,
+    ``mu0`` or ``av0`` are not taken as colours.
+    """
+    if not isinstance(colname, str) or not _INTRINSIC_MARK.search(colname.strip()):
+        return None
+    m = _INTRINSIC_NAME.match(colname.strip())
+    if not m or not m.group("inner") or m.group("inner") == colname.strip():
+        return None
+    inner = m.group("inner").strip("()_- ")
+    if not inner:
+        return None
+    try:
+        from .. import bands as _bands
+
+        pair = _bands.parse_excess_name(f"E({inner})", strict=False)
+    except Exception:  # an ambiguous name is not a recognised colour
+        return None
+    return None if pair is None else (str(pair[0]), str(pair[1]))
+
+
+def _optional_numbers(table, colname, ctx):
+    """Values of an optional per-row column: text and infinities reject the row; empty cells are NaN."""
+    sub = Context(table, ctx.desc)
+    vals, unit, raw = numeric(table, colname, sub)
+    for k, (why, c, r) in enumerate(sub.rej.reasons):
+        if why in (reason("non_numeric", c), reason("infinite", c)):
+            ctx.rej.add(sub.rej.code == k, why, c, r)
+    return vals, unit, raw
+
+
+def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_bands=None):
+    """Per-row source temperatures (K) for turning a colour excess into A_V, or None.
+
+    A colour excess other than E(B-V) is converted through the passbands of its two
+    bands, whose coefficients depend on the star (:func:`dustkit.bands.excess_to_av`).
+    The star's temperature per row comes from a temperature column (``teff``, ``T_eff``,
+    ``logTeff``, ...) or an intrinsic-colour column (``(BP-RP)_0``, ``(B-V)_0``, turned
+    into a blackbody colour temperature by :func:`dustkit.bands.star_temperatures`).
+    Rows without a value get ``source_temperature`` (default 5800 K), announced.
+
+    Text or infinite values, and temperatures <= 0, reject the row (with the column in
+    the reason). Values beyond the tables' 2 000-100 000 K are set to the nearest edge,
+    announced with their count. For E(B-V) and A_V, which do not depend on the star,
+    no temperature is read and None is returned.
+    """
+    from .. import bands as _bands
+
+    tcol, ccol = cols.get("temperature"), cols.get("intrinsic_color")
+    t_default = float(temperature_input(source_temperature, DEFAULT_TEMPERATURE, stacklevel=6))
+    if kind in ("E(B-V)", "A_V"):
+        for c, role in ((tcol, "temperature"), (ccol, "intrinsic_color")):
+            if c is not None:
+                ctx.used.pop(role, None)
+                ctx.assumptions.append(f"column {c!r} not used: A_V from {kind} does not depend on the star")
+        return None
+    lo_t, hi_t = TEMPERATURE_RANGE
+    n = ctx.n
+    what = f"the {kind} -> A_V conversion"
+    if tcol is not None:
+        vals, unit, raw = _optional_numbers(table, tcol, ctx)
+        if re.sub(r"[^a-z0-9]", "", tcol.lower()).startswith(("log", "lg")):  # log10(T / K)
+            ctx.rej.add(~((vals > 0) & (vals < 6)) & np.isfinite(vals), reason("temperature_log", tcol), tcol, raw)
+            vals = np.where((vals > 0) & (vals < 6), 10.0 ** np.where(np.isfinite(vals), vals, 0.0), np.nan)
+        else:
+            vals = to_unit(vals, unit, u.K, tcol, ctx, "a temperature in K")
+            ok = np.isfinite(vals) & (vals > 0) & (ctx.rej.code < 0)
+            if np.any(ok) and np.median(vals[ok]) < 100:
+                raise CatalogError(
+                    f"Temperature column {tcol!r} in {ctx.desc} has a median of {np.median(vals[ok]):.3g}: not "
+                    "a stellar temperature in K. Hint: if it holds log10(T_eff), name it like 'logTeff'; "
+                    "if it is another quantity, name the temperature column with columns={'temperature': ...}."
+                )
+        ctx.rej.add(vals <= 0, reason("temperature_not_positive", tcol), tcol, raw)
+        use = np.where(ctx.rej.code < 0, vals, np.nan)
+        st = _bands.star_temperatures(n, temperature=use * u.K, default=t_default * u.K)
+        source = f"the temperature column {tcol!r}"
+    elif ccol is not None:
+        bands = _color_tuple(color_bands, "intrinsic_color_bands") or intrinsic_color_bands(ccol)
+        if bands is None:
+            raise CatalogError(
+                f"Cannot tell which colour the intrinsic-colour column {ccol!r} holds. "
+                "Hint: pass intrinsic_color_bands=('BP', 'RP'), or name the column like '(BP-RP)_0'."
+            )
+        try:
+            blue, red = (_bands.get_band(b) for b in bands)
+        except Exception as exc:
+            raise CatalogError(f"Intrinsic-colour column {ccol!r}: {exc}") from None
+        if not (blue.has_curve and red.has_curve):
+            raise CatalogError(
+                f"Intrinsic-colour column {ccol!r} is a {blue.name}-{red.name} colour, but a colour temperature "
+                "needs two bands with transmission curves (see 'dustkit bands'). Hint: give a temperature column "
+                "(e.g. 'teff') instead, or map the column away with columns={...}."
+            )
+        vals, unit, raw = _optional_numbers(table, ccol, ctx)
+        use = np.where(ctx.rej.code < 0, vals, np.nan)
+        st = _bands.star_temperatures(n, colour=use, colour_bands=(blue.name, red.name), default=t_default * u.K)
+        source = (f"the intrinsic colour {ccol!r} (blackbodies of the same {blue.name}-{red.name}, "
+                  "dustkit.bands.colour_temperature)")
+    else:
+        if source_temperature is None:
+            ctx.note(
+                AssumptionWarning,
+                f"No temperature or intrinsic-colour column: {what} assumes a {t_default:g} K blackbody source "
+                "for every row (broad-band coefficients depend on the star; Gaia G by up to 30%). Hint: add a "
+                "column 'teff' or '(BP-RP)_0', or pass source_temperature= (command line: --source-temperature).",
+            )
+        else:
+            ctx.assumptions.append(f"{what} assumes a {t_default:g} K blackbody source for every row "
+                                   "(source_temperature)")
+        return np.full(n, t_default)
+    n_default = int(np.count_nonzero((ctx.rej.code < 0) & ~st.from_input))
+    ctx.assumptions.append(f"{what} uses per-row source temperatures from {source}")
+    if n_default:
+        ctx.note(
+            AssumptionWarning,
+            f"{_rows(n_default)} no value in {tcol or ccol!r}; {what} assumes a {t_default:g} K blackbody "
+            "source for them.",
+        )
+    if st.n_clipped:
+        ctx.note(
+            AssumptionWarning,
+            f"{_rows(st.n_clipped)} a value in {tcol or ccol!r} beyond the {lo_t:g}-{hi_t:g} K blackbodies of "
+            f"the coefficient tables; set to the nearest edge for {what}.",
+        )
+    return st.temperature.to_value(u.K)
+
+
+def _rows(n):
+    return f"{n} row has" if n == 1 else f"{n} rows have"
+
+
+def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, source_temperature=None,
+              intrinsic_color_bands=None):
+    """Return (excess, excess_err, kind, color, av, av_err); NaN where rejected.
+
+    The per-row source temperatures of the conversion (K, see :func:`source_temperatures`;
+    None for E(B-V) and A_V) are left in ``ctx.temperature``.
+    """
     role = next(k for k in REDDENING_LIKE if k in cols)
     colname = cols[role]
     vals, _, raw = numeric(table, colname, ctx)
@@ -105,8 +268,11 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color):
             kind, color = "E(B-V)", ("B", "V")
         else:
             kind = f"E({color[0]}-{color[1]})"
-    # A_V per unit of excess, for the default error and the limits
-    per_unit, _ = reddening_to_av(kind, color, np.ones(1), np.zeros(1), law, rv)
+    temps = source_temperatures(table, cols, ctx, kind, source_temperature, intrinsic_color_bands)
+    ctx.temperature = temps
+    t_ref = None if temps is None else float(temperature_input(source_temperature, DEFAULT_TEMPERATURE))
+    # A_V per unit of excess (for the default source), for the default error and the limits
+    per_unit, _ = reddening_to_av(kind, color, np.ones(1), np.zeros(1), law, rv, temperature=t_ref)
     k = float(per_unit[0])
     if not np.isfinite(k) or k <= 0:
         raise CatalogError(f"The {kind} -> A_V conversion factor for law {law!r}, R_V = {rv:g} is {k!r}; cannot use it.")
@@ -115,7 +281,7 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color):
         table, cols, f"{role}_err", ctx, default, f"the reddening {colname!r} ({kind})",
         f"{default:.3g} mag in {kind} (default_excess_err = {default_err:g} mag of E(B-V))",
     )
-    av, av_err = reddening_to_av(kind, color, vals, err, law, rv)
+    av, av_err = reddening_to_av(kind, color, vals, err, law, rv, temperature=temps)
     lo, hi = limits["ebv"]
     ebv_eq = av / rv
     ok_now = ctx.rej.code < 0

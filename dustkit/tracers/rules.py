@@ -91,6 +91,8 @@ REASONS = {
     "excess_outside": ("{kind} in {col!r} outside the A_V range [{av_lo:.3g}, {av_hi:.3g}] mag "
                        "(E(B-V) limits [{lo:g}, {hi:g}] times R_V)"),
     "av_outside": "A_V in {col!r} outside [{lo:g}, {hi:g}] mag times R_V",
+    "temperature_not_positive": "temperature <= 0 K in {col!r}",
+    "temperature_log": "log10 temperature in {col!r} outside (0, 6)",
 }
 
 #: The checks of a chunked read (A_V catalogue in deg, pc, mag), in the order they are made;

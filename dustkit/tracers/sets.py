@@ -113,6 +113,12 @@ class TracerSet:
         One row per input row that was found to duplicate another: ``group``, ``row``,
         ``name``, ``kind`` (``"exact"`` or ``"near"``), ``merged_into`` (tracer row kept,
         -1 when kept separately).
+    temperature : ndarray or None
+        Blackbody temperature of each tracer's source star, K, used to turn a colour
+        excess other than E(B-V) into A_V through the passbands (from a temperature or
+        intrinsic-colour column, else the default source; see :func:`read_tracers`).
+        :meth:`with_law` converts with the same temperatures. None when A_V does not
+        depend on the star (E(B-V) or A_V input).
     """
 
     l: np.ndarray
@@ -138,6 +144,7 @@ class TracerSet:
     distance_err_low: np.ndarray = None
     distance_err_high: np.ndarray = None
     duplicates: Table = None
+    temperature: np.ndarray = None
 
     def __post_init__(self):
         n = np.size(self.l)
@@ -152,11 +159,13 @@ class TracerSet:
         )
         if self.duplicates is None:
             object.__setattr__(self, "duplicates", empty_duplicates())
-        for attr in ("apparent_modulus", "apparent_modulus_err", "distance_err_low", "distance_err_high"):
+        for attr in ("apparent_modulus", "apparent_modulus_err", "distance_err_low", "distance_err_high",
+                     "temperature"):
             if getattr(self, attr) is not None:
                 object.__setattr__(self, attr, frozen(getattr(self, attr)))
         object.__setattr__(self, "rv", float(self.rv))
-        given = {a: getattr(self, a) for a in ("b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "row")}
+        given = {a: getattr(self, a) for a in ("b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "row",
+                                               "temperature")}
         given["name"] = self.__dict__.get("names_of")  # None: made from the row numbers when asked
         for attr, value in given.items():
             if value is not None and np.shape(value) != (n,):
@@ -280,6 +289,7 @@ class TracerSet:
             av_distance_corr=self.av_distance_corr[sel],
             distance_err_low=None if self.distance_err_low is None else self.distance_err_low[sel],
             distance_err_high=None if self.distance_err_high is None else self.distance_err_high[sel],
+            temperature=None if self.temperature is None else self.temperature[sel],
             meta=meta,
         )
 
@@ -299,13 +309,15 @@ class TracerSet:
         TracerSet
             A new set; this one is unchanged. For E(B-V) input A_V = R_V E(B-V);
             for another colour excess the conversion goes through
-            ``dustkit.bands.excess_to_av``; for A_V input, A_V does not change.
+            ``dustkit.bands.excess_to_av`` with the tracers' own source temperatures
+            (``temperature``, as at reading); for A_V input, A_V does not change.
             Where the distance came from an apparent V modulus, mu0 = (m-M)_V - A_V
             is recomputed with the new A_V.
         """
         rv = check_real("rv", rv, 0.0, np.inf, low_inclusive=False)
         law, rv = check_law(law, rv)
-        av, av_err = reddening_to_av(self.excess_kind, self.excess_color, self.excess, self.excess_err, law, rv)
+        av, av_err = reddening_to_av(self.excess_kind, self.excess_color, self.excess, self.excess_err, law, rv,
+                                     temperature=self.temperature)
         changes = dict(av=av, av_err=av_err, law=law, rv=rv)
         if self.apparent_modulus is not None:
             d, d_err = modulus_to_distance(
@@ -329,7 +341,8 @@ class TracerSet:
 
         Columns: ``row``, ``name``, ``l``, ``b``, ``distance``, ``distance_err``,
         ``av``, ``av_err``, ``excess``, ``excess_err``, ``av_distance_corr`` (and
-        ``distance_err_low``/``distance_err_high`` for parallaxes). ``meta`` carries the law,
+        ``distance_err_low``/``distance_err_high`` for parallaxes, ``temperature`` in K where
+        the conversion used one). ``meta`` carries the law,
         R_V, the excess kind and the source.
         """
         t = QTable()
@@ -347,6 +360,8 @@ class TracerSet:
         if self.distance_err_low is not None:
             t["distance_err_low"] = self.distance_err_low * u.pc
             t["distance_err_high"] = self.distance_err_high * u.pc
+        if self.temperature is not None:
+            t["temperature"] = self.temperature * u.K
         t.meta.update(
             {
                 "excess_kind": self.excess_kind,

@@ -11,7 +11,10 @@
   picks the sight line (interactive figures, i.e. the ipympl canvas);
 * a distance slider and a choice between cumulative and differential extinction for the
   sky map;
-* a chooser for the profile's vertical axis: A_V, E(B-V) or A in any known band;
+* a chooser for the profile's vertical axis: A_V, E(B-V) or A in any known band, each
+  band listed with its coefficient A_band/A_V (:func:`dustkit.bands.a_band_over_av` for
+  the reference star of ``dustkit bands``) under the law and R_V shown; the list is
+  rebuilt when the law or R_V changes (``explorer.band_coefficients``);
 * an export button with a format chooser and a file name (:func:`dustkit.io.export_table`).
 
 No science lives here: the panel calls :mod:`dustkit.model` and draws with
@@ -229,18 +232,14 @@ class Explorer:
         self.radius_widget = W.FloatSlider(value=1.0, min=0.0, max=10.0, step=0.25, continuous_update=False,
                                            description="Cone radius [deg]", readout_format=".2f", style=_DESC,
                                            layout=full)
-        quantities = [("A_V", "av"), ("E(B-V)", "ebv")]
-        # the band registry (the same table as 'dustkit bands'), under the tracers' law
-        law_name = base.law if base.law in LAWS else None
-        bt = band_table(law_name, None if law_name is None else float(base.rv))
-        quantities += [
-            (f"A in {n} ({system}, {w:.2f} µm)", n)
-            for n, system, w, k in zip(bt["name"], bt["system"], bt["reference_wavelength"].to_value(u.micron),
-                                       bt["coefficient"])
-            if np.isfinite(k)  # bands outside the law's range cannot be shown
-        ]
+        # the band registry (the same table as 'dustkit bands'); coefficients under the law shown
+        bt = band_table(base.law if base.law in LAWS else None)
+        self._band_rows = [(str(n), str(system), float(w)) for n, system, w in
+                           zip(bt["name"], bt["system"], bt["reference_wavelength"].to_value(u.micron))]
+        quantities = self._quantity_options(base.law if base.law in LAWS else self.law_widget.value, float(base.rv))
         self.quantity_widget = W.Dropdown(options=quantities, value="av", description="Profile shows",
                                           style=_DESC, layout=full)
+        self._bands_for = (base.law, round(float(base.rv), 4))
 
         d0 = float(np.clip(np.percentile(base.distance, 75), step, dmax))
         d0 = round(d0 / step) * step
@@ -436,6 +435,46 @@ class Explorer:
         finally:
             self._syncing = False
 
+    def _quantity_options(self, law, rv):
+        """Options of the profile chooser: A_V, E(B-V), then A in each band, with its coefficient.
+
+        The coefficient A_band/A_V is :func:`dustkit.bands.a_band_over_av` under ``law`` and
+        ``rv`` for the reference star of ``dustkit bands`` (5800 K blackbody, A_V = 0.1 mag);
+        bands outside the law's wavelength range are left out. Sets ``band_coefficients``.
+        """
+        from ..bands import a_band_over_av
+        from ..exceptions import LawRangeError
+
+        options, coefficients = [("A_V", "av"), ("E(B-V)", "ebv")], {}
+        for name, system, wavelength in self._band_rows:
+            try:
+                k = float(a_band_over_av(name, law, rv))
+            except LawRangeError:  # bands outside the law's range cannot be shown
+                continue
+            if np.isfinite(k):
+                coefficients[name] = k
+                options.append((f"A in {name} ({system}, {wavelength:.2f} µm; A/A_V = {k:.3f})", name))
+        self.band_coefficients = coefficients
+        return options
+
+    def _update_band_choices(self, law, rv):
+        """Rebuild the band list for a new law or R_V, keeping the choice where the band remains."""
+        key = (law, round(float(rv), 4))
+        if key == getattr(self, "_bands_for", None):
+            return
+        options = self._quantity_options(law, rv)
+        current = self.quantity_widget.value
+        values = [v for _, v in options]
+        syncing, self._syncing = self._syncing, True
+        try:
+            self.quantity_widget.options = options
+            self.quantity_widget.value = current if current in values else "av"
+        finally:
+            self._syncing = syncing
+        self._bands_for = key
+        if current not in values:
+            print(f"Band {current} is outside the wavelength range of law {law}; the profile shows A_V.")
+
     def _on_law(self, change):
         if self._syncing:
             return
@@ -504,6 +543,7 @@ class Explorer:
         self.progress.value = 2
         self.model = model
         self.tracers = model.tracers_
+        self._update_band_choices(model.law, model.rv)
         self._after_model(time.perf_counter() - t0, how)
 
     def _after_model(self, time_s=None, how="given"):
