@@ -55,6 +55,25 @@ def test_prior_has_the_stated_variance_and_correlation():
     assert r == pytest.approx(lat.phi[k + 1], abs=0.04)
 
 
+def test_per_cell_amplitudes_give_the_stated_cumulative_prior_variance():
+    # with per-cell amplitude factors (raised cells, as behind a cloud) the closed-form prior
+    # variance of cumulative extinction must equal that of Monte Carlo draws of the prior
+    # (Var[sum_k inc_k f_k] over draws of f = T xi; common practice for checking a covariance)
+    grid = Grid(16, default_distance_edges(2000.0))
+    pix = active_pixels(grid, np.array([40.0]), np.array([0.0]), 15.0)
+    boost = np.ones((default_distance_edges(2000.0).size - 1, pix.size))
+    boost[8:11, ::3] = 6.0
+    lat = Lattice(grid, pix, 0.2, 300.0, boost)
+    inc = np.random.default_rng(2).uniform(0.01, 0.1, (lat.n_pix, lat.n_bins))
+    exact = lat.cumulative_prior_variance(inc)
+    f = lat.forward(np.random.default_rng(3).standard_normal((*lat.shape, 4000)))
+    cum = np.cumsum(inc.T[:, :, None] * f, axis=0)            # (K, P, draws)
+    mc = cum.var(axis=2).T                                     # (P, K)
+    np.testing.assert_allclose(mc, exact[:, 1:], rtol=0.1)
+    plain = Lattice(grid, pix, 0.2, 300.0).cumulative_prior_variance(inc)
+    assert np.all(exact[::3, -1] > 2 * plain[::3, -1]) and np.allclose(exact[1::3], plain[1::3])
+
+
 def test_cumulative_extinction_is_monotone_and_density_positive(fitted):
     _, m = fitted
     assert np.all(np.diff(m.av_, axis=1) >= -1e-12)

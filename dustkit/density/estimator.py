@@ -312,15 +312,10 @@ class DensityModel:
             # signed: a calibrated tracer scatters around zero; only the local average is clipped
             censored = d > grid.distance_edges[-1]
             excess = np.where(censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
-            ok = ~censored
-            noise = ae**2 + (tau * base) ** 2
-            # where held-out tracers are fitted better than predicted, a tighter prior (per pixel)
-            lower = np.minimum(_local_scale(grid, pixels, l[ok], b[ok], resid[ok], pvar[ok], noise[ok],
-                                            (weight * consistent)[ok]), 1.0)
             excess *= consistent
             # where they miss, more freedom in the cells in front of them (per cell)
-            boost, cell_length = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp, length, lower)
-            lat = Lattice(grid, pixels, amp, length, boost, cell_length)
+            boost = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp)
+            lat = Lattice(grid, pixels, amp, length, boost)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
@@ -346,7 +341,6 @@ class DensityModel:
             "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": floored,
             "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
-            "lowered_pixels": int(np.sum(lat.boost.max(axis=0) < 0.9)),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
         }
         return self
@@ -688,66 +682,26 @@ def _fit_tau(resid, pvar, err, base):
     return float(res.x), float(res.fun)
 
 
-def _local_scale(grid, pixels, l, b, resid, pvar, noise, weight, sky_deg=2.0, prior_weight=1.0,
-                 low=0.1, cap=10.0, n_iter=6):
-    """Per-pixel factor on the prior amplitude, by local empirical Bayes on held-out tracers.
-
-    A held-out tracer's residual ``r`` has predicted variance ``noise + pvar`` (its own error
-    and the unresolved part, plus the posterior spread of the prediction, which the prior
-    sets where data are thin). Where the log-density varies by a factor ``beta`` more (or
-    less) than the sky-wide amplitude allows, that spread scales as ``beta^2 pvar``. Around
-    each active pixel, ``beta^2`` maximises the Gaussian likelihood of the held-out
-    residuals within ``sky_deg`` (Gaussian weights on the sky times each tracer's weight),
-    with a penalty worth ``prior_weight`` tracers pulling it toward 1, by Fisher scoring.
-    Without nearby held-out tracers, ``beta = 1``: the sky-wide prior. Clipped to
-    ``[low, cap]``: clouds get the freedom they need, the smooth rest of the sky a prior no
-    wider than its tracers allow. This is a heavier-tailed, non-stationary prior learned from
-    the data (an empirical-Bayes local scale, in the manner of scale-mixture priors).
-    """
-    lc, bc = grid.pixel_centres(pixels)
-    pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(
-        cKDTree(unit_vectors(l, b)), chord(3 * sky_deg), output_type="coo_matrix")
-    ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
-    row, tr = pairs.row, pairs.col
-    w = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[tr]
-    p, r2, n0 = pvar[tr], resid[tr] ** 2, noise[tr]
-    # a typical tracer's information about the scale sets the strength of the pull toward 1
-    info_one = float(np.average((pvar / (pvar + noise)) ** 2, weights=np.maximum(weight, 1e-12))) / 2.0
-    beta2 = np.ones(pixels.size)
-    for _ in range(n_iter):
-        v = n0 + beta2[row] * p
-        score = np.bincount(row, w * p * (r2 - v) / v**2, minlength=pixels.size) / 2.0
-        info = np.bincount(row, w * p**2 / v**2, minlength=pixels.size) / 2.0
-        pull = prior_weight * info_one
-        beta2 = beta2 + (score - pull * (beta2 - 1.0)) / (info + pull)
-        beta2 = np.clip(beta2, low**2, cap**2)
-    return np.sqrt(beta2)
-
-
-def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, lower, max_amplitude=2.0,
-                shortest=60.0):
-    """Per-cell factor on the prior amplitude, and per-cell correlation length, from held-out misses.
+def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, max_amplitude=2.0):
+    """Per-cell factor on the prior amplitude (n_bins, n_pix), from held-out misses.
 
     The excess variance of held-out tracers (squared residual beyond its predicted
     variance), spread on the sky and in log distance as for the unresolved variance, and
     made non-decreasing with distance, says how much extinction variance the prior missed
     out to each distance; its growth across a bin, ``dX_k``, sits in that bin. A cell whose
     prior spread of extinction is ``s inc_k`` (``inc_k``: the layer's extinction in the bin)
-    gets ``boost^2 = lower^2 + dX_k / (s inc_k)^2``: compact clouds get the freedom they need
-    where tracers behind them miss and tracers in front do not. Capped so that ``s boost``
-    stays at most ``max_amplitude``; a raised cell also gets a correlation length shorter by
-    the same factor (at least ``shortest`` pc): the structure it stands for is compact.
+    gets ``boost^2 = 1 + dX_k / (s inc_k)^2``: compact clouds get the freedom they need
+    where tracers behind them miss and tracers in front do not, without loosening the prior
+    of the smooth rest of the sky. Capped so that ``s boost`` stays at most
+    ``max_amplitude``. An empirical-Bayes, non-stationary (heavier-tailed) prior.
     """
     e = grid.distance_edges
     _, bc = grid.pixel_centres(pixels)
     x = _unresolved(grid, l, b, d, excess, weight, pixels=pixels)        # (P, E)
     dx = np.diff(np.maximum.accumulate(x, axis=1), axis=1)              # (P, K)
     inc = _layer_increments(layer, bc, e)                               # (P, K)
-    boost2 = lower[:, None] ** 2 + dx / np.maximum((amplitude * inc) ** 2, 1e-12)
-    boost = np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
-    raised = np.maximum(boost / lower[None, :], 1.0)
-    cell_length = np.clip(length / raised, min(shortest, length), length)
-    return boost, cell_length
+    boost2 = 1.0 + dx / np.maximum((amplitude * inc) ** 2, 1e-12)
+    return np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
 
 
 def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
