@@ -132,6 +132,9 @@ def _add_tracer_options(p):
     p.add_argument("--duplicates", choices=("merge", "keep"), default="merge",
                    help="rows repeating a tracer (exact copies, same name, or same place with distance and A_V "
                         "within their errors): merge each group into one tracer (default) or keep them")
+    p.add_argument("--duplicate-separation", type=float, default=None, metavar="ARCSEC",
+                   help="sky separation within which two rows may be one tracer, arcsec (default 1; 0: only "
+                        "names and exact copies); distance and A_V must agree within their errors too")
     p.add_argument("--parallax-floor", type=float, default=None, metavar="MAS",
                    help="systematic error added in quadrature to parallax errors, mas (default 0.01)")
 
@@ -379,6 +382,8 @@ def _read_tracers(args, path, summary_shown=True):
     kw = {}
     if getattr(args, "parallax_floor", None) is not None:
         kw["parallax_err_floor"] = args.parallax_floor * u.mas
+    if getattr(args, "duplicate_separation", None) is not None:
+        kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         tracers = read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,

@@ -19,6 +19,7 @@ from .distances import distances
 from .rules import (
     DEFAULT_DISTANCE_FRAC_ERR,
     DEFAULT_EXCESS_ERR,
+    DUPLICATE_SEPARATION_ARCSEC,
     PARALLAX_ERR_FLOOR,
     PARALLAX_LENGTH_SCALE,
     check_limits,
@@ -58,6 +59,7 @@ def read_tracers(
     parallax_err_floor=PARALLAX_ERR_FLOOR * u.mas,
     parallax_length_scale=PARALLAX_LENGTH_SCALE * u.kpc,
     duplicates="merge",
+    duplicate_separation=DUPLICATE_SEPARATION_ARCSEC * u.arcsec,
 ):
     """Read a catalogue of extinction tracers into a validated :class:`TracerSet`.
 
@@ -109,10 +111,15 @@ def read_tracers(
         Length scale of the exponentially decreasing space density prior (1.35 kpc;
         plain numbers in kpc).
     duplicates : {'merge', 'keep'}
-        Rows that repeat a tracer (exact copies; the same name; or positions within
-        1 arcsec with distance and A_V within their errors) are merged into one tracer
-        by inverse-variance means (default) or kept. Either way the groups are listed in
-        ``TracerSet.duplicates``.
+        ``'merge'`` (default): rows that repeat a tracer (exact copies; the same name; or
+        positions within ``duplicate_separation`` with distance *and* A_V within 2 sigma of
+        their combined errors) are merged into one tracer by inverse-variance means, and the
+        groups listed in ``TracerSet.duplicates``. ``'keep'``: the rows are taken as given,
+        with no search for duplicates (and so no report).
+    duplicate_separation : Quantity['angle'] or float
+        Sky separation within which two rows may be one tracer (1 arcsec; plain numbers in
+        arcsec; 0: only names and exact copies). Distinct stars of a crowded field closer
+        than this stay apart unless their distances and A_V agree within their errors.
 
     Returns
     -------
@@ -168,6 +175,7 @@ def read_tracers(
         parallax_err_floor=parallax_err_floor,
         parallax_length_scale=parallax_length_scale,
         duplicates=duplicates,
+        duplicate_separation=duplicate_separation,
     )
     emit(notes)
     return TracerSet(**fields)
