@@ -371,6 +371,19 @@ def _grid_options(args):
     return kw
 
 
+def _reading_options(args):
+    """The reading options of a command (the same for the in-memory and the chunked builds)."""
+    from astropy import units as u
+
+    kw = {"distance_unit": args.distance_unit, "distance_modulus_kind": getattr(args, "modulus_kind", None),
+          "duplicates": getattr(args, "duplicates", "merge")}
+    if getattr(args, "parallax_floor", None) is not None:
+        kw["parallax_err_floor"] = args.parallax_floor * u.mas
+    if getattr(args, "duplicate_separation", None) is not None:
+        kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
+    return kw
+
+
 def _read_tracers(args, path, summary_shown=True):
     """read_tracers with the command's options. Assumptions go into the summary, so when it is
     printed they are not printed again as warning lines (each assumption is said once)."""
@@ -546,13 +559,13 @@ def _build_out_of_core(args, kw, columns, out):
         out(f"Using the dask scheduler at {args.scheduler}")
     try:
         model = build_from_parquet(args.catalog, columns=columns or None, chunk_size=chunk, law=args.law,
-                                   rv=args.rv, client=client, quiet=_quiet_flag(args), **kw)
+                                   rv=args.rv, client=client, quiet=_quiet_flag(args), **_reading_options(args), **kw)
     finally:
         if client is not None:
             client.close()
     info = model.build_info_
-    out(f"Read {info['n_rows']} rows in {info['n_chunks']} chunks: {info['n_used']} tracers used, "
-        f"{info['n_rejected']} rejected.")
+    out(f"Read {info['n_rows']} rows in {info['n_chunks']} chunks (out of core): {info['n_used']} tracers used, "
+        f"{info['n_rejected']} rejected, {info['n_merged']} merged as duplicates.")
     for reason, count in info["rejected_by_reason"].items():
         out(f"  {count:>10}  {reason}")
     return model
