@@ -515,7 +515,7 @@ def _cmd_build(args, out):
                                                "20000 tracers, the binned model above)")
         if args.model == "auto" and args.distance_step is not None:
             kind, why = "binned", " (--distance-step asks for the binned model's fixed bins)"
-        out(f"Building the {kind} model from {len(tracers)} tracers{why} ...")
+        out(f"Building the {kind} model from {len(tracers)} tracers in memory{why} ...")
         if kind == "density":
             kw = {k: v for k, v in kw.items() if k != "distance_step"}
             if args.distance_step is not None:
