@@ -8,9 +8,14 @@ not grow with the catalogue.
 How the build runs
 ------------------
 Pass 1 (sample)
-    Every chunk is read and validated with the same rules as
-    :func:`dustkit.tracers.read_tracers` (rows are rejected, counted by reason and reported
-    once with a :class:`~dustkit.exceptions.RowsRejectedWarning`). A deterministic uniform
+    Every chunk is read by the code of :func:`dustkit.tracers.read_tracers`
+    (``dustkit.tracers.assemble.build_tracers``: column recognition, units and the kpc check,
+    true/apparent moduli, parallax prior distances, correlations, error floors, rejections,
+    duplicates merged within the chunk); rows rejected and merged are counted by reason and
+    the reader's warnings said once for the whole catalogue (counts summed). Exact copies in
+    different chunks are found by a 64-bit hash of their input rows and counted once (rows
+    of the same name in different chunks are not merged). Local builds of at most
+    ``CACHE_ROWS`` rows keep each chunk's checked arrays for pass 2. A deterministic uniform
     random sample is kept: the rows with the smallest values of a 64-bit hash of their row
     number (a "bottom-k" sample, which merges exactly across chunks and workers). The
     smooth dust layer is fitted to the sample (``layer_sample`` rows). Catalogues of at
@@ -61,7 +66,6 @@ import functools
 import os
 import time
 import warnings
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -72,9 +76,10 @@ from ._lib.formats import CHUNKED_FORMATS, format_for
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
-from .tracers.assemble import build_tracers
+from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_copies, drop_from_sample,
+                              fit_arrays)
 from .tracers.rules import (DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, DUPLICATE_SEPARATION_ARCSEC,
-                            PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, check_duplicates, check_law, floor_errors)
+                            PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, check_duplicates, check_law)
 from .binned.folds import HeldOut, fold_of_positions, fold_of_rows, row_hash, seed_of
 from .binned.statistics import Statistics, nominal_statistics
 from .model import ExtinctionModel
@@ -91,13 +96,10 @@ DEFAULT_COLUMNS = {
     "av": "av",
     "av_err": "av_err",
 }
-_ROLES = tuple(DEFAULT_COLUMNS)
-_UNITS = {"l": u.deg, "b": u.deg, "distance": u.pc, "distance_err": u.pc, "av": u.mag, "av_err": u.mag}
 #: Local (threaded) builds of at most this many rows keep each chunk's checked arrays from pass 1
 #: for pass 2 (48 bytes a row: 0.5 GB for 10^7 rows) instead of reading and checking it twice.
 CACHE_ROWS = 20_000_000
 _LOCAL_STATS_BUDGET = 2 * 2**30  # bytes of statistics arrays held by local parallel chains
-_EXAMPLES_PER_REASON = 5
 
 # every chunk is read by the in-memory reader's own code (dustkit.tracers.assemble.build_tracers):
 # the same recognition, units, moduli, parallax prior, rejections, default errors and duplicates
@@ -109,20 +111,6 @@ _EXAMPLES_PER_REASON = 5
 
 
 # ----------------------------------------------------------------------------- reading chunks
-
-@dataclass(frozen=True)
-class _Chunk:
-    """Rows ``start:stop`` of one file; ``row0`` is the catalogue row number of ``start``."""
-
-    kind: str  # "parquet" or "fits"
-    path: str
-    start: int
-    stop: int
-    row0: int
-    hdu: int = 1
-    row_groups: tuple = ()
-    group_start: int = 0  # first row of row_groups[0] within the file
-
 
 def _find_files(source):
     """Sorted list of (kind, path) for a file or a folder of Parquet files."""
@@ -161,7 +149,7 @@ def _plan(files, chunk_size, hdu):
                 e = min(s + chunk_size, n)
                 first = int(np.searchsorted(starts, s, side="right") - 1)
                 last = int(np.searchsorted(starts, e, side="left") - 1)
-                chunks.append(_Chunk("parquet", path, s, e, row0 + s, row_groups=tuple(range(first, last + 1)),
+                chunks.append(Chunk("parquet", path, s, e, row0 + s, row_groups=tuple(range(first, last + 1)),
                                      group_start=int(starts[first])))
         else:
             from astropy.io import fits
@@ -177,105 +165,9 @@ def _plan(files, chunk_size, hdu):
                     raise CatalogError(f"HDU {index} of {path!r} is not a table. Hint: pass hdu=<index of the table>.")
                 n = int(h.header.get("NAXIS2", 0))
             for s in range(0, n, chunk_size):
-                chunks.append(_Chunk("fits", path, s, min(s + chunk_size, n), row0 + s, hdu=int(index)))
+                chunks.append(Chunk("fits", path, s, min(s + chunk_size, n), row0 + s, hdu=int(index)))
         row0 += n
     return chunks, row0
-
-
-def _read_chunk(chunk):
-    """Rows ``start:stop`` of a file as an astropy Table (every column; FITS units kept, nulls masked)."""
-    from astropy.table import MaskedColumn, Table
-
-    n = chunk.stop - chunk.start
-    if chunk.kind == "parquet":
-        import pyarrow as pa
-        import pyarrow.parquet as pq
-
-        pf = pq.ParquetFile(chunk.path)
-        batches = []
-        pos = chunk.group_start
-        for batch in pf.iter_batches(batch_size=min(max(n, 1024), 1 << 20), row_groups=list(chunk.row_groups),
-                                     use_threads=False):
-            lo = max(chunk.start - pos, 0)
-            hi = min(chunk.stop - pos, batch.num_rows)
-            pos += batch.num_rows
-            if hi > lo:
-                batches.append(batch.slice(lo, hi - lo))
-            if pos >= chunk.stop:
-                break
-        tab = pa.Table.from_batches(batches, schema=pf.schema_arrow) if batches else pf.schema_arrow.empty_table()
-        out = Table()
-        for name in tab.column_names:
-            col = tab.column(name)
-            if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
-                vals = np.asarray(col.fill_null("").to_numpy(zero_copy_only=False)).astype(str)
-            else:
-                vals = col.to_numpy(zero_copy_only=False)
-            if col.null_count:
-                out[name] = MaskedColumn(vals, mask=np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool))
-            else:
-                out[name] = vals
-    else:
-        from astropy.io import fits
-
-        with fits.open(chunk.path, memmap=True) as hl:
-            h = hl[chunk.hdu]
-            data = h.data[chunk.start:chunk.stop]  # only this chunk is read (and scaled, for TSCAL columns)
-            out = Table()
-            for c in h.columns:
-                vals = np.array(data.field(c.name))
-                if vals.dtype.kind == "S":
-                    vals = np.char.decode(vals, "utf-8", "replace")
-                unit = None
-                if c.unit:
-                    unit = u.Unit(c.unit, parse_strict="silent")
-                    if isinstance(unit, u.UnrecognizedUnit):
-                        unit = u.Unit(str(c.unit).strip().lower(), parse_strict="silent")
-                out[c.name] = vals
-                if unit is not None and not isinstance(unit, u.UnrecognizedUnit):
-                    out[c.name].unit = unit
-            del data
-    if len(out) != n:
-        raise CatalogError(f"Read {len(out)} rows instead of {n} from {chunk.path!r}; the file changed during the build?")
-    return out
-
-
-def _chunk_tracers(chunk, reading, hashes=False):
-    """One chunk read and checked by the in-memory reader's rules (``build_tracers``: column recognition,
-    units, moduli, parallax prior, correlations, rejections, default errors, duplicates within the
-    chunk). Returns the fields of a TracerSet, the notes (warnings) the reader would give and, with
-    ``hashes``, a 64-bit hash of each tracer's input row (its values in every column used)."""
-    table = _read_chunk(chunk)
-    f, notes = build_tracers(table, source_desc=f"{chunk.path!r} rows {chunk.start}..{chunk.stop - 1}",
-                             file_sha=None, **reading)
-    if not hashes:
-        return f, notes, None
-    return f, notes, _row_hash_of(table, list(dict.fromkeys(f["meta"]["columns"].values())), f["row"])
-
-
-def _row_hash_of(table, names, rows):
-    """A 64-bit hash of the values of columns ``names`` in rows ``rows`` (exact copies share it)."""
-    from pandas.util import hash_array
-
-    h = np.zeros(np.size(rows), dtype=np.uint64)
-    with np.errstate(over="ignore"):
-        for k, name in enumerate(names):
-            col = table[name]
-            data = np.asarray(col.filled(np.nan) if hasattr(col, "filled") and col.dtype.kind == "f" else col)[rows]
-            if data.dtype.kind in "fiub":
-                x = np.ascontiguousarray(data, dtype=float).view(np.uint64)
-            else:
-                x = hash_array(data.astype(str).astype(object))
-            h ^= (x + np.uint64(k + 1)) * np.uint64(0x9E3779B97F4A7C15)
-            h = (h << np.uint64(13)) | (h >> np.uint64(51))
-    return h
-
-
-def _fit_arrays(f):
-    """The six arrays a fit uses, errors floored as every fit floors them (rules.floor_errors)."""
-    de, ae = floor_errors(f["distance"], f["distance_err"], f["av_err"], warn=False)
-    return (np.asarray(f["l"], float), np.asarray(f["b"], float), np.asarray(f["distance"], float),
-            np.asarray(de, float), np.asarray(f["av"], float), np.asarray(ae, float))
 
 
 # ----------------------------------------------------------------------------- validation
@@ -283,24 +175,16 @@ def _fit_arrays(f):
 _NOTES_DROPPED = (RowsRejectedWarning, DuplicatesWarning)  # said once for the whole catalogue instead
 
 
-class _Cache:
-    """Pass 1's checked arrays per chunk (keyed by its first catalogue row), shared by local threads.
-    (An object, not a dict, so that dask passes it as it is.)"""
-
-    def __init__(self):
-        self.arrays = {}
-
-
 def _pass1_link(acc, cid, chunk, reading, k, seed, cache=None):
     """Read and check one chunk; merge its bottom-k rows (by row hash) into the running sample.
 
     With a ``cache`` (a dict shared by the local threads) the chunk's fit arrays are kept for
     pass 2, which then neither reads nor checks the chunk again."""
-    f, notes, hashes = _chunk_tracers(chunk, reading, hashes=reading["duplicates"] == "merge")
+    f, notes, hashes = chunk_tracers(chunk, reading, hashes=reading["duplicates"] == "merge")
     file_row = chunk.row0 + np.asarray(f["row"], np.int64)  # catalogue row number of each tracer
     key = row_hash(file_row, seed, 1)
     sel = np.argpartition(key, k - 1)[:k] if key.size > k else np.arange(key.size)
-    arrays = _fit_arrays(f)
+    arrays = fit_arrays(f)
     if cache is not None:
         cache.arrays[chunk.row0] = arrays
     part = {
@@ -392,8 +276,8 @@ def _pass2_link(acc, chunk, reading, offset, grid, layer, n_folds, seed, held, d
     if cached is not None and chunk.row0 in cached.arrays:
         l, b, d, de, av, ae = cached.arrays.pop(chunk.row0)  # pass 1's arrays of this chunk
     else:
-        f, _, _ = _chunk_tracers(chunk, reading)
-        l, b, d, de, av, ae = _fit_arrays(f)
+        f, _, _ = chunk_tracers(chunk, reading)
+        l, b, d, de, av, ae = fit_arrays(f)
         del f
     if drop is not None and drop.size:
         keep = np.ones(l.size, dtype=bool)
@@ -605,12 +489,11 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     if layer is not None and not isinstance(layer, DustLayer):
         raise param_error("layer", "a DustLayer (e.g. another model's layer_)", type(layer).__name__)
     law, rv = check_law(law, float(rv))
-    reading = dict(columns=columns, distance_unit=distance_unit, law=law, rv=rv,
-                   parallax_zero_point=parallax_zero_point, default_distance_frac_err=default_distance_frac_err,
-                   default_excess_err=default_excess_err, reject_limits=reject_limits, excess_color=excess_color,
-                   distance_modulus_kind=distance_modulus_kind, parallax_err_floor=parallax_err_floor,
-                   parallax_length_scale=parallax_length_scale, duplicates=check_duplicates(duplicates),
-                   duplicate_separation=duplicate_separation)
+    reading = _reading(columns, law, rv, duplicates, distance_unit=distance_unit,
+                       parallax_zero_point=parallax_zero_point, default_distance_frac_err=default_distance_frac_err,
+                       default_excess_err=default_excess_err, reject_limits=reject_limits, excess_color=excess_color,
+                       distance_modulus_kind=distance_modulus_kind, parallax_err_floor=parallax_err_floor,
+                       parallax_length_scale=parallax_length_scale, duplicate_separation=duplicate_separation)
 
     model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
     grid = model.make_grid()
@@ -628,7 +511,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     lap = _Clock()
     k = max(layer_sample, heldout_sample)
     # local builds of up to CACHE_ROWS rows keep pass 1's arrays for pass 2 (48 bytes a row)
-    cache = _Cache() if client is None and n_rows <= CACHE_ROWS else None
+    cache = ChunkCache() if client is None and n_rows <= CACHE_ROWS else None
     p1 = _run_chains(
         _pass1_link, functools.partial(_pass1_combine, k), chunks,
         lambda i, ch: (i, ch, reading, k, seed, cache),
@@ -636,12 +519,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     )
     lap("pass 1 (read, validate, sample)")
     cached = cache
-    drops = _cross_chunk_copies(p1["hashes"], len(chunks)) if duplicates == "merge" else {}
-    n_copies = int(sum(x.size for x in drops.values()))
-    _drop_from_sample(p1["sample"], drops)
-    valid = np.array([p1["valid"][i] - (drops[i].size if i in drops else 0) for i in range(len(chunks))],
-                     dtype=np.int64)
-    offsets = np.concatenate([[0], np.cumsum(valid)])
+    drops, n_copies, offsets = _accepted(p1, len(chunks), duplicates)
     n_used = int(offsets[-1])
     n_rejected = int(sum(p1["counts"].values()))
     n_merged = int(p1["merged"]) + n_copies
@@ -672,45 +550,57 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     lap("pass 2 (sufficient statistics)")
 
     # finish exactly as in memory, on the held-out rows
-    held_data = data[:, np.searchsorted(gidx_sorted, held_rows)]
-    held_fold = (fold_of_positions(held_data[0], held_data[1], held_data[2], n_folds, seed) if k_fold
-                 else np.zeros(held_rows.size, dtype=np.int64))
-    heldout = HeldOut(*held_data, held_fold)
-    plan = model.fit_plan(n_used)
-    rng = np.random.default_rng(model.random_state)
-    statistics = Statistics(*sums)
-    del sums
-    model.fit_statistics(statistics, layer, heldout, plan, rng=rng, tracers=layer_set)
+    _finish(model, sums, layer, data[:, np.searchsorted(gidx_sorted, held_rows)], k_fold, n_folds, seed, n_used,
+            layer_set)
     lap("finish (cross-validation, calibration, isotonic)")
     if isinstance(getattr(layer_set, "meta", None), dict):
-        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows),
-                               "sample_of": n_used})
+        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows), "sample_of": n_used})
     model.build_info_ = {
-        "source": os.fspath(path_or_folder),
-        "files": [p for _, p in files],
-        "n_rows": int(n_rows),
-        "n_used": n_used,
-        "n_rejected": int(n_rejected),
+        "source": os.fspath(path_or_folder), "files": [p for _, p in files], "n_rows": int(n_rows),
+        "n_used": n_used, "n_rejected": int(n_rejected), "n_merged": n_merged, "cross_chunk_copies": n_copies,
+        **_reading_info(p1, filled),
+        "chunk_size": chunk_size, "n_chunks": len(chunks), "n_parallel": n_chains,
+        "layer_sample": int(layer_rows.size), "heldout_sample": int(held_rows.size), "heldout_rows": held_rows,
+        "layer_given": layer_given, "scheduler": "distributed" if client is not None else "threads",
+        "seconds": lap.seconds,
+    }
+    return model
+
+
+def _finish(model, sums, layer, held_data, k_fold, n_folds, seed, n_used, layer_set):
+    """Finish exactly as in memory (the model's public seam), on the held-out rows ``held_data``."""
+    held_fold = (fold_of_positions(held_data[0], held_data[1], held_data[2], n_folds, seed) if k_fold
+                 else np.zeros(held_data.shape[1], dtype=np.int64))
+    rng = np.random.default_rng(model.random_state)
+    model.fit_statistics(Statistics(*sums), layer, HeldOut(*held_data, held_fold), model.fit_plan(n_used), rng=rng,
+                         tracers=layer_set)
+
+
+def _accepted(p1, n_chunks, duplicates):
+    """Exact copies across chunks (dropped from the sample), their count, and each chunk's first
+    position among the accepted rows."""
+    drops = cross_chunk_copies(p1["hashes"], n_chunks) if duplicates == "merge" else {}
+    drop_from_sample(p1["sample"], drops)
+    valid = np.array([p1["valid"][i] - (drops[i].size if i in drops else 0) for i in range(n_chunks)], dtype=np.int64)
+    return drops, int(sum(x.size for x in drops.values())), np.concatenate([[0], np.cumsum(valid)])
+
+
+def _reading_info(p1, filled):
+    """What the reading of the chunks found, for ``build_info_``."""
+    return {
         "rejected_by_reason": dict(p1["counts"]),
-        "n_merged": n_merged,
         "duplicate_rows": int(p1["dup_rows"]),
         "duplicate_groups": int(p1["dup_groups"]),
-        "cross_chunk_copies": n_copies,
         "assumptions": list(p1["assumptions"]),
         "columns": dict((p1.get("meta") or {}).get("columns", {})),
         "default_errors": filled,
         "rejected_examples": _examples_table(p1["examples"]),
-        "chunk_size": chunk_size,
-        "n_chunks": len(chunks),
-        "n_parallel": n_chains,
-        "layer_sample": int(layer_rows.size),
-        "heldout_sample": int(held_rows.size),
-        "heldout_rows": held_rows,
-        "layer_given": layer_given,
-        "scheduler": "distributed" if client is not None else "threads",
-        "seconds": lap.seconds,
     }
-    return model
+
+
+def _reading(columns, law, rv, duplicates, **options):
+    """The keyword arguments of ``build_tracers`` for every chunk (checked)."""
+    return dict(columns=columns, law=law, rv=rv, duplicates=check_duplicates(duplicates), **options)
 
 
 class _Clock:
@@ -752,47 +642,6 @@ def _check_model_params(model_params):
             "catalogues: use ExtinctionModel.fit)",
             scheme,
         )
-
-
-def _cross_chunk_copies(hashes, n_chunks):
-    """Positions (per chunk) of tracers whose 64-bit value hash repeats one of an earlier chunk."""
-    if n_chunks < 2:
-        return {}
-    h = np.concatenate([hashes[i] for i in range(n_chunks)])
-    cid = np.concatenate([np.full(hashes[i].size, i, dtype=np.int64) for i in range(n_chunks)])
-    local = np.concatenate([np.arange(hashes[i].size, dtype=np.int64) for i in range(n_chunks)])
-    o = np.argsort(h)  # one sort of all hashes; only the (few) repeated ones are ordered further
-    ho = h[o]
-    rep = np.flatnonzero(ho[1:] == ho[:-1])
-    if rep.size == 0:
-        return {}
-    members = o[np.unique(np.concatenate([rep, rep + 1]))]
-    order = members[np.lexsort((local[members], cid[members], h[members]))]
-    hs, cs = h[order], cid[order]
-    later = np.flatnonzero(hs[1:] == hs[:-1]) + 1
-    # a copy of an earlier chunk's tracer (copies within one chunk were merged by its own rules)
-    first = np.maximum.accumulate(np.where(np.r_[True, hs[1:] != hs[:-1]], np.arange(hs.size), 0))
-    later = later[cs[later] != cs[first[later]]]
-    out = {}
-    for i in np.unique(cid[order[later]]):
-        sel = order[later][cid[order[later]] == i]
-        out[int(i)] = np.sort(local[sel])
-    return out
-
-
-def _drop_from_sample(sample, drops):
-    """Remove dropped tracers from the sample and renumber the rest among their chunk's tracers."""
-    if not drops or sample is None:
-        return
-    keep = np.ones(sample["key"].size, dtype=bool)
-    local = sample["local"].copy()
-    for i, d in drops.items():
-        inchunk = sample["chunk"] == i
-        keep[inchunk] &= ~np.isin(sample["local"][inchunk], d)
-        local[inchunk] -= np.searchsorted(d, sample["local"][inchunk])
-    sample["local"] = local
-    for name in list(sample):
-        sample[name] = sample[name][..., keep]
 
 
 def _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates):
