@@ -139,6 +139,9 @@ def _add_tracer_options(p):
     p.add_argument("--duplicates", choices=("merge", "keep"), default="merge",
                    help="rows repeating a tracer (exact copies, same name, or same place with distance and A_V "
                         "within their errors): merge each group into one tracer (default) or keep them")
+    p.add_argument("--duplicate-separation", type=float, default=None, metavar="ARCSEC",
+                   help="sky separation within which two rows may be one tracer, arcsec (default 1; 0: only "
+                        "names and exact copies); distance and A_V must agree within their errors too")
     p.add_argument("--parallax-floor", type=float, default=None, metavar="MAS",
                    help="systematic error added in quadrature to parallax errors, mas (default 0.01)")
     p.add_argument("--source-temperature", type=float, default=None, metavar="K",
@@ -379,6 +382,19 @@ def _grid_options(args):
     return kw
 
 
+def _reading_options(args):
+    """The reading options of a command (the same for the in-memory and the chunked builds)."""
+    from astropy import units as u
+
+    kw = {"distance_unit": args.distance_unit, "distance_modulus_kind": getattr(args, "modulus_kind", None),
+          "duplicates": getattr(args, "duplicates", "merge")}
+    if getattr(args, "parallax_floor", None) is not None:
+        kw["parallax_err_floor"] = args.parallax_floor * u.mas
+    if getattr(args, "duplicate_separation", None) is not None:
+        kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
+    return kw
+
+
 def _read_tracers(args, path, summary_shown=True):
     """read_tracers with the command's options. Assumptions go into the summary, so when it is
     printed they are not printed again as warning lines (each assumption is said once)."""
@@ -392,6 +408,8 @@ def _read_tracers(args, path, summary_shown=True):
         kw["parallax_err_floor"] = args.parallax_floor * u.mas
     if getattr(args, "source_temperature", None) is not None:
         kw["source_temperature"] = args.source_temperature * u.K
+    if getattr(args, "duplicate_separation", None) is not None:
+        kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         tracers = read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,
@@ -510,7 +528,7 @@ def _cmd_build(args, out):
                                                "20000 tracers, the binned model above)")
         if args.model == "auto" and args.distance_step is not None:
             kind, why = "binned", " (--distance-step asks for the binned model's fixed bins)"
-        out(f"Building the {kind} model from {len(tracers)} tracers{why} ...")
+        out(f"Building the {kind} model from {len(tracers)} tracers in memory{why} ...")
         if kind == "density":
             kw = {k: v for k, v in kw.items() if k != "distance_step"}
             if args.distance_step is not None:
@@ -554,13 +572,13 @@ def _build_out_of_core(args, kw, columns, out):
         out(f"Using the dask scheduler at {args.scheduler}")
     try:
         model = build_from_parquet(args.catalog, columns=columns or None, chunk_size=chunk, law=args.law,
-                                   rv=args.rv, client=client, quiet=_quiet_flag(args), **kw)
+                                   rv=args.rv, client=client, quiet=_quiet_flag(args), **_reading_options(args), **kw)
     finally:
         if client is not None:
             client.close()
     info = model.build_info_
-    out(f"Read {info['n_rows']} rows in {info['n_chunks']} chunks: {info['n_used']} tracers used, "
-        f"{info['n_rejected']} rejected.")
+    out(f"Read {info['n_rows']} rows in {info['n_chunks']} chunks (out of core): {info['n_used']} tracers used, "
+        f"{info['n_rejected']} rejected, {info['n_merged']} merged as duplicates.")
     for reason, count in info["rejected_by_reason"].items():
         out(f"  {count:>10}  {reason}")
     return model

@@ -281,8 +281,10 @@ def _tracers_hdu(model, state):
     info = state["tracer_info"]
     tmeta = info.get("meta") or {}
     tr = state["tracers"]
-    names = np.char.encode(np.asarray(tr["name"]).astype(str), "utf-8")  # FITS strings are bytes
-    tcols = [fits.Column(name="NAME", format=f"{max(1, names.dtype.itemsize)}A", array=names)]
+    tcols = []
+    if "name" in tr:  # names as given; without them the names are "row <ROW>", made again on reading
+        names = np.char.encode(np.asarray(tr["name"]).astype(str), "utf-8")  # FITS strings are bytes
+        tcols.append(fits.Column(name="NAME", format=f"{max(1, names.dtype.itemsize)}A", array=names))
     for k in _TRACER_FLOATS:
         if k in tr:
             tcols.append(fits.Column(name=k.upper(), format="D", unit=_TRACER_UNITS.get(k, "mag"),
@@ -528,8 +530,9 @@ def _model_from_parts(path, parts):
 
     th, trd = parts["TRACERS"]
     tracers = {k: np.asarray(trd[k.upper()], float) for k in _TRACER_FLOATS if k.upper() in trd.columns.names}
-    raw = np.asarray(trd["NAME"])
-    tracers["name"] = np.char.decode(raw, "utf-8", "replace") if raw.dtype.kind == "S" else raw.astype(str)
+    if "NAME" in trd.columns.names:
+        raw = np.asarray(trd["NAME"])
+        tracers["name"] = np.char.decode(raw, "utf-8", "replace") if raw.dtype.kind == "S" else raw.astype(str)
     try:
         tmeta = json.loads(th.get("TRMETA", "{}"))
     except ValueError:
@@ -572,7 +575,7 @@ def _model_from_parts(path, parts):
             changes[k] = tracers[k]
     if "ROW" in trd.columns.names:
         changes["row"] = np.asarray(trd["ROW"], np.int64)
-    changes["name"] = ts.name  # as stored in the file
+    changes["name"] = ts.name if "name" in tracers else None  # as stored, or made from ROW when asked
     kind = changes["excess_kind"]
     if kind not in ("A_V", "E(B-V)") and kind.startswith("E("):  # the colour, for TracerSet.with_law
         from .bands import parse_excess_name

@@ -451,7 +451,9 @@ def model_state(model):
     params = {k: getattr(model, k) for k in _STATE_PARAMS}
     params["sky_passes"] = [int(p) for p in np.atleast_1d(model.sky_passes)]
     t = model.tracers_
-    tracers = {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")}
+    tracers = {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err")}
+    if getattr(t, "__dict__", {}).get("names_of", True) is not None:  # names given (not made from row numbers)
+        tracers["name"] = np.asarray(t.name)
     for k in ("excess", "excess_err", "temperature"):
         v = getattr(t, k, None)
         if v is not None:

@@ -8,9 +8,14 @@ not grow with the catalogue.
 How the build runs
 ------------------
 Pass 1 (sample)
-    Every chunk is read and validated with the same rules as
-    :func:`dustkit.tracers.read_tracers` (rows are rejected, counted by reason and reported
-    once with a :class:`~dustkit.exceptions.RowsRejectedWarning`). A deterministic uniform
+    Every chunk is read by the code of :func:`dustkit.tracers.read_tracers`
+    (``dustkit.tracers.assemble.build_tracers``: column recognition, units and the kpc check,
+    true/apparent moduli, parallax prior distances, correlations, error floors, rejections,
+    duplicates merged within the chunk); rows rejected and merged are counted by reason and
+    the reader's warnings said once for the whole catalogue (counts summed). Exact copies in
+    different chunks are found by a 64-bit hash of their input rows and counted once (rows
+    of the same name in different chunks are not merged). Local builds of at most
+    ``CACHE_ROWS`` rows keep each chunk's checked arrays for pass 2. A deterministic uniform
     random sample is kept: the rows with the smallest values of a 64-bit hash of their row
     number (a "bottom-k" sample, which merges exactly across chunks and workers). The
     smooth dust layer is fitted to the sample (``layer_sample`` rows). Catalogues of at
@@ -61,18 +66,20 @@ import functools
 import os
 import time
 import warnings
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 from astropy import units as u
 
-from .exceptions import AssumptionWarning, CatalogError, RowsRejectedWarning
+from .exceptions import CatalogError, DuplicatesWarning, RowsRejectedWarning
 from ._lib.formats import CHUNKED_FORMATS, format_for
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
-from .tracers.rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law, chunk_reasons, validate_rows
+from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_copies, drop_from_sample,
+                              fit_arrays)
+from .tracers.rules import (DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, DUPLICATE_SEPARATION_ARCSEC,
+                            PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, check_duplicates, check_law)
 from .binned.folds import HeldOut, fold_of_positions, fold_of_rows, row_hash, seed_of
 from .binned.statistics import Statistics, nominal_statistics
 from .model import ExtinctionModel
@@ -80,7 +87,7 @@ from .model import ExtinctionModel
 __all__ = ["build_from_parquet", "build_from_fits", "fold_of_rows", "DEFAULT_COLUMNS", "OUT_OF_CORE_ROWS",
            "build_path"]
 
-#: Column names read by default (our names -> names in the file); override with ``columns=``.
+#: The plain A_V catalogue's column names (recognised like any other by the reader's rules).
 DEFAULT_COLUMNS = {
     "l": "l",
     "b": "b",
@@ -89,13 +96,13 @@ DEFAULT_COLUMNS = {
     "av": "av",
     "av_err": "av_err",
 }
-_ROLES = tuple(DEFAULT_COLUMNS)
-_UNITS = {"l": u.deg, "b": u.deg, "distance": u.pc, "distance_err": u.pc, "av": u.mag, "av_err": u.mag}
+#: Local (threaded) builds of at most this many rows keep each chunk's checked arrays from pass 1
+#: for pass 2 (48 bytes a row: 0.5 GB for 10^7 rows) instead of reading and checking it twice.
+CACHE_ROWS = 20_000_000
 _LOCAL_STATS_BUDGET = 2 * 2**30  # bytes of statistics arrays held by local parallel chains
-_EXAMPLES_PER_REASON = 5
 
-# the validation rules, limits and default errors are those of read_tracers: one table in
-# dustkit.tracers.rules (validate_rows, chunk_reasons, DEFAULT_*)
+# every chunk is read by the in-memory reader's own code (dustkit.tracers.assemble.build_tracers):
+# the same recognition, units, moduli, parallax prior, rejections, default errors and duplicates
 
 
 # ----------------------------------------------------------------------------- row hashing
@@ -104,20 +111,6 @@ _EXAMPLES_PER_REASON = 5
 
 
 # ----------------------------------------------------------------------------- reading chunks
-
-@dataclass(frozen=True)
-class _Chunk:
-    """Rows ``start:stop`` of one file; ``row0`` is the catalogue row number of ``start``."""
-
-    kind: str  # "parquet" or "fits"
-    path: str
-    start: int
-    stop: int
-    row0: int
-    hdu: int = 1
-    row_groups: tuple = ()
-    group_start: int = 0  # first row of row_groups[0] within the file
-
 
 def _find_files(source):
     """Sorted list of (kind, path) for a file or a folder of Parquet files."""
@@ -136,41 +129,18 @@ def _find_files(source):
     return [(format_for(p, "chunked"), str(p))]
 
 
-def _resolve(names, columns, where):
-    """Map our column roles to the file's column names (case-insensitive)."""
-    lower = {}
-    for n in names:
-        lower.setdefault(n.lower(), n)
-    out = {}
-    for role in _ROLES:
-        want = columns[role]
-        got = want if want in names else lower.get(str(want).lower())
-        if got is None:
-            raise CatalogError(
-                f"Column {want!r} (for {role}) is missing from {where}; it has {', '.join(map(repr, names))}. "
-                f"Hint: pass columns={{'{role}': '<name in the file>'}}."
-            )
-        out[role] = got
-    return out
-
-
-def _plan(files, chunk_size, columns, hdu):
-    """Chunks of every file, the column names in each file, and the unit factors."""
+def _plan(files, chunk_size, hdu):
+    """Chunks of every file and the total row count."""
     import pyarrow.parquet as pq
 
     chunks = []
     row0 = 0
-    colmaps = {}
-    scales = {}
     for kind, path in files:
         if kind == "parquet":
             try:
                 pf = pq.ParquetFile(path)
             except Exception as exc:  # pyarrow raises several types for a bad file
                 raise CatalogError(f"Cannot read the Parquet file {path!r}: {exc}. Hint: check the file.") from None
-            names = list(pf.schema_arrow.names)
-            colmaps[path] = _resolve(names, columns, f"the Parquet file {path!r}")
-            scales[path] = {r: 1.0 for r in _ROLES}
             md = pf.metadata
             sizes = np.array([md.row_group(i).num_rows for i in range(md.num_row_groups)], dtype=np.int64)
             starts = np.concatenate([[0], np.cumsum(sizes)])
@@ -179,7 +149,7 @@ def _plan(files, chunk_size, columns, hdu):
                 e = min(s + chunk_size, n)
                 first = int(np.searchsorted(starts, s, side="right") - 1)
                 last = int(np.searchsorted(starts, e, side="left") - 1)
-                chunks.append(_Chunk("parquet", path, s, e, row0 + s, row_groups=tuple(range(first, last + 1)),
+                chunks.append(Chunk("parquet", path, s, e, row0 + s, row_groups=tuple(range(first, last + 1)),
                                      group_start=int(starts[first])))
         else:
             from astropy.io import fits
@@ -193,133 +163,60 @@ def _plan(files, chunk_size, columns, hdu):
                 h = hl[index]
                 if not isinstance(h, (fits.BinTableHDU, fits.TableHDU)):
                     raise CatalogError(f"HDU {index} of {path!r} is not a table. Hint: pass hdu=<index of the table>.")
-                names = list(h.columns.names)
-                cmap = _resolve(names, columns, f"the FITS table {path!r}[{index}]")
-                sc = {}
-                for role, name in cmap.items():
-                    unit = h.columns[name].unit
-                    sc[role] = 1.0
-                    if unit:
-                        try:
-                            sc[role] = float(u.Unit(unit, parse_strict="silent").to(_UNITS[role]))
-                        except (ValueError, TypeError, u.UnitsError):
-                            try:
-                                sc[role] = float(u.Unit(str(unit).strip().lower()).to(_UNITS[role]))
-                            except (ValueError, TypeError, u.UnitsError):
-                                raise CatalogError(
-                                    f"Column {name!r} in {path!r} has unit {unit!r}, which is not convertible to "
-                                    f"{_UNITS[role]}. Hint: fix the unit or map another column with columns=."
-                                ) from None
                 n = int(h.header.get("NAXIS2", 0))
-            colmaps[path] = cmap
-            scales[path] = sc
             for s in range(0, n, chunk_size):
-                chunks.append(_Chunk("fits", path, s, min(s + chunk_size, n), row0 + s, hdu=int(index)))
+                chunks.append(Chunk("fits", path, s, min(s + chunk_size, n), row0 + s, hdu=int(index)))
         row0 += n
-    return chunks, colmaps, scales, row0
-
-
-def _read_chunk(chunk, colmap, scale):
-    """The six columns of a chunk as float64 arrays in deg, pc, mag (NaN for nulls)."""
-    n = chunk.stop - chunk.start
-    if chunk.kind == "parquet":
-        import pyarrow.parquet as pq
-
-        pf = pq.ParquetFile(chunk.path)
-        names = [colmap[r] for r in _ROLES]
-        parts = {r: [] for r in _ROLES}
-        pos = chunk.group_start
-        for batch in pf.iter_batches(batch_size=min(max(n, 1024), 262_144), row_groups=list(chunk.row_groups),
-                                     columns=names, use_threads=False):
-            lo = max(chunk.start - pos, 0)
-            hi = min(chunk.stop - pos, batch.num_rows)
-            pos += batch.num_rows
-            if hi <= lo:
-                if pos >= chunk.stop:
-                    break
-                continue
-            sub = batch.slice(lo, hi - lo)
-            for r, name in zip(_ROLES, names):
-                col = sub.column(name)
-                vals = np.asarray(col.to_numpy(zero_copy_only=False), dtype=float)
-                if col.null_count:
-                    vals = np.where(np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool), np.nan, vals)
-                parts[r].append(vals)
-            if pos >= chunk.stop:
-                break
-        out = {r: (np.concatenate(parts[r]) if parts[r] else np.zeros(0)) for r in _ROLES}
-    else:
-        from astropy.io import fits
-
-        with fits.open(chunk.path, memmap=True) as hl:
-            # slice the rows first: only this chunk is read (and scaled, for TSCAL columns)
-            data = hl[chunk.hdu].data[chunk.start:chunk.stop]
-            out = {}
-            for r in _ROLES:
-                col = data.field(colmap[r])
-                vals = np.array(col, dtype=float)
-                mask = getattr(col, "mask", None)
-                if mask is not None and np.any(mask):
-                    vals[np.asarray(mask, bool)] = np.nan
-                out[r] = vals
-            del data
-    for r in _ROLES:
-        if scale[r] != 1.0:
-            out[r] = out[r] * scale[r]
-        if out[r].size != n:
-            raise CatalogError(f"Read {out[r].size} rows instead of {n} from {chunk.path!r}; the file changed during the build?")
-    return out
+    return chunks, row0
 
 
 # ----------------------------------------------------------------------------- validation
 
-def _rejection_record(code, a, chunk, colmap, n_reasons):
-    """Counts by reason and a few examples (file, row, column, value) of rejected rows."""
-    counts = np.bincount(code[code >= 0], minlength=n_reasons).astype(np.int64)
-    examples = []
-    reasons = chunk_reasons(colmap)
-    for k in np.nonzero(counts)[0]:
-        role = reasons[k][0]
-        for i in np.nonzero(code == k)[0][:_EXAMPLES_PER_REASON]:
-            examples.append((chunk.path, int(chunk.start + i), reasons[k][1], colmap[role], float(a[role][i])))
-    return counts, examples
+_NOTES_DROPPED = (RowsRejectedWarning, DuplicatesWarning)  # said once for the whole catalogue instead
 
 
-# ----------------------------------------------------------------------------- pass 1: sample
+def _pass1_link(acc, cid, chunk, reading, k, seed, cache=None):
+    """Read and check one chunk; merge its bottom-k rows (by row hash) into the running sample.
 
-def _pass1_link(acc, cid, chunk, colmap, scale, k, seed, rv):
-    """Validate one chunk and merge its bottom-k rows (by row hash) into the running sample."""
-    a = _read_chunk(chunk, colmap, scale)
-    code, clean = validate_rows(a, rv)
-    keep = np.nonzero(code < 0)[0]
-    file_row = chunk.row0 + keep  # catalogue row number (before rejection)
+    With a ``cache`` (a dict shared by the local threads) the chunk's fit arrays are kept for
+    pass 2, which then neither reads nor checks the chunk again."""
+    f, notes, hashes = chunk_tracers(chunk, reading, hashes=reading["duplicates"] == "merge")
+    file_row = chunk.row0 + np.asarray(f["row"], np.int64)  # catalogue row number of each tracer
     key = row_hash(file_row, seed, 1)
-    if key.size > k:
-        sel = np.argpartition(key, k - 1)[:k]
-    else:
-        sel = np.arange(key.size)
-    n_reasons = len(chunk_reasons(colmap))
-    counts, examples = _rejection_record(code, a, chunk, colmap, n_reasons)
+    sel = np.argpartition(key, k - 1)[:k] if key.size > k else np.arange(key.size)
+    arrays = fit_arrays(f)
+    if cache is not None:
+        cache.arrays[chunk.row0] = arrays
     part = {
         "key": key[sel],
         "file_row": file_row[sel],
         "chunk": np.full(sel.size, cid, dtype=np.int64),
-        "local": sel.astype(np.int64),  # position among the chunk's accepted rows
-        "data": np.stack([c[sel] for c in clean]),
+        "local": sel.astype(np.int64),  # position among the chunk's tracers
+        "data": np.stack([c[sel] for c in arrays]),
     }
     if acc is None:
-        acc = {"sample": None, "valid": {}, "rows": 0, "counts": {}, "examples": [], "defaults": {}}
-    acc["valid"][cid] = int(keep.size)
-    for role in ("distance_err", "av_err"):  # missing or zero errors that took the default
-        v = a[role][keep]
-        acc["defaults"][role] = acc["defaults"].get(role, 0) + int(np.count_nonzero(~(np.isfinite(v) & (v > 0))))
+        acc = {"sample": None, "valid": {}, "rows": 0, "counts": {}, "examples": [], "notes": [],
+               "assumptions": [], "hashes": {}, "merged": 0, "dup_rows": 0, "dup_groups": 0, "meta": None}
+    meta = f["meta"]
+    acc["valid"][cid] = int(key.size)
+    acc["hashes"][cid] = hashes if hashes is not None else np.zeros(0, np.uint64)
     acc["rows"] += chunk.stop - chunk.start
-    for j in np.nonzero(counts)[0]:
-        reason = chunk_reasons(colmap)[j][1]
-        acc["counts"][reason] = acc["counts"].get(reason, 0) + int(counts[j])
+    acc["merged"] += int(meta.get("n_merged", 0))
+    dup = f["duplicates"]
+    acc["dup_rows"] += len(dup)
+    acc["dup_groups"] += int(np.unique(np.asarray(dup["group"])).size) if len(dup) else 0
+    for r, c in meta["rejected_by_reason"].items():
+        acc["counts"][r] = acc["counts"].get(r, 0) + int(c)
+    rej = f["rejected"]
     room = 50 - len(acc["examples"])
-    if room > 0:
-        acc["examples"].extend(examples[:room])
+    if room > 0 and len(rej):
+        acc["examples"].extend((chunk.path, int(chunk.start + r["row"]), str(r["reason"]), str(r["column"]),
+                                str(r["value"])) for r in rej[:room])
+    acc["notes"].extend((cid, cls, msg) for cls, msg in notes if not issubclass(cls, _NOTES_DROPPED))
+    acc["assumptions"].extend(a for a in meta["assumptions"] if a not in acc["assumptions"])
+    if acc["meta"] is None:
+        acc["meta"] = {key_: meta[key_] for key_ in ("columns",) if key_ in meta}
+        acc["kind"] = (f["excess_kind"], f["distance_kind"], f["law"], f["rv"])
     acc["sample"] = _merge_samples(acc["sample"], part, k)
     return acc
 
@@ -351,12 +248,14 @@ def _combine(accs, merge):
 
 def _pass1_merge(k, out, a):
     out["valid"].update(a["valid"])
-    for r, c in a["defaults"].items():
-        out["defaults"][r] = out["defaults"].get(r, 0) + c
-    out["rows"] += a["rows"]
+    out["hashes"].update(a["hashes"])
+    for name in ("rows", "merged", "dup_rows", "dup_groups"):
+        out[name] += a[name]
     for r, c in a["counts"].items():
         out["counts"][r] = out["counts"].get(r, 0) + c
     out["examples"] = (out["examples"] + a["examples"])[:50]
+    out["notes"] = out["notes"] + a["notes"]
+    out["assumptions"].extend(x for x in a["assumptions"] if x not in out["assumptions"])
     out["sample"] = _merge_samples(out["sample"], a["sample"], k)
 
 
@@ -366,15 +265,24 @@ def _pass1_combine(k, *accs):
 
 # ----------------------------------------------------------------------------- pass 2: sums
 
-def _pass2_link(acc, chunk, colmap, scale, offset, grid, layer, n_folds, seed, rv, held):
+def _pass2_link(acc, chunk, reading, offset, grid, layer, n_folds, seed, held, drop, cached=None):
     """Add one chunk's tracers to the statistics (all tracers, held-out folds) and the counts.
 
-    ``held`` is None for K-fold cross-validation (every row in a fold from its row number),
-    else the sorted positions of the held-out rows among the accepted rows.
+    The chunk is read and checked exactly as in pass 1; ``drop`` (positions among its tracers)
+    are exact copies of tracers of earlier chunks. ``held`` is None for K-fold cross-validation
+    (every row in a fold from its position), else the sorted positions of the held-out rows
+    among the accepted rows of the catalogue.
     """
-    a = _read_chunk(chunk, colmap, scale)
-    _, (l, b, d, de, av, ae) = validate_rows(a, rv)
-    del a
+    if cached is not None and chunk.row0 in cached.arrays:
+        l, b, d, de, av, ae = cached.arrays.pop(chunk.row0)  # pass 1's arrays of this chunk
+    else:
+        f, _, _ = chunk_tracers(chunk, reading)
+        l, b, d, de, av, ae = fit_arrays(f)
+        del f
+    if drop is not None and drop.size:
+        keep = np.ones(l.size, dtype=bool)
+        keep[drop] = False
+        l, b, d, de, av, ae = (x[keep] for x in (l, b, d, de, av, ae))
     if acc is None:
         shape = (grid.npix, grid.n_edges)
         acc = (np.zeros((5,) + shape), np.zeros((5, n_folds if held is None else 1) + shape),
@@ -504,6 +412,17 @@ def build_from_parquet(
     rv=3.1,
     hdu=None,
     quiet=None,
+    distance_unit=None,
+    distance_modulus_kind=None,
+    parallax_zero_point=0 * u.mas,
+    parallax_err_floor=PARALLAX_ERR_FLOOR * u.mas,
+    parallax_length_scale=PARALLAX_LENGTH_SCALE * u.kpc,
+    default_distance_frac_err=DEFAULT_DISTANCE_FRAC_ERR,
+    default_excess_err=DEFAULT_EXCESS_ERR,
+    reject_limits=None,
+    excess_color=None,
+    duplicates="merge",
+    duplicate_separation=DUPLICATE_SEPARATION_ARCSEC * u.arcsec,
     **model_params,
 ):
     """Build an extinction model from a catalogue larger than memory, chunk by chunk.
@@ -514,9 +433,10 @@ def build_from_parquet(
         A Parquet file, a folder of Parquet files (read recursively, in sorted path order),
         or a FITS table (read through a memory map).
     columns : dict, optional
-        Our column names -> the file's: keys among ``l``, ``b`` (Galactic, deg),
-        ``distance``, ``distance_err`` (pc), ``av``, ``av_err`` (mag). Parquet columns carry
-        no units and are taken in these units; FITS columns with a ``TUNIT`` are converted.
+        Explicit role -> column mapping, as for :func:`dustkit.tracers.read_tracers` (whose
+        column recognition, units, moduli, parallaxes and rejection rules every chunk goes
+        through). Parquet columns carry no units (a bare distance is taken as pc unless its
+        median says kpc, which stops the build); FITS columns with a ``TUNIT`` are converted.
     chunk_size : int
         Rows read and processed at a time (memory per parallel task grows with it).
     client : distributed.Client, optional
@@ -537,6 +457,11 @@ def build_from_parquet(
         FITS HDU of the table (default: the first binary table).
     quiet : bool, optional
         Hide progress bars (default: shown on a terminal only).
+    distance_unit, distance_modulus_kind, parallax_zero_point, parallax_err_floor, parallax_length_scale, \
+default_distance_frac_err, default_excess_err, reject_limits, excess_color, duplicates, duplicate_separation
+        As for :func:`dustkit.tracers.read_tracers`. Duplicates are merged within a chunk by
+        the reader's rules; exact copies in different chunks are found by a 64-bit hash of
+        their values and counted once.
     **model_params
         :class:`~dustkit.model.ExtinctionModel` parameters: ``nside``, ``distance_max``,
         ``distance_step``, ``distance_edges``, ``ordering``, ``n_folds``, ``sky_passes``,
@@ -564,7 +489,11 @@ def build_from_parquet(
     if layer is not None and not isinstance(layer, DustLayer):
         raise param_error("layer", "a DustLayer (e.g. another model's layer_)", type(layer).__name__)
     law, rv = check_law(law, float(rv))
-    cols = _columns(columns)
+    reading = _reading(columns, law, rv, duplicates, distance_unit=distance_unit,
+                       parallax_zero_point=parallax_zero_point, default_distance_frac_err=default_distance_frac_err,
+                       default_excess_err=default_excess_err, reject_limits=reject_limits, excess_color=excess_color,
+                       distance_modulus_kind=distance_modulus_kind, parallax_err_floor=parallax_err_floor,
+                       parallax_length_scale=parallax_length_scale, duplicate_separation=duplicate_separation)
 
     model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
     grid = model.make_grid()
@@ -572,32 +501,35 @@ def build_from_parquet(
     n_folds = check_int("n_folds", model.n_folds, 2, 50)
 
     files = _find_files(path_or_folder)
-    chunks, colmaps, scales, n_rows = _plan(files, chunk_size, cols, hdu)
+    chunks, n_rows = _plan(files, chunk_size, hdu)
     if not chunks:
         raise CatalogError(f"{os.fspath(path_or_folder)!r} has no rows; nothing to build from.")
     stats_bytes = 5 * (1 + n_folds) * grid.npix * grid.n_edges * 8
     n_chains = _n_chains(client, stats_bytes, len(chunks))
 
-    # pass 1: validate, count, sample
+    # pass 1: read and check (the reader's rules), count, sample
     lap = _Clock()
     k = max(layer_sample, heldout_sample)
+    # local builds of up to CACHE_ROWS rows keep pass 1's arrays for pass 2 (48 bytes a row)
+    cache = ChunkCache() if client is None and n_rows <= CACHE_ROWS else None
     p1 = _run_chains(
         _pass1_link, functools.partial(_pass1_combine, k), chunks,
-        lambda i, ch: (i, ch, colmaps[ch.path], scales[ch.path], k, seed, rv),
+        lambda i, ch: (i, ch, reading, k, seed, cache),
         n_chains, client, "reading and sampling (pass 1 of 2)", quiet, "sample",
     )
     lap("pass 1 (read, validate, sample)")
-    valid = np.array([p1["valid"][i] for i in range(len(chunks))], dtype=np.int64)
-    offsets = np.concatenate([[0], np.cumsum(valid)])
+    cached = cache
+    drops, n_copies, offsets = _accepted(p1, len(chunks), duplicates)
     n_used = int(offsets[-1])
-    n_rejected = n_rows - n_used
+    n_rejected = int(sum(p1["counts"].values()))
+    n_merged = int(p1["merged"]) + n_copies
     if n_used < 10:
         raise CatalogError(
             f"A model needs at least 10 tracers; {os.fspath(path_or_folder)!r} has {n_used} usable rows of {n_rows}"
             + (f" (rejected: {_reason_text(p1['counts'])})" if n_rejected else "")
             + ". Hint: check the columns (columns={...}) and their units."
         )
-    filled = _announce(p1, n_rows - n_used, n_rows, files, cols, rv)
+    filled = _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates)
     k_fold = n_used <= heldout_sample
     layer_rows, held_rows, gidx_sorted, data, file_row = _sample_rows(
         p1["sample"], offsets, layer_sample, n_used if k_fold else min(heldout_sample, n_used // n_folds))
@@ -611,46 +543,64 @@ def build_from_parquet(
     # pass 2: sufficient statistics, chunk by chunk
     sums = _run_chains(
         _pass2_link, _pass2_combine, chunks,
-        lambda i, ch: (ch, colmaps[ch.path], scales[ch.path], int(offsets[i]), grid, layer, n_folds, seed, rv,
-                       None if k_fold else held_rows),
+        lambda i, ch: (ch, reading, int(offsets[i]), grid, layer, n_folds, seed, None if k_fold else held_rows,
+                       drops.get(i), cached),
         n_chains, client, "accumulating tracers (pass 2 of 2)", quiet, "stats",
     )
     lap("pass 2 (sufficient statistics)")
 
     # finish exactly as in memory, on the held-out rows
-    held_data = data[:, np.searchsorted(gidx_sorted, held_rows)]
-    held_fold = (fold_of_positions(held_data[0], held_data[1], held_data[2], n_folds, seed) if k_fold
-                 else np.zeros(held_rows.size, dtype=np.int64))
-    heldout = HeldOut(*held_data, held_fold)
-    plan = model.fit_plan(n_used)
-    rng = np.random.default_rng(model.random_state)
-    statistics = Statistics(*sums)
-    del sums
-    model.fit_statistics(statistics, layer, heldout, plan, rng=rng, tracers=layer_set)
+    _finish(model, sums, layer, data[:, np.searchsorted(gidx_sorted, held_rows)], k_fold, n_folds, seed, n_used,
+            layer_set)
     lap("finish (cross-validation, calibration, isotonic)")
     if isinstance(getattr(layer_set, "meta", None), dict):
-        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows),
-                               "sample_of": n_used})
+        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows), "sample_of": n_used})
     model.build_info_ = {
-        "source": os.fspath(path_or_folder),
-        "files": [p for _, p in files],
-        "n_rows": int(n_rows),
-        "n_used": n_used,
-        "n_rejected": int(n_rejected),
-        "rejected_by_reason": dict(p1["counts"]),
-        "default_errors": filled,
-        "rejected_examples": _examples_table(p1["examples"]),
-        "chunk_size": chunk_size,
-        "n_chunks": len(chunks),
-        "n_parallel": n_chains,
-        "layer_sample": int(layer_rows.size),
-        "heldout_sample": int(held_rows.size),
-        "heldout_rows": held_rows,
-        "layer_given": layer_given,
-        "scheduler": "distributed" if client is not None else "threads",
+        "source": os.fspath(path_or_folder), "files": [p for _, p in files], "n_rows": int(n_rows),
+        "n_used": n_used, "n_rejected": int(n_rejected), "n_merged": n_merged, "cross_chunk_copies": n_copies,
+        **_reading_info(p1, filled),
+        "chunk_size": chunk_size, "n_chunks": len(chunks), "n_parallel": n_chains,
+        "layer_sample": int(layer_rows.size), "heldout_sample": int(held_rows.size), "heldout_rows": held_rows,
+        "layer_given": layer_given, "scheduler": "distributed" if client is not None else "threads",
         "seconds": lap.seconds,
     }
     return model
+
+
+def _finish(model, sums, layer, held_data, k_fold, n_folds, seed, n_used, layer_set):
+    """Finish exactly as in memory (the model's public seam), on the held-out rows ``held_data``."""
+    held_fold = (fold_of_positions(held_data[0], held_data[1], held_data[2], n_folds, seed) if k_fold
+                 else np.zeros(held_data.shape[1], dtype=np.int64))
+    rng = np.random.default_rng(model.random_state)
+    model.fit_statistics(Statistics(*sums), layer, HeldOut(*held_data, held_fold), model.fit_plan(n_used), rng=rng,
+                         tracers=layer_set)
+
+
+def _accepted(p1, n_chunks, duplicates):
+    """Exact copies across chunks (dropped from the sample), their count, and each chunk's first
+    position among the accepted rows."""
+    drops = cross_chunk_copies(p1["hashes"], n_chunks) if duplicates == "merge" else {}
+    drop_from_sample(p1["sample"], drops)
+    valid = np.array([p1["valid"][i] - (drops[i].size if i in drops else 0) for i in range(n_chunks)], dtype=np.int64)
+    return drops, int(sum(x.size for x in drops.values())), np.concatenate([[0], np.cumsum(valid)])
+
+
+def _reading_info(p1, filled):
+    """What the reading of the chunks found, for ``build_info_``."""
+    return {
+        "rejected_by_reason": dict(p1["counts"]),
+        "duplicate_rows": int(p1["dup_rows"]),
+        "duplicate_groups": int(p1["dup_groups"]),
+        "assumptions": list(p1["assumptions"]),
+        "columns": dict((p1.get("meta") or {}).get("columns", {})),
+        "default_errors": filled,
+        "rejected_examples": _examples_table(p1["examples"]),
+    }
+
+
+def _reading(columns, law, rv, duplicates, **options):
+    """The keyword arguments of ``build_tracers`` for every chunk (checked)."""
+    return dict(columns=columns, law=law, rv=rv, duplicates=check_duplicates(duplicates), **options)
 
 
 class _Clock:
@@ -694,18 +644,11 @@ def _check_model_params(model_params):
         )
 
 
-def _columns(columns):
-    """Our column roles -> the file's names: the defaults updated by ``columns`` (checked)."""
-    cols = dict(DEFAULT_COLUMNS)
-    if columns is not None:
-        if not isinstance(columns, dict) or set(columns) - set(_ROLES):
-            raise param_error("columns", f"a dict with keys among {', '.join(_ROLES)}", columns)
-        cols.update(columns)
-    return cols
+def _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates):
+    """Say once what the chunks' reads said (assumptions summed over chunks), the rejected rows and the
+    duplicates; return the rows that took a default error, by column."""
+    import re
 
-
-def _announce(p1, n_rejected, n_rows, files, cols, rv):
-    """Warn once about rejected rows, unit assumptions and default errors; return the defaults used by role."""
     if n_rejected:
         warnings.warn(
             f"{n_rejected} of {n_rows} rows rejected: {_reason_text(p1['counts'])}. "
@@ -713,25 +656,34 @@ def _announce(p1, n_rejected, n_rows, files, cols, rv):
             RowsRejectedWarning,
             stacklevel=3,
         )
-    if any(kind == "parquet" for kind, _ in files):
+    if n_merged:
         warnings.warn(
-            "Parquet columns carry no units: took l and b in deg, distance and distance_err in pc, "
-            "av and av_err in mag. Hint: convert the columns before the build if they are in other units.",
-            AssumptionWarning,
+            f"{p1['dup_rows']} rows are duplicates within their chunks, in {p1['dup_groups']} groups, and {n_copies} "
+            f"rows exact copies of rows of earlier chunks: {n_merged} rows merged away (duplicates='merge'; within "
+            "a chunk by the reader's rules, across chunks by a hash of the values).",
+            DuplicatesWarning,
             stacklevel=3,
         )
-    filled = {r: c for r, c in p1["defaults"].items() if c}
-    if filled:
-        warnings.warn(
-            "; ".join(
-                f"{c} rows have a missing or zero {r!s} ({cols[r]!r}); used "
-                + (f"{100 * DEFAULT_DISTANCE_FRAC_ERR:g}% of the distance" if r == "distance_err"
-                   else f"{rv * DEFAULT_EXCESS_ERR:.3g} mag")
-                for r, c in filled.items()
-            ) + " (the defaults of read_tracers).",
-            AssumptionWarning,
-            stacklevel=3,
-        )
+    # the chunks' notes: the same message once; messages starting with a count, summed
+    # (other numbers, such as a chunk's median distance, are the first chunk's)
+    summed, first, order = {}, {}, []
+    for _, cls, msg in p1["notes"]:
+        m = re.match(r"(\d+) (.*)", msg, re.S)
+        rest = m.group(2) if m else msg
+        key = (cls, bool(m), re.sub(r"[-+]?\d[\d.e+-]*", "#", rest))
+        if key not in summed:
+            summed[key], first[key] = 0, rest
+            order.append(key)
+        if m:
+            summed[key] += int(m.group(1))
+    filled = {}
+    for key in order:
+        cls, counted, rest = key[0], key[1], first[key]
+        count = summed[key] if counted else None
+        warnings.warn(rest if count is None else f"{count} {rest}", cls, stacklevel=3)
+        m = re.match(r"rows have an empty or zero error in '(.+?)'", rest)
+        if count is not None and m:
+            filled[m.group(1)] = filled.get(m.group(1), 0) + count
     return filled
 
 
@@ -767,7 +719,7 @@ def _reason_text(counts):
 def _examples_table(examples):
     from astropy.table import Table
 
-    t = Table(names=("file", "row", "reason", "column", "value"), dtype=(str, np.int64, str, str, float))
+    t = Table(names=("file", "row", "reason", "column", "value"), dtype=(str, np.int64, str, str, str))
     for e in examples:
         t.add_row(e)
     return t

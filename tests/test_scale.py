@@ -32,8 +32,8 @@ FIELD = DustField(
     a0=1.0, h=120.0, z_sun=20.0,
     clouds=(Cloud(30, 1, 600, 3.0, 30, 1.2), Cloud(50, -3, 1500, 2.0, 40, 0.8), Cloud(60, 2, 2500, 4.0, 40, 1.0)),
 )
-# every Parquet build announces that bare columns are taken in deg, pc and mag (checked below)
-pytestmark = pytest.mark.filterwarnings("ignore:Parquet columns carry no units:dustkit._errors.AssumptionWarning")
+# every Parquet build announces that a bare distance column is taken in pc, as read_tracers does (checked below)
+pytestmark = pytest.mark.filterwarnings("ignore:Column 'distance' has no unit:dustkit._errors.AssumptionWarning")
 
 PARAMS = dict(nside=16, distance_max=4000 * u.pc, distance_step=250 * u.pc)
 HELDOUT = 1500  # held-out rows of the cross-validation (keeps the calibration quick)
@@ -165,6 +165,7 @@ def test_fits_table_in_chunks_with_units(catalogue, chunked, tmp_path):
     t = Table.from_pandas(df)
     t["distance"] = t["distance"] / 1000.0  # kpc, declared with TUNIT: converted to pc
     t["distance"].unit = u.kpc
+    t["distance_err"].unit = u.pc  # (an error column without a unit takes its value column's, as read_tracers reads it)
     t.rename_column("av", "A_V")
     t.write(tmp_path / "catalogue.fits")
     m = build_from_fits(tmp_path / "catalogue.fits", columns={"av": "A_V"}, chunk_size=4000,
@@ -222,8 +223,8 @@ def test_bad_rows_rejected_like_read_tracers_and_counted(tmp_path, monkeypatch):
 
     monkeypatch.setattr("dustkit.scale.progress", Bar)
     with pytest.warns(RowsRejectedWarning, match="7 of 400 rows rejected"), \
-            pytest.warns(AssumptionWarning, match="1 rows have a missing or zero distance_err"), \
-            pytest.warns(AssumptionWarning, match="Parquet columns carry no units"):
+            pytest.warns(AssumptionWarning, match="1 rows have an empty or zero error in 'distance_err'"), \
+            pytest.warns(AssumptionWarning, match="Column 'distance' has no unit; assuming the distances are in pc"):
         m = build_from_parquet(tmp_path / "bad.parquet", chunk_size=150, quiet=False, sky_passes=(0, 1), **PARAMS)
     # progress is reported per chunk (400 rows in 150-row chunks), for both passes
     assert [(b.desc, b.total, b.n) for b in bars] == [
@@ -249,9 +250,10 @@ def test_folds_from_row_numbers():
 
 def test_clear_errors(catalogue, tmp_path):
     _, df, folder = catalogue
-    with pytest.raises(CatalogError, match=r"Column 'av_err' \(for av_err\) is missing.*columns="):
-        df.drop(columns="av_err").iloc[:100].to_parquet(tmp_path / "noerr.parquet")
-        build_from_parquet(tmp_path / "noerr.parquet", quiet=True)
+    # the chunks are read by read_tracers' rules: the same error for a file without a reddening column
+    with pytest.raises(CatalogError, match=r"No reddening column found in .*noav.parquet.*columns="):
+        df.drop(columns=["av", "av_err"]).iloc[:100].to_parquet(tmp_path / "noav.parquet")
+        build_from_parquet(tmp_path / "noav.parquet", quiet=True)
     with pytest.raises(ParameterError, match="The 'uncertainty' parameter must be 'bin-scatter'"):
         build_from_parquet(folder, uncertainty="monte-carlo", quiet=True)
     with pytest.raises(ParameterError, match="The 'chunk_size' parameter must be an integer"):
@@ -263,3 +265,43 @@ def test_clear_errors(catalogue, tmp_path):
         build_from_parquet(tmp_path / "empty", quiet=True)
     with pytest.raises(CatalogError, match="No such file or folder"):
         build_from_parquet(tmp_path / "missing", quiet=True)
+
+
+def test_chunked_build_reads_like_read_tracers(tmp_path):
+    # one small catalogue of parallaxes and E(B-V), read in memory and in 100-row chunks: the same rows
+    # accepted, rejected and merged, the same assumptions, the same prior-based distances
+    # (Bailer-Jones 2015 prior for every parallax, also <= 0; duplicates as the reader finds them)
+    rng = np.random.default_rng(11)
+    n = 300
+    df = pd.DataFrame({"name": [f"C{i}" for i in range(n)], "l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "parallax": rng.uniform(0.3, 2.0, n), "parallax_err": rng.uniform(0.02, 0.1, n),
+                       "ebv": rng.uniform(0.1, 1.0, n), "ebv_err": rng.uniform(0.02, 0.05, n)})
+    df.loc[5, "l"] = np.nan  # rejected
+    df.loc[150, "ebv"] = 50.0  # rejected (outside the E(B-V) limits)
+    df.loc[40, "parallax"] = -0.1  # kept: a distance from the prior
+    df.loc[11, "name"] = "C10"  # the same name within a chunk: merged
+    df.loc[31] = df.loc[30]  # an exact copy within a chunk
+    df.loc[200:204] = df.loc[20:24].to_numpy()  # exact copies of rows of another chunk
+    df.to_parquet(tmp_path / "cat.parquet", row_group_size=64)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "cat.parquet")
+        m = build_from_parquet(tmp_path / "cat.parquet", chunk_size=100, quiet=True, **PARAMS)
+    info = m.build_info_
+    assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (len(ts), len(ts.rejected), ts.meta["n_merged"])
+    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (291, 2, 7)
+    assert info["n_used"] + info["n_rejected"] + info["n_merged"] == n and info["cross_chunk_copies"] == 5
+    assert info["rejected_by_reason"] == ts.meta["rejected_by_reason"]
+    assert set(info["assumptions"]) == set(ts.meta["assumptions"])
+    assert any("Bailer-Jones 2015" in a for a in info["assumptions"])
+    # the catalogue is smaller than the sample: the model's tracers are all of them, with the same distances
+    np.testing.assert_allclose(np.sort(m.tracers_.distance), np.sort(ts.distance), rtol=1e-12)
+    # the reader's refusals stop a chunked build too: kpc without a unit, a modulus that does not say which
+    kpc = pd.DataFrame({"l": df["l"].fillna(30.0), "b": df["b"], "distance": rng.uniform(0.5, 3.0, n),
+                        "av": df["ebv"].clip(upper=1.0) * 3.1})
+    kpc.to_parquet(tmp_path / "kpc.parquet")
+    with pytest.raises(CatalogError, match="distance_unit='kpc'"):
+        build_from_parquet(tmp_path / "kpc.parquet", chunk_size=100, quiet=True, **PARAMS)
+    kpc.rename(columns={"distance": "dm"}).assign(dm=lambda x: 10 + x["dm"]).to_parquet(tmp_path / "dm.parquet")
+    with pytest.raises(CatalogError, match="distance_modulus_kind"):
+        build_from_parquet(tmp_path / "dm.parquet", chunk_size=100, quiet=True, **PARAMS)

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from astropy import units as u
 from astropy.coordinates import Angle
-from astropy.table import QTable, Table
+from astropy.table import QTable, Table, vstack
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -936,10 +936,12 @@ def test_exact_copies_are_merged_without_shrinking_errors():
     np.testing.assert_allclose(ts.distance_err, [100.0, 200.0, 300.0])
     assert set(ts.duplicates["kind"]) <= {"exact"} and len(ts.duplicates) == 6
     assert "Duplicates: 6 rows in 3 groups" in ts.summary()
-    # kept on request, still reported
-    with pytest.warns(DuplicatesWarning, match="kept"):
+    # kept on request: taken as given, not searched (and so not reported)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DuplicatesWarning)
         tk = read_tracers(tt, duplicates="keep")
-    assert len(tk) == 6 and len(tk.duplicates) == 6 and np.all(tk.duplicates["merged_into"] == -1)
+    assert len(tk) == 6 and len(tk.duplicates) == 0 and tk.meta["n_merged"] == 0
+    assert "not searched" in tk.summary()
 
 
 def test_near_duplicates_merge_by_inverse_variance():
@@ -1306,3 +1308,69 @@ def test_gaia_dr2_excess_column_is_recognised():
 
     av, _ = excess_to_av(0.16, 0.02, "BP_DR2", "RP_DR2", temperature=4500 * u.K)
     assert ts.av[0] == pytest.approx(av, rel=1e-12)
+
+
+def test_crowded_field_is_not_merged_but_two_compilations_are():
+    # 40 distinct stars within 0.5 arcsec of one point (a crowded field) at distances 1000..4900 pc with
+    # 1% errors and A_V 0.5..4.4 mag +- 0.02: no two agree within 2 sigma, so none may be merged
+    # (cross-matching needs position AND measurement agreement, common practice)
+    rng = np.random.default_rng(3)
+    n = 40
+    k = np.arange(n)
+    crowd = Table({"l": 50.0 + rng.uniform(-0.3, 0.3, n) / 3600, "b": 1.0 + rng.uniform(-0.3, 0.3, n) / 3600,
+                   "dist": (1000.0 + 100.0 * k) * u.pc, "e_dist": 0.01 * (1000.0 + 100.0 * k) * u.pc,
+                   "av": 0.5 + 0.1 * k, "e_av": np.full(n, 0.02)})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DuplicatesWarning)
+        ts = _quiet_assumptions(read_tracers, crowd)
+    assert len(ts) == n and len(ts.duplicates) == 0
+    # two compilations of the same 40 clusters (positions 0.3 arcsec apart, values within errors): 40 groups of 2
+    other = crowd.copy()
+    other["l"] = other["l"] + 0.3 / 3600
+    other["dist"] = other["dist"] * 1.005
+    other["av"] = other["av"] + 0.03
+    both = vstack([crowd, other])
+    with pytest.warns(DuplicatesWarning, match=r"80 of 80 rows are duplicates in 40 groups"):
+        ts = _quiet_assumptions(read_tracers, both)
+    assert len(ts) == n and set(np.bincount(np.asarray(ts.duplicates["group"]))) == {2}
+    # every row of a group is one cluster: the k-th of each compilation
+    g = np.asarray(ts.duplicates["group"])
+    rows = np.asarray(ts.duplicates["row"])
+    order = np.lexsort((rows, g))
+    assert np.array_equal(rows[order][0::2] % n, rows[order][1::2] % n)
+    # a tolerance of 0 arcsec: only names and exact copies; the two compilations stay apart
+    assert len(_quiet_assumptions(read_tracers, both, duplicate_separation=0)) == 2 * n
+    with pytest.raises(ParameterError, match="duplicate_separation"):
+        read_tracers(both, duplicate_separation=1 * u.pc)
+
+
+def test_merged_groups_combine_correlation_and_asymmetric_errors():
+    from dustkit.tracers.duplicates import merge_groups
+
+    # two measurements of one tracer with correlated errors: with inverse-variance means A = sum(wa a)/sum(wa),
+    # D = sum(wd d)/sum(wd), cov(A, D) = sum(wa wd rho s_a s_d)/(sum wa sum wd) (error propagation, common practice)
+    sa, sd, rho = np.array([0.1, 0.2]), np.array([100.0, 50.0]), np.array([-0.8, -0.4])
+    fields = {"l": np.array([10.0, 10.0]), "b": np.array([1.0, 1.0]), "distance": np.array([1000.0, 1050.0]),
+              "distance_err": sd, "av": np.array([1.0, 1.1]), "av_err": sa, "excess": np.array([1.0, 1.1]),
+              "excess_err": sa, "av_distance_corr": rho,
+              "distance_err_low": np.array([80.0, 45.0]), "distance_err_high": np.array([120.0, 55.0])}
+    group = np.array([0, 0])
+    keep, merged, report = merge_groups(group, np.zeros(2, bool), np.zeros(2, bool), fields, np.arange(2), None)
+    wa, wd = 1 / sa**2, 1 / sd**2
+    cov = np.sum(wa * wd * rho * sa * sd) / (wa.sum() * wd.sum())
+    sig_a, sig_d = wa.sum() ** -0.5, wd.sum() ** -0.5
+    assert merged["av_distance_corr"][0] == pytest.approx(cov / (sig_a * sig_d), rel=1e-12)
+    assert merged["distance_err"][0] == pytest.approx(sig_d, rel=1e-12)
+    # asymmetric errors: the skew kept (ratios low/sigma averaged with the distance weights), low + high = 2 sigma
+    r_low = np.sum(wd * fields["distance_err_low"] / sd) / wd.sum()
+    assert merged["distance_err_low"][0] == pytest.approx(r_low * sig_d, rel=1e-12)
+    assert merged["distance_err_low"][0] + merged["distance_err_high"][0] == pytest.approx(2 * sig_d, rel=1e-12)
+    assert merged["distance_err_low"][0] < merged["distance_err_high"][0]
+    # from a catalogue: two parallaxes of one star (same name) give one tracer with the combined errors
+    t = Table({"name": ["S", "S"], "l": [10.0, 10.0], "b": [1.0, 1.0], "parallax": [0.5, 0.55] * u.mas,
+               "parallax_err": [0.1, 0.12] * u.mas, "av": [1.0, 1.1], "e_av": [0.1, 0.1]})
+    with pytest.warns(DuplicatesWarning):
+        ts = _quiet_assumptions(read_tracers, t)
+    single = _quiet_assumptions(read_tracers, t, duplicates="keep")
+    assert len(ts) == 1 and ts.distance_err_low[0] + ts.distance_err_high[0] == pytest.approx(2 * ts.distance_err[0])
+    assert ts.distance_err[0] < single.distance_err.min()

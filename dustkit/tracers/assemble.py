@@ -5,9 +5,9 @@ from astropy import units as u
 from astropy.table import MaskedColumn
 
 from ..exceptions import CatalogError, DuplicatesWarning, RowsRejectedWarning
-from .._lib.validation import check_real
+from .._lib.validation import check_real, param_error
 from .columns import DISTANCE_LIKE, KIND_LABEL, resolve_columns
-from .context import Context
+from .context import Context, empty_duplicates
 from .distances import distances
 from .duplicates import find_duplicates, merge_groups
 from .reddening import reddening
@@ -50,6 +50,7 @@ def build_tracers(
     duplicates="merge",
     source_temperature=None,
     intrinsic_color_bands=None,
+    duplicate_separation=None,
 ):
     """Validate a table of tracers: the fields of a ``TracerSet`` and the notes (warnings) to emit."""
     rv = check_real("rv", rv, 0.0, np.inf, low_inclusive=False)
@@ -68,6 +69,13 @@ def build_tracers(
         scale = scale.to_value(u.kpc)
     scale = check_real("parallax_length_scale", scale, 0.0, 1e3, low_inclusive=False)
     duplicates = check_duplicates(duplicates)
+    sep = DUPLICATE_SEPARATION_ARCSEC if duplicate_separation is None else duplicate_separation
+    if isinstance(sep, u.Quantity):
+        try:
+            sep = sep.to_value(u.arcsec)
+        except u.UnitConversionError:
+            raise param_error("duplicate_separation", "an angle such as 1 * u.arcsec", duplicate_separation) from None
+    sep = check_real("duplicate_separation", sep, 0.0, 3600.0)
     ctx = Context(table, source_desc)
     ctx.modulus_kind = kind_arg
     cols = resolve_columns(table, columns, ctx, want_reddening=True)
@@ -116,19 +124,23 @@ def build_tracers(
         per_row["name"] = kept_names
     if ctx.temperature is not None:
         per_row["temperature"] = ctx.temperature[keep]
-    group, exact, copied = find_duplicates(per_row["l"], per_row["b"], per_row["distance"], per_row["distance_err"],
-                                   per_row["av"], per_row["av_err"], kept_names)
-    sel, per_row, dup_report = merge_groups(group, exact, copied, per_row, rows, kept_names, duplicates)
+    if duplicates == "merge":  # with 'keep' no search at all: the rows are taken as given
+        group, exact, copied = find_duplicates(per_row["l"], per_row["b"], per_row["distance"],
+                                               per_row["distance_err"], per_row["av"], per_row["av_err"], kept_names,
+                                               tol_arcsec=sep)
+        sel, per_row, dup_report = merge_groups(group, exact, copied, per_row, rows, kept_names, duplicates)
+    else:
+        sel, dup_report = rows, empty_duplicates()
     n_merged = int(rows.size - sel.size)
     if len(dup_report):
         n_groups = int(np.unique(np.asarray(dup_report["group"])).size)
         n_exact = int(np.sum(np.asarray(dup_report["kind"]) == "exact"))  # rows in sets of exact copies
         what = (f"merged into {n_groups} tracers by inverse-variance means (exact copies counted once); "
-                "pass duplicates='keep' to keep them") if duplicates == "merge" else "kept (duplicates='keep')"
+                "pass duplicates='keep' to keep them")
         ctx.note(
             DuplicatesWarning,
             f"{len(dup_report)} of {n} rows are duplicates in {n_groups} groups ({n_exact} exact copies; the others "
-            f"the same name, or within {DUPLICATE_SEPARATION_ARCSEC:g} arcsec with distance and A_V within "
+            f"the same name, or within {sep:g} arcsec with distance and A_V within "
             f"{DUPLICATE_NSIGMA:g} sigma): {what}. See TracerSet.duplicates for the groups.",
         )
     ctx.n_merged = n_merged
@@ -136,6 +148,7 @@ def build_tracers(
     meta = ctx.meta(file_sha, arrays + [per_row["row"] if kept_names is None else per_row["name"]])
     meta["n_merged"] = n_merged
     meta["duplicates"] = duplicates
+    meta["duplicate_separation_arcsec"] = sep
     fields = dict(
         l=arrays[0],
         b=arrays[1],

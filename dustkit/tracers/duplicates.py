@@ -1,11 +1,15 @@
 """Duplicated tracers: exact copies of a row, and near-duplicates (the same name, or the same place
 with distance and A_V within their errors, as when two compilations are merged).
 
-Groups are found without Python loops: exact copies by sorting the rows' values; names by
-sorting the names; positions by sorting keys of four grids of cells twice the separation
-tolerance across, shifted by half a cell in latitude and in longitude, so that every pair
-closer than the tolerance in both coordinates shares a cell in at least one grid (each pair
-found is then checked exactly). Pairs are joined into groups by connected components.
+Groups are found without Python loops over tracers. Places: the rows are sorted by the keys
+of four grids of cells twice the separation tolerance across, shifted by half a cell in
+latitude and in longitude, so that every pair closer than the tolerance in both coordinates
+shares a cell in at least one grid; within a cell every pair is compared (rows ``k`` apart
+in the sorted order, for ``k = 1, 2, ...`` while any cell holds more than ``k`` rows), its
+separation checked exactly, and it is one tracer only if distance and A_V also agree within
+``nsigma`` times their combined errors. So a crowded field, many distinct stars within the
+tolerance but at different distances or reddenings, is not merged. Exact copies repeat every
+value of a close pair. Names: one sort. Pairs are joined into groups by connected components.
 """
 
 import numpy as np
@@ -22,12 +26,25 @@ __all__ = [
 ]
 
 
-def _pairs_same_key(key):
-    """Index pairs (i, j) of neighbours in the order of ``key`` that share its value."""
+def _pairs_same_key(key, all_pairs=True):
+    """Index pairs (i, j) of rows that share a value of ``key``: every pair (``all_pairs``), else
+    neighbours in sorted order only (enough where sharing a key is transitive, e.g. names)."""
     order = np.argsort(key)
     ks = key[order]
-    same = np.flatnonzero(ks[1:] == ks[:-1])
-    return order[same], order[same + 1]
+    ii, jj = [], []
+    k = 1
+    while k < ks.size:
+        same = np.flatnonzero(ks[k:] == ks[:-k])
+        if same.size == 0:
+            break
+        ii.append(order[same])
+        jj.append(order[same + k])
+        if not all_pairs:
+            break
+        k += 1
+    if not ii:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    return np.concatenate(ii), np.concatenate(jj)
 
 
 def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE_SEPARATION_ARCSEC,
@@ -43,7 +60,8 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     names : ndarray of str, optional
         Names (None: no grouping by name).
     tol_arcsec : float
-        Separation below which two tracers are at the same place, arcsec.
+        Separation below which two tracers may be at the same place, arcsec (0: only names
+        and exact copies group rows).
     nsigma : float
         Two tracers at the same place are one if distance and A_V differ by at most ``nsigma``
         times their combined error.
@@ -59,47 +77,43 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     """
     n = l.size
     ii, jj = [], []
-    # exact copies: one sort of a 64-bit hash of the six values, then neighbours compared exactly
-    cols = [np.ascontiguousarray(x, dtype=float) for x in (l, b, d, d_err, av, av_err)]
-    h = np.zeros(n, dtype=np.uint64)
-    with np.errstate(over="ignore"):
-        for k, x in enumerate(cols):
-            h ^= (x.view(np.uint64) + np.uint64(k + 1)) * np.uint64(0x9E3779B97F4A7C15)
-            h = (h << np.uint64(13)) | (h >> np.uint64(51))
-    order = np.argsort(h)
-    hs = h[order]
-    cand = np.flatnonzero(hs[1:] == hs[:-1])
-    same_pair = np.ones(cand.size, dtype=bool)
-    for x in cols:
-        same_pair &= x[order[cand]] == x[order[cand + 1]]
-    cand = cand[same_pair]
     exact = np.zeros(n, dtype=bool)
-    exact[order[cand + 1]] = True
-    copied = exact.copy()
-    copied[order[cand]] = True
-    ii.append(order[cand])
-    jj.append(order[cand + 1])
+    copied = np.zeros(n, dtype=bool)
     if names is not None:
-        i, j = _pairs_same_key(np.asarray(names))
+        i, j = _pairs_same_key(np.asarray(names), all_pairs=False)
         ii.append(i)
         jj.append(j)
-    tol = tol_arcsec / 3600.0
+    tol = max(float(tol_arcsec), 1e-6) / 3600.0  # exact copies are found even with a zero tolerance
     cell = 2.0 * tol
     cosb = np.maximum(np.cos(np.radians(b)), 1e-6)
     x = np.mod(l, 360.0) * cosb
+    ci, cj = [], []
     for sb in (0.0, 0.5):
         kb = np.floor(b / cell + sb).astype(np.int64)
         for sl in (0.0, 0.5):
             kl = np.floor(x / cell + sl).astype(np.int64)
             i, j = _pairs_same_key(kb * (1 << 31) + kl)
             if i.size:
-                sep = _separation_deg(l[i], b[i], l[j], b[j])
-                close = (sep <= tol) & (np.abs(d[i] - d[j]) <= nsigma * np.hypot(d_err[i], d_err[j])) & (
-                    np.abs(av[i] - av[j]) <= nsigma * np.hypot(av_err[i], av_err[j]))
-                ii.append(i[close])
-                jj.append(j[close])
-    i = np.concatenate(ii)
-    j = np.concatenate(jj)
+                keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
+                ci.append(i[keep])
+                cj.append(j[keep])
+    if ci:
+        i, j = np.concatenate(ci), np.concatenate(cj)
+        same = np.ones(i.size, dtype=bool)
+        for col in (l, b, d, d_err, av, av_err):
+            same &= col[i] == col[j]
+        # an exact copy repeats a row with a lower index (every pair in a cell is seen)
+        exact[np.maximum(i, j)[same]] = True
+        copied[i[same]] = True
+        copied[j[same]] = True
+        if float(tol_arcsec) <= 0:
+            i, j = i[same], j[same]
+        close = same | ((np.abs(d[i] - d[j]) <= nsigma * np.hypot(d_err[i], d_err[j])) & (
+            np.abs(av[i] - av[j]) <= nsigma * np.hypot(av_err[i], av_err[j])))
+        ii.append(i[close])
+        jj.append(j[close])
+    i = np.concatenate(ii) if ii else np.zeros(0, np.int64)
+    j = np.concatenate(jj) if jj else np.zeros(0, np.int64)
     if i.size == 0:
         return np.arange(n), exact, copied
     graph = coo_matrix((np.ones(i.size, dtype=np.int8), (i, j)), shape=(n, n))
@@ -123,7 +137,8 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
         From :func:`find_duplicates`.
     fields : dict of ndarray
         Per-tracer arrays: ``l``, ``b``, ``distance``, ``distance_err``, ``av``, ``av_err``,
-        ``excess``, ``excess_err`` and optional others (taken from the group's first row).
+        ``excess``, ``excess_err``, optionally ``av_distance_corr``, ``distance_err_low``,
+        ``distance_err_high`` (combined, see Notes) and others (taken from the group's first row).
     rows : ndarray of int
         Input row of each tracer.
     names : ndarray of str or None
@@ -145,7 +160,12 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     Exact copies are one measurement: they collapse to one row without changing its errors.
     The distinct measurements of a group are combined by inverse-variance means,
     x = sum(w x) / sum(w), sigma = sum(w)^-1/2 with w = 1 / sigma^2, for distance, A_V and the
-    excess; the position is the mean of the unit vectors.
+    excess; the position is the mean of the unit vectors. The correlation of the two means
+    follows from the same weights: rho = sum(rho_i / (sigma_AV,i sigma_d,i)) /
+    sqrt(sum w_AV sum w_d). Asymmetric distance errors (``distance_err_low``/``_high``, from
+    parallaxes) are the merged ``distance_err`` times the inverse-variance (w_d) mean of each
+    member's ratio ``low / distance_err`` (and ``high / distance_err``): the skew of the members
+    is kept and low + high = 2 ``distance_err`` still holds.
     """
     n = group.size
     counts = np.bincount(group, minlength=group.max() + 1 if n else 0)
@@ -192,6 +212,30 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     sx, sy, sz = (np.bincount(group, wpos * c, m) for c in xyz)
     lm = np.mod(np.degrees(np.arctan2(sy, sx)), 360.0)
     bm = np.degrees(np.arctan2(sz, np.hypot(sx, sy)))
+    # corr(A_V, ln d) of the two means: cov = sum(wa wd rho s_a s_d) / (sum wa sum wd), so
+    # rho = sum(rho / (s_a s_d)) / sqrt(sum wa sum wd) over the distinct measurements
+    if "av_distance_corr" in fields:
+        sa, sd = fields["av_err"], fields["distance_err"]
+        ok = use & (sa > 0) & (sd > 0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            term = np.where(ok, fields["av_distance_corr"] / (sa * sd), 0.0)
+            wa = np.where(ok, 1.0 / sa**2, 0.0)
+            wd = np.where(ok, 1.0 / sd**2, 0.0)
+            rho = np.bincount(group, term, m) / np.sqrt(np.bincount(group, wa, m) * np.bincount(group, wd, m))
+        rho = np.where(np.isfinite(rho), np.clip(rho, -1.0, 1.0), fields["av_distance_corr"][head])
+        merged["av_distance_corr"] = rho[group[keep]]
+    # asymmetric distance errors (parallaxes): the merged error times the inverse-variance mean of
+    # the members' ratios low / sigma and high / sigma, so low + high stays 2 sigma
+    if "distance_err_low" in fields and "distance_err_high" in fields:
+        s = fields["distance_err"]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = np.where(use & (s > 0), 1.0 / s**2, 0.0)
+            sw = np.bincount(group, w, m)
+            for side in ("distance_err_low", "distance_err_high"):
+                ratio = np.where(s > 0, fields[side] / s, 0.0)
+                mean = np.bincount(group, w * ratio, m) / sw
+                merged[side] = np.where(np.isfinite(mean[group[keep]]), mean[group[keep]] * merged["distance_err"],
+                                        fields[side][keep])
     merged["l"] = np.where(counts > 1, lm, fields["l"][head])[group[keep]]
     merged["b"] = np.where(counts > 1, bm, fields["b"][head])[group[keep]]
     for name in fields:

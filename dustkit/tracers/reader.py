@@ -19,6 +19,7 @@ from .distances import distances
 from .rules import (
     DEFAULT_DISTANCE_FRAC_ERR,
     DEFAULT_EXCESS_ERR,
+    DUPLICATE_SEPARATION_ARCSEC,
     PARALLAX_ERR_FLOOR,
     PARALLAX_LENGTH_SCALE,
     check_limits,
@@ -60,6 +61,7 @@ def read_tracers(
     duplicates="merge",
     source_temperature=None,
     intrinsic_color_bands=None,
+    duplicate_separation=DUPLICATE_SEPARATION_ARCSEC * u.arcsec,
 ):
     """Read a catalogue of extinction tracers into a validated :class:`TracerSet`.
 
@@ -122,6 +124,15 @@ def read_tracers(
     intrinsic_color_bands : tuple of str or str, optional
         ``(blue, red)`` bands (or ``"BP-RP"``) of an ``intrinsic_color`` column whose name
         does not say it (names like ``(BP-RP)_0`` or ``bp_rp0`` say it).
+        ``'merge'`` (default): rows that repeat a tracer (exact copies; the same name; or
+        positions within ``duplicate_separation`` with distance *and* A_V within 2 sigma of
+        their combined errors) are merged into one tracer by inverse-variance means, and the
+        groups listed in ``TracerSet.duplicates``. ``'keep'``: the rows are taken as given,
+        with no search for duplicates (and so no report).
+    duplicate_separation : Quantity['angle'] or float
+        Sky separation within which two rows may be one tracer (1 arcsec; plain numbers in
+        arcsec; 0: only names and exact copies). Distinct stars of a crowded field closer
+        than this stay apart unless their distances and A_V agree within their errors.
 
     Returns
     -------
@@ -192,6 +203,7 @@ def read_tracers(
         duplicates=duplicates,
         source_temperature=source_temperature,
         intrinsic_color_bands=intrinsic_color_bands,
+        duplicate_separation=duplicate_separation,
     )
     emit(notes)
     return TracerSet(**fields)

@@ -436,6 +436,8 @@ class TracerSet:
             how = (f"merged ({self.meta.get('n_merged', 0)} rows folded in)"
                    if self.meta.get("duplicates", "merge") == "merge" else "kept")
             lines.append(f"  Duplicates: {len(self.duplicates)} rows in {n_groups} groups, {how} (see .duplicates)")
+        elif self.meta.get("duplicates") == "keep":
+            lines.append("  Duplicates: not searched (duplicates='keep': rows taken as given)")
         if len(self.rejected):
             lines.append(f"  Rejected:  {len(self.rejected)} rows (see .rejected)")
             reasons, counts = np.unique(np.asarray(self.rejected["reason"]), return_counts=True)
