@@ -76,7 +76,9 @@ is dustkit's own. The outlier mixture follows Hogg, Bovy & Lang 2010 (arXiv:1008
 (Biometrics 30, 507).
 """
 
+from .density import DENSITY_METHOD, KIND_LOCATED, KIND_NEARER, density_features
 from .sky import detect_features, sight_line_features
 from .steps import STEP_METHOD, find_steps
 
-__all__ = ["find_steps", "sight_line_features", "detect_features", "STEP_METHOD"]
+__all__ = ["density_features", "find_steps", "sight_line_features", "detect_features", "STEP_METHOD",
+           "DENSITY_METHOD", "KIND_LOCATED", "KIND_NEARER"]
