@@ -94,7 +94,7 @@ def run(kind, seed, baseline=True):
     t_fit = time.perf_counter() - t0
     finders = {"density (defaults)": lambda: density_features(model, quiet=True)}
     if baseline:
-        finders["steps, 1-pixel cone"] = lambda: detect_features(model, quiet=True)
+        finders["steps, adaptive cone"] = lambda: detect_features(model, quiet=True)
         finders["steps, 6-deg cone"] = lambda: detect_features(model, radius=6 * u.deg, quiet=True)
     ok = testable(clouds, t)
     rows = []

@@ -244,7 +244,7 @@ def build_parser():
     p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
                    help="steps finder: least BIC improvement of a step over no step (default 10)")
     p.add_argument("--radius", type=float, metavar="DEG",
-                   help="steps finder: cone radius around each pixel centre (default: the pixel size)")
+                   help="steps finder: cone radius around each pixel centre (default: adaptive, the smallest cone holding 30 tracers, from one pixel to 6 deg)")
     p.add_argument("--detections", metavar="PIXELS.ecsv", help="steps finder: also write the per-pixel steps")
     p.add_argument("--seed", type=int, default=0, help="steps finder: seed of the bootstrap resampling (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")

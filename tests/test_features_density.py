@@ -205,3 +205,23 @@ def test_the_feature_map_is_labelled_with_units(cloudy, unseen_foreground):
     gids = [p.get_gid() for p in ax.patches]
     assert "dustkit-feature-located" in gids and "dustkit-feature-nearer" in gids
     matplotlib.pyplot.close(ax.figure)
+
+
+def test_adaptive_cones_of_the_sight_line_finder_hold_the_asked_number_of_tracers(cloudy):
+    from astropy.coordinates import SkyCoord
+
+    from dustkit.features import adaptive_radii
+
+    _, _, model = cloudy
+    tl, tb = (np.asarray(getattr(model.tracers_, k), float) for k in ("l", "b"))
+    lc, bc = model.grid_.pixel_centres(model.informed_pixels()[::25])
+    pix = model.grid_pixel_radius()
+    radii = adaptive_radii(tl, tb, lc, bc, pix, n_tracers=30, max_radius=6.0)
+    assert np.all((radii >= pix) & (radii <= 6.0))
+    # counted independently with astropy's angular separation (reference library)
+    tracers = SkyCoord(tl * u.deg, tb * u.deg, frame="galactic")
+    inner = (radii > pix) & (radii < 6.0)
+    assert inner.sum() >= 3  # ~1000 clusters over 60 x 20 deg: one-pixel cones hold 1-3, so cones widen
+    for lv, bv, r in zip(lc[inner], bc[inner], radii[inner]):
+        sep = tracers.separation(SkyCoord(lv * u.deg, bv * u.deg, frame="galactic")).deg
+        assert np.sum(sep <= r * (1 + 1e-9)) >= 30 and np.sum(sep < r * (1 - 1e-6)) < 30
