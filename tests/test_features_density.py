@@ -225,3 +225,23 @@ def test_adaptive_cones_of_the_sight_line_finder_hold_the_asked_number_of_tracer
     for lv, bv, r in zip(lc[inner], bc[inner], radii[inner]):
         sep = tracers.separation(SkyCoord(lv * u.deg, bv * u.deg, frame="galactic")).deg
         assert np.sum(sep <= r * (1 + 1e-9)) >= 30 and np.sum(sep < r * (1 - 1e-6)) < 30
+
+
+def test_features_are_labelled_on_the_face_on_map(cloudy, unseen_foreground):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from dustkit.plotting import plot_face_on
+
+    _, _, model = cloudy
+    feats = vstack([density_features(model), density_features(unseen_foreground[2])])
+    ax = plot_face_on(model, features=feats, show_tracers=False)
+    gids = [line.get_gid() for line in ax.lines]
+    assert "dustkit-face-feature" in gids and "dustkit-face-feature-nearer" in gids
+    # the located feature sits at its distance along its sight line (heliocentric X, Y in kpc)
+    r = feats[feats["kind"] == KIND_LOCATED][0]
+    x, y = next(line for line in ax.lines if line.get_gid() == "dustkit-face-feature").get_data()
+    d = r["distance"].to_value(u.kpc) * np.cos(r["b"].to_value(u.rad))
+    assert np.hypot(x[0], y[0]) == pytest.approx(d, rel=1e-9)
+    assert "[kpc]" in ax.get_xlabel()
+    matplotlib.pyplot.close(ax.figure)
