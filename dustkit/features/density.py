@@ -67,11 +67,11 @@ estimates: check them against local data before science or instrument time.
 
 Notes
 -----
-Connected-component labelling of over-threshold cells in 3-D dust maps, and measuring the
-resulting clouds, is common practice in 3-D extinction mapping (e.g. the cloud catalogues
-built on the maps of Lallement et al. 2019, A&A 625, A135); the significance against
-posterior samples and the "nearer than" rule are dustkit's own. Connected components:
-Tarjan (1972, SIAM J. Comput. 1, 146) as implemented in scipy.
+Segmenting a 3-D dust map into clouds by thresholding it and labelling connected regions is
+common practice in 3-D extinction mapping (the maps themselves: Lallement et al. 2019, A&A
+625, A135; Leike & Ensslin 2019, A&A 631, A32); the contrast against the fitted layer, the
+significance against posterior samples and the "nearer than" rule are dustkit's own.
+Connected components of a sparse graph: scipy.sparse.csgraph.
 """
 
 import numpy as np
