@@ -78,12 +78,19 @@ a0 is in mag/kpc, h and z_sun in pc.""",
   dustkit profile model.fits --l 32.5 --b -2 --radius 1.5 -o cone.pdf""",
     "features": """examples:
   dustkit features model.fits -o features.csv
-  dustkit features model.fits -o features.ecsv --min-delta-av 0.3 --detections pixels.ecsv
+  dustkit features model.fits -o features.ecsv --min-delta-av 0.3 --min-probability 0.99
+  dustkit features model.fits -o features.ecsv --finder steps --radius 6 --detections pixels.ecsv
 
-One row per dust feature (a step in A_V against distance found in neighbouring sky pixels
-at a consistent distance): feature, l, b (deg), extent (deg), distance, distance_err (pc),
-delta_av, delta_av_err, delta_av_max (mag), n_tracers, n_pixels, significance (BIC
-improvement over no step). Steps are statistical: check them against local data.""",
+On a 3-D density model (the default for cluster catalogues) features are compact
+over-densities of the model's dust density, tested against its posterior samples; no cone
+radius is needed. Columns: feature, kind ('located' or 'nearer than'), l, b (deg), extent
+(deg), extent_pc, depth (pc), distance, distance_err, distance_upper, distance_near,
+distance_far (pc), delta_av, delta_av_err, delta_av_max (mag), contrast, n_tracers,
+n_front, n_behind, n_pixels, n_cells, significance (fraction of posterior samples).
+A 'nearer than' feature has no tracer in front of it: the dust lies somewhere nearer than
+distance_upper. On a binned model (or with --finder steps) steps in A_V against distance
+are searched per sky pixel and merged (significance: BIC improvement over no step).
+Features are statistical: check them against local data.""",
     "export": """examples:
   dustkit export model.fits -o table.ecsv
   dustkit export model.fits -o table.csv
@@ -236,16 +243,24 @@ def build_parser():
     p.add_argument("-o", "--output", required=True, metavar="FIG.png", help="figure file (.png, .pdf, .svg)")
     p.add_argument("--overwrite", action="store_true", help="replace FIG if it exists")
 
-    p = sub("features", "Find dust features: steps in A_V against distance, merged across the sky.")
+    p = sub("features", "Find dust features: compact clouds in the 3-D density, or steps in A_V along sight lines.")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
     p.add_argument("-o", "--output", required=True, metavar="OUT.csv", help="feature table (.csv, .ecsv or .fits)")
+    p.add_argument("--finder", choices=("auto", "density", "steps"), default="auto",
+                   help="'density': over-densities of a 3-D density model; 'steps': steps along each pixel's "
+                        "sight line (any model); 'auto' (default): density for a density model, else steps")
     p.add_argument("--min-delta-av", type=float, default=0.2, metavar="MAG",
-                   help="smallest step kept per pixel, mag (default 0.2)")
+                   help="least extinction a feature adds, mag (default 0.2)")
+    p.add_argument("--min-probability", type=float, default=0.95, metavar="P",
+                   help="density finder: least fraction of posterior samples adding --min-delta-av (default 0.95)")
+    p.add_argument("--min-contrast", type=float, default=1.5, metavar="RATIO",
+                   help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.5)")
     p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
-                   help="least BIC improvement of a step over no step (default 10)")
-    p.add_argument("--radius", type=float, metavar="DEG", help="cone radius around each pixel centre (default: the pixel size)")
-    p.add_argument("--detections", metavar="PIXELS.ecsv", help="also write the per-pixel steps")
-    p.add_argument("--seed", type=int, default=0, help="seed of the bootstrap resampling (default 0)")
+                   help="steps finder: least BIC improvement of a step over no step (default 10)")
+    p.add_argument("--radius", type=float, metavar="DEG",
+                   help="steps finder: cone radius around each pixel centre (default: adaptive, the smallest cone holding 30 tracers, from one pixel to 6 deg)")
+    p.add_argument("--detections", metavar="PIXELS.ecsv", help="steps finder: also write the per-pixel steps")
+    p.add_argument("--seed", type=int, default=0, help="steps finder: seed of the bootstrap resampling (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
@@ -693,7 +708,7 @@ def _cmd_features(args, out):
     from astropy import units as u
 
     from ._lib.validation import check_real
-    from .features import detect_features
+    from .features import KIND_NEARER, density_features, detect_features
     from ._lib.formats import check_target, format_for
     from .io import load_model, write_table
 
@@ -705,6 +720,34 @@ def _cmd_features(args, out):
             format_for(path, "table")
             check_target(path, args.overwrite)
     model = load_model(args.model)
+    has_density = hasattr(model, "samples_")
+    finder = args.finder if args.finder != "auto" else ("density" if has_density else "steps")
+    if finder == "density":
+        if not has_density:
+            raise _UsageError("--finder density needs a 3-D density model (build with --model density); "
+                              "use --finder steps for a binned model")
+        if args.radius is not None or args.detections:
+            raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
+                              "the model's own cells")
+        feats = density_features(model, min_contrast=args.min_contrast, min_delta_av=args.min_delta_av * u.mag,
+                                 min_probability=args.min_probability, quiet=_quiet_flag(args))
+        path = write_table(feats, args.output, overwrite=args.overwrite)
+        out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "
+            f"tested against {feats.meta['n_samples']} posterior samples):")
+        for r in feats:
+            if r["kind"] == KIND_NEARER:
+                where = f"nearer than {r['distance_upper'].value:6.0f} pc (no tracer in front)"
+            else:
+                where = f"distance {r['distance'].value:6.0f} +- {r['distance_err'].value:.0f} pc"
+            out(f"  #{r['feature']}: l = {r['l'].value:7.2f} deg, b = {r['b'].value:+6.2f} deg, extent "
+                f"{r['extent'].value:.1f} deg, {where}, delta A_V {r['delta_av'].value:.2f} +- "
+                f"{r['delta_av_err'].value:.2f} mag, {r['n_front']} tracers in front, {r['n_behind']} behind, "
+                f"in {r['significance']:.0%} of samples")
+        out(f"Wrote {path}")
+        out("Distances and depths are the model's: it resolves dust in depth only to its correlation length "
+            f"({feats.meta['resolution']}) and the tracers' distance errors.")
+        out(feats.meta["caution"])
+        return 0
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg, min_delta_av=args.min_delta_av * u.mag,
         min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),

@@ -1,4 +1,12 @@
-"""Dust features: where along a sight line the dust sits, and how much it dims.
+"""Dust features: where the dust clouds are, how far, how large, and how much they dim.
+
+Two finders. For a 3-D density model (:class:`~dustkit.density.DensityModel`, the default
+for cluster catalogues), :func:`density_features` finds compact over-densities of the
+model's dust density, connected on the sky and in depth, and tests each against the
+model's posterior samples; clouds with no tracer in front are reported as "nearer than" an
+upper distance. See :mod:`dustkit.features.density` for that method. For binned models of
+large field-star samples (and as an expert option on any model) the sight-line step finder
+below is kept:
 
 A dust cloud at distance ``D`` adds a step to the cumulative extinction: tracers in front
 of it show the foreground A_V, tracers behind it show the foreground plus the cloud's
@@ -76,7 +84,9 @@ is dustkit's own. The outlier mixture follows Hogg, Bovy & Lang 2010 (arXiv:1008
 (Biometrics 30, 507).
 """
 
-from .sky import detect_features, sight_line_features
+from .density import DENSITY_METHOD, KIND_LOCATED, KIND_NEARER, density_features
+from .sky import adaptive_radii, detect_features, sight_line_features
 from .steps import STEP_METHOD, find_steps
 
-__all__ = ["find_steps", "sight_line_features", "detect_features", "STEP_METHOD"]
+__all__ = ["density_features", "find_steps", "sight_line_features", "detect_features", "adaptive_radii", "STEP_METHOD",
+           "DENSITY_METHOD", "KIND_LOCATED", "KIND_NEARER"]

@@ -13,11 +13,11 @@ from .._lib import healpix
 from ..exceptions import ModelNotFittedError
 from .._lib.progress import progress
 from .._lib.sky import separation_deg
-from .._lib.validation import check_real, param_error, to_value
+from .._lib.validation import check_int, check_real, param_error, to_value
 from ..answers import CAUTION
 from .steps import Line, STEP_METHOD, check_common, find_steps_arrays, find_steps_plain, reject_rows, steps_table
 
-__all__ = ["sight_line_features", "detect_features"]
+__all__ = ["sight_line_features", "detect_features", "adaptive_radii"]
 
 
 def _is_model(obj):
@@ -116,9 +116,28 @@ def _unit_vectors(l_deg, b_deg):
     return np.stack([np.cos(b) * np.cos(l), np.cos(b) * np.sin(l), np.sin(b)], axis=-1)
 
 
+def adaptive_radii(tl, tb, lc, bc, min_radius, n_tracers=30, max_radius=6.0):
+    """Cone radius (deg) around each pixel centre: the smallest holding ``n_tracers`` tracers.
+
+    Never below ``min_radius`` (the pixel's own size) nor above ``max_radius``; so dense
+    field-star samples keep one-pixel cones while a cluster catalogue of a few thousand
+    (one to three clusters per 1.8-deg pixel) gets cones wide enough to have tracers on
+    both sides of a step.
+    """
+    from scipy.spatial import cKDTree
+
+    if tl.size == 0:
+        return np.full(lc.size, float(min_radius))
+    k = int(min(n_tracers, tl.size))
+    dist, _ = cKDTree(_unit_vectors(tl, tb)).query(_unit_vectors(lc, bc), k=k)
+    chord = dist if k == 1 else dist[:, -1]
+    ang = np.rad2deg(2.0 * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0)))
+    return np.clip(ang, min_radius, max(max_radius, min_radius))
+
+
 def detect_features(model, *, radius=None, min_delta_av=0.2 * u.mag, min_significance=10.0, min_tracers=3,
                     min_boot_fraction=0.5, max_steps=3, n_boot=50, merge_sigma=3.0, random_state=0, quiet=None,
-                    return_detections=False):
+                    return_detections=False, cone_tracers=30, max_radius=6 * u.deg):
     """Dust features across the sky: steps found per pixel, merged across neighbouring pixels.
 
     For every pixel the model is informed in, the tracers in a cone around the pixel centre
@@ -131,8 +150,15 @@ def detect_features(model, *, radius=None, min_delta_av=0.2 * u.mag, min_signifi
     model : ExtinctionModel
         A fitted model.
     radius : Quantity['angle'], optional
-        Cone radius around each pixel centre (default: the model's pixel radius, so the
-        cones tile the sky with little overlap).
+        Cone radius around each pixel centre. Default: adaptive, per pixel the smallest
+        cone holding ``cone_tracers`` tracers, at least the model's pixel radius (so dense
+        samples get cones that tile the sky with little overlap) and at most
+        ``max_radius`` (:func:`adaptive_radii`).
+    cone_tracers : int
+        Tracers an adaptive cone reaches for (default 30: enough for steps with tracers on
+        both sides and a bootstrap).
+    max_radius : Quantity['angle']
+        Widest adaptive cone (default 6 deg).
     min_delta_av : Quantity['mag']
         Smallest step kept per pixel (default 0.2 mag).
     min_significance, min_tracers, min_boot_fraction, max_steps, n_boot, random_state
@@ -173,6 +199,9 @@ def detect_features(model, *, radius=None, min_delta_av=0.2 * u.mag, min_signifi
     grid = model.grid_
     rad = model.grid_pixel_radius() if radius is None else float(np.asarray(to_value("radius", radius, u.deg)))
     check_real("radius", rad, 0.0, 90.0, low_inclusive=False)
+    cone_tracers = check_int("cone_tracers", cone_tracers, 1, 100_000)
+    rmax = float(np.asarray(to_value("max_radius", max_radius, u.deg, default_unit=u.deg)))
+    check_real("max_radius", rmax, 0.0, 90.0, low_inclusive=False)
     keep = reject_rows(d, de, a, ae)
     tl, tb, d, de, a, ae, slope = (v[keep] for v in (tl, tb, d, de, a, ae, slope))
     tpix = grid.pixel(tl, tb)
@@ -181,11 +210,13 @@ def detect_features(model, *, radius=None, min_delta_av=0.2 * u.mag, min_signifi
     pixels = model.informed_pixels()
     lc, bc = grid.pixel_centres(pixels)
     pix_rad = model.grid_pixel_radius()
+    radii = (adaptive_radii(tl, tb, lc, bc, pix_rad, cone_tracers, rmax) if radius is None
+             else np.full(pixels.size, rad))
     rows = []
     members = []
     seed = np.random.SeedSequence(random_state).entropy  # each pixel gets its own stream from it
     for k in progress(range(pixels.size), desc="features", quiet=model.quiet if quiet is None else quiet):
-        idx = _cone_members(grid, order, sorted_pix, tl, tb, lc[k], bc[k], rad, pix_rad)
+        idx = _cone_members(grid, order, sorted_pix, tl, tb, lc[k], bc[k], radii[k], pix_rad)
         if idx.size < 2 * opts["min_tracers"]:
             continue
         line = Line(d[idx], de[idx], a[idx], ae[idx], slope=slope[idx])
@@ -194,12 +225,15 @@ def detect_features(model, *, radius=None, min_delta_av=0.2 * u.mag, min_signifi
                                    min_delta_av=opts["min_delta_av"], min_boot_fraction=opts["min_boot_fraction"],
                                    max_steps=opts["max_steps"], n_boot=opts["n_boot"], rng=rng)
         for s in steps:
-            rows.append((int(pixels[k]), lc[k], bc[k], s, idx.size))
+            rows.append((int(pixels[k]), lc[k], bc[k], s, idx.size, radii[k]))
             members.append(idx)
     det = _detections_table(rows)
-    feats, labels = _merge(det, members, grid, rad, merge_sigma)
+    feats, labels = _merge(det, members, grid, det["radius"].to_value(u.deg) if len(det) else rad, merge_sigma)
     det["feature"] = labels
-    meta = {"nside": grid.nside, "ordering": grid.ordering.upper(), "coordsys": "G", "radius": rad,
+    meta = {"nside": grid.nside, "ordering": grid.ordering.upper(), "coordsys": "G",
+            "radius": rad if radius is not None else "adaptive",
+            "radius_range": [float(radii.min()), float(radii.max())] if radii.size else [rad, rad],
+            "cone_tracers": cone_tracers if radius is None else 0,
             "merge_sigma": merge_sigma, **opts, "n_pixels_searched": int(pixels.size),
             "layer_subtracted": True, "method": STEP_METHOD, "caution": CAUTION}
     feats.meta.update(meta)
@@ -213,6 +247,7 @@ def _detections_table(rows):
     t.add_column(np.array([r[1] for r in rows], float) * u.deg, name="l", index=1)
     t.add_column(np.array([r[2] for r in rows], float) * u.deg, name="b", index=2)
     t["n_tracers"] = np.array([r[4] for r in rows], int)
+    t["radius"] = np.array([r[5] for r in rows], float) * u.deg
     return t
 
 
@@ -281,7 +316,8 @@ def _merge(det, members, grid, rad, merge_sigma):
     off = separation_deg(l, b, cl[lab], cb[lab])
     wsum = np.bincount(lab, w, n_feat)
     # RMS offset per axis (a 2-D Gaussian of sigma s has <r^2> = 2 s^2) plus the cone's own size
-    extent = np.sqrt(np.bincount(lab, w * off**2, n_feat) / (2.0 * wsum) + rad**2 / 4.0)
+    rad2 = np.bincount(lab, w * np.broadcast_to(np.asarray(rad, float) ** 2, w.shape), n_feat) / wsum
+    extent = np.sqrt(np.bincount(lab, w * off**2, n_feat) / (2.0 * wsum) + rad2 / 4.0)
     wdsum = np.bincount(lab, wd, n_feat)
     fdist = np.bincount(lab, wd * dist, n_feat) / wdsum
     npx = np.bincount(lab, minlength=n_feat)

@@ -11,6 +11,7 @@ Functions
 plot_profile : cumulative A_V (or E(B-V), or A in a band) against distance for a sight line
 plot_sky : A_V at a chosen distance (or differential extinction) on the sky
 plot_face_on : face-on map of differential extinction near the Galactic mid-plane
+plot_features : dust features on a Galactic map, coloured by distance ('nearer than' ones hatched)
 plot_laws : A_lambda / A_V of several extinction laws with band positions marked
 save_figure : write a figure to PNG/PDF/SVG atomically
 sky_position : (l, b) of a point in data coordinates of a map drawn by :func:`plot_sky`
@@ -22,12 +23,13 @@ a direction and distance. Check them against local data before using them for sc
 for planning instrument time.
 
 Modules (split by figure kind): ``common`` (palette, style, shared checks), ``profiles``,
-``sky``, ``face_on``, ``laws`` and ``files`` (writing figures). Import from
+``sky``, ``face_on``, ``features``, ``laws`` and ``files`` (writing figures). Import from
 ``dustkit.plotting``; the modules are the implementation.
 """
 
 from .common import COLORS, quantity_label, style_context
 from .face_on import plot_face_on
+from .features import plot_features
 from .files import save_figure, settle_layout
 from .laws import plot_laws
 from .profiles import plot_profile
@@ -40,6 +42,7 @@ __all__ = [
     "plot_cluster_colour_colour",
     "plot_sky",
     "plot_face_on",
+    "plot_features",
     "plot_laws",
     "save_figure",
     "sky_position",

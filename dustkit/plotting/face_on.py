@@ -19,6 +19,7 @@ def plot_face_on(
     cmap="magma_r",
     vmax=None,
     resolution=None,
+    features=None,
 ):
     """Face-on map of differential extinction near the Galactic mid-plane.
 
@@ -41,6 +42,11 @@ def plot_face_on(
         Upper colour limit in mag/kpc (default: 99th percentile).
     resolution : float, optional
         Grid step in kpc (default: 1/250 of the larger side).
+    features : Table, optional
+        Dust features (:func:`dustkit.features.density_features` or ``detect_features``) to
+        label: located ones as a marker with their distance error along the sight line
+        (gid ``'dustkit-face-feature'``), ``'nearer than'`` ones as a dotted line from the Sun
+        to their upper distance (gid ``'dustkit-face-feature-nearer'``).
 
     Returns
     -------
@@ -111,6 +117,8 @@ def plot_face_on(
                            mec=COLORS["black"], mew=0.4, label=f"tracers within {zmax:g} pc of the plane",
                            gid="dustkit-tracers")
             pts.set_in_layout(False)  # tracers beyond the map must not push the layout around
+        if features is not None and len(features):
+            _face_features(ax, features)
         ax.plot([0], [0], ls="none", marker="o", ms=9, mfc="white", mec="black", mew=1.2, zorder=5)
         ax.plot([0], [0], ls="none", marker=".", ms=4, color="black", zorder=6, gid="dustkit-sun")
         from matplotlib import patheffects
@@ -134,6 +142,40 @@ def plot_face_on(
             ax.legend(handles=handles, loc="upper left", markerscale=1.5, frameon=True,
                       framealpha=0.85).set_in_layout(False)
     return ax
+
+
+def _face_features(ax, features):
+    """Features on the face-on map: marker + distance error along the sight line, or a bound."""
+    from .common import column
+
+    names = features.colnames
+    for col in ("l", "b", "distance"):
+        if col not in names:
+            raise param_error("features", "a table with 'l', 'b' and 'distance' columns", names)
+    ll, bb = np.radians(column(features, "l", u.deg)), np.radians(column(features, "b", u.deg))
+    d = column(features, "distance", u.pc)
+    de = column(features, "distance_err", u.pc) if "distance_err" in names else np.zeros(d.size)
+    up = column(features, "distance_upper", u.pc) if "distance_upper" in names else np.full(d.size, np.nan)
+    ids = np.asarray(features["feature"]) if "feature" in names else np.arange(1, d.size + 1)
+    ux, uy = np.cos(bb) * np.cos(ll) / 1000.0, np.cos(bb) * np.sin(ll) / 1000.0  # kpc per pc along the line
+    label, label_up = "dust feature", "dust nearer than (no tracer in front)"
+    for i in range(d.size):
+        if np.isfinite(d[i]):
+            err = np.nan_to_num(de[i])
+            ax.plot([(d[i] - err) * ux[i], (d[i] + err) * ux[i]], [(d[i] - err) * uy[i], (d[i] + err) * uy[i]],
+                    color=COLORS["blue"], lw=1.5, zorder=4)
+            ax.plot([d[i] * ux[i]], [d[i] * uy[i]], ls="none", marker="D", ms=5, mfc=COLORS["sky_blue"],
+                    mec=COLORS["blue"], zorder=4, label=label, gid="dustkit-face-feature")
+            at, label = d[i], None
+        elif np.isfinite(up[i]):
+            ax.plot([0.0, up[i] * ux[i]], [0.0, up[i] * uy[i]], color=COLORS["blue"], lw=1.2, ls=":", zorder=4,
+                    label=label_up, gid="dustkit-face-feature-nearer")
+            at, label_up = up[i], None
+        else:
+            continue
+        txt = ax.annotate(f"#{ids[i]}", (at * ux[i], at * uy[i]), xytext=(4, 3), textcoords="offset points",
+                          fontsize=7, color=COLORS["blue"])
+        txt.set_in_layout(False)
 
 
 def _tracer_reach(model):

@@ -124,9 +124,19 @@ def _mark_features(ax, features, scale, quantity, band, law, rv):
         raise param_error("features", "a table with a 'distance' column", names)
     fd = column(features, "distance", u.pc)
     fde = column(features, "distance_err", u.pc) if "distance_err" in names else np.zeros_like(fd)
+    # 'nearer than' features (no tracer in front): shaded from 0 to their upper distance
+    up = column(features, "distance_upper", u.pc) if "distance_upper" in names else np.full(fd.size, np.nan)
+    bound = ~np.isfinite(fd) & np.isfinite(up)
+    for d_up in up[bound]:
+        ax.axvspan(0.0, d_up * scale, color=COLORS["vermillion"], alpha=0.08, lw=0, gid="dustkit-feature-nearer")
+        ax.annotate(f"dust nearer than {d_up:.0f} pc", xy=(d_up * scale, 0.03), xycoords=ax.get_xaxis_transform(),
+                    xytext=(-3, 0), textcoords="offset points", ha="right", va="bottom", fontsize=8,
+                    color=COLORS["vermillion"])
+    keep = np.isfinite(fd)
+    fd, fde = fd[keep], np.nan_to_num(fde[keep])
     jump = None
     if "delta_av" in names:
-        dav = column(features, "delta_av", u.mag)
+        dav = column(features, "delta_av", u.mag)[keep]
         jump, _ = convert(dav, np.zeros_like(dav), quantity, band, law, rv)
     label = "dust feature"
     sym = {"av": r"\Delta A_V", "ebv": r"\Delta E(B-V)"}.get(quantity, r"\Delta A")

@@ -271,9 +271,11 @@ def _sky_features(ax, features, mollweide, l_min):
     fb = column(features, "b", u.deg)
     fd = column(features, "distance", u.pc)
     fr = column(features, "extent", u.deg) if "extent" in names else np.full(fl.size, 0.5)
+    # a 'nearer than' feature (density_features) has no distance, only an upper one
+    up = column(features, "distance_upper", u.pc) if "distance_upper" in names else np.full(fl.size, np.nan)
     t = np.linspace(0, 2 * np.pi, 91)
     label = "dust feature"
-    for lm, bm, rad, d in zip(fl, fb, np.maximum(fr, 0.05), fd):
+    for lm, bm, rad, d, d_up in zip(fl, fb, np.maximum(fr, 0.05), fd, up):
         sb, cb = np.sin(np.radians(bm)), np.cos(np.radians(bm))
         sr, cr = np.sin(np.radians(rad)), np.cos(np.radians(rad))
         bb = np.degrees(np.arcsin(np.clip(sb * cr + cb * sr * np.cos(t), -1, 1)))
@@ -286,7 +288,9 @@ def _sky_features(ax, features, mollweide, l_min):
             xs, ys, xt, yt = x0 + dl, bb, x0, bm + rad
         line, = ax.plot(xs, ys, color=COLORS["vermillion"], lw=1.4, label=label, gid="dustkit-features")
         line.set_in_layout(False)
-        text = f"{d / 1000:.2f} kpc" if d >= 1000 else f"{d:.0f} pc"
+        bound = not np.isfinite(d) and np.isfinite(d_up)
+        d = d_up if bound else d
+        text = ("< " if bound else "") + (f"{d / 1000:.2f} kpc" if d >= 1000 else f"{d:.0f} pc")
         txt = ax.annotate(text, (xt, yt), xytext=(0, 2), textcoords="offset points", ha="center",
                           va="bottom", fontsize=7, color=COLORS["vermillion"])
         txt.set_in_layout(False)

@@ -1,0 +1,247 @@
+"""Dust features in the 3-D density model: invented clouds found where they are, none where there are none.
+
+Every galaxy here is invented (``dustkit.simulate``): an exponential layer and, in some,
+compact clouds whose position, distance and column are known exactly, so what the finder
+reports is checked against the truth of the field it was drawn from. Catalogues are drawn
+as ``benchmarks/galaxies.py`` draws realistic cluster catalogues: E(B-V) errors 0.02 mag +
+5%, distance errors 6-10% and 3% outliers (wrong members offset by 0.3-0.8 mag in E(B-V)).
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+from astropy import units as u
+from astropy.table import QTable, vstack
+
+import dustkit
+from dustkit.density import DensityModel
+from dustkit.exceptions import ModelNotFittedError, ParameterError
+from dustkit.features import KIND_LOCATED, KIND_NEARER, density_features
+from dustkit.simulate import Cloud, DustField, simulate_tracers
+
+REGION = dict(l_range=(100, 160), b_range=(-10, 10))
+FAST = dict(distance_max=3500 * u.pc, amplitudes=(0.25, 0.6), lengths=(150,) * u.pc, n_samples=16, quiet=True)
+STRONG = Cloud(l=130.0, b=0.0, distance=1000.0, radius=2.0, depth=30.0, av=1.5)
+NEAR = Cloud(l=125.0, b=1.0, distance=250.0, radius=2.0, depth=20.0, av=1.2)
+
+
+def _catalogue(field, n, seed, distance_min=80.0, distance_max=3500.0):
+    """Tracers with E(B-V) errors 0.02 + 5%, 6-10% distance errors and 3% outliers (as benchmarks/galaxies.py)."""
+    rng = np.random.default_rng(seed)
+    t = simulate_tracers(field, n, **REGION, distance_max=distance_max, distance_min=distance_min, scale_height=80.0,
+                         distance_frac_err=(0.06, 0.10), rng=rng)
+    true_ebv = np.asarray(t["true_av"]) / 3.1
+    err = 0.02 + 0.05 * true_ebv
+    ebv = true_ebv + rng.normal(0, err)
+    bad = rng.uniform(size=len(t)) < 0.03
+    ebv[bad] = true_ebv[bad] + rng.choice([-1, 1], bad.sum()) * rng.uniform(0.3, 0.8, bad.sum())
+    t["ebv"] = ebv * u.mag
+    t["ebv_err"] = err * u.mag
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return t, dustkit.read_tracers(t[["name", "l", "b", "distance", "distance_err", "ebv", "ebv_err"]])
+
+
+def _fit(field, n, seed, **kw):
+    t, tr = _catalogue(field, n, seed, **kw)
+    return field, t, DensityModel(**FAST).fit(tr)
+
+
+@pytest.fixture(scope="module")
+def cloudy():
+    # a strong compact cloud at 1 kpc in a region of 1000 clusters out to 3.5 kpc
+    return _fit(DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=(STRONG,)), 1000, 1)
+
+
+@pytest.fixture(scope="module")
+def smooth():
+    # the same kind of region and catalogue, no cloud at all
+    return _fit(DustField(a0=0.9, h=110.0, z_sun=15.0), 1000, 2)
+
+
+@pytest.fixture(scope="module")
+def unseen_foreground():
+    # a cloud at 250 pc in a catalogue whose nearest cluster lies at 500 pc: nothing in front of it
+    return _fit(DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=(NEAR,)), 900, 3, distance_min=500.0)
+
+
+def _sep(l1, b1, l2, b2):
+    from dustkit._lib.sky import separation_deg
+
+    return separation_deg(l1, b1, l2, b2)
+
+
+def _nearest(feats, cloud):
+    sep = _sep(feats["l"].to_value(u.deg), feats["b"].to_value(u.deg), cloud.l, cloud.b)
+    return feats[int(np.argmin(sep))], float(sep.min())
+
+
+def test_a_strong_cloud_is_found_at_its_distance_and_place(cloudy):
+    field, _, model = cloudy
+    feats = density_features(model)
+    assert len(feats) >= 1
+    f, sep = _nearest(feats, STRONG)
+    # truth of the invented field; tolerances are those the issue asks of the finder (sky
+    # within about a pixel, ~2 deg; distance within 20%) -- common practice for a model whose
+    # depth resolution is a few hundred pc
+    assert sep <= 2.0
+    assert f["kind"] == KIND_LOCATED
+    assert f["distance"].to_value(u.pc) == pytest.approx(STRONG.distance, rel=0.2)
+    # the quoted distance error covers the actual error within 2 sigma
+    assert abs(f["distance"].to_value(u.pc) - STRONG.distance) <= 2 * f["distance_err"].to_value(u.pc)
+    assert f["n_front"] >= 2 and f["n_behind"] >= 5
+    assert f["significance"] >= 0.95
+    # the added column through the feature's centre: the true column there is the cloud's
+    # Gaussian profile at that offset; the current model (correlation length >= 150 pc, prior
+    # amplitude <= 0.6) recovers 60-100% of a compact cloud's column (measured: ~0.9 of ~1.4
+    # mag), so the check is "more than half and not above the truth + 3 sigma"
+    truth = STRONG.av * np.exp(-0.5 * (sep / STRONG.radius) ** 2)
+    got, err = f["delta_av"].to_value(u.mag), f["delta_av_err"].to_value(u.mag)
+    assert 0.5 * truth <= got <= truth + 3 * err
+    assert err > 0
+
+
+def test_a_smooth_galaxy_gives_no_false_feature(smooth):
+    _, _, model = smooth
+    feats = density_features(model)
+    # false-positive control: the layer alone, 1000 noisy clusters with 3% outliers; the
+    # defaults (contrast 1.5, >= 0.2 mag in >= 95% of samples) are meant to allow at most one
+    # false feature per galaxy (the issue's target)
+    assert len(feats) <= 1
+    # the same search with the significance test switched off finds no more candidate than it
+    # reports: what keeps the smooth sky clean is the contrast against the layer, which the
+    # posterior mode keeps below 1.5 where no cloud is (measured: <= 1.25)
+    loose = density_features(model, min_probability=0.0, min_delta_av=0.0 * u.mag)
+    assert len(loose) <= 2
+
+
+def test_a_cloud_with_no_tracer_in_front_is_only_bounded(unseen_foreground):
+    field, t, model = unseen_foreground
+    assert np.asarray(t["distance"]).min() > 350  # the catalogue really has nothing in front of 250 pc
+    feats = density_features(model)
+    f, sep = _nearest(feats, NEAR)
+    assert sep <= 2.5
+    # nothing constrains where in front of the nearest clusters the dust sits: no precise
+    # distance, an upper distance at or beyond the true one (truth of the invented field)
+    assert f["kind"] == KIND_NEARER
+    assert not np.isfinite(f["distance"].to_value(u.pc))
+    assert f["distance_upper"].to_value(u.pc) >= NEAR.distance
+    assert f["n_front"] < 2
+    # and no feature in this galaxy claims a precise distance nearer than the nearest clusters
+    located = feats[feats["kind"] == KIND_LOCATED]
+    assert np.all(located["distance"].to_value(u.pc) > 400)
+
+
+def test_the_table_has_units_our_columns_and_says_how_it_was_made(cloudy):
+    _, _, model = cloudy
+    feats = density_features(model)
+    assert isinstance(feats, QTable)
+    for col, unit in (("l", u.deg), ("b", u.deg), ("extent", u.deg), ("extent_pc", u.pc), ("depth", u.pc),
+                      ("distance", u.pc), ("distance_err", u.pc), ("distance_upper", u.pc), ("delta_av", u.mag),
+                      ("delta_av_err", u.mag)):
+        assert feats[col].unit == unit, col
+    assert {"kind", "n_front", "n_behind", "n_tracers", "significance", "feature"} <= set(feats.colnames)
+    assert "posterior samples" in feats.meta["method"] and feats.meta["n_samples"] == 16
+    assert feats.meta["ordering"] in ("RING", "NESTED") and feats.meta["nside"] == model.grid_.nside
+    # size on the sky in pc is the angle at the feature's distance (small-angle geometry, common practice)
+    r = feats[0]
+    at = r["distance"] if r["kind"] == KIND_LOCATED else r["distance_upper"]
+    assert r["extent_pc"].to_value(u.pc) == pytest.approx(np.deg2rad(r["extent"].to_value(u.deg)) * at.to_value(u.pc))
+    # a stricter significance never finds more features
+    assert len(density_features(model, min_probability=1.0, min_delta_av=0.5 * u.mag)) <= len(feats)
+
+
+def test_the_old_sight_line_finder_still_runs_on_a_density_model(cloudy):
+    from dustkit.features import detect_features
+
+    _, _, model = cloudy
+    feats = detect_features(model, radius=6 * u.deg, n_boot=20, quiet=True)
+    assert {"l", "b", "distance", "delta_av", "significance"} <= set(feats.colnames)
+
+
+def test_bad_input_is_refused_with_a_hint(cloudy):
+    _, _, model = cloudy
+    with pytest.raises(ModelNotFittedError, match="fit"):
+        density_features(DensityModel())
+    with pytest.raises(ParameterError, match="detect_features"):
+        density_features(dustkit.ExtinctionModel())
+    with pytest.raises(ParameterError, match="min_contrast"):
+        density_features(model, min_contrast=0.5)
+    with pytest.raises(ParameterError, match="min_probability"):
+        density_features(model, min_probability=1.5)
+
+
+def test_the_command_line_uses_the_density_finder_for_a_density_model(cloudy, tmp_path):
+    from astropy.table import Table
+
+    from dustkit.cli import main
+    from dustkit.io import save_model
+
+    _, _, model = cloudy
+    path = tmp_path / "density_model.fits"
+    save_model(model, path)
+    out_csv = tmp_path / "features.csv"
+    assert main(["features", str(path), "-o", str(out_csv), "--quiet"]) == 0
+    got = Table.read(out_csv, format="ascii.csv")
+    want = density_features(model)
+    assert len(got) == len(want) and "kind" in got.colnames and "n_front" in got.colnames
+    np.testing.assert_allclose(np.asarray(got["distance"], float), want["distance"].to_value(u.pc), rtol=1e-6)
+    # the cone radius belongs to the sight-line finder
+    assert main(["features", str(path), "-o", str(tmp_path / "f2.csv"), "--radius", "3", "--quiet"]) != 0
+
+
+def test_the_feature_map_is_labelled_with_units(cloudy, unseen_foreground):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from dustkit.plotting import plot_features
+
+    feats = vstack([density_features(cloudy[2]), density_features(unseen_foreground[2])])
+    ax = plot_features(feats)
+    cbar_label = ax.figure.axes[-1].get_ylabel()
+    assert "Distance [" in cbar_label and ("pc]" in cbar_label)
+    assert "Galactic longitude" in ax.get_xlabel() and "Galactic latitude" in ax.get_ylabel()
+    gids = [p.get_gid() for p in ax.patches]
+    assert "dustkit-feature-located" in gids and "dustkit-feature-nearer" in gids
+    matplotlib.pyplot.close(ax.figure)
+
+
+def test_adaptive_cones_of_the_sight_line_finder_hold_the_asked_number_of_tracers(cloudy):
+    from astropy.coordinates import SkyCoord
+
+    from dustkit.features import adaptive_radii
+
+    _, _, model = cloudy
+    tl, tb = (np.asarray(getattr(model.tracers_, k), float) for k in ("l", "b"))
+    lc, bc = model.grid_.pixel_centres(model.informed_pixels()[::25])
+    pix = model.grid_pixel_radius()
+    radii = adaptive_radii(tl, tb, lc, bc, pix, n_tracers=30, max_radius=6.0)
+    assert np.all((radii >= pix) & (radii <= 6.0))
+    # counted independently with astropy's angular separation (reference library)
+    tracers = SkyCoord(tl * u.deg, tb * u.deg, frame="galactic")
+    inner = (radii > pix) & (radii < 6.0)
+    assert inner.sum() >= 3  # ~1000 clusters over 60 x 20 deg: one-pixel cones hold 1-3, so cones widen
+    for lv, bv, r in zip(lc[inner], bc[inner], radii[inner]):
+        sep = tracers.separation(SkyCoord(lv * u.deg, bv * u.deg, frame="galactic")).deg
+        assert np.sum(sep <= r * (1 + 1e-9)) >= 30 and np.sum(sep < r * (1 - 1e-6)) < 30
+
+
+def test_features_are_labelled_on_the_face_on_map(cloudy, unseen_foreground):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from dustkit.plotting import plot_face_on
+
+    _, _, model = cloudy
+    feats = vstack([density_features(model), density_features(unseen_foreground[2])])
+    ax = plot_face_on(model, features=feats, show_tracers=False)
+    gids = [line.get_gid() for line in ax.lines]
+    assert "dustkit-face-feature" in gids and "dustkit-face-feature-nearer" in gids
+    # the located feature sits at its distance along its sight line (heliocentric X, Y in kpc)
+    r = feats[feats["kind"] == KIND_LOCATED][0]
+    x, y = next(line for line in ax.lines if line.get_gid() == "dustkit-face-feature").get_data()
+    d = r["distance"].to_value(u.kpc) * np.cos(r["b"].to_value(u.rad))
+    assert np.hypot(x[0], y[0]) == pytest.approx(d, rel=1e-9)
+    assert "[kpc]" in ax.get_xlabel()
+    matplotlib.pyplot.close(ax.figure)
