@@ -217,4 +217,4 @@ class ClumpyField:
 
     def layer_av(self, b, distance):
         """A_V (mag) of the smooth layer alone."""
-        return _layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)
+        return layer_av_pc(np.asarray(b, float), np.asarray(distance, float), self.a0, self.h, self.z_sun)

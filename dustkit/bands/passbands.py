@@ -24,7 +24,6 @@ from dataclasses import dataclass
 import numpy as np
 from astropy import constants as const
 from astropy import units as u
-from astropy.table import Table
 
 from ..exceptions import AssumptionWarning, LawRangeError
 from .._lib.validation import param_error

@@ -210,8 +210,6 @@ def _correlation(table, columns, cols, ctx, av_err, app_err):
     try:
         vals = np.asarray(getattr(data, "value", data), dtype=float)
     except (TypeError, ValueError):
-        import numpy.char  # noqa: F401
-
         txt = np.asarray(data).astype(str)
         vals = np.full(n, np.nan)
         for_num = np.char.strip(txt)
