@@ -314,8 +314,8 @@ class DensityModel:
             excess = np.where(censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
             excess *= consistent
             # where they miss, more freedom in the cells in front of them (per cell)
-            boost = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp)
-            lat = Lattice(grid, pixels, amp, length, boost)
+            boost, cell_length = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp, length)
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
@@ -682,8 +682,8 @@ def _fit_tau(resid, pvar, err, base):
     return float(res.x), float(res.fun)
 
 
-def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, max_amplitude=2.0):
-    """Per-cell factor on the prior amplitude (n_bins, n_pix), from held-out misses.
+def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, max_amplitude=2.0, shortest=60.0):
+    """Per-cell factor on the prior amplitude and per-cell correlation length (n_bins, n_pix), from held-out misses.
 
     The excess variance of held-out tracers (squared residual beyond its predicted
     variance), spread on the sky and in log distance as for the unresolved variance, and
@@ -693,7 +693,10 @@ def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, max_amp
     gets ``boost^2 = 1 + dX_k / (s inc_k)^2``: compact clouds get the freedom they need
     where tracers behind them miss and tracers in front do not, without loosening the prior
     of the smooth rest of the sky. Capped so that ``s boost`` stays at most
-    ``max_amplitude``. An empirical-Bayes, non-stationary (heavier-tailed) prior.
+    ``max_amplitude``. A raised cell also gets a correlation length along the sight line
+    shorter by the same factor (at least ``shortest`` pc): the structure it stands for is
+    compact, and a long length would smear it in depth. An empirical-Bayes, non-stationary
+    (heavier-tailed) prior.
     """
     e = grid.distance_edges
     _, bc = grid.pixel_centres(pixels)
@@ -701,7 +704,8 @@ def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, max_amp
     dx = np.diff(np.maximum.accumulate(x, axis=1), axis=1)              # (P, K)
     inc = _layer_increments(layer, bc, e)                               # (P, K)
     boost2 = 1.0 + dx / np.maximum((amplitude * inc) ** 2, 1e-12)
-    return np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
+    boost = np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
+    return boost, np.clip(length / boost, min(shortest, length), length)
 
 
 def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
