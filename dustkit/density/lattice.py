@@ -11,7 +11,8 @@ with ``phi_k = exp(-Delta_k / L)`` the correlation between neighbouring distance
 (an AR(1) process along each sight line, correlation length ``L`` in pc) and ``G_k`` a
 sparse Gaussian kernel on the sky whose rows have unit L2 norm, of angular width ``L /
 d_k`` (the same physical length at the bin's distance). Every cell therefore has prior
-variance exactly ``s^2``, and the density ``rho = m exp(f)`` has the smooth layer ``m``
+variance exactly ``s^2`` (with per-cell amplitude factors and lengths, as the density model
+learns behind clouds, the variance follows the same recursion: :meth:`Lattice.cell_variance`), and the density ``rho = m exp(f)`` has the smooth layer ``m``
 as its prior median and is positive by construction.
 
 Notes
