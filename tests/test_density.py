@@ -137,6 +137,22 @@ def test_duplicate_weights_group_near_copies():
     np.testing.assert_allclose(w, [1 / 3, 1 / 3, 1 / 3, 1.0])
 
 
+def test_neighbouring_field_stars_are_not_taken_for_duplicates():
+    # common practice: two compilations quote one cluster's centre within about an arcminute;
+    # distinct field stars a few arcminutes apart at similar distances are independent tracers
+    l = np.array([30.0, 30.01, 30.10, 30.20])           # 0.6', 6', 12' from the first
+    b = np.full(4, 1.0)
+    d = np.array([1500.0, 1540.0, 1510.0, 1490.0])
+    av = np.array([1.00, 1.03, 1.01, 0.99])
+    w, groups = duplicate_weights(l, b, d, av, np.full(4, 0.05), distance_err=np.full(4, 120.0))
+    assert groups == 1
+    np.testing.assert_allclose(w, [0.5, 0.5, 1.0, 1.0])
+    # the same two listings with distances that disagree by far more than their errors stay apart
+    w, groups = duplicate_weights(l[:2], b[:2], np.array([1500.0, 2600.0]), av[:2], np.full(2, 0.05),
+                                  distance_err=np.full(2, 120.0))
+    assert groups == 0
+
+
 def test_tracers_beyond_the_grid_only_bound_its_far_end():
     # a cloud at 2.6 kpc behind a grid that ends at 2 kpc: far tracers must not lift the far edge
     field = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 2600, 6.0, 40, 1.5),))

@@ -29,6 +29,10 @@ from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor eve
 LAYER_BOOTSTRAP = 30
 
 
+#: Sky separation (deg) within which the density model treats agreeing tracers as one object listed twice.
+DUPLICATE_SEPARATION_DEG = 1.0 / 60.0
+
+
 def default_distance_edges(distance_max=6000.0, near_step=50.0, growth=0.1):
     """Distance edges (pc): ``near_step`` steps while they are finer than ``growth`` x distance, then geometric.
 
@@ -58,22 +62,26 @@ def choose_nside(l_deg, b_deg, candidates=(128, 64), per_pixel=8):
     return 32
 
 
-def duplicate_weights(l, b, d, av, av_err):
+def duplicate_weights(l, b, d, av, av_err, distance_err=None, separation_deg=DUPLICATE_SEPARATION_DEG):
     """Likelihood weight of each tracer: 1 / the size of its group of near-duplicates.
 
-    Tracers closer than 1% of their distance (at least 2 pc) in 3-D whose A_V agree within
-    twice their combined error are one measurement listed more than once (as when two
-    compilations are merged); each such group counts as one tracer, so that duplicating a
-    catalogue does not shrink the uncertainties.
+    Tracers within ``separation_deg`` on the sky (default 1 arcmin: two compilations'
+    centres of one cluster) whose distances agree within twice their combined error (1% of
+    the distance when no error is given) and whose A_V agree within twice their combined
+    error are one object listed more than once (as when two compilations are merged); each
+    such group counts as one tracer, so that duplicating a catalogue does not shrink the
+    uncertainties. Distinct field stars a few arcminutes apart are not grouped: they are
+    independent measurements of neighbouring sight lines.
     """
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
-    xyz = unit_vectors(l, b) * np.asarray(d, float)[:, None]
-    pairs = cKDTree(xyz).query_pairs(r=max(2.0, 0.01 * float(np.median(d))), output_type="ndarray")
+    d = np.asarray(d, float)
+    de = 0.01 * d if distance_err is None else np.maximum(np.asarray(distance_err, float), 0.01 * d)
+    pairs = cKDTree(unit_vectors(l, b)).query_pairs(r=chord(separation_deg), output_type="ndarray")
     if pairs.size:
         i, j = pairs[:, 0], pairs[:, 1]
-        close = np.linalg.norm(xyz[i] - xyz[j], axis=1) <= np.maximum(2.0, 0.01 * np.minimum(d[i], d[j]))
+        close = np.abs(d[i] - d[j]) <= 2.0 * np.hypot(de[i], de[j])
         agree = np.abs(av[i] - av[j]) <= 2.0 * np.hypot(av_err[i], av_err[j])
         i, j = i[close & agree], j[close & agree]
     else:
@@ -259,7 +267,7 @@ class DensityModel:
         pixels = active_pixels(grid, l, b, radius)
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
-        weight, n_groups = duplicate_weights(l, b, d, av, ae)
+        weight, n_groups = duplicate_weights(l, b, d, av, ae, de)
         corr = getattr(tracers, "av_distance_corr", None)
         corr = np.zeros(n) if corr is None else np.asarray(corr, float)
         rng = np.random.default_rng(self.random_state)
