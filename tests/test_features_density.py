@@ -282,7 +282,7 @@ def test_quoted_distance_errors_are_honest():
     # tracers with 6-10% distance errors is far tighter than the whole sight line)
     assert np.all(quoted <= 0.25 * true_d), (quoted, true_d)
     # no quoted error is smaller than the tracers' bracket allows: a uniform position between the
-    # farthest tracer in front and the nearest behind has standard deviation gap / sqrt(12)
+    # last tracer in front and the first behind has standard deviation gap / sqrt(12)
     # (uniform distribution, from memory)
     gaps, gap_errs = np.concatenate(gaps), np.concatenate(gap_errs)
     assert gaps.size >= 4 and np.all(gap_errs >= np.maximum(gaps, 0.0) / np.sqrt(12.0) - 1e-9)
