@@ -16,7 +16,11 @@ galaxy and finder:
 * false: features matching no cloud on the sky at a compatible distance (in 'clumpy',
   some of these are real clumps of the log-normal field, not noise);
 * distance error: median |d - d_true| / d_true of the found clouds, and the ratio of
-  the RMS quoted error to the RMS real error (1 = honest; target 0.7-1.5).
+  the RMS quoted error to the RMS real error (1 = honest; target 0.7-1.5). That ratio is
+  biased upward for honest errors, since a cloud counts as found only within max(15%, its
+  quoted error): errors beyond 1 sigma are cut. Hence also "in 1s/2s": among located
+  features matching a cloud loosely (30% or 3 quoted errors), the share whose actual error
+  is within 1 and 2 quoted errors (68% / 95% for honest Gaussian errors).
 
 Targets (issue of the features): >= 75% of the testable clouds found at the right
 distance, <= 1 false feature per galaxy with the defaults.
@@ -58,10 +62,10 @@ def match(clouds, feats):
     n_c, n_f = len(clouds), len(feats)
     found = np.zeros(n_c, bool)
     upper = np.zeros(n_c, bool)
-    err_rel, quoted, real = [], [], []
+    err_rel, quoted, real, pulls = [], [], [], []
     used = np.zeros(n_f, bool)
     if n_f == 0:
-        return found, upper, used, err_rel, quoted, real
+        return found, upper, used, err_rel, quoted, real, pulls
     fl, fb = feats["l"].to_value(u.deg), feats["b"].to_value(u.deg)
     fd = feats["distance"].to_value(u.pc)
     fde = feats["distance_err"].to_value(u.pc)
@@ -74,6 +78,10 @@ def match(clouds, feats):
         loose = on_sky & (kind != KIND_NEARER) & (np.abs(fd - c.distance) <= np.maximum(0.3 * c.distance, 3 * np.nan_to_num(fde, nan=0.0)))
         up = on_sky & (kind == KIND_NEARER) & (fup >= c.distance)
         used |= loose | up
+        if loose.any():  # the pull of the nearest located match: not cut at the quoted error, so not biased by it
+            j = np.nonzero(loose)[0][np.argmin(np.abs(fd[loose] - c.distance))]
+            if fde[j] > 0:
+                pulls.append((fd[j] - c.distance) / fde[j])
         if right.any():
             j = np.nonzero(right)[0][np.argmin(np.abs(fd[right] - c.distance))]
             found[i] = True
@@ -81,7 +89,7 @@ def match(clouds, feats):
             quoted.append(fde[j])
             real.append(fd[j] - c.distance)
         upper[i] = bool(up.any())
-    return found, upper, used, err_rel, quoted, real
+    return found, upper, used, err_rel, quoted, real, pulls
 
 
 def run(kind, seed, baseline=True):
@@ -102,7 +110,7 @@ def run(kind, seed, baseline=True):
         t0 = time.perf_counter()
         feats = finder()
         seconds = time.perf_counter() - t0
-        found, upper, used, err_rel, quoted, real = match(clouds, feats)
+        found, upper, used, err_rel, quoted, real, pulls = match(clouds, feats)
         honest = (np.sqrt(np.mean(np.square(quoted))) / np.sqrt(np.mean(np.square(real)))
                   if len(real) > 1 and np.any(np.asarray(real) != 0) else np.nan)
         rows.append({
@@ -110,7 +118,7 @@ def run(kind, seed, baseline=True):
             "found": int(np.sum(found & ok)), "found_any": int(found.sum()), "upper": int(np.sum(upper & ~found)),
             "features": len(feats), "false": int(np.sum(~used)),
             "median_err": float(np.median(err_rel)) if err_rel else np.nan, "quoted_over_real": honest,
-            "errors": err_rel, "quoted": quoted, "real": real,
+            "errors": err_rel, "quoted": quoted, "real": real, "pulls": pulls,
             "seconds": seconds, "fit_seconds": t_fit,
         })
     return rows, model, clouds
@@ -120,7 +128,7 @@ def _line(name, finder, r):
     frac = r["found"] / r["testable"] if r["testable"] else np.nan
     return (f"{name:10s} {finder:22s} {r['clouds']:6d} {r['testable']:8d} {r['found']:3d} ({frac:4.0%}) "
             f"{r['upper']:5d} {r['features']:8d} {r['false']:5d} {r['median_err']:10.3f} "
-            f"{r['quoted_over_real']:11.2f} {r['seconds']:7.1f}")
+            f"{r['quoted_over_real']:11.2f} {r['in_1s']:>5.0%}/{r['in_2s']:<4.0%} {r['seconds']:7.1f}")
 
 
 def _sum(rows):
@@ -129,6 +137,10 @@ def _sum(rows):
     q = [x for r in rows for x in r["quoted"]]
     real = [x for r in rows for x in r["real"]]
     out["median_err"] = float(np.median(errs)) if errs else np.nan
+    z = np.abs([x for r in rows for x in r["pulls"]])
+    out["in_1s"] = float(np.mean(z <= 1.0)) if z.size else np.nan
+    out["in_2s"] = float(np.mean(z <= 2.0)) if z.size else np.nan
+    out["n_pulls"] = int(z.size)
     out["quoted_over_real"] = (float(np.sqrt(np.mean(np.square(q))) / np.sqrt(np.mean(np.square(real))))
                                if len(real) > 1 else np.nan)
     return out
@@ -149,7 +161,7 @@ def main(argv=None):
                   f"{r[0]['fit_seconds']:.1f} s (amplitude {model.build_report_['amplitude']:.2f}, "
                   f"L = {model.build_report_['length_pc']:.0f} pc)", flush=True)
     head = (f"{'galaxy':10s} {'finder':22s} {'clouds':>6s} {'testable':>8s} {'found':>9s} {'upper':>5s} "
-            f"{'features':>8s} {'false':>5s} {'med |dd|/d':>10s} {'quoted/real':>11s} {'time s':>7s}")
+            f"{'features':>8s} {'false':>5s} {'med |dd|/d':>10s} {'quoted/real':>11s} {'in 1s/2s':>10s} {'time s':>7s}")
     print(head)
     print("-" * len(head))
     finders = list(dict.fromkeys(r["finder"] for r in rows))
@@ -163,7 +175,10 @@ def main(argv=None):
     print("found: testable clouds (>= 5 tracers in front and 5 behind within 2 radii) located within 15% or the "
           "quoted error; upper: other clouds reported 'nearer than' a distance at or beyond the true one; "
           "false: features matching no cloud (sky within max(2 deg, 1.5 radius), distance within 30% or 3 sigma); "
-          "quoted/real: RMS quoted distance error over RMS actual error of the found clouds")
+          "quoted/real: RMS quoted distance error over RMS actual error of the found clouds (biased upward: a "
+          "cloud counts as found only within max(15%, its quoted error)); in 1s/2s: share of the located features "
+          "matching a cloud (within 30% or 3 quoted errors) whose actual error is within 1 and 2 quoted errors "
+          "(honest: 68%/95%)")
     return rows
 
 

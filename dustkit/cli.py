@@ -84,8 +84,8 @@ a0 is in mag/kpc, h and z_sun in pc.""",
 On a 3-D density model (the default for cluster catalogues) features are compact
 over-densities of the model's dust density, tested against its posterior samples; no cone
 radius is needed. Columns: feature, kind ('located' or 'nearer than'), l, b (deg), extent
-(deg), extent_pc, depth (pc), distance, distance_err, distance_upper, distance_near,
-distance_far (pc), delta_av, delta_av_err, delta_av_max (mag), contrast, n_tracers,
+(deg), extent_pc, depth (pc), distance, distance_err, distance_upper, distance_front,
+distance_behind (the tracers bracketing it), distance_near, distance_far (pc), delta_av, delta_av_err, delta_av_max (mag), contrast, n_tracers,
 n_front, n_behind, n_pixels, n_cells, significance (fraction of posterior samples).
 A 'nearer than' feature has no tracer in front of it: the dust lies somewhere nearer than
 distance_upper. On a binned model (or with --finder steps) steps in A_V against distance

@@ -1,9 +1,11 @@
 """The explorer notebook in a real browser: JupyterLab + headless Chromium driven by Playwright.
 
 What a user does: open notebooks/explore_region.ipynb in JupyterLab, run all cells, pick
-another extinction law in the panel's *Law* menu, and see the profile change. The test
-checks the kernel side (the status line reports the model rebuilt with the new law) and
-the browser side (the profile canvas shows a different picture), and saves screenshots.
+another extinction law in the panel's *Law* menu, and see the profile change; then, in the
+second explorer (the 3-D density model), tick *Show dust features*, read the table and move
+the least-probability slider. The test checks the kernel side (the status line reports the
+model rebuilt with the new law, the features found) and the browser side (the profile and
+sky canvases show different pictures, the table is on the page), and saves screenshots.
 
 Requirements (installed by .ci/run): Debian's ``chromium`` package (``/usr/bin/chromium``,
 or set ``DUSTKIT_CHROMIUM``) and the ``playwright`` Python package. Playwright's own browser
@@ -188,13 +190,14 @@ def test_explorer_in_jupyterlab_changes_law_and_redraws(tmp_path, jupyter_dirs):
                 page.locator('.lm-MenuBar-itemLabel:text-is("Run")').click()
                 page.locator('.lm-Menu-itemLabel:text-is("Run All Cells")').click()
 
-                # the explorer appears; the last cells select the Long Shadow sight line and the J band
-                law = page.locator(".dustkit-law select")
+                # the explorer appears; the next cells select the Long Shadow sight line and the J band
+                panel = page.locator(".dustkit-explorer").first
+                law = panel.locator(".dustkit-law select")
                 law.wait_for(state="visible", timeout=180_000)
-                status = page.locator(".dustkit-status")
+                status = panel.locator(".dustkit-status")
                 status.filter(has_text="Sight line l = 58.00").wait_for(timeout=180_000)
                 page.wait_for_function(_KERNEL_IDLE, timeout=120_000)
-                profile = page.locator(".dustkit-profile canvas").first
+                profile = panel.locator(".dustkit-profile canvas").first
                 profile.scroll_into_view_if_needed()
                 state_before = _drawn_canvas(profile)
                 before = profile.screenshot(path=str(shots / "profile_before.png"))
@@ -214,11 +217,34 @@ def test_explorer_in_jupyterlab_changes_law_and_redraws(tmp_path, jupyter_dirs):
                 after = profile.screenshot(path=str(shots / "profile_after.png"))
                 assert after != before, "the profile did not change on the page after the law changed"
 
-                panel = page.locator(".dustkit-explorer").first
                 shot = shots / "explorer_after_law_change.png"
                 panel.screenshot(path=str(shot))
                 page.screenshot(path=str(shots / "jupyterlab_window.png"))
                 shutil.copy(shot, SHOT_COPY)
+
+                # the second explorer (3-D density model): tick "Show dust features" as a user would
+                panel2 = page.locator(".dustkit-explorer").nth(1)
+                status2 = panel2.locator(".dustkit-status")
+                status2.filter(has_text="Sight line l = 58.00").wait_for(timeout=180_000)
+                page.wait_for_function(_KERNEL_IDLE, timeout=120_000)
+                sky2 = panel2.locator(".dustkit-sky canvas").first
+                sky2.scroll_into_view_if_needed()
+                sky_before = _drawn_canvas(sky2)
+                panel2.locator(".dustkit-feature-layer input[type=checkbox]").check()
+                status2.filter(has_text="dust feature(s) with probability >= 0.95").wait_for(timeout=120_000)
+                assert page.locator(".dustkit-status.dustkit-error").count() == 0, status2.inner_text()
+                # the table lists them: the invented Long Shadow located (distance +- error), the two
+                # near clouds only bounded ("nearer than"); the map shows their circles
+                table = panel2.locator(".dustkit-feature-table")
+                table.filter(has_text="nearer than").wait_for(timeout=60_000)
+                assert "±" in table.inner_text() and table.locator("tr").count() >= 2
+                _drawn_canvas(sky2, differs_from=sky_before)
+                # the least-probability slider, moved with the keyboard (its handle takes arrow keys)
+                handle = panel2.locator(".dustkit-min-probability .noUi-handle").first
+                handle.focus()
+                handle.press("Home")
+                status2.filter(has_text="probability >= 0.50").wait_for(timeout=60_000)
+                panel2.screenshot(path=str(shots / "explorer_dust_features.png"))
                 print(f"\nscreenshots: {shots} (panel also copied to {SHOT_COPY})")
 
                 # no cell ended in a Python error

@@ -77,9 +77,11 @@ def test_explore_region_notebook(tmp_path, monkeypatch, jupyter_env):
     assert any("dustkit-law" in c for c in classes)
     assert any("dustkit-profile" in c for c in classes)
     status = [s for s in models if "dustkit-status" in s.get("_dom_classes", ())]
-    assert len(status) == 1
-    assert "dustkit-error" not in status[0]["_dom_classes"]
-    assert "Sight line l = 58.00" in status[0]["value"]  # the last cells moved the sight line
+    assert len(status) == 2  # the explorer of the binned model, and the one of the density model (dust features)
+    for s in status:
+        assert "dustkit-error" not in s["_dom_classes"]
+        assert "Sight line l = 58.00" in s["value"]  # the cells moved the sight line
+    assert sum("dustkit-feature-layer" in c for c in classes) == 2
 
     # A_V toward the invented Long Shadow cloud (1.6 kpc away) grows with distance, steeply across it
     rows = re.findall(r"A_V to ([\d.]+) kpc toward l = 58°, b = \+1°: ([\d.]+) \+- ([\d.]+) mag", _stdout(nb))

@@ -392,3 +392,99 @@ def test_band_list_follows_the_law_and_rv(explorer):
     explorer.quantity_widget.value = "av"
     _ok(explorer)
     assert explorer.band_coefficients["G"] == a_band_over_av("G", "ccm89", 3.1)
+
+
+# ----------------------------------------------------------------------------- dust features layer
+def _feature_circles(ax):
+    return [ln for ln in ax.lines if ln.get_gid() == "dustkit-features"]
+
+
+def test_feature_layer_on_a_binned_model(explorer):
+    from dustkit.features import detect_features
+
+    explorer.features_widget.value = False
+    explorer.feature_layer_widget.value = True
+    _ok(explorer)
+    # a binned model has no posterior samples: the sight-line step finder, no probability slider
+    assert explorer.min_probability_widget.disabled
+    want = detect_features(explorer.model, quiet=True)
+    assert len(explorer.layer_features) == len(want)
+    assert "dust feature(s) in the model" in explorer.status.value
+    assert explorer.feature_table.value  # the table (or the line saying there is none) is shown
+    _assert_same_drawing(explorer.sky_ax, _reference_sky(explorer))
+    _assert_same_drawing(explorer.profile_ax, _reference_profile(explorer))
+    explorer.feature_layer_widget.value = False
+    assert explorer.layer_features is None and explorer.sky_parameters()["features"] is None
+    assert explorer.feature_table.value == ""
+
+
+@pytest.fixture(scope="module")
+def density_explorer(tracers):
+    # the 3-D density model of the same invented region (a quick prior: two amplitudes, one length)
+    from dustkit.density import DensityModel
+
+    model = DensityModel(distance_max=3000 * u.pc, amplitudes=(0.25, 0.6), lengths=(150,) * u.pc, n_samples=16,
+                         quiet=True).fit(tracers)
+    return Explorer(tracers, model=model, figures="static")
+
+
+def test_feature_layer_on_a_density_model(density_explorer, monkeypatch):
+    import dustkit.features
+    from dustkit.features import KIND_NEARER, density_features
+
+    ex = density_explorer
+    calls = []
+    real = dustkit.features.density_features
+    monkeypatch.setattr(dustkit.features, "density_features", lambda *a, **k: calls.append(1) or real(*a, **k))
+    ex.select(300.0, -1.0, radius=2.5)  # toward the invented cloud at 600 pc
+    ex.feature_layer_widget.value = True
+    _ok(ex)
+    assert not ex.min_probability_widget.disabled
+    want = density_features(ex.model, min_probability=0.95)
+    assert len(want) >= 1  # the invented cloud (1 mag at 600 pc) is there
+    assert len(ex.layer_features) == len(want)
+    np.testing.assert_allclose(ex.layer_features["l"].to_value(u.deg), want["l"].to_value(u.deg))
+    np.testing.assert_allclose(ex.layer_features["delta_av"].to_value(u.mag), want["delta_av"].to_value(u.mag))
+    # drawn on the map (a circle per feature) and on the profile, as the plotting functions draw them
+    assert len(_feature_circles(ex.sky_ax)) == len(want)
+    _assert_same_drawing(ex.sky_ax, _reference_sky(ex))
+    _assert_same_drawing(ex.profile_ax, _reference_profile(ex))
+    # listed: one row per feature, distance +- error or "nearer than D", and the probability
+    html_table = ex.feature_table.value
+    assert html_table.count("<tr>") == len(want) + 1 and "P</th>" in html_table
+    for r in want:
+        if r["kind"] == KIND_NEARER:
+            assert f"nearer than {r['distance_upper'].to_value(u.pc):.0f}" in html_table
+        else:
+            assert f"{r['distance'].to_value(u.pc):.0f} &plusmn; {r['distance_err'].to_value(u.pc):.0f}" in html_table
+    # the slider applies the cut to the features found once: no new search
+    n_calls = len(calls)
+    ex.min_probability_widget.value = 0.5
+    _ok(ex)
+    assert len(calls) == n_calls
+    assert len(ex.layer_features) == len(density_features(ex.model, min_probability=0.5)) >= len(want)
+    _assert_same_drawing(ex.sky_ax, _reference_sky(ex))
+    ex.min_probability_widget.value = 0.95
+
+
+def test_feature_layer_follows_rv(density_explorer):
+    from dustkit.features import density_features
+
+    ex = density_explorer
+    ex.feature_layer_widget.value = True
+    before = ex.layer_features
+    ex.rv_widget.value = 4.0
+    _ok(ex)
+    assert ex.model.rv == pytest.approx(4.0)
+    # a new model, so the features are found again, for that model
+    want = density_features(ex.model, min_probability=0.95)
+    np.testing.assert_allclose(ex.layer_features["delta_av"].to_value(u.mag), want["delta_av"].to_value(u.mag))
+    # E(B-V) tracers: A_V = R_V E(B-V) (definition of R_V; common practice), so the added A_V of the
+    # same cloud grows by 4.0 / 3.1 (the density model rescales E(B-V) tracers exactly)
+    assert len(want) == len(before) >= 1
+    np.testing.assert_allclose(want["delta_av"].to_value(u.mag) / before["delta_av"].to_value(u.mag),
+                               4.0 / 3.1, rtol=0.02)
+    _assert_same_drawing(ex.sky_ax, _reference_sky(ex))
+    ex.rv_widget.value = 3.1
+    _ok(ex)
+    np.testing.assert_allclose(ex.layer_features["delta_av"].to_value(u.mag), before["delta_av"].to_value(u.mag))

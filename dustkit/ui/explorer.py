@@ -15,6 +15,13 @@
   band listed with its coefficient A_band/A_V (:func:`dustkit.bands.a_band_over_av` for
   the reference star of ``dustkit bands``) under the law and R_V shown; the list is
   rebuilt when the law or R_V changes (``explorer.band_coefficients``);
+* a dust-features layer (*Show dust features*): the features of the whole model are found
+  once per fitted model (:func:`dustkit.features.density_features` for a 3-D density model,
+  :func:`dustkit.features.detect_features` for a binned one), kept, and found again for a
+  model of another law, R_V or grid; they are drawn on the sky map and the profile and
+  listed in a small table (distance with its error or "nearer than D", the added A_V, the
+  probability). For a density model a slider sets the least probability
+  (:func:`dustkit.features.significant_features`: no new search);
 * an export button with a format chooser and a file name (:func:`dustkit.io.export_table`).
 
 No science lives here: the panel calls :mod:`dustkit.model` and draws with
@@ -44,6 +51,7 @@ from ..exceptions import ModelNotFittedError
 from .._lib.formats import TABLE_FORMATS
 from .._lib.validation import check_choice, check_int, param_error, to_value
 from ..model import CAUTION, ExtinctionModel
+from .feature_table import feature_table_html
 
 __all__ = ["Explorer"]
 
@@ -95,6 +103,9 @@ class Explorer:
         The status line (CSS class ``dustkit-status``).
     last_error : Exception or None
         The last error a callback met (also shown in the status line).
+    layer_features : QTable or None
+        The dust features drawn on the map and the profile while *Show dust features* is
+        ticked (:meth:`model_features` after the probability cut), None otherwise.
     """
 
     def __init__(self, tracers, model=None, *, features=None, figures="auto", cache_size=8, **model_params):
@@ -106,6 +117,8 @@ class Explorer:
         self.tracers = tracers
         self.features = features
         self._shown_features = features
+        self.layer_features = None  # the features layer shown (None when off)
+        self._layer_cache = OrderedDict()  # id(model) -> (model, all features of that model)
         self.last_error = None
         self.last_export = None
         self._figure_mode = self._check_figures(figures)
@@ -251,6 +264,7 @@ class Explorer:
                                       value="cumulative", description="Map shows", style=_DESC, layout=full)
         self.features_widget = W.Checkbox(value=False, indent=False,
                                           description="Mark dust features on the profile")
+        self._build_feature_widgets(full)
 
         self.format_widget = W.Dropdown(options=list(_FORMATS), value="ecsv", description="File format",
                                         style=_DESC, layout=full)
@@ -271,7 +285,10 @@ class Explorer:
             (self.rebuild_button, "dustkit-rebuild"), (self.progress, "dustkit-progress"),
             (self.l_widget, "dustkit-l"), (self.b_widget, "dustkit-b"), (self.radius_widget, "dustkit-radius"),
             (self.quantity_widget, "dustkit-quantity"), (self.distance_widget, "dustkit-distance"),
-            (self.kind_widget, "dustkit-map-kind"), (self.features_widget, "dustkit-features"), (self.format_widget, "dustkit-format"),
+            (self.kind_widget, "dustkit-map-kind"), (self.features_widget, "dustkit-features"),
+            (self.feature_layer_widget, "dustkit-feature-layer"),
+            (self.min_probability_widget, "dustkit-min-probability"), (self.feature_table, "dustkit-feature-table"),
+            (self.format_widget, "dustkit-format"),
             (self.filename_widget, "dustkit-filename"), (self.overwrite_widget, "dustkit-overwrite"),
             (self.export_button, "dustkit-export"), (self.status, "dustkit-status"), (self.log, "dustkit-log"),
         ]:
@@ -287,6 +304,7 @@ class Explorer:
                 _lbl("Sight line (or click the map)"), self.l_widget, self.b_widget, self.radius_widget,
                 self.quantity_widget, self.features_widget,
                 _lbl("Sky map"), self.distance_widget, self.kind_widget,
+                _lbl("Dust features"), self.feature_layer_widget, self.min_probability_widget, self.feature_table,
                 _lbl("Export"), self.format_widget, self.filename_widget, self.overwrite_widget,
                 W.HBox([self.export_button]),
                 _lbl("Status"), self.status, self.log, caution,
@@ -300,6 +318,19 @@ class Explorer:
         self.panel.add_class("dustkit-explorer")
 
         self._connect(base)
+
+    def _build_feature_widgets(self, full):
+        """The dust-features layer: a checkbox, the least-probability slider and the table."""
+        W = widgets
+        self.feature_layer_widget = W.Checkbox(value=False, indent=False, description="Show dust features",
+                                               tooltip="Find the dust features of the whole model (once per model) "
+                                                       "and draw them on the map and the profile")
+        self.min_probability_widget = W.FloatSlider(value=0.95, min=0.5, max=1.0, step=0.01,
+                                                    continuous_update=False, readout_format=".2f",
+                                                    description="Least probability", style=_DESC, layout=full,
+                                                    tooltip="Least fraction of the density model's posterior "
+                                                            "samples in which a feature adds its extinction")
+        self.feature_table = W.HTML(value="", layout=W.Layout(width="375px", max_height="220px", overflow="auto"))
 
     def _build_figures(self, base):
         """The sky map and profile figures (the sky extent is fixed by the tracers, so the view is stable)."""
@@ -324,6 +355,8 @@ class Explorer:
             w.observe(self._on_sight_line, "value")
         for w in (self.distance_widget, self.kind_widget):
             w.observe(self._on_sky, "value")
+        for w in (self.feature_layer_widget, self.min_probability_widget):
+            w.observe(self._on_feature_layer, "value")
         self.format_widget.observe(self._on_format, "value")
         self.export_button.on_click(lambda _b: self._run(self._export))
         self._free_rv = float(base.rv)
@@ -383,7 +416,8 @@ class Explorer:
     def sky_parameters(self):
         """Keyword arguments of :func:`dustkit.plotting.plot_sky` for the map shown."""
         mark = (self.l, self.b, self.radius) if self.radius > 0 else (self.l, self.b)
-        return dict(distance=self.distance * u.pc, kind=self.kind_widget.value, extent=self.sky_extent, mark=mark)
+        return dict(distance=self.distance * u.pc, kind=self.kind_widget.value, extent=self.sky_extent, mark=mark,
+                    features=self.layer_features)
 
     # ------------------------------------------------------------------ running callbacks
     def _run(self, action, *args):
@@ -556,6 +590,7 @@ class Explorer:
             self.distance_widget.value = float(np.clip(self.distance_widget.value, 0.0, dmax))
         finally:
             self._syncing = False
+        self._update_layer()
         self._draw_sky()
         self._draw_profile()
         self.progress.value = 3
@@ -580,9 +615,9 @@ class Explorer:
             view.value = buf.getvalue()
 
     def _find_features(self):
-        """Features to mark: detected along the sight line when asked, else the table given."""
+        """Features to mark: detected along the sight line when asked, else the layer's, else the table given."""
         if not self.features_widget.value:
-            return self.features
+            return self.layer_features if self.layer_features is not None else self.features
         from ..features import sight_line_features
 
         radius = self.radius * u.deg if self.radius > 0 else None
@@ -660,6 +695,75 @@ class Explorer:
             self._syncing = False
         self._redraw_sight_line()
 
+    # ------------------------------------------------------------------ dust features layer
+    @staticmethod
+    def _is_density(model):
+        return hasattr(model, "samples_")
+
+    def model_features(self, model=None):
+        """All dust features of a fitted model, found once per model and kept.
+
+        A 3-D density model: :func:`dustkit.features.density_features` with
+        ``min_probability=0`` (the slider then picks, see :meth:`feature_parameters`); a
+        binned model: :func:`dustkit.features.detect_features` with its defaults.
+        """
+        from ..features import density_features, detect_features
+
+        model = self.model if model is None else model
+        key = id(model)
+        if key in self._layer_cache and self._layer_cache[key][0] is model:
+            self._layer_cache.move_to_end(key)
+            return self._layer_cache[key][1]
+        self._set_status("Finding the dust features of this model ...")
+        t0 = time.perf_counter()
+        if self._is_density(model):
+            found = density_features(model, min_probability=0.0, quiet=True)
+        else:
+            found = detect_features(model, quiet=True)
+        cut = " before the probability cut" if self._is_density(model) else ""
+        print(f"{len(found)} dust feature(s){cut} found in the model in {time.perf_counter() - t0:.1f} s.")
+        self._layer_cache[key] = (model, found)
+        while len(self._layer_cache) > self._cache_size + 1:  # the models kept, and the one shown
+            self._layer_cache.popitem(last=False)
+        return found
+
+    def feature_parameters(self):
+        """Keyword arguments of :func:`dustkit.features.significant_features` for the layer (density models)."""
+        return dict(min_probability=float(self.min_probability_widget.value))
+
+    def _update_layer(self):
+        """Find (or fetch) the features layer of the model shown, apply the slider, fill the table."""
+        density = self._is_density(self.model)
+        self.min_probability_widget.disabled = not density
+        if not self.feature_layer_widget.value:
+            self.layer_features = None
+            self.feature_table.value = ""
+            return
+        found = self.model_features()
+        if density:
+            from ..features import significant_features
+
+            found = significant_features(found, **self.feature_parameters())
+        self.layer_features = found
+        self.feature_table.value = feature_table_html(found, density)
+
+    def _on_feature_layer(self, change):
+        if self._syncing:
+            return
+        self._run(self._redraw_feature_layer)
+
+    def _redraw_feature_layer(self):
+        self._update_layer()
+        self._draw_sky()
+        self._draw_profile()
+        if self.layer_features is None:
+            self._set_status("Dust features hidden.")
+        else:
+            n = len(self.layer_features)
+            cut = (f" with probability >= {self.min_probability_widget.value:.2f}"
+                   if self._is_density(self.model) else "")
+            self._set_status(f"{n} dust feature(s){cut} in the model ({self.model.law}, R_V = {self.model.rv:g}).")
+
     # ------------------------------------------------------------------ export
     def _on_format(self, change):
         if self._syncing:
@@ -700,4 +804,5 @@ class Explorer:
 
     def __repr__(self):
         return f"<dustkit Explorer: {self.model!r}>"
+
 
