@@ -180,7 +180,7 @@ class DustLayer:
 
 
 def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=50_000, random_state=0, n_boot=0,
-              blocks=None):
+              blocks=None, distance_shift=None):
     """Fit an exponential dust layer to a tracer set by robust weighted least squares.
 
     Parameters
@@ -204,6 +204,10 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         residuals of neighbouring tracers, which the Jacobian treats as independent.
     blocks : array of int, optional
         Block label of each tracer for the bootstrap (default: :func:`sky_blocks`).
+    distance_shift : array of float, optional
+        Per-tracer shift in ln distance from the measured distance to where the tracer most
+        likely lies (``dustkit.density.solver.sample_distance_shift``); the fit then uses
+        ``distance x exp(shift)``.
 
     Returns
     -------
@@ -223,6 +227,8 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
     b = np.asarray(tracers.b, float)
     d = np.asarray(tracers.distance, float)
+    if distance_shift is not None:
+        d = d * np.exp(np.asarray(distance_shift, float))
     av = np.asarray(tracers.av, float)
     # per-tracer errors floored (AV_ERR_FLOOR mag, DISTANCE_FRAC_ERR_FLOOR of d), with a warning
     de, ae = floor_errors(d, tracers.distance_err, tracers.av_err)

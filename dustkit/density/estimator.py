@@ -18,7 +18,7 @@ from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
 from ..layer import DustLayer, fit_layer, layer_av_pc
 from .lattice import Lattice, active_pixels, chord, unit_vectors
-from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, tracer_terms
+from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
            "density_from_state"]
@@ -262,14 +262,21 @@ class DensityModel:
                                for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
         floored = int(np.sum(ae < AV_ERR_FLOOR))
         ae = np.maximum(ae, AV_ERR_FLOOR)
-        # layer errors by a bootstrap over sky blocks (clouds correlate neighbouring residuals)
-        layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=self.random_state)
         pixels = active_pixels(grid, l, b, radius)
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
         weight, n_groups = duplicate_weights(l, b, d, av, ae, de)
         corr = getattr(tracers, "av_distance_corr", None)
         corr = np.zeros(n) if corr is None else np.asarray(corr, float)
+        # where a tracer truly lies, given its measured distance and the catalogue's distances
+        # (parallax distances already carry a prior of their own: read_tracers)
+        if getattr(tracers, "distance_kind", "distance") == "parallax":
+            shift = np.zeros(n)
+        else:
+            shift = sample_distance_shift(d, de, weight)
+        # the layer from the same distances; its errors by a bootstrap over sky blocks (clouds
+        # correlate neighbouring residuals)
+        layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=self.random_state, distance_shift=shift)
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         amps, lens = cands
@@ -277,7 +284,7 @@ class DensityModel:
 
         def evaluate(amp, length, warm):
             lat = Lattice(grid, pixels, amp, length)
-            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
+            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             warm = warm if warm is not None and warm.shape == lat.shape else None
             full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
             resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
@@ -324,7 +331,7 @@ class DensityModel:
             # where they miss, more freedom in the cells in front of them (per cell)
             boost, cell_length = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp, length)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length)
-            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr)
+            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse
 
-__all__ = ["TracerTerms", "Posterior", "fit_posterior", "draw_samples", "cumulative_at_nodes"]
+__all__ = ["TracerTerms", "Posterior", "fit_posterior", "draw_samples", "cumulative_at_nodes", "sample_distance_shift"]
 
 #: Student-t degrees of freedom of the tracer likelihood.
 NU = 4.0
@@ -74,16 +74,20 @@ class TracerTerms:
 
 
 def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, weight=None, corr=None,
-                 n_nodes=N_NODES):
+                 n_nodes=N_NODES, log_shift=None):
     """Build :class:`TracerTerms` for tracers on ``lattice``.
 
     ``layer_av(b_deg, d_pc)`` is the smooth layer's cumulative A_V (plain arrays).
+    ``log_shift`` (per tracer, in ln distance) moves the centre of each tracer's distance
+    nodes from its measured distance to the mean of its true distance given the
+    catalogue's distance distribution (:func:`sample_distance_shift`).
     """
     e = lattice.grid.distance_edges
     d = np.asarray(distance, float)
     sig_ln = np.clip(np.asarray(distance_err, float) / np.maximum(d, 1e-9), 1e-4, 1.5)
     x, w = _nodes(n_nodes) if n_nodes > 1 else (np.zeros(1), np.ones(1))
-    dq = d[:, None] * np.exp(sig_ln[:, None] * x[None, :])  # (n, q)
+    centre = np.zeros(d.size) if log_shift is None else np.asarray(log_shift, float)
+    dq = d[:, None] * np.exp(centre[:, None] + sig_ln[:, None] * x[None, :])  # (n, q)
     censored = d > e[-1]
     dq = np.where(censored[:, None], e[-1], np.minimum(dq, e[-1]))
     n, q = dq.shape
@@ -97,6 +101,34 @@ def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, 
     corr = None if corr is None else np.clip(np.asarray(corr, float), -0.99, 0.99)
     return TracerTerms(coef, w, np.asarray(col, np.int64), np.asarray(av, float), np.asarray(av_err, float), censored,
                        None if weight is None else np.asarray(weight, float), corr, x)
+
+
+def sample_distance_shift(distance, distance_err, weight=None, bandwidth=0.08, max_sigma=1.0):
+    """Shift (in ln distance) from each measured distance to its true distance's mean under the sample's distribution.
+
+    A tracer measured at ``d`` with a log-normal error ``sigma`` is more likely to lie
+    where the catalogue has more tracers: with the catalogue's density of ln distance
+    ``n`` locally ``exp(beta ln d)``, the true ln distance is normal with mean
+    ``ln d + beta sigma^2`` (for a sample uniform in a disc, ``beta = 2``: the tracers
+    lie further than measured; near the catalogue's far limit ``beta < 0``). ``n`` is the
+    catalogue's own distribution of measured ln distances (a Gaussian kernel density of
+    ``bandwidth``), the empirical-Bayes form of the Lutz & Kelker (1973, PASP 85, 573)
+    correction; being the true distribution blurred by the errors, it errs towards
+    smaller shifts. Capped at ``max_sigma`` sigma.
+    """
+    d = np.asarray(distance, float)
+    sig = np.clip(np.asarray(distance_err, float) / np.maximum(d, 1e-9), 1e-4, 1.5)
+    x = np.log(np.maximum(d, 1e-9))
+    w = np.ones(d.size) if weight is None else np.asarray(weight, float)
+    h = float(bandwidth)
+    grid = np.arange(x.min() - 4 * h, x.max() + 4 * h + h / 4, h / 4)
+    idx = np.clip(np.searchsorted(grid, x), 0, grid.size - 1)
+    hist = np.bincount(idx, w, minlength=grid.size)
+    k = np.exp(-0.5 * (np.arange(-16, 17) / 4.0) ** 2)
+    dens = np.convolve(hist, k / k.sum(), mode="same") + 1e-3 * w.sum() / grid.size
+    beta = np.gradient(np.log(dens), grid)
+    shift = np.interp(x, grid, beta) * sig**2
+    return np.clip(shift, -max_sigma * sig, max_sigma * sig)
 
 
 def cumulative_at_nodes(terms, g):
