@@ -54,7 +54,7 @@ from ._lib.validation import check_choice, check_int, to_value
 from .answers import CAUTION, av_quantities, binned_av, grid_table, profile_table, query_table, sky_positions
 from .binned.finish import finish
 from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, heldout_rows
-from .binned.statistics import Statistics, monte_carlo_statistics, nominal_statistics, tracer_counts
+from .binned.statistics import Statistics, count_beyond, monte_carlo_statistics, nominal_statistics, tracer_counts
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
 from .layer import DustLayer, fit_layer
@@ -153,10 +153,17 @@ class ExtinctionModel:
     uncertainty_scheme_ : str
     sky_passes_, walk_variance_ : chosen smoothing (passes, mag^2/kpc)
     scatter_ : dict
-        Calibrated predictive variance: ``scale^2 (kappa * post_var + root^2 * A_V + (frac * A_V)^2)``.
+        Calibrated predictive variance: ``scale^2 (V + root^2 * A_V + (frac * A_V)^2)``, where
+        ``V`` is the model's own variance with its data part (not the prior) scaled by
+        ``kappa >= 0.1`` (:func:`dustkit.binned.calibration.model_variance`).
     cv_ : astropy.table.Table
         Cross-validation score of every candidate setting; ``cv_.meta["validation"]``
         says how the tracers were held out.
+    build_report_ : dict
+        Counts and notes of the build: ``beyond_grid`` (tracers beyond the last distance
+        edge, left out of the estimates: they only bound the extinction there from above),
+        the held-out tracers that chose the smoothing and calibrated the errors, the largest
+        shift of the monotone step, and ``notes`` (sentences saying so).
     """
 
     def __init__(
@@ -271,7 +278,7 @@ class ExtinctionModel:
                     slot[held] = 0
                 stats = monte_carlo_statistics(grid, layer, l, b, d, de, av, ae, slot, n_slots, plan.n_draws, rng, bar)
                 statistics = Statistics(stats.sum(axis=1), stats if k_fold else stats[:, :1],
-                                        tracer_counts(grid, l, b, d))
+                                        tracer_counts(grid, l, b, d), count_beyond(grid, d))
                 del stats
             else:
                 statistics = nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold if k_fold else None,
@@ -320,6 +327,7 @@ class ExtinctionModel:
         self.n_tracers_ = res.n_tracers
         self.differential_ = res.differential
         self.cv_ = res.cv
+        self.build_report_ = dict(res.report)
         self.counts_ = np.asarray(statistics.counts).reshape(res.grid.npix, res.grid.n_bins)
         if tracers is not None:
             self.tracers_ = tracers
