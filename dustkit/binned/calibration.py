@@ -36,20 +36,39 @@ KAPPA_MIN = 0.1
 KAPPA_LOG_SD = 0.5
 
 
-def prior_walk(distance_pc, residual, av_err):
+def prior_walk(distance_pc, residual, own_var):
     """Strength (mag^2/kpc) of the random walk that is the errors' prior where no tracer informs.
 
-    The held-out tracers' squared residuals about the layer minus their own squared errors
-    estimate the variance of the extinction the layer misses, ``q d``; ``q`` is its least-
-    squares slope through the origin in distance (kpc), plus one standard error of it, so
-    that a small catalogue which cannot pin it down does not claim it is small.
+    The held-out tracers' residuals about the layer are taken as normal with variance
+    ``q d + own_var`` (d in kpc; ``own_var`` the tracer's own: its A_V error squared plus
+    the layer's slope times its distance error, squared); ``q`` is the value at which the
+    median of ``residual^2 / (q d + own_var)`` is the chi-square(1) median, 0.4549 (a median, so that
+    outliers and the few tracers behind clouds do not set the spread of the whole sky),
+    plus one standard error of the least-squares estimate from the tracers within 3 sigma,
+    so that a small catalogue which cannot pin it down does not claim it is small.
     """
-    d = np.asarray(distance_pc, float) / 1000.0
-    y = np.asarray(residual, float) ** 2 - np.asarray(av_err, float) ** 2
-    dd = max(float(np.sum(d * d)), 1e-12)
-    q = float(np.sum(d * y)) / dd
-    se = float(np.sqrt(np.sum(d * d * (y - q * d) ** 2))) / dd
-    return max(q, 0.0) + se
+    d = np.maximum(np.asarray(distance_pc, float) / 1000.0, 1e-3)
+    r2 = np.asarray(residual, float) ** 2
+    ae2 = np.asarray(own_var, float)
+    if r2.size == 0:
+        return 0.0
+    chi2_median = 0.454936  # median of chi-square with 1 degree of freedom (from memory; 0.4549364)
+    lo, hi = 0.0, max(float(np.max(r2 / d)), 1e-12)
+    if np.median(r2 / (lo * d + ae2 + 1e-12)) <= chi2_median:
+        q = 0.0
+    else:
+        for _ in range(60):  # bisection: the median falls as q grows
+            mid = 0.5 * (lo + hi)
+            if np.median(r2 / (mid * d + ae2 + 1e-12)) > chi2_median:
+                lo = mid
+            else:
+                hi = mid
+        q = 0.5 * (lo + hi)
+    keep = r2 <= 9.0 * (q * d + ae2)
+    y, dk = r2[keep] - ae2[keep], d[keep]
+    dd = max(float(np.sum(dk * dk)), 1e-12)
+    se = float(np.sqrt(np.sum(dk * dk * (y - q * dk) ** 2))) / dd
+    return q + se
 
 
 def model_variance(post_var, prior_var, kappa, prior_ratio=1.0):

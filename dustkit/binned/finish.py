@@ -152,7 +152,11 @@ def finish(grid, layer, statistics, passes, heldout, rng):
     sigmas = sorted(distance_sigmas(edges))
     rows = HeldOutRows(grid, h, active, total, fold_stats[:, :, active, :], kernels, sigmas)
     (p_best, sd_best, q_best), tried = choose_smoothing(rows, layer_held, passes, sigmas, walk, use=choose)
-    q_err = prior_walk(h.distance, h.av - layer_held, h.av_err)  # the errors' prior where no tracer informs
+    # the errors' prior where no tracer informs, from the held-out residuals less the tracers' own
+    # errors (A_V, and distance through the layer's slope)
+    slope_err = 0.5 * (layer.av_pc(h.b, h.distance + h.distance_err) -
+                       layer.av_pc(h.b, np.maximum(h.distance - h.distance_err, 0.0)))
+    q_err = prior_walk(h.distance, h.av - layer_held, h.av_err**2 + slope_err**2)
     scatter = calibrate_on_heldout(rows, layer, (p_best, sd_best, q_best), rng, use=calib, walk_prior=q_err)
     sm_total = smooth_distance(smooth_sky(total, kernels[p_best]), rows.dkern[sd_best])
     rows.release()
