@@ -148,7 +148,7 @@ def binned_av(grid, layer, resid, post_var, walk_variance, scatter, l, b, d, dis
     beyond = np.maximum(d - grid.distance_edges[-1], 0.0) / 1000.0
     pv = pv + walk_variance * beyond  # carried forward with growing uncertainty
     a = np.maximum(layer.av_pc(b, d) + r, 0.0)
-    var = predictive_variance(scatter, pv, a)
+    var = predictive_variance(scatter, pv, a, walk_variance * np.maximum(d, 0.0) / 1000.0)  # prior: q d
     if distance_err is not None:
         slope = binned_slope(grid, layer, resid, l, b, d)
         var = var + (slope * distance_err) ** 2

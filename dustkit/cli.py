@@ -565,7 +565,8 @@ def _cmd_build(args, out):
         out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
             f"({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); {len(model.informed_pixels())} pixels "
             f"informed by tracers; sky smoothing {model.sky_passes_} passes; uncertainty "
-            f"'{model.uncertainty_scheme_}'.")
+            f"'{model.uncertainty_scheme_}'; {getattr(model, 'build_report_', {}).get('beyond_grid', 0)} tracers "
+            f"beyond the grid left out (bounds only).")
     path = save_model(model, args.output, overwrite=args.overwrite)
     out(f"Wrote the model to {path}", f"Caution: {CAUTION}")
     return 0

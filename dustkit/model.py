@@ -13,7 +13,9 @@ How a model is built (``ExtinctionModel.fit``):
    statistics of the model. Monte Carlo draws are split between the two edges around
    them with linear (cloud-in-cell) weights and spread bilinearly over the 4 nearest
    pixels; in the bin-scatter scheme each tracer goes whole to its own pixel and nearest
-   edge, in one fast pass (:mod:`dustkit.binned.statistics`).
+   edge, in one fast pass (:mod:`dustkit.binned.statistics`). Tracers (and draws) beyond
+   the last distance edge are left out: their A_V only bounds the extinction at the last
+   edge from above (``build_report_["beyond_grid"]`` counts them).
 4. Smooth the statistics on the sky with a neighbour kernel (HEALPix 8-neighbours,
    repeated passes) and combine along each sight line with a random-walk state-space model
    of the cumulative residual (Kalman filter + Rauch-Tung-Striebel smoother; Rauch, Tung &
@@ -21,15 +23,20 @@ How a model is built (``ExtinctionModel.fit``):
    i.e. the model falls back to the layer, with an uncertainty that grows with distance;
    beyond the last tracer the residual is carried forward with growing uncertainty.
 5. Choose the sky kernel width, the distance kernel width and the random-walk strength by
-   cross-validation on held-out tracers (K-fold up to 50 000 tracers; above, one random
-   held-out set of 50 000, the others training), and calibrate the predictive
-   uncertainty (the scatter of extinction around the model on scales it cannot resolve)
-   by maximum likelihood on held-out tracers, integrating over their distance errors, so
-   that 1-sigma intervals cover about 68% of the truth. The held-out tracers are
-   predicted only where they are: the nodes of their interpolation pixels, computed from
-   the training tracers' sums (``cv_.meta["validation"]`` records the scheme).
+   cross-validation on held-out tracers (spatially blocked K-fold up to 50 000 tracers;
+   above, one random held-out set of 50 000, the others training), and calibrate the
+   predictive uncertainty (the scatter of extinction around the model on scales it cannot
+   resolve) by maximum likelihood on held-out tracers, integrating over their distance
+   errors, so that 1-sigma intervals cover about 68% of the truth. The held-out tracers
+   are predicted only where they are: the nodes of their interpolation pixels, computed
+   from the training tracers' sums (``cv_.meta["validation"]`` records the scheme), after
+   the monotone step of 6, as the final model. From 10 000 held-out tracers on, one half
+   chooses the smoothing and the other calibrates. The fitted factor scales only the part
+   of the variance the tracers contribute, never the prior where none does
+   (:mod:`dustkit.binned.calibration`).
 6. Enforce non-decreasing cumulative A_V along every pixel's sight line by weighted
-   isotonic regression (Barlow et al. 1972).
+   isotonic regression (Barlow et al. 1972); the square of its move is added to each
+   node's variance.
 
 Answers at any (l, b, d) evaluate the layer at the exact position and add the binned
 residual interpolated bilinearly on the sky (the HEALPix interpolation of
@@ -54,7 +61,7 @@ from ._lib.validation import check_choice, check_int, to_value
 from .answers import CAUTION, av_quantities, binned_av, grid_table, profile_table, query_table, sky_positions
 from .binned.finish import finish
 from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, heldout_rows
-from .binned.statistics import Statistics, monte_carlo_statistics, nominal_statistics, tracer_counts
+from .binned.statistics import Statistics, count_beyond, monte_carlo_statistics, nominal_statistics, tracer_counts
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
 from .layer import DustLayer, fit_layer
@@ -153,10 +160,17 @@ class ExtinctionModel:
     uncertainty_scheme_ : str
     sky_passes_, walk_variance_ : chosen smoothing (passes, mag^2/kpc)
     scatter_ : dict
-        Calibrated predictive variance: ``scale^2 (kappa * post_var + root^2 * A_V + (frac * A_V)^2)``.
+        Calibrated predictive variance: ``scale^2 (V + root^2 * A_V + (frac * A_V)^2)``, where
+        ``V`` is the model's own variance with its data part (not the prior) scaled by
+        ``kappa >= 0.1`` (:func:`dustkit.binned.calibration.model_variance`).
     cv_ : astropy.table.Table
         Cross-validation score of every candidate setting; ``cv_.meta["validation"]``
         says how the tracers were held out.
+    build_report_ : dict
+        Counts and notes of the build: ``beyond_grid`` (tracers beyond the last distance
+        edge, left out of the estimates: they only bound the extinction there from above),
+        the held-out tracers that chose the smoothing and calibrated the errors, the largest
+        shift of the monotone step, and ``notes`` (sentences saying so).
     """
 
     def __init__(
@@ -271,7 +285,7 @@ class ExtinctionModel:
                     slot[held] = 0
                 stats = monte_carlo_statistics(grid, layer, l, b, d, de, av, ae, slot, n_slots, plan.n_draws, rng, bar)
                 statistics = Statistics(stats.sum(axis=1), stats if k_fold else stats[:, :1],
-                                        tracer_counts(grid, l, b, d))
+                                        tracer_counts(grid, l, b, d), count_beyond(grid, d))
                 del stats
             else:
                 statistics = nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold if k_fold else None,
@@ -320,6 +334,7 @@ class ExtinctionModel:
         self.n_tracers_ = res.n_tracers
         self.differential_ = res.differential
         self.cv_ = res.cv
+        self.build_report_ = dict(res.report)
         self.counts_ = np.asarray(statistics.counts).reshape(res.grid.npix, res.grid.n_bins)
         if tracers is not None:
             self.tracers_ = tracers

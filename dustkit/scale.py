@@ -286,7 +286,7 @@ def _pass2_link(acc, chunk, reading, offset, grid, layer, n_folds, seed, held, d
     if acc is None:
         shape = (grid.npix, grid.n_edges)
         acc = (np.zeros((5,) + shape), np.zeros((5, n_folds if held is None else 1) + shape),
-               np.zeros(grid.npix * grid.n_bins, dtype=np.int64))
+               np.zeros(grid.npix * grid.n_bins, dtype=np.int64), np.zeros(1, dtype=np.int64))
     if l.size == 0:
         return acc
     if held is None:
@@ -295,7 +295,7 @@ def _pass2_link(acc, chunk, reading, offset, grid, layer, n_folds, seed, held, d
         fold = None
         local = held[np.searchsorted(held, offset):np.searchsorted(held, offset + l.size)] - offset
     stats = nominal_statistics(grid, layer, l, b, d, av, ae, fold=fold, n_folds=n_folds, held=local, threads=1)
-    _pass2_merge(acc, tuple(stats))
+    _pass2_merge(acc, (stats.total, stats.fold_stats, stats.counts, np.array([stats.n_beyond], dtype=np.int64)))
     return acc
 
 
@@ -572,8 +572,9 @@ def _finish(model, sums, layer, held_data, k_fold, n_folds, seed, n_used, layer_
     held_fold = (fold_of_positions(held_data[0], held_data[1], held_data[2], n_folds, seed) if k_fold
                  else np.zeros(held_data.shape[1], dtype=np.int64))
     rng = np.random.default_rng(model.random_state)
-    model.fit_statistics(Statistics(*sums), layer, HeldOut(*held_data, held_fold), model.fit_plan(n_used), rng=rng,
-                         tracers=layer_set)
+    total, fold_stats, counts, n_beyond = sums
+    model.fit_statistics(Statistics(total, fold_stats, counts, int(n_beyond[0])), layer, HeldOut(*held_data, held_fold),
+                         model.fit_plan(n_used), rng=rng, tracers=layer_set)
 
 
 def _accepted(p1, n_chunks, duplicates):

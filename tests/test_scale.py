@@ -109,6 +109,9 @@ def test_chunked_parquet_folder_equals_in_memory_build(catalogue, chunked):
         ref.sky_passes_, pytest.approx(ref.walk_variance_, rel=1e-12), ref.distance_smoothing_)
     assert np.allclose(chunked.av_err_, ref.av_err_, rtol=1e-6, atol=1e-6)
     assert chunked.uncertainty_scheme_ == "bin-scatter"
+    rep, rep_ref = chunked.build_report_, ref.build_report_
+    assert rep["beyond_grid"] == rep_ref["beyond_grid"] > 0 and rep["notes"] == rep_ref["notes"]
+    assert rep["max_isotonic_shift"] == pytest.approx(rep_ref["max_isotonic_shift"], rel=1e-6, abs=1e-9)
     # and the model answers like the in-memory one at arbitrary positions
     lq, bq, dq = np.array([31.0, 50.5, 64.0]), np.array([0.7, -2.5, 1.0]), np.array([800.0, 2000.0, 3500.0])
     a1, e1 = chunked.av(lq * u.deg, bq * u.deg, dq * u.pc)
@@ -141,6 +144,11 @@ def test_same_as_extinction_model_fit_on_a_small_catalogue(tmp_path):
     assert np.allclose(big.n_tracers_, fit.n_tracers_, rtol=1e-9, atol=1e-12)
     assert np.allclose(big.av_, fit.av_, rtol=1e-9, atol=1e-12)
     assert np.allclose(big.av_err_, fit.av_err_, rtol=1e-6, atol=1e-6)  # same folds: same calibration
+    # tracers beyond the last edge (observed distances scatter past 4 kpc) are bounds, not
+    # measurements: both paths leave the same ones out and say so
+    far = int(np.count_nonzero(_arrays(tracers)[2] > 4000))
+    assert far > 0 and big.build_report_["beyond_grid"] == fit.build_report_["beyond_grid"] == far
+    assert big.scatter_ == pytest.approx(fit.scatter_, rel=1e-6, abs=1e-9)
 
 
 def test_two_worker_local_cluster_equals_single_process(catalogue, chunked):

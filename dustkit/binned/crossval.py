@@ -11,7 +11,8 @@ parameter in turn over its candidates, the others held, until nothing improves.
 import numpy as np
 from scipy import sparse
 
-from .smoothing import distance_kernel, kalman_smooth, node_observations, smooth_distance, smooth_sky
+from .._lib.isotonic import isotonic_rows
+from .smoothing import distance_kernel, kalman_smooth, node_observations, prior_variance, smooth_distance, smooth_sky
 
 __all__ = ["CACHE_BYTES", "prediction_matrix", "HeldOutRows", "choose_smoothing"]
 
@@ -70,6 +71,7 @@ class HeldOutRows:
         self.fold_rows = [np.unique(in_active[pix][in_active[pix] >= 0]) for pix, _ in self.sky_w]
         start = np.concatenate([[0], np.cumsum([r.size for r in self.fold_rows])])
         self.n_rows = int(start[-1])
+        self.row_pixels = active[np.concatenate(self.fold_rows)] if self.fold_rows else active[:0]
         self.maps = []
         for f, r in enumerate(self.fold_rows):
             m = np.full(grid.npix, self.n_rows)
@@ -116,6 +118,23 @@ class HeldOutRows:
         r, pv = kalman_smooth(m, ov, self.edges, q)
         return self.extend(r, 0.0), self.extend(pv, q * self.edges / 1000.0)
 
+    def monotone(self, p, sd, q, layer):
+        """The rows after the monotone step, as the final model: residual and variance, flattened.
+
+        Each row's sight line (the layer at its pixel centre plus the smoothed residual) is
+        made non-decreasing by the same weighted isotonic regression as the final model, and
+        clipped at 0; its variance is the smoother's plus the square of that shift, the
+        distance the monotone step moved it (the shared row of uninformed pixels keeps
+        residual 0 and the prior variance).
+        """
+        m, ov, _ = self.observations(p, sd)
+        r, pv = kalman_smooth(m, ov, self.edges, q)
+        _, bc = self.grid.pixel_centres(self.row_pixels)
+        layer_c = layer.av_pc(np.asarray(bc, float)[:, None], self.edges[None, :])
+        raw = layer_c + r
+        a = np.maximum(isotonic_rows(raw, 1.0 / (pv + 1e-6)), 0.0)
+        return self.extend(a - layer_c, 0.0), self.extend(pv + (a - raw) ** 2, prior_variance(q, self.edges))
+
     def release(self):
         """Drop the cached smoothings (the finishing step needs the memory next)."""
         self.sky_cache.clear()
@@ -123,13 +142,16 @@ class HeldOutRows:
         self.stats = None
 
 
-def choose_smoothing(rows, layer_at_heldout, passes, sigmas, walk):
+def choose_smoothing(rows, layer_at_heldout, passes, sigmas, walk, use=None):
     """The (sky passes, distance kernel, walk strength) with the smallest held-out mean squared error.
 
-    Returns the chosen setting and the score of every setting tried, as rows
-    ``(sky_passes, distance_smoothing, walk_variance, cv_mse)`` in the order tried.
+    The error is taken over the held-out tracers where ``use`` (default all; the others
+    are kept to calibrate the errors). Returns the chosen setting and the score of every
+    setting tried, as rows ``(sky_passes, distance_smoothing, walk_variance, cv_mse)`` in
+    the order tried.
     """
     av = rows.heldout.av
+    use = np.ones(av.size, dtype=bool) if use is None else np.asarray(use, dtype=bool)
     tried = []
     scores = {}
 
@@ -141,7 +163,7 @@ def choose_smoothing(rows, layer_at_heldout, passes, sigmas, walk):
         pred = np.empty(av.size)
         for f, i in enumerate(rows.members):
             pred[i] = np.maximum(layer_at_heldout[i] + rows.weights[f] @ r, 0.0)
-        mse = float(np.mean((av - pred) ** 2))
+        mse = float(np.mean((av[use] - pred[use]) ** 2))
         scores[(p, sd, q)] = mse
         tried.append((p, sd, q, mse))
         return mse

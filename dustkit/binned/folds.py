@@ -12,11 +12,14 @@ import numpy as np
 from .._lib import healpix
 from .._lib.validation import check_int
 
-__all__ = ["HELDOUT_MAX", "HeldOut", "mix64", "row_hash", "seed_of", "fold_of_rows", "fold_of_positions",
-           "heldout_rows"]
+__all__ = ["HELDOUT_MAX", "SPLIT_MIN", "HeldOut", "mix64", "row_hash", "seed_of", "fold_of_rows",
+           "fold_of_positions", "heldout_rows", "calibration_half"]
 
 #: Above this many tracers, one held-out set of at most this size instead of K folds.
 HELDOUT_MAX = 50_000
+#: From this many held-out tracers on, one half chooses the smoothing and the other calibrates the errors
+#: (the calibration uses at most 5 000 of them: from here on the split costs it nothing).
+SPLIT_MIN = 10_000
 
 
 @dataclass(frozen=True)
@@ -38,6 +41,11 @@ class HeldOut:
     def of_rows(cls, arrays, rows, fold):
         """The rows ``rows`` of the six tracer arrays (l, b, d, d_err, A_V, A_V_err), in ``fold``."""
         return cls(*(a[rows] for a in arrays), fold=np.asarray(fold, dtype=np.int64))
+
+    def subset(self, keep):
+        """The held-out tracers where ``keep`` (boolean or row numbers), with their folds."""
+        return HeldOut(*(np.asarray(getattr(self, k))[keep] for k in
+                         ("l", "b", "distance", "distance_err", "av", "av_err", "fold")))
 
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -119,3 +127,26 @@ def fold_of_positions(l_deg, b_deg, distance_pc, n_folds, random_state=0):
     shell = np.floor(np.log(np.maximum(np.asarray(distance_pc, float), 1.0)) / 0.25).astype(np.int64)
     key = pix * 4096 + np.clip(shell, 0, 4095)
     return (row_hash(key, random_state, 3) % np.uint64(n_folds)).astype(np.int64)
+
+
+def calibration_half(heldout, random_state=0):
+    """Which held-out tracers calibrate the errors (True) rather than choose the smoothing (False).
+
+    From :data:`SPLIT_MIN` held-out tracers on, a hash of each tracer's position (its l, b
+    and distance as float64 bits) puts it in one half or the other, so the errors are
+    calibrated on tracers that did not also pick the smoothing (which would make the
+    residuals look smaller than they are); both halves cover every fold. Smaller sets use
+    every tracer for both: the calibration's likelihood is shallow, and halving a few
+    thousand held-out tracers moved its optimum more than the choice of three smoothing
+    numbers biases it (1-sigma coverage 0.47 with the split, 0.55 without, in a test
+    region of 2 500 noisy tracers). The
+    hash depends on the positions only, so in-memory and chunked builds split alike.
+    """
+    n = np.asarray(heldout.l).size
+    if n < SPLIT_MIN:
+        return np.ones(n, dtype=bool)
+    key = np.zeros(n, dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for a in (heldout.l, heldout.b, heldout.distance):
+            key = mix64(key ^ np.ascontiguousarray(np.asarray(a, dtype=np.float64)).view(np.uint64))
+    return (row_hash(key.view(np.int64), random_state, 2) & np.uint64(1)).astype(bool)

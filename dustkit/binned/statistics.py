@@ -35,7 +35,7 @@ from ..grid import edge_index, edges_info
 from ..layer import layer_av_mu
 
 __all__ = [
-    "N_STATS", "Statistics", "weight_floor", "tracer_sums", "nominal_statistics", "monte_carlo_statistics",
+    "N_STATS", "Statistics", "count_beyond", "weight_floor", "tracer_sums", "nominal_statistics", "monte_carlo_statistics",
     "draw_residuals", "tracer_counts",
 ]
 
@@ -76,8 +76,12 @@ class _Scratch:
         return v
 
 
-def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch, at, scratch):
-    """Per-tracer quantities of one block into ``batch`` rows ``at:at + len(l)``."""
+def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch, at, scratch, dump):
+    """Per-tracer quantities of one block into ``batch`` rows ``at:at + len(l)``.
+
+    Tracers beyond the last edge go to the node index ``dump`` (one past the statistics),
+    which the caller drops: they only bound the extinction at the last edge from above.
+    """
     n = l.size
     s = slice(at, at + n)
     sc = scratch.view(n) if n != scratch.mu.size else scratch
@@ -89,12 +93,12 @@ def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch
     k, _ = edge_index(grid.distance_edges, d, sc.k, f, uniform, work=sc.t + sc.pix[3:4] + sc.m)
     # counts per (pixel, bin), with one more bin per pixel for tracers beyond the last edge
     cidx = batch.cidx[s]
-    over = sc.m[0]
-    np.greater(f, 1.0, out=over)
+    beyond, over = sc.m[1], sc.m[0]
+    np.greater(f, 1.0, out=beyond)
     np.multiply(pix, nb + 1, out=cidx)
     cidx += k
-    cidx += over
-    # statistics at the nearest edge (beyond the last edge: the last edge)
+    cidx += beyond
+    # statistics at the nearest edge (beyond the last edge: the dump node, dropped)
     idx = batch.idx[s]
     if slot is not None:
         np.multiply(slot, grid.npix, out=idx)
@@ -105,6 +109,7 @@ def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch
     idx += k
     np.greater_equal(f, 0.5, out=over)
     idx += over
+    np.putmask(idx, beyond, dump)
     w, wr, wr2, w2 = batch.q[:, s]
     # residual from the layer, r = A_V - layer, and weight w = 1 / (err^2 + floor^2)
     layer_av_mu(mu, d, layer.a0, layer.h, layer.z_sun, out=u, work=sc.t + sc.m)
@@ -117,13 +122,13 @@ def _fill_block(grid, uniform, layer, weight_floor, l, b, d, av, ae, slot, batch
     np.multiply(w, w, out=w2)
 
 
-def _fill_range(grid, uniform, layer, weight_floor, arrays, slot, lo, hi, batch, at, scratch):
+def _fill_range(grid, uniform, layer, weight_floor, arrays, slot, lo, hi, batch, at, scratch, dump):
     """Fill ``batch`` rows ``at:`` with tracers ``lo:hi``, block by block."""
     l, b, d, av, ae = arrays
     for s in range(lo, hi, _BLOCK):
         e = min(s + _BLOCK, hi)
         _fill_block(grid, uniform, layer, weight_floor, l[s:e], b[s:e], d[s:e], av[s:e], ae[s:e],
-                    None if slot is None else slot[s:e], batch, at + s - lo, scratch)
+                    None if slot is None else slot[s:e], batch, at + s - lo, scratch, dump)
 
 
 def tracer_sums(grid, layer, weight_floor, l, b, d, av, ae, slot=None, n_slots=1, bar=None, threads=None):
@@ -150,7 +155,9 @@ def tracer_sums(grid, layer, weight_floor, l, b, d, av, ae, slot=None, n_slots=1
     -------
     stats : ndarray (5, n_slots, npix, n_edges)
         Sums of w, w r, w r^2, w^2 and of counts, each tracer at its nearest distance
-        edge (tracers beyond the last edge at the last edge).
+        edge. Tracers beyond the last edge are left out: their A_V is an upper bound on
+        the extinction at the last edge, not a measurement of it (taking them as one biased
+        the far end high behind distant clouds).
     counts : ndarray (npix * n_bins,) of int64
         Tracers whose distance falls in each (pixel, bin), summed over slots; tracers beyond
         the last edge are not counted.
@@ -160,7 +167,7 @@ def tracer_sums(grid, layer, weight_floor, l, b, d, av, ae, slot=None, n_slots=1
     E, npix, nb = grid.n_edges, grid.npix, grid.n_bins
     size = n_slots * npix * E
     uniform = edges_info(grid.distance_edges)
-    stats = np.zeros((N_STATS, size))
+    stats = np.zeros((N_STATS, size + 1))  # one more node: the dump of tracers beyond the last edge
     counts = np.zeros(npix * (nb + 1), dtype=np.int64)
     batch = _Batch(min(_BATCH, max(n, 1)))
     if threads is None:
@@ -175,13 +182,13 @@ def tracer_sums(grid, layer, weight_floor, l, b, d, av, ae, slot=None, n_slots=1
             cuts = np.minimum(lo + np.ceil(np.linspace(0, (hi - lo) / _BLOCK, threads + 1)).astype(int) * _BLOCK, hi)
             jobs = [(int(a), int(c), sc) for a, c, sc in zip(cuts[:-1], cuts[1:], scratch) if c > a]
             run = lambda job: _fill_range(grid, uniform, layer, weight_floor, arrays, slot, job[0], job[1],  # noqa: E731
-                                          batch, job[0] - lo, job[2])
+                                          batch, job[0] - lo, job[2], size)
             list(pool.map(run, jobs) if pool is not None else map(run, jobs))
             m = hi - lo
             idx = batch.idx[:m]
             for j in range(4):
-                stats[j] += np.bincount(idx, batch.q[j, :m], size)
-            stats[4] += np.bincount(idx, minlength=size)
+                stats[j] += np.bincount(idx, batch.q[j, :m], size + 1)
+            stats[4] += np.bincount(idx, minlength=size + 1)
             counts += np.bincount(batch.cidx[:m], minlength=counts.size)
             if bar is not None:
                 bar.update(m)
@@ -189,7 +196,7 @@ def tracer_sums(grid, layer, weight_floor, l, b, d, av, ae, slot=None, n_slots=1
         if pool is not None:
             pool.shutdown()
     counts = counts.reshape(npix, nb + 1)[:, :nb]  # the extra bin held tracers beyond the last edge
-    return stats.reshape(N_STATS, n_slots, npix, E), np.ascontiguousarray(counts).reshape(-1)
+    return stats[:, :size].reshape(N_STATS, n_slots, npix, E), np.ascontiguousarray(counts).reshape(-1)
 
 
 #: mag added in quadrature to each tracer's A_V error in its weight, at least (see weight_floor)
@@ -203,15 +210,23 @@ class Statistics:
     ``total`` (5, npix, n_edges): sums of w, w r, w r^2, w^2 and n over all tracers;
     ``fold_stats`` (5, n_folds, npix, n_edges): the same for the held-out tracers of each
     fold (fold ``f`` is predicted from ``total - fold_stats[:, f]``); ``counts``
-    (npix * n_bins,): tracers per pixel and distance bin from nominal positions.
+    (npix * n_bins,): tracers per pixel and distance bin from nominal positions;
+    ``n_beyond``: tracers beyond the last distance edge, left out of the sums (their A_V
+    only bounds the extinction at the last edge from above).
     """
 
     total: np.ndarray
     fold_stats: np.ndarray
     counts: np.ndarray
+    n_beyond: int = 0
 
     def __iter__(self):  # unpacks as (total, fold_stats, counts)
         return iter((self.total, self.fold_stats, self.counts))
+
+
+def count_beyond(grid, d):
+    """Tracers (or draws) whose distance lies beyond the last distance edge."""
+    return int(np.count_nonzero(np.asarray(d) > grid.distance_edges[-1]))
 
 
 def weight_floor(layer):
@@ -249,13 +264,14 @@ def _accumulate(grid, n_folds, pix, fold, dist, resid, weight, per_draw, sky_wei
     size = n_folds * grid.npix * E
     flat = out.reshape(5, size)
     k, f = grid.edge_position(dist)
-    f = np.clip(f, 0.0, 1.0)  # beyond the last edge: all weight on the last edge
+    inside = f <= 1.0  # draws beyond the last edge only bound it from above: left out
+    f = np.clip(f, 0.0, 1.0)
     wt = np.broadcast_to(weight, dist.shape)
     pix = np.asarray(pix)[:, None, :]
     sky_weight = np.asarray(sky_weight)[:, None, :]
     row = (np.asarray(fold).reshape(1, 1, -1) * grid.npix + pix) * E  # (4, 1, n)
     for shift, c in ((0, 1.0 - f), (1, f)):
-        c = c * per_draw  # (draws, n)
+        c = c * (per_draw * inside)  # (draws, n)
         idx = (row + (k + shift)[None]).ravel()
         cs = (sky_weight * c[None]).ravel()
         wc = (sky_weight * (wt * c)[None]).ravel()
@@ -300,13 +316,14 @@ def nominal_statistics(grid, layer, l, b, d, av, ae, fold=None, n_folds=1, held=
     chunks of :mod:`dustkit.scale`.
     """
     wf = weight_floor(layer)
+    n_beyond = count_beyond(grid, d)
     if fold is not None:
         stats, counts = tracer_sums(grid, layer, wf, l, b, d, av, ae, fold, n_folds, bar=bar, threads=threads)
-        return Statistics(stats.sum(axis=1), stats, counts)
+        return Statistics(stats.sum(axis=1), stats, counts, n_beyond)
     stats, counts = tracer_sums(grid, layer, wf, l, b, d, av, ae, bar=bar, threads=threads)
     h = np.asarray(held, dtype=np.int64)
     fold_stats, _ = tracer_sums(grid, layer, wf, l[h], b[h], d[h], av[h], ae[h], threads=threads)
-    return Statistics(stats[:, 0], fold_stats, counts)
+    return Statistics(stats[:, 0], fold_stats, counts, n_beyond)
 
 
 def monte_carlo_statistics(grid, layer, l, b, d, de, av, ae, slot, n_slots, draws, rng, bar=None):
