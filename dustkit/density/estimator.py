@@ -268,15 +268,8 @@ class DensityModel:
         weight, n_groups = duplicate_weights(l, b, d, av, ae, de)
         corr = getattr(tracers, "av_distance_corr", None)
         corr = np.zeros(n) if corr is None else np.asarray(corr, float)
-        # where a tracer truly lies, given its measured distance and the catalogue's distances
-        # (parallax distances already carry a prior of their own: read_tracers)
-        if getattr(tracers, "distance_kind", "distance") == "parallax":
-            shift = np.zeros(n)
-        else:
-            shift = sample_distance_shift(d, de, weight)
-        # the layer from the same distances; its errors by a bootstrap over sky blocks (clouds
-        # correlate neighbouring residuals)
-        layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=self.random_state, distance_shift=shift)
+        shift, layer = _shift_and_layer(tracers, d, de, weight, self.random_state)
+        layer_at = layer.av_pc(b, d * np.exp(shift))  # the layer at the tracers (structure = model - layer)
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         amps, lens = cands
@@ -298,9 +291,10 @@ class DensityModel:
                     pvar[test] = var + var_d
                 bar.update(1)
             ok = ~terms.censored
-            tau, score = _fit_tau(resid[ok], pvar[ok], ae[ok], base[ok])
-            spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2)
-            rows.append((amp, length, tau, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
+            struct = np.maximum(base - layer_at, 0.0)
+            tau, tau_s, score = _fit_tau(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
+            spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
+            rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
                          float(np.mean(np.abs(resid[ok]) <= spread))))
             bar.update(1)
             return rows[-1], full.xi, resid, pvar, base, full.predicted
@@ -313,19 +307,20 @@ class DensityModel:
             for amp in amps:
                 warm = warm0 if prev is None else prev[1] * (prev[0][0] / amp)
                 prev = evaluate(amp, lens[-1], warm)
-                if best is None or prev[0][3] < best[0][3]:
+                if best is None or prev[0][4] < best[0][4]:
                     best = prev
             for length in lens[:-1][::-1]:
                 cand = evaluate(best[0][0], length, None)
-                if cand[0][3] < best[0][3]:
+                if cand[0][4] < best[0][4]:
                     best = cand
-            (amp, length, tau, *_), xi0, resid, pvar, base, fitted = best
+            (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted = best
             # what held-out tracers missed beyond their predicted spread; a tracer that even the
             # fit with it inside disagrees with is an outlier (a wrong member), not unresolved dust
             z_fit = (av - fitted) / np.sqrt(ae**2 + (tau * fitted) ** 2)
             consistent = NU / (NU + z_fit**2)
             # signed: a calibrated tracer scatters around zero; only the local average is clipped
             censored = d > grid.distance_edges[-1]
+            # (the structure term is left out: misses behind clouds must raise the prior there)
             excess = np.where(censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
             excess *= consistent
             # where they miss, more freedom in the cells in front of them (per cell)
@@ -344,9 +339,11 @@ class DensityModel:
         layer_var = _layer_variance(layer, grid)
         self.layer_err_ = np.sqrt((1.0 - self.support_) * layer_var)
         self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
+        self.structure_tau_ = float(tau_s)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
-                               + (self.tau_ * self.av_) ** 2)
-        self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "score", "rms", "coverage"))
+                               + (self.tau_ * self.av_) ** 2
+                               + (self.structure_tau_ * np.maximum(self.av_ - self._layer_nodes(), 0.0)) ** 2)
+        self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage"))
         self.cv_["length"].unit = u.pc
         self.cv_["rms"].unit = u.mag
         self.cv_.meta["validation"] = (f"{folds_n} folds of spatial blocks (HEALPix NSIDE 16 cells x 25%-deep "
@@ -450,7 +447,7 @@ class DensityModel:
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
             a[beyond] += extra
             var[beyond] += (extra * self.amplitude_) ** 2
-        var = var + (self.tau_ * a) ** 2
+        var = var + (self.tau_ * a) ** 2 + (getattr(self, "structure_tau_", 0.0) * np.maximum(a - lay_t, 0.0)) ** 2
         if distance_err is not None:
             var = var + (self._slope(pix, wgt, k) * np.asarray(distance_err, float)) ** 2
         return a, np.sqrt(var)
@@ -614,6 +611,22 @@ class DensityModel:
                 f"s={self.amplitude_:.2f}, L={self.length_:.0f} pc, tau={self.tau_:.3f})")
 
 
+def _shift_and_layer(tracers, d, de, weight, random_state):
+    """Where each tracer most likely lies (ln-distance shift) and the layer fitted there.
+
+    The shift comes from the catalogue's own distance distribution
+    (:func:`~dustkit.density.solver.sample_distance_shift`); parallax distances already
+    carry a prior of their own (``read_tracers``) and are not shifted. The layer's errors
+    come from a bootstrap over sky blocks (clouds correlate neighbouring residuals).
+    """
+    if getattr(tracers, "distance_kind", "distance") == "parallax":
+        shift = np.zeros(np.size(d))
+    else:
+        shift = sample_distance_shift(d, de, weight)
+    layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=random_state, distance_shift=shift)
+    return shift, layer
+
+
 def _scaled_cov(cov, ratio):
     """Layer covariance (a0, h, z_sun) after multiplying a0 by ``ratio``."""
     scale = np.array([ratio, 1.0, 1.0])
@@ -686,15 +699,22 @@ def _predict_terms(lat, terms, xs, f_mode):
     return mean, np.mean(lin**2, axis=1), var_d
 
 
-def _fit_tau(resid, pvar, err, base):
-    """Unresolved fraction ``tau`` by maximum Student-t likelihood of held-out residuals; returns (tau, score)."""
-    def nll(t):
-        v = pvar + err**2 + (t * base) ** 2
+def _fit_tau(resid, pvar, err, base, struct):
+    """Unresolved fractions by maximum Student-t likelihood of held-out residuals; returns (tau, tau_s, score).
+
+    ``tau`` is the fraction of all extinction the cells cannot resolve, ``tau_s`` the
+    fraction of the extinction the model attributes to structure beyond the layer
+    (``struct``): clouds and clumps carry more unresolved structure of their own (their
+    edges and cores inside a cell) than the smooth dust around them.
+    """
+    def nll(p):
+        v = pvar + err**2 + (p[0] * base) ** 2 + (p[1] * struct) ** 2
         z2 = resid**2 / v
         return float(np.mean(0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(z2 / NU)))
 
-    res = optimize.minimize_scalar(nll, bounds=(0.0, 1.0), method="bounded", options={"xatol": 1e-4})
-    return float(res.x), float(res.fun)
+    best = min(((t, ts) for t in (0.0, 0.03, 0.1) for ts in (0.0, 0.1, 0.3)), key=nll)
+    res = optimize.minimize(nll, best, method="L-BFGS-B", bounds=[(0.0, 1.0), (0.0, 2.0)])
+    return float(res.x[0]), float(res.x[1]), float(res.fun)
 
 
 def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, max_amplitude=2.0, shortest=60.0):
@@ -750,7 +770,7 @@ def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_wei
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
                  "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
-_STATE_SCALARS = ("amplitude_", "length_", "tau_")
+_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_")
 
 
 def density_state(model):
