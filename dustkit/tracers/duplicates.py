@@ -74,6 +74,15 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
         True for a row that repeats an earlier row's position, distance, A_V and errors exactly.
     copied : ndarray of bool
         True for every row of such a set of exact copies (the first one too).
+
+    Notes
+    -----
+    Longitude wraps: a row within two cells of l = 360 deg is also placed once more at
+    l - 360, so that two records of one cluster at l = 359.9999 and 0.0001 deg share a cell.
+    Rows alone in their cell are set aside before any sort: each grid's cell keys are hashed
+    (multiply-shift) into a table of four buckets per row (at most 2^24) and counted with
+    ``np.bincount``; only rows whose bucket holds two or more enter that grid's sort (rows
+    sharing a cell share its bucket, so no pair is lost).
     """
     n = l.size
     ii, jj = [], []
@@ -84,21 +93,8 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
         ii.append(i)
         jj.append(j)
     tol = max(float(tol_arcsec), 1e-6) / 3600.0  # exact copies are found even with a zero tolerance
-    cell = 2.0 * tol
-    cosb = np.maximum(np.cos(np.radians(b)), 1e-6)
-    x = np.mod(l, 360.0) * cosb
-    ci, cj = [], []
-    for sb in (0.0, 0.5):
-        kb = np.floor(b / cell + sb).astype(np.int64)
-        for sl in (0.0, 0.5):
-            kl = np.floor(x / cell + sl).astype(np.int64)
-            i, j = _pairs_same_key(kb * (1 << 31) + kl)
-            if i.size:
-                keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
-                ci.append(i[keep])
-                cj.append(j[keep])
-    if ci:
-        i, j = np.concatenate(ci), np.concatenate(cj)
+    i, j = _close_pairs(l, b, tol)
+    if i.size:
         same = np.ones(i.size, dtype=bool)
         for col in (l, b, d, d_err, av, av_err):
             same &= col[i] == col[j]
@@ -119,6 +115,44 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     graph = coo_matrix((np.ones(i.size, dtype=np.int8), (i, j)), shape=(n, n))
     _, group = connected_components(graph, directed=False)
     return group, exact, copied
+
+
+def _close_pairs(l, b, tol):
+    """Index pairs (i, j), i != j, of rows at most ``tol`` deg apart (each pair at least once).
+
+    Four grids of cells ``2 tol`` across, shifted by half a cell in latitude and in
+    longitude: a pair closer than ``tol`` in both coordinates shares a cell in one of them.
+    Longitude wraps (rows near l = 360 are placed once more at l - 360).
+    """
+    cell = 2.0 * tol
+    l = np.mod(l, 360.0)
+    cosb = np.maximum(np.cos(np.radians(b)), 1e-6)
+    # rows within two cells of l = 360 (in x = l cos b) placed once more at l - 360
+    wrap = np.flatnonzero((360.0 - l) * cosb < 2.0 * cell)
+    src = np.concatenate([np.arange(l.size), wrap])  # input row of each placed point
+    lp = np.concatenate([l, l[wrap] - 360.0])
+    bp = b[src] if wrap.size else b
+    x = lp * (cosb[src] if wrap.size else cosb)
+    bits = min(max(int(np.ceil(np.log2(max(4 * lp.size, 2)))), 4), 24)  # >= 4 buckets a row, <= 128 MB
+    ci, cj = [], []
+    for sb in (0.0, 0.5):
+        kb = np.floor(bp / cell + sb).astype(np.int64)
+        for sl in (0.0, 0.5):
+            key = kb * (1 << 31) + np.floor(x / cell + sl).astype(np.int64)
+            with np.errstate(over="ignore"):
+                bucket = ((key.view(np.uint64) * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(64 - bits)).astype(np.intp)
+            crowded = np.flatnonzero(np.bincount(bucket, minlength=1 << bits)[bucket] > 1)
+            if crowded.size == 0:
+                continue
+            i, j = _pairs_same_key(key[crowded])
+            i, j = src[crowded[i]], src[crowded[j]]
+            if i.size:
+                keep = (i != j) & (_separation_deg(l[i], b[i], l[j], b[j]) <= tol)
+                ci.append(i[keep])
+                cj.append(j[keep])
+    if not ci:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    return np.concatenate(ci), np.concatenate(cj)
 
 
 def _separation_deg(l1, b1, l2, b2):
@@ -170,28 +204,30 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     n = group.size
     counts = np.bincount(group, minlength=group.max() + 1 if n else 0)
     multi = counts[group] > 1
-    order = np.lexsort((np.arange(n), group))
-    first = np.ones(n, dtype=bool)
+    if not multi.any():  # nothing to merge or report (the common case: no sort at all)
+        return np.arange(n), dict(fields), empty_duplicates()
+    # the first row of each group stands for it; only rows of groups of two or more are sorted
+    head = np.empty(counts.size, dtype=np.int64)
+    head[group] = np.arange(n)  # right for single rows; groups of two or more are set below
+    members = np.flatnonzero(multi)
+    order = members[np.lexsort((members, group[members]))]
+    first = np.ones(order.size, dtype=bool)
     first[1:] = group[order][1:] != group[order][:-1]
-    head = np.empty(group.max() + 1 if n else 0, dtype=np.int64)
     head[group[order][first]] = order[first]
-    keep = np.sort(head) if mode == "merge" else np.arange(n)
-    report = empty_duplicates()
-    if multi.any():
-        k = np.flatnonzero(multi)
-        k = k[np.lexsort((rows[k], group[k]))]
-        gid = np.unique(group[k], return_inverse=True)[1]
-        report = Table(
-            {
-                "group": gid.astype(np.int64),
-                "row": rows[k].astype(np.int64),
-                "name": np.asarray(names)[k] if names is not None else np.char.add("row ", rows[k].astype(str)),
-                "kind": np.where(copied[k], "exact", "near"),
-                "merged_into": rows[head[group[k]]].astype(np.int64) if mode == "merge" else np.full(k.size, -1),
-            }
-        )
+    keep = np.flatnonzero(head[group] == np.arange(n)) if mode == "merge" else np.arange(n)
+    k = order[np.lexsort((rows[order], group[order]))]
+    gid = np.unique(group[k], return_inverse=True)[1]
+    report = Table(
+        {
+            "group": gid.astype(np.int64),
+            "row": rows[k].astype(np.int64),
+            "name": np.asarray(names)[k] if names is not None else np.char.add("row ", rows[k].astype(str)),
+            "kind": np.where(copied[k], "exact", "near"),
+            "merged_into": rows[head[group[k]]].astype(np.int64) if mode == "merge" else np.full(k.size, -1),
+        }
+    )
     merged = {}
-    if mode != "merge" or not multi.any():
+    if mode != "merge":
         return keep, {name: fields[name][keep] for name in fields}, report
     use = ~exact  # exact copies add no information
     m = group.max() + 1
