@@ -226,11 +226,24 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
             "merged_into": rows[head[group[k]]].astype(np.int64) if mode == "merge" else np.full(k.size, -1),
         }
     )
-    merged = {}
     if mode != "merge":
         return keep, {name: fields[name][keep] for name in fields}, report
-    use = ~exact  # exact copies add no information
-    m = group.max() + 1
+    # every kept row as it is, then the heads of groups of two or more overwritten with their
+    # group's merged values (computed on the groups' rows only)
+    merged = {name: fields[name][keep] for name in fields}
+    at = np.searchsorted(keep, order[first])  # where each group's head is among the kept rows
+    values = _merge_members({name: fields[name][order] for name in fields}, ~exact[order], np.cumsum(first) - 1,
+                            np.flatnonzero(first))
+    for name, v in values.items():
+        merged[name][at] = v
+    return keep, merged, report
+
+
+def _merge_members(fields, use, group, head):
+    """Merged values of each group (``group``: 0..m-1 per row, ``head``: each group's first row)."""
+    m = head.size
+    counts = np.bincount(group, minlength=m)
+    merged = {}
     for value, err in (("distance", "distance_err"), ("av", "av_err"), ("excess", "excess_err")):
         x, s = fields[value], fields[err]
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -238,10 +251,8 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
         sw = np.bincount(group, w, m)
         swx = np.bincount(group, w * x, m)
         ok = sw > 0
-        mean = np.where(ok, swx / np.where(ok, sw, 1.0), x[head])
-        sig = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s[head])
-        merged[value] = mean[group[keep]]
-        merged[err] = sig[group[keep]]
+        merged[value] = np.where(ok, swx / np.where(ok, sw, 1.0), x[head])
+        merged[err] = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s[head])
     lr, br = np.radians(fields["l"]), np.radians(fields["b"])
     xyz = [np.cos(br) * np.cos(lr), np.cos(br) * np.sin(lr), np.sin(br)]
     wpos = use.astype(float)
@@ -258,8 +269,8 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
             wa = np.where(ok, 1.0 / sa**2, 0.0)
             wd = np.where(ok, 1.0 / sd**2, 0.0)
             rho = np.bincount(group, term, m) / np.sqrt(np.bincount(group, wa, m) * np.bincount(group, wd, m))
-        rho = np.where(np.isfinite(rho), np.clip(rho, -1.0, 1.0), fields["av_distance_corr"][head])
-        merged["av_distance_corr"] = rho[group[keep]]
+        merged["av_distance_corr"] = np.where(np.isfinite(rho), np.clip(rho, -1.0, 1.0),
+                                              fields["av_distance_corr"][head])
     # asymmetric distance errors (parallaxes): the merged error times the inverse-variance mean of
     # the members' ratios low / sigma and high / sigma, so low + high stays 2 sigma
     if "distance_err_low" in fields and "distance_err_high" in fields:
@@ -270,11 +281,7 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
             for side in ("distance_err_low", "distance_err_high"):
                 ratio = np.where(s > 0, fields[side] / s, 0.0)
                 mean = np.bincount(group, w * ratio, m) / sw
-                merged[side] = np.where(np.isfinite(mean[group[keep]]), mean[group[keep]] * merged["distance_err"],
-                                        fields[side][keep])
-    merged["l"] = np.where(counts > 1, lm, fields["l"][head])[group[keep]]
-    merged["b"] = np.where(counts > 1, bm, fields["b"][head])[group[keep]]
-    for name in fields:
-        if name not in merged:
-            merged[name] = fields[name][keep]
-    return keep, merged, report
+                merged[side] = np.where(np.isfinite(mean), mean * merged["distance_err"], fields[side][head])
+    merged["l"] = np.where(counts > 1, lm, fields["l"][head])
+    merged["b"] = np.where(counts > 1, bm, fields["b"][head])
+    return merged
