@@ -282,6 +282,9 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     df.loc[11, "name"] = "C10"  # the same name within a chunk: merged
     df.loc[31] = df.loc[30]  # an exact copy within a chunk
     df.loc[200:204] = df.loc[20:24].to_numpy()  # exact copies of rows of another chunk
+    df.loc[250, "name"] = "C60"  # the same name in two chunks (other values): merged by inverse-variance means
+    df.loc[120, "name"] = "C10"  # a third C10, in another chunk than the first two
+    df.loc[130, "name"] = "C22"  # the same name as row 22 and its exact copy 202, in a third chunk
     df.to_parquet(tmp_path / "cat.parquet", row_group_size=64)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -289,13 +292,21 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
         m = build_from_parquet(tmp_path / "cat.parquet", chunk_size=100, quiet=True, **PARAMS)
     info = m.build_info_
     assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (len(ts), len(ts.rejected), ts.meta["n_merged"])
-    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (291, 2, 7)
+    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (288, 2, 10)
     assert info["n_used"] + info["n_rejected"] + info["n_merged"] == n and info["cross_chunk_copies"] == 5
+    # the duplicates reported alike: rows in groups of two or more, and groups
+    assert (info["duplicate_rows"], info["duplicate_groups"]) == (len(ts.duplicates),
+                                                                  np.unique(np.asarray(ts.duplicates["group"])).size)
     assert info["rejected_by_reason"] == ts.meta["rejected_by_reason"]
     assert set(info["assumptions"]) == set(ts.meta["assumptions"])
     assert any("Bailer-Jones 2015" in a for a in info["assumptions"])
     # the catalogue is smaller than the sample: the model's tracers are all of them, with the same distances
     np.testing.assert_allclose(np.sort(m.tracers_.distance), np.sort(ts.distance), rtol=1e-12)
+    # the tracers merged across chunks too: the same values and positions (matched by distance)
+    a, c = np.argsort(np.asarray(m.tracers_.distance)), np.argsort(np.asarray(ts.distance))
+    for k in ("av", "av_err", "distance_err", "l", "b"):
+        np.testing.assert_allclose(np.asarray(getattr(m.tracers_, k))[a], np.asarray(getattr(ts, k))[c], rtol=1e-10,
+                                   err_msg=k)
     # the reader's refusals stop a chunked build too: kpc without a unit, a modulus that does not say which
     kpc = pd.DataFrame({"l": df["l"].fillna(30.0), "b": df["b"], "distance": rng.uniform(0.5, 3.0, n),
                         "av": df["ebv"].clip(upper=1.0) * 3.1})

@@ -23,6 +23,7 @@ from .rules import DUPLICATE_NSIGMA, DUPLICATE_SEPARATION_ARCSEC
 __all__ = [
     "find_duplicates",
     "merge_groups",
+    "merge_measurements",
 ]
 
 
@@ -184,7 +185,9 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
         Index of the tracer that stands for each group (all tracers with ``'keep'``).
     merged : dict of ndarray
         The merged values of ``l``, ``b``, ``distance``, ``distance_err``, ``av``, ``av_err``,
-        ``excess``, ``excess_err`` for the kept tracers.
+        ``excess``, ``excess_err`` for the kept tracers; when groups were merged also
+        ``position_weight``, the length of the sum of a group's unit vectors (1 for a single
+        row), with which a later merge of merged tracers gives the same mean position.
     report : `~astropy.table.Table`
         One row per tracer in a group of two or more: ``group``, ``row``, ``name``, ``kind``,
         ``merged_into``.
@@ -231,20 +234,30 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     # every kept row as it is, then the heads of groups of two or more overwritten with their
     # group's merged values (computed on the groups' rows only)
     merged = {name: fields[name][keep] for name in fields}
+    merged["position_weight"] = np.ones(keep.size)
     at = np.searchsorted(keep, order[first])  # where each group's head is among the kept rows
-    values = _merge_members({name: fields[name][order] for name in fields}, ~exact[order], np.cumsum(first) - 1,
-                            np.flatnonzero(first))
+    values = merge_measurements({name: fields[name][order] for name in fields}, np.cumsum(first) - 1,
+                                np.flatnonzero(first), ~exact[order])
     for name, v in values.items():
         merged[name][at] = v
     return keep, merged, report
 
 
-def _merge_members(fields, use, group, head):
-    """Merged values of each group (``group``: 0..m-1 per row, ``head``: each group's first row)."""
+def merge_measurements(fields, group, head, use, weight=None):
+    """Merged values of each group of measurements (the formulas of :func:`merge_groups`).
+
+    ``group`` numbers each row's group 0..m-1, ``head`` is each group's first row, ``use``
+    marks the distinct measurements (False for exact copies) and ``weight`` (default 1) the
+    length of the sum of unit vectors a row's position already stands for (the unit vectors are
+    summed with these weights). Only the pairs of ``fields`` present are merged. The result
+    holds ``position_weight``, the length of each group's sum of unit vectors.
+    """
     m = head.size
     counts = np.bincount(group, minlength=m)
     merged = {}
     for value, err in (("distance", "distance_err"), ("av", "av_err"), ("excess", "excess_err")):
+        if value not in fields:
+            continue
         x, s = fields[value], fields[err]
         with np.errstate(divide="ignore", invalid="ignore"):
             w = np.where(use & (s > 0), 1.0 / s**2, 0.0)
@@ -255,7 +268,7 @@ def _merge_members(fields, use, group, head):
         merged[err] = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s[head])
     lr, br = np.radians(fields["l"]), np.radians(fields["b"])
     xyz = [np.cos(br) * np.cos(lr), np.cos(br) * np.sin(lr), np.sin(br)]
-    wpos = use.astype(float)
+    wpos = use * (1.0 if weight is None else np.asarray(weight, float))
     sx, sy, sz = (np.bincount(group, wpos * c, m) for c in xyz)
     lm = np.mod(np.degrees(np.arctan2(sy, sx)), 360.0)
     bm = np.degrees(np.arctan2(sz, np.hypot(sx, sy)))
@@ -284,4 +297,5 @@ def _merge_members(fields, use, group, head):
                 merged[side] = np.where(np.isfinite(mean), mean * merged["distance_err"], fields[side][head])
     merged["l"] = np.where(counts > 1, lm, fields["l"][head])
     merged["b"] = np.where(counts > 1, bm, fields["b"][head])
+    merged["position_weight"] = np.where(counts > 1, np.sqrt(sx * sx + sy * sy + sz * sz), wpos[head])
     return merged
