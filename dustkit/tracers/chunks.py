@@ -116,7 +116,7 @@ def chunk_tracers(chunk, reading, keys=False):
     table = read_chunk(chunk)
     extras = {}
     f, notes = build_tracers(table, source_desc=f"{chunk.path!r} rows {chunk.start}..{chunk.stop - 1}",
-                             file_sha=None, extras=extras, **reading)
+                             file_sha="", extras=extras, **reading)  # no content hash of a chunk's arrays
     if not keys:
         return f, notes, None
     used = list(dict.fromkeys(f["meta"]["columns"].values()))
@@ -139,9 +139,9 @@ def chunk_tracers(chunk, reading, keys=False):
 
 
 def sorted_keys(keys, local=None):
-    """``(keys sorted, positions among the chunk's tracers in that order)`` for :func:`cross_chunk_groups`."""
-    order = np.argsort(keys, kind="stable")
-    return keys[order], (order if local is None else np.asarray(local)[order]).astype(np.int64)
+    """``(keys sorted, keys in tracer order, positions of those keys among the chunk's tracers)`` for
+    :func:`cross_chunk_groups` (``local`` None: the keys of every tracer, in order)."""
+    return np.sort(keys), keys, local
 
 
 def _hash_strings(values):
@@ -201,15 +201,16 @@ def _repeated(parts):
         return empty
     keys, cid, local = [], [], []
     for c in cids:
-        hs, pos_of = parts[c]
+        hs, unsorted, pos_of = parts[c]
         lo, hi = np.searchsorted(hs, rep, "left"), np.searchsorted(hs, rep, "right")
-        cnt = hi - lo
-        if cnt.sum() == 0:
+        if not np.any(hi > lo):
             continue
-        pos = np.repeat(lo - np.cumsum(cnt) + cnt, cnt) + np.arange(cnt.sum())
-        keys.append(hs[pos])
+        here = rep[hi > lo]  # the few repeated keys this chunk holds: found in its tracer order
+        at = np.searchsorted(here, unsorted)
+        pos = np.flatnonzero(here[np.minimum(at, here.size - 1)] == unsorted)
+        keys.append(unsorted[pos])
         cid.append(np.full(pos.size, c, dtype=np.int64))
-        local.append(pos_of[pos])
+        local.append(pos if pos_of is None else np.asarray(pos_of)[pos])
     return np.concatenate(keys), np.concatenate(cid), np.concatenate(local)
 
 
