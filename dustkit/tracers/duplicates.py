@@ -78,8 +78,9 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
 
     Notes
     -----
-    Longitude wraps: a row within two cells of l = 360 deg is also placed once more at
-    l - 360, so that two records of one cluster at l = 359.9999 and 0.0001 deg share a cell.
+    Longitude wraps: the rows within two cells of l = 0/360 deg are searched once more with
+    the wrap moved to l = 180 deg, so that two records of one cluster at l = 359.9999 and
+    0.0001 deg are compared.
     Rows alone in their cell are set aside before any sort: each grid's cell keys are hashed
     (multiply-shift) into a table of four buckets per row (at most 2^24) and counted with
     ``np.bincount``; only rows whose bucket holds two or more enter that grid's sort (rows
@@ -123,37 +124,59 @@ def _close_pairs(l, b, tol):
 
     Four grids of cells ``2 tol`` across, shifted by half a cell in latitude and in
     longitude: a pair closer than ``tol`` in both coordinates shares a cell in one of them.
-    Longitude wraps (rows near l = 360 are placed once more at l - 360).
+    Longitude wraps: the rows within two cells of l = 0/360 are searched once more with the
+    wrap moved to l = 180 deg.
     """
-    cell = 2.0 * tol
     l = np.mod(l, 360.0)
+    ci, cj = _grid_pairs(l, b, tol)
     cosb = np.maximum(np.cos(np.radians(b)), 1e-6)
-    # rows within two cells of l = 360 (in x = l cos b) placed once more at l - 360
-    wrap = np.flatnonzero((360.0 - l) * cosb < 2.0 * cell)
-    src = np.concatenate([np.arange(l.size), wrap])  # input row of each placed point
-    lp = np.concatenate([l, l[wrap] - 360.0])
-    bp = b[src] if wrap.size else b
-    x = lp * (cosb[src] if wrap.size else cosb)
-    bits = min(max(int(np.ceil(np.log2(max(4 * lp.size, 2)))), 4), 24)  # >= 4 buckets a row, <= 128 MB
-    ci, cj = [], []
-    for sb in (0.0, 0.5):
-        kb = np.floor(bp / cell + sb).astype(np.int64)
-        for sl in (0.0, 0.5):
-            key = kb * (1 << 31) + np.floor(x / cell + sl).astype(np.int64)
-            with np.errstate(over="ignore"):
-                bucket = ((key.view(np.uint64) * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(64 - bits)).astype(np.intp)
-            crowded = np.flatnonzero(np.bincount(bucket, minlength=1 << bits)[bucket] > 1)
-            if crowded.size == 0:
-                continue
-            i, j = _pairs_same_key(key[crowded])
-            i, j = src[crowded[i]], src[crowded[j]]
-            if i.size:
-                keep = (i != j) & (_separation_deg(l[i], b[i], l[j], b[j]) <= tol)
-                ci.append(i[keep])
-                cj.append(j[keep])
+    near = np.flatnonzero(np.minimum(l, 360.0 - l) * cosb < 4.0 * tol)
+    if near.size > 1:
+        lw = l[near]
+        i, j = _grid_pairs(np.where(lw > 180.0, lw - 180.0, lw + 180.0), b[near], tol)
+        ci += [near[x] for x in i]
+        cj += [near[x] for x in j]
     if not ci:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     return np.concatenate(ci), np.concatenate(cj)
+
+
+def _grid_pairs(l, b, tol):
+    """Lists of index arrays (i, j) of the pairs within ``tol`` that share a cell of one of the four grids.
+
+    Rows alone in their cell skip the sort: the cell keys are hashed (multiply-shift) into about
+    four buckets a row and counted (``np.bincount``); only rows whose bucket holds two or more
+    are sorted (rows sharing a cell share its bucket)."""
+    cell = 2.0 * tol
+    n = l.size
+    cosb = np.cos(np.radians(b))
+    np.maximum(cosb, 1e-6, out=cosb)
+    u = np.multiply(l, cosb, out=cosb)
+    u /= cell
+    v = b / cell
+    kl = (np.floor(u).astype(np.int64), np.floor(u + 0.5).astype(np.int64))
+    kb = (np.floor(v).astype(np.int64) << 31, np.floor(v + 0.5).astype(np.int64) << 31)
+    del u, v
+    bits = min(max(int(np.ceil(np.log2(max(4 * n, 2)))), 4), 24)  # >= 4 buckets a row, <= 128 MB
+    key = np.empty(n, np.int64)
+    bucket = np.empty(n, np.uint64)
+    ci, cj = [], []
+    for a in kb:
+        for c in kl:
+            np.add(a, c, out=key)
+            with np.errstate(over="ignore"):
+                np.multiply(key.view(np.uint64), np.uint64(0x9E3779B97F4A7C15), out=bucket)
+            np.right_shift(bucket, np.uint64(64 - bits), out=bucket)
+            hb = bucket.view(np.int64)
+            crowded = np.flatnonzero(np.bincount(hb, minlength=1 << bits)[hb] > 1)
+            if crowded.size == 0:
+                continue
+            i, j = _pairs_same_key(key[crowded])
+            i, j = crowded[i], crowded[j]
+            keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
+            ci.append(i[keep])
+            cj.append(j[keep])
+    return ci, cj
 
 
 def _separation_deg(l1, b1, l2, b2):
