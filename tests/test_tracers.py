@@ -984,6 +984,26 @@ def test_near_duplicates_found_across_l_zero_and_near_the_pole():
     assert ts.av[wrap] == pytest.approx(1.025, rel=1e-12)  # equal errors: the plain mean
 
 
+def test_near_duplicates_found_at_any_longitude_and_latitude():
+    # pairs of records of invented clusters a random 0.05-0.99 arcsec apart at random places on the sky: every pair
+    # is merged (the separation is the haversine great-circle distance, common practice), also at large l and |b|
+    # where l cos b changes by more than the tolerance across it
+    rng = np.random.default_rng(5)
+    n = 400
+    l0, b0 = rng.uniform(0, 360, n), np.degrees(np.arcsin(rng.uniform(-0.999, 0.999, n)))
+    sep, pa = rng.uniform(0.05, 0.99, n) / 3600, rng.uniform(0, 2 * np.pi, n)
+    b1 = b0 + sep * np.cos(pa)
+    l1 = np.mod(l0 + sep * np.sin(pa) / np.cos(np.radians(b0)), 360.0)
+    from dustkit._lib.sky import separation_deg
+
+    ok = separation_deg(l0, b0, l1, b1) * 3600 < 0.999  # the flat-sky offset is within the tolerance
+    t = Table({"l": np.r_[l0[ok], l1[ok]], "b": np.r_[b0[ok], b1[ok]], "dist": np.full(2 * ok.sum(), 1000.0) * u.pc,
+               "e_dist": np.full(2 * ok.sum(), 100.0) * u.pc, "av": np.ones(2 * ok.sum()), "e_av": np.full(2 * ok.sum(), 0.1)})
+    with pytest.warns(DuplicatesWarning):
+        ts = _quiet_assumptions(read_tracers, t)
+    assert ok.sum() > 350 and len(ts) == ok.sum()
+
+
 def test_same_name_is_a_duplicate():
     t = _dup_catalogue()
     t["name"][2] = "A"

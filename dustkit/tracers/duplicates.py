@@ -1,15 +1,19 @@
 """Duplicated tracers: exact copies of a row, and near-duplicates (the same name, or the same place
 with distance and A_V within their errors, as when two compilations are merged).
 
-Groups are found without Python loops over tracers. Places: the rows are sorted by the keys
-of four grids of cells twice the separation tolerance across, shifted by half a cell in
-latitude and in longitude, so that every pair closer than the tolerance in both coordinates
-shares a cell in at least one grid; within a cell every pair is compared (rows ``k`` apart
-in the sorted order, for ``k = 1, 2, ...`` while any cell holds more than ``k`` rows), its
-separation checked exactly, and it is one tracer only if distance and A_V also agree within
-``nsigma`` times their combined errors. So a crowded field, many distinct stars within the
-tolerance but at different distances or reddenings, is not merged. Exact copies repeat every
-value of a close pair. Names: one sort. Pairs are joined into groups by connected components.
+Groups are found without Python loops over tracers. Places: rows alone in their cell of a
+coarse grid (64 times the tolerance across, cells counted by hashed keys and ``np.bincount``)
+and away from its edges are set aside first; the others are sorted by the keys of four grids
+of cells twice the separation tolerance across, shifted by half a cell in latitude and in
+longitude, with longitude scaled by the cosine of each latitude band's edge farthest from the
+equator, so that every pair closer than the tolerance shares a cell in at least one grid at
+any l and b; the rows near l = 0/360 are searched once more with the wrap moved. Within a
+cell every pair is compared (rows ``k`` apart in the sorted order, for ``k = 1, 2, ...``
+while any cell holds more than ``k`` rows), its separation checked exactly, and it is one
+tracer only if distance and A_V also agree within ``nsigma`` times their combined errors. So
+a crowded field, many distinct stars within the tolerance but at different distances or
+reddenings, is not merged. Exact copies repeat every value of a close pair. Names: one sort.
+Pairs are joined into groups by connected components.
 """
 
 import numpy as np
@@ -81,10 +85,11 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     Longitude wraps: the rows within two cells of l = 0/360 deg are searched once more with
     the wrap moved to l = 180 deg, so that two records of one cluster at l = 359.9999 and
     0.0001 deg are compared.
-    Rows alone in their cell are set aside before any sort: each grid's cell keys are hashed
-    (multiply-shift) into a table of four buckets per row (at most 2^24) and counted with
-    ``np.bincount``; only rows whose bucket holds two or more enter that grid's sort (rows
-    sharing a cell share its bucket, so no pair is lost).
+    Rows alone in their cell of a coarse grid (cells 64 times the tolerance) and away from its
+    edges are set aside before any sort (cells counted by hashing their keys into
+    ``np.bincount``). In every grid, longitude is scaled by the cosine of the latitude band's
+    edge farthest from the equator, so that a pair within the tolerance is within it in both
+    cell coordinates at any latitude and longitude.
     """
     n = l.size
     ii, jj = [], []
@@ -124,55 +129,77 @@ def _close_pairs(l, b, tol):
 
     Four grids of cells ``2 tol`` across, shifted by half a cell in latitude and in
     longitude: a pair closer than ``tol`` in both coordinates shares a cell in one of them.
-    Longitude wraps: the rows within two cells of l = 0/360 are searched once more with the
-    wrap moved to l = 180 deg.
+    Only the rows :func:`_not_alone` keeps are searched. Longitude wraps: those within two
+    cells of l = 0/360 are searched once more with the wrap moved to l = 180 deg.
     """
     l = np.mod(l, 360.0)
-    ci, cj = _grid_pairs(l, b, tol)
-    cosb = np.maximum(np.cos(np.radians(b)), 1e-6)
-    near = np.flatnonzero(np.minimum(l, 360.0 - l) * cosb < 4.0 * tol)
+    rows = _not_alone(l, b, tol)
+    if rows.size < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    lr, br = l[rows], b[rows]
+    ci, cj = _grid_pairs(lr, br, tol)
+    near = np.flatnonzero(np.minimum(lr, 360.0 - lr) * np.maximum(np.cos(np.radians(br)), 1e-6) < 4.0 * tol)
     if near.size > 1:
-        lw = l[near]
-        i, j = _grid_pairs(np.where(lw > 180.0, lw - 180.0, lw + 180.0), b[near], tol)
+        lw = lr[near]
+        i, j = _grid_pairs(np.where(lw > 180.0, lw - 180.0, lw + 180.0), br[near], tol)
         ci += [near[x] for x in i]
         cj += [near[x] for x in j]
     if not ci:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    return np.concatenate(ci), np.concatenate(cj)
+    return rows[np.concatenate(ci)], rows[np.concatenate(cj)]
+
+
+def _band_scale(kb, shift, size):
+    """cos of the latitude band edge farthest from the equator (band ``kb`` of cells ``size`` deg
+    across, shifted by ``shift`` cells): l times it is at most the arc length along any parallel of
+    the band, so two rows of a band within ``tol`` deg are within ``tol`` in it."""
+    edge = np.maximum(np.abs(kb - shift), np.abs(kb - shift + 1)) * size
+    return np.maximum(np.cos(np.radians(np.minimum(edge, 90.0))), 1e-6)
+
+
+def _not_alone(l, b, tol, coarse=64):
+    """Sorted indices of the rows that may have another row within ``tol`` deg (the others have none).
+
+    One grid of cells ``coarse * tol`` across (l in [0, 360) scaled by :func:`_band_scale`): a
+    row alone in its cell, farther than ``tol`` from the cell's edges and from l = 360 has no
+    row within ``tol``. Cells are counted by hashing their keys (multiply-shift) into about
+    four buckets a row with ``np.bincount``, without a sort; only the rows of buckets holding
+    two or more are sorted, to tell a shared cell from a shared bucket."""
+    size = coarse * tol
+    v = b / size
+    kv = np.floor(v)
+    v -= kv
+    scale = _band_scale(kv, 0.0, size)
+    u = l * scale
+    m = 1.001 / coarse  # tol in cells, with a margin for rounding
+    edge = (360.0 - l) * scale < 1.001 * tol  # near the wrap (l = 0 is a cell edge)
+    u /= size
+    ku = np.floor(u)
+    u -= ku
+    edge |= (u < m) | (u > 1.0 - m) | (v < m) | (v > 1.0 - m)
+    key = (kv.astype(np.int64) << 31) + ku.astype(np.int64)
+    del u, v, kv, ku, scale
+    bits = min(max(int(np.ceil(np.log2(max(4 * l.size, 2)))), 4), 24)  # >= 4 buckets a row, <= 128 MB
+    with np.errstate(over="ignore"):
+        bucket = ((key.view(np.uint64) * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(64 - bits)).view(np.int64)
+    shared = np.flatnonzero(np.bincount(bucket, minlength=1 << bits)[bucket] > 1)
+    i, j = _pairs_same_key(key[shared], all_pairs=False)  # rows of a shared bucket that share a cell
+    edge[shared[i]] = True
+    edge[shared[j]] = True
+    return np.flatnonzero(edge)
 
 
 def _grid_pairs(l, b, tol):
-    """Lists of index arrays (i, j) of the pairs within ``tol`` that share a cell of one of the four grids.
-
-    Rows alone in their cell skip the sort: the cell keys are hashed (multiply-shift) into about
-    four buckets a row and counted (``np.bincount``); only rows whose bucket holds two or more
-    are sorted (rows sharing a cell share its bucket)."""
+    """Lists of index arrays (i, j) of the pairs within ``tol`` that share a cell of one of the four
+    grids (cells ``2 tol`` across, l scaled per latitude band by :func:`_band_scale`)."""
     cell = 2.0 * tol
-    n = l.size
-    cosb = np.cos(np.radians(b))
-    np.maximum(cosb, 1e-6, out=cosb)
-    u = np.multiply(l, cosb, out=cosb)
-    u /= cell
-    v = b / cell
-    kl = (np.floor(u).astype(np.int64), np.floor(u + 0.5).astype(np.int64))
-    kb = (np.floor(v).astype(np.int64) << 31, np.floor(v + 0.5).astype(np.int64) << 31)
-    del u, v
-    bits = min(max(int(np.ceil(np.log2(max(4 * n, 2)))), 4), 24)  # >= 4 buckets a row, <= 128 MB
-    key = np.empty(n, np.int64)
-    bucket = np.empty(n, np.uint64)
     ci, cj = [], []
-    for a in kb:
-        for c in kl:
-            np.add(a, c, out=key)
-            with np.errstate(over="ignore"):
-                np.multiply(key.view(np.uint64), np.uint64(0x9E3779B97F4A7C15), out=bucket)
-            np.right_shift(bucket, np.uint64(64 - bits), out=bucket)
-            hb = bucket.view(np.int64)
-            crowded = np.flatnonzero(np.bincount(hb, minlength=1 << bits)[hb] > 1)
-            if crowded.size == 0:
-                continue
-            i, j = _pairs_same_key(key[crowded])
-            i, j = crowded[i], crowded[j]
+    for sb in (0.0, 0.5):
+        kb = np.floor(b / cell + sb)
+        x = l * _band_scale(kb, sb, cell)
+        kb = kb.astype(np.int64) << 31
+        for sl in (0.0, 0.5):
+            i, j = _pairs_same_key(kb + np.floor(x / cell + sl).astype(np.int64))
             keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
             ci.append(i[keep])
             cj.append(j[keep])
