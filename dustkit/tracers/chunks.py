@@ -61,7 +61,7 @@ def read_chunk(chunk):
             if pos >= chunk.stop:
                 break
         tab = pa.Table.from_batches(batches, schema=pf.schema_arrow) if batches else pf.schema_arrow.empty_table()
-        out = Table()
+        cols = {}
         for name in tab.column_names:
             col = tab.column(name)
             if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
@@ -69,9 +69,10 @@ def read_chunk(chunk):
             else:
                 vals = col.to_numpy(zero_copy_only=False)
             if col.null_count:
-                out[name] = MaskedColumn(vals, mask=np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool))
+                cols[name] = MaskedColumn(vals, mask=np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool))
             else:
-                out[name] = vals
+                cols[name] = vals
+        out = Table(cols, names=tab.column_names, copy=False)  # the arrays as pyarrow made them (read only)
     else:
         from astropy.io import fits
 

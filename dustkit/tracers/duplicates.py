@@ -152,9 +152,13 @@ def _close_pairs(l, b, tol):
 def _band_scale(kb, shift, size):
     """cos of the latitude band edge farthest from the equator (band ``kb`` of cells ``size`` deg
     across, shifted by ``shift`` cells): l times it is at most the arc length along any parallel of
-    the band, so two rows of a band within ``tol`` deg are within ``tol`` in it."""
-    edge = np.maximum(np.abs(kb - shift), np.abs(kb - shift + 1)) * size
-    return np.maximum(np.cos(np.radians(np.minimum(edge, 90.0))), 1e-6)
+    the band, so two rows of a band within ``tol`` deg are within ``tol`` in it. (One cosine per
+    band, looked up per row.)"""
+    lo = np.min(kb) if kb.size else 0.0
+    bands = np.arange(lo, (np.max(kb) if kb.size else 0.0) + 1.0)
+    edge = np.maximum(np.abs(bands - shift), np.abs(bands - shift + 1)) * size
+    table = np.maximum(np.cos(np.radians(np.minimum(edge, 90.0))), 1e-6)
+    return table[(kb - lo).astype(np.intp)]
 
 
 def _not_alone(l, b, tol, coarse=64):
