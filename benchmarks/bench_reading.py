@@ -58,10 +58,10 @@ def write_catalogue(path, n, seed=0):
     pq.write_table(table, path, row_group_size=1_000_000)
 
 
-def measure(cmd, env=None):
+def measure(cmd, env=None, cwd=None):
     """Wall time (s) and peak resident memory (GiB) of one child process."""
     start = time.perf_counter()
-    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(cmd, env=env, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     _, status, usage = os.wait4(proc.pid, 0)
     elapsed = time.perf_counter() - start
     err = proc.stderr.read().decode(errors="replace")
@@ -92,9 +92,10 @@ def main(argv=None):
             write_catalogue(cat, n)
             runs = []
             for _ in range(max(args.repeat, 1)):  # alternately, so that both see the same load
-                floor_t, floor_m = measure([sys.executable, "-c", _FLOOR, cat], env)
+                floor_t, floor_m = measure([sys.executable, "-c", _FLOOR, cat], env, cwd=root)
+                # run in the repository: `python -m` puts the working folder first on the path
                 build_t, build_m = measure([sys.executable, "-m", "dustkit", "--quiet", "build", cat, "-o",
-                                            os.path.join(work, f"model_{n}.fits"), "--overwrite"], env)
+                                            os.path.join(work, f"model_{n}.fits"), "--overwrite"], env, cwd=root)
                 runs.append((floor_t, floor_m, build_t, build_m))
                 if args.repeat > 1:
                     print(f"{n:>10,d} tracers, run {len(runs)}: floor {floor_t:6.1f} s {floor_m:5.2f} GiB | build "
