@@ -16,9 +16,10 @@ Pass 1 (sample)
     different chunks are found from two 64-bit hashes of each tracer kept sorted per chunk
     (its input row's values, and its name): exact copies are counted once and tracers of the
     same name merged into the first by the reader's inverse-variance means, so the counts and
-    values equal the in-memory read's. (Not found across chunks: near-duplicates by position
-    alone; and an exact copy of another chunk's row that its own chunk merges with a third
-    row stands for both, so the third row's measurement is lost.) Local builds of at most
+    values equal the in-memory read's (an exact copy that its own chunk merged with other
+    rows keeps them, the repeated row taken out once). Not found across chunks: near-duplicates
+    by position alone; and when the repeated row was itself merged in its chunk, the copy's
+    group is dropped with it. Local builds of at most
     ``CACHE_ROWS`` rows keep each chunk's checked arrays for pass 2. A deterministic uniform
     random sample is kept: the rows with the smallest values of a 64-bit hash of their row
     number (a "bottom-k" sample, which merges exactly across chunks and workers). The

@@ -222,7 +222,8 @@ def cross_chunk_groups(keys):
     by either key are joined into groups by connected components (as in memory, where the name
     and the copies join rows into one group). Returns a dict with, per group member (sorted by
     group, then chunk and position): ``chunk``, ``local`` (position among the chunk's tracers),
-    ``group``, ``copy`` (an exact copy of an earlier member: no new measurement), ``head`` (the
+    ``group``, ``copy`` (an exact copy of an earlier member: no new measurement), ``source``
+    (for a copy, the position among the members of the member it repeats; else -1), ``head`` (the
     group's first member, which stands for it), ``n_rows`` (rows the tracer stands for after the
     chunk's own merging) and ``weight`` (the length of the sum of unit vectors its position is
     the mean of; 1 for a single row).
@@ -235,9 +236,10 @@ def cross_chunk_groups(keys):
     node = np.concatenate([c * (1 << 32) + p for _, c, p in found])
     empty = {k: np.zeros(0, np.int64) for k in ("chunk", "local", "group", "n_rows")}
     if node.size == 0:
-        return dict(empty, copy=np.zeros(0, bool), head=np.zeros(0, bool), weight=np.zeros(0))
+        return dict(empty, copy=np.zeros(0, bool), head=np.zeros(0, bool), weight=np.zeros(0),
+                    source=np.zeros(0, np.int64))
     uniq, inv = np.unique(node, return_inverse=True)
-    ii, jj, copy = [], [], np.zeros(uniq.size, bool)
+    ii, jj, copy, source = [], [], np.zeros(uniq.size, bool), np.full(uniq.size, -1, np.int64)
     start = 0
     for kind, (key, cid, _) in zip(("row", "name"), found):
         idx = inv[start:start + key.size]
@@ -249,7 +251,9 @@ def cross_chunk_groups(keys):
         jj.append(i[link + 1])
         if kind == "row":  # every member of a run of equal row hashes after its first is a copy
             run_first = np.maximum.accumulate(np.where(np.r_[True, k[1:] != k[:-1]], np.arange(k.size), 0))
-            copy[i[(np.arange(k.size) != run_first) & (c != c[run_first])]] = True
+            later = (np.arange(k.size) != run_first) & (c != c[run_first])
+            copy[i[later]] = True
+            source[i[later]] = i[run_first[later]]
     i, j = np.concatenate(ii), np.concatenate(jj)
     graph = coo_matrix((np.ones(i.size, np.int8), (i, j)), shape=(uniq.size, uniq.size))
     _, group = connected_components(graph, directed=False)
@@ -259,6 +263,10 @@ def cross_chunk_groups(keys):
     chunk, local = uniq[members] >> 32, uniq[members] & ((1 << 32) - 1)
     grp = group[members]
     head = np.r_[True, grp[1:] != grp[:-1]]
+    at_node = np.full(uniq.size, -1, np.int64)
+    at_node[members] = np.arange(members.size)
+    src = source[members]
+    src = np.where(src >= 0, at_node[np.maximum(src, 0)], -1)  # the member each copy repeats
     n_rows, weight = np.ones(members.size, np.int64), np.ones(members.size)
     for c in np.unique(chunk):
         hpos, hrows, hweight = keys[int(c)]["heads"]
@@ -269,7 +277,8 @@ def cross_chunk_groups(keys):
         n_rows[sel[hit]] = hrows[at[hit]]
         weight[sel[hit]] = hweight[at[hit]]
     return {"chunk": chunk, "local": local, "group": np.unique(grp, return_inverse=True)[1].astype(np.int64),
-            "copy": copy[members] & ~head, "head": head, "n_rows": n_rows, "weight": weight}
+            "copy": copy[members] & ~head, "source": np.where(copy[members] & ~head, src, -1), "head": head,
+            "n_rows": n_rows, "weight": weight}
 
 
 def merge_across(groups, raw_of):
@@ -289,20 +298,32 @@ def merge_across(groups, raw_of):
     drops = {int(c): np.sort(local[(chunk == c) & ~head]) for c in np.unique(chunk[~head])}
     counts = {"merged": int((~head).sum()), "copies": int(copy.sum()), "rows": int(np.sum(groups["n_rows"] == 1)),
               "groups": int(head.sum()) - int(np.sum(groups["n_rows"] > 1))}
-    use = ~copy
-    need = np.flatnonzero(np.bincount(group, use, minlength=head.sum() if head.size else 0)[group] >= 2)
+    # how often each member counts: copies not at all; but a copy that its own chunk merged with
+    # other rows stands for them too: it counts, and the single row it repeats is taken out once
+    use = (~copy).astype(float)
+    src = groups["source"]
+    carries = copy & (groups["n_rows"] > 1) & (src >= 0)
+    carries[carries] = groups["n_rows"][src[carries]] == 1
+    use[carries] = 1.0
+    extra = src[carries]  # members counted once more with -1
+    member = np.concatenate([np.arange(chunk.size), extra])
+    mult = np.concatenate([use, np.full(extra.size, -1.0)])
+    n_pos = np.bincount(group[member], mult > 0, minlength=int(head.sum()) if head.size else 0)
+    sel = np.flatnonzero(n_pos[group[member]] >= 2)
     replace = {}
-    if need.size == 0:
+    if sel.size == 0:
         return drops, replace, counts
+    need, mult = member[sel], mult[sel]
     fields = {k: np.empty(need.size) for k in FIT_FIELDS}
     for c in np.unique(chunk[need]):
-        sel = np.flatnonzero(chunk[need] == c)
+        at = np.flatnonzero(chunk[need] == c)
         raw = raw_of(int(c))
         for k, arr in zip(FIT_FIELDS, raw):
-            fields[k][sel] = arr[local[need][sel]]
+            fields[k][at] = arr[local[need][at]]
     g = np.unique(group[need], return_inverse=True)[1]
-    first = np.flatnonzero(head[need])
-    merged = merge_measurements(fields, g, first, use[need], weight=groups["weight"][need])
+    first = np.flatnonzero(head[need] & (mult > 0))
+    first = first[np.unique(g[first], return_index=True)[1]]  # each group's head, once
+    merged = merge_measurements(fields, g, first, mult, weight=groups["weight"][need])
     values = np.stack(fit_arrays(tuple(merged[k] for k in FIT_FIELDS)))
     hc, hl = chunk[need][first], local[need][first]
     for c in np.unique(hc):

@@ -301,20 +301,22 @@ def merge_measurements(fields, group, head, use, weight=None):
     """Merged values of each group of measurements (the formulas of :func:`merge_groups`).
 
     ``group`` numbers each row's group 0..m-1, ``head`` is each group's first row, ``use``
-    marks the distinct measurements (False for exact copies) and ``weight`` (default 1) the
+    marks the distinct measurements (False for exact copies; as numbers, how many times a row
+    counts, -1 taking out a measurement another row already holds) and ``weight`` (default 1) the
     length of the sum of unit vectors a row's position already stands for (the unit vectors are
     summed with these weights). Only the pairs of ``fields`` present are merged. The result
     holds ``position_weight``, the length of each group's sum of unit vectors.
     """
     m = head.size
     counts = np.bincount(group, minlength=m)
+    use = np.asarray(use, float)
     merged = {}
     for value, err in (("distance", "distance_err"), ("av", "av_err"), ("excess", "excess_err")):
         if value not in fields:
             continue
         x, s = fields[value], fields[err]
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where(use & (s > 0), 1.0 / s**2, 0.0)
+            w = np.where((use != 0) & (s > 0), use / s**2, 0.0)
         sw = np.bincount(group, w, m)
         swx = np.bincount(group, w * x, m)
         ok = sw > 0
@@ -330,11 +332,11 @@ def merge_measurements(fields, group, head, use, weight=None):
     # rho = sum(rho / (s_a s_d)) / sqrt(sum wa sum wd) over the distinct measurements
     if "av_distance_corr" in fields:
         sa, sd = fields["av_err"], fields["distance_err"]
-        ok = use & (sa > 0) & (sd > 0)
+        ok = (use != 0) & (sa > 0) & (sd > 0)
         with np.errstate(divide="ignore", invalid="ignore"):
-            term = np.where(ok, fields["av_distance_corr"] / (sa * sd), 0.0)
-            wa = np.where(ok, 1.0 / sa**2, 0.0)
-            wd = np.where(ok, 1.0 / sd**2, 0.0)
+            term = np.where(ok, use * fields["av_distance_corr"] / (sa * sd), 0.0)
+            wa = np.where(ok, use / sa**2, 0.0)
+            wd = np.where(ok, use / sd**2, 0.0)
             rho = np.bincount(group, term, m) / np.sqrt(np.bincount(group, wa, m) * np.bincount(group, wd, m))
         merged["av_distance_corr"] = np.where(np.isfinite(rho), np.clip(rho, -1.0, 1.0),
                                               fields["av_distance_corr"][head])
@@ -343,7 +345,7 @@ def merge_measurements(fields, group, head, use, weight=None):
     if "distance_err_low" in fields and "distance_err_high" in fields:
         s = fields["distance_err"]
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where(use & (s > 0), 1.0 / s**2, 0.0)
+            w = np.where((use != 0) & (s > 0), use / s**2, 0.0)
             sw = np.bincount(group, w, m)
             for side in ("distance_err_low", "distance_err_high"):
                 ratio = np.where(s > 0, fields[side] / s, 0.0)
