@@ -317,3 +317,21 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     kpc.rename(columns={"distance": "dm"}).assign(dm=lambda x: 10 + x["dm"]).to_parquet(tmp_path / "dm.parquet")
     with pytest.raises(CatalogError, match="distance_modulus_kind"):
         build_from_parquet(tmp_path / "dm.parquet", chunk_size=100, quiet=True, **PARAMS)
+
+
+def test_units_written_by_astropy_into_parquet_are_read_in_chunks(tmp_path):
+    # astropy keeps column units in a Parquet file's metadata (astropy.io.misc.parquet); a chunked read must take
+    # them as Table.read does: distances in kpc are 1000 pc (IAU units), not a kpc-without-unit stop
+    rng = np.random.default_rng(4)
+    n = 300
+    t = Table({"l": rng.uniform(20, 60, n) * u.deg, "b": rng.uniform(-5, 5, n) * u.deg,
+               "distance": rng.uniform(0.5, 3.0, n) * u.kpc, "distance_err": np.full(n, 0.1) * u.kpc,
+               "av": rng.uniform(0.1, 2.0, n) * u.mag, "av_err": np.full(n, 0.1) * u.mag})
+    t.write(tmp_path / "units.parquet")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "units.parquet")
+        m = build_from_parquet(tmp_path / "units.parquet", chunk_size=100, quiet=True, **PARAMS)
+    np.testing.assert_allclose(np.sort(np.asarray(m.tracers_.distance)), np.sort(1000.0 * np.asarray(t["distance"])),
+                               rtol=1e-12)
+    np.testing.assert_allclose(np.sort(np.asarray(ts.distance)), np.sort(np.asarray(m.tracers_.distance)), rtol=1e-12)

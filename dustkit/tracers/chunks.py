@@ -73,6 +73,7 @@ def read_chunk(chunk):
             else:
                 cols[name] = vals
         out = Table(cols, names=tab.column_names, copy=False)  # the arrays as pyarrow made them (read only)
+        _parquet_units(out, pf.schema_arrow.metadata)
     else:
         from astropy.io import fits
 
@@ -96,6 +97,26 @@ def read_chunk(chunk):
     if len(out) != n:
         raise CatalogError(f"Read {len(out)} rows instead of {n} from {chunk.path!r}; the file changed during the build?")
     return out
+
+
+def _parquet_units(table, metadata):
+    """Units that astropy wrote into a Parquet file's metadata (``table_meta_yaml``), set on the
+    chunk's columns, as ``Table.read`` (the in-memory reader) sets them."""
+    yaml = (metadata or {}).get(b"table_meta_yaml")
+    if not yaml:
+        return
+    from astropy.table import meta
+
+    try:
+        header = meta.get_header_from_yaml(yaml.decode("utf-8").split("\n"))
+    except Exception:  # metadata astropy cannot parse: the columns stay bare, as astropy would fail to read them
+        return
+    for col in header.get("datatype", []):
+        name, unit = col.get("name"), col.get("unit")
+        if unit and name in table.colnames:
+            unit = u.Unit(unit, parse_strict="silent")
+            if not isinstance(unit, u.UnrecognizedUnit):
+                table[name].unit = unit
 
 
 def chunk_tracers(chunk, reading, keys=False):
