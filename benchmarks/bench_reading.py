@@ -12,9 +12,10 @@ each in its own process, the wall time and peak memory (the child's ``ru_maxrss`
 
 Targets: at most 2x the floor's time and 2x its peak memory at both sizes. Both processes run
 with compiled bytecode (as an installed package has), cached in the temporary folder by a warm-up
-import before anything is timed.
+import before anything is timed. With ``--repeat N`` the floor and the build run alternately N
+times and the medians are compared (on a shared machine single runs vary by a factor of two).
 
-Run: ``PYTHONPATH=. python benchmarks/bench_reading.py [--sizes 1000000 10000000] [--tmp /tmp]``
+Run: ``PYTHONPATH=. python benchmarks/bench_reading.py [--sizes 1000000 10000000] [--repeat 3] [--tmp /tmp]``
 """
 
 import argparse
@@ -57,10 +58,10 @@ def write_catalogue(path, n, seed=0):
     pq.write_table(table, path, row_group_size=1_000_000)
 
 
-def measure(cmd, env=None):
+def measure(cmd, env=None, cwd=None):
     """Wall time (s) and peak resident memory (GiB) of one child process."""
     start = time.perf_counter()
-    proc = subprocess.Popen(cmd, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(cmd, env=env, cwd=cwd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     _, status, usage = os.wait4(proc.pid, 0)
     elapsed = time.perf_counter() - start
     err = proc.stderr.read().decode(errors="replace")
@@ -74,6 +75,7 @@ def main(argv=None):
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--sizes", type=int, nargs="+", default=[1_000_000, 10_000_000])
     p.add_argument("--tmp", default=tempfile.gettempdir(), help="folder for the catalogues (default /tmp)")
+    p.add_argument("--repeat", type=int, default=1, help="runs of each process per size; medians compared (default 1)")
     args = p.parse_args(argv)
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     work = tempfile.mkdtemp(prefix="dustkit_bench_reading_", dir=args.tmp)
@@ -88,13 +90,21 @@ def main(argv=None):
         for n in args.sizes:
             cat = os.path.join(work, f"tracers_{n}.parquet")
             write_catalogue(cat, n)
-            floor_t, floor_m = measure([sys.executable, "-c", _FLOOR, cat], env)
-            build_t, build_m = measure([sys.executable, "-m", "dustkit", "--quiet", "build", cat, "-o",
-                                        os.path.join(work, f"model_{n}.fits"), "--overwrite"], env)
+            runs = []
+            for _ in range(max(args.repeat, 1)):  # alternately, so that both see the same load
+                floor_t, floor_m = measure([sys.executable, "-c", _FLOOR, cat], env, cwd=root)
+                # run in the repository: `python -m` puts the working folder first on the path
+                build_t, build_m = measure([sys.executable, "-m", "dustkit", "--quiet", "build", cat, "-o",
+                                            os.path.join(work, f"model_{n}.fits"), "--overwrite"], env, cwd=root)
+                runs.append((floor_t, floor_m, build_t, build_m))
+                if args.repeat > 1:
+                    print(f"{n:>10,d} tracers, run {len(runs)}: floor {floor_t:6.1f} s {floor_m:5.2f} GiB | build "
+                          f"{build_t:6.1f} s {build_m:5.2f} GiB | {build_t / floor_t:4.1f}x time", flush=True)
+            floor_t, floor_m, build_t, build_m = (float(np.median(c)) for c in zip(*runs))
             rows.append((n, floor_t, floor_m, build_t, build_m))
             print(f"{n:>10,d} tracers: floor {floor_t:6.1f} s {floor_m:5.2f} GiB | dustkit build {build_t:6.1f} s "
-                  f"{build_m:5.2f} GiB | ratio {build_t / floor_t:4.1f}x time, {build_m / floor_m:4.1f}x memory",
-                  flush=True)
+                  f"{build_m:5.2f} GiB | ratio {build_t / floor_t:4.1f}x time, {build_m / floor_m:4.1f}x memory"
+                  + (f" (medians of {len(runs)})" if len(runs) > 1 else ""), flush=True)
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return rows

@@ -12,9 +12,14 @@ Pass 1 (sample)
     (``dustkit.tracers.assemble.build_tracers``: column recognition, units and the kpc check,
     true/apparent moduli, parallax prior distances, correlations, error floors, rejections,
     duplicates merged within the chunk); rows rejected and merged are counted by reason and
-    the reader's warnings said once for the whole catalogue (counts summed). Exact copies in
-    different chunks are found by a 64-bit hash of their input rows and counted once (rows
-    of the same name in different chunks are not merged). Local builds of at most
+    the reader's warnings said once for the whole catalogue (counts summed). Duplicates in
+    different chunks are found from two 64-bit hashes of each tracer kept sorted per chunk
+    (its input row's values, and its name): exact copies are counted once and tracers of the
+    same name merged into the first by the reader's inverse-variance means, so the counts and
+    values equal the in-memory read's (an exact copy that its own chunk merged with other
+    rows keeps them, the repeated row taken out once). Not found across chunks: near-duplicates
+    by position alone; and when the repeated row was itself merged in its chunk, the copy's
+    group is dropped with it. Local builds of at most
     ``CACHE_ROWS`` rows keep each chunk's checked arrays for pass 2. A deterministic uniform
     random sample is kept: the rows with the smallest values of a 64-bit hash of their row
     number (a "bottom-k" sample, which merges exactly across chunks and workers). The
@@ -76,8 +81,8 @@ from ._lib.formats import CHUNKED_FORMATS, format_for
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import DustLayer, fit_layer
-from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_copies, drop_from_sample,
-                              fit_arrays)
+from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_groups, drop_from_sample, fit_arrays,
+                              merge_across, raw_arrays, replace_in_sample)
 from .tracers.rules import (DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, DUPLICATE_SEPARATION_ARCSEC,
                             PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, check_duplicates, check_law)
 from .binned.folds import HeldOut, fold_of_positions, fold_of_rows, row_hash, seed_of
@@ -180,13 +185,14 @@ def _pass1_link(acc, cid, chunk, reading, k, seed, cache=None):
 
     With a ``cache`` (a dict shared by the local threads) the chunk's fit arrays are kept for
     pass 2, which then neither reads nor checks the chunk again."""
-    f, notes, hashes = chunk_tracers(chunk, reading, hashes=reading["duplicates"] == "merge")
+    f, notes, keys = chunk_tracers(chunk, reading, keys=reading["duplicates"] == "merge")
     file_row = chunk.row0 + np.asarray(f["row"], np.int64)  # catalogue row number of each tracer
     key = row_hash(file_row, seed, 1)
     sel = np.argpartition(key, k - 1)[:k] if key.size > k else np.arange(key.size)
-    arrays = fit_arrays(f)
+    raw = raw_arrays(f)
+    arrays = fit_arrays(raw)
     if cache is not None:
-        cache.arrays[chunk.row0] = arrays
+        cache.arrays[chunk.row0] = raw  # as read: merges across chunks need the errors before the floors
     part = {
         "key": key[sel],
         "file_row": file_row[sel],
@@ -196,10 +202,11 @@ def _pass1_link(acc, cid, chunk, reading, k, seed, cache=None):
     }
     if acc is None:
         acc = {"sample": None, "valid": {}, "rows": 0, "counts": {}, "examples": [], "notes": [],
-               "assumptions": [], "hashes": {}, "merged": 0, "dup_rows": 0, "dup_groups": 0, "meta": None}
+               "assumptions": [], "keys": {}, "merged": 0, "dup_rows": 0, "dup_groups": 0, "meta": None}
     meta = f["meta"]
     acc["valid"][cid] = int(key.size)
-    acc["hashes"][cid] = hashes if hashes is not None else np.zeros(0, np.uint64)
+    if keys is not None:
+        acc["keys"][cid] = keys
     acc["rows"] += chunk.stop - chunk.start
     acc["merged"] += int(meta.get("n_merged", 0))
     dup = f["duplicates"]
@@ -248,7 +255,7 @@ def _combine(accs, merge):
 
 def _pass1_merge(k, out, a):
     out["valid"].update(a["valid"])
-    out["hashes"].update(a["hashes"])
+    out["keys"].update(a["keys"])
     for name in ("rows", "merged", "dup_rows", "dup_groups"):
         out[name] += a[name]
     for r, c in a["counts"].items():
@@ -265,20 +272,24 @@ def _pass1_combine(k, *accs):
 
 # ----------------------------------------------------------------------------- pass 2: sums
 
-def _pass2_link(acc, chunk, reading, offset, grid, layer, n_folds, seed, held, drop, cached=None):
+def _pass2_link(acc, chunk, reading, offset, grid, layer, n_folds, seed, held, drop, cached=None, replace=None):
     """Add one chunk's tracers to the statistics (all tracers, held-out folds) and the counts.
 
-    The chunk is read and checked exactly as in pass 1; ``drop`` (positions among its tracers)
-    are exact copies of tracers of earlier chunks. ``held`` is None for K-fold cross-validation
+    The chunk is read and checked exactly as in pass 1; ``replace`` (positions among its tracers
+    and their values) are tracers merged with tracers of other chunks, ``drop`` (positions) the
+    tracers merged into tracers of other chunks. ``held`` is None for K-fold cross-validation
     (every row in a fold from its position), else the sorted positions of the held-out rows
     among the accepted rows of the catalogue.
     """
     if cached is not None and chunk.row0 in cached.arrays:
-        l, b, d, de, av, ae = cached.arrays.pop(chunk.row0)  # pass 1's arrays of this chunk
+        l, b, d, de, av, ae = fit_arrays(cached.arrays.pop(chunk.row0))  # pass 1's arrays of this chunk
     else:
         f, _, _ = chunk_tracers(chunk, reading)
         l, b, d, de, av, ae = fit_arrays(f)
         del f
+    if replace is not None:
+        for arr, values in zip((l, b, d, de, av, ae), replace[1]):
+            arr[replace[0]] = values
     if drop is not None and drop.size:
         keep = np.ones(l.size, dtype=bool)
         keep[drop] = False
@@ -460,8 +471,8 @@ def build_from_parquet(
     distance_unit, distance_modulus_kind, parallax_zero_point, parallax_err_floor, parallax_length_scale, \
 default_distance_frac_err, default_excess_err, reject_limits, excess_color, duplicates, duplicate_separation
         As for :func:`dustkit.tracers.read_tracers`. Duplicates are merged within a chunk by
-        the reader's rules; exact copies in different chunks are found by a 64-bit hash of
-        their values and counted once.
+        the reader's rules; across chunks, exact copies (a 64-bit hash of their values) are
+        counted once and tracers of the same name merged as in memory.
     **model_params
         :class:`~dustkit.model.ExtinctionModel` parameters: ``nside``, ``distance_max``,
         ``distance_step``, ``distance_edges``, ``ordering``, ``n_folds``, ``sky_passes``,
@@ -519,7 +530,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     )
     lap("pass 1 (read, validate, sample)")
     cached = cache
-    drops, n_copies, offsets = _accepted(p1, len(chunks), duplicates)
+    drops, replace, n_copies, offsets = _accepted(p1, chunks, reading, cache)
     n_used = int(offsets[-1])
     n_rejected = int(sum(p1["counts"].values()))
     n_merged = int(p1["merged"]) + n_copies
@@ -544,7 +555,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     sums = _run_chains(
         _pass2_link, _pass2_combine, chunks,
         lambda i, ch: (ch, reading, int(offsets[i]), grid, layer, n_folds, seed, None if k_fold else held_rows,
-                       drops.get(i), cached),
+                       drops.get(i), cached, replace.get(i)),
         n_chains, client, "accumulating tracers (pass 2 of 2)", quiet, "stats",
     )
     lap("pass 2 (sufficient statistics)")
@@ -577,13 +588,31 @@ def _finish(model, sums, layer, held_data, k_fold, n_folds, seed, n_used, layer_
                          model.fit_plan(n_used), rng=rng, tracers=layer_set)
 
 
-def _accepted(p1, n_chunks, duplicates):
-    """Exact copies across chunks (dropped from the sample), their count, and each chunk's first
-    position among the accepted rows."""
-    drops = cross_chunk_copies(p1["hashes"], n_chunks) if duplicates == "merge" else {}
+def _accepted(p1, chunks, reading, cache):
+    """Duplicates across chunks (exact copies and the same name, merged into their first member as in
+    memory; the sample updated), and each chunk's first position among the accepted rows.
+
+    Returns the drops and replacements per chunk (see ``merge_across``), the number of exact
+    copies among the rows merged away, and the offsets. The chunks' own duplicate counts in
+    ``p1`` are raised by the groups found across chunks."""
+    n_chunks = len(chunks)
+    drops, replace, n_copies = {}, {}, 0
+    if reading["duplicates"] == "merge" and p1["keys"]:
+        def raw_of(c):  # pass 1's arrays, or the chunk read again (no cache)
+            if cache is not None and chunks[c].row0 in cache.arrays:
+                return cache.arrays[chunks[c].row0]
+            return raw_arrays(chunk_tracers(chunks[c], reading)[0])
+
+        drops, replace, counts = merge_across(cross_chunk_groups(p1["keys"]), raw_of)
+        p1["keys"] = {}
+        n_copies = counts["copies"]
+        p1["merged"] += counts["merged"] - n_copies  # the copies are counted on their own (n_copies)
+        p1["dup_rows"] += counts["rows"]
+        p1["dup_groups"] += counts["groups"]
+        replace_in_sample(p1["sample"], replace)
     drop_from_sample(p1["sample"], drops)
     valid = np.array([p1["valid"][i] - (drops[i].size if i in drops else 0) for i in range(n_chunks)], dtype=np.int64)
-    return drops, int(sum(x.size for x in drops.values())), np.concatenate([[0], np.cumsum(valid)])
+    return drops, replace, n_copies, np.concatenate([[0], np.cumsum(valid)])
 
 
 def _reading_info(p1, filled):
@@ -659,9 +688,9 @@ def _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates):
         )
     if n_merged:
         warnings.warn(
-            f"{p1['dup_rows']} rows are duplicates within their chunks, in {p1['dup_groups']} groups, and {n_copies} "
-            f"rows exact copies of rows of earlier chunks: {n_merged} rows merged away (duplicates='merge'; within "
-            "a chunk by the reader's rules, across chunks by a hash of the values).",
+            f"{p1['dup_rows']} rows are duplicates in {p1['dup_groups']} groups ({n_copies} of them exact copies "
+            f"of rows of earlier chunks): {n_merged} rows merged away (duplicates='merge'; within a chunk by the "
+            "reader's rules, across chunks the same name or the same values, found by 64-bit hashes).",
             DuplicatesWarning,
             stacklevel=3,
         )

@@ -290,6 +290,10 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     df.loc[11, "name"] = "C10"  # the same name within a chunk: merged
     df.loc[31] = df.loc[30]  # an exact copy within a chunk
     df.loc[200:204] = df.loc[20:24].to_numpy()  # exact copies of rows of another chunk
+    df.loc[250, "name"] = "C60"  # the same name in two chunks (other values): merged by inverse-variance means
+    df.loc[120, "name"] = "C10"  # a third C10, in another chunk than the first two
+    df.loc[130, "name"] = "C22"  # the same name as row 22 and its exact copy 202, in a third chunk
+    df.loc[270, "name"] = "C21"  # merged in its chunk with 201, an exact copy of row 21 of another chunk
     df.to_parquet(tmp_path / "cat.parquet", row_group_size=64)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -297,13 +301,21 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
         m = build_from_parquet(tmp_path / "cat.parquet", chunk_size=100, quiet=True, **PARAMS)
     info = m.build_info_
     assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (len(ts), len(ts.rejected), ts.meta["n_merged"])
-    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (291, 2, 7)
+    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (287, 2, 11)
     assert info["n_used"] + info["n_rejected"] + info["n_merged"] == n and info["cross_chunk_copies"] == 5
+    # the duplicates reported alike: rows in groups of two or more, and groups
+    assert (info["duplicate_rows"], info["duplicate_groups"]) == (len(ts.duplicates),
+                                                                  np.unique(np.asarray(ts.duplicates["group"])).size)
     assert info["rejected_by_reason"] == ts.meta["rejected_by_reason"]
     assert set(info["assumptions"]) == set(ts.meta["assumptions"])
     assert any("Bailer-Jones 2015" in a for a in info["assumptions"])
     # the catalogue is smaller than the sample: the model's tracers are all of them, with the same distances
     np.testing.assert_allclose(np.sort(m.tracers_.distance), np.sort(ts.distance), rtol=1e-12)
+    # the tracers merged across chunks too: the same values and positions (matched by distance)
+    a, c = np.argsort(np.asarray(m.tracers_.distance)), np.argsort(np.asarray(ts.distance))
+    for k in ("av", "av_err", "distance_err", "l", "b"):
+        np.testing.assert_allclose(np.asarray(getattr(m.tracers_, k))[a], np.asarray(getattr(ts, k))[c], rtol=1e-10,
+                                   err_msg=k)
     # the reader's refusals stop a chunked build too: kpc without a unit, a modulus that does not say which
     kpc = pd.DataFrame({"l": df["l"].fillna(30.0), "b": df["b"], "distance": rng.uniform(0.5, 3.0, n),
                         "av": df["ebv"].clip(upper=1.0) * 3.1})
@@ -313,3 +325,21 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     kpc.rename(columns={"distance": "dm"}).assign(dm=lambda x: 10 + x["dm"]).to_parquet(tmp_path / "dm.parquet")
     with pytest.raises(CatalogError, match="distance_modulus_kind"):
         build_from_parquet(tmp_path / "dm.parquet", chunk_size=100, quiet=True, **PARAMS)
+
+
+def test_units_written_by_astropy_into_parquet_are_read_in_chunks(tmp_path):
+    # astropy keeps column units in a Parquet file's metadata (astropy.io.misc.parquet); a chunked read must take
+    # them as Table.read does: distances in kpc are 1000 pc (IAU units), not a kpc-without-unit stop
+    rng = np.random.default_rng(4)
+    n = 300
+    t = Table({"l": rng.uniform(20, 60, n) * u.deg, "b": rng.uniform(-5, 5, n) * u.deg,
+               "distance": rng.uniform(0.5, 3.0, n) * u.kpc, "distance_err": np.full(n, 0.1) * u.kpc,
+               "av": rng.uniform(0.1, 2.0, n) * u.mag, "av_err": np.full(n, 0.1) * u.mag})
+    t.write(tmp_path / "units.parquet")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "units.parquet")
+        m = build_from_parquet(tmp_path / "units.parquet", chunk_size=100, quiet=True, **PARAMS)
+    np.testing.assert_allclose(np.sort(np.asarray(m.tracers_.distance)), np.sort(1000.0 * np.asarray(t["distance"])),
+                               rtol=1e-12)
+    np.testing.assert_allclose(np.sort(np.asarray(ts.distance)), np.sort(np.asarray(m.tracers_.distance)), rtol=1e-12)

@@ -965,6 +965,45 @@ def test_near_duplicates_merge_by_inverse_variance():
     assert len(ts) == 3 and len(ts.duplicates) == 0
 
 
+def test_near_duplicates_found_across_l_zero_and_near_the_pole():
+    # one invented cluster recorded twice either side of l = 0/360 deg (0.72 arcsec apart at b = 0.5 deg, within
+    # the 1 arcsec tolerance): one tracer, at l ~ 0 (the mean of the unit vectors), not at l = 180 (longitude is
+    # periodic, common practice). Near the pole two rows 180 deg apart in l are 0.36 arcsec apart: merged too.
+    t = Table({"name": ["Wrap-a", "Wrap-b", "Pole-a", "Pole-b", "Other"],
+               "l": [359.9999, 0.0001, 10.0, 190.0, 359.9999], "b": [0.5, 0.5, 89.99995, 89.99995, -20.0],
+               "dist": [1000.0, 1010.0, 2000.0, 2000.0, 1000.0] * u.pc, "e_dist": [100.0, 100.0, 200.0, 200.0, 100.0] * u.pc,
+               "av": [1.0, 1.05, 0.3, 0.31, 1.0], "e_av": [0.1, 0.1, 0.05, 0.05, 0.1]})
+    with pytest.warns(DuplicatesWarning, match=r"4 of 5 rows are duplicates in 2 groups"):
+        ts = read_tracers(t)
+    assert len(ts) == 3
+    assert sorted(ts.duplicates["name"]) == ["Pole-a", "Pole-b", "Wrap-a", "Wrap-b"]
+    wrap = np.flatnonzero(np.asarray(ts.name) == "Wrap-a")[0]
+    lw = float(np.asarray(ts.l)[wrap])  # deg
+    sep = min(lw, 360.0 - lw)
+    assert sep < 1e-6 and float(np.asarray(ts.b)[wrap]) == pytest.approx(0.5, abs=1e-9)
+    assert ts.av[wrap] == pytest.approx(1.025, rel=1e-12)  # equal errors: the plain mean
+
+
+def test_near_duplicates_found_at_any_longitude_and_latitude():
+    # pairs of records of invented clusters a random 0.05-0.99 arcsec apart at random places on the sky: every pair
+    # is merged (the separation is the haversine great-circle distance, common practice), also at large l and |b|
+    # where l cos b changes by more than the tolerance across it
+    rng = np.random.default_rng(5)
+    n = 400
+    l0, b0 = rng.uniform(0, 360, n), np.degrees(np.arcsin(rng.uniform(-0.999, 0.999, n)))
+    sep, pa = rng.uniform(0.05, 0.99, n) / 3600, rng.uniform(0, 2 * np.pi, n)
+    b1 = b0 + sep * np.cos(pa)
+    l1 = np.mod(l0 + sep * np.sin(pa) / np.cos(np.radians(b0)), 360.0)
+    from dustkit._lib.sky import separation_deg
+
+    ok = separation_deg(l0, b0, l1, b1) * 3600 < 0.999  # the flat-sky offset is within the tolerance
+    t = Table({"l": np.r_[l0[ok], l1[ok]], "b": np.r_[b0[ok], b1[ok]], "dist": np.full(2 * ok.sum(), 1000.0) * u.pc,
+               "e_dist": np.full(2 * ok.sum(), 100.0) * u.pc, "av": np.ones(2 * ok.sum()), "e_av": np.full(2 * ok.sum(), 0.1)})
+    with pytest.warns(DuplicatesWarning):
+        ts = _quiet_assumptions(read_tracers, t)
+    assert ok.sum() > 350 and len(ts) == ok.sum()
+
+
 def test_same_name_is_a_duplicate():
     t = _dup_catalogue()
     t["name"][2] = "A"

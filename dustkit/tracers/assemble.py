@@ -51,8 +51,12 @@ def build_tracers(
     source_temperature=None,
     intrinsic_color_bands=None,
     duplicate_separation=None,
+    extras=None,
 ):
-    """Validate a table of tracers: the fields of a ``TracerSet`` and the notes (warnings) to emit."""
+    """Validate a table of tracers: the fields of a ``TracerSet`` and the notes (warnings) to emit.
+
+    A dict ``extras`` receives ``position_weight`` (see ``duplicates.merge_groups``; None when
+    nothing was merged), for merging tracers of several reads later (the chunked builds)."""
     rv = check_real("rv", rv, 0.0, np.inf, low_inclusive=False)
     law, rv = check_law(law, rv)
     frac = check_real("default_distance_frac_err", default_distance_frac_err, 0.0, np.inf, low_inclusive=False)
@@ -132,6 +136,8 @@ def build_tracers(
     else:
         sel, dup_report = rows, empty_duplicates()
     n_merged = int(rows.size - sel.size)
+    if extras is not None:
+        extras["position_weight"] = per_row.pop("position_weight", None)
     if len(dup_report):
         n_groups = int(np.unique(np.asarray(dup_report["group"])).size)
         n_exact = int(np.sum(np.asarray(dup_report["kind"]) == "exact"))  # rows in sets of exact copies

@@ -2,8 +2,10 @@
 
 Each chunk is read into an astropy Table and checked by the in-memory reader's own code
 (``dustkit.tracers.assemble.build_tracers``), so a chunked build applies every reading rule of
-:func:`dustkit.tracers.read_tracers`; exact copies in different chunks are found by a 64-bit
-hash of their input rows.
+:func:`dustkit.tracers.read_tracers`. Duplicates in different chunks are found from two 64-bit
+keys of each chunk's tracers, kept sorted: a hash of the input row's values (exact copies) and a
+hash of the name (the same name); the tracers they link are joined into groups by connected
+components and merged by the reader's inverse-variance means (:func:`cross_chunk_groups`).
 """
 
 from dataclasses import dataclass
@@ -13,10 +15,14 @@ from astropy import units as u
 
 from ..exceptions import CatalogError
 from .assemble import build_tracers
+from .duplicates import merge_measurements
 from .rules import floor_errors
 
-__all__ = ["Chunk", "ChunkCache", "read_chunk", "chunk_tracers", "row_hash_of", "fit_arrays", "cross_chunk_copies",
-           "drop_from_sample"]
+__all__ = ["Chunk", "ChunkCache", "read_chunk", "chunk_tracers", "row_hash_of", "fit_arrays", "raw_arrays",
+           "sorted_keys", "cross_chunk_groups", "merge_across", "replace_in_sample", "drop_from_sample", "FIT_FIELDS"]
+
+#: The per-tracer fields a fit uses, in the order of :func:`fit_arrays` and :func:`raw_arrays`.
+FIT_FIELDS = ("l", "b", "distance", "distance_err", "av", "av_err")
 
 
 @dataclass(frozen=True)
@@ -55,7 +61,7 @@ def read_chunk(chunk):
             if pos >= chunk.stop:
                 break
         tab = pa.Table.from_batches(batches, schema=pf.schema_arrow) if batches else pf.schema_arrow.empty_table()
-        out = Table()
+        cols = {}
         for name in tab.column_names:
             col = tab.column(name)
             if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
@@ -63,9 +69,11 @@ def read_chunk(chunk):
             else:
                 vals = col.to_numpy(zero_copy_only=False)
             if col.null_count:
-                out[name] = MaskedColumn(vals, mask=np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool))
+                cols[name] = MaskedColumn(vals, mask=np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool))
             else:
-                out[name] = vals
+                cols[name] = vals
+        out = Table(cols, names=tab.column_names, copy=False)  # the arrays as pyarrow made them (read only)
+        _parquet_units(out, pf.schema_arrow.metadata)
     else:
         from astropy.io import fits
 
@@ -91,23 +99,81 @@ def read_chunk(chunk):
     return out
 
 
-def chunk_tracers(chunk, reading, hashes=False):
+def _parquet_units(table, metadata):
+    """Units that astropy wrote into a Parquet file's metadata (``table_meta_yaml``), set on the
+    chunk's columns, as ``Table.read`` (the in-memory reader) sets them."""
+    yaml = (metadata or {}).get(b"table_meta_yaml")
+    if not yaml:
+        return
+    from astropy.table import meta
+
+    try:
+        header = meta.get_header_from_yaml(yaml.decode("utf-8").split("\n"))
+    except Exception:  # metadata astropy cannot parse: the columns stay bare, as astropy would fail to read them
+        return
+    for col in header.get("datatype", []):
+        name, unit = col.get("name"), col.get("unit")
+        if unit and name in table.colnames:
+            unit = u.Unit(unit, parse_strict="silent")
+            if not isinstance(unit, u.UnrecognizedUnit):
+                table[name].unit = unit
+
+
+def chunk_tracers(chunk, reading, keys=False):
     """One chunk read and checked by the in-memory reader's rules (``build_tracers``: column recognition,
     units, moduli, parallax prior, correlations, rejections, default errors, duplicates within the
     chunk). Returns the fields of a TracerSet, the notes (warnings) the reader would give and, with
-    ``hashes``, a 64-bit hash of each tracer's input row (its values in every column used)."""
+    ``keys``, what finding duplicates across chunks needs (else None): a dict of
+
+    ``row``
+        :func:`sorted_keys` of a 64-bit hash of each tracer's input row (its values in every column used);
+    ``name``
+        :func:`sorted_keys` of a 64-bit hash of each named tracer's name (None without a name column;
+        rows with an empty name, named ``row <i>`` by the reader, are left out);
+    ``heads``
+        for the tracers that stand for a group of rows merged within the chunk: their positions,
+        the number of rows and the length of the sum of the unit vectors their position is the
+        mean of (``position_weight`` of ``merge_groups``).
+    """
     table = read_chunk(chunk)
+    extras = {}
     f, notes = build_tracers(table, source_desc=f"{chunk.path!r} rows {chunk.start}..{chunk.stop - 1}",
-                             file_sha=None, **reading)
-    if not hashes:
+                             file_sha="", extras=extras, **reading)  # no content hash of a chunk's arrays
+    if not keys:
         return f, notes, None
-    return f, notes, row_hash_of(table, list(dict.fromkeys(f["meta"]["columns"].values())), f["row"])
+    used = list(dict.fromkeys(f["meta"]["columns"].values()))
+    rows = np.asarray(f["row"], np.int64)
+    out = {"row": sorted_keys(row_hash_of(table, used, rows)), "name": None}
+    name_col = f["meta"]["columns"].get("name")
+    if name_col is not None and f.get("name") is not None:
+        raw = table[name_col]
+        named = ~np.ma.getmaskarray(raw)[rows] & (np.asarray(f["name"]) != np.char.add("row ", rows.astype(str)))
+        local = np.flatnonzero(named)
+        out["name"] = sorted_keys(_hash_strings(np.asarray(f["name"])[local]), local)
+    dup = f["duplicates"]
+    if len(dup):
+        heads, n_rows = np.unique(np.asarray(dup["merged_into"], np.int64), return_counts=True)
+        at = np.searchsorted(rows, heads)
+        out["heads"] = (at, n_rows, np.asarray(extras["position_weight"], float)[at])
+    else:
+        out["heads"] = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0))
+    return f, notes, out
+
+
+def sorted_keys(keys, local=None):
+    """``(keys sorted, keys in tracer order, positions of those keys among the chunk's tracers)`` for
+    :func:`cross_chunk_groups` (``local`` None: the keys of every tracer, in order)."""
+    return np.sort(keys), keys, local
+
+
+def _hash_strings(values):
+    from pandas.util import hash_array
+
+    return hash_array(np.asarray(values).astype(object))
 
 
 def row_hash_of(table, names, rows):
     """A 64-bit hash of the values of columns ``names`` in rows ``rows`` (exact copies share it)."""
-    from pandas.util import hash_array
-
     h = np.zeros(np.size(rows), dtype=np.uint64)
     with np.errstate(over="ignore"):
         for k, name in enumerate(names):
@@ -116,17 +182,23 @@ def row_hash_of(table, names, rows):
             if data.dtype.kind in "fiub":
                 x = np.ascontiguousarray(data, dtype=float).view(np.uint64)
             else:
-                x = hash_array(data.astype(str).astype(object))
+                x = _hash_strings(data.astype(str))
             h ^= (x + np.uint64(k + 1)) * np.uint64(0x9E3779B97F4A7C15)
             h = (h << np.uint64(13)) | (h >> np.uint64(51))
     return h
 
 
+def raw_arrays(f):
+    """The six arrays of :data:`FIT_FIELDS` as read (errors not floored), float."""
+    return tuple(np.asarray(f[k], float) for k in FIT_FIELDS)
+
+
 def fit_arrays(f):
-    """The six arrays a fit uses, errors floored as every fit floors them (rules.floor_errors)."""
-    de, ae = floor_errors(f["distance"], f["distance_err"], f["av_err"], warn=False)
-    return (np.asarray(f["l"], float), np.asarray(f["b"], float), np.asarray(f["distance"], float),
-            np.asarray(de, float), np.asarray(f["av"], float), np.asarray(ae, float))
+    """The six arrays a fit uses, errors floored as every fit floors them (rules.floor_errors);
+    ``f`` is a dict of fields or the tuple of :func:`raw_arrays`."""
+    l, b, d, de, av, ae = raw_arrays(f) if isinstance(f, dict) else f
+    de, ae = floor_errors(d, de, ae, warn=False)
+    return l, b, d, np.asarray(de, float), av, np.asarray(ae, float)
 
 
 class ChunkCache:
@@ -137,30 +209,161 @@ class ChunkCache:
         self.arrays = {}
 
 
-def cross_chunk_copies(hashes, n_chunks):
-    """Positions (per chunk) of tracers whose 64-bit value hash repeats one of an earlier chunk."""
-    if n_chunks < 2:
-        return {}
-    h = np.concatenate([hashes[i] for i in range(n_chunks)])
-    cid = np.concatenate([np.full(hashes[i].size, i, dtype=np.int64) for i in range(n_chunks)])
-    local = np.concatenate([np.arange(hashes[i].size, dtype=np.int64) for i in range(n_chunks)])
-    o = np.argsort(h)  # one sort of all hashes; only the (few) repeated ones are ordered further
-    ho = h[o]
-    rep = np.flatnonzero(ho[1:] == ho[:-1])
+def _repeated(parts):
+    """``(key, chunk, position)`` of every tracer whose key (from :func:`sorted_keys`, per chunk in
+    ``parts``) occurs more than once among all chunks: one merge of the sorted runs."""
+    cids = sorted(c for c in parts if parts[c] is not None and parts[c][0].size)
+    empty = (np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros(0, np.int64))
+    if len(cids) < 2:
+        return empty
+    s = np.sort(np.concatenate([parts[c][0] for c in cids]), kind="stable")  # merges sorted runs
+    rep = np.unique(s[np.flatnonzero(s[1:] == s[:-1])])
+    del s
     if rep.size == 0:
-        return {}
-    members = o[np.unique(np.concatenate([rep, rep + 1]))]
-    order = members[np.lexsort((local[members], cid[members], h[members]))]
-    hs, cs = h[order], cid[order]
-    later = np.flatnonzero(hs[1:] == hs[:-1]) + 1
-    # a copy of an earlier chunk's tracer (copies within one chunk were merged by its own rules)
-    first = np.maximum.accumulate(np.where(np.r_[True, hs[1:] != hs[:-1]], np.arange(hs.size), 0))
-    later = later[cs[later] != cs[first[later]]]
-    out = {}
-    for i in np.unique(cid[order[later]]):
-        sel = order[later][cid[order[later]] == i]
-        out[int(i)] = np.sort(local[sel])
-    return out
+        return empty
+    keys, cid, local = [], [], []
+    for c in cids:
+        hs, unsorted, pos_of = parts[c]
+        lo, hi = np.searchsorted(hs, rep, "left"), np.searchsorted(hs, rep, "right")
+        if not np.any(hi > lo):
+            continue
+        here = rep[hi > lo]  # the few repeated keys this chunk holds: found in its tracer order
+        at = np.searchsorted(here, unsorted)
+        pos = np.flatnonzero(here[np.minimum(at, here.size - 1)] == unsorted)
+        keys.append(unsorted[pos])
+        cid.append(np.full(pos.size, c, dtype=np.int64))
+        local.append(pos if pos_of is None else np.asarray(pos_of)[pos])
+    return np.concatenate(keys), np.concatenate(cid), np.concatenate(local)
+
+
+def cross_chunk_groups(keys):
+    """Tracers of different chunks that are one: exact copies (the same row hash) and the same name.
+
+    ``keys`` maps each chunk's index to the ``keys`` of :func:`chunk_tracers`. The tracers linked
+    by either key are joined into groups by connected components (as in memory, where the name
+    and the copies join rows into one group). Returns a dict with, per group member (sorted by
+    group, then chunk and position): ``chunk``, ``local`` (position among the chunk's tracers),
+    ``group``, ``copy`` (an exact copy of an earlier member: no new measurement), ``source``
+    (for a copy, the position among the members of the member it repeats; else -1), ``head`` (the
+    group's first member, which stands for it), ``n_rows`` (rows the tracer stands for after the
+    chunk's own merging) and ``weight`` (the length of the sum of unit vectors its position is
+    the mean of; 1 for a single row).
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+
+    found = [_repeated({c: k["row"] for c, k in keys.items()}),
+             _repeated({c: k["name"] for c, k in keys.items() if k["name"] is not None})]
+    node = np.concatenate([c * (1 << 32) + p for _, c, p in found])
+    empty = {k: np.zeros(0, np.int64) for k in ("chunk", "local", "group", "n_rows")}
+    if node.size == 0:
+        return dict(empty, copy=np.zeros(0, bool), head=np.zeros(0, bool), weight=np.zeros(0),
+                    source=np.zeros(0, np.int64))
+    uniq, inv = np.unique(node, return_inverse=True)
+    ii, jj, copy, source = [], [], np.zeros(uniq.size, bool), np.full(uniq.size, -1, np.int64)
+    start = 0
+    for kind, (key, cid, _) in zip(("row", "name"), found):
+        idx = inv[start:start + key.size]
+        start += key.size
+        order = np.lexsort((idx, key))  # by key, then chunk and position (node ids sort so)
+        k, i, c = key[order], idx[order], cid[order]
+        link = np.flatnonzero((k[1:] == k[:-1]) & (c[1:] != c[:-1]))
+        ii.append(i[link])
+        jj.append(i[link + 1])
+        if kind == "row":  # every member of a run of equal row hashes after its first is a copy
+            run_first = np.maximum.accumulate(np.where(np.r_[True, k[1:] != k[:-1]], np.arange(k.size), 0))
+            later = (np.arange(k.size) != run_first) & (c != c[run_first])
+            copy[i[later]] = True
+            source[i[later]] = i[run_first[later]]
+    i, j = np.concatenate(ii), np.concatenate(jj)
+    graph = coo_matrix((np.ones(i.size, np.int8), (i, j)), shape=(uniq.size, uniq.size))
+    _, group = connected_components(graph, directed=False)
+    sizes = np.bincount(group)
+    members = np.flatnonzero(sizes[group] > 1)  # node ids sort by chunk, then position
+    members = members[np.lexsort((members, group[members]))]
+    chunk, local = uniq[members] >> 32, uniq[members] & ((1 << 32) - 1)
+    grp = group[members]
+    head = np.r_[True, grp[1:] != grp[:-1]]
+    at_node = np.full(uniq.size, -1, np.int64)
+    at_node[members] = np.arange(members.size)
+    src = source[members]
+    src = np.where(src >= 0, at_node[np.maximum(src, 0)], -1)  # the member each copy repeats
+    n_rows, weight = np.ones(members.size, np.int64), np.ones(members.size)
+    for c in np.unique(chunk):
+        hpos, hrows, hweight = keys[int(c)]["heads"]
+        sel = np.flatnonzero(chunk == c)
+        at = np.searchsorted(hpos, local[sel])
+        hit = at < hpos.size
+        hit[hit] = hpos[at[hit]] == local[sel][hit]
+        n_rows[sel[hit]] = hrows[at[hit]]
+        weight[sel[hit]] = hweight[at[hit]]
+    return {"chunk": chunk, "local": local, "group": np.unique(grp, return_inverse=True)[1].astype(np.int64),
+            "copy": copy[members] & ~head, "source": np.where(copy[members] & ~head, src, -1), "head": head,
+            "n_rows": n_rows, "weight": weight}
+
+
+def merge_across(groups, raw_of):
+    """What the groups of :func:`cross_chunk_groups` change: one tracer (the first) per group.
+
+    ``raw_of(chunk)`` gives a chunk's :func:`raw_arrays`. Returns ``drops`` (chunk -> sorted
+    positions of the members that are merged away), ``replace`` (chunk -> (positions of the
+    groups' first members, their merged :func:`fit_arrays` as a (6, k) array)) for the groups of
+    two or more distinct measurements, and the counts ``merged`` (tracers merged away),
+    ``copies`` (exact copies among them), ``rows`` and ``groups`` (to add to the chunks' own
+    duplicate rows and groups). The merged values are the reader's inverse-variance means of the
+    members' values (each member already the mean of its chunk's group, so the sums equal the
+    in-memory ones); positions are the mean of the members' unit vectors each weighted by the
+    length of the sum it is the direction of, which is the in-memory sum of all the rows' vectors.
+    """
+    chunk, local, group, copy, head = (groups[k] for k in ("chunk", "local", "group", "copy", "head"))
+    drops = {int(c): np.sort(local[(chunk == c) & ~head]) for c in np.unique(chunk[~head])}
+    counts = {"merged": int((~head).sum()), "copies": int(copy.sum()), "rows": int(np.sum(groups["n_rows"] == 1)),
+              "groups": int(head.sum()) - int(np.sum(groups["n_rows"] > 1))}
+    # how often each member counts: copies not at all; but a copy that its own chunk merged with
+    # other rows stands for them too: it counts, and the single row it repeats is taken out once
+    use = (~copy).astype(float)
+    src = groups["source"]
+    carries = copy & (groups["n_rows"] > 1) & (src >= 0)
+    carries[carries] = groups["n_rows"][src[carries]] == 1
+    use[carries] = 1.0
+    extra = src[carries]  # members counted once more with -1
+    member = np.concatenate([np.arange(chunk.size), extra])
+    mult = np.concatenate([use, np.full(extra.size, -1.0)])
+    n_pos = np.bincount(group[member], mult > 0, minlength=int(head.sum()) if head.size else 0)
+    sel = np.flatnonzero(n_pos[group[member]] >= 2)
+    replace = {}
+    if sel.size == 0:
+        return drops, replace, counts
+    need, mult = member[sel], mult[sel]
+    fields = {k: np.empty(need.size) for k in FIT_FIELDS}
+    for c in np.unique(chunk[need]):
+        at = np.flatnonzero(chunk[need] == c)
+        raw = raw_of(int(c))
+        for k, arr in zip(FIT_FIELDS, raw):
+            fields[k][at] = arr[local[need][at]]
+    g = np.unique(group[need], return_inverse=True)[1]
+    first = np.flatnonzero(head[need] & (mult > 0))
+    first = first[np.unique(g[first], return_index=True)[1]]  # each group's head, once
+    merged = merge_measurements(fields, g, first, mult, weight=groups["weight"][need])
+    values = np.stack(fit_arrays(tuple(merged[k] for k in FIT_FIELDS)))
+    hc, hl = chunk[need][first], local[need][first]
+    for c in np.unique(hc):
+        sel = np.flatnonzero(hc == c)
+        sel = sel[np.argsort(hl[sel])]
+        replace[int(c)] = (hl[sel], values[:, sel])
+    return drops, replace, counts
+
+
+def replace_in_sample(sample, replace):
+    """Put the merged values of ``replace`` (from :func:`merge_across`) into the sample's rows."""
+    if not replace or sample is None:
+        return
+    for c, (pos, values) in replace.items():
+        rows = np.flatnonzero(sample["chunk"] == c)
+        at = np.searchsorted(pos, sample["local"][rows])
+        hit = at < pos.size
+        hit[hit] = pos[at[hit]] == sample["local"][rows][hit]
+        sample["data"][:, rows[hit]] = values[:, at[hit]]
 
 
 def drop_from_sample(sample, drops):

@@ -1,15 +1,19 @@
 """Duplicated tracers: exact copies of a row, and near-duplicates (the same name, or the same place
 with distance and A_V within their errors, as when two compilations are merged).
 
-Groups are found without Python loops over tracers. Places: the rows are sorted by the keys
-of four grids of cells twice the separation tolerance across, shifted by half a cell in
-latitude and in longitude, so that every pair closer than the tolerance in both coordinates
-shares a cell in at least one grid; within a cell every pair is compared (rows ``k`` apart
-in the sorted order, for ``k = 1, 2, ...`` while any cell holds more than ``k`` rows), its
-separation checked exactly, and it is one tracer only if distance and A_V also agree within
-``nsigma`` times their combined errors. So a crowded field, many distinct stars within the
-tolerance but at different distances or reddenings, is not merged. Exact copies repeat every
-value of a close pair. Names: one sort. Pairs are joined into groups by connected components.
+Groups are found without Python loops over tracers. Places: rows alone in their cell of a
+coarse grid (64 times the tolerance across, cells counted by hashed keys and ``np.bincount``)
+and away from its edges are set aside first; the others are sorted by the keys of four grids
+of cells twice the separation tolerance across, shifted by half a cell in latitude and in
+longitude, with longitude scaled by the cosine of each latitude band's edge farthest from the
+equator, so that every pair closer than the tolerance shares a cell in at least one grid at
+any l and b; the rows near l = 0/360 are searched once more with the wrap moved. Within a
+cell every pair is compared (rows ``k`` apart in the sorted order, for ``k = 1, 2, ...``
+while any cell holds more than ``k`` rows), its separation checked exactly, and it is one
+tracer only if distance and A_V also agree within ``nsigma`` times their combined errors. So
+a crowded field, many distinct stars within the tolerance but at different distances or
+reddenings, is not merged. Exact copies repeat every value of a close pair. Names: one sort.
+Pairs are joined into groups by connected components.
 """
 
 import numpy as np
@@ -23,6 +27,7 @@ from .rules import DUPLICATE_NSIGMA, DUPLICATE_SEPARATION_ARCSEC
 __all__ = [
     "find_duplicates",
     "merge_groups",
+    "merge_measurements",
 ]
 
 
@@ -74,6 +79,17 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
         True for a row that repeats an earlier row's position, distance, A_V and errors exactly.
     copied : ndarray of bool
         True for every row of such a set of exact copies (the first one too).
+
+    Notes
+    -----
+    Longitude wraps: the rows within two cells of l = 0/360 deg are searched once more with
+    the wrap moved to l = 180 deg, so that two records of one cluster at l = 359.9999 and
+    0.0001 deg are compared.
+    Rows alone in their cell of a coarse grid (cells 64 times the tolerance) and away from its
+    edges are set aside before any sort (cells counted by hashing their keys into
+    ``np.bincount``). In every grid, longitude is scaled by the cosine of the latitude band's
+    edge farthest from the equator, so that a pair within the tolerance is within it in both
+    cell coordinates at any latitude and longitude.
     """
     n = l.size
     ii, jj = [], []
@@ -84,21 +100,8 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
         ii.append(i)
         jj.append(j)
     tol = max(float(tol_arcsec), 1e-6) / 3600.0  # exact copies are found even with a zero tolerance
-    cell = 2.0 * tol
-    cosb = np.maximum(np.cos(np.radians(b)), 1e-6)
-    x = np.mod(l, 360.0) * cosb
-    ci, cj = [], []
-    for sb in (0.0, 0.5):
-        kb = np.floor(b / cell + sb).astype(np.int64)
-        for sl in (0.0, 0.5):
-            kl = np.floor(x / cell + sl).astype(np.int64)
-            i, j = _pairs_same_key(kb * (1 << 31) + kl)
-            if i.size:
-                keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
-                ci.append(i[keep])
-                cj.append(j[keep])
-    if ci:
-        i, j = np.concatenate(ci), np.concatenate(cj)
+    i, j = _close_pairs(l, b, tol)
+    if i.size:
         same = np.ones(i.size, dtype=bool)
         for col in (l, b, d, d_err, av, av_err):
             same &= col[i] == col[j]
@@ -119,6 +122,92 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     graph = coo_matrix((np.ones(i.size, dtype=np.int8), (i, j)), shape=(n, n))
     _, group = connected_components(graph, directed=False)
     return group, exact, copied
+
+
+def _close_pairs(l, b, tol):
+    """Index pairs (i, j), i != j, of rows at most ``tol`` deg apart (each pair at least once).
+
+    Four grids of cells ``2 tol`` across, shifted by half a cell in latitude and in
+    longitude: a pair closer than ``tol`` in both coordinates shares a cell in one of them.
+    Only the rows :func:`_not_alone` keeps are searched. Longitude wraps: those within two
+    cells of l = 0/360 are searched once more with the wrap moved to l = 180 deg.
+    """
+    l = np.mod(l, 360.0)
+    rows = _not_alone(l, b, tol)
+    if rows.size < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    lr, br = l[rows], b[rows]
+    ci, cj = _grid_pairs(lr, br, tol)
+    near = np.flatnonzero(np.minimum(lr, 360.0 - lr) * np.maximum(np.cos(np.radians(br)), 1e-6) < 4.0 * tol)
+    if near.size > 1:
+        lw = lr[near]
+        i, j = _grid_pairs(np.where(lw > 180.0, lw - 180.0, lw + 180.0), br[near], tol)
+        ci += [near[x] for x in i]
+        cj += [near[x] for x in j]
+    if not ci:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    return rows[np.concatenate(ci)], rows[np.concatenate(cj)]
+
+
+def _band_scale(kb, shift, size):
+    """cos of the latitude band edge farthest from the equator (band ``kb`` of cells ``size`` deg
+    across, shifted by ``shift`` cells): l times it is at most the arc length along any parallel of
+    the band, so two rows of a band within ``tol`` deg are within ``tol`` in it. (One cosine per
+    band, looked up per row.)"""
+    lo = np.min(kb) if kb.size else 0.0
+    bands = np.arange(lo, (np.max(kb) if kb.size else 0.0) + 1.0)
+    edge = np.maximum(np.abs(bands - shift), np.abs(bands - shift + 1)) * size
+    table = np.maximum(np.cos(np.radians(np.minimum(edge, 90.0))), 1e-6)
+    return table[(kb - lo).astype(np.intp)]
+
+
+def _not_alone(l, b, tol, coarse=64):
+    """Sorted indices of the rows that may have another row within ``tol`` deg (the others have none).
+
+    One grid of cells ``coarse * tol`` across (l in [0, 360) scaled by :func:`_band_scale`): a
+    row alone in its cell, farther than ``tol`` from the cell's edges and from l = 360 has no
+    row within ``tol``. Cells are counted by hashing their keys (multiply-shift) into about
+    four buckets a row with ``np.bincount``, without a sort; only the rows of buckets holding
+    two or more are sorted, to tell a shared cell from a shared bucket."""
+    size = coarse * tol
+    v = b / size
+    kv = np.floor(v)
+    v -= kv
+    scale = _band_scale(kv, 0.0, size)
+    u = l * scale
+    m = 1.001 / coarse  # tol in cells, with a margin for rounding
+    edge = (360.0 - l) * scale < 1.001 * tol  # near the wrap (l = 0 is a cell edge)
+    u /= size
+    ku = np.floor(u)
+    u -= ku
+    edge |= (u < m) | (u > 1.0 - m) | (v < m) | (v > 1.0 - m)
+    key = (kv.astype(np.int64) << 31) + ku.astype(np.int64)
+    del u, v, kv, ku, scale
+    bits = min(max(int(np.ceil(np.log2(max(4 * l.size, 2)))), 4), 24)  # >= 4 buckets a row, <= 128 MB
+    with np.errstate(over="ignore"):
+        bucket = ((key.view(np.uint64) * np.uint64(0x9E3779B97F4A7C15)) >> np.uint64(64 - bits)).view(np.int64)
+    shared = np.flatnonzero(np.bincount(bucket, minlength=1 << bits)[bucket] > 1)
+    i, j = _pairs_same_key(key[shared], all_pairs=False)  # rows of a shared bucket that share a cell
+    edge[shared[i]] = True
+    edge[shared[j]] = True
+    return np.flatnonzero(edge)
+
+
+def _grid_pairs(l, b, tol):
+    """Lists of index arrays (i, j) of the pairs within ``tol`` that share a cell of one of the four
+    grids (cells ``2 tol`` across, l scaled per latitude band by :func:`_band_scale`)."""
+    cell = 2.0 * tol
+    ci, cj = [], []
+    for sb in (0.0, 0.5):
+        kb = np.floor(b / cell + sb)
+        x = l * _band_scale(kb, sb, cell)
+        kb = kb.astype(np.int64) << 31
+        for sl in (0.0, 0.5):
+            i, j = _pairs_same_key(kb + np.floor(x / cell + sl).astype(np.int64))
+            keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
+            ci.append(i[keep])
+            cj.append(j[keep])
+    return ci, cj
 
 
 def _separation_deg(l1, b1, l2, b2):
@@ -150,7 +239,9 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
         Index of the tracer that stands for each group (all tracers with ``'keep'``).
     merged : dict of ndarray
         The merged values of ``l``, ``b``, ``distance``, ``distance_err``, ``av``, ``av_err``,
-        ``excess``, ``excess_err`` for the kept tracers.
+        ``excess``, ``excess_err`` for the kept tracers; when groups were merged also
+        ``position_weight``, the length of the sum of a group's unit vectors (1 for a single
+        row), with which a later merge of merged tracers gives the same mean position.
     report : `~astropy.table.Table`
         One row per tracer in a group of two or more: ``group``, ``row``, ``name``, ``kind``,
         ``merged_into``.
@@ -170,45 +261,70 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     n = group.size
     counts = np.bincount(group, minlength=group.max() + 1 if n else 0)
     multi = counts[group] > 1
-    order = np.lexsort((np.arange(n), group))
-    first = np.ones(n, dtype=bool)
+    if not multi.any():  # nothing to merge or report (the common case: no sort at all)
+        return np.arange(n), dict(fields), empty_duplicates()
+    # the first row of each group stands for it; only rows of groups of two or more are sorted
+    head = np.empty(counts.size, dtype=np.int64)
+    head[group] = np.arange(n)  # right for single rows; groups of two or more are set below
+    members = np.flatnonzero(multi)
+    order = members[np.lexsort((members, group[members]))]
+    first = np.ones(order.size, dtype=bool)
     first[1:] = group[order][1:] != group[order][:-1]
-    head = np.empty(group.max() + 1 if n else 0, dtype=np.int64)
     head[group[order][first]] = order[first]
-    keep = np.sort(head) if mode == "merge" else np.arange(n)
-    report = empty_duplicates()
-    if multi.any():
-        k = np.flatnonzero(multi)
-        k = k[np.lexsort((rows[k], group[k]))]
-        gid = np.unique(group[k], return_inverse=True)[1]
-        report = Table(
-            {
-                "group": gid.astype(np.int64),
-                "row": rows[k].astype(np.int64),
-                "name": np.asarray(names)[k] if names is not None else np.char.add("row ", rows[k].astype(str)),
-                "kind": np.where(copied[k], "exact", "near"),
-                "merged_into": rows[head[group[k]]].astype(np.int64) if mode == "merge" else np.full(k.size, -1),
-            }
-        )
-    merged = {}
-    if mode != "merge" or not multi.any():
+    keep = np.flatnonzero(head[group] == np.arange(n)) if mode == "merge" else np.arange(n)
+    k = order[np.lexsort((rows[order], group[order]))]
+    gid = np.unique(group[k], return_inverse=True)[1]
+    report = Table(
+        {
+            "group": gid.astype(np.int64),
+            "row": rows[k].astype(np.int64),
+            "name": np.asarray(names)[k] if names is not None else np.char.add("row ", rows[k].astype(str)),
+            "kind": np.where(copied[k], "exact", "near"),
+            "merged_into": rows[head[group[k]]].astype(np.int64) if mode == "merge" else np.full(k.size, -1),
+        }
+    )
+    if mode != "merge":
         return keep, {name: fields[name][keep] for name in fields}, report
-    use = ~exact  # exact copies add no information
-    m = group.max() + 1
+    # every kept row as it is, then the heads of groups of two or more overwritten with their
+    # group's merged values (computed on the groups' rows only)
+    merged = {name: fields[name][keep] for name in fields}
+    merged["position_weight"] = np.ones(keep.size)
+    at = np.searchsorted(keep, order[first])  # where each group's head is among the kept rows
+    values = merge_measurements({name: fields[name][order] for name in fields}, np.cumsum(first) - 1,
+                                np.flatnonzero(first), ~exact[order])
+    for name, v in values.items():
+        merged[name][at] = v
+    return keep, merged, report
+
+
+def merge_measurements(fields, group, head, use, weight=None):
+    """Merged values of each group of measurements (the formulas of :func:`merge_groups`).
+
+    ``group`` numbers each row's group 0..m-1, ``head`` is each group's first row, ``use``
+    marks the distinct measurements (False for exact copies; as numbers, how many times a row
+    counts, -1 taking out a measurement another row already holds) and ``weight`` (default 1) the
+    length of the sum of unit vectors a row's position already stands for (the unit vectors are
+    summed with these weights). Only the pairs of ``fields`` present are merged. The result
+    holds ``position_weight``, the length of each group's sum of unit vectors.
+    """
+    m = head.size
+    counts = np.bincount(group, minlength=m)
+    use = np.asarray(use, float)
+    merged = {}
     for value, err in (("distance", "distance_err"), ("av", "av_err"), ("excess", "excess_err")):
+        if value not in fields:
+            continue
         x, s = fields[value], fields[err]
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where(use & (s > 0), 1.0 / s**2, 0.0)
+            w = np.where((use != 0) & (s > 0), use / s**2, 0.0)
         sw = np.bincount(group, w, m)
         swx = np.bincount(group, w * x, m)
         ok = sw > 0
-        mean = np.where(ok, swx / np.where(ok, sw, 1.0), x[head])
-        sig = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s[head])
-        merged[value] = mean[group[keep]]
-        merged[err] = sig[group[keep]]
+        merged[value] = np.where(ok, swx / np.where(ok, sw, 1.0), x[head])
+        merged[err] = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s[head])
     lr, br = np.radians(fields["l"]), np.radians(fields["b"])
     xyz = [np.cos(br) * np.cos(lr), np.cos(br) * np.sin(lr), np.sin(br)]
-    wpos = use.astype(float)
+    wpos = use * (1.0 if weight is None else np.asarray(weight, float))
     sx, sy, sz = (np.bincount(group, wpos * c, m) for c in xyz)
     lm = np.mod(np.degrees(np.arctan2(sy, sx)), 360.0)
     bm = np.degrees(np.arctan2(sz, np.hypot(sx, sy)))
@@ -216,29 +332,26 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     # rho = sum(rho / (s_a s_d)) / sqrt(sum wa sum wd) over the distinct measurements
     if "av_distance_corr" in fields:
         sa, sd = fields["av_err"], fields["distance_err"]
-        ok = use & (sa > 0) & (sd > 0)
+        ok = (use != 0) & (sa > 0) & (sd > 0)
         with np.errstate(divide="ignore", invalid="ignore"):
-            term = np.where(ok, fields["av_distance_corr"] / (sa * sd), 0.0)
-            wa = np.where(ok, 1.0 / sa**2, 0.0)
-            wd = np.where(ok, 1.0 / sd**2, 0.0)
+            term = np.where(ok, use * fields["av_distance_corr"] / (sa * sd), 0.0)
+            wa = np.where(ok, use / sa**2, 0.0)
+            wd = np.where(ok, use / sd**2, 0.0)
             rho = np.bincount(group, term, m) / np.sqrt(np.bincount(group, wa, m) * np.bincount(group, wd, m))
-        rho = np.where(np.isfinite(rho), np.clip(rho, -1.0, 1.0), fields["av_distance_corr"][head])
-        merged["av_distance_corr"] = rho[group[keep]]
+        merged["av_distance_corr"] = np.where(np.isfinite(rho), np.clip(rho, -1.0, 1.0),
+                                              fields["av_distance_corr"][head])
     # asymmetric distance errors (parallaxes): the merged error times the inverse-variance mean of
     # the members' ratios low / sigma and high / sigma, so low + high stays 2 sigma
     if "distance_err_low" in fields and "distance_err_high" in fields:
         s = fields["distance_err"]
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where(use & (s > 0), 1.0 / s**2, 0.0)
+            w = np.where((use != 0) & (s > 0), use / s**2, 0.0)
             sw = np.bincount(group, w, m)
             for side in ("distance_err_low", "distance_err_high"):
                 ratio = np.where(s > 0, fields[side] / s, 0.0)
                 mean = np.bincount(group, w * ratio, m) / sw
-                merged[side] = np.where(np.isfinite(mean[group[keep]]), mean[group[keep]] * merged["distance_err"],
-                                        fields[side][keep])
-    merged["l"] = np.where(counts > 1, lm, fields["l"][head])[group[keep]]
-    merged["b"] = np.where(counts > 1, bm, fields["b"][head])[group[keep]]
-    for name in fields:
-        if name not in merged:
-            merged[name] = fields[name][keep]
-    return keep, merged, report
+                merged[side] = np.where(np.isfinite(mean), mean * merged["distance_err"], fields[side][head])
+    merged["l"] = np.where(counts > 1, lm, fields["l"][head])
+    merged["b"] = np.where(counts > 1, bm, fields["b"][head])
+    merged["position_weight"] = np.where(counts > 1, np.sqrt(sx * sx + sy * sy + sz * sz), wpos[head])
+    return merged
