@@ -6,10 +6,9 @@ errors and a few per cent of outliers. Nothing is taken from a real survey.
 """
 
 import numpy as np
-from astropy.table import Table
 from scipy.spatial import cKDTree
 
-from dustkit.simulate import Cloud, ClumpyField, DustField, random_clouds, simulate_tracers
+from dustkit.simulate import ClumpyField, DustField, random_clouds, simulate_tracers
 
 __all__ = ["GALAXIES", "make_galaxy", "baseline_predict", "score", "strata"]
 

@@ -866,7 +866,6 @@ def _optimise(args, colours_only, has_plx, start=None):
 
         x0 = np.array([e0, _logit(0.3)])
         steps = np.array([0.003, 0.05])
-        names = ("ebv", "ff")
     else:
         # coarse search over (E(B-V), mu0) with fixed fractions
         ebv_grid = np.arange(0.0, 3.01, 0.1)

@@ -5,7 +5,6 @@ import time
 import numpy as np
 from astropy import units as u
 from astropy.table import Table
-from scipy import optimize
 from scipy.spatial import cKDTree
 
 import inspect
@@ -18,7 +17,9 @@ from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
 from ..layer import DustLayer, fit_layer, layer_av_pc
 from .lattice import Lattice, active_pixels, chord, unit_vectors
-from .solver import NU, cumulative_at_nodes, draw_samples, fit_posterior, sample_distance_shift, tracer_terms
+from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
+                      unresolved_variance)
+from .solver import cumulative_at_nodes, draw_samples, fit_posterior, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
            "density_from_state"]
@@ -273,10 +274,10 @@ class DensityModel:
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         amps, lens = cands
-        bar = progress(total=(len(amps) + len(lens) - 1) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
+        bar = progress(total=(len(amps) + len(lens) + 1) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
 
-        def evaluate(amp, length, warm):
-            lat = Lattice(grid, pixels, amp, length)
+        def evaluate(amp, length, warm, boost=None, cell_length=None):
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             warm = warm if warm is not None and warm.shape == lat.shape else None
             full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
@@ -292,10 +293,10 @@ class DensityModel:
                 bar.update(1)
             ok = ~terms.censored
             struct = np.maximum(base - layer_at, 0.0)
-            tau, tau_s, score = _fit_tau(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
+            tau, tau_s, score = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
             spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
             rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
-                         float(np.mean(np.abs(resid[ok]) <= spread))))
+                         float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None))
             bar.update(1)
             return rows[-1], full.xi, resid, pvar, base, full.predicted
 
@@ -314,17 +315,12 @@ class DensityModel:
                 if cand[0][4] < best[0][4]:
                     best = cand
             (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted = best
-            # what held-out tracers missed beyond their predicted spread; a tracer that even the
-            # fit with it inside disagrees with is an outlier (a wrong member), not unresolved dust
-            z_fit = (av - fitted) / np.sqrt(ae**2 + (tau * fitted) ** 2)
-            consistent = NU / (NU + z_fit**2)
-            # signed: a calibrated tracer scatters around zero; only the local average is clipped
-            censored = d > grid.distance_edges[-1]
-            # (the structure term is left out: misses behind clouds must raise the prior there)
-            excess = np.where(censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
-            excess *= consistent
-            # where they miss, more freedom in the cells in front of them (per cell)
-            boost, cell_length = _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amp, length)
+            excess = held_out_excess(av, ae, fitted, resid, pvar, base, tau, d > grid.distance_edges[-1])
+
+            def raise_cells(a):  # where they miss, more freedom in the cells in front of them
+                return cell_boost(grid, layer, pixels, l, b, d, excess, weight, a, length)
+
+            amp, boost, cell_length, xi0 = compare_background(evaluate, raise_cells, amp, length, xi0)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
@@ -332,7 +328,7 @@ class DensityModel:
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.mode_ = post.xi  # white-noise coordinates of the posterior mode (warm starts)
-        self.unresolved_ = _unresolved(grid, l, b, d, excess, weight)
+        self.unresolved_ = unresolved_variance(grid, l, b, d, excess, weight)
         # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
         # leans on the prior; where tracers inform it, the field's posterior absorbs the
         # layer's misfit (weight 1 - support)
@@ -343,7 +339,8 @@ class DensityModel:
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
                                + (self.tau_ * self.av_) ** 2
                                + (self.structure_tau_ * np.maximum(self.av_ - self._layer_nodes(), 0.0)) ** 2)
-        self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage"))
+        self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
+                                           "raised_cells"))
         self.cv_["length"].unit = u.pc
         self.cv_["rms"].unit = u.mag
         self.cv_.meta["validation"] = (f"{folds_n} folds of spatial blocks (HEALPix NSIDE 16 cells x 25%-deep "
@@ -361,7 +358,7 @@ class DensityModel:
         e = grid.distance_edges
         npix = grid.npix
         _, bc_all = grid.pixel_centres()
-        inc = _layer_increments(layer, bc_all, e)                                   # (npix, K)
+        inc = layer_increments(layer, bc_all, e)                                   # (npix, K)
         prior_var = _prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
         # active pixels: their own amplitudes and lengths, cell by cell
         prior_var[lat.pixels] = lat.cumulative_prior_variance(inc[lat.pixels])
@@ -655,12 +652,6 @@ def _layer_variance(layer, grid):
     return np.maximum(var, 0.0).reshape(bc.size, e.size)
 
 
-def _layer_increments(layer, b_deg, edges):
-    n = np.size(b_deg)
-    cum = layer.av_pc(np.repeat(b_deg, edges.size), np.tile(edges, n)).reshape(n, edges.size)
-    return np.maximum(np.diff(cum, axis=1), 0.0)
-
-
 def _prior_cumulative_var(inc, corr, amplitude):
     """Prior variance of cumulative A_V at every edge for layer increments ``inc`` (npix, K)."""
     m = amplitude**2 * corr  # covariance of the linearised density contrast between bins
@@ -697,75 +688,6 @@ def _predict_terms(lat, terms, xs, f_mode):
     dev = g[:, :, None] * (lat.forward(xs) - f_mode[:, :, None])
     lin = np.einsum("ik,kis->is", terms.mean_coef, dev[:, terms.col])
     return mean, np.mean(lin**2, axis=1), var_d
-
-
-def _fit_tau(resid, pvar, err, base, struct):
-    """Unresolved fractions by maximum Student-t likelihood of held-out residuals; returns (tau, tau_s, score).
-
-    ``tau`` is the fraction of all extinction the cells cannot resolve, ``tau_s`` the
-    fraction of the extinction the model attributes to structure beyond the layer
-    (``struct``): clouds and clumps carry more unresolved structure of their own (their
-    edges and cores inside a cell) than the smooth dust around them.
-    """
-    def nll(p):
-        v = pvar + err**2 + (p[0] * base) ** 2 + (p[1] * struct) ** 2
-        z2 = resid**2 / v
-        return float(np.mean(0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(z2 / NU)))
-
-    best = min(((t, ts) for t in (0.0, 0.03, 0.1) for ts in (0.0, 0.1, 0.3)), key=nll)
-    res = optimize.minimize(nll, best, method="L-BFGS-B", bounds=[(0.0, 1.0), (0.0, 2.0)])
-    return float(res.x[0]), float(res.x[1]), float(res.fun)
-
-
-def _cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, max_amplitude=2.0, shortest=60.0):
-    """Per-cell factor on the prior amplitude and per-cell correlation length (n_bins, n_pix), from held-out misses.
-
-    The excess variance of held-out tracers (squared residual beyond its predicted
-    variance), spread on the sky and in log distance as for the unresolved variance, and
-    made non-decreasing with distance, says how much extinction variance the prior missed
-    out to each distance; its growth across a bin, ``dX_k``, sits in that bin. A cell whose
-    prior spread of extinction is ``s inc_k`` (``inc_k``: the layer's extinction in the bin)
-    gets ``boost^2 = 1 + dX_k / (s inc_k)^2``: compact clouds get the freedom they need
-    where tracers behind them miss and tracers in front do not, without loosening the prior
-    of the smooth rest of the sky. Capped so that ``s boost`` stays at most
-    ``max_amplitude``. A raised cell also gets a correlation length along the sight line
-    shorter by the same factor (at least ``shortest`` pc): the structure it stands for is
-    compact, and a long length would smear it in depth. An empirical-Bayes, non-stationary
-    (heavier-tailed) prior.
-    """
-    e = grid.distance_edges
-    _, bc = grid.pixel_centres(pixels)
-    x = _unresolved(grid, l, b, d, excess, weight, pixels=pixels)        # (P, E)
-    dx = np.diff(np.maximum.accumulate(x, axis=1), axis=1)              # (P, K)
-    inc = _layer_increments(layer, bc, e)                               # (P, K)
-    boost2 = 1.0 + dx / np.maximum((amplitude * inc) ** 2, 1e-12)
-    boost = np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
-    return boost, np.clip(length / boost, min(shortest, length), length)
-
-
-def _unresolved(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
-    """Local variance the cells miss (npix, n_edges), from held-out tracers' excess squared residuals.
-
-    Each tracer's excess (its held-out squared residual beyond the predicted variance)
-    spreads over nodes within a Gaussian of ``sky_deg`` on the sky and ``depth`` in log
-    distance, averaged with ``prior_weight`` tracers' worth of zero (so a lone miss does
-    not inflate a whole region). Zero far from tracers, where the prior's spread rules.
-    """
-    e = grid.distance_edges
-    lc, bc = grid.pixel_centres(pixels)
-    n_out = lc.size
-    tree = cKDTree(unit_vectors(l, b))
-    pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(tree, chord(3 * sky_deg), output_type="coo_matrix")
-    pix, tr = pairs.row, pairs.col
-    ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
-    w_sky = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[tr]
-    out = np.zeros((n_out, e.size))
-    for j in range(1, e.size):  # one pass per distance edge, vectorised over pixel-tracer pairs
-        w = w_sky * np.exp(-0.5 * (np.log(e[j] / d[tr]) / depth) ** 2)
-        num = np.bincount(pix, w * excess[tr], minlength=n_out)
-        den = np.bincount(pix, w, minlength=n_out)
-        out[:, j] = np.maximum(num / (den + prior_weight), 0.0)
-    return out
 
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",

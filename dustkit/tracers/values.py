@@ -190,7 +190,6 @@ def error_values(table, cols, key, ctx, default, value_desc, default_desc):
 
 
 def names_of(table, cols):
-    n = len(table)
     if "name" not in cols:  # "row <i>", made only when someone asks (TracerSet.name)
         return None
     col = table[cols["name"]]

@@ -1,0 +1,132 @@
+"""What held-out tracers tell the density model beyond its prior: misses, raised cells, unresolved parts.
+
+The density model (:mod:`dustkit.density.estimator`) scores every candidate prior on
+tracers held out in spatially blocked folds. From those held-out residuals this module
+derives: the unresolved fractions of extinction (:func:`fit_unresolved_fractions`), each
+tracer's miss beyond its predicted spread (:func:`held_out_excess`), the local variance the
+cells cannot resolve (:func:`unresolved_variance`), the cells whose prior amplitude is raised
+where tracers behind them missed (:func:`cell_boost`), and the background amplitude once
+those cells carry the clouds (:func:`compare_background`). Plain numpy arrays throughout.
+"""
+
+import numpy as np
+from scipy import optimize
+from scipy.spatial import cKDTree
+
+from .lattice import chord, unit_vectors
+from .solver import NU
+
+__all__ = ["LOWEST_AMPLITUDE", "layer_increments", "fit_unresolved_fractions", "held_out_excess", "cell_boost",
+           "unresolved_variance", "compare_background"]
+
+#: Smallest background amplitude the second comparison (with raised cells) may choose.
+LOWEST_AMPLITUDE = 0.01
+
+
+def layer_increments(layer, b_deg, edges):
+    n = np.size(b_deg)
+    cum = layer.av_pc(np.repeat(b_deg, edges.size), np.tile(edges, n)).reshape(n, edges.size)
+    return np.maximum(np.diff(cum, axis=1), 0.0)
+
+
+def fit_unresolved_fractions(resid, pvar, err, base, struct):
+    """Unresolved fractions by maximum Student-t likelihood of held-out residuals; returns (tau, tau_s, score).
+
+    ``tau`` is the fraction of all extinction the cells cannot resolve, ``tau_s`` the
+    fraction of the extinction the model attributes to structure beyond the layer
+    (``struct``): clouds and clumps carry more unresolved structure of their own (their
+    edges and cores inside a cell) than the smooth dust around them.
+    """
+    def nll(p):
+        v = pvar + err**2 + (p[0] * base) ** 2 + (p[1] * struct) ** 2
+        z2 = resid**2 / v
+        return float(np.mean(0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(z2 / NU)))
+
+    best = min(((t, ts) for t in (0.0, 0.03, 0.1) for ts in (0.0, 0.1, 0.3)), key=nll)
+    res = optimize.minimize(nll, best, method="L-BFGS-B", bounds=[(0.0, 1.0), (0.0, 2.0)])
+    return float(res.x[0]), float(res.x[1]), float(res.fun)
+
+
+def cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, max_amplitude=2.0, shortest=60.0):
+    """Per-cell factor on the prior amplitude and per-cell correlation length (n_bins, n_pix), from held-out misses.
+
+    The excess variance of held-out tracers (squared residual beyond its predicted
+    variance), spread on the sky and in log distance as for the unresolved variance, and
+    made non-decreasing with distance, says how much extinction variance the prior missed
+    out to each distance; its growth across a bin, ``dX_k``, sits in that bin. A cell whose
+    prior spread of extinction is ``s inc_k`` (``inc_k``: the layer's extinction in the bin)
+    gets ``boost^2 = 1 + dX_k / (s inc_k)^2``: compact clouds get the freedom they need
+    where tracers behind them miss and tracers in front do not, without loosening the prior
+    of the smooth rest of the sky. Capped so that ``s boost`` stays at most
+    ``max_amplitude``. A raised cell also gets a correlation length along the sight line
+    shorter by the same factor (at least ``shortest`` pc): the structure it stands for is
+    compact, and a long length would smear it in depth. An empirical-Bayes, non-stationary
+    (heavier-tailed) prior.
+    """
+    e = grid.distance_edges
+    _, bc = grid.pixel_centres(pixels)
+    x = unresolved_variance(grid, l, b, d, excess, weight, pixels=pixels)        # (P, E)
+    dx = np.diff(np.maximum.accumulate(x, axis=1), axis=1)              # (P, K)
+    inc = layer_increments(layer, bc, e)                               # (P, K)
+    boost2 = 1.0 + dx / np.maximum((amplitude * inc) ** 2, 1e-12)
+    boost = np.minimum(np.sqrt(boost2), max(max_amplitude / amplitude, 1.0)).T   # (K, P)
+    return boost, np.clip(length / boost, min(shortest, length), length)
+
+
+def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
+    """Local variance the cells miss (npix, n_edges), from held-out tracers' excess squared residuals.
+
+    Each tracer's excess (its held-out squared residual beyond the predicted variance)
+    spreads over nodes within a Gaussian of ``sky_deg`` on the sky and ``depth`` in log
+    distance, averaged with ``prior_weight`` tracers' worth of zero (so a lone miss does
+    not inflate a whole region). Zero far from tracers, where the prior's spread rules.
+    """
+    e = grid.distance_edges
+    lc, bc = grid.pixel_centres(pixels)
+    n_out = lc.size
+    tree = cKDTree(unit_vectors(l, b))
+    pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(tree, chord(3 * sky_deg), output_type="coo_matrix")
+    pix, tr = pairs.row, pairs.col
+    ang = np.rad2deg(2 * np.arcsin(np.clip(pairs.data / 2, 0, 1)))
+    w_sky = np.exp(-0.5 * (ang / sky_deg) ** 2) * weight[tr]
+    out = np.zeros((n_out, e.size))
+    for j in range(1, e.size):  # one pass per distance edge, vectorised over pixel-tracer pairs
+        w = w_sky * np.exp(-0.5 * (np.log(e[j] / d[tr]) / depth) ** 2)
+        num = np.bincount(pix, w * excess[tr], minlength=n_out)
+        den = np.bincount(pix, w, minlength=n_out)
+        out[:, j] = np.maximum(num / (den + prior_weight), 0.0)
+    return out
+
+
+def held_out_excess(av, ae, fitted, resid, pvar, base, tau, censored):
+    """What held-out tracers missed beyond their predicted spread (signed; 0 for censored tracers).
+
+    A tracer that even the fit with it inside disagrees with is an outlier (a wrong member),
+    not unresolved dust: its excess is weighted down by the Student-t weight of that fit.
+    The structure fraction is left out of the spread: misses behind clouds must raise the
+    prior there.
+    """
+    z_fit = (av - fitted) / np.sqrt(ae**2 + (tau * fitted) ** 2)
+    excess = np.where(censored, 0.0, resid**2 - pvar - ae**2 - (tau * base) ** 2)
+    return excess * (NU / (NU + z_fit**2))
+
+
+def compare_background(evaluate, raise_cells, amp, length, xi0):
+    """The background amplitude once the raised cells carry the clouds: ``amp`` or a third of it.
+
+    The search before this had to explain clouds by the amplitude everywhere; with the
+    raised cells (``raise_cells(amplitude)`` -> per-cell boost and length) holding the
+    clouds' extra variance, the rest of the sky may need less freedom. Both candidates get
+    the same extra variance in the raised cells (the same held-out misses), so neither
+    gains from them; the held-out score decides. Returns (amplitude, boost, cell_length, xi0).
+    """
+    boost, cell_length = raise_cells(amp)
+    lower = amp / 3.0
+    if lower < LOWEST_AMPLITUDE:
+        return amp, boost, cell_length, xi0
+    hi = evaluate(amp, length, xi0, boost, cell_length)
+    b_lo, cl_lo = raise_cells(lower)
+    lo = evaluate(lower, length, xi0 * 3.0, b_lo, cl_lo)
+    if lo[0][4] < hi[0][4]:
+        return lower, b_lo, cl_lo, lo[1][:, :xi0.shape[1]]
+    return amp, boost, cell_length, xi0
