@@ -14,21 +14,24 @@ import warnings
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-import astropy_healpix as _ah
-import astropy_healpix.core as _ahcore
 from astropy import units as u
-from astropy_healpix import healpy as _hp
+
+# astropy-healpix is imported where it is used: it imports astropy.coordinates (0.2 s), which a
+# build from Galactic l, b never needs
 
 __all__ = [
     "nside2npix", "pixarea_deg2", "work_buffers", "ring_pixel", "ring_to_nested", "pixel_from_z",
     "ang2pix", "pix2ang", "interp_weights", "neighbours", "query_disc",
 ]
 
-nside2npix = _hp.nside2npix
+def nside2npix(nside):
+    """Number of pixels, 12 NSIDE^2 (Gorski et al. 2005, ApJ 622, 759)."""
+    return 12 * nside * nside
 
 
 def pixarea_deg2(nside):
-    return float(_hp.nside2pixarea(nside, degrees=True))
+    """Area of one pixel in deg^2: the sphere's 4 pi sr over 12 NSIDE^2 pixels of equal area."""
+    return float(4.0 * np.pi / (12 * nside * nside) * np.rad2deg(1.0) ** 2)
 
 
 _PARALLEL_MIN = 200_000  # positions above which the work is split over the CPU's cores
@@ -132,6 +135,8 @@ _RING_TO_NEST = {}
 
 def ring_to_nested(nside, pixels, out=None):
     """NESTED index of RING pixels (a lookup table for NSIDE <= 256)."""
+    import astropy_healpix.core as _ahcore
+
     if nside > 256:
         return np.asarray(_ahcore.ring_to_nested(np.asarray(pixels), nside))
     table = _RING_TO_NEST.get(nside)
@@ -162,8 +167,41 @@ def ang2pix(nside, l_deg, b_deg, nest=False):
 
 
 def pix2ang(nside, pixels, nest=False):
-    l, b = _hp.pix2ang(nside, np.asarray(pixels), nest=nest, lonlat=True)
-    return np.asarray(l, float), np.asarray(b, float)
+    """Galactic (l, b) in deg of pixel centres; RING in numpy, NESTED through astropy-healpix."""
+    if nest:
+        from astropy_healpix import healpy as _hp
+
+        l, b = _hp.pix2ang(nside, np.asarray(pixels), nest=nest, lonlat=True)
+        return np.asarray(l, float), np.asarray(b, float)
+    return _ring_centres(nside, np.asarray(pixels, np.int64))
+
+
+def _ring_centres(nside, p):
+    """Centres of RING pixels ``p``: ring i and position j in the ring, then z and phi
+    (Gorski et al. 2005, ApJ 622, 759, eqs. 4-9 and the RING numbering of their Fig. 4)."""
+    npix = 12 * nside * nside
+    ncap = 2 * nside * (nside - 1)
+    z = np.empty(p.shape)
+    phi = np.empty(p.shape)
+    north, south = p < ncap, p >= npix - ncap
+    equator = ~(north | south)
+    q = p[north]
+    i = np.floor((1 + np.sqrt(1 + 2 * q)) / 2).astype(np.int64)
+    j = q - 2 * i * (i - 1) + 1
+    z[north] = 1 - i * i / (3.0 * nside * nside)
+    phi[north] = (j - 0.5) * np.pi / (2 * i)
+    q = p[equator] - ncap
+    i = q // (4 * nside) + nside
+    j = q % (4 * nside) + 1
+    shift = (i - nside + 1) % 2
+    z[equator] = 4.0 / 3.0 - 2.0 * i / (3.0 * nside)
+    phi[equator] = (j - 1 + shift / 2.0) * np.pi / (2 * nside)
+    q = npix - p[south]
+    i = np.floor((1 + np.sqrt(2 * q - 1)) / 2).astype(np.int64)
+    j = 4 * i + 1 - (q - 2 * i * (i - 1))
+    z[south] = -1 + i * i / (3.0 * nside * nside)
+    phi[south] = (j - 0.5) * np.pi / (2 * i)
+    return np.rad2deg(phi), np.rad2deg(np.arcsin(np.clip(z, -1.0, 1.0)))
 
 
 _RINGS = {}
@@ -269,6 +307,8 @@ def interp_weights(nside, l_deg, b_deg, nest=False):
 
 def neighbours(nside, pixels, nest=False):
     """The 8 neighbours of each pixel, shape (8, n); -1 where a pixel has only 7."""
+    import astropy_healpix as _ah
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         return np.asarray(_ah.neighbours(np.asarray(pixels), nside, order="nested" if nest else "ring"))
@@ -276,5 +316,7 @@ def neighbours(nside, pixels, nest=False):
 
 def query_disc(nside, l_deg, b_deg, radius_deg, nest=False):
     """Pixels whose centres lie within ``radius_deg`` of (l, b)."""
+    import astropy_healpix as _ah
+
     hp = _ah.HEALPix(nside=nside, order="nested" if nest else "ring")
     return np.asarray(hp.cone_search_lonlat(l_deg * u.deg, b_deg * u.deg, radius_deg * u.deg))
