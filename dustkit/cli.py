@@ -535,7 +535,8 @@ def _cmd_build(args, out):
         from .model import build_model, choose_model
 
         tracers = _read_tracers(args, args.catalog)
-        out(tracers.summary(), "")
+        if not out.quiet:  # the summary (sky area, medians: 0.2 s at 10^6 tracers) only when it is printed
+            out(tracers.summary(), "")
         if columns:
             out(f"Column mapping given: {columns}")
         kind = choose_model(len(tracers), args.model)
