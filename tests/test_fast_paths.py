@@ -56,6 +56,15 @@ def test_pixel_centres_equal_healpy(nside):
     assert _healpix.pixarea_deg2(nside) == pytest.approx(hp.nside2pixarea(nside, degrees=True), rel=1e-14)
 
 
+@pytest.mark.parametrize("nside", [1, 2, 4, 8, 64, 128, 256])
+@pytest.mark.parametrize("nest", [False, True])
+def test_neighbours_equal_healpy(nside, nest):
+    # healpy.get_all_neighbours (HEALPix reference): the 8 neighbours of every pixel in the order SW, W, NW, N,
+    # NE, E, SE, S, -1 where a pixel at a face corner has only 7 (numpy for RING up to NSIDE 128)
+    pix = np.arange(12 * nside * nside)
+    assert np.array_equal(_healpix.neighbours(nside, pix, nest=nest), hp.get_all_neighbours(nside, pix, nest=nest))
+
+
 @pytest.mark.parametrize("nside", [1, 4, 32, 256])
 @pytest.mark.parametrize("nest", [False, True])
 def test_interpolation_weights_equal_healpy(nside, nest):

@@ -306,7 +306,13 @@ def interp_weights(nside, l_deg, b_deg, nest=False):
 
 
 def neighbours(nside, pixels, nest=False):
-    """The 8 neighbours of each pixel, shape (8, n); -1 where a pixel has only 7."""
+    """The 8 neighbours of each pixel, shape (8, n); -1 where a pixel has only 7.
+
+    RING up to NSIDE 128 in numpy (a build's sky kernels: importing astropy-healpix, with the
+    astropy.coordinates it pulls in, costs more than the work); else astropy-healpix. Both equal
+    healpy.get_all_neighbours (tests/test_fast_paths.py)."""
+    if not nest and nside <= 128:
+        return _ring_neighbours(nside, pixels)
     import astropy_healpix as _ah
 
     with warnings.catch_warnings():
@@ -320,3 +326,91 @@ def query_disc(nside, l_deg, b_deg, radius_deg, nest=False):
 
     hp = _ah.HEALPix(nside=nside, order="nested" if nest else "ring")
     return np.asarray(hp.cone_search_lonlat(l_deg * u.deg, b_deg * u.deg, radius_deg * u.deg))
+
+
+_JRLL = np.array([2, 2, 2, 2, 3, 3, 3, 3, 4, 4, 4, 4])
+_JPLL = np.array([1, 3, 5, 7, 0, 2, 4, 6, 1, 3, 5, 7])
+_XOFF = np.array([-1, -1, 0, 1, 1, 1, 0, -1])
+_YOFF = np.array([0, 1, 1, 1, 0, -1, -1, -1])
+_FACES = np.array([[8, 9, 10, 11, -1, -1, -1, -1, 10, 11, 8, 9], [5, 6, 7, 4, 8, 9, 10, 11, 9, 10, 11, 8],
+                   [-1, -1, -1, -1, 5, 6, 7, 4, -1, -1, -1, -1], [4, 5, 6, 7, 11, 8, 9, 10, 11, 8, 9, 10],
+                   [0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11], [1, 2, 3, 0, 0, 1, 2, 3, 5, 6, 7, 4],
+                   [-1, -1, -1, -1, 7, 4, 5, 6, -1, -1, -1, -1], [3, 0, 1, 2, 3, 0, 1, 2, 4, 5, 6, 7],
+                   [2, 3, 0, 1, -1, -1, -1, -1, 0, 1, 2, 3]])
+_SWAP = np.array([[0, 0, 3], [0, 0, 6], [0, 0, 0], [0, 0, 5], [0, 0, 0], [5, 0, 0], [0, 0, 0], [6, 0, 0], [3, 0, 0]])
+
+
+def _isqrt(x):
+    """Integer square root of int64 values (float estimate, corrected by one)."""
+    r = np.floor(np.sqrt(x.astype(float))).astype(np.int64)
+    r -= (r * r > x)
+    r += ((r + 1) * (r + 1) <= x)
+    return r
+
+
+def _ring2xyf(nside, pix):
+    """RING pixel -> (x, y, face) (HEALPix C++ ring2xyf)."""
+    npix, ncap, nl2 = 12 * nside * nside, 2 * nside * (nside - 1), 2 * nside
+    iring = np.empty_like(pix); iphi = np.empty_like(pix); kshift = np.zeros_like(pix)
+    nr = np.empty_like(pix); face = np.empty_like(pix)
+    north, south = pix < ncap, pix >= npix - ncap
+    eq = ~(north | south)
+    p = pix[north]
+    ir = (1 + _isqrt(1 + 2 * p)) >> 1
+    ip = (p + 1) - 2 * ir * (ir - 1)
+    iring[north], iphi[north], nr[north], face[north] = ir, ip, ir, (ip - 1) // ir
+    q = pix[eq] - ncap
+    tmp = q // (4 * nside)
+    ir = tmp + nside
+    ip = q - tmp * 4 * nside + 1
+    kshift[eq] = (ir + nside) & 1
+    ire, irm = tmp + 1, nl2 + 1 - tmp
+    ifm = (ip - (ire >> 1) + nside - 1) // nside
+    ifp = (ip - (irm >> 1) + nside - 1) // nside
+    face[eq] = np.where(ifp == ifm, ifp | 4, np.where(ifp < ifm, ifp, ifm + 8))
+    iring[eq], iphi[eq], nr[eq] = ir, ip, nside
+    q = npix - pix[south]
+    ir = (1 + _isqrt(2 * q - 1)) >> 1
+    ip = 4 * ir + 1 - (q - 2 * ir * (ir - 1))
+    nr[south], iring[south], iphi[south], face[south] = ir, 2 * nl2 - ir, ip, (ip - 1) // ir + 8
+    irt = iring - ((2 + (face >> 2)) * nside) + 1
+    ipt = 2 * iphi - _JPLL[face] * nr - kshift - 1
+    ipt = np.where(ipt >= nl2, ipt - 8 * nside, ipt)
+    return (ipt - irt) >> 1, (-ipt - irt) >> 1, face
+
+
+def _xyf2ring(nside, ix, iy, face):
+    """(x, y, face) -> RING pixel (HEALPix C++ xyf2ring)."""
+    npix, ncap = 12 * nside * nside, 2 * nside * (nside - 1)
+    jr = _JRLL[face] * nside - ix - iy - 1
+    north, south = jr < nside, jr >= 3 * nside
+    nrs = np.where(north, jr, np.where(south, 4 * nside - jr, nside))
+    start = np.where(north, 2 * jr * (jr - 1), np.where(south, npix - 2 * nrs * (nrs + 1), ncap + (jr - nside) * 4 * nside))
+    shifted = np.where(north | south, 1, ((jr - nside) & 1) == 0)
+    kshift = 1 - shifted
+    jp = (_JPLL[face] * nrs + ix - iy + 1 + kshift) // 2
+    jp = np.where(jp < 1, jp + 4 * nrs, jp)
+    return start + jp - 1
+
+
+def _ring_neighbours(nside, pixels):
+    """The 8 neighbours of RING pixels in numpy: pixel -> (x, y, face), the offsets of the 8
+    directions, across face edges with the HEALPix C++ library's face and swap tables (Gorski et al.
+    2005, ApJ 622, 759; order SW, W, NW, N, NE, E, SE, S as healpy.get_all_neighbours)."""
+    pix = np.asarray(pixels, np.int64)
+    ix, iy, face = _ring2xyf(nside, pix)
+    out = np.empty((8,) + pix.shape, np.int64)
+    for k in range(8):
+        x, y = ix + _XOFF[k], iy + _YOFF[k]
+        nb = np.full(pix.shape, 4)
+        nb = np.where(x < 0, nb - 1, np.where(x >= nside, nb + 1, nb))
+        x = np.where(x < 0, x + nside, np.where(x >= nside, x - nside, x))
+        nb = np.where(y < 0, nb - 3, np.where(y >= nside, nb + 3, nb))
+        y = np.where(y < 0, y + nside, np.where(y >= nside, y - nside, y))
+        f = _FACES[nb, face]
+        bits = _SWAP[nb, face >> 2]
+        x = np.where(bits & 1, nside - x - 1, x)
+        y = np.where(bits & 2, nside - y - 1, y)
+        x, y = np.where(bits & 4, y, x), np.where(bits & 4, x, y)
+        out[k] = np.where(f >= 0, _xyf2ring(nside, x, y, np.maximum(f, 0)), -1)
+    return out
