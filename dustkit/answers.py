@@ -23,11 +23,11 @@ from the layer interpolated bilinearly on the sky (the HEALPix interpolation of
 """
 
 import os
+import sys
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from astropy import units as u
-from astropy.coordinates import SkyCoord
 from astropy.table import QTable, Table
 
 from ._lib import healpix
@@ -102,6 +102,13 @@ def _interp_block(grid, values, l, b, d):
     return out, k, f
 
 
+def _is_skycoord(obj):
+    """True for a SkyCoord; astropy.coordinates (0.2 s to import) is not imported for the question:
+    while nobody imported it, nothing can be one."""
+    coords = sys.modules.get("astropy.coordinates")
+    return coords is not None and isinstance(obj, coords.SkyCoord)
+
+
 def sky_positions(l, b=None, distance=None):
     """Plain arrays from the answers' inputs: l (deg, in [0, 360)), b (deg), distance (pc), and the input shape.
 
@@ -109,7 +116,8 @@ def sky_positions(l, b=None, distance=None):
     frame) with distances (or ``distance=``). Latitudes outside [-90, 90] deg and negative or
     non-finite distances raise ``ParameterError``.
     """
-    if isinstance(l, SkyCoord):
+    is_coord = _is_skycoord(l)
+    if is_coord:
         c = l.galactic
         lv = np.atleast_1d(c.l.deg).astype(float)
         bv = np.atleast_1d(c.b.deg).astype(float)
@@ -125,7 +133,7 @@ def sky_positions(l, b=None, distance=None):
         bv = np.atleast_1d(to_value("b", b, u.deg)).astype(float)
         dv = np.atleast_1d(to_value("distance", distance, u.pc)).astype(float)
     shape = np.broadcast_shapes(
-        np.shape(getattr(l, "value", l)) if not isinstance(l, SkyCoord) else l.shape,
+        np.shape(getattr(l, "value", l)) if not is_coord else l.shape,
         np.shape(getattr(b, "value", b)) if b is not None else (),
         np.shape(getattr(distance, "value", distance)),
     )

@@ -10,6 +10,7 @@ Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 """
 
 import argparse
+import gc
 import json
 import sys
 import traceback
@@ -535,7 +536,8 @@ def _cmd_build(args, out):
         from .model import build_model, choose_model
 
         tracers = _read_tracers(args, args.catalog)
-        out(tracers.summary(), "")
+        if not out.quiet:  # the summary (sky area, medians: 0.2 s at 10^6 tracers) only when it is printed
+            out(tracers.summary(), "")
         if columns:
             out(f"Column mapping given: {columns}")
         kind = choose_model(len(tracers), args.model)
@@ -1016,7 +1018,27 @@ def main(argv=None):
     debug = bool(getattr(args, "debug", False))
     args.quiet, args.debug = quiet, debug
     prog = f"{_PROG} {args.command}"
+    if argv is None:  # run as the program (not from Python): see _frozen_exit
+        gc.freeze()
+        try:
+            return _run(args, prog, quiet, debug)
+        finally:
+            _frozen_exit()
+    return _run(args, prog, quiet, debug)
 
+
+def _frozen_exit():
+    """Before the process ends: the objects made so far go to the collector's permanent generation
+    (``gc.freeze``, also called once the arguments are parsed), so that the full collection of the
+    interpreter's shutdown does not walk through every module's objects (0.2-0.4 s after a build);
+    the memory goes back to the system with the process. Only when ``main`` runs as the program."""
+    sys.stdout.flush()
+    sys.stderr.flush()
+    gc.freeze()
+
+
+def _run(args, prog, quiet, debug):
+    """The command of parsed ``args``, its errors turned into messages and an exit status."""
     from .exceptions import DustkitError, FileFormatError, ParameterError
 
     old_show = warnings.showwarning

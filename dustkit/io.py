@@ -11,7 +11,9 @@ Three kinds of file:
   (or ``INDXSCHM='IMPLICIT'``, ``OBJECT='FULLSKY'``, ``FIRSTPIX``/``LASTPIX`` when every
   pixel is stored). Each row holds one pixel's vectors over the distance edges. Further
   extensions: ``DISTANCE_EDGES``, ``STATE`` (exact float64 scalars: layer, scatter
-  calibration, smoothing), ``TRACERS`` (the tracers the model was built from) and ``CV``
+  calibration, smoothing), ``TRACERS`` (the tracers the model was built from; ``ROW`` left out when every input
+  row was kept in order, ``EXCESS``/``EXCESS_ERR`` left out with ``EXCSAME = T`` when they
+  repeat ``AV``/``AV_ERR`` bit for bit, both made again on reading) and ``CV``
   (the cross-validation table). Header keywords repeat the law, R_V, layer parameters and
   errors, the scatter calibration, the dustkit version and the input catalogue's checksum
   for people reading the header; the exact values are read from the ``STATE`` extension.
@@ -285,23 +287,35 @@ def _tracers_hdu(model, state):
     if "name" in tr:  # names as given; without them the names are "row <ROW>", made again on reading
         names = np.char.encode(np.asarray(tr["name"]).astype(str), "utf-8")  # FITS strings are bytes
         tcols.append(fits.Column(name="NAME", format=f"{max(1, names.dtype.itemsize)}A", array=names))
+    # A_V given as such: EXCESS and EXCESS_ERR would repeat AV and AV_ERR bit for bit (16 bytes a tracer,
+    # a fifth of a large file); they are then left out and made again on reading (EXCSAME)
+    same = (str(info.get("excess_kind", "A_V")) == "A_V" and all(k in tr for k in ("excess", "excess_err"))
+            and np.array_equal(tr["excess"], tr["av"]) and np.array_equal(tr["excess_err"], tr["av_err"]))
     for k in _TRACER_FLOATS:
-        if k in tr:
+        if k in tr and not (same and k in ("excess", "excess_err")):
             tcols.append(fits.Column(name=k.upper(), format="D", unit=_TRACER_UNITS.get(k, "mag"),
                                      array=np.asarray(tr[k], float)))
     row = getattr(model.tracers_, "row", None)
-    if row is not None:
+    if row is not None and not _is_sequence(row):  # rows 0, 1, ..., n-1 (every row kept): made again on reading
         tcols.append(fits.Column(name="ROW", format="K", array=np.asarray(row, np.int64)))
     trh = fits.BinTableHDU.from_columns(tcols, name="TRACERS")
     th = trh.header
     th["LAW"] = str(info["law"])
     th["RV"] = float(info["rv"])
     th["EXCKIND"] = (str(info.get("excess_kind", "A_V")), "what the EXCESS column is")
+    if same:
+        th["EXCSAME"] = (True, "EXCESS, EXCESS_ERR equal AV, AV_ERR: not stored")
     th["DISTKIND"] = (str(getattr(model.tracers_, "distance_kind", "distance")), "how distances were given")
     th["CATSHA"] = str(tmeta.get("sha256", ""))
     th["CATSHAOF"] = str(tmeta.get("sha256_of", ""))
     th["TRMETA"] = json.dumps(_jsonable(tmeta), ensure_ascii=True)  # tracer-set metadata (JSON); long: no comment
     return trh
+
+
+def _is_sequence(row):
+    """True for the row numbers 0, 1, ..., n-1."""
+    row = np.asarray(row)
+    return row.ndim == 1 and (row.size == 0 or (row[0] == 0 and row[-1] == row.size - 1 and bool(np.all(np.diff(row) == 1))))
 
 
 def _jsonable(obj):
@@ -530,6 +544,8 @@ def _model_from_parts(path, parts):
 
     th, trd = parts["TRACERS"]
     tracers = {k: np.asarray(trd[k.upper()], float) for k in _TRACER_FLOATS if k.upper() in trd.columns.names}
+    if th.get("EXCSAME", False):  # left out on writing: A_V given as such
+        tracers["excess"], tracers["excess_err"] = tracers["av"].copy(), tracers["av_err"].copy()
     if "NAME" in trd.columns.names:
         raw = np.asarray(trd["NAME"])
         tracers["name"] = np.char.decode(raw, "utf-8", "replace") if raw.dtype.kind == "S" else raw.astype(str)
@@ -575,6 +591,8 @@ def _model_from_parts(path, parts):
             changes[k] = tracers[k]
     if "ROW" in trd.columns.names:
         changes["row"] = np.asarray(trd["ROW"], np.int64)
+    else:  # not stored: every row was kept, in order
+        changes["row"] = np.arange(tracers["l"].size, dtype=np.int64)
     changes["name"] = ts.name if "name" in tracers else None  # as stored, or made from ROW when asked
     kind = changes["excess_kind"]
     if kind not in ("A_V", "E(B-V)") and kind.startswith("E("):  # the colour, for TracerSet.with_law

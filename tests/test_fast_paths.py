@@ -42,6 +42,29 @@ def test_pixel_index_equals_healpy(nside, nest):
     assert np.array_equal(ours, ref)
 
 
+@pytest.mark.parametrize("nside", [1, 2, 4, 32, 64, 1024])
+def test_pixel_centres_equal_healpy(nside):
+    # healpy.pix2ang (the HEALPix reference, Gorski et al. 2005) for every RING pixel: dustkit computes the
+    # centres in numpy (no astropy-healpix import for a build); equal to rounding, and each centre lies in its pixel
+    pix = np.arange(12 * nside * nside)
+    l, b = _healpix.pix2ang(nside, pix)
+    ref_l, ref_b = hp.pix2ang(nside, pix, lonlat=True)
+    np.testing.assert_allclose(l, ref_l, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(b, ref_b, rtol=0, atol=1e-9)
+    assert np.array_equal(hp.ang2pix(nside, l, b, lonlat=True), pix)
+    assert _healpix.nside2npix(nside) == hp.nside2npix(nside)
+    assert _healpix.pixarea_deg2(nside) == pytest.approx(hp.nside2pixarea(nside, degrees=True), rel=1e-14)
+
+
+@pytest.mark.parametrize("nside", [1, 2, 4, 8, 64, 128, 256])
+@pytest.mark.parametrize("nest", [False, True])
+def test_neighbours_equal_healpy(nside, nest):
+    # healpy.get_all_neighbours (HEALPix reference): the 8 neighbours of every pixel in the order SW, W, NW, N,
+    # NE, E, SE, S, -1 where a pixel at a face corner has only 7 (numpy for RING up to NSIDE 128)
+    pix = np.arange(12 * nside * nside)
+    assert np.array_equal(_healpix.neighbours(nside, pix, nest=nest), hp.get_all_neighbours(nside, pix, nest=nest))
+
+
 @pytest.mark.parametrize("nside", [1, 4, 32, 256])
 @pytest.mark.parametrize("nest", [False, True])
 def test_interpolation_weights_equal_healpy(nside, nest):

@@ -412,3 +412,31 @@ def test_colour_excess_tracers_keep_their_temperatures_through_the_file(tmp_path
     with fits.open(path) as hdul:
         assert hdul["TRACERS"].columns["TEMPERATURE"].unit == "K"
     np.testing.assert_array_equal(t2.with_law("fitzpatrick99", 3.3).av, t1.with_law("fitzpatrick99", 3.3).av)
+
+
+def test_av_tracers_round_trip_without_repeated_columns(tmp_path):
+    # tracers given as A_V: their "excess" is A_V itself, so the file stores it once (EXCSAME) and, when every
+    # input row was kept in order, no ROW column; loading gives back the same arrays bit for bit (lossless round
+    # trip, common practice for model files). A rejected row keeps ROW, since the row numbers then skip it.
+    rng = np.random.default_rng(3)
+    n = 200
+    t = Table({"l": rng.uniform(20, 60, n), "b": rng.uniform(-8, 8, n), "distance": rng.uniform(200, 3000, n) * u.pc,
+               "distance_err": rng.uniform(20, 200, n) * u.pc, "av": rng.uniform(0.1, 3, n), "av_err": np.full(n, 0.1)})
+    for kept_all in (True, False):
+        if not kept_all:
+            t["av"][17] = np.nan  # rejected
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            tracers = read_tracers(t)
+            m = ExtinctionModel(nside=8, distance_max=3000 * u.pc, distance_step=500 * u.pc, quiet=True).fit(tracers)
+        path = io.save_model(m, tmp_path / f"av_{kept_all}.fits")
+        with fits.open(path) as hdul:
+            cols = hdul["TRACERS"].columns.names
+            assert hdul["TRACERS"].header["EXCSAME"] is True
+        assert "EXCESS" not in cols and "EXCESS_ERR" not in cols
+        assert ("ROW" in cols) is (not kept_all)
+        t2 = io.load_model(path).tracers_
+        for attr in ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "row", "name"):
+            assert np.array_equal(getattr(tracers, attr), getattr(t2, attr)), attr
+        assert t2.excess_kind == "A_V" and len(t2) == n - (not kept_all)
+        assert (17 in np.asarray(t2.row)) is kept_all

@@ -343,3 +343,41 @@ def test_units_written_by_astropy_into_parquet_are_read_in_chunks(tmp_path):
     np.testing.assert_allclose(np.sort(np.asarray(m.tracers_.distance)), np.sort(1000.0 * np.asarray(t["distance"])),
                                rtol=1e-12)
     np.testing.assert_allclose(np.sort(np.asarray(ts.distance)), np.sort(np.asarray(m.tracers_.distance)), rtol=1e-12)
+
+
+def test_null_cells_counted_alike_in_memory_and_in_chunks(tmp_path):
+    # Parquet marks empty cells as nulls (Apache Parquet format: definition levels), which pandas, Spark and
+    # database exports write for missing values. Both reads must drop the same rows for the same reasons, count
+    # every dropped row, and treat a null name as no name (common practice: a missing value is not a value)
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    rng = np.random.default_rng(21)
+    n = 300
+    cols = {"name": [f"S{i}" for i in range(n)], "l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+            "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+            "av": rng.uniform(0.1, 3, n), "av_err": rng.uniform(0.02, 0.2, n)}
+    nulls = {"l": [3, 160], "b": [7], "distance": [12, 250], "av": [40, 41, 290], "av_err": [50, 180],
+             "distance_err": [60], "name": [70, 71, 72, 210]}  # null names in two chunks, values unrelated
+    arrays = {}
+    for k, v in cols.items():
+        mask = np.zeros(n, bool)
+        mask[nulls[k]] = True
+        arrays[k] = pa.array(v, mask=mask)
+    pq.write_table(pa.table(arrays), tmp_path / "nulls.parquet", row_group_size=64)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "nulls.parquet")
+        m = build_from_parquet(tmp_path / "nulls.parquet", chunk_size=100, quiet=True, **PARAMS)
+    info = m.build_info_
+    # 8 rows without a position, distance or A_V are rejected as missing; empty errors take the defaults;
+    # the rows with a null name are four different tracers (named after their row), not one name repeated
+    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (292, 8, 0)
+    assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (292, 8, 0)
+    assert info["rejected_by_reason"] == ts.meta["rejected_by_reason"]
+    assert sum(info["rejected_by_reason"].values()) == 8
+    assert all("missing" in why for why in info["rejected_by_reason"])
+    assert sorted(np.asarray(ts.rejected["row"]).tolist()) == [3, 7, 12, 40, 41, 160, 250, 290]
+    assert info["default_errors"] == {"distance_err": 1, "av_err": 2}
+    named = dict(zip(np.asarray(ts.row).tolist(), np.asarray(ts.name).tolist()))
+    assert [named[r] for r in (70, 71, 72, 210)] == ["row 70", "row 71", "row 72", "row 210"]

@@ -14,21 +14,24 @@ import warnings
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-import astropy_healpix as _ah
-import astropy_healpix.core as _ahcore
 from astropy import units as u
-from astropy_healpix import healpy as _hp
+
+# astropy-healpix is imported where it is used: it imports astropy.coordinates (0.2 s), which a
+# build from Galactic l, b never needs
 
 __all__ = [
     "nside2npix", "pixarea_deg2", "work_buffers", "ring_pixel", "ring_to_nested", "pixel_from_z",
     "ang2pix", "pix2ang", "interp_weights", "neighbours", "query_disc",
 ]
 
-nside2npix = _hp.nside2npix
+def nside2npix(nside):
+    """Number of pixels, 12 NSIDE^2 (Gorski et al. 2005, ApJ 622, 759)."""
+    return 12 * nside * nside
 
 
 def pixarea_deg2(nside):
-    return float(_hp.nside2pixarea(nside, degrees=True))
+    """Area of one pixel in deg^2: the sphere's 4 pi sr over 12 NSIDE^2 pixels of equal area."""
+    return float(4.0 * np.pi / (12 * nside * nside) * np.rad2deg(1.0) ** 2)
 
 
 _PARALLEL_MIN = 200_000  # positions above which the work is split over the CPU's cores
@@ -132,6 +135,8 @@ _RING_TO_NEST = {}
 
 def ring_to_nested(nside, pixels, out=None):
     """NESTED index of RING pixels (a lookup table for NSIDE <= 256)."""
+    import astropy_healpix.core as _ahcore
+
     if nside > 256:
         return np.asarray(_ahcore.ring_to_nested(np.asarray(pixels), nside))
     table = _RING_TO_NEST.get(nside)
@@ -162,8 +167,41 @@ def ang2pix(nside, l_deg, b_deg, nest=False):
 
 
 def pix2ang(nside, pixels, nest=False):
-    l, b = _hp.pix2ang(nside, np.asarray(pixels), nest=nest, lonlat=True)
-    return np.asarray(l, float), np.asarray(b, float)
+    """Galactic (l, b) in deg of pixel centres; RING in numpy, NESTED through astropy-healpix."""
+    if nest:
+        from astropy_healpix import healpy as _hp
+
+        l, b = _hp.pix2ang(nside, np.asarray(pixels), nest=nest, lonlat=True)
+        return np.asarray(l, float), np.asarray(b, float)
+    return _ring_centres(nside, np.asarray(pixels, np.int64))
+
+
+def _ring_centres(nside, p):
+    """Centres of RING pixels ``p``: ring i and position j in the ring, then z and phi
+    (Gorski et al. 2005, ApJ 622, 759, eqs. 4-9 and the RING numbering of their Fig. 4)."""
+    npix = 12 * nside * nside
+    ncap = 2 * nside * (nside - 1)
+    z = np.empty(p.shape)
+    phi = np.empty(p.shape)
+    north, south = p < ncap, p >= npix - ncap
+    equator = ~(north | south)
+    q = p[north]
+    i = np.floor((1 + np.sqrt(1 + 2 * q)) / 2).astype(np.int64)
+    j = q - 2 * i * (i - 1) + 1
+    z[north] = 1 - i * i / (3.0 * nside * nside)
+    phi[north] = (j - 0.5) * np.pi / (2 * i)
+    q = p[equator] - ncap
+    i = q // (4 * nside) + nside
+    j = q % (4 * nside) + 1
+    shift = (i - nside + 1) % 2
+    z[equator] = 4.0 / 3.0 - 2.0 * i / (3.0 * nside)
+    phi[equator] = (j - 1 + shift / 2.0) * np.pi / (2 * nside)
+    q = npix - p[south]
+    i = np.floor((1 + np.sqrt(2 * q - 1)) / 2).astype(np.int64)
+    j = 4 * i + 1 - (q - 2 * i * (i - 1))
+    z[south] = -1 + i * i / (3.0 * nside * nside)
+    phi[south] = (j - 0.5) * np.pi / (2 * i)
+    return np.rad2deg(phi), np.rad2deg(np.arcsin(np.clip(z, -1.0, 1.0)))
 
 
 _RINGS = {}
@@ -268,7 +306,15 @@ def interp_weights(nside, l_deg, b_deg, nest=False):
 
 
 def neighbours(nside, pixels, nest=False):
-    """The 8 neighbours of each pixel, shape (8, n); -1 where a pixel has only 7."""
+    """The 8 neighbours of each pixel, shape (8, n); -1 where a pixel has only 7.
+
+    RING up to NSIDE 128 in numpy (a build's sky kernels: importing astropy-healpix, with the
+    astropy.coordinates it pulls in, costs more than the work); else astropy-healpix. Both equal
+    healpy.get_all_neighbours (tests/test_fast_paths.py)."""
+    if not nest and nside <= 128:
+        return _ring_neighbours(nside, pixels)
+    import astropy_healpix as _ah
+
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         return np.asarray(_ah.neighbours(np.asarray(pixels), nside, order="nested" if nest else "ring"))
@@ -276,5 +322,95 @@ def neighbours(nside, pixels, nest=False):
 
 def query_disc(nside, l_deg, b_deg, radius_deg, nest=False):
     """Pixels whose centres lie within ``radius_deg`` of (l, b)."""
+    import astropy_healpix as _ah
+
     hp = _ah.HEALPix(nside=nside, order="nested" if nest else "ring")
     return np.asarray(hp.cone_search_lonlat(l_deg * u.deg, b_deg * u.deg, radius_deg * u.deg))
+
+
+_JRLL = np.array([2, 2, 2, 2, 3, 3, 3, 3, 4, 4, 4, 4])
+_JPLL = np.array([1, 3, 5, 7, 0, 2, 4, 6, 1, 3, 5, 7])
+_XOFF = np.array([-1, -1, 0, 1, 1, 1, 0, -1])
+_YOFF = np.array([0, 1, 1, 1, 0, -1, -1, -1])
+_FACES = np.array([[8, 9, 10, 11, -1, -1, -1, -1, 10, 11, 8, 9], [5, 6, 7, 4, 8, 9, 10, 11, 9, 10, 11, 8],
+                   [-1, -1, -1, -1, 5, 6, 7, 4, -1, -1, -1, -1], [4, 5, 6, 7, 11, 8, 9, 10, 11, 8, 9, 10],
+                   [0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11], [1, 2, 3, 0, 0, 1, 2, 3, 5, 6, 7, 4],
+                   [-1, -1, -1, -1, 7, 4, 5, 6, -1, -1, -1, -1], [3, 0, 1, 2, 3, 0, 1, 2, 4, 5, 6, 7],
+                   [2, 3, 0, 1, -1, -1, -1, -1, 0, 1, 2, 3]])
+_SWAP = np.array([[0, 0, 3], [0, 0, 6], [0, 0, 0], [0, 0, 5], [0, 0, 0], [5, 0, 0], [0, 0, 0], [6, 0, 0], [3, 0, 0]])
+
+
+def _isqrt(x):
+    """Integer square root of int64 values (float estimate, corrected by one)."""
+    r = np.floor(np.sqrt(x.astype(float))).astype(np.int64)
+    r -= (r * r > x)
+    r += ((r + 1) * (r + 1) <= x)
+    return r
+
+
+def _ring2xyf(nside, pix):
+    """RING pixel -> (x, y, face) (HEALPix C++ ring2xyf)."""
+    npix, ncap, nl2 = 12 * nside * nside, 2 * nside * (nside - 1), 2 * nside
+    iring = np.empty_like(pix); iphi = np.empty_like(pix); kshift = np.zeros_like(pix)
+    nr = np.empty_like(pix); face = np.empty_like(pix)
+    north, south = pix < ncap, pix >= npix - ncap
+    eq = ~(north | south)
+    p = pix[north]
+    ir = (1 + _isqrt(1 + 2 * p)) >> 1
+    ip = (p + 1) - 2 * ir * (ir - 1)
+    iring[north], iphi[north], nr[north], face[north] = ir, ip, ir, (ip - 1) // ir
+    q = pix[eq] - ncap
+    tmp = q // (4 * nside)
+    ir = tmp + nside
+    ip = q - tmp * 4 * nside + 1
+    kshift[eq] = (ir + nside) & 1
+    ire, irm = tmp + 1, nl2 + 1 - tmp
+    ifm = (ip - (ire >> 1) + nside - 1) // nside
+    ifp = (ip - (irm >> 1) + nside - 1) // nside
+    face[eq] = np.where(ifp == ifm, ifp | 4, np.where(ifp < ifm, ifp, ifm + 8))
+    iring[eq], iphi[eq], nr[eq] = ir, ip, nside
+    q = npix - pix[south]
+    ir = (1 + _isqrt(2 * q - 1)) >> 1
+    ip = 4 * ir + 1 - (q - 2 * ir * (ir - 1))
+    nr[south], iring[south], iphi[south], face[south] = ir, 2 * nl2 - ir, ip, (ip - 1) // ir + 8
+    irt = iring - ((2 + (face >> 2)) * nside) + 1
+    ipt = 2 * iphi - _JPLL[face] * nr - kshift - 1
+    ipt = np.where(ipt >= nl2, ipt - 8 * nside, ipt)
+    return (ipt - irt) >> 1, (-ipt - irt) >> 1, face
+
+
+def _xyf2ring(nside, ix, iy, face):
+    """(x, y, face) -> RING pixel (HEALPix C++ xyf2ring)."""
+    npix, ncap = 12 * nside * nside, 2 * nside * (nside - 1)
+    jr = _JRLL[face] * nside - ix - iy - 1
+    north, south = jr < nside, jr >= 3 * nside
+    nrs = np.where(north, jr, np.where(south, 4 * nside - jr, nside))
+    start = np.where(north, 2 * jr * (jr - 1), np.where(south, npix - 2 * nrs * (nrs + 1), ncap + (jr - nside) * 4 * nside))
+    shifted = np.where(north | south, 1, ((jr - nside) & 1) == 0)
+    kshift = 1 - shifted
+    jp = (_JPLL[face] * nrs + ix - iy + 1 + kshift) // 2
+    jp = np.where(jp < 1, jp + 4 * nrs, jp)
+    return start + jp - 1
+
+
+def _ring_neighbours(nside, pixels):
+    """The 8 neighbours of RING pixels in numpy: pixel -> (x, y, face), the offsets of the 8
+    directions, across face edges with the HEALPix C++ library's face and swap tables (Gorski et al.
+    2005, ApJ 622, 759; order SW, W, NW, N, NE, E, SE, S as healpy.get_all_neighbours)."""
+    pix = np.asarray(pixels, np.int64)
+    ix, iy, face = _ring2xyf(nside, pix)
+    out = np.empty((8,) + pix.shape, np.int64)
+    for k in range(8):
+        x, y = ix + _XOFF[k], iy + _YOFF[k]
+        nb = np.full(pix.shape, 4)
+        nb = np.where(x < 0, nb - 1, np.where(x >= nside, nb + 1, nb))
+        x = np.where(x < 0, x + nside, np.where(x >= nside, x - nside, x))
+        nb = np.where(y < 0, nb - 3, np.where(y >= nside, nb + 3, nb))
+        y = np.where(y < 0, y + nside, np.where(y >= nside, y - nside, y))
+        f = _FACES[nb, face]
+        bits = _SWAP[nb, face >> 2]
+        x = np.where(bits & 1, nside - x - 1, x)
+        y = np.where(bits & 2, nside - y - 1, y)
+        x, y = np.where(bits & 4, y, x), np.where(bits & 4, x, y)
+        out[k] = np.where(f >= 0, _xyf2ring(nside, x, y, np.maximum(f, 0)), -1)
+    return out

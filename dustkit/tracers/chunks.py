@@ -14,6 +14,7 @@ import numpy as np
 from astropy import units as u
 
 from ..exceptions import CatalogError
+from .arrow import arrow_to_table
 from .assemble import build_tracers
 from .duplicates import merge_measurements
 from .rules import floor_errors
@@ -41,7 +42,7 @@ class Chunk:
 
 def read_chunk(chunk):
     """Rows ``start:stop`` of a file as an astropy Table (every column; FITS units kept, nulls masked)."""
-    from astropy.table import MaskedColumn, Table
+    from astropy.table import Table
 
     n = chunk.stop - chunk.start
     if chunk.kind == "parquet":
@@ -61,19 +62,7 @@ def read_chunk(chunk):
             if pos >= chunk.stop:
                 break
         tab = pa.Table.from_batches(batches, schema=pf.schema_arrow) if batches else pf.schema_arrow.empty_table()
-        cols = {}
-        for name in tab.column_names:
-            col = tab.column(name)
-            if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
-                vals = np.asarray(col.fill_null("").to_numpy(zero_copy_only=False)).astype(str)
-            else:
-                vals = col.to_numpy(zero_copy_only=False)
-            if col.null_count:
-                cols[name] = MaskedColumn(vals, mask=np.asarray(col.is_null().to_numpy(zero_copy_only=False), bool))
-            else:
-                cols[name] = vals
-        out = Table(cols, names=tab.column_names, copy=False)  # the arrays as pyarrow made them (read only)
-        _parquet_units(out, pf.schema_arrow.metadata)
+        out = arrow_to_table(tab, pf.schema_arrow.metadata)  # as the in-memory reader converts it
     else:
         from astropy.io import fits
 
@@ -97,26 +86,6 @@ def read_chunk(chunk):
     if len(out) != n:
         raise CatalogError(f"Read {len(out)} rows instead of {n} from {chunk.path!r}; the file changed during the build?")
     return out
-
-
-def _parquet_units(table, metadata):
-    """Units that astropy wrote into a Parquet file's metadata (``table_meta_yaml``), set on the
-    chunk's columns, as ``Table.read`` (the in-memory reader) sets them."""
-    yaml = (metadata or {}).get(b"table_meta_yaml")
-    if not yaml:
-        return
-    from astropy.table import meta
-
-    try:
-        header = meta.get_header_from_yaml(yaml.decode("utf-8").split("\n"))
-    except Exception:  # metadata astropy cannot parse: the columns stay bare, as astropy would fail to read them
-        return
-    for col in header.get("datatype", []):
-        name, unit = col.get("name"), col.get("unit")
-        if unit and name in table.colnames:
-            unit = u.Unit(unit, parse_strict="silent")
-            if not isinstance(unit, u.UnrecognizedUnit):
-                table[name].unit = unit
 
 
 def chunk_tracers(chunk, reading, keys=False):

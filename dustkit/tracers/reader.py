@@ -12,6 +12,7 @@ from astropy.table import Table
 from ..exceptions import CatalogError, RowsRejectedWarning
 from .._lib.formats import CATALOGUE_FORMATS, format_for, suffixes
 from .._lib.validation import check_real, param_error
+from .arrow import plain_parquet, read_parquet
 from .assemble import build_tracers
 from .columns import resolve_columns
 from .context import Context, emit
@@ -325,7 +326,9 @@ def _load(source, fmt=None):
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", u.UnitsWarning)
-            table = Table.read(path, format=fmt) if fmt else Table.read(path)
+            table = _read_plain_parquet(path) if fmt == "parquet" else None
+            if table is None:
+                table = Table.read(path, format=fmt) if fmt else Table.read(path)
     except Exception as exc:
         raise CatalogError(
             f"Could not read catalogue file '{path}' (format {fmt or 'guessed'}): "
@@ -338,6 +341,17 @@ def _load(source, fmt=None):
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             sha.update(chunk)
     return table, f"file '{path}'", sha.hexdigest()
+
+
+def _read_plain_parquet(path):
+    """A Parquet file of plain columns read with pyarrow directly (numbers without a copy, nulls masked,
+    units from astropy's metadata; the conversion the chunked reads use), or None for a file that needs
+    astropy's reader (mixin columns, nested types)."""
+    import pyarrow.parquet as pq
+
+    if not plain_parquet(pq.read_schema(path)):
+        return None
+    return read_parquet(path)
 
 
 def _parquet_parts(path):
