@@ -317,3 +317,24 @@ def test_errors_behind_a_cloud_carry_its_unresolved_structure(fitted):
     a, e = m.av_pc(l, b, d)
     assert m.structure_tau_ > 0
     assert np.mean(np.abs(a - truth) <= e) >= 0.55
+
+
+def test_a_change_of_law_for_a_colour_excess_refits_with_what_was_learned():
+    # E(J-Ks) tracers: A_V depends on the law's curve through the passbands, so a change of
+    # law cannot be an exact rescaling; the refit keeps the learned prior and fractions and must
+    # agree with a model built from scratch under the new law within their errors
+    # (E(J-Ks)/E(B-V) about 0.53 under CCM89: Cardelli et al. 1989 via the 2MASS passbands)
+    t, _ = _tracers(400, 21)
+    t["E(J-Ks)"], t["E(J-Ks)_err"] = 0.53 * t["ebv"], 0.53 * t["ebv_err"]
+    tr = dustkit.read_tracers(t[["l", "b", "distance", "distance_err", "E(J-Ks)", "E(J-Ks)_err"]],
+                              source_temperature=5800 * u.K)
+    m = DensityModel(quiet=True, **FAST).fit(tr)
+    m2 = m.with_law("fitzpatrick99", 3.1)
+    assert m2.how_.startswith("refitted") and "refit" in m2.build_report_
+    assert not np.allclose(m2.tracers_.av, m.tracers_.av)
+    ref = DensityModel(quiet=True, **FAST).fit(tr.with_law("fitzpatrick99", 3.1))
+    l, b, d = np.linspace(30, 50, 60), np.linspace(-5, 5, 60), np.linspace(200, 2800, 60)
+    a2, e2 = m2.av_pc(l, b, d)
+    a_ref, _ = ref.av_pc(l, b, d)
+    assert np.median(np.abs(a2 - a_ref) / e2) < 0.5
+    assert np.all(np.diff(m2.av_, axis=1) >= -1e-12)

@@ -149,6 +149,8 @@ class DensityModel:
     tracers_ : TracerSet
     amplitude_, length_, tau_ : float
         Chosen prior amplitude, correlation length (pc) and unresolved fraction.
+    structure_tau_ : float
+        Unresolved fraction of the extinction above the layer (clouds' own unresolved parts).
     av_, av_err_ : ndarray (npix, n_edges)
         Cumulative A_V at pixel centres (posterior mode) and its predictive 1-sigma error
         (posterior, unresolved and ``tau`` parts together; the prior's where no tracer informs).
@@ -328,17 +330,7 @@ class DensityModel:
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.mode_ = post.xi  # white-noise coordinates of the posterior mode (warm starts)
-        self.unresolved_ = unresolved_variance(grid, l, b, d, excess, weight)
-        # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
-        # leans on the prior; where tracers inform it, the field's posterior absorbs the
-        # layer's misfit (weight 1 - support)
-        layer_var = _layer_variance(layer, grid)
-        self.layer_err_ = np.sqrt((1.0 - self.support_) * layer_var)
-        self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
-        self.structure_tau_ = float(tau_s)
-        self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
-                               + (self.tau_ * self.av_) ** 2
-                               + (self.structure_tau_ * np.maximum(self.av_ - self._layer_nodes(), 0.0)) ** 2)
+        self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight), tau_s)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
                                            "raised_cells"))
         self.cv_["length"].unit = u.pc
@@ -352,6 +344,53 @@ class DensityModel:
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
         }
+        return self
+
+    def _errors(self, layer, unresolved, tau_s):
+        """The answers' predictive errors at the nodes, from the stored posterior and the unresolved parts."""
+        self.unresolved_ = unresolved
+        # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
+        # leans on the prior; where tracers inform it, the field's posterior absorbs the
+        # layer's misfit (weight 1 - support)
+        layer_var = _layer_variance(layer, self.grid_)
+        self.layer_err_ = np.sqrt((1.0 - self.support_) * layer_var)
+        self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
+        self.structure_tau_ = float(tau_s)
+        self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
+                               + (self.tau_ * self.av_) ** 2
+                               + (self.structure_tau_ * np.maximum(self.av_ - self._layer_nodes(), 0.0)) ** 2)
+
+    def _refit(self, tracers):
+        """Refit to tracers at the same positions with everything learned kept (another law: ``with_law``).
+
+        The prior (amplitude, correlation length, raised cells and their lengths) and the
+        unresolved fractions are reused, the layer is refitted, and the posterior mode is
+        found again from this model's mode; no cross-validation runs. The local unresolved
+        variance is scaled by the square of the tracers' median A_V ratio.
+        """
+        t_start = time.perf_counter()
+        grid = self.grid_
+        l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
+                               for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
+        ae = np.maximum(ae, AV_ERR_FLOOR)
+        weight, _ = duplicate_weights(l, b, d, av, ae, de)
+        corr = getattr(tracers, "av_distance_corr", None)
+        corr = np.zeros(l.size) if corr is None else np.asarray(corr, float)
+        shift, layer = _shift_and_layer(tracers, d, de, weight, self.random_state)
+        lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_)
+        col = np.searchsorted(lat.pixels, grid.pixel(l, b))
+        terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
+        post = fit_posterior(lat, terms, tau=self.tau_, xi0=self.mode_, max_iter=20)
+        xs = draw_samples(lat, post, self.samples_.shape[2], np.random.default_rng(self.random_state))
+        old = np.asarray(self.tracers_.av, float)
+        ratio = np.median(av[old > 0] / old[old > 0]) if np.any(old > 0) else 1.0
+        unresolved = self.unresolved_ * ratio**2
+        self._store(grid, layer, lat, post, xs, self.tau_, tracers)
+        self.mode_ = post.xi
+        self._errors(layer, unresolved, self.structure_tau_)
+        self.build_report_ = {**getattr(self, "build_report_", {}), "converged": bool(post.converged),
+                              "seconds": round(time.perf_counter() - t_start, 2),
+                              "refit": "learned prior, raised cells and unresolved fractions reused"}
         return self
 
     def _store(self, grid, layer, lat, post, xs, tau, tracers):
@@ -566,8 +605,10 @@ class DensityModel:
         factor; the density model is then exactly the same with the layer, the answers and
         their errors scaled by it (the likelihood, the prior and the cross-validation are
         scale-free; exact as long as no tracer error sits on the 0.02 mag floor). Otherwise
-        (other colour excesses, apparent moduli) the model is refitted with the learned
-        amplitude and correlation length, warm-started from this model's posterior mode.
+        (other colour excesses, apparent moduli) the model is refitted to the new tracers with
+        everything it learned kept (amplitude, correlation length, raised cells, unresolved
+        fractions; no cross-validation), from this model's posterior mode: a few seconds for
+        a few thousand clusters.
         ``how_`` on the result says which.
         """
         import copy
@@ -594,11 +635,9 @@ class DensityModel:
             m.tracers_ = new_tracers
             m.how_ = f"rescaled exactly by R_V'/R_V = {ratio:.4f}"
             return m
-        m = DensityModel(**{**self.get_params(), "amplitudes": (self.amplitude_,),
-                            "lengths": (self.length_,) * u.pc})
-        m._warm_start = getattr(self, "mode_", None)
-        m.fit(new_tracers)
-        m.how_ = "refitted with the learned amplitude and correlation length"
+        m = copy.copy(self)._refit(new_tracers)
+        m.how_ = ("refitted with the learned prior (amplitude, correlation length, raised cells) and unresolved "
+                  "fractions, from this model's posterior mode")
         return m
 
     def __repr__(self):
@@ -695,6 +734,12 @@ _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_"
 _STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_")
 
 
+def _scalar(model, name):
+    """A fitted scalar; models loaded from files written before it existed get its neutral value."""
+    default = {"structure_tau_": 0.0}.get(name)
+    return float(getattr(model, name, default))
+
+
 def density_state(model):
     """Everything a fitted :class:`DensityModel` needs to answer, as plain numbers and arrays."""
     model.check_fitted()
@@ -709,7 +754,7 @@ def density_state(model):
         "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
         "layer": {**model.layer_.as_dict(), "scatter": model.layer_.scatter, "n_used": model.layer_.n_used,
                   "covariance": np.asarray(model.layer_.covariance, float)},
-        "scalars": {k: float(getattr(model, k)) for k in _STATE_SCALARS},
+        "scalars": {k: _scalar(model, k) for k in _STATE_SCALARS},
         "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
         "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
         "tracer_info": {"law": t.law, "rv": float(t.rv)},
