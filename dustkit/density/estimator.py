@@ -8,6 +8,7 @@ from astropy.table import Table
 from scipy.spatial import cKDTree
 
 import inspect
+from typing import NamedTuple
 
 from .._lib import healpix
 from .._lib.progress import progress
@@ -261,17 +262,10 @@ class DensityModel:
         if n < 5:
             raise CatalogError(f"The density model needs at least 5 tracers; got {n}. "
                                "Hint: widen the region or add tracers.")
-        l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
-                               for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
-        floored = int(np.sum(ae < AV_ERR_FLOOR))
-        ae = np.maximum(ae, AV_ERR_FLOOR)
+        l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer = _tracer_inputs(tracers, self.random_state)
         pixels = active_pixels(grid, l, b, radius)
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
-        weight, n_groups = duplicate_weights(l, b, d, av, ae, de)
-        corr = getattr(tracers, "av_distance_corr", None)
-        corr = np.zeros(n) if corr is None else np.asarray(corr, float)
-        shift, layer = _shift_and_layer(tracers, d, de, weight, self.random_state)
         layer_at = layer.av_pc(b, d * np.exp(shift))  # the layer at the tracers (structure = model - layer)
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
@@ -357,8 +351,11 @@ class DensityModel:
         self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
         self.structure_tau_ = float(tau_s)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
-                               + (self.tau_ * self.av_) ** 2
-                               + (self.structure_tau_ * np.maximum(self.av_ - self._layer_nodes(), 0.0)) ** 2)
+                               + self._fraction_variance(self.av_, self._layer_nodes()))
+
+    def _fraction_variance(self, av, layer_av):
+        """Variance (mag^2) of the unresolved fractions: ``tau`` of all A_V, ``tau_s`` of A_V above the layer."""
+        return (self.tau_ * av) ** 2 + (getattr(self, "structure_tau_", 0.0) * np.maximum(av - layer_av, 0.0)) ** 2
 
     def _refit(self, tracers):
         """Refit to tracers at the same positions with everything learned kept (another law: ``with_law``).
@@ -370,13 +367,7 @@ class DensityModel:
         """
         t_start = time.perf_counter()
         grid = self.grid_
-        l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
-                               for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
-        ae = np.maximum(ae, AV_ERR_FLOOR)
-        weight, _ = duplicate_weights(l, b, d, av, ae, de)
-        corr = getattr(tracers, "av_distance_corr", None)
-        corr = np.zeros(l.size) if corr is None else np.asarray(corr, float)
-        shift, layer = _shift_and_layer(tracers, d, de, weight, self.random_state)
+        l, b, d, de, av, ae, _, weight, _, corr, shift, layer = _tracer_inputs(tracers, self.random_state)
         lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_)
         col = np.searchsorted(lat.pixels, grid.pixel(l, b))
         terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
@@ -483,7 +474,7 @@ class DensityModel:
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
             a[beyond] += extra
             var[beyond] += (extra * self.amplitude_) ** 2
-        var = var + (self.tau_ * a) ** 2 + (getattr(self, "structure_tau_", 0.0) * np.maximum(a - lay_t, 0.0)) ** 2
+        var = var + self._fraction_variance(a, lay_t)
         if distance_err is not None:
             var = var + (self._slope(pix, wgt, k) * np.asarray(distance_err, float)) ** 2
         return a, np.sqrt(var)
@@ -647,20 +638,44 @@ class DensityModel:
                 f"s={self.amplitude_:.2f}, L={self.length_:.0f} pc, tau={self.tau_:.3f})")
 
 
-def _shift_and_layer(tracers, d, de, weight, random_state):
-    """Where each tracer most likely lies (ln-distance shift) and the layer fitted there.
+class _TracerInputs(NamedTuple):
+    """What a fit needs from a tracer set, as plain arrays (deg, pc, mag)."""
+
+    l: np.ndarray
+    b: np.ndarray
+    d: np.ndarray
+    de: np.ndarray
+    av: np.ndarray
+    ae: np.ndarray          # floored at AV_ERR_FLOOR
+    floored: int            # how many A_V errors the floor raised
+    weight: np.ndarray      # 1 / size of each tracer's near-duplicate group
+    n_groups: int
+    corr: np.ndarray        # correlation of the A_V and ln-distance errors
+    shift: np.ndarray       # ln-distance shift to where each tracer most likely lies
+    layer: DustLayer        # fitted at the shifted distances
+
+
+def _tracer_inputs(tracers, random_state):
+    """The arrays, duplicate weights, distance shifts and layer shared by a fit and a refit.
 
     The shift comes from the catalogue's own distance distribution
     (:func:`~dustkit.density.solver.sample_distance_shift`); parallax distances already
     carry a prior of their own (``read_tracers``) and are not shifted. The layer's errors
     come from a bootstrap over sky blocks (clouds correlate neighbouring residuals).
     """
+    l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
+                           for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
+    floored = int(np.sum(ae < AV_ERR_FLOOR))
+    ae = np.maximum(ae, AV_ERR_FLOOR)
+    weight, n_groups = duplicate_weights(l, b, d, av, ae, de)
+    corr = getattr(tracers, "av_distance_corr", None)
+    corr = np.zeros(l.size) if corr is None else np.asarray(corr, float)
     if getattr(tracers, "distance_kind", "distance") == "parallax":
-        shift = np.zeros(np.size(d))
+        shift = np.zeros(l.size)
     else:
         shift = sample_distance_shift(d, de, weight)
     layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=random_state, distance_shift=shift)
-    return shift, layer
+    return _TracerInputs(l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer)
 
 
 def _scaled_cov(cov, ratio):

@@ -31,6 +31,11 @@ N_NODES = 5
 DEBUG = False
 
 
+def _log_sigma(d, distance_err):
+    """Log-normal distance error (sigma of ln d) of each tracer, kept within 1e-4 and 1.5."""
+    return np.clip(np.asarray(distance_err, float) / np.maximum(d, 1e-9), 1e-4, 1.5)
+
+
 def _nodes(n):
     x, w = np.polynomial.hermite_e.hermegauss(n)
     return x, w / w.sum()
@@ -84,7 +89,7 @@ def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, 
     """
     e = lattice.grid.distance_edges
     d = np.asarray(distance, float)
-    sig_ln = np.clip(np.asarray(distance_err, float) / np.maximum(d, 1e-9), 1e-4, 1.5)
+    sig_ln = _log_sigma(d, distance_err)
     x, w = _nodes(n_nodes) if n_nodes > 1 else (np.zeros(1), np.ones(1))
     centre = np.zeros(d.size) if log_shift is None else np.asarray(log_shift, float)
     dq = d[:, None] * np.exp(centre[:, None] + sig_ln[:, None] * x[None, :])  # (n, q)
@@ -117,7 +122,7 @@ def sample_distance_shift(distance, distance_err, weight=None, bandwidth=0.08, m
     smaller shifts. Capped at ``max_sigma`` sigma.
     """
     d = np.asarray(distance, float)
-    sig = np.clip(np.asarray(distance_err, float) / np.maximum(d, 1e-9), 1e-4, 1.5)
+    sig = _log_sigma(d, distance_err)
     x = np.log(np.maximum(d, 1e-9))
     w = np.ones(d.size) if weight is None else np.asarray(weight, float)
     h = float(bandwidth)
