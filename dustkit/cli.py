@@ -87,7 +87,7 @@ over-densities of the model's dust density, tested against its posterior samples
 radius is needed. Columns: feature, kind ('located' or 'nearer than'), l, b (deg), extent
 (deg), extent_pc, depth (pc), distance, distance_err, distance_upper, distance_front,
 distance_behind (the tracers bracketing it), distance_near, distance_far (pc), delta_av, delta_av_err, delta_av_max (mag), contrast, n_tracers,
-n_front, n_behind, n_pixels, n_cells, significance (fraction of posterior samples).
+n_front, n_behind, n_pixels, n_cells, significance (posterior probability).
 A 'nearer than' feature has no tracer in front of it: the dust lies somewhere nearer than
 distance_upper. On a binned model (or with --finder steps) steps in A_V against distance
 are searched per sky pixel and merged (significance: BIC improvement over no step).
@@ -252,10 +252,10 @@ def build_parser():
                         "sight line (any model); 'auto' (default): density for a density model, else steps")
     p.add_argument("--min-delta-av", type=float, default=0.2, metavar="MAG",
                    help="least extinction a feature adds, mag (default 0.2)")
-    p.add_argument("--min-probability", type=float, default=0.95, metavar="P",
-                   help="density finder: least fraction of posterior samples adding --min-delta-av (default 0.95)")
-    p.add_argument("--min-contrast", type=float, default=1.5, metavar="RATIO",
-                   help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.5)")
+    p.add_argument("--min-probability", type=float, default=0.9, metavar="P",
+                   help="density finder: least posterior probability of adding --min-delta-av (default 0.9)")
+    p.add_argument("--min-contrast", type=float, default=1.3, metavar="RATIO",
+                   help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
     p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
                    help="steps finder: least BIC improvement of a step over no step (default 10)")
     p.add_argument("--radius", type=float, metavar="DEG",

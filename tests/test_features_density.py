@@ -273,14 +273,17 @@ def test_quoted_distance_errors_are_honest():
         gaps.append((located["distance_behind"][both] - located["distance_front"][both]).to_value(u.pc))
         gap_errs.append(located["distance_err"][both].to_value(u.pc))
     real, quoted, true_d = np.asarray(real), np.asarray(quoted), np.asarray(true_d)
-    assert real.size >= 4  # the finder locates most of the clouds with tracers in front (measured: 6 of 9)
+    assert real.size >= 4  # the finder locates most of the clouds with tracers in front (measured: 7 of 9)
     # the truth of the invented field: the actual distance errors lie within twice the quoted
     # ones (a 2-sigma check, common practice for an honest error bar; one miss in the lot is
     # allowed, as 1 in 20 is expected outside 2 sigma)
     assert np.sum(real > 2.0 * quoted) <= 1, (real, quoted)
-    # and the quoted errors still say something: under 25% of the distance (a bracket of
-    # tracers with 6-10% distance errors is far tighter than the whole sight line)
-    assert np.all(quoted <= 0.25 * true_d), (quoted, true_d)
+    # and the quoted errors still say something: typically under 20% of the distance and never
+    # above 40% (a bracket of tracers with 6-10% distance errors is far tighter than the whole
+    # sight line). A cloud with just two tracers in front of it in its footprint is located,
+    # with the wide bracket between them (measured: 700 pc +- 257 pc, actual error 132 pc;
+    # it was 'nearer than' when only the half-peak core was searched for tracers in front)
+    assert np.median(quoted / true_d) <= 0.2 and np.all(quoted <= 0.4 * true_d), (quoted, true_d)
     # no quoted error is smaller than the tracers' bracket allows: a uniform position between the
     # last tracer in front and the first behind has standard deviation gap / sqrt(12)
     # (uniform distribution, from memory)
@@ -301,3 +304,44 @@ def test_significant_features_applies_the_cut_without_a_new_search(cloudy):
         assert np.all(np.asarray(got["significance"]) >= p) and got.meta["min_probability"] == p
     with pytest.raises(ParameterError, match="min_probability"):
         significant_features(every, 2.0)
+
+
+# a cloud of 0.8 mag at 2 kpc, 2 deg in radius: about a third of the catalogue lies beyond it
+FAINT_FAR = Cloud(l=130.0, b=0.5, distance=2000.0, radius=2.0, depth=30.0, av=0.8)
+
+
+def test_a_faint_far_cloud_near_the_threshold_is_found_at_its_distance():
+    _, _, model = _fit(DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=(FAINT_FAR,)), 1000, 8)
+    feats = density_features(model)
+    located = feats[feats["kind"] == KIND_LOCATED]
+    assert len(located) >= 1
+    f, sep = _nearest(located, FAINT_FAR)
+    # truth of the invented field, with the benchmark's criterion (common practice for this
+    # model's depth resolution): on the sky within max(2 deg, 1.5 radii), in distance within
+    # 15% or the quoted error, whichever is larger
+    assert sep <= 3.0
+    d, err = f["distance"].to_value(u.pc), f["distance_err"].to_value(u.pc)
+    assert abs(d - FAINT_FAR.distance) <= max(0.15 * FAINT_FAR.distance, err)
+    # the posterior probability of adding more than 0.2 mag is high but not certain: the
+    # finder before this change counted samples (15 of the 16 adding 0.2 mag, 0.94 < 0.95)
+    # and missed this cloud (measured); the Student t probability is not quantised by them
+    assert 0.9 <= f["significance"] < 1.0
+    # a quoted distance error that still localises it (the tracers' bracket: under 25%)
+    assert err <= 0.25 * FAINT_FAR.distance
+    # and the same search finds nothing else in this one-cloud region
+    assert len(feats) == 1
+
+
+def test_features_list_how_many_of_them_are_expected_to_be_chance(cloudy, smooth):
+    from dustkit.features import significant_features
+
+    every = density_features(cloudy[2], min_probability=0.0)
+    strong = significant_features(every, 0.9)
+    # the expected number of chance features among those listed is the sum of their
+    # probabilities of being chance, 1 - P (expectation of a sum of Bernoulli variables, from memory)
+    assert strong.meta["expected_false"] == pytest.approx(np.sum(1.0 - np.asarray(strong["significance"])))
+    # listing weaker candidates can only add to it
+    assert every.meta["expected_false"] >= strong.meta["expected_false"]
+    # in the cloudless galaxy nothing is listed, so nothing is expected to be chance
+    none = density_features(smooth[2])
+    assert len(none) == 0 and none.meta["expected_false"] == 0.0

@@ -430,7 +430,7 @@ def density_explorer(tracers):
 
 def test_feature_layer_on_a_density_model(density_explorer, monkeypatch):
     import dustkit.features
-    from dustkit.features import KIND_NEARER, density_features
+    from dustkit.features import KIND_NEARER, MIN_PROBABILITY, density_features
 
     ex = density_explorer
     calls = []
@@ -440,7 +440,7 @@ def test_feature_layer_on_a_density_model(density_explorer, monkeypatch):
     ex.feature_layer_widget.value = True
     _ok(ex)
     assert not ex.min_probability_widget.disabled
-    want = density_features(ex.model, min_probability=0.95)
+    want = density_features(ex.model, min_probability=MIN_PROBABILITY)
     assert len(want) >= 1  # the invented cloud (1 mag at 600 pc) is there
     assert len(ex.layer_features) == len(want)
     np.testing.assert_allclose(ex.layer_features["l"].to_value(u.deg), want["l"].to_value(u.deg))
@@ -464,11 +464,11 @@ def test_feature_layer_on_a_density_model(density_explorer, monkeypatch):
     assert len(calls) == n_calls
     assert len(ex.layer_features) == len(density_features(ex.model, min_probability=0.5)) >= len(want)
     _assert_same_drawing(ex.sky_ax, _reference_sky(ex))
-    ex.min_probability_widget.value = 0.95
+    ex.min_probability_widget.value = MIN_PROBABILITY
 
 
 def test_feature_layer_follows_rv(density_explorer):
-    from dustkit.features import density_features
+    from dustkit.features import MIN_PROBABILITY, density_features
 
     ex = density_explorer
     ex.feature_layer_widget.value = True
@@ -477,7 +477,7 @@ def test_feature_layer_follows_rv(density_explorer):
     _ok(ex)
     assert ex.model.rv == pytest.approx(4.0)
     # a new model, so the features are found again, for that model
-    want = density_features(ex.model, min_probability=0.95)
+    want = density_features(ex.model, min_probability=MIN_PROBABILITY)
     np.testing.assert_allclose(ex.layer_features["delta_av"].to_value(u.mag), want["delta_av"].to_value(u.mag))
     # E(B-V) tracers: A_V = R_V E(B-V) (definition of R_V; common practice), so the added A_V of the
     # same cloud grows by 4.0 / 3.1 (the density model rescales E(B-V) tracers exactly)

@@ -21,23 +21,38 @@ The method
    through its peak pixel (the member pixel with the largest excess column) over the
    region's distance range, minus the layer's over the same range.
 4. *Significance.* For every posterior sample (``av_ + samples_``) the same ``delta A_V``
-   is computed; the significance is the fraction of samples in which it exceeds
-   ``min_delta_av``. The spread of the sample values gives the uncertainty of
-   ``delta A_V`` (half the 16-84 percentile range).
-5. *Tracers and "nearer than".* The tracers in the feature's footprint (its core pixels,
-   where the excess column is at least half the peak's) are sorted into those that show
+   is computed. The samples are Gaussian deviations from the mode (the model's Laplace
+   posterior, propagated linearly), so the mode's ``delta A_V`` is their mean and their
+   RMS deviation from it, ``s``, their spread; the significance is the posterior
+   probability that ``delta A_V`` exceeds ``min_delta_av``, the Student t probability
+   ``T_S((delta - min_delta_av) / s)`` with S (the number of samples) degrees of freedom
+   (the t rather than the normal law for ``s`` itself estimated from S samples). Unlike the
+   fraction of samples above ``min_delta_av`` it is not quantised (with 32 samples the
+   fraction moves in steps of 1/32 = 0.03 around the threshold). The spread of the sample
+   values also gives the uncertainty of ``delta A_V`` (half the 16-84 percentile range).
+5. *Tracers and "nearer than".* The tracers in the feature's footprint (the member pixels
+   whose excess column is at least a quarter of the peak's) are sorted into those that show
    the feature's extinction (their A_V minus the layer exceeds the model's excess in front
    of the region plus half the feature's column at their pixel) and those that do not.
    ``n_front`` counts tracers nearer than the feature that do not show it, ``n_behind``
-   tracers farther that do. With fewer than ``min_front`` tracers in front, nothing
-   constrains where along the foreground the dust sits (the model then spreads it over
+   tracers farther that do. (A quarter, not half, of the peak: with cluster catalogues a
+   cloud 2-3 deg across covers a few pixels of 1.8 deg holding 0-2 clusters each, and the
+   half-peak core alone often had fewer than two tracers in front of a cloud with five or
+   more in front within twice its radius.) A region that fewer than ``min_support`` (2)
+   tracers show is not listed: a lone tracer can be a wrong member, and the model draws a
+   cloud around it where no other tracer says otherwise (on the invented galaxies of
+   ``benchmarks/features.py`` all three false features of the six smooth and near galaxies
+   were such lone tracers at high latitude, listed as "nearer than" with significance 1).
+   With fewer than ``min_front`` tracers in front, nothing constrains where along the foreground the dust sits (the model then spreads it over
    the whole empty foreground): the feature is reported as ``kind = 'nearer than'`` with
    an upper distance ``distance_upper`` (the second-nearest tracer that shows it, plus twice
    its distance error; the nearest one when only one does) instead of a distance.
 6. *Distance error.* Three independent limits on where the cloud is, added in quadrature:
    (i) the spread (standard deviation) of the feature's excess-weighted distance over the
    posterior samples; (ii) the quantisation of the distance grid, bin width / sqrt(12);
-   (iii) the tracers' bracket. Sorted by distance, the footprint's tracers are split into
+   (iii) the tracers' bracket. Sorted by distance, the tracers of the footprint's core (the
+   member pixels with at least half the peak's column; the bracket is sharper there, where
+   every tracer behind the cloud shows it clearly) are split into
    "in front" and "behind" where the split misplaces the fewest of them (tracers that show
    the feature in front, tracers that do not behind; every split with that fewest count is
    kept, so conflicting tracers widen the bracket instead of being ignored). The cloud lies
@@ -59,17 +74,23 @@ The method
 Why these defaults (the look-elsewhere effect)
 ----------------------------------------------
 A catalogue's model has 10^4-10^5 cells, so a per-cell test at 95% would give hundreds of
-false features. The search guards against that in two stages: (i) the contrast threshold
-(1.5, i.e. ln 1.5 = 0.41 in log-density) is applied to the posterior *mode*, which the
-prior shrinks toward the layer where the data do not demand otherwise; on smooth invented
-galaxies of 1 000 clusters the largest contrast anywhere is about 1.25, so the candidate
-regions number a few per galaxy, not thousands; (ii) each candidate must then add at
-least ``min_delta_av`` = 0.2 mag in at least ``min_probability`` = 95% of the posterior
-samples. 0.2 mag is three times the A_V error of a typical cluster (0.02 mag in E(B-V)
-times R_V), so a single tracer's noise cannot provide it; with a handful of candidates
-per galaxy, a 5% chance each of passing by chance keeps the expected number of false
-features below one per galaxy. With the model's default 32 samples, 95% means at least
-31 of 32 samples; with 16, all 16.
+false features. The search guards against that in three stages: (i) the contrast threshold
+(1.3, i.e. ln 1.3 = 0.26 in log-density) is applied to the posterior *mode*, which the
+prior shrinks toward the layer where the data do not demand otherwise, so the candidate
+regions number 15-35 per galaxy of 2 500-3 000 clusters, not thousands, and most of them
+have a significance near 0; (ii) at least two tracers must show a candidate; (iii) it must
+add at least ``min_delta_av`` = 0.2 mag with a posterior probability of at least
+``min_probability`` = 0.9. 0.2 mag is three times the A_V error of a typical cluster
+(0.02 mag in E(B-V) times R_V), so a single tracer's noise cannot provide it. The number
+of listed features expected to be chance, if the posterior is right, is the sum of
+``1 - significance`` over them (``meta['expected_false']``): it grows with every feature
+listed near the threshold, which is where searching many regions shows. On the six smooth
+and near invented galaxies of ``benchmarks/features.py`` (2026-12-03) it summed to 0.7 for
+30 features, and none of them was false; with ``min_probability`` = 0.85, 1.1 for 33
+features, of which 1 was false. The earlier defaults (contrast 1.5, the fraction of
+samples >= 0.95) missed clouds that were there: candidates whose true column sits 1.5-2
+posterior sigma above 0.2 mag (30 of 32 samples, 0.94) and clouds whose smeared contrast
+in the mode stays between 1.3 and 1.5.
 
 Cautions
 --------
@@ -93,7 +114,7 @@ Connected components of a sparse graph: scipy.sparse.csgraph.
 import numpy as np
 from astropy import units as u
 from astropy.table import QTable
-from scipy import sparse
+from scipy import sparse, stats
 from scipy.sparse.csgraph import connected_components
 
 from .._lib import healpix
@@ -103,18 +124,26 @@ from .._lib.validation import check_int, check_real, param_error, to_value
 from ..answers import CAUTION
 from ..exceptions import ModelNotFittedError
 
-__all__ = ["density_features", "significant_features", "DENSITY_METHOD", "KIND_LOCATED", "KIND_NEARER"]
+__all__ = ["density_features", "significant_features", "DENSITY_METHOD", "KIND_LOCATED", "KIND_NEARER",
+           "MIN_PROBABILITY", "MIN_CONTRAST"]
 
 #: One-line description of the method, stored in table metadata.
 DENSITY_METHOD = (
     "connected over-densities of the 3-D density model's posterior mode (contrast against the smooth layer), "
-    "significance = fraction of posterior samples adding more than min_delta_av through the peak pixel"
+    "significance = posterior probability (Student t from the mode and the posterior samples' spread) of adding "
+    "more than min_delta_av through the peak pixel; at least min_support tracers must show it"
 )
+
+#: Default least significance of a listed feature (see "Why these defaults").
+MIN_PROBABILITY = 0.9
+#: Default least contrast of a candidate cell against the smooth layer.
+MIN_CONTRAST = 1.3
 
 KIND_LOCATED = "located"
 KIND_NEARER = "nearer than"
 
-_CORE_FRACTION = 0.5  # footprint: member pixels whose excess column is at least this fraction of the peak's
+_CORE_FRACTION = 0.5  # core: member pixels whose excess column is at least this fraction of the peak's (bracket)
+_FOOTPRINT_FRACTION = 0.25  # footprint: the same at a quarter of the peak's (tracers counted in front and behind)
 
 
 def _check_model(model):
@@ -169,8 +198,8 @@ def _weighted_sky(lc, bc, w):
     return cl, cb, float(np.sqrt(np.sum(w * off**2) / (2.0 * np.sum(w))))
 
 
-def density_features(model, *, min_contrast=1.5, min_excess=0.2 * u.mag / u.kpc, min_delta_av=0.2 * u.mag,
-                     min_probability=0.95, min_front=2, quiet=None):
+def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag / u.kpc, min_delta_av=0.2 * u.mag,
+                     min_probability=MIN_PROBABILITY, min_front=2, min_support=2, quiet=None):
     """Dust features of a fitted 3-D density model: compact over-densities with their significance.
 
     See :mod:`dustkit.features.density` for the method, the reasoning behind the defaults
@@ -182,18 +211,22 @@ def density_features(model, *, min_contrast=1.5, min_excess=0.2 * u.mag / u.kpc,
         A fitted :class:`~dustkit.density.DensityModel` (with posterior samples).
     min_contrast : float
         Least ratio of the model's differential extinction to the smooth layer's in a
-        candidate cell (default 1.5).
+        candidate cell (default 1.3).
     min_excess : Quantity['mag / length']
         Least excess of a candidate cell's differential extinction over the layer's
         (default 0.2 mag/kpc).
     min_delta_av : Quantity['mag']
         Least extinction a feature must add through its peak pixel (default 0.2 mag).
     min_probability : float
-        Least fraction of posterior samples in which it adds more than ``min_delta_av``
-        (default 0.95).
+        Least posterior probability that it adds more than ``min_delta_av`` (default 0.9;
+        see step 4 of the module notes).
     min_front : int
         Fewer tracers than this in front of a feature (that do not show its extinction)
         make it a ``'nearer than'`` feature (default 2: one could be a wrong member).
+    min_support : int
+        Least number of tracers in the feature's footprint that show its extinction; a
+        region that fewer tracers show is not listed (default 2: a lone tracer could be a
+        wrong member, and the model then draws a cloud around it).
     quiet : bool, optional
         Hide the progress bar (default: the model's setting; shown only on a terminal).
 
@@ -217,9 +250,12 @@ def density_features(model, *, min_contrast=1.5, min_excess=0.2 * u.mag / u.kpc,
         range over samples), ``delta_av_max`` (mag; largest member-pixel column of the
         mode), ``contrast`` (largest cell contrast), ``n_tracers`` (tracers in the core
         footprint), ``n_front``, ``n_behind``, ``n_pixels``, ``n_cells`` and
-        ``significance`` (fraction of samples). ``meta`` holds the settings, ``nside``,
-        ``ordering``, ``coordsys``, ``n_candidates`` (regions tested), ``method``,
-        ``caution`` and ``resolution`` (the model's correlation length).
+        ``significance`` (posterior probability). ``meta`` holds the settings, ``nside``,
+        ``ordering``, ``coordsys``, ``n_candidates`` (regions tested), ``n_unsupported``
+        (candidates shown by fewer than ``min_support`` tracers, not listed),
+        ``expected_false`` (the sum of 1 - significance over the listed features: the number
+        of them expected to be chance, if the posterior is right), ``method``, ``caution``
+        and ``resolution`` (the model's correlation length).
     """
     _check_model(model)
     min_contrast = check_real("min_contrast", min_contrast, 1.0, np.inf, low_inclusive=False)
@@ -229,6 +265,7 @@ def density_features(model, *, min_contrast=1.5, min_excess=0.2 * u.mag / u.kpc,
     check_real("min_delta_av", dav_min, 0.0, np.inf)
     min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
     min_front = check_int("min_front", min_front, 0, 1000)
+    min_support = check_int("min_support", min_support, 0, 1000)
 
     grid = model.grid_
     e = grid.distance_edges
@@ -267,11 +304,13 @@ def density_features(model, *, min_contrast=1.5, min_excess=0.2 * u.mag / u.kpc,
         row = _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mid, e, lc, bc, pix_rad,
                        tslot, td, tde, tres, dav_min, min_front)
         rows.append(row)
-    t = _table(rows)
+    supported = [r for r in rows if r["_support"] >= min_support]
+    t = _table(supported)
     t.meta.update({
         "nside": grid.nside, "ordering": grid.ordering.upper(), "coordsys": "G", "min_contrast": min_contrast,
         "min_excess_mag_per_kpc": exc_min, "min_delta_av": dav_min, "min_probability": min_probability,
-        "min_front": min_front, "n_candidates": int(n_reg), "n_samples": int(samples.shape[2]),
+        "min_front": min_front, "min_support": min_support, "n_candidates": int(n_reg),
+        "n_unsupported": len(rows) - len(supported), "n_samples": int(samples.shape[2]),
         "resolution": f"correlation length {getattr(model, 'length_', float('nan')):.0f} pc",
         "method": DENSITY_METHOD, "caution": CAUTION,
     })
@@ -285,15 +324,15 @@ def significant_features(features, min_probability):
     ``significant_features(density_features(model, min_probability=0), p)``: the search is
     made once and the threshold applied after (what the explorer's slider does). Features
     keep their order (nearest first) and are numbered again from 1; ``meta['min_probability']``
-    is set to ``p``.
+    is set to ``p`` and ``meta['expected_false']`` to the sum of 1 - significance over the kept
+    features.
 
     Parameters
     ----------
     features : QTable
         A table of :func:`density_features` (column ``significance``).
     min_probability : float
-        Least fraction of posterior samples in which a feature adds more than the table's
-        ``min_delta_av``.
+        Least posterior probability that a feature adds more than the table's ``min_delta_av``.
 
     Returns
     -------
@@ -306,6 +345,7 @@ def significant_features(features, min_probability):
     t = features[np.asarray(features["significance"], float) >= min_probability]
     t["feature"] = np.arange(1, len(t) + 1)
     t.meta["min_probability"] = min_probability
+    t.meta["expected_false"] = float(np.sum(1.0 - np.asarray(t["significance"], float)))
     return t
 
 
@@ -330,6 +370,19 @@ def _bracket(d_t, de_t, shows, dist, near_edge, far_edge):
     return (lo if s_lo > 0 else np.nan), (hi if s_hi < n else np.nan), spread
 
 
+def _probability(delta, delta_s, dav_min):
+    """Posterior probability that the added extinction exceeds ``dav_min``; see step 4 of the notes.
+
+    The samples are Gaussian deviations from the mode (a linearised Laplace posterior), so
+    ``delta`` is the mean of ``delta_s``; their RMS deviation from it, estimated from the S
+    samples, gives a Student t probability with S degrees of freedom.
+    """
+    sd = float(np.sqrt(np.mean((delta_s - delta) ** 2))) if delta_s.size else 0.0
+    if not sd > 0:
+        return float(delta > dav_min)
+    return float(stats.t.cdf((delta - dav_min) / sd, df=delta_s.size))
+
+
 def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mid, e, lc, bc, pix_rad,
              tslot, td, tde, tres, dav_min, min_front):
     """Position, size, distance, added extinction, tracers and significance of one region."""
@@ -351,23 +404,22 @@ def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mi
     s = samples[peak]                                             # (E, S)
     delta_s = (av[peak, k_hi] + s[k_hi]) - (av[peak, k_lo] + s[k_lo]) - lay_step
     q16, q84 = np.percentile(delta_s, [16, 84])
-    significance = float(np.mean(delta_s > dav_min))
+    significance = _probability(delta, delta_s, dav_min)
     # the samples' distances: excess-weighted over the region's cells
     inc_s = np.diff(av[a][:, :, None] + samples[a], axis=1)       # (n_cells_pixels, K, S)
     ws = np.maximum(inc_s[np.arange(a.size), k] - inc_l[a, k][:, None], 0.0)  # (n_cells, S)
     d_s = np.sum(ws * mid[k][:, None], axis=0) / np.maximum(ws.sum(axis=0), 1e-12)
     spread = float(np.std(d_s, ddof=1)) if d_s.size > 1 else 0.0
-    # tracers in the core footprint: who shows the feature's extinction
-    core = members[col >= _CORE_FRACTION * col.max()]
-    in_core = np.isin(tslot, core)
-    ts = tslot[in_core]
+    # tracers in the footprint (counted) and in its core (the bracket): who shows the feature's extinction
+    in_fp = np.isin(tslot, members[col >= _FOOTPRINT_FRACTION * col.max()])
+    ts = tslot[in_fp]
     fore = av[ts, k_lo] - lay[ts, k_lo]                           # model's excess in front of the region
     col_t = (av[ts, k_hi] - av[ts, k_lo]) - (lay[ts, k_hi] - lay[ts, k_lo])
-    shows = tres[in_core] > fore + 0.5 * np.maximum(col_t, 0.0)
-    d_t, de_t = td[in_core], tde[in_core]
-    front, behind = ~shows & (d_t < dist), shows & (d_t > dist)
-    n_front, n_behind = int(np.sum(front)), int(np.sum(behind))
-    d_front, d_behind, bracket = _bracket(d_t, de_t, shows, dist, float(e[k_lo]), float(e[k_hi]))
+    shows = tres[in_fp] > fore + 0.5 * np.maximum(col_t, 0.0)
+    d_t, de_t = td[in_fp], tde[in_fp]
+    n_front, n_behind = int(np.sum(~shows & (d_t < dist))), int(np.sum(shows & (d_t > dist)))
+    core = np.isin(ts, members[col >= _CORE_FRACTION * col.max()])
+    d_front, d_behind, bracket = _bracket(d_t[core], de_t[core], shows[core], dist, float(e[k_lo]), float(e[k_hi]))
     # the distance error: the samples' spread, the bin quantisation, and the bracket of the tracers
     # (see the module notes), in quadrature
     bin_w = float(np.sum(w * (e[k + 1] - e[k])) / wsum)
@@ -384,9 +436,9 @@ def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mi
         "distance": dist if kind == KIND_LOCATED else np.nan, "distance_err": dist_err if kind == KIND_LOCATED else np.nan,
         "distance_upper": upper, "distance_front": d_front, "distance_behind": d_behind, "distance_near": float(e[k_lo]), "distance_far": float(e[k_hi]),
         "delta_av": delta, "delta_av_err": float(0.5 * (q84 - q16)), "delta_av_max": delta_max,
-        "contrast": float(np.max(contrast[a, k])), "n_tracers": int(in_core.sum()), "n_front": n_front,
+        "contrast": float(np.max(contrast[a, k])), "n_tracers": int(in_fp.sum()), "n_front": n_front,
         "n_behind": n_behind, "n_pixels": int(members.size), "n_cells": int(a.size), "significance": significance,
-        "_order": dist if kind == KIND_LOCATED else upper,
+        "_order": dist if kind == KIND_LOCATED else upper, "_support": int(np.sum(shows)),
     }
 
 

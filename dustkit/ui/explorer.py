@@ -321,15 +321,17 @@ class Explorer:
 
     def _build_feature_widgets(self, full):
         """The dust-features layer: a checkbox, the least-probability slider and the table."""
+        from ..features import MIN_PROBABILITY
+
         W = widgets
         self.feature_layer_widget = W.Checkbox(value=False, indent=False, description="Show dust features",
                                                tooltip="Find the dust features of the whole model (once per model) "
                                                        "and draw them on the map and the profile")
-        self.min_probability_widget = W.FloatSlider(value=0.95, min=0.5, max=1.0, step=0.01,
+        self.min_probability_widget = W.FloatSlider(value=MIN_PROBABILITY, min=0.5, max=1.0, step=0.01,
                                                     continuous_update=False, readout_format=".2f",
                                                     description="Least probability", style=_DESC, layout=full,
-                                                    tooltip="Least fraction of the density model's posterior "
-                                                            "samples in which a feature adds its extinction")
+                                                    tooltip="Least posterior probability (density model) that "
+                                                            "a feature adds its extinction")
         self.feature_table = W.HTML(value="", layout=W.Layout(width="375px", max_height="220px", overflow="auto"))
 
     def _build_figures(self, base):
