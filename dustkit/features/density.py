@@ -248,8 +248,8 @@ def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag
         ``distance_far`` (pc; the region's distance range), ``delta_av``,
         ``delta_av_err`` (mag; added extinction through the peak pixel and half its 16-84
         range over samples), ``delta_av_max`` (mag; largest member-pixel column of the
-        mode), ``contrast`` (largest cell contrast), ``n_tracers`` (tracers in the core
-        footprint), ``n_front``, ``n_behind``, ``n_pixels``, ``n_cells`` and
+        mode), ``contrast`` (largest cell contrast), ``n_tracers`` (tracers in the
+        quarter-peak footprint), ``n_front``, ``n_behind``, ``n_pixels``, ``n_cells`` and
         ``significance`` (posterior probability). ``meta`` holds the settings, ``nside``,
         ``ordering``, ``coordsys``, ``n_candidates`` (regions tested), ``n_unsupported``
         (candidates shown by fewer than ``min_support`` tracers, not listed),
