@@ -7,6 +7,11 @@ process's peak memory. Targets (issue of the 3-D model): 3 000 clusters in under
 10^4 in under 60 s, 10^6 answers in under 2 s, on a 2-core machine.
 
     python benchmarks/bench_density.py [--sizes 3000,10000] [--answers 1000000]
+    python benchmarks/bench_density.py --field 100000    # also 10^5 field stars (target: < 10 min)
+
+``--field N`` builds the model from the 'field' galaxy of ``galaxies.py`` grown to N stars
+(10-25% distance errors, a 30 x 20 deg region) with progress shown, and prints the build time,
+the peak memory and the RMS error at held-out true positions against the baseline's.
 """
 
 import argparse
@@ -23,7 +28,7 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 import dustkit  # noqa: E402
 from dustkit.density import DensityModel  # noqa: E402
 from dustkit.simulate import DustField, random_clouds, simulate_tracers  # noqa: E402
-from galaxies import baseline_predict  # noqa: E402
+from galaxies import baseline_predict, make_galaxy, score  # noqa: E402
 
 
 def _peak_gib():
@@ -34,7 +39,10 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="3000,10000")
     ap.add_argument("--answers", type=int, default=1_000_000)
+    ap.add_argument("--field", type=int, default=0, help="also build from N field stars (e.g. 100000)")
     args = ap.parse_args()
+    if args.field:
+        _field(args.field)
     rng = np.random.default_rng(0)
     field = DustField(a0=1.0, h=120.0, z_sun=20.0,
                       clouds=random_clouds(12, (0, 360), (-6, 6), (300, 3500), rng, av_range=(0.5, 2.0)))
@@ -62,6 +70,22 @@ def main():
     model.layer_.av_pc(qb, qd)
     floor = time.perf_counter() - t0
     print(f"{f'{m} answers (vs the layer alone)':44} {ans:9.2f} {floor:13.2f} {ans / floor:7.1f} {_peak_gib():11.2f}")
+
+
+def _field(n):
+    fld, _, t, (l, b, d) = make_galaxy("field", seed=1, scale=n / 20000)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tracers = dustkit.read_tracers(t[["name", "l", "b", "distance", "distance_err", "ebv", "ebv_err"]])
+    t0 = time.perf_counter()
+    model = DensityModel().fit(tracers)  # progress shown
+    build = time.perf_counter() - t0
+    truth = fld.av(l, b, d)
+    a, e = model.av_pc(l, b, d)
+    s = score(truth, a, e)
+    base = score(truth, baseline_predict(model.layer_.av_pc, t, l, b, d))
+    print(f"build, {len(tracers)} field stars: {build:.1f} s, peak {_peak_gib():.2f} GiB; RMS {s['rms']:.3f} mag "
+          f"(baseline {base['rms']:.3f}, ratio {s['rms'] / base['rms']:.2f}), 1-sigma coverage {s['coverage']:.2f}")
 
 
 if __name__ == "__main__":

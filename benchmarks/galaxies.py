@@ -48,10 +48,14 @@ def _heldout(field, n, rng, *, distance_max, l_range=(0, 360), b_range=(-15, 15)
     return np.asarray(t["l"]), np.asarray(t["b"]), np.asarray(t["true_distance"])
 
 
-def make_galaxy(kind, seed=0, small=False):
-    """One invented galaxy: ``(field, clouds, tracers Table, (l, b, d) held-out true positions)``."""
+def make_galaxy(kind, seed=0, small=False, scale=None):
+    """One invented galaxy: ``(field, clouds, tracers Table, (l, b, d) held-out true positions)``.
+
+    ``small`` shrinks the catalogues of the larger galaxies to a quarter (for tests); ``scale``
+    multiplies them by any factor (``make_galaxy("field", scale=5)``: 10^5 field stars).
+    """
     rng = np.random.default_rng(seed)
-    scale = 0.25 if small else 1.0
+    scale = scale if scale is not None else (0.25 if small else 1.0)
     if kind == "smooth":      # (a) layer + compact clouds, clusters uniform over the disc to 4 kpc
         clouds = random_clouds(12, (0, 360), (-6, 6), (300, 3500), rng, av_range=(0.5, 2.0), radius_range=(1.0, 3.0))
         field = DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=clouds)

@@ -338,3 +338,82 @@ def test_a_change_of_law_for_a_colour_excess_refits_with_what_was_learned():
     a_ref, _ = ref.av_pc(l, b, d)
     assert np.median(np.abs(a2 - a_ref) / e2) < 0.5
     assert np.all(np.diff(m2.av_, axis=1) >= -1e-12)
+
+
+def test_hyperparameters_learned_on_a_subset_of_a_large_catalogue(monkeypatch):
+    # above CV_TRACERS tracers the search works on a random subset, the final fit on every
+    # tracer: the answers still follow the truth and every tracer informs them
+    import dustkit.density.estimator as est
+
+    monkeypatch.setattr(est, "CV_TRACERS", 150)
+    t, tr = _tracers(600, 11)
+    m = DensityModel(quiet=True, **FAST).fit(tr)
+    assert m.build_report_["tracers_for_hyperparameters"] == 150
+    assert m.build_report_["n_tracers"] == 600
+    assert int(m.counts_.sum()) == 600
+    h = simulate_tracers(FIELD, 800, rng=np.random.default_rng(12), **REGION, distance_max=3000)
+    l, b, d = (np.asarray(h[k]) for k in ("l", "b", "true_distance"))
+    a, e = (x.value for x in m.av(l * u.deg, b * u.deg, d * u.pc))
+    truth = FIELD.av(l, b, d)
+    assert np.sqrt(np.mean((a - truth) ** 2)) < 0.2
+    assert 0.5 <= np.mean(np.abs(a - truth) <= e) <= 0.95
+
+
+def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
+    # past the last tracer the answer is the foreground the tracers fix plus the layer's
+    # increment; that increment's error (delta method on the layer's covariance) stays in
+    # sigma however well the foreground is known
+    from dustkit.density.estimator import _layer_variance
+    from dustkit.layer import DustLayer, layer_av_pc
+
+    grid = Grid(4, default_distance_edges(3000.0))
+    e = grid.distance_edges
+    cov = np.diag([0.05, 15.0, 4.0]) ** 2
+    lay = DustLayer(a0=1.0, h=120.0, z_sun=20.0, a0_err=0.05, h_err=15.0, z_sun_err=4.0, covariance=cov)
+    last = int(np.searchsorted(e, 1000.0))             # many tracers just in front of e[last], none beyond
+    informing = np.zeros((grid.npix, e.size))           # tracers in front of each edge
+    informing[:, last:] = 1e6
+    var, past = _layer_variance(lay, grid, informing)
+    _, bc = grid.pixel_centres()
+    p0 = np.array([1.0, 120.0, 20.0])
+    jac = []
+    for j in range(3):
+        step = np.zeros(3)
+        step[j] = 1e-4 * p0[j]
+        inc = [layer_av_pc(bc, np.full(bc.size, e[-1]), *q) - layer_av_pc(bc, np.full(bc.size, e[last]), *q)
+               for q in (p0 + step, p0 - step)]
+        jac.append((inc[0] - inc[1]) / (2 * step[j]))
+    expected = np.einsum("in,ij,jn->n", np.array(jac), cov, np.array(jac))
+    # the delta method on the layer's increment from the last informed edge to the far end
+    np.testing.assert_allclose(past[:, -1], expected, rtol=0.02, atol=1e-9)
+    assert np.all(past[:, :last] < 1e-4 * var[:, :last] + 1e-12)   # in front: the support rules
+
+
+def test_unresolved_variance_from_cells_matches_the_tracer_by_tracer_sum():
+    # the held-out excess is summed into pixel x ln-distance cells before it is spread; the
+    # result must agree with spreading every tracer from its own position (common practice:
+    # binning well inside the kernel's widths changes a kernel average by a few per cent)
+    from dustkit.density.heldout import unresolved_variance
+
+    rng = np.random.default_rng(3)
+    n = 4000
+    l, b = rng.uniform(30, 50, n), rng.uniform(-8, 8, n)
+    d = rng.uniform(200, 3000, n)
+    excess = rng.gamma(2.0, 0.01, n)
+    weight = np.ones(n)
+    grid = Grid(64, default_distance_edges(3000.0))
+    pixels = active_pixels(grid, l, b, 2.0)
+    got = unresolved_variance(grid, l, b, d, excess, weight, pixels=pixels)
+    lc, bc = grid.pixel_centres(pixels)
+    e = grid.distance_edges
+    cosang = (np.sin(np.deg2rad(bc))[:, None] * np.sin(np.deg2rad(b))[None, :]
+              + np.cos(np.deg2rad(bc))[:, None] * np.cos(np.deg2rad(b))[None, :] * np.cos(np.deg2rad(lc[:, None] - l[None, :])))
+    ang = np.rad2deg(np.arccos(np.clip(cosang, -1, 1)))
+    w_sky = np.exp(-0.5 * (ang / 2.0) ** 2) * (ang <= 6.0)
+    for j in (5, 20, e.size - 1):
+        w = w_sky * np.exp(-0.5 * (np.log(e[j] / d) / 0.3) ** 2)
+        want = (w @ excess) / (w.sum(axis=1) + 3.0)
+        held = w.sum(axis=1) >= 3.0     # where tracers, not the prior's zero, make the average
+        assert held.sum() > 50
+        np.testing.assert_allclose(got[held, j], want[held], rtol=0.08)
+        assert np.all(np.abs(got[:, j] - want) <= 0.5 * want + 1e-3)   # at the fringe, the same order

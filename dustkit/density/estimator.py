@@ -29,6 +29,10 @@ from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor eve
 
 #: Bootstrap resamples (over sky blocks) for the layer's parameter errors.
 LAYER_BOOTSTRAP = 30
+#: Largest number of tracers the hyperparameter search (cross-validation, held-out misses)
+#: works on; a larger catalogue lends it a random subset of this size and the final fit uses
+#: every tracer (10^5 field stars: the search would take most of the build).
+CV_TRACERS = 20_000
 
 
 #: Sky separation (deg) within which the density model treats agreeing tracers as one object listed twice.
@@ -262,8 +266,14 @@ class DensityModel:
         if n < 5:
             raise CatalogError(f"The density model needs at least 5 tracers; got {n}. "
                                "Hint: widen the region or add tracers.")
-        l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer = _tracer_inputs(tracers, self.random_state)
-        pixels = active_pixels(grid, l, b, radius)
+        inp = _tracer_inputs(tracers, self.random_state)
+        pixels = active_pixels(grid, inp.l, inp.b, radius)
+        # the hyperparameters and the held-out misses are learned on at most CV_TRACERS tracers
+        # (a random subset of a larger catalogue); the final fit uses them all
+        keep = _cv_subset(n, self.random_state)
+        l, b, d, de, av, ae, _, weight, n_groups, corr, shift, layer = inp if keep is None else inp._replace(
+            **{k: getattr(inp, k)[keep] for k in ("l", "b", "d", "de", "av", "ae", "weight", "corr", "shift")})
+        n_cv = l.size
         col = np.searchsorted(pixels, grid.pixel(l, b))
         fold = _blocks(l, b, d, folds_n, self.random_state)
         layer_at = layer.av_pc(b, d * np.exp(shift))  # the layer at the tracers (structure = model - layer)
@@ -277,7 +287,7 @@ class DensityModel:
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             warm = warm if warm is not None and warm.shape == lat.shape else None
             full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
-            resid, pvar, base = np.zeros(n), np.zeros(n), np.zeros(n)
+            resid, pvar, base = np.zeros(n_cv), np.zeros(n_cv), np.zeros(n_cv)
             for k in range(folds_n):
                 test = fold == k
                 if test.any() and not test.all():
@@ -318,7 +328,8 @@ class DensityModel:
 
             amp, boost, cell_length, xi0 = compare_background(evaluate, raise_cells, amp, length, xi0)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length)
-            terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
+            terms = tracer_terms(lat, layer.av_pc, np.searchsorted(pixels, grid.pixel(inp.l, inp.b)), inp.b, inp.d,
+                                 inp.de, inp.av, inp.ae, inp.weight, inp.corr, log_shift=inp.shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)
@@ -333,7 +344,8 @@ class DensityModel:
                                        "distance shells): neighbouring and duplicated tracers share a fold")
         self.build_report_ = {
             "model": "3-D log-normal density", "n_tracers": n, "n_active_pixels": int(pixels.size),
-            "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": floored,
+            "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": inp.floored,
+            "tracers_for_hyperparameters": n_cv,
             "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
@@ -346,8 +358,8 @@ class DensityModel:
         # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
         # leans on the prior; where tracers inform it, the field's posterior absorbs the
         # layer's misfit (weight 1 - support)
-        layer_var = _layer_variance(layer, self.grid_)
-        self.layer_err_ = np.sqrt((1.0 - self.support_) * layer_var)
+        layer_var, past = _layer_variance(layer, self.grid_, self.n_tracers_)
+        self.layer_err_ = np.sqrt(np.maximum((1.0 - self.support_) * layer_var, past))
         self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
         self.structure_tau_ = float(tau_s)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
@@ -655,6 +667,13 @@ class _TracerInputs(NamedTuple):
     layer: DustLayer        # fitted at the shifted distances
 
 
+def _cv_subset(n, random_state):
+    """Sorted indices of a random subset of CV_TRACERS tracers for the hyperparameter search (None: all)."""
+    if n <= CV_TRACERS:
+        return None
+    return np.sort(np.random.default_rng(random_state).choice(n, CV_TRACERS, replace=False))
+
+
 def _tracer_inputs(tracers, random_state):
     """The arrays, duplicate weights, distance shifts and layer shared by a fit and a refit.
 
@@ -684,10 +703,16 @@ def _scaled_cov(cov, ratio):
     return np.asarray(cov, float) * scale[:, None] * scale[None, :]
 
 
-def _layer_variance(layer, grid):
+def _layer_variance(layer, grid, informing=None):
     """Variance (mag^2) of the layer's cumulative A_V at every pixel centre and edge from its parameter covariance.
 
-    The delta method with central differences in (a0, h, z_sun).
+    The delta method with central differences in (a0, h, z_sun). With ``informing`` (the
+    kernel-weighted count of tracers in front of each node, (npix, n_edges)), also returns
+    the variance of the layer's share past the data: a distance bin with no informing
+    tracer in or beyond it is not constrained by any tracer, so the layer's error on
+    its increment reaches every node behind it, however well the foreground is known (the
+    support of the cumulative A_V says nothing of it); with ``n`` such tracers, a share
+    ``2 / (2 + n)`` of it (the kernel-weighted counts spread over the sky kernel).
     """
     _, bc = grid.pixel_centres()
     e = grid.distance_edges
@@ -702,8 +727,14 @@ def _layer_variance(layer, grid):
         jac.append((layer_av_pc(bb, dd, *hi) - layer_av_pc(bb, dd, *lo)) / (2 * steps[j]))
     jac = np.asarray(jac)                                   # (3, npix * E)
     cov = np.nan_to_num(np.asarray(layer.covariance, float))
-    var = np.einsum("in,ij,jn->n", jac, cov, jac)
-    return np.maximum(var, 0.0).reshape(bc.size, e.size)
+    var = np.maximum(np.einsum("in,ij,jn->n", jac, cov, jac), 0.0).reshape(bc.size, e.size)
+    if informing is None:
+        return var
+    jac = jac.reshape(3, bc.size, e.size)
+    beyond = informing[:, -1:] - informing[:, :-1]          # tracers in or beyond each bin (npix, K)
+    open_bins = 2.0 / (2.0 + np.maximum(beyond, 0.0))     # half open with two tracers beyond
+    past = np.concatenate([np.zeros((3, bc.size, 1)), np.cumsum(open_bins * np.diff(jac, axis=2), axis=2)], axis=2)
+    return var, np.maximum(np.einsum("ipn,ij,jpn->pn", past, cov, past), 0.0)
 
 
 def _prior_cumulative_var(inc, corr, amplitude):
