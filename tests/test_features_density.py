@@ -106,14 +106,16 @@ def test_a_smooth_galaxy_gives_no_false_feature(smooth):
     _, _, model = smooth
     feats = density_features(model)
     # false-positive control: the layer alone, 1000 noisy clusters with 3% outliers; the
-    # defaults (contrast 1.5, >= 0.2 mag in >= 95% of samples) are meant to allow at most one
-    # false feature per galaxy (the target)
+    # defaults (contrast 1.3, >= 0.2 mag with posterior probability >= 0.9, two tracers
+    # showing it) are meant to allow at most one false feature per galaxy (the target)
     assert len(feats) <= 1
-    # the same search with the significance test switched off finds no more candidate than it
-    # reports: what keeps the smooth sky clean is the contrast against the layer, which the
-    # posterior mode keeps below 1.5 where no cloud is (measured: <= 1.25)
+    # the same search with the significance test switched off finds only a handful of
+    # candidates (the contrast against the layer, which the posterior mode keeps low where no
+    # cloud is, bounds the look-elsewhere effect), and the chance count the finder expects
+    # among them stays below one
     loose = density_features(model, min_probability=0.0, min_delta_av=0.0 * u.mag)
-    assert len(loose) <= 2
+    assert len(loose) <= 5
+    assert feats.meta["expected_false"] < 1.0
 
 
 def test_a_cloud_with_no_tracer_in_front_is_only_bounded(unseen_foreground):
