@@ -561,7 +561,11 @@ def _cmd_build(args, out):
         out(f"Model: 3-D log-normal density on {len(model.active_pixels_)} pixels of {g.pixel_area.value:.2f} deg^2 "
             f"x {g.n_bins} distance bins ({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); chosen by "
             f"spatially blocked cross-validation: amplitude {model.amplitude_:g}, correlation length "
-            f"{model.length_:.0f} pc, unresolved fraction {model.tau_:.3f}; {rep['duplicate_groups']} groups of "
+            f"{model.length_:.0f} pc, unresolved fraction {model.tau_:.3f}"
+            + (f" (learned on a random {rep['tracers_for_hyperparameters']} of the {rep['n_tracers']} tracers; "
+               "the final fit uses them all)" if rep.get("tracers_for_hyperparameters", rep["n_tracers"])
+               < rep["n_tracers"] else "")
+            + f"; {rep['duplicate_groups']} groups of "
             f"near-duplicate tracers counted once; {rep['censored']} tracers beyond the grid used as bounds.")
     else:
         out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "

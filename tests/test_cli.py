@@ -399,3 +399,14 @@ def test_source_temperature_option_reaches_the_reading(files, tmp_path, call):
     assert "No temperature" not in err
     rc, out, err = call("layer", path, "--json", "--distance-unit", "kpc", check_rc=0)
     assert err.count("No temperature or intrinsic-colour column") == 1 and "--source-temperature" in err
+
+
+def test_density_build_says_when_a_subset_chose_the_hyperparameters(files, tmp_path, call, monkeypatch):
+    # a catalogue larger than CV_TRACERS: the report must say the search saw only part of it
+    import dustkit.density.estimator as est
+
+    monkeypatch.setattr(est, "CV_TRACERS", 100)
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m.fits", "--model", "density",
+                        "--distance-unit", "kpc", check_rc=0)
+    assert "3-D log-normal density" in out
+    assert "learned on a random 100 of the 249 tracers" in out
