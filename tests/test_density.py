@@ -56,6 +56,28 @@ def test_prior_has_the_stated_variance_and_correlation():
     assert r == pytest.approx(lat.phi[k + 1], abs=0.04)
 
 
+def test_sky_kernel_rows_are_the_stated_gaussian_and_nugget():
+    # each row of the sky kernel is exp(-theta^2 / 2 w^2) of the angle to the row's pixel, the
+    # pixel itself with weight 1 + PIXEL_NUGGET, normalised to unit norm (definition of the
+    # process convolution in dustkit.density.lattice; the weight must not depend on whether
+    # the tree lists zero distances)
+    from dustkit.density.lattice import PIXEL_NUGGET, unit_vectors
+
+    grid = Grid(16, default_distance_edges(3000.0))
+    pix = active_pixels(grid, np.array([40.0]), np.array([0.0]), 20.0)
+    lat = Lattice(grid, pix, 0.3, 500.0)
+    xyz = unit_vectors(lat.l_centre, lat.b_centre)
+    for k in (5, 20, lat.n_bins - 1):
+        kern = lat.kernels[k].toarray()
+        i = int(np.argmax(kern.sum(axis=1) > 0))
+        row = kern[i] * (1.0 + PIXEL_NUGGET) / kern[i, i]
+        nb = np.nonzero((row > 0) & (np.arange(row.size) != i))[0]
+        ang = np.rad2deg(np.arccos(np.clip(xyz[nb] @ xyz[i], -1, 1)))
+        width = np.sqrt(-0.5 * ang**2 / np.log(row[nb]))       # the width each neighbour implies
+        assert np.ptp(width) < 0.02 * width.mean()              # one Gaussian for the whole row
+        np.testing.assert_allclose(np.sum(kern[i] ** 2), 1.0)   # unit norm: prior variance s^2
+
+
 def test_per_cell_amplitudes_give_the_stated_cumulative_prior_variance():
     # with per-cell amplitude factors (raised cells, as behind a cloud) the closed-form prior
     # variance of cumulative extinction must equal that of Monte Carlo draws of the prior

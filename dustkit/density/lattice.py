@@ -10,7 +10,8 @@ the cells is a Gaussian field written through white noise ``xi`` (non-centred fo
 with ``phi_k = exp(-Delta_k / L)`` the correlation between neighbouring distance bins
 (an AR(1) process along each sight line, correlation length ``L`` in pc) and ``G_k`` a
 sparse Gaussian kernel on the sky whose rows have unit L2 norm, of angular width ``L /
-d_k`` (the same physical length at the bin's distance). Every cell therefore has prior
+d_k`` (the same physical length at the bin's distance), with the pixel's own weight doubled
+(``PIXEL_NUGGET``: a share of each cell's variance independent of its neighbours). Every cell therefore has prior
 variance exactly ``s^2`` (with per-cell amplitude factors and lengths, as the density model
 learns behind clouds, the variance follows the same recursion: :meth:`Lattice.cell_variance`), and the density ``rho = m exp(f)`` has the smooth layer ``m``
 as its prior median and is positive by construction.
@@ -32,6 +33,14 @@ __all__ = ["unit_vectors", "active_pixels", "Lattice"]
 #: Widest angular correlation of the sky kernel (deg); nearby bins would otherwise correlate
 #: the whole sky through a handful of pixels.
 MAX_SKY_WIDTH_DEG = 3.0
+
+#: Extra weight of a pixel's own white noise in its kernel row, on top of the Gaussian's 1 at
+#: distance 0: part of every cell's prior variance is its own, independent of its neighbours
+#: (a nugget), so structure on the scale of one pixel (a compact cloud's core) is not forced
+#: to spread over the kernel's width. With weight 1 (the Gaussian alone) the 20 000 field stars
+#: of ``benchmarks/galaxies.py`` gave RMS 0.105 instead of 0.087 mag and 35% instead of 54% of
+#: the truths behind clouds inside 1 sigma (2026-12-03).
+PIXEL_NUGGET = 1.0
 
 
 def unit_vectors(l_deg, b_deg):
@@ -160,11 +169,12 @@ class Lattice:
         n = self.n_pix
         if width == 0.0:
             return sparse.identity(n, format="csr")
-        pairs = tree.sparse_distance_matrix(tree, chord(2.5 * width), output_type="coo_matrix")
-        ang = np.rad2deg(2.0 * np.arcsin(np.clip(pairs.data / 2.0, 0.0, 1.0)))
+        pairs = tree.sparse_distance_matrix(tree, chord(2.5 * width), output_type="ndarray")
+        off = pairs["i"] != pairs["j"]  # the diagonal is set below, whether or not the tree lists distance 0
+        ang = np.rad2deg(2.0 * np.arcsin(np.clip(pairs["v"][off] / 2.0, 0.0, 1.0)))
         val = np.exp(-0.5 * (ang / width) ** 2)
-        k = sparse.coo_matrix((val, (pairs.row, pairs.col)), shape=(n, n)).tocsr()
-        k = k + sparse.identity(n, format="csr")  # the diagonal (distance 0 is not listed)
+        k = sparse.coo_matrix((val, (pairs["i"][off], pairs["j"][off])), shape=(n, n)).tocsr()
+        k = k + (1.0 + PIXEL_NUGGET) * sparse.identity(n, format="csr")
         norm = np.sqrt(np.asarray(k.multiply(k).sum(axis=1)).ravel())
         return (sparse.diags(1.0 / norm) @ k).tocsr()
 
