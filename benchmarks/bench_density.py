@@ -85,7 +85,7 @@ def _field(n):
     truth = fld.av(l, b, d)
     a, e = model.av_pc(l, b, d)
     s = score(truth, a, e)
-    # the baseline's leave-one-out lists tracer pairs within 12 deg (10^10 at 10^5 stars): it
+    # the baseline's leave-one-out lists tracer pairs within 12 deg (10^8 and more at 10^5 stars): it
     # smooths a random 20 000 of the stars
     sub = t[np.sort(np.random.default_rng(0).choice(len(t), min(len(t), 20000), replace=False))]
     base = score(truth, baseline_predict(model.layer_.av_pc, sub, l, b, d))

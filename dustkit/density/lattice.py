@@ -37,7 +37,7 @@ MAX_SKY_WIDTH_DEG = 3.0
 #: Extra weight of a pixel's own white noise in its kernel row, on top of the Gaussian's 1 at
 #: distance 0: part of every cell's prior variance is its own, independent of its neighbours
 #: (a nugget), so structure on the scale of one pixel (a compact cloud's core) is not forced
-#: to spread over the kernel's width. With weight 1 (the Gaussian alone) the 20 000 field stars
+#: to spread over the kernel's width. With no extra weight (the Gaussian alone) the 20 000 field stars
 #: of ``benchmarks/galaxies.py`` gave RMS 0.105 instead of 0.087 mag and 35% instead of 54% of
 #: the truths behind clouds inside 1 sigma (2026-12-03).
 PIXEL_NUGGET = 1.0
