@@ -252,9 +252,10 @@ def build_parser():
                         "sight line (any model); 'auto' (default): density for a density model, else steps")
     p.add_argument("--min-delta-av", type=float, default=0.2, metavar="MAG",
                    help="least extinction a feature adds, mag (default 0.2)")
-    p.add_argument("--min-probability", type=float, default=0.9, metavar="P",
+    # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST) apply when not given
+    p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability of adding --min-delta-av (default 0.9)")
-    p.add_argument("--min-contrast", type=float, default=1.3, metavar="RATIO",
+    p.add_argument("--min-contrast", type=float, metavar="RATIO",
                    help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
     p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
                    help="steps finder: least BIC improvement of a step over no step (default 10)")
@@ -736,8 +737,9 @@ def _cmd_features(args, out):
         if args.radius is not None or args.detections:
             raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
                               "the model's own cells")
-        feats = density_features(model, min_contrast=args.min_contrast, min_delta_av=args.min_delta_av * u.mag,
-                                 min_probability=args.min_probability, quiet=_quiet_flag(args))
+        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability))
+                 if v is not None}
+        feats = density_features(model, min_delta_av=args.min_delta_av * u.mag, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "
             f"tested against {feats.meta['n_samples']} posterior samples):")

@@ -410,3 +410,14 @@ def test_density_build_says_when_a_subset_chose_the_hyperparameters(files, tmp_p
                         "--distance-unit", "kpc", check_rc=0)
     assert "3-D log-normal density" in out
     assert "learned on a random 100 of the 249 tracers" in out
+
+
+def test_features_help_states_the_finder_defaults(call):
+    # the command passes no value of its own when an option is not given: the finder's
+    # defaults rule, and the help must name the same ones
+    from dustkit.features import MIN_CONTRAST, MIN_PROBABILITY
+
+    rc, out, err = call("features", "--help")
+    text = " ".join(out.split())
+    assert f"(default {MIN_PROBABILITY:g})" in text
+    assert f"(default {MIN_CONTRAST:g})" in text
