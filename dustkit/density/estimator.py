@@ -268,13 +268,14 @@ class DensityModel:
                                "Hint: widen the region or add tracers.")
         inp = _tracer_inputs(tracers, self.random_state)
         pixels = active_pixels(grid, inp.l, inp.b, radius)
+        col_all = np.searchsorted(pixels, grid.pixel(inp.l, inp.b))  # each tracer's active-pixel column
         # the hyperparameters and the held-out misses are learned on at most CV_TRACERS tracers
         # (a random subset of a larger catalogue); the final fit uses them all
         keep = _cv_subset(n, self.random_state)
         l, b, d, de, av, ae, _, weight, n_groups, corr, shift, layer = inp if keep is None else inp._replace(
             **{k: getattr(inp, k)[keep] for k in ("l", "b", "d", "de", "av", "ae", "weight", "corr", "shift")})
         n_cv = l.size
-        col = np.searchsorted(pixels, grid.pixel(l, b))
+        col = col_all if keep is None else col_all[keep]
         fold = _blocks(l, b, d, folds_n, self.random_state)
         layer_at = layer.av_pc(b, d * np.exp(shift))  # the layer at the tracers (structure = model - layer)
         rng = np.random.default_rng(self.random_state)
@@ -328,8 +329,8 @@ class DensityModel:
 
             amp, boost, cell_length, xi0 = compare_background(evaluate, raise_cells, amp, length, xi0)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length)
-            terms = tracer_terms(lat, layer.av_pc, np.searchsorted(pixels, grid.pixel(inp.l, inp.b)), inp.b, inp.d,
-                                 inp.de, inp.av, inp.ae, inp.weight, inp.corr, log_shift=inp.shift)
+            terms = tracer_terms(lat, layer.av_pc, col_all, inp.b, inp.d, inp.de, inp.av, inp.ae, inp.weight,
+                                 inp.corr, log_shift=inp.shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)
