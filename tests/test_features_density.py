@@ -347,3 +347,26 @@ def test_features_list_how_many_of_them_are_expected_to_be_chance(cloudy, smooth
     # in the cloudless galaxy nothing is listed, so nothing is expected to be chance
     none = density_features(smooth[2])
     assert len(none) == 0 and none.meta["expected_false"] == 0.0
+
+
+def test_the_step_likelihood_places_a_cloud_with_an_honest_spread():
+    # tracers drawn exactly as the likelihood of step 6 assumes (a column of 1 mag behind D,
+    # 0.1 mag errors, 10% log-normal distance errors, 5% wrong members): over 300 draws the
+    # posterior mean is unbiased and the truth lies within one posterior sigma in about 68%
+    # of them (the coverage of a correctly specified posterior, common practice)
+    from dustkit.features.density import _distance_posterior
+
+    rng = np.random.default_rng(5)
+    true_d, inside, bias = 1500.0, [], []
+    for _ in range(300):
+        n = 20
+        d_true = rng.uniform(600.0, 3000.0, n)
+        d_obs = d_true * np.exp(rng.normal(0.0, 0.1, n))
+        y = np.where(d_true > true_d, 1.0, 0.0) + rng.normal(0.0, 0.1, n)
+        bad = rng.uniform(size=n) < 0.05
+        y[bad] += rng.choice([-1.0, 1.0], bad.sum()) * 1.5
+        mean, sd = _distance_posterior(d_obs, 0.1 * d_obs, y, np.ones(n), np.full(n, 0.1), 500.0, 3500.0)
+        inside.append(abs(mean - true_d) <= sd)
+        bias.append((mean - true_d) / true_d)
+    assert 0.6 <= np.mean(inside) <= 0.78
+    assert abs(np.median(bias)) < 0.02
