@@ -79,15 +79,16 @@ a0 is in mag/kpc, h and z_sun in pc.""",
   dustkit profile model.fits --l 32.5 --b -2 --radius 1.5 -o cone.pdf""",
     "features": """examples:
   dustkit features model.fits -o features.csv
-  dustkit features model.fits -o features.ecsv --min-delta-av 0.3 --min-probability 0.99
+  dustkit features model.fits -o features.ecsv --min-delta-av 0.3 --min-probability 0.999
   dustkit features model.fits -o features.ecsv --finder steps --radius 6 --detections pixels.ecsv
 
 On a 3-D density model (the default for cluster catalogues) features are compact
-over-densities of the model's dust density, tested against its posterior samples; no cone
+over-densities of the model's dust density, tested against the tracers they hold; no cone
 radius is needed. Columns: feature, kind ('located' or 'nearer than'), l, b (deg), extent
 (deg), extent_pc, depth (pc), distance, distance_err, distance_upper, distance_front,
 distance_behind (the tracers bracketing it), distance_near, distance_far (pc), delta_av, delta_av_err, delta_av_max (mag), contrast, n_tracers,
-n_front, n_behind, n_pixels, n_cells, significance (posterior probability).
+n_front, n_behind, n_pixels, n_cells, significance (the tracers' posterior probability of
+adding --min-delta-av), model_significance (the model's, from its posterior samples).
 A 'nearer than' feature has no tracer in front of it: the dust lies somewhere nearer than
 distance_upper. On a binned model (or with --finder steps) steps in A_V against distance
 are searched per sky pixel and merged (significance: BIC improvement over no step).
@@ -254,7 +255,8 @@ def build_parser():
                    help="least extinction a feature adds, mag (default 0.2)")
     # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST) apply when not given
     p.add_argument("--min-probability", type=float, metavar="P",
-                   help="density finder: least posterior probability of adding --min-delta-av (default 0.9)")
+                   help="density finder: least posterior probability, from a feature's tracers, of adding "
+                        "--min-delta-av (default 0.99)")
     p.add_argument("--min-contrast", type=float, metavar="RATIO",
                    help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
     p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
@@ -742,7 +744,7 @@ def _cmd_features(args, out):
         feats = density_features(model, min_delta_av=args.min_delta_av * u.mag, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "
-            f"tested against {feats.meta['n_samples']} posterior samples):")
+            f"tested against their tracers):")
         for r in feats:
             if r["kind"] == KIND_NEARER:
                 where = f"nearer than {r['distance_upper'].value:6.0f} pc (no tracer in front)"
@@ -751,7 +753,7 @@ def _cmd_features(args, out):
             out(f"  #{r['feature']}: l = {r['l'].value:7.2f} deg, b = {r['b'].value:+6.2f} deg, extent "
                 f"{r['extent'].value:.1f} deg, {where}, delta A_V {r['delta_av'].value:.2f} +- "
                 f"{r['delta_av_err'].value:.2f} mag, {r['n_front']} tracers in front, {r['n_behind']} behind, "
-                f"in {r['significance']:.0%} of samples")
+                f"probability {r['significance']:.3f}")
         out(f"Wrote {path}")
         out("Distances and depths are the model's: it resolves dust in depth only to its correlation length "
             f"({feats.meta['resolution']}) and the tracers' distance errors.")

@@ -231,7 +231,7 @@ def test_explorer_in_jupyterlab_changes_law_and_redraws(tmp_path, jupyter_dirs):
                 sky2.scroll_into_view_if_needed()
                 sky_before = _drawn_canvas(sky2)
                 panel2.locator(".dustkit-feature-layer input[type=checkbox]").check()
-                status2.filter(has_text="dust feature(s) with probability >= 0.90").wait_for(timeout=120_000)
+                status2.filter(has_text="dust feature(s) with probability >= 0.99").wait_for(timeout=120_000)
                 assert page.locator(".dustkit-status.dustkit-error").count() == 0, status2.inner_text()
                 # the table lists them: the invented Long Shadow located (distance +- error), the two
                 # near clouds only bounded ("nearer than"); the map shows their circles
