@@ -411,6 +411,36 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     assert np.all(past[:, :last] < 1e-4 * var[:, :last] + 1e-12)   # in front: the support rules
 
 
+def test_the_local_bias_term_finds_a_one_sided_patch_and_not_noise():
+    # a dense catalogue (40 tracers per deg^2) whose residuals are pure noise (sd 0.2 mag)
+    # except in a 5 x 5 deg patch beyond 800 pc, where the model sits 0.15 mag low: the local
+    # bias term comes out near 0.15^2 inside the patch (a patch smaller than the term's
+    # kernels, 0.9 deg and 0.3 in ln distance, is diluted) and near zero far from it. (The
+    # product of two independent halves' means has the squared bias as its expectation:
+    # E[XY] = E[X] E[Y] for independent variables, from memory.)
+    from dustkit.density.heldout import local_bias_variance
+
+    rng = np.random.default_rng(8)
+    n = 16_000
+    l, b = rng.uniform(30, 50, n), rng.uniform(-5, 5, n)
+    d = rng.uniform(200, 3000, n)
+    patch = (np.abs(l - 40) < 2.5) & (np.abs(b) < 2.5) & (d > 800)
+    resid = rng.normal(0.0, 0.2, n) + 0.15 * patch
+    grid = Grid(64, default_distance_edges(3000.0))
+    got = local_bias_variance(grid, l, b, d, resid, np.ones(n), 0.9, np.random.default_rng(1))
+    e = grid.distance_edges
+    j = int(np.searchsorted(e, 2000.0))
+    inside = grid.pixel(np.array([40.0]), np.array([0.0]))[0]
+    assert 0.5 * 0.15**2 <= got[inside, j] <= 1.5 * 0.15**2
+    lc, bc = grid.pixel_centres()
+    far = (np.abs(lc - 40) > 5) & (np.abs(lc - 40) < 9) & (np.abs(bc) < 4)
+    assert far.sum() > 30
+    # noise alone: at most a few per cent of the far nodes pass the one-sigma rule, and
+    # their mean is far below the patch's bias
+    assert np.mean(got[far, j] > 0) < 0.25
+    assert np.mean(got[far, j]) < 0.1 * 0.15**2
+
+
 def test_unresolved_variance_from_cells_matches_the_tracer_by_tracer_sum():
     # the held-out excess is summed into pixel x ln-distance cells before it is spread; the
     # result must agree with spreading every tracer from its own position (common practice:

@@ -19,7 +19,7 @@ from ..grid import Grid
 from ..layer import DustLayer, fit_layer, layer_av_pc
 from .lattice import Lattice, active_pixels, chord, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
-                      unresolved_variance)
+                      local_bias_variance, unresolved_variance)
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
@@ -336,7 +336,11 @@ class DensityModel:
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.mode_ = post.xi  # white-noise coordinates of the posterior mode (warm starts)
-        self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight), tau_s)
+        # what the cells miss: held-out tracers' excess spread, and the fitted model's own local bias
+        fitted_ok = ~terms.censored
+        bias2 = local_bias_variance(grid, inp.l, inp.b, inp.d, np.where(fitted_ok, inp.av - post.predicted, 0.0),
+                                    inp.weight * fitted_ok, float(np.sqrt(grid.pixel_area.to_value(u.deg**2))), rng)
+        self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight) + bias2, tau_s)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
                                            "raised_cells"))
         self.cv_["length"].unit = u.pc

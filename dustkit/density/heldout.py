@@ -73,13 +73,15 @@ def cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, 
     return boost, np.clip(length / boost, min(shortest, length), length)
 
 
-def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
+def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None,
+                        signed=False):
     """Local variance the cells miss (npix, n_edges), from held-out tracers' excess squared residuals.
 
     Each tracer's excess (its held-out squared residual beyond the predicted variance)
     spreads over nodes within a Gaussian of ``sky_deg`` on the sky and ``depth`` in log
     distance, averaged with ``prior_weight`` tracers' worth of zero (so a lone miss does
     not inflate a whole region). Zero far from tracers, where the prior's spread rules.
+    Not negative, unless ``signed`` (then the same local average of any per-tracer value).
     """
     e = grid.distance_edges
     lc, bc = grid.pixel_centres(pixels)
@@ -107,8 +109,38 @@ def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, p
     den = ksky @ (agg_w @ depth_w.T)                            # (n_out, E-1)
     num = ksky @ (agg_x @ depth_w.T)
     out = np.zeros((n_out, e.size))
-    out[:, 1:] = np.maximum(num / (den + prior_weight), 0.0)
+    out[:, 1:] = num / (den + prior_weight) if signed else np.maximum(num / (den + prior_weight), 0.0)
     return out
+
+
+def local_bias_variance(grid, l, b, d, resid, weight, sky_deg, rng, prior_weight=3.0):
+    """Squared local bias of the fitted model (npix, n_edges), from the residuals of its own tracers.
+
+    Where the model smooths over structure smaller than its kernels (a compact cloud in a
+    dense catalogue), its own tracers there sit on one side of it, more than their noise
+    allows. The tracers are split at random into two halves; in each, the residuals' local
+    mean ``m`` (averaged over nodes as :func:`unresolved_variance` averages the held-out
+    excess, but signed) and its noise variance ``v`` (the local mean square over the
+    summed kernel weight: generous, as the kernel's weights are at most 1). The product
+    ``m_1 m_2`` has the squared bias as its expectation (the two halves' noises are
+    independent, so no noise term enters it); it is kept where it exceeds ``sqrt(v_1 v_2)``,
+    and is zero elsewhere (so that noise alone, whose clipped product is positive on
+    average, adds little). A bias patch smaller than the kernels is diluted.
+    """
+    half = rng.uniform(size=resid.size) < 0.5
+    means, noise = [], []
+    for part in (half, ~half):
+        w = weight * part
+
+        def local(x):
+            return unresolved_variance(grid, l, b, d, x, w, sky_deg=sky_deg, prior_weight=prior_weight, signed=True)
+
+        share = np.clip(local(np.ones_like(resid)), 0.0, 1.0 - 1e-9)   # n / (n + prior_weight)
+        n_eff = prior_weight * share / (1.0 - share)
+        means.append(local(resid))
+        noise.append(local(resid**2) / (n_eff + prior_weight))
+    prod = means[0] * means[1]
+    return np.where(prod > np.sqrt(np.maximum(noise[0] * noise[1], 0.0)), prod, 0.0)
 
 
 def held_out_excess(av, ae, fitted, resid, pvar, base, tau, censored):
