@@ -3,7 +3,7 @@
 A cloud is a compact over-density of the dust: cells (HEALPix pixel x distance bin) whose
 differential extinction exceeds the smooth layer's by a clear factor, connected on the sky
 and in depth. This module finds such regions in the posterior mode, measures each against
-the posterior samples, and lists them with position, distance, size, the extinction they
+the tracers it holds (a step fitted to them), and lists them with position, distance, size, the extinction they
 add, the tracers in front of and behind them, and a significance.
 
 The method
@@ -134,7 +134,9 @@ Notes
 Segmenting a 3-D dust map into clouds by thresholding it and labelling connected regions is
 common practice in 3-D extinction mapping (the maps themselves: Lallement et al. 2019, A&A
 625, A135; Leike & Ensslin 2019, A&A 631, A32); the contrast against the fitted layer, the
-significance against posterior samples and the "nearer than" rule are dustkit's own.
+step fit to the footprint's tracers for distance and significance, and the "nearer than" rule
+are dustkit's own (a mixture likelihood for a tracer in front of or behind a step is common
+practice in 3-D extinction work).
 Connected components of a sparse graph: scipy.sparse.csgraph.
 """
 

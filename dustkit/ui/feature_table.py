@@ -32,6 +32,6 @@ def feature_table_html(features, density):
         sig = val(row, "significance", u.one)
         body.append(f"<tr><td>{int(row['feature'])}</td><td>{val(row, 'l', u.deg):.2f}</td>"
                     f"<td>{val(row, 'b', u.deg):+.2f}</td><td>{dist}</td>"
-                    f"<td>{dav:.2f} &plusmn; {dave:.2f}</td><td>{sig:.2f}</td></tr>")
+                    f"<td>{dav:.2f} &plusmn; {dave:.2f}</td><td>{sig:.3f}</td></tr>")
     style = ('<style>.dustkit-ftab td,.dustkit-ftab th{padding:1px 5px;text-align:right;font-size:85%}</style>')
     return f'{style}<table class="dustkit-ftab">{head}{"".join(body)}</table>'
