@@ -95,12 +95,12 @@ The method
    range closes it. The likelihood's spread alone is too small on the invented galaxies
    (53% of actual errors within it, 83% within twice it): the cloud's own extent and the
    model's smeared column at the tracers are not in it. With the larger of the two, on
-   those nine galaxies (31 located features at significance >= 0.5 matched to an invented
-   cloud within 40%), the median distance error is 8.6% of the distance (10.0% with the
-   mode's distance) with a median bias of -0.6% (-7.2%); 81% of the actual errors are
+   those nine galaxies (29 located features at significance >= 0.5 matched to an invented
+   cloud within 40%), the median distance error is 9.0% of the distance (10.0% with the
+   mode's distance) with a median bias of -0.6% (-7.2%); 76% of the actual errors are
    within the quoted error and 97% within twice it (68% / 95% for honest Gaussian errors),
-   RMS error / quoted error 0.93 (0.66 and 0.68 in the smooth and near galaxies: there the
-   quoted errors are about 1.5 times the actual; with the two terms added in quadrature
+   RMS error / quoted error 0.96 (0.70 and 0.69 in the smooth and near galaxies: there the
+   quoted errors are about 1.45 times the actual; with the two terms added in quadrature
    they were 1.7-1.8 times). (With only one tracer in
    the footprint the distance is the mode's and its error the samples' spread and the bin
    width / sqrt(12) in quadrature.)
