@@ -73,23 +73,33 @@ def cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, 
     return boost, np.clip(length / boost, min(shortest, length), length)
 
 
-def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None,
-                        signed=False):
+def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, prior_weight=3.0, pixels=None):
     """Local variance the cells miss (npix, n_edges), from held-out tracers' excess squared residuals.
 
     Each tracer's excess (its held-out squared residual beyond the predicted variance)
     spreads over nodes within a Gaussian of ``sky_deg`` on the sky and ``depth`` in log
     distance, averaged with ``prior_weight`` tracers' worth of zero (so a lone miss does
     not inflate a whole region). Zero far from tracers, where the prior's spread rules.
-    Not negative, unless ``signed`` (then the same local average of any per-tracer value).
+    """
+    den, num = _node_sums(grid, l, b, d, (weight, weight * excess), sky_deg, depth, pixels)
+    out = np.zeros((den.shape[0], den.shape[1] + 1))
+    out[:, 1:] = np.maximum(num / (den + prior_weight), 0.0)
+    return out
+
+
+def _node_sums(grid, l, b, d, columns, sky_deg, depth, pixels=None):
+    """Kernel-weighted sums at the nodes (n_out, n_edges - 1), one per per-tracer array in ``columns``.
+
+    The kernel is a Gaussian of ``sky_deg`` on the sky (cut at 3 widths) times a Gaussian of
+    ``depth`` in ln distance, at every edge but the first. The tracers are first summed into
+    cells of the grid's pixels x 0.05-wide bins of ln distance (each moved to its pixel's
+    centre, well inside the sky kernel, and by at most 0.025 in ln distance against
+    ``depth``), then spread from the cells: memory and time grow with the cells, not with
+    pixel-tracer pairs (10^8 pairs for 10^5 field stars), and the cells and the kernel are
+    built once for all the columns.
     """
     e = grid.distance_edges
     lc, bc = grid.pixel_centres(pixels)
-    n_out = lc.size
-    # the tracers first summed into cells of the grid's pixels x 0.05-wide bins of ln distance
-    # (each moved to its pixel's centre, well inside the sky kernel, and by at most 0.025 in
-    # ln distance against ``depth``), then spread from the cells: memory and time grow with
-    # the cells, not with pixel-tracer pairs (10^8 pairs for 10^5 field stars)
     src, cell = np.unique(grid.pixel(l, b), return_inverse=True)
     lnd = np.log(np.maximum(d, 1.0))
     step = 0.05
@@ -97,23 +107,17 @@ def unresolved_variance(grid, l, b, d, excess, weight, sky_deg=2.0, depth=0.3, p
     n_m = int(m.max()) + 1
     flat = cell * n_m + m
     size = src.size * n_m
-    agg_w = np.bincount(flat, weight, minlength=size).reshape(src.size, n_m)
-    agg_x = np.bincount(flat, weight * excess, minlength=size).reshape(src.size, n_m)
     centres = lnd.min() + (np.arange(n_m) + 0.5) * step
     depth_w = np.exp(-0.5 * ((np.log(np.maximum(e[1:], 1e-9))[:, None] - centres[None, :]) / depth) ** 2)  # (E-1, M)
     ls, bs = grid.pixel_centres(src)
     pairs = cKDTree(unit_vectors(lc, bc)).sparse_distance_matrix(cKDTree(unit_vectors(ls, bs)), chord(3 * sky_deg),
                                                                    output_type="ndarray")  # zero distances kept
     ang = np.rad2deg(2 * np.arcsin(np.clip(pairs["v"] / 2, 0, 1)))
-    ksky = sparse.csr_matrix((np.exp(-0.5 * (ang / sky_deg) ** 2), (pairs["i"], pairs["j"])), shape=(n_out, src.size))
-    den = ksky @ (agg_w @ depth_w.T)                            # (n_out, E-1)
-    num = ksky @ (agg_x @ depth_w.T)
-    out = np.zeros((n_out, e.size))
-    out[:, 1:] = num / (den + prior_weight) if signed else np.maximum(num / (den + prior_weight), 0.0)
-    return out
+    ksky = sparse.csr_matrix((np.exp(-0.5 * (ang / sky_deg) ** 2), (pairs["i"], pairs["j"])), shape=(lc.size, src.size))
+    return [ksky @ (np.bincount(flat, c, minlength=size).reshape(src.size, n_m) @ depth_w.T) for c in columns]
 
 
-def local_bias_variance(grid, l, b, d, resid, weight, sky_deg, rng, prior_weight=3.0):
+def local_bias_variance(grid, l, b, d, resid, weight, sky_deg, rng, depth=0.3, prior_weight=3.0):
     """Squared local bias of the fitted model (npix, n_edges), from the residuals of its own tracers.
 
     Where the model smooths over structure smaller than its kernels (a compact cloud in a
@@ -128,19 +132,19 @@ def local_bias_variance(grid, l, b, d, resid, weight, sky_deg, rng, prior_weight
     average, adds little). A bias patch smaller than the kernels is diluted.
     """
     half = rng.uniform(size=resid.size) < 0.5
-    means, noise = [], []
+    columns = []
     for part in (half, ~half):
         w = weight * part
-
-        def local(x):
-            return unresolved_variance(grid, l, b, d, x, w, sky_deg=sky_deg, prior_weight=prior_weight, signed=True)
-
-        share = np.clip(local(np.ones_like(resid)), 0.0, 1.0 - 1e-9)   # n / (n + prior_weight)
-        n_eff = prior_weight * share / (1.0 - share)
-        means.append(local(resid))
-        noise.append(local(resid**2) / (n_eff + prior_weight))
+        columns += [w, w * resid, w * resid**2]
+    sums = _node_sums(grid, l, b, d, columns, sky_deg, depth)
+    means, noise = [], []
+    for den, s1, s2 in (sums[:3], sums[3:]):
+        means.append(s1 / (den + prior_weight))
+        noise.append(s2 / (den + prior_weight) / (den + prior_weight))
     prod = means[0] * means[1]
-    return np.where(prod > np.sqrt(np.maximum(noise[0] * noise[1], 0.0)), prod, 0.0)
+    out = np.zeros((prod.shape[0], prod.shape[1] + 1))
+    out[:, 1:] = np.where(prod > np.sqrt(np.maximum(noise[0] * noise[1], 0.0)), prod, 0.0)
+    return out
 
 
 def held_out_excess(av, ae, fitted, resid, pvar, base, tau, censored):
