@@ -494,11 +494,6 @@ def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mi
     q16, q84 = np.percentile(delta_s, [16, 84])
     model_significance = _probability(delta, delta_s, dav_min)
     significance = model_significance
-    # the samples' distances: excess-weighted over the region's cells
-    inc_s = np.diff(av[a][:, :, None] + samples[a], axis=1)       # (n_cells_pixels, K, S)
-    ws = np.maximum(inc_s[np.arange(a.size), k] - inc_l[a, k][:, None], 0.0)  # (n_cells, S)
-    d_s = np.sum(ws * mid[k][:, None], axis=0) / np.maximum(ws.sum(axis=0), 1e-12)
-    spread = float(np.std(d_s, ddof=1)) if d_s.size > 1 else 0.0
     # tracers in the footprint (counted) and in its core (the bracket): who shows the feature's extinction
     in_fp = np.isin(tslot, members[col >= _FOOTPRINT_FRACTION * col.max()])
     ts = tslot[in_fp]
@@ -523,7 +518,11 @@ def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mi
         # significance: the tracers' posterior probability that the cloud adds more than
         # dav_min through the peak pixel (the model's column there, delta, times the scale)
         significance = float(np.sum(p_scale[_SCALES * delta > dav_min]))
-    else:
+    else:  # the mode's distance: its spread over the samples (excess-weighted over the region's cells)
+        inc_s = np.diff(av[a][:, :, None] + samples[a], axis=1)       # (n_cells_pixels, K, S)
+        ws = np.maximum(inc_s[np.arange(a.size), k] - inc_l[a, k][:, None], 0.0)  # (n_cells, S)
+        d_s = np.sum(ws * mid[k][:, None], axis=0) / np.maximum(ws.sum(axis=0), 1e-12)
+        spread = float(np.std(d_s, ddof=1)) if d_s.size > 1 else 0.0
         lik_sd = float(np.sqrt(spread**2 + (float(np.sum(w * (e[k + 1] - e[k])) / wsum)) ** 2 / 12.0))
     n_front, n_behind = int(np.sum(~shows & (d_t < dist))), int(np.sum(shows & (d_t > dist)))
     core = np.isin(ts, members[col >= _CORE_FRACTION * col.max()])
