@@ -708,12 +708,12 @@ def _scaled_cov(cov, ratio):
     return np.asarray(cov, float) * scale[:, None] * scale[None, :]
 
 
-def _layer_variance(layer, grid, informing=None):
+def _layer_variance(layer, grid, informing):
     """Variance (mag^2) of the layer's cumulative A_V at every pixel centre and edge from its parameter covariance.
 
-    The delta method with central differences in (a0, h, z_sun). With ``informing`` (the
-    kernel-weighted count of tracers in front of each node, (npix, n_edges)), also returns
-    the variance of the layer's share past the data: a distance bin with no informing
+    The delta method with central differences in (a0, h, z_sun). ``informing`` is the
+    kernel-weighted count of tracers in front of each node, (npix, n_edges); also returned
+    is the variance of the layer's share past the data: a distance bin with no informing
     tracer in or beyond it is not constrained by any tracer, so the layer's error on
     its increment reaches every node behind it, however well the foreground is known (the
     support of the cumulative A_V says nothing of it); with ``n`` such tracers, a share
@@ -733,8 +733,6 @@ def _layer_variance(layer, grid, informing=None):
     jac = np.asarray(jac)                                   # (3, npix * E)
     cov = np.nan_to_num(np.asarray(layer.covariance, float))
     var = np.maximum(np.einsum("in,ij,jn->n", jac, cov, jac), 0.0).reshape(bc.size, e.size)
-    if informing is None:
-        return var
     jac = jac.reshape(3, bc.size, e.size)
     beyond = informing[:, -1:] - informing[:, :-1]          # tracers in or beyond each bin (npix, K)
     open_bins = 2.0 / (2.0 + np.maximum(beyond, 0.0))     # half open with two tracers beyond
