@@ -124,21 +124,21 @@ A catalogue's model has 10^4-10^5 cells, so a per-cell test at 95% would give hu
 false features. The search guards against that in three stages: (i) the contrast threshold
 (1.3, i.e. ln 1.3 = 0.26 in log-density) is applied to the posterior *mode*, which the
 prior shrinks toward the layer where the data do not demand otherwise, so the candidate
-regions number 15-35 per galaxy of 2 500-3 000 clusters, not thousands, and most of them
+regions (sky basins, step 2) number 14-35 per galaxy of 2 500-3 000 clusters (65-85 in the
+clumpy galaxies), not thousands, and most of them
 have a significance near 0; (ii) at least two tracers must show a candidate; (iii) it must
 add at least ``min_delta_av`` = 0.2 mag with a probability of at least ``min_probability``
 = 0.99 from its tracers. 0.2 mag is three times the A_V error of a typical cluster (0.02
 mag in E(B-V) times R_V), so a single tracer's noise cannot provide it. The threshold 0.99
 is the look-elsewhere correction: the tracers' probability has a flat prior on the
 column that leans toward a cloud (with no cloud at all its median is 0.57, and 7% of
-draws pass 0.9), and 20-35 candidates are tested per galaxy; at 0.99, 1% of cloudless
+draws pass 0.9), and 14-85 candidates are tested per galaxy; at 0.99, 1% of cloudless
 draws pass. The number of listed features expected to be chance, if the probabilities
 are right, is the sum of ``1 - significance`` over them (``meta['expected_false']``). On the
-nine invented galaxies of ``benchmarks/features.py`` (2026-12-03): 22 of 40 testable
-clouds located (17 with the model's probability at 0.9, the previous default), with 6
-features where the invented field has no real excess (4 before), at most 2 in a galaxy;
-on six fresh galaxies (seeds 3 and 4) 19 of 33 (10 before), with 5 such features, all in
-the two clumpy galaxies.
+fifteen invented galaxies of ``benchmarks/features.py`` (seeds 0-4, 2026-12-03): 45 of 73
+testable clouds located (41 before the regions were split into sky basins), with 8 features
+where the invented field has no real excess (11 before): one in the ten smooth and near
+galaxies, 0-3 in each clumpy one.
 
 Cautions
 --------
