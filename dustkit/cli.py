@@ -89,8 +89,8 @@ radius is needed. Columns: feature, kind ('located' or 'nearer than'), l, b (deg
 distance_behind (the tracers bracketing it), distance_near, distance_far (pc), delta_av, delta_av_err, delta_av_max (mag), contrast, n_tracers,
 n_front, n_behind, n_pixels, n_cells, significance (the tracers' posterior probability of
 adding --min-delta-av), model_significance (the model's, from its posterior samples).
-A 'nearer than' feature has no tracer in front of it: the dust lies somewhere nearer than
-distance_upper. On a binned model (or with --finder steps) steps in A_V against distance
+A 'nearer than' feature has fewer than two tracers in front of it that do not show it (one
+could be a wrong member): the dust lies somewhere nearer than distance_upper. On a binned model (or with --finder steps) steps in A_V against distance
 are searched per sky pixel and merged (significance: BIC improvement over no step).
 Features are statistical: check them against local data.""",
     "export": """examples:
@@ -747,12 +747,13 @@ def _cmd_features(args, out):
             f"tested against their tracers):")
         for r in feats:
             if r["kind"] == KIND_NEARER:
-                where = f"nearer than {r['distance_upper'].value:6.0f} pc (no tracer in front)"
+                where = (f"nearer than {r['distance_upper'].value:6.0f} pc (fewer than "
+                         f"{feats.meta['min_front']} tracers in front)")
             else:
                 where = f"distance {r['distance'].value:6.0f} +- {r['distance_err'].value:.0f} pc"
             out(f"  #{r['feature']}: l = {r['l'].value:7.2f} deg, b = {r['b'].value:+6.2f} deg, extent "
                 f"{r['extent'].value:.1f} deg, {where}, delta A_V {r['delta_av'].value:.2f} +- "
-                f"{r['delta_av_err'].value:.2f} mag, {r['n_front']} tracers in front, {r['n_behind']} behind, "
+                f"{r['delta_av_err'].value:.2f} mag, tracers {r['n_front']} in front, {r['n_behind']} behind, "
                 f"probability {r['significance']:.3f}")
         out(f"Wrote {path}")
         out("Distances and depths are the model's: it resolves dust in depth only to its correlation length "

@@ -3,8 +3,8 @@
 Two finders. For a 3-D density model (:class:`~dustkit.density.DensityModel`, the default
 for cluster catalogues), :func:`density_features` finds compact over-densities of the
 model's dust density, connected on the sky and in depth, and places and tests each with a
-step fitted to the tracers it holds; clouds with no tracer in front are reported as "nearer than" an
-upper distance. See :mod:`dustkit.features.density` for that method. For binned models of
+step fitted to the tracers it holds; clouds with fewer than two tracers in front are reported as
+"nearer than" an upper distance. See :mod:`dustkit.features.density` for that method. For binned models of
 large field-star samples (and as an expert option on any model) the sight-line step finder
 below is kept:
 

@@ -158,7 +158,7 @@ def _face_features(ax, features):
     up = column(features, "distance_upper", u.pc) if "distance_upper" in names else np.full(d.size, np.nan)
     ids = np.asarray(features["feature"]) if "feature" in names else np.arange(1, d.size + 1)
     ux, uy = np.cos(bb) * np.cos(ll) / 1000.0, np.cos(bb) * np.sin(ll) / 1000.0  # kpc per pc along the line
-    label, label_up = "dust feature", "dust nearer than (no tracer in front)"
+    label, label_up = "dust feature", "dust nearer than (foreground unconstrained)"
     for i in range(d.size):
         if np.isfinite(d[i]):
             err = np.nan_to_num(de[i])

@@ -23,7 +23,7 @@ def plot_features(features, ax=None, extent=None, cmap="plasma", distance_unit=N
     """Dust features on a Galactic map: a circle of each feature's extent, filled by its distance.
 
     Located features are filled with the colour of their ``distance``; ``'nearer than'``
-    features (no tracer in front: :func:`dustkit.features.density_features`) are drawn as
+    features (fewer than two tracers in front: :func:`dustkit.features.density_features`) are drawn as
     hatched outlines in the colour of their ``distance_upper`` and labelled ``< D``.
 
     Parameters

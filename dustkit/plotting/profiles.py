@@ -124,7 +124,7 @@ def _mark_features(ax, features, scale, quantity, band, law, rv):
         raise param_error("features", "a table with a 'distance' column", names)
     fd = column(features, "distance", u.pc)
     fde = column(features, "distance_err", u.pc) if "distance_err" in names else np.zeros_like(fd)
-    # 'nearer than' features (no tracer in front): shaded from 0 to their upper distance
+    # 'nearer than' features (foreground unconstrained): shaded from 0 to their upper distance
     up = column(features, "distance_upper", u.pc) if "distance_upper" in names else np.full(fd.size, np.nan)
     bound = ~np.isfinite(fd) & np.isfinite(up)
     for d_up in up[bound]:
