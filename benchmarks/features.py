@@ -31,7 +31,7 @@ galaxy and finder:
 Targets (issue of the features): >= 75% of the testable clouds found at the right
 distance, <= 1 false feature per galaxy with the defaults.
 
-    python benchmarks/features.py [--galaxies smooth,near,clumpy] [--seeds 0,1,2] [--no-baseline]
+    python benchmarks/features.py [--galaxies smooth,near,clumpy] [--seeds 0,1,2] [--no-baseline] [--scale 0.4]
 """
 
 import argparse
@@ -113,8 +113,8 @@ def real_excess(field, feats, unmatched):
     return np.array(out)
 
 
-def run(kind, seed, baseline=True):
-    field, clouds, t, _ = make_galaxy(kind, seed=seed)
+def run(kind, seed, baseline=True, scale=None):
+    field, clouds, t, _ = make_galaxy(kind, seed=seed, scale=scale)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         tracers = dustkit.read_tracers(t[list(COLUMNS)])
@@ -177,11 +177,13 @@ def main(argv=None):
     ap.add_argument("--galaxies", default="smooth,near,clumpy")
     ap.add_argument("--seeds", default="0,1,2", help="comma-separated seeds: one galaxy of each kind per seed")
     ap.add_argument("--no-baseline", action="store_true", help="skip the sight-line step finder")
+    ap.add_argument("--scale", type=float, default=None,
+                    help="multiply the catalogue sizes (2 500-3 000 clusters) by this factor, e.g. 0.4 or 2")
     args = ap.parse_args(argv)
     rows = []
     for kind in args.galaxies.split(","):
         for seed in (int(x) for x in args.seeds.split(",")):
-            r, model, clouds = run(kind, seed, baseline=not args.no_baseline)
+            r, model, clouds = run(kind, seed, baseline=not args.no_baseline, scale=args.scale)
             rows += r
             print(f"# {kind} seed {seed}: {r[0]['n_tracers']} tracers, {len(clouds)} clouds, model fit "
                   f"{r[0]['fit_seconds']:.1f} s (amplitude {model.build_report_['amplitude']:.2f}, "
@@ -196,6 +198,10 @@ def main(argv=None):
             print(_line(kind, finder, _sum([r for r in rows if r["galaxy"] == kind and r["finder"] == finder])))
     for finder in finders:
         print(_line("all", finder, _sum([r for r in rows if r["finder"] == finder])))
+    for finder in finders:
+        per = {kind: [r["false"] for r in rows if r["galaxy"] == kind and r["finder"] == finder]
+               for kind in args.galaxies.split(",")}
+        print(f"false features per galaxy ({finder}): " + "; ".join(f"{k} {v}" for k, v in per.items()))
     n_gal = len(args.galaxies.split(",")) * len(args.seeds.split(","))
     print(f"({n_gal} galaxies; rows per kind sum over the seeds {args.seeds})")
     print("found: testable clouds (>= 5 tracers in front and 5 behind within 2 radii) located within 15% or the "

@@ -251,8 +251,9 @@ def build_parser():
     p.add_argument("--finder", choices=("auto", "density", "steps"), default="auto",
                    help="'density': over-densities of a 3-D density model; 'steps': steps along each pixel's "
                         "sight line (any model); 'auto' (default): density for a density model, else steps")
-    p.add_argument("--min-delta-av", type=float, default=0.2, metavar="MAG",
-                   help="least extinction a feature adds, mag (default 0.2)")
+    p.add_argument("--min-delta-av", type=float, metavar="MAG",
+                   help="least extinction a feature adds, mag (default 0.25 for the density finder, "
+                        "0.2 for the steps)")
     # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST) apply when not given
     p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from a feature's tracers, of adding "
@@ -722,7 +723,8 @@ def _cmd_features(args, out):
     from ._lib.formats import check_target, format_for
     from .io import load_model, write_table
 
-    check_real("min_delta_av", args.min_delta_av, 0, 100)
+    if args.min_delta_av is not None:
+        check_real("min_delta_av", args.min_delta_av, 0, 100)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
     for path in (args.output, args.detections):
@@ -739,9 +741,10 @@ def _cmd_features(args, out):
         if args.radius is not None or args.detections:
             raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
                               "the model's own cells")
-        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability))
+        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
+                                   ("min_delta_av", None if args.min_delta_av is None else args.min_delta_av * u.mag))
                  if v is not None}
-        feats = density_features(model, min_delta_av=args.min_delta_av * u.mag, quiet=_quiet_flag(args), **given)
+        feats = density_features(model, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "
             f"tested against their tracers):")
@@ -761,7 +764,8 @@ def _cmd_features(args, out):
         out(feats.meta["caution"])
         return 0
     feats, det = detect_features(
-        model, radius=None if args.radius is None else args.radius * u.deg, min_delta_av=args.min_delta_av * u.mag,
+        model, radius=None if args.radius is None else args.radius * u.deg,
+        min_delta_av=(0.2 if args.min_delta_av is None else args.min_delta_av) * u.mag,
         min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
         return_detections=True)
     path = write_table(feats, args.output, overwrite=args.overwrite)

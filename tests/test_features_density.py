@@ -106,7 +106,7 @@ def test_a_smooth_galaxy_gives_no_false_feature(smooth):
     _, _, model = smooth
     feats = density_features(model)
     # false-positive control: the layer alone, 1000 noisy clusters with 3% outliers; the
-    # defaults (contrast 1.3, >= 0.2 mag with the tracers' posterior probability >= 0.99, two
+    # defaults (contrast 1.3, >= 0.25 mag with the tracers' posterior probability >= 0.99, two
     # tracers showing it) are meant to allow at most one false feature per galaxy (the issue's target)
     assert len(feats) <= 1
     # the same search with the significance test switched off finds only a handful of
@@ -190,6 +190,14 @@ def test_the_command_line_uses_the_density_finder_for_a_density_model(cloudy, tm
     want = density_features(model)
     assert len(got) == len(want) and "kind" in got.colnames and "n_front" in got.colnames
     np.testing.assert_allclose(np.asarray(got["distance"], float), want["distance"].to_value(u.pc), rtol=1e-6)
+    # without --min-delta-av the command uses the density finder's own default (0.25 mag), as
+    # Python does; given, it is passed on (a larger threshold lists no more features)
+    ecsv = tmp_path / "features.ecsv"
+    assert main(["features", str(path), "-o", str(ecsv), "--quiet"]) == 0
+    assert Table.read(ecsv).meta["min_delta_av"] == want.meta["min_delta_av"] == 0.25
+    assert main(["features", str(path), "-o", str(ecsv), "--overwrite", "--min-delta-av", "0.6", "--quiet"]) == 0
+    high = Table.read(ecsv)
+    assert high.meta["min_delta_av"] == 0.6 and len(high) <= len(want)
     # the cone radius belongs to the sight-line finder
     assert main(["features", str(path), "-o", str(tmp_path / "f2.csv"), "--radius", "3", "--quiet"]) != 0
 
@@ -325,7 +333,7 @@ def test_a_faint_far_cloud_near_the_threshold_is_found_at_its_distance():
     assert sep <= 3.0
     d, err = f["distance"].to_value(u.pc), f["distance_err"].to_value(u.pc)
     assert abs(d - FAINT_FAR.distance) <= max(0.15 * FAINT_FAR.distance, err)
-    # the model's posterior probability of adding more than 0.2 mag is high but not certain
+    # the model's posterior probability of adding more than 0.25 mag (the default) is high but not certain
     # (an earlier finder counted samples, 15 of the 16 adding 0.2 mag, 0.94 < 0.95, and missed
     # this cloud; the Student t probability is not quantised by them); the tracers' own
     # probability, with dozens of them behind the cloud, is above the listing threshold
