@@ -143,11 +143,11 @@ column that leans toward a cloud (with no cloud at all its median is 0.57, and 7
 draws pass 0.9), and 14-85 candidates are tested per galaxy; at 0.99, 1% of cloudless
 draws pass. The number of listed features expected to be chance, if the probabilities
 are right, is the sum of ``1 - significance`` over them (``meta['expected_false']``). On the
-21 invented galaxies of ``benchmarks/features.py`` (seeds 0-6, 2026-12-03): 55 of 98
-testable clouds located (on seeds 0-4, 42 of 73 against 41 before the regions were split
-into sky basins and the footprint narrowed to 0.3 of the peak), with 9 features where the
-invented field has no real excess (seeds 0-4: 5 against 11): one in the fourteen smooth and
-near galaxies, 0-2 in each clumpy one.
+21 invented galaxies of ``benchmarks/features.py`` (seeds 0-6, 2026-12-03): 54 of 98
+testable clouds located (on seeds 0-4 with 0.2 mag, 42 of 73 against 41 before the regions
+were split into sky basins and the footprint narrowed to 0.3 of the peak), with 5 features
+where the invented field has no real excess: one in the fourteen smooth and near galaxies,
+0-2 in each clumpy one.
 
 Cautions
 --------
