@@ -16,7 +16,8 @@ galaxy and finder:
   distance at or beyond the true one;
 * false: features matching no cloud on the sky at a compatible distance where the invented
   field itself adds less than 0.1 mag over its smooth layer across the feature's distance
-  range (mean over the feature's centre and eight points at its extent); "clumps": the other
+  range (mean over the feature's centre and eight points at its extent; for the step finder, which
+  gives no range, its distance +- 2 errors, at least 15%); "clumps": the other
   unmatched features, where the field does add that much (in 'clumpy', real clumps of the
   log-normal field, not noise);
 * distance error: median |d - d_true| / d_true of the found clouds, and the ratio of
@@ -104,7 +105,11 @@ def real_excess(field, feats, unmatched):
     for j in np.nonzero(unmatched)[0]:
         r = feats[j]
         l, b, ext = r["l"].to_value(u.deg), r["b"].to_value(u.deg), r["extent"].to_value(u.deg)
-        near, far = r["distance_near"].to_value(u.pc), r["distance_far"].to_value(u.pc)
+        if "distance_near" in feats.colnames:
+            near, far = r["distance_near"].to_value(u.pc), r["distance_far"].to_value(u.pc)
+        else:  # the sight-line step finder: its step's distance +- 2 errors (at least +-15%)
+            dd, de = r["distance"].to_value(u.pc), r["distance_err"].to_value(u.pc)
+            near, far = max(dd - max(2 * de, 0.15 * dd), 0.0), dd + max(2 * de, 0.15 * dd)
         ang = np.linspace(0.0, 2.0 * np.pi, 9)[:-1]
         ll = np.r_[l, l + ext * np.cos(ang) / np.cos(np.deg2rad(b))]
         bb = np.r_[b, b + ext * np.sin(ang)]

@@ -254,7 +254,7 @@ def build_parser():
     p.add_argument("--min-delta-av", type=float, metavar="MAG",
                    help="least extinction a feature adds, mag (default 0.25 for the density finder, "
                         "0.2 for the steps)")
-    # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST) apply when not given
+    # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST, MIN_DELTA_AV) apply when not given
     p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from a feature's tracers, of adding "
                         "--min-delta-av (default 0.99)")
