@@ -763,11 +763,11 @@ def _cmd_features(args, out):
             f"({feats.meta['resolution']}) and the tracers' distance errors.")
         out(feats.meta["caution"])
         return 0
+    given = {} if args.min_delta_av is None else {"min_delta_av": args.min_delta_av * u.mag}  # else its own default
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg,
-        min_delta_av=(0.2 if args.min_delta_av is None else args.min_delta_av) * u.mag,
         min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
-        return_detections=True)
+        return_detections=True, **given)
     path = write_table(feats, args.output, overwrite=args.overwrite)
     out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels searched:")
     for r in feats:
