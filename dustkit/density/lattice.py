@@ -24,11 +24,58 @@ Gaussian field from white noise is the process-convolution method (Higdon 2002).
 sky kernel is truncated at 2.5 widths.
 """
 
+import os
+from concurrent.futures import ThreadPoolExecutor
+
 import numpy as np
 from scipy import sparse
 from scipy.spatial import cKDTree
 
-__all__ = ["unit_vectors", "active_pixels", "Lattice"]
+__all__ = ["unit_vectors", "active_pixels", "Lattice", "THREADS"]
+
+#: Threads for the sky kernels' sparse products (scipy releases the GIL in them): each
+#: kernel is split into this many blocks of rows, multiplied at once. ``DUSTKIT_THREADS``
+#: in the environment sets it; 1 runs everything in the calling thread. Row blocks give
+#: the same sums in the same order, so results do not depend on it.
+THREADS = max(1, int(os.environ.get("DUSTKIT_THREADS", os.cpu_count() or 1)))
+#: Products with fewer stored kernel entries x columns than this run in the calling thread.
+_THREAD_WORK = 2_000_000
+_POOL = None
+
+
+def _pool():
+    global _POOL
+    if _POOL is None:
+        _POOL = ThreadPoolExecutor(THREADS, thread_name_prefix="dustkit-kernel")
+    return _POOL
+
+
+class _RowBlocks:
+    """A CSR matrix kept as ``THREADS`` blocks of rows; ``op @ x`` multiplies them in parallel."""
+
+    def __init__(self, matrix):
+        matrix = matrix.tocsr()
+        self.shape, self.nnz = matrix.shape, matrix.nnz
+        n = matrix.shape[0]
+        parts = min(THREADS, max(1, n))
+        bounds = np.linspace(0, n, parts + 1).astype(int)
+        self.blocks = [(lo, hi, matrix[lo:hi]) for lo, hi in zip(bounds[:-1], bounds[1:])]
+        self.whole = matrix if parts == 1 else None
+
+    def __matmul__(self, x):
+        if self.whole is not None:
+            return self.whole @ x
+        cols = 1 if x.ndim == 1 else x.shape[1]
+        if self.nnz * cols < _THREAD_WORK:
+            return np.concatenate([blk @ x for _, _, blk in self.blocks], axis=0)
+        out = np.empty((self.shape[0], *x.shape[1:]), np.result_type(self.blocks[0][2].dtype, x.dtype))
+
+        def run(block):
+            lo, hi, blk = block
+            out[lo:hi] = blk @ x
+
+        list(_pool().map(run, self.blocks))
+        return out
 
 #: Widest angular correlation of the sky kernel (deg); nearby bins would otherwise correlate
 #: the whole sky through a handful of pixels.
@@ -160,7 +207,8 @@ class Lattice:
             k = self._kernel(tree, float(w))
             kt = k.T.tocsr()
             # float32 copies serve the posterior draws, where single precision is ample
-            self.groups.append((k, kt, bins, k.astype(np.float32), kt.astype(np.float32)))
+            self.groups.append((_RowBlocks(k), _RowBlocks(kt), bins, _RowBlocks(k.astype(np.float32)),
+                                _RowBlocks(kt.astype(np.float32))))
             for j in bins:
                 kernels[j] = k
         return kernels
