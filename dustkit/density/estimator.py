@@ -17,6 +17,7 @@ from ..answers import av_quantities, grid_table, profile_table, query_table, sky
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
 from ..layer import DustLayer, fit_layer, layer_av_pc
+from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
                       local_bias_variance, unresolved_variance)
@@ -354,6 +355,7 @@ class DensityModel:
             "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
+            "threads": _lattice.THREADS,
         }
         return self
 
