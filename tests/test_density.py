@@ -492,3 +492,16 @@ def test_unresolved_variance_from_cells_matches_the_tracer_by_tracer_sum():
         assert held.sum() > 50
         np.testing.assert_allclose(got[held, j], want[held], rtol=0.08)
         assert np.all(np.abs(got[:, j] - want) <= 0.5 * want + 1e-3)   # at the fringe, the same order
+
+
+def test_a_bad_thread_count_in_the_environment_is_named(monkeypatch):
+    # the user's setting is named with a hint, not a bare int() traceback (common practice)
+    from dustkit.density import lattice
+
+    monkeypatch.setenv("DUSTKIT_THREADS", "two")
+    with pytest.raises(ValueError, match="DUSTKIT_THREADS='two'.*Hint"):
+        lattice._threads_from_environment()
+    monkeypatch.setenv("DUSTKIT_THREADS", "3")
+    assert lattice._threads_from_environment() == 3
+    monkeypatch.delenv("DUSTKIT_THREADS")
+    assert 1 <= lattice._threads_from_environment() <= 8

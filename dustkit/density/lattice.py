@@ -33,11 +33,29 @@ from scipy.spatial import cKDTree
 
 __all__ = ["unit_vectors", "active_pixels", "Lattice", "THREADS"]
 
+
+def _threads_from_environment():
+    """``DUSTKIT_THREADS`` if set (a positive integer), else the cores this process may use (at most 8)."""
+    raw = os.environ.get("DUSTKIT_THREADS")
+    if raw is None:
+        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+        return max(1, min(cores, 8))
+    try:
+        value = int(raw)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise ValueError(f"DUSTKIT_THREADS={raw!r} is not a positive whole number. Hint: unset it to use every "
+                         "core, or set DUSTKIT_THREADS=1 to keep the density model in one thread.")
+    return value
+
+
 #: Threads for the sky kernels' sparse products (scipy releases the GIL in them): each
 #: kernel is split into this many blocks of rows, multiplied at once. ``DUSTKIT_THREADS``
-#: in the environment sets it; 1 runs everything in the calling thread. Row blocks give
-#: the same sums in the same order, so results do not depend on it.
-THREADS = max(1, int(os.environ.get("DUSTKIT_THREADS", os.cpu_count() or 1)))
+#: in the environment sets it (default: the cores this process may use, at most 8); 1 runs
+#: everything in the calling thread. Row blocks give the same sums in the same order, so
+#: results do not depend on it.
+THREADS = _threads_from_environment()
 #: Products with fewer stored kernel entries x columns than this run in the calling thread.
 _THREAD_WORK = 2_000_000
 _POOL = None
