@@ -505,3 +505,25 @@ def test_a_bad_thread_count_in_the_environment_is_named(monkeypatch):
     assert lattice._threads_from_environment() == 3
     monkeypatch.delenv("DUSTKIT_THREADS")
     assert 1 <= lattice._threads_from_environment() <= 8
+
+
+@pytest.mark.skipif(not hasattr(__import__("os"), "fork"), reason="needs os.fork")
+def test_a_forked_child_multiplies_kernels_without_the_parents_threads(monkeypatch):
+    # a process forked after a threaded build (as multiprocessing does by default on Linux)
+    # has none of the parent's threads; its products must still run, not wait forever
+    # (common practice: thread pools are not inherited across fork)
+    import multiprocessing as mp
+
+    from dustkit.density import lattice
+
+    monkeypatch.setattr(lattice, "THREADS", 2)
+    monkeypatch.setattr(lattice, "_THREAD_WORK", 0)
+    grid = Grid(16, default_distance_edges(3000.0))
+    pix = active_pixels(grid, np.array([40.0]), np.array([0.0]), 12.0)
+    lat = Lattice(grid, pix, 0.8, 200.0)
+    x = np.random.default_rng(3).standard_normal((*lat.shape, 4))
+    expected = lat.forward(x)  # the parent's pool now exists
+    ctx = mp.get_context("fork")
+    with ctx.Pool(1) as workers:
+        got = workers.apply_async(lat.forward, (x,)).get(timeout=60)
+    np.testing.assert_array_equal(got, expected)

@@ -68,6 +68,16 @@ def _pool():
     return _POOL
 
 
+def _forget_pool():
+    """A forked child has none of the parent's threads: it starts a pool of its own when needed."""
+    global _POOL
+    _POOL = None
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_pool)
+
+
 class _RowBlocks:
     """A CSR matrix kept as ``THREADS`` blocks of rows; ``op @ x`` multiplies them in parallel."""
 
