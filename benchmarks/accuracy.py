@@ -99,7 +99,8 @@ def main():
         rep = models["density"].build_report_
         print(f"{kind:8} density build {seconds['density']:.1f} s for {rep['n_tracers']} tracers "
               f"(s = {rep['amplitude']}, L = {rep['length_pc']:.0f} pc, tau = {rep['tau']:.3f}, "
-              f"{rep['boosted_pixels']} pixels with a raised amplitude)"
+              f"{rep['boosted_pixels']} pixels with a raised amplitude"
+              f"{', isotropic prior' if rep.get('isotropic') else ''})"
               + (f"; binned build {seconds['binned']:.1f} s" if "binned" in seconds else ""))
         if args.out:
             _figure(models["density"], field, t, kind, args.out)

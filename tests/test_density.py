@@ -79,6 +79,26 @@ def test_prior_has_the_stated_variance_and_correlation():
     assert r == pytest.approx(lat.phi[k + 1], abs=0.04)
 
 
+def test_isotropic_prior_caps_the_depth_correlation_at_the_sky_width():
+    # with isotropic=True the AR(1) correlation between neighbouring bins is
+    # exp(-spacing / min(L, sqrt(2) x 3 deg x d)): the clipped sky kernel's physical width
+    # (definition of the prior in dustkit.density.lattice); empirical draws must follow it
+    from dustkit.density.lattice import MAX_SKY_WIDTH_DEG
+
+    grid = Grid(16, default_distance_edges(2000.0))
+    pix = active_pixels(grid, np.array([40.0]), np.array([0.0]), 15.0)
+    lat = Lattice(grid, pix, 0.7, 500.0, isotropic=True)
+    cap = np.sqrt(2.0) * np.deg2rad(MAX_SKY_WIDTH_DEG) * lat.centres
+    np.testing.assert_allclose(lat.phi[1:], np.exp(-lat.spacing[1:] / np.minimum(500.0, cap[1:])))
+    k = 8  # about 400 pc: the cap (about 30 pc) is far below L
+    assert cap[k + 1] < 100.0
+    f = lat.forward(np.random.default_rng(4).standard_normal((*lat.shape, 400)))
+    r = np.mean([np.corrcoef(f[k, p], f[k + 1, p])[0, 1] for p in range(0, lat.n_pix, 5)])
+    assert r == pytest.approx(lat.phi[k + 1], abs=0.05)
+    assert r < Lattice(grid, pix, 0.7, 500.0).phi[k + 1] - 0.3   # much weaker than without the cap
+    assert np.mean(f.var(axis=2)) == pytest.approx(0.7**2, rel=0.03)  # every cell still has variance s^2
+
+
 def test_sky_kernel_rows_are_the_stated_gaussian_and_nugget():
     # each row of the sky kernel is exp(-theta^2 / 2 w^2) of the angle to the row's pixel, the
     # pixel itself with weight 1 + PIXEL_NUGGET, normalised to unit norm (definition of the
@@ -527,3 +547,17 @@ def test_a_forked_child_multiplies_kernels_without_the_parents_threads(monkeypat
     with ctx.Pool(1) as workers:
         got = workers.apply_async(lat.forward, (x,)).get(timeout=60)
     np.testing.assert_array_equal(got, expected)
+
+
+def test_the_prior_shape_is_scored_and_kept_through_a_file(fitted, tmp_path):
+    # the isotropic shape is one more candidate of the blocked cross-validation; whichever
+    # wins is reported, saved and used again by a refit (the model's own contract)
+    _, m = fitted
+    cv = m.cv_
+    assert cv["isotropic"].any() and not cv["isotropic"][0]
+    shaped = cv[cv["isotropic"] & ~cv["raised_cells"]][0]
+    plain = cv[(cv["amplitude"] == shaped["amplitude"]) & (cv["length"] == shaped["length"])
+               & ~cv["isotropic"] & ~cv["raised_cells"]][0]
+    assert bool(m.isotropic_) == (shaped["score"] < plain["score"]) == m.build_report_["isotropic"]
+    path = dustkit.save_model(m, tmp_path / "shape.fits")
+    assert dustkit.load_model(path).isotropic_ == m.isotropic_

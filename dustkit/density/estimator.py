@@ -157,6 +157,8 @@ class DensityModel:
         Chosen prior amplitude, correlation length (pc) and unresolved fraction.
     structure_tau_ : float
         Unresolved fraction of the extinction above the layer (clouds' own unresolved parts).
+    isotropic_ : float
+        1.0 where the held-out score chose the isotropic prior (:class:`~.lattice.Lattice`), else 0.0.
     av_, av_err_ : ndarray (npix, n_edges)
         Cumulative A_V at pixel centres (posterior mode) and its predictive 1-sigma error
         (posterior, unresolved and ``tau`` parts together; the prior's where no tracer informs).
@@ -282,10 +284,11 @@ class DensityModel:
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         amps, lens = cands
-        bar = progress(total=(len(amps) + len(lens) + 1) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
+        bar = progress(total=(len(amps) + len(lens) + 2) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
+        shape = {"iso": False}  # the prior's depth correlation capped at its sky width (chosen below)
 
-        def evaluate(amp, length, warm, boost=None, cell_length=None):
-            lat = Lattice(grid, pixels, amp, length, boost, cell_length)
+        def evaluate(amp, length, warm, boost=None, cell_length=None, draws=rng):
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length, shape["iso"])
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             warm = warm if warm is not None and warm.shape == lat.shape else None
             full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
@@ -294,7 +297,7 @@ class DensityModel:
                 test = fold == k
                 if test.any() and not test.all():
                     post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4)
-                    xs = draw_samples(lat, post, 6, rng)
+                    xs = draw_samples(lat, post, 6, draws)
                     base[test], var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
                     resid[test] = av[test] - base[test]
                     pvar[test] = var + var_d
@@ -304,7 +307,7 @@ class DensityModel:
             tau, tau_s, score = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
             spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
             rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
-                         float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None))
+                         float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None, shape["iso"]))
             bar.update(1)
             return rows[-1], full.xi, resid, pvar, base, full.predicted
 
@@ -322,6 +325,11 @@ class DensityModel:
                 cand = evaluate(best[0][0], length, None)
                 if cand[0][4] < best[0][4]:
                     best = cand
+            # the prior's shape, as deep as wide or up to L deep (own draws: the rest is unchanged unless it wins)
+            shape["iso"] = True
+            cand = evaluate(best[0][0], best[0][1], best[1], draws=np.random.default_rng(self.random_state + 1))
+            shape["iso"] = cand[0][4] < best[0][4]
+            best = cand if shape["iso"] else best
             (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted = best
             excess = held_out_excess(av, ae, fitted, resid, pvar, base, tau, d > grid.distance_edges[-1])
 
@@ -329,21 +337,21 @@ class DensityModel:
                 return cell_boost(grid, layer, pixels, l, b, d, excess, weight, a, length)
 
             amp, boost, cell_length, xi0 = compare_background(evaluate, raise_cells, amp, length, xi0)
-            lat = Lattice(grid, pixels, amp, length, boost, cell_length)
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length, shape["iso"])
             terms = tracer_terms(lat, layer.av_pc, col_all, inp.b, inp.d, inp.de, inp.av, inp.ae, inp.weight,
                                  inp.corr, log_shift=inp.shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
-        self.mode_ = post.xi  # white-noise coordinates of the posterior mode (warm starts)
+        self.mode_, self.isotropic_ = post.xi, float(shape["iso"])  # the mode in white-noise coordinates (warm starts)
         # what the cells miss: held-out tracers' excess spread, and the fitted model's own local bias
         fitted_ok = ~terms.censored
         bias2 = local_bias_variance(grid, inp.l, inp.b, inp.d, np.where(fitted_ok, inp.av - post.predicted, 0.0),
                                     inp.weight * fitted_ok, float(np.sqrt(grid.pixel_area.to_value(u.deg**2))), rng)
         self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight) + bias2, tau_s)
         self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
-                                           "raised_cells"))
+                                           "raised_cells", "isotropic"))
         self.cv_["length"].unit = u.pc
         self.cv_["rms"].unit = u.mag
         self.cv_.meta["validation"] = (f"{folds_n} folds of spatial blocks (HEALPix NSIDE 16 cells x 25%-deep "
@@ -355,7 +363,7 @@ class DensityModel:
             "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
-            "threads": _lattice.THREADS,
+            "threads": _lattice.THREADS, "isotropic": bool(shape["iso"]),
         }
         return self
 
@@ -387,7 +395,8 @@ class DensityModel:
         t_start = time.perf_counter()
         grid = self.grid_
         l, b, d, de, av, ae, _, weight, _, corr, shift, layer = _tracer_inputs(tracers, self.random_state)
-        lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_)
+        lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_,
+                      bool(getattr(self, "isotropic_", 0.0)))
         col = np.searchsorted(lat.pixels, grid.pixel(l, b))
         terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
         post = fit_posterior(lat, terms, tau=self.tau_, xi0=self.mode_, max_iter=20)
@@ -782,12 +791,12 @@ def _predict_terms(lat, terms, xs, f_mode):
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
                  "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
-_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_")
+_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_")
 
 
 def _scalar(model, name):
     """A fitted scalar; models loaded from files written before it existed get its neutral value."""
-    default = {"structure_tau_": 0.0}.get(name)
+    default = {"structure_tau_": 0.0, "isotropic_": 0.0}.get(name)
     return float(getattr(model, name, default))
 
 

@@ -151,13 +151,20 @@ class Lattice:
         Prior standard deviation ``s`` of the log-density contrast.
     length : float
         Correlation length ``L`` (pc).
+    isotropic : bool
+        Cap the correlation length along the sight line at the physical width of the
+        (clipped) sky kernel, ``sqrt(2) x MAX_SKY_WIDTH_DEG x d`` at the bin's distance ``d``,
+        so that the prior's structures are no deeper than they are wide. Without the cap
+        (the default) they reach ``L`` in depth where the sky kernel is clipped: a compact
+        cloud is drawn as a finger along the sight line.
     """
 
-    def __init__(self, grid, pixels, amplitude, length, boost=None, pixel_length=None):
+    def __init__(self, grid, pixels, amplitude, length, boost=None, pixel_length=None, isotropic=False):
         self.grid = grid
         self.pixels = np.asarray(pixels, np.int64)
         self.amplitude = float(amplitude)
         self.length = float(length)
+        self.isotropic = bool(isotropic)
         e = grid.distance_edges
         self.centres = 0.5 * (e[:-1] + e[1:])
         self.n_bins = e.size - 1
@@ -166,7 +173,9 @@ class Lattice:
         self.l_centre, self.b_centre = lc, bc
         spacing = np.diff(np.concatenate([[0.0], self.centres]))
         self.spacing = spacing
-        self.phi = np.exp(-spacing / self.length)
+        self.depth_cap = (np.sqrt(2.0) * np.deg2rad(MAX_SKY_WIDTH_DEG) * self.centres if self.isotropic
+                          else np.full(self.n_bins, np.inf))
+        self.phi = np.exp(-spacing / np.minimum(self.length, self.depth_cap))
         self.phi[0] = 0.0
         self.innov = np.sqrt(1.0 - self.phi**2) * self.amplitude
         # per-pixel factor on the amplitude (above 1 where tracers show more structure than the
@@ -178,7 +187,7 @@ class Lattice:
         # correlation length along the sight line per pixel or per cell (compact clouds: shorter than L)
         self.pixel_length = np.broadcast_to(np.full(self.n_pix, self.length) if pixel_length is None
                                             else np.asarray(pixel_length, float), shape)
-        phi_px = np.exp(-spacing[:, None] / self.pixel_length)  # (K, P)
+        phi_px = np.exp(-spacing[:, None] / np.minimum(self.pixel_length, self.depth_cap[:, None]))  # (K, P)
         phi_px[0] = 0.0
         self.phi_px = phi_px
         self.innov_px = np.sqrt(1.0 - phi_px**2) * self.amplitude * self.boost
