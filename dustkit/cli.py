@@ -723,7 +723,9 @@ def _cmd_features(args, out):
     from ._lib.formats import check_target, format_for
     from .io import load_model, write_table
 
-    if args.min_delta_av is not None:
+    # each finder keeps its own default least step unless one is given
+    given_dav = {} if args.min_delta_av is None else {"min_delta_av": args.min_delta_av * u.mag}
+    if given_dav:
         check_real("min_delta_av", args.min_delta_av, 0, 100)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
@@ -741,9 +743,8 @@ def _cmd_features(args, out):
         if args.radius is not None or args.detections:
             raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
                               "the model's own cells")
-        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
-                                   ("min_delta_av", None if args.min_delta_av is None else args.min_delta_av * u.mag))
-                 if v is not None}
+        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability))
+                 if v is not None} | given_dav
         feats = density_features(model, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "
@@ -763,11 +764,10 @@ def _cmd_features(args, out):
             f"({feats.meta['resolution']}) and the tracers' distance errors.")
         out(feats.meta["caution"])
         return 0
-    given = {} if args.min_delta_av is None else {"min_delta_av": args.min_delta_av * u.mag}  # else its own default
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg,
         min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
-        return_detections=True, **given)
+        return_detections=True, **given_dav)
     path = write_table(feats, args.output, overwrite=args.overwrite)
     out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels searched:")
     for r in feats:

@@ -285,10 +285,10 @@ class DensityModel:
         rows, best = [], None
         amps, lens = cands
         bar = progress(total=(len(amps) + len(lens) + 2) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
-        shape = {"iso": False}  # the prior's depth correlation capped at its sky width (chosen below)
+        iso = False  # the prior's depth correlation capped at its sky width (chosen below)
 
         def evaluate(amp, length, warm, boost=None, cell_length=None, draws=rng):
-            lat = Lattice(grid, pixels, amp, length, boost, cell_length, shape["iso"])
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length, iso)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             warm = warm if warm is not None and warm.shape == lat.shape else None
             full = fit_posterior(lat, terms, tau=0.1, xi0=warm)  # the folds' fits start from it
@@ -307,7 +307,7 @@ class DensityModel:
             tau, tau_s, score = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
             spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
             rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
-                         float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None, shape["iso"]))
+                         float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None, iso))
             bar.update(1)
             return rows[-1], full.xi, resid, pvar, base, full.predicted
 
@@ -326,10 +326,10 @@ class DensityModel:
                 if cand[0][4] < best[0][4]:
                     best = cand
             # the prior's shape, as deep as wide or up to L deep (own draws: the rest is unchanged unless it wins)
-            shape["iso"] = True
+            iso = True
             cand = evaluate(best[0][0], best[0][1], best[1], draws=np.random.default_rng(self.random_state + 1))
-            shape["iso"] = cand[0][4] < best[0][4]
-            best = cand if shape["iso"] else best
+            iso = cand[0][4] < best[0][4]
+            best = cand if iso else best
             (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted = best
             excess = held_out_excess(av, ae, fitted, resid, pvar, base, tau, d > grid.distance_edges[-1])
 
@@ -337,14 +337,14 @@ class DensityModel:
                 return cell_boost(grid, layer, pixels, l, b, d, excess, weight, a, length)
 
             amp, boost, cell_length, xi0 = compare_background(evaluate, raise_cells, amp, length, xi0)
-            lat = Lattice(grid, pixels, amp, length, boost, cell_length, shape["iso"])
+            lat = Lattice(grid, pixels, amp, length, boost, cell_length, iso)
             terms = tracer_terms(lat, layer.av_pc, col_all, inp.b, inp.d, inp.de, inp.av, inp.ae, inp.weight,
                                  inp.corr, log_shift=inp.shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat, post, n_samples, rng)
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
-        self.mode_, self.isotropic_ = post.xi, float(shape["iso"])  # the mode in white-noise coordinates (warm starts)
+        self.mode_, self.isotropic_ = post.xi, float(iso)  # the mode in white-noise coordinates (warm starts)
         # what the cells miss: held-out tracers' excess spread, and the fitted model's own local bias
         fitted_ok = ~terms.censored
         bias2 = local_bias_variance(grid, inp.l, inp.b, inp.d, np.where(fitted_ok, inp.av - post.predicted, 0.0),
@@ -363,7 +363,7 @@ class DensityModel:
             "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
-            "threads": _lattice.THREADS, "isotropic": bool(shape["iso"]),
+            "threads": _lattice.THREADS, "isotropic": bool(iso),
         }
         return self
 
