@@ -18,7 +18,7 @@ from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
 from ..layer import DustLayer, fit_layer, layer_av_pc
 from . import lattice as _lattice
-from .lattice import Lattice, active_pixels, chord, unit_vectors
+from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
                       local_bias_variance, unresolved_variance)
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, sample_distance_shift, tracer_terms
@@ -34,6 +34,11 @@ LAYER_BOOTSTRAP = 30
 #: works on; a larger catalogue lends it a random subset of this size and the final fit uses
 #: every tracer (10^5 field stars: the search would take most of the build).
 CV_TRACERS = 20_000
+#: Relative tolerance of conjugate gradients in the search's fold fits and held-out draws
+#: (the final fit: 1e-2) for catalogues of at least SEARCH_LOOSE_FROM tracers: a held-out
+#: variance is itself an estimate from six draws (its own scatter ~60%), and the scores of
+#: 3 000 clusters came out the same at a third of the cost (benchmarks/README.md).
+SEARCH_TOL, SEARCH_LOOSE_FROM = (3e-2, 5e-2), 1000
 
 
 #: Sky separation (deg) within which the density model treats agreeing tracers as one object listed twice.
@@ -286,6 +291,7 @@ class DensityModel:
         amps, lens = cands
         bar = progress(total=(len(amps) + len(lens) + 2) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
         iso = False  # the prior's depth correlation capped at its sky width (chosen below)
+        fit_tol, draw_tol = SEARCH_TOL if n_cv >= SEARCH_LOOSE_FROM else (1e-2, 1e-2)
 
         def evaluate(amp, length, warm, boost=None, cell_length=None, draws=rng):
             lat = Lattice(grid, pixels, amp, length, boost, cell_length, iso)
@@ -296,8 +302,8 @@ class DensityModel:
             for k in range(folds_n):
                 test = fold == k
                 if test.any() and not test.all():
-                    post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4)
-                    xs = draw_samples(lat, post, 6, draws)
+                    post = fit_posterior(lat, terms.subset(~test), tau=0.1, xi0=full.xi, max_iter=4, cg_tol=fit_tol)
+                    xs = draw_samples(lat, post, 6, draws, cg_tol=draw_tol)
                     base[test], var, var_d = _predict_terms(lat, terms.subset(test), xs, post.f)
                     resid[test] = av[test] - base[test]
                     pvar[test] = var + var_d
@@ -417,7 +423,7 @@ class DensityModel:
         npix = grid.npix
         _, bc_all = grid.pixel_centres()
         inc = layer_increments(layer, bc_all, e)                                   # (npix, K)
-        prior_var = _prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
+        prior_var = prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
         # active pixels: their own amplitudes and lengths, cell by cell
         prior_var[lat.pixels] = lat.cumulative_prior_variance(inc[lat.pixels])
         av = np.concatenate([np.zeros((npix, 1)), np.cumsum(inc, axis=1)], axis=1)   # the prior (layer)
@@ -447,7 +453,7 @@ class DensityModel:
         np.add.at(counts, (grid.pixel(np.asarray(tracers.l, float), np.asarray(tracers.b, float)),
                            np.minimum(k, e.size - 2)), 1)
         self.counts_ = counts
-        self.n_tracers_ = _informing(lat, counts, npix)
+        self.n_tracers_ = informing_counts(lat, counts, npix)
 
     # -- answers (the interface of dustkit.answers)
     def check_fitted(self):
@@ -749,33 +755,6 @@ def _layer_variance(layer, grid, informing):
     open_bins = 2.0 / (2.0 + np.maximum(beyond, 0.0))     # half open with two tracers beyond
     past = np.concatenate([np.zeros((3, bc.size, 1)), np.cumsum(open_bins * np.diff(jac, axis=2), axis=2)], axis=2)
     return var, np.maximum(np.einsum("ipn,ij,jpn->pn", past, cov, past), 0.0)
-
-
-def _prior_cumulative_var(inc, corr, amplitude):
-    """Prior variance of cumulative A_V at every edge for layer increments ``inc`` (npix, K)."""
-    m = amplitude**2 * corr  # covariance of the linearised density contrast between bins
-    npix, k = inc.shape
-    out = np.zeros((npix, k + 1))
-    # V_e = sum_{i,j<e} inc_i inc_j m_ij, accumulated edge by edge
-    partial = np.zeros(npix)
-    for j in range(k):
-        lower = inc[:, :j] @ m[:j, j] if j else 0.0
-        partial = partial + 2.0 * inc[:, j] * lower + inc[:, j] ** 2 * m[j, j]
-        out[:, j + 1] = partial
-    return out
-
-
-def _informing(lat, counts, npix):
-    """Kernel-weighted number of tracers in front of each node, for all pixels (npix, n_edges)."""
-    k = counts.shape[1]
-    act = counts[lat.pixels].T.astype(float)  # (K, P)
-    smoothed = np.empty_like(act)
-    for j in range(k):
-        kern = lat.kernels[j]
-        smoothed[j] = (kern @ (kern.T @ act[j]))
-    out = np.zeros((npix, k + 1))
-    out[lat.pixels, 1:] = np.cumsum(smoothed, axis=0).T
-    return out
 
 
 def _predict_terms(lat, terms, xs, f_mode):

@@ -31,7 +31,7 @@ import numpy as np
 from scipy import sparse
 from scipy.spatial import cKDTree
 
-__all__ = ["unit_vectors", "active_pixels", "Lattice", "THREADS"]
+__all__ = ["unit_vectors", "active_pixels", "Lattice", "THREADS", "prior_cumulative_var", "informing_counts"]
 
 
 def _threads_from_environment():
@@ -302,3 +302,30 @@ class Lattice:
         logphi[0] = 0.0
         c = np.cumsum(logphi)
         return np.exp(-np.abs(c[:, None] - c[None, :]))
+
+
+def prior_cumulative_var(inc, corr, amplitude):
+    """Prior variance of cumulative A_V at every edge for layer increments ``inc`` (npix, K)."""
+    m = amplitude**2 * corr  # covariance of the linearised density contrast between bins
+    npix, k = inc.shape
+    out = np.zeros((npix, k + 1))
+    # V_e = sum_{i,j<e} inc_i inc_j m_ij, accumulated edge by edge
+    partial = np.zeros(npix)
+    for j in range(k):
+        lower = inc[:, :j] @ m[:j, j] if j else 0.0
+        partial = partial + 2.0 * inc[:, j] * lower + inc[:, j] ** 2 * m[j, j]
+        out[:, j + 1] = partial
+    return out
+
+
+def informing_counts(lat, counts, npix):
+    """Kernel-weighted number of tracers in front of each node, for all pixels (npix, n_edges)."""
+    k = counts.shape[1]
+    act = counts[lat.pixels].T.astype(float)  # (K, P)
+    smoothed = np.empty_like(act)
+    for j in range(k):
+        kern = lat.kernels[j]
+        smoothed[j] = (kern @ (kern.T @ act[j]))
+    out = np.zeros((npix, k + 1))
+    out[lat.pixels, 1:] = np.cumsum(smoothed, axis=0).T
+    return out
