@@ -7,7 +7,7 @@ does not import tqdm at all (``tqdm.auto`` looks for IPython, which takes second
 
 import sys
 
-__all__ = ["progress"]
+__all__ = ["progress", "extend_total"]
 
 
 class _Silent:
@@ -41,3 +41,10 @@ def progress(iterable=None, total=None, desc=None, quiet=None):
     from tqdm.auto import tqdm
 
     return tqdm(iterable, total=total, desc=desc, leave=False)
+
+
+def extend_total(bar, n):
+    """Add ``n`` steps to a bar's total (work found to be longer than planned); no-op when silent."""
+    if getattr(bar, "total", None) is not None:
+        bar.total += n
+        bar.refresh()

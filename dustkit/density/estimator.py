@@ -11,7 +11,7 @@ import inspect
 from typing import NamedTuple
 
 from .._lib import healpix
-from .._lib.progress import progress
+from .._lib.progress import extend_total, progress
 from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
@@ -34,11 +34,13 @@ LAYER_BOOTSTRAP = 30
 #: works on; a larger catalogue lends it a random subset of this size and the final fit uses
 #: every tracer (10^5 field stars: the search would take most of the build).
 CV_TRACERS = 20_000
-#: Relative tolerance of conjugate gradients in the search's fold fits and held-out draws
-#: (the final fit: 1e-2) for catalogues of at least SEARCH_LOOSE_FROM tracers: a held-out
-#: variance is itself an estimate from six draws (its own scatter ~60%), and the scores of
-#: 3 000 clusters came out the same at a third of the cost (benchmarks/README.md).
-SEARCH_TOL, SEARCH_LOOSE_FROM = (3e-2, 5e-2), 1000
+#: Relative CG tolerances (fold fits, held-out draws, kept draws) for catalogues of
+#: SEARCH_LOOSE[0] to SEARCH_LOOSE[1] tracers (elsewhere 1e-2 each): a held-out variance is itself
+#: a six-draw estimate (scatter ~60%), 32 kept draws estimate one to ~25%, and the choices and
+#: answers for 3 000 clusters came out the same at a quarter less cost. Not beyond: where the
+#: data pin the posterior, its variance is a small difference that CG's residual would swamp
+#: (20 000 field stars chose another prior; benchmarks/README.md).
+SEARCH_TOL, SEARCH_LOOSE = (3e-2, 5e-2, 2e-2), (1000, 5000)
 
 
 #: Sky separation (deg) within which the density model treats agreeing tracers as one object listed twice.
@@ -289,11 +291,15 @@ class DensityModel:
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         amps, lens = cands
-        bar = progress(total=(len(amps) + len(lens) + 2) * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
+        planned = [len(amps) + len(lens) + 2]  # evaluations; the background's lowering may add some
+        bar = progress(total=planned[0] * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
         iso = False  # the prior's depth correlation capped at its sky width (chosen below)
-        fit_tol, draw_tol = SEARCH_TOL if n_cv >= SEARCH_LOOSE_FROM else (1e-2, 1e-2)
+        fit_tol, draw_tol, final_tol = _tolerances(n_cv)
 
         def evaluate(amp, length, warm, boost=None, cell_length=None, draws=rng):
+            if len(rows) >= planned[0]:
+                planned[0] += 1
+                extend_total(bar, folds_n + 1)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length, iso)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
             warm = warm if warm is not None and warm.shape == lat.shape else None
@@ -347,7 +353,7 @@ class DensityModel:
             terms = tracer_terms(lat, layer.av_pc, col_all, inp.b, inp.d, inp.de, inp.av, inp.ae, inp.weight,
                                  inp.corr, log_shift=inp.shift)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
-            xs = draw_samples(lat, post, n_samples, rng)
+            xs = draw_samples(lat, post, n_samples, rng, cg_tol=final_tol)
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.mode_, self.isotropic_ = post.xi, float(iso)  # the mode in white-noise coordinates (warm starts)
@@ -356,12 +362,7 @@ class DensityModel:
         bias2 = local_bias_variance(grid, inp.l, inp.b, inp.d, np.where(fitted_ok, inp.av - post.predicted, 0.0),
                                     inp.weight * fitted_ok, float(np.sqrt(grid.pixel_area.to_value(u.deg**2))), rng)
         self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight) + bias2, tau_s)
-        self.cv_ = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
-                                           "raised_cells", "isotropic"))
-        self.cv_["length"].unit = u.pc
-        self.cv_["rms"].unit = u.mag
-        self.cv_.meta["validation"] = (f"{folds_n} folds of spatial blocks (HEALPix NSIDE 16 cells x 25%-deep "
-                                       "distance shells): neighbouring and duplicated tracers share a fold")
+        self.cv_ = _cv_table(rows, folds_n)
         self.build_report_ = {
             "model": "3-D log-normal density", "n_tracers": n, "n_active_pixels": int(pixels.size),
             "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": inp.floored,
@@ -406,7 +407,8 @@ class DensityModel:
         col = np.searchsorted(lat.pixels, grid.pixel(l, b))
         terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
         post = fit_posterior(lat, terms, tau=self.tau_, xi0=self.mode_, max_iter=20)
-        xs = draw_samples(lat, post, self.samples_.shape[2], np.random.default_rng(self.random_state))
+        xs = draw_samples(lat, post, self.samples_.shape[2], np.random.default_rng(self.random_state),
+                          cg_tol=_tolerances(min(l.size, CV_TRACERS))[2])
         old = np.asarray(self.tracers_.av, float)
         ratio = np.median(av[old > 0] / old[old > 0]) if np.any(old > 0) else 1.0
         unresolved = self.unresolved_ * ratio**2
@@ -687,6 +689,22 @@ class _TracerInputs(NamedTuple):
     corr: np.ndarray        # correlation of the A_V and ln-distance errors
     shift: np.ndarray       # ln-distance shift to where each tracer most likely lies
     layer: DustLayer        # fitted at the shifted distances
+
+
+def _cv_table(rows, folds_n):
+    """The held-out score of every candidate the search evaluated, as a Table."""
+    t = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
+                                "raised_cells", "isotropic"))
+    t["length"].unit = u.pc
+    t["rms"].unit = u.mag
+    t.meta["validation"] = (f"{folds_n} folds of spatial blocks (HEALPix NSIDE 16 cells x 25%-deep "
+                            "distance shells): neighbouring and duplicated tracers share a fold")
+    return t
+
+
+def _tolerances(n_cv):
+    """CG tolerances (fold fits, held-out draws, kept draws) for a search over ``n_cv`` tracers."""
+    return SEARCH_TOL if SEARCH_LOOSE[0] <= n_cv < SEARCH_LOOSE[1] else (1e-2, 1e-2, 1e-2)
 
 
 def _cv_subset(n, random_state):

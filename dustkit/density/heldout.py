@@ -161,21 +161,26 @@ def held_out_excess(av, ae, fitted, resid, pvar, base, tau, censored):
 
 
 def compare_background(evaluate, raise_cells, amp, length, xi0):
-    """The background amplitude once the raised cells carry the clouds: ``amp`` or a third of it.
+    """The background amplitude once the raised cells carry the clouds: ``amp`` or a third of it, again while it wins.
 
     The search before this had to explain clouds by the amplitude everywhere; with the
     raised cells (``raise_cells(amplitude)`` -> per-cell boost and length) holding the
-    clouds' extra variance, the rest of the sky may need less freedom. Both candidates get
-    the same extra variance in the raised cells (the same held-out misses), so neither
-    gains from them; the held-out score decides. Returns (amplitude, boost, cell_length, xi0).
+    clouds' extra variance, the rest of the sky may need less freedom. Each pair of
+    candidates gets the same extra variance in the raised cells (the same held-out misses),
+    so neither gains from them; the held-out score decides. A third wins -> a third of that
+    is tried, down to :data:`LOWEST_AMPLITUDE` (where the truth between the clouds is nearly
+    the layer, a floor of the search would keep the errors too wide there). Returns
+    (amplitude, boost, cell_length, xi0).
     """
     boost, cell_length = raise_cells(amp)
-    lower = amp / 3.0
-    if lower < LOWEST_AMPLITUDE:
-        return amp, boost, cell_length, xi0
-    hi = evaluate(amp, length, xi0, boost, cell_length)
-    b_lo, cl_lo = raise_cells(lower)
-    lo = evaluate(lower, length, xi0 * 3.0, b_lo, cl_lo)
-    if lo[0][4] < hi[0][4]:
-        return lower, b_lo, cl_lo, lo[1][:, :xi0.shape[1]]
+    hi = None
+    while amp / 3.0 >= LOWEST_AMPLITUDE:
+        if hi is None:
+            hi = evaluate(amp, length, xi0, boost, cell_length)
+        lower = amp / 3.0
+        b_lo, cl_lo = raise_cells(lower)
+        lo = evaluate(lower, length, xi0 * 3.0, b_lo, cl_lo)
+        if lo[0][4] >= hi[0][4]:
+            break
+        amp, boost, cell_length, xi0, hi = lower, b_lo, cl_lo, lo[1][:, :xi0.shape[1]], lo
     return amp, boost, cell_length, xi0
