@@ -316,12 +316,12 @@ class DensityModel:
                 bar.update(1)
             ok = ~terms.censored
             struct = np.maximum(base - layer_at, 0.0)
-            tau, tau_s, score = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
+            tau, tau_s, score, per = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
             spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
             rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
                          float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None, iso))
             bar.update(1)
-            return rows[-1], full.xi, resid, pvar, base, full.predicted
+            return rows[-1], full.xi, resid, pvar, base, full.predicted, per
 
         with bar:
             # coordinate search: the amplitudes at the longest length, then the other lengths at
@@ -342,7 +342,7 @@ class DensityModel:
             cand = evaluate(best[0][0], best[0][1], best[1], draws=np.random.default_rng(self.random_state + 1))
             iso = cand[0][4] < best[0][4]
             best = cand if iso else best
-            (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted = best
+            (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted, _ = best
             excess = held_out_excess(av, ae, fitted, resid, pvar, base, tau, d > grid.distance_edges[-1])
 
             def raise_cells(a):  # where they miss, more freedom in the cells in front of them

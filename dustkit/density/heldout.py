@@ -16,11 +16,13 @@ from scipy.spatial import cKDTree
 from .lattice import chord, unit_vectors
 from .solver import NU
 
-__all__ = ["LOWEST_AMPLITUDE", "layer_increments", "fit_unresolved_fractions", "held_out_excess", "cell_boost",
+__all__ = ["LOWEST_AMPLITUDE", "CLEAR_GAIN", "layer_increments", "fit_unresolved_fractions", "held_out_excess", "cell_boost",
            "unresolved_variance", "compare_background"]
 
 #: Smallest background amplitude the second comparison (with raised cells) may choose.
 LOWEST_AMPLITUDE = 0.01
+#: Paired standard errors by which each further third of the background amplitude must win.
+CLEAR_GAIN = 2.0
 
 
 def layer_increments(layer, b_deg, edges):
@@ -30,21 +32,25 @@ def layer_increments(layer, b_deg, edges):
 
 
 def fit_unresolved_fractions(resid, pvar, err, base, struct):
-    """Unresolved fractions by maximum Student-t likelihood of held-out residuals; returns (tau, tau_s, score).
+    """Unresolved fractions by maximum Student-t likelihood of held-out residuals.
 
-    ``tau`` is the fraction of all extinction the cells cannot resolve, ``tau_s`` the
-    fraction of the extinction the model attributes to structure beyond the layer
-    (``struct``): clouds and clumps carry more unresolved structure of their own (their
-    edges and cores inside a cell) than the smooth dust around them.
+    Returns (tau, tau_s, score, per_tracer): ``tau`` is the fraction of all extinction the
+    cells cannot resolve, ``tau_s`` the fraction of the extinction the model attributes to
+    structure beyond the layer (``struct``): clouds and clumps carry more unresolved
+    structure of their own (their edges and cores inside a cell) than the smooth dust
+    around them. ``score`` is the mean of ``per_tracer``, each held-out tracer's negative
+    log-likelihood at the fitted fractions.
     """
-    def nll(p):
+    def terms(p):
         v = pvar + err**2 + (p[0] * base) ** 2 + (p[1] * struct) ** 2
-        z2 = resid**2 / v
-        return float(np.mean(0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(z2 / NU)))
+        return 0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(resid**2 / v / NU)
+
+    def nll(p):
+        return float(np.mean(terms(p)))
 
     best = min(((t, ts) for t in (0.0, 0.03, 0.1) for ts in (0.0, 0.1, 0.3)), key=nll)
     res = optimize.minimize(nll, best, method="L-BFGS-B", bounds=[(0.0, 1.0), (0.0, 2.0)])
-    return float(res.x[0]), float(res.x[1]), float(res.fun)
+    return float(res.x[0]), float(res.x[1]), float(res.fun), terms(res.x)
 
 
 def cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, max_amplitude=2.0, shortest=60.0):
@@ -167,20 +173,26 @@ def compare_background(evaluate, raise_cells, amp, length, xi0):
     raised cells (``raise_cells(amplitude)`` -> per-cell boost and length) holding the
     clouds' extra variance, the rest of the sky may need less freedom. Each pair of
     candidates gets the same extra variance in the raised cells (the same held-out misses),
-    so neither gains from them; the held-out score decides. A third wins -> a third of that
-    is tried, down to :data:`LOWEST_AMPLITUDE` (where the truth between the clouds is nearly
-    the layer, a floor of the search would keep the errors too wide there). Returns
+    so neither gains from them; the held-out score decides. A third that wins is compared
+    with a third of itself, down to :data:`LOWEST_AMPLITUDE` (where the truth between the
+    clouds is nearly the layer, a floor would keep the errors too wide there). Each step
+    after the first must win clearly: by :data:`CLEAR_GAIN` standard errors of the held-out
+    tracers' paired score differences. So far below the search's choice the score hardly
+    tells the candidates apart, and a coin toss that narrows the errors is worse than one
+    that leaves them wide. ``evaluate`` returns the per-tracer scores last. Returns
     (amplitude, boost, cell_length, xi0).
     """
     boost, cell_length = raise_cells(amp)
-    hi = None
+    hi, steps = None, 0
     while amp / 3.0 >= LOWEST_AMPLITUDE:
         if hi is None:
             hi = evaluate(amp, length, xi0, boost, cell_length)
         lower = amp / 3.0
         b_lo, cl_lo = raise_cells(lower)
         lo = evaluate(lower, length, xi0 * 3.0, b_lo, cl_lo)
-        if lo[0][4] >= hi[0][4]:
+        gain = hi[-1] - lo[-1]
+        need = 0.0 if steps == 0 else CLEAR_GAIN * np.std(gain) / np.sqrt(max(gain.size, 1))
+        if not np.mean(gain) > need:
             break
-        amp, boost, cell_length, xi0, hi = lower, b_lo, cl_lo, lo[1][:, :xi0.shape[1]], lo
+        amp, boost, cell_length, xi0, hi, steps = lower, b_lo, cl_lo, lo[1][:, :xi0.shape[1]], lo, steps + 1
     return amp, boost, cell_length, xi0
