@@ -16,8 +16,8 @@ from scipy.spatial import cKDTree
 from .lattice import chord, unit_vectors
 from .solver import NU
 
-__all__ = ["LOWEST_AMPLITUDE", "CLEAR_GAIN", "layer_increments", "fit_unresolved_fractions", "held_out_excess", "cell_boost",
-           "unresolved_variance", "compare_background"]
+__all__ = ["LOWEST_AMPLITUDE", "CLEAR_GAIN", "layer_increments", "fit_unresolved_fractions", "held_out_excess",
+           "cell_boost", "unresolved_variance", "compare_background"]
 
 #: Smallest background amplitude the second comparison (with raised cells) may choose.
 LOWEST_AMPLITUDE = 0.01
