@@ -21,7 +21,7 @@ from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
                       local_bias_variance, unresolved_variance)
-from .solver import cumulative_at_nodes, draw_samples, fit_posterior, sample_distance_shift, tracer_terms
+from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
            "density_from_state"]
@@ -316,12 +316,12 @@ class DensityModel:
                 bar.update(1)
             ok = ~terms.censored
             struct = np.maximum(base - layer_at, 0.0)
-            tau, tau_s, score, per = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
+            tau, tau_s, score, _ = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
             spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
             rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
                          float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None, iso))
             bar.update(1)
-            return rows[-1], full.xi, resid, pvar, base, full.predicted, per
+            return rows[-1], full.xi, resid, pvar, base, full.predicted, lambda: log_evidence(lat, terms, 0.1, full)
 
         with bar:
             # coordinate search: the amplitudes at the longest length, then the other lengths at
