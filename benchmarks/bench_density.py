@@ -51,10 +51,7 @@ def main():
     if args.field:
         _field(args.field)
     for kind in filter(None, args.galaxies.split(",")):
-        _, _, t, _ = make_galaxy(kind, seed=1)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            tracers = dustkit.read_tracers(t[["name", "l", "b", "distance", "distance_err", "ebv", "ebv_err"]])
+        _, t, _, tracers = _galaxy(kind)
         t0 = time.perf_counter()
         model = DensityModel(quiet=True).fit(tracers)
         print(f"build, galaxy '{kind}' ({len(tracers)} clusters): {time.perf_counter() - t0:.1f} s "
@@ -88,11 +85,17 @@ def main():
     print(f"{f'{m} answers (vs the layer alone)':44} {ans:9.2f} {floor:13.2f} {ans / floor:7.1f} {_peak_gib():11.2f}")
 
 
-def _field(n):
-    fld, _, t, (l, b, d) = make_galaxy("field", seed=1, scale=n / 20000)
+def _galaxy(kind, scale=None):
+    """A galaxy of ``galaxies.py`` (seed 1): field, catalogue Table, held-out (l, b, d), and its tracers read."""
+    fld, _, t, held_out = make_galaxy(kind, seed=1, scale=scale)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         tracers = dustkit.read_tracers(t[["name", "l", "b", "distance", "distance_err", "ebv", "ebv_err"]])
+    return fld, t, held_out, tracers
+
+
+def _field(n):
+    fld, t, (l, b, d), tracers = _galaxy("field", scale=n / 20000)
     t0 = time.perf_counter()
     model = DensityModel().fit(tracers)  # progress shown
     build = time.perf_counter() - t0

@@ -291,14 +291,13 @@ class DensityModel:
         rng = np.random.default_rng(self.random_state)
         rows, best = [], None
         amps, lens = cands
-        planned = [len(amps) + len(lens) + 2]  # evaluations; the background's lowering may add some
-        bar = progress(total=planned[0] * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
+        planned = len(amps) + len(lens) + 2  # evaluations; the background's lowering may add some
+        bar = progress(total=planned * (folds_n + 1) + 1, desc="density model", quiet=self.quiet)
         iso = False  # the prior's depth correlation capped at its sky width (chosen below)
         fit_tol, draw_tol, final_tol = _tolerances(n_cv)
 
         def evaluate(amp, length, warm, boost=None, cell_length=None, draws=rng):
-            if len(rows) >= planned[0]:
-                planned[0] += 1
+            if len(rows) >= planned:  # one more than planned
                 extend_total(bar, folds_n + 1)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length, iso)
             terms = tracer_terms(lat, layer.av_pc, col, b, d, de, av, ae, weight, corr, log_shift=shift)
@@ -316,7 +315,7 @@ class DensityModel:
                 bar.update(1)
             ok = ~terms.censored
             struct = np.maximum(base - layer_at, 0.0)
-            tau, tau_s, score, _ = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
+            tau, tau_s, score = fit_unresolved_fractions(resid[ok], pvar[ok], ae[ok], base[ok], struct[ok])
             spread = np.sqrt(pvar[ok] + ae[ok] ** 2 + (tau * base[ok]) ** 2 + (tau_s * struct[ok]) ** 2)
             rows.append((amp, length, tau, tau_s, score, float(np.sqrt(np.mean(resid[ok] ** 2))),
                          float(np.mean(np.abs(resid[ok]) <= spread)), boost is not None, iso))

@@ -33,26 +33,21 @@ def layer_increments(layer, b_deg, edges):
 
 
 def fit_unresolved_fractions(resid, pvar, err, base, struct):
-    """Unresolved fractions by maximum Student-t likelihood of held-out residuals.
+    """Unresolved fractions by maximum Student-t likelihood of held-out residuals; returns (tau, tau_s, score).
 
-    Returns (tau, tau_s, score, per_tracer): ``tau`` is the fraction of all extinction the
-    cells cannot resolve, ``tau_s`` the fraction of the extinction the model attributes to
-    structure beyond the layer (``struct``): clouds and clumps carry more unresolved
-    structure of their own (their edges and cores inside a cell) than the smooth dust
-    around them. ``score`` is the mean of ``per_tracer``, each held-out tracer's negative
-    log-likelihood at the fitted fractions (their paired differences say how clearly one
-    candidate beats another).
+    ``tau`` is the fraction of all extinction the cells cannot resolve, ``tau_s`` the
+    fraction of the extinction the model attributes to structure beyond the layer
+    (``struct``): clouds and clumps carry more unresolved structure of their own (their
+    edges and cores inside a cell) than the smooth dust around them.
     """
-    def terms(p):
-        v = pvar + err**2 + (p[0] * base) ** 2 + (p[1] * struct) ** 2
-        return 0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(resid**2 / v / NU)
-
     def nll(p):
-        return float(np.mean(terms(p)))
+        v = pvar + err**2 + (p[0] * base) ** 2 + (p[1] * struct) ** 2
+        z2 = resid**2 / v
+        return float(np.mean(0.5 * np.log(v) + 0.5 * (NU + 1.0) * np.log1p(z2 / NU)))
 
     best = min(((t, ts) for t in (0.0, 0.03, 0.1) for ts in (0.0, 0.1, 0.3)), key=nll)
     res = optimize.minimize(nll, best, method="L-BFGS-B", bounds=[(0.0, 1.0), (0.0, 2.0)])
-    return float(res.x[0]), float(res.x[1]), float(res.fun), terms(res.x)
+    return float(res.x[0]), float(res.x[1]), float(res.fun)
 
 
 def cell_boost(grid, layer, pixels, l, b, d, excess, weight, amplitude, length, max_amplitude=2.0, shortest=60.0):
