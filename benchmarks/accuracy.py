@@ -22,7 +22,6 @@ import argparse
 import os
 import sys
 import time
-import warnings
 
 import numpy as np
 from astropy import units as u
@@ -31,16 +30,11 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import dustkit  # noqa: E402
 from dustkit.density import DensityModel  # noqa: E402
-from galaxies import GALAXIES, baseline_predict, make_galaxy, score, strata  # noqa: E402
-
-COLUMNS = ("name", "l", "b", "distance", "distance_err", "ebv", "ebv_err")
-
+from galaxies import GALAXIES, baseline_predict, make_galaxy, read_catalogue, score, strata  # noqa: E402
 
 def run(kind, seed, binned=False):
     field, clouds, t, (l, b, d) = make_galaxy(kind, seed=seed)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        tracers = dustkit.read_tracers(t[list(COLUMNS)])
+    tracers = read_catalogue(t)
     truth = field.av(l, b, d)
     models = {}
     t0 = time.perf_counter()

@@ -34,7 +34,7 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 import dustkit  # noqa: E402
 from dustkit.density import DensityModel  # noqa: E402
 from dustkit.simulate import DustField, random_clouds, simulate_tracers  # noqa: E402
-from galaxies import baseline_predict, make_galaxy, score  # noqa: E402
+from galaxies import baseline_predict, make_galaxy, read_catalogue, score  # noqa: E402
 
 
 def _peak_gib():
@@ -88,10 +88,7 @@ def main():
 def _galaxy(kind, scale=None):
     """A galaxy of ``galaxies.py`` (seed 1): field, catalogue Table, held-out (l, b, d), and its tracers read."""
     fld, _, t, held_out = make_galaxy(kind, seed=1, scale=scale)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        tracers = dustkit.read_tracers(t[["name", "l", "b", "distance", "distance_err", "ebv", "ebv_err"]])
-    return fld, t, held_out, tracers
+    return fld, t, held_out, read_catalogue(t)
 
 
 def _field(n):

@@ -39,20 +39,15 @@ import argparse
 import os
 import sys
 import time
-import warnings
 
 import numpy as np
 from astropy import units as u
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
-import dustkit  # noqa: E402
 from dustkit.density import DensityModel  # noqa: E402
 from dustkit.features import KIND_NEARER, density_features, detect_features  # noqa: E402
-from galaxies import _sep, make_galaxy  # noqa: E402
-
-COLUMNS = ("name", "l", "b", "distance", "distance_err", "ebv", "ebv_err")
-
+from galaxies import _sep, make_galaxy, read_catalogue  # noqa: E402
 
 def testable(clouds, tracers, within=2.0):
     """Clouds with at least 5 tracers (true distance) in front and 5 behind within ``within`` times their radius."""
@@ -120,9 +115,7 @@ def real_excess(field, feats, unmatched):
 
 def run(kind, seed, baseline=True, scale=None):
     field, clouds, t, _ = make_galaxy(kind, seed=seed, scale=scale)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        tracers = dustkit.read_tracers(t[list(COLUMNS)])
+    tracers = read_catalogue(t)
     t0 = time.perf_counter()
     model = DensityModel(quiet=True).fit(tracers)
     t_fit = time.perf_counter() - t0

@@ -10,9 +10,11 @@ from scipy.spatial import cKDTree
 
 from dustkit.simulate import ClumpyField, DustField, random_clouds, simulate_tracers
 
-__all__ = ["GALAXIES", "make_galaxy", "baseline_predict", "score", "strata"]
+__all__ = ["GALAXIES", "COLUMNS", "make_galaxy", "read_catalogue", "baseline_predict", "score", "strata"]
 
 RV = 3.1
+#: The catalogue columns a user would have (the simulated truth columns left out).
+COLUMNS = ("name", "l", "b", "distance", "distance_err", "ebv", "ebv_err")
 
 
 def _noisy(field, n, rng, *, distance_max, scale_height=80.0, near=False, frac_err=(0.06, 0.10),
@@ -95,6 +97,17 @@ def make_galaxy(kind, seed=0, small=False, scale=None):
 
 
 GALAXIES = ("smooth", "near", "clumpy", "sparse", "tiny", "field")
+
+
+def read_catalogue(t):
+    """A galaxy's catalogue read as a user would read it (``COLUMNS`` only; the reading notes silenced)."""
+    import warnings
+
+    import dustkit
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return dustkit.read_tracers(t[list(COLUMNS)])
 
 
 def _sep(l1, b1, l2, b2):
