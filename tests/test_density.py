@@ -602,7 +602,7 @@ def test_background_amplitude_falls_further_only_on_strong_evidence():
 
 def test_laplace_evidence_prefers_the_amplitude_that_made_the_data():
     """The log-evidence of tracers drawn from the prior itself peaks near the prior's own amplitude (MacKay 1992)."""
-    from dustkit.density.solver import fit_posterior, log_evidence, tracer_terms
+    from dustkit.density.solver import cumulative_at_nodes, fit_posterior, log_evidence, tracer_terms
     from dustkit.layer import layer_av_pc
 
     grid = Grid(16, default_distance_edges(2000.0), "ring")
@@ -619,7 +619,6 @@ def test_laplace_evidence_prefers_the_amplitude_that_made_the_data():
     truth = Lattice(grid, pixels, 0.5, 300.0)
     xi_true = rng.standard_normal(truth.shape)
     terms = tracer_terms(truth, layer, col, b, d, 0.01 * d, np.zeros(n), np.full(n, 0.03))
-    from dustkit.density.solver import cumulative_at_nodes
     av = cumulative_at_nodes(terms, np.exp(truth.forward(xi_true))) @ terms.weights
     av = av + rng.normal(0, 0.03, n)
     scores = {}
