@@ -259,6 +259,7 @@ def _state_hdu(model, state):
     st_cols = [fits.Column(name=k.upper(), format="D", array=np.array([float(values[k])])) for k in _STATE_FLOATS]
     st_cols += [fits.Column(name=f"SCATTER_{k.upper()}", format="D", array=np.array([float(x)])) for k, x in sc.items()]
     st_cols.append(fits.Column(name="LAYER_COV", format="9D", array=np.asarray(lay["covariance"], float).reshape(1, 9)))
+    st_cols.append(fits.Column(name="LAYER_PULL", format="3D", array=np.asarray(lay["pull"], float).reshape(1, 3)))
     st_cols.append(fits.Column(name="LAYER_NUSED", format="K", array=np.array([int(lay["n_used"])])))
     st = fits.BinTableHDU.from_columns(st_cols, name="STATE")
     sh = st.header
@@ -535,6 +536,7 @@ def _model_from_parts(path, parts):
         a0=v["a0"], h=v["h"], z_sun=v["z_sun"], a0_err=v["a0_err"], h_err=v["h_err"], z_sun_err=v["z_sun_err"],
         scatter=v["layer_scatter"], n_used=int(stt["LAYER_NUSED"][0]),
         covariance=np.asarray(stt["LAYER_COV"][0], float).reshape(3, 3),
+        pull=np.asarray(stt["LAYER_PULL"][0], float) if "LAYER_PULL" in stt.columns.names else np.zeros(3),
     )
     scatter = {name[len("SCATTER_"):].lower(): float(stt[name][0])
                for name in stt.columns.names if name.startswith("SCATTER_")}

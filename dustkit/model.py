@@ -476,8 +476,7 @@ def model_state(model):
     return {
         "params": params,
         "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
-        "layer": {**model.layer_.as_dict(), "scatter": model.layer_.scatter, "n_used": model.layer_.n_used,
-                  "covariance": np.asarray(model.layer_.covariance, float)},
+        "layer": model.layer_.state(),
         "scatter": dict(model.scatter_),
         "scalars": {k: getattr(model, k) for k in _STATE_SCALARS},
         "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
@@ -497,12 +496,7 @@ def model_from_state(state):
     m.distance_edges = np.asarray(g["distance_edges"], float) * u.pc
     m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
     lay = state["layer"]
-    m.layer_ = DustLayer(
-        a0=float(lay["a0"]), h=float(lay["h"]), z_sun=float(lay["z_sun"]),
-        a0_err=float(lay["a0_err"]), h_err=float(lay["h_err"]), z_sun_err=float(lay["z_sun_err"]),
-        scatter=float(lay.get("scatter", 0.0)), n_used=int(lay.get("n_used", 0)),
-        covariance=np.asarray(lay.get("covariance", np.zeros((3, 3))), float),
-    )
+    m.layer_ = DustLayer.from_state(lay)
     m.scatter_ = {k: float(v) for k, v in state["scatter"].items()}
     for k, v in state["scalars"].items():
         setattr(m, k, v)

@@ -657,7 +657,8 @@ class DensityModel:
             lay = self.layer_
             m.layer_ = DustLayer(a0=lay.a0 * ratio, h=lay.h, z_sun=lay.z_sun, a0_err=lay.a0_err * ratio,
                                  h_err=lay.h_err, z_sun_err=lay.z_sun_err, scatter=lay.scatter * ratio,
-                                 n_used=lay.n_used, covariance=_scaled_cov(lay.covariance, ratio))
+                                 n_used=lay.n_used, covariance=_scaled_cov(lay.covariance, ratio),
+                                 pull=np.asarray(lay.pull, float) * [ratio, 1.0, 1.0])
             m.tracers_ = new_tracers
             m.how_ = f"rescaled exactly by R_V'/R_V = {ratio:.4f}"
             return m
@@ -808,8 +809,7 @@ def density_state(model):
         "kind": "density",
         "params": params,
         "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
-        "layer": {**model.layer_.as_dict(), "scatter": model.layer_.scatter, "n_used": model.layer_.n_used,
-                  "covariance": np.asarray(model.layer_.covariance, float)},
+        "layer": model.layer_.state(),
         "scalars": {k: _scalar(model, k) for k in _STATE_SCALARS},
         "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
         "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
@@ -828,11 +828,7 @@ def density_from_state(state):
     g = state["grid"]
     m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
     lay = state["layer"]
-    m.layer_ = DustLayer(
-        a0=float(lay["a0"]), h=float(lay["h"]), z_sun=float(lay["z_sun"]),
-        a0_err=float(lay["a0_err"]), h_err=float(lay["h_err"]), z_sun_err=float(lay["z_sun_err"]),
-        scatter=float(lay.get("scatter", 0.0)), n_used=int(lay.get("n_used", 0)),
-        covariance=np.asarray(lay.get("covariance", np.zeros((3, 3))), float))
+    m.layer_ = DustLayer.from_state(lay)
     for k, v in state["scalars"].items():
         setattr(m, k, float(v))
     for k, v in state["arrays"].items():
