@@ -450,7 +450,8 @@ def _layer_lines(layer):
         f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        (scale height)",
         f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        (height of the Sun above the mid-plane)",
         f"  scatter of tracers around it: {layer.scatter:.3f} mag (from {layer.n_used} tracers)",
-    ]
+    ] + ([f"  the errors include the pull of dust above the layer (clouds): a0 {abs(pull[0]):.3f} mag/kpc, "
+          f"h {abs(pull[1]):.1f} pc, z_sun {abs(pull[2]):.1f} pc"] if any(pull := [float(x) for x in layer.pull]) else [])
 
 
 def _quiet_flag(args):

@@ -203,6 +203,11 @@ def test_layer_text(files, call):
     rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc")
     assert rc == 0, err
     assert "a0" in out and "mag/kpc" in out and "h " in out and "z_sun" in out and "pc" in out
+    # the demo field has clouds: the user is told how much of the error is their pull
+    pull = fit_layer(_api_tracers(files)).pull
+    assert ("pull of dust above the layer" in out) == bool(any(pull))
+    if any(pull):
+        assert f"a0 {abs(pull[0]):.3f} mag/kpc" in out
 
 
 def test_export_table_and_maps(built, tmp_path, call):

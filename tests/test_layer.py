@@ -120,7 +120,7 @@ def test_layer_errors_through_clouds_cover_the_clouds_pull():
     # actual error (common practice for checking error bars by Monte Carlo: for honest
     # Gaussian errors the median |error / sigma| is 0.674); the block bootstrap alone
     # gave a median of 2.3 in a0 here, as every draw's fit is pulled the same way; with
-    # the pull 1.1 (measured): still too small by about 1.6x, so the bound only stops a
+    # the pull 1.07 (measured): still too small by about 1.6x, so the bound only stops a
     # return to the old errors
     from dustkit.simulate import random_clouds
 
