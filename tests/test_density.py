@@ -261,6 +261,7 @@ def test_saved_model_answers_bit_for_bit(fitted, tmp_path):
     np.testing.assert_array_equal(m.draw(l, b, d, 20), back.draw(l, b, d, 20))
     q1, q2 = m.query(l * u.deg, b * u.deg, d * u.pc), back.query(l * u.deg, b * u.deg, d * u.pc)
     np.testing.assert_array_equal(q1["support"], q2["support"])
+    assert back.layer_.as_dict() == m.layer_.as_dict() and np.array_equal(back.layer_.pull, m.layer_.pull)
     # the sky part follows the HEALPix FITS convention (Gorski et al. 2005)
     from astropy.io import fits
     with fits.open(path) as h:

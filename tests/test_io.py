@@ -100,6 +100,8 @@ def test_loaded_model_answers_bit_for_bit(model, saved):
     for attr in ("av_", "av_err_", "_resid_", "_post_var_", "n_tracers_", "counts_", "differential_"):
         assert np.array_equal(getattr(model, attr), getattr(m2, attr)), attr
     assert m2.layer_.as_dict() == model.layer_.as_dict()
+    assert np.array_equal(m2.layer_.pull, model.layer_.pull) and np.array_equal(m2.layer_.covariance,
+                                                                                 model.layer_.covariance)
     assert m2.scatter_ == model.scatter_
     assert (m2.law, m2.rv, m2.walk_variance_, m2.sky_passes_) == (model.law, model.rv, model.walk_variance_,
                                                                    model.sky_passes_)
