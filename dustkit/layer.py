@@ -334,9 +334,10 @@ def _cloud_pull(b, d, de, av, ae, p, f_scale, scatter, cut=2.0, n_iter=4):
     ``cut`` times their own errors (A_V, and distance through the layer's slope; not the
     intrinsic scatter, which the clouds inflate) above it set aside, repeatedly from the
     refit, the layer comes out lower by about the pull; the shift is taken as the size of
-    that systematic error, and the fit itself is kept. With no clouds the cut trims the upper tail of the noise alone and the shift
-    is about a tenth of a tracer's relative error (measured: 0.8-1.2% in a0 against a 0.5%
-    bootstrap error for 2 500 tracers with 7-10% errors): conservative there.
+    that systematic error, and the fit itself is kept. With no clouds the cut trims the
+    upper tail of the noise alone and the shift is about a tenth of a tracer's relative
+    error (measured: 0.8-1.2% in a0 against a 0.5% bootstrap error for 2 500 tracers with
+    7-10% errors): conservative there.
     """
     q = np.asarray(p, float).copy()
     mu = np.sin(np.deg2rad(b))
