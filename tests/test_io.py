@@ -110,6 +110,20 @@ def test_loaded_model_answers_bit_for_bit(model, saved):
         assert np.array_equal(model.cv_[c], m2.cv_[c])
 
 
+def test_model_file_from_before_the_layer_pull_still_loads(model, saved, tmp_path):
+    # a file written before the layer carried its pull (no LAYER_PULL column): it loads, its
+    # answers are the same and its layer reports the stored errors with a zero pull
+    old = tmp_path / "old.fits"
+    with fits.open(saved) as h:
+        st = h["STATE"]
+        cols = [c for c in st.columns if c.name != "LAYER_PULL"]
+        new_st = fits.BinTableHDU.from_columns(cols, header=st.header, name="STATE")
+        fits.HDUList([hdu if hdu.name != "STATE" else new_st for hdu in h]).writeto(old, checksum=True)
+    m2 = io.load_model(old)
+    _assert_same_answers(model, m2)
+    assert m2.layer_.as_dict() == model.layer_.as_dict() and np.array_equal(m2.layer_.pull, np.zeros(3))
+
+
 def test_loaded_model_keeps_its_tracers_and_catalogue_record(model, saved):
     t1, t2 = model.tracers_, io.load_model(saved).tracers_
     for attr in ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "name", "row"):
