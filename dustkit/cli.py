@@ -655,11 +655,11 @@ def _cmd_estimate(args, out):
 
 
 def _cmd_layer(args, out):
-    from .layer import fit_layer
+    from .layer import BOOTSTRAP_RESAMPLES, fit_layer
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
-    layer = fit_layer(tracers)
+    layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES)  # errors: sky-block bootstrap plus the clouds' pull
     if args.json:
         d = layer.as_dict()
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
@@ -882,7 +882,7 @@ def _cmd_demo(args, out):
     from astropy import units as u
 
     from .io import export_table, save_model, write_slice_maps, write_table
-    from .layer import fit_layer
+    from .layer import BOOTSTRAP_RESAMPLES, fit_layer
     from .model import CAUTION, build_model
     from .tracers import read_tracers
 
@@ -907,7 +907,7 @@ def _cmd_demo(args, out):
     out("")
 
     out("2. Fitting the smooth dust layer")
-    layer = fit_layer(tracers)
+    layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES)
     out(*("   " + s for s in _layer_lines(layer)))
     truth = field["layer"]
     out(f"   (the invented truth: a0 = {truth['a0']} mag/kpc, h = {truth['h']} pc, z_sun = {truth['z_sun']} pc;",

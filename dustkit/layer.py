@@ -15,7 +15,13 @@ from .exceptions import CatalogError
 from ._lib.validation import check_real, to_value
 from .tracers.rules import floor_errors
 
-__all__ = ["DustLayer", "layer_av", "fit_layer", "sky_blocks", "layer_av_pc", "layer_av_mu", "layer_slope_pc"]
+__all__ = ["DustLayer", "layer_av", "fit_layer", "sky_blocks", "layer_av_pc", "layer_av_mu", "layer_slope_pc",
+           "BOOTSTRAP_RESAMPLES"]
+
+#: Block-bootstrap resamples where a layer's errors are reported (``dustkit layer``, the density
+#: model); the binned model's build keeps the least-squares errors plus the pull (a bootstrap
+#: would cost it about as much as the rest of a 10^6-tracer build).
+BOOTSTRAP_RESAMPLES = 30
 
 _PC_PER_KPC = 1000.0
 

@@ -16,7 +16,7 @@ from .._lib.validation import check_choice, check_int, check_nside, check_real, 
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
-from ..layer import DustLayer, fit_layer, layer_av_pc
+from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer, layer_av_pc
 from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
@@ -29,7 +29,7 @@ __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_
 from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
 
 #: Bootstrap resamples (over sky blocks) for the layer's parameter errors.
-LAYER_BOOTSTRAP = 30
+LAYER_BOOTSTRAP = BOOTSTRAP_RESAMPLES
 #: Largest number of tracers the hyperparameter search (cross-validation, held-out misses)
 #: works on; a larger catalogue lends it a random subset of this size and the final fit uses
 #: every tracer (10^5 field stars: the search would take most of the build).
