@@ -32,6 +32,7 @@ import dustkit  # noqa: E402
 from dustkit.density import DensityModel  # noqa: E402
 from galaxies import GALAXIES, baseline_predict, make_galaxy, read_catalogue, score, strata  # noqa: E402
 
+
 def run(kind, seed, binned=False):
     field, clouds, t, (l, b, d) = make_galaxy(kind, seed=seed)
     tracers = read_catalogue(t)

@@ -49,6 +49,7 @@ from dustkit.density import DensityModel  # noqa: E402
 from dustkit.features import KIND_NEARER, density_features, detect_features  # noqa: E402
 from galaxies import _sep, make_galaxy, read_catalogue  # noqa: E402
 
+
 def testable(clouds, tracers, within=2.0):
     """Clouds with at least 5 tracers (true distance) in front and 5 behind within ``within`` times their radius."""
     tl, tb, td = (np.asarray(tracers[k], float) for k in ("l", "b", "true_distance"))

@@ -23,22 +23,21 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
-from dustkit.density.estimator import LAYER_BOOTSTRAP  # noqa: E402
 from dustkit.density.solver import sample_distance_shift  # noqa: E402
-from dustkit.layer import fit_layer  # noqa: E402
+from dustkit.layer import BOOTSTRAP_RESAMPLES, fit_layer  # noqa: E402
 from galaxies import make_galaxy, read_catalogue  # noqa: E402
 
 PARAMS = ("a0", "h", "z_sun")
 
 
-def pulls(kind, seed):
+def layer_z(kind, seed):
     """(|error| / quoted error with the pull, the same without it, fitted layer) for one draw."""
     field, _, t, _ = make_galaxy(kind, seed=seed)
     tracers = read_catalogue(t)
     d, de = (np.asarray(getattr(tracers, k), float) for k in ("distance", "distance_err"))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=0,
+        layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES, random_state=0,
                           distance_shift=sample_distance_shift(d, de, np.ones(d.size)))
     err = np.array([getattr(layer, p) - getattr(field, p) for p in PARAMS])
     quoted = np.array([getattr(layer, p + "_err") for p in PARAMS])
@@ -56,7 +55,7 @@ def main():
     for kind in args.galaxies.split(","):
         z, z_stat = [], []
         for seed in range(1, args.draws + 1):
-            a, s, layer, field = pulls(kind, seed)
+            a, s, layer, field = layer_z(kind, seed)
             z.append(a)
             z_stat.append(s)
             print(f"  {kind} draw {seed}: a0 {layer.a0:.3f} +- {layer.a0_err:.3f} (invented {field.a0}), "

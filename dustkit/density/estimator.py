@@ -28,8 +28,6 @@ __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_
 
 from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
 
-#: Bootstrap resamples (over sky blocks) for the layer's parameter errors.
-LAYER_BOOTSTRAP = BOOTSTRAP_RESAMPLES
 #: Largest number of tracers the hyperparameter search (cross-validation, held-out misses)
 #: works on; a larger catalogue lends it a random subset of this size and the final fit uses
 #: every tracer (10^5 field stars: the search would take most of the build).
@@ -733,7 +731,7 @@ def _tracer_inputs(tracers, random_state):
         shift = np.zeros(l.size)
     else:
         shift = sample_distance_shift(d, de, weight)
-    layer = fit_layer(tracers, n_boot=LAYER_BOOTSTRAP, random_state=random_state, distance_shift=shift)
+    layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES, random_state=random_state, distance_shift=shift)
     return _TracerInputs(l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer)
 
 

@@ -90,6 +90,4 @@ def density_from_parts(parts):
         cv.meta["validation"] = parts["CV"][0].get("CVSCHEME", "")
     state = {**meta, "arrays": arrays, "tracers": tracers, "cv": cv}
     state["grid"]["distance_edges"] = np.asarray(state["grid"]["distance_edges"], float)
-    state["layer"]["covariance"] = np.asarray(state["layer"]["covariance"], float)
-    state["layer"]["pull"] = np.asarray(state["layer"].get("pull", np.zeros(3)), float)
     return density_from_state(state)
