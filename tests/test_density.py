@@ -454,6 +454,20 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     np.testing.assert_allclose(past[:, -1], expected, rtol=0.02, atol=1e-9)
     assert np.all(past[:, :last] < 1e-4 * var[:, :last] + 1e-12)   # in front: the support rules
 
+    # the clouds' pull on the layer (a systematic error no tracer corrects past the data)
+    # widens only the share past the data, by the delta method on cov + pull pull^T
+    # (variance of a sum of independent errors, common practice); where tracers inform, the
+    # statistical covariance stays
+    pull = np.array([0.03, 10.0, -3.0])
+    pulled = DustLayer(a0=1.0, h=120.0, z_sun=20.0, a0_err=0.058, h_err=18.0, z_sun_err=5.0, covariance=cov,
+                       pull=pull)
+    var_p, past_p = _layer_variance(pulled, grid, informing)
+    np.testing.assert_array_equal(var_p, var)
+    total = cov + np.outer(pull, pull)
+    np.testing.assert_allclose(past_p[:, -1], np.einsum("in,ij,jn->n", np.array(jac), total, np.array(jac)),
+                               rtol=0.02, atol=1e-9)
+    assert np.all(past_p[:, -1] > past[:, -1])
+
 
 def test_the_local_bias_term_finds_a_one_sided_patch_and_not_noise():
     # a dense catalogue (40 tracers per deg^2) whose residuals are pure noise (sd 0.2 mag)
