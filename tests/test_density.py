@@ -469,6 +469,33 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     assert np.all(past_p[:, -1] > past[:, -1])
 
 
+def test_answers_beyond_the_data_carry_the_clouds_pull_on_the_layer(fitted):
+    # far from every tracer (b = 14-16 deg, above a catalogue within |b| < 8 deg) the answer is
+    # the layer's, and the clouds' pull (DustLayer.pull: the shift of the layer's parameters
+    # with the tracers far above it set aside) is a systematic error no tracer corrects there:
+    # the quoted sigma covers the layer's total error, statistical covariance plus
+    # outer(pull, pull), propagated by the delta method (common practice). (With the
+    # statistical covariance alone these sigmas came out 0.92-0.995 of it.)
+    from dustkit.layer import layer_av_pc
+
+    _, m = fitted
+    lay = m.layer_
+    assert np.any(np.abs(lay.pull) > 0)
+    l, b = np.full(6, 40.0), np.array([14.0, 14.0, 15.0, 15.0, 16.0, 16.0])
+    d = np.array([800.0, 2500.0, 800.0, 2500.0, 800.0, 2500.0])
+    a, e = m.av_pc(l, b, d)
+    p = np.array([lay.a0, lay.h, lay.z_sun])
+    jac = []
+    for j in range(3):
+        step = np.zeros(3)
+        step[j] = 1e-4 * max(abs(p[j]), 1.0)
+        jac.append((layer_av_pc(b, d, *(p + step)) - layer_av_pc(b, d, *(p - step))) / (2 * step[j]))
+    total = np.asarray(lay.covariance, float) + np.outer(lay.pull, lay.pull)
+    layer_err = np.sqrt(np.einsum("in,ij,jn->n", np.array(jac), total, np.array(jac)))
+    assert np.all(e >= layer_err)
+    assert np.allclose(a, layer_av_pc(b, d, *p), rtol=0.02)
+
+
 def test_the_local_bias_term_finds_a_one_sided_patch_and_not_noise():
     # a dense catalogue (40 tracers per deg^2) whose residuals are pure noise (sd 0.2 mag)
     # except in a 5 x 5 deg patch beyond 800 pc, where the model sits 0.15 mag low: the local
