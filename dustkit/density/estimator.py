@@ -752,15 +752,11 @@ def _layer_variance(layer, grid, informing):
     support of the cumulative A_V says nothing of it); with ``n`` such tracers, a share
     ``2 / (2 + n)`` of it (the kernel-weighted counts spread over the sky kernel).
 
-    The first uses the layer's statistical covariance (where tracers inform an answer, the
-    field's posterior absorbs the layer's misfit); the share past the data uses its total
-    covariance, the statistical one plus ``outer(pull, pull)`` (:attr:`DustLayer.pull`, the
-    clouds' systematic pull on the fit): there no tracer can correct that misfit, and the
-    answer is the layer's. (In the invented galaxies of ``benchmarks/accuracy.py`` the
-    answers at |b| > 10 deg are the layer's to 0.0002 mag and their error is the layer's
-    misfit, +0.012 mag where a0 came out 1.6-2% high; with the statistical covariance alone
-    26-69% of them fell inside 1 sigma in six of the 30 draws with answers there, with the
-    total 59-93%.)
+    The first uses the statistical covariance (where tracers inform an answer, the field's
+    posterior absorbs the layer's misfit); the share past the data adds ``outer(pull, pull)``
+    (:attr:`DustLayer.pull`, the clouds' systematic pull): no tracer corrects it there. (In
+    ``benchmarks/accuracy.py`` the answers at |b| > 10 deg are the layer's to 0.0002 mag, their
+    error its misfit; inside 1 sigma 26-69% in six of 30 draws without the pull, 59-93% with.)
     """
     _, bc = grid.pixel_centres()
     e = grid.distance_edges
