@@ -1,5 +1,6 @@
 """DensityModel: the 3-D log-normal dust density model behind the answers interface."""
 
+import dataclasses
 import time
 
 import numpy as np
@@ -653,10 +654,9 @@ class DensityModel:
             m.unresolved_ = self.unresolved_ * ratio**2
             m.samples_ = (self.samples_ * np.float32(ratio)).astype(np.float32)
             lay = self.layer_
-            m.layer_ = DustLayer(a0=lay.a0 * ratio, h=lay.h, z_sun=lay.z_sun, a0_err=lay.a0_err * ratio,
-                                 h_err=lay.h_err, z_sun_err=lay.z_sun_err, scatter=lay.scatter * ratio,
-                                 n_used=lay.n_used, covariance=_scaled_cov(lay.covariance, ratio),
-                                 pull=np.asarray(lay.pull, float) * [ratio, 1.0, 1.0])
+            m.layer_ = dataclasses.replace(lay, a0=lay.a0 * ratio, a0_err=lay.a0_err * ratio,
+                                           scatter=lay.scatter * ratio, covariance=_scaled_cov(lay.covariance, ratio),
+                                           pull=np.asarray(lay.pull, float) * [ratio, 1.0, 1.0])
             m.tracers_ = new_tracers
             m.how_ = f"rescaled exactly by R_V'/R_V = {ratio:.4f}"
             return m
