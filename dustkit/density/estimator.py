@@ -21,7 +21,7 @@ from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer, layer_av_pc
 from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
-                      local_bias_variance, unresolved_variance)
+                      local_bias_variance, placement_variance, unresolved_variance)
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
@@ -355,10 +355,12 @@ class DensityModel:
             bar.update(1)
         self._store(grid, layer, lat, post, xs, tau, tracers)
         self.mode_, self.isotropic_ = post.xi, float(iso)  # the mode in white-noise coordinates (warm starts)
-        # what the cells miss: held-out tracers' excess spread, and the fitted model's own local bias
+        # what the cells miss: held-out tracers' excess spread, the fitted model's own local bias, where a rise sits
         fitted_ok = ~terms.censored
         bias2 = local_bias_variance(grid, inp.l, inp.b, inp.d, np.where(fitted_ok, inp.av - post.predicted, 0.0),
                                     inp.weight * fitted_ok, float(np.sqrt(grid.pixel_area.to_value(u.deg**2))), rng)
+        bias2[pixels] += placement_variance(grid, pixels, self.av_[pixels] - self._layer_nodes()[pixels], inp.l, inp.b,
+                                            inp.d, inp.de, grid.distance_edges[-1])
         self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight) + bias2, tau_s)
         self.cv_ = _cv_table(rows, folds_n)
         self.build_report_ = {
