@@ -171,7 +171,7 @@ class DensityModel:
     posterior_err_ : ndarray (npix, n_edges)
         The posterior standard deviation alone.
     unresolved_ : ndarray (npix, n_edges)
-        Local variance (mag^2) of what the cells miss, from held-out tracers.
+        Local variance (mag^2) the cells miss: held-out tracers' excess, local bias, where a rise sits.
     prior_err_, support_ : ndarray (npix, n_edges)
         Prior standard deviation, and ``1 - posterior variance / prior variance`` (0: the
         answer is the prior).
