@@ -708,6 +708,17 @@ def test_a_rise_between_two_tracers_gets_the_variance_of_its_unknown_place():
     # either tracer are less sure of what lies between them
     got_err = placement_variance(grid, pixels, excess, l, b, np.array([near, far]), np.array([50.0, 130.0]), e[-1])[0]
     assert got_err[11] > 1.3 * got[11] and got_err[19] > 1.3 * got[19]
+    # tracers all beyond the grid close no gap at all
+    none = placement_variance(grid, pixels, excess, l, b, np.array([4000.0, 5000.0]), np.zeros(2), e[-1])
+    assert none.shape == (1, e.size) and not none.any()
+
+
+def test_a_catalogue_beyond_the_grid_is_refused_with_the_counts_and_a_hint():
+    # every tracer farther than the grid's last edge only bounds its far end: nothing is left to
+    # learn the prior from, so the fit refuses with the numbers and what to change (common practice)
+    t, tr = _tracers(60, 1)
+    with pytest.raises(dustkit.exceptions.CatalogError, match=r"got 60, 0 of them nearer than its last edge \(150 pc\).*distance_max"):
+        DensityModel(quiet=True, distance_max=150 * u.pc).fit(tr)
 
 
 def test_in_front_of_a_cloud_no_tracer_pins_down_the_errors_hold_where_it_might_sit():

@@ -266,15 +266,15 @@ class DensityModel:
         """Fit the density model to a :class:`~dustkit.tracers.TracerSet`; returns ``self``."""
         t_start = time.perf_counter()
         grid = self.make_grid(tracers)
-        folds_n = check_int("n_folds", self.n_folds, 2, 20)
-        n_samples = check_int("n_samples", self.n_samples, 4, 4096)
+        folds_n, n_samples = check_int("n_folds", self.n_folds, 2, 20), check_int("n_samples", self.n_samples, 4, 4096)
         radius = float(to_value("active_radius", self.active_radius, u.deg, default_unit=u.deg))
         check_real("active_radius", radius, 0.0, 180.0, low_inclusive=False)
         cands = self._candidates()
-        n = len(tracers)
-        if n < 5:
-            raise CatalogError(f"The density model needs at least 5 tracers; got {n}. "
-                               "Hint: widen the region or add tracers.")
+        n, inside = len(tracers), int(np.sum(np.asarray(tracers.distance, float) <= grid.distance_edges[-1]))
+        if inside < 5:  # tracers beyond the grid only bound its far end
+            raise CatalogError(f"The density model needs at least 5 tracers inside its grid; got {n}, {inside} of them "
+                               f"nearer than its last edge ({grid.distance_edges[-1]:g} pc). "
+                               "Hint: widen the region, add tracers, or raise distance_max.")
         inp = _tracer_inputs(tracers, self.random_state)
         pixels = active_pixels(grid, inp.l, inp.b, radius)
         col_all = np.searchsorted(pixels, grid.pixel(inp.l, inp.b))  # each tracer's active-pixel column
@@ -709,9 +709,7 @@ def _tolerances(n_cv):
 
 def _cv_subset(n, random_state):
     """Sorted indices of a random subset of CV_TRACERS tracers for the hyperparameter search (None: all)."""
-    if n <= CV_TRACERS:
-        return None
-    return np.sort(np.random.default_rng(random_state).choice(n, CV_TRACERS, replace=False))
+    return None if n <= CV_TRACERS else np.sort(np.random.default_rng(random_state).choice(n, CV_TRACERS, replace=False))
 
 
 def _tracer_inputs(tracers, random_state):

@@ -236,6 +236,8 @@ def placement_variance(grid, pixels, excess, l, b, d, de, max_distance):
     ok = slot >= 0
     dist = np.broadcast_to(d[keep], slot.shape)[ok]
     frac = np.broadcast_to(np.minimum(de[keep] / np.maximum(d[keep], 1.0), 0.9), slot.shape)[ok]
+    if dist.size == 0:                                        # every tracer beyond the grid: no gap is closed
+        return np.zeros((n_pix, e.size))
     order = np.lexsort((dist, slot[ok]))                      # by pixel, then by distance
     owner, dist, frac = slot[ok][order], dist[order], frac[order]
     scale = 2.0 * float(e[-1]) + 1.0                          # one sorted key: pixel, then distance
