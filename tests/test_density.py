@@ -708,6 +708,11 @@ def test_a_rise_between_two_tracers_gets_the_variance_of_its_unknown_place():
     # either tracer are less sure of what lies between them
     got_err = placement_variance(grid, pixels, excess, l, b, np.array([near, far]), np.array([50.0, 130.0]), e[-1])[0]
     assert got_err[11] > 1.3 * got[11] and got_err[19] > 1.3 * got[19]
+    # a catalogue listed twice (weights 1/2, as near-duplicate groups get) places a rise no better
+    l4, b4 = np.tile(l, 2), np.tile(b, 2)
+    got_dup = placement_variance(grid, pixels, excess, l4, b4, np.tile([near, far], 2), np.tile([50.0, 130.0], 2), e[-1],
+                                 np.full(4, 0.5))[0]
+    np.testing.assert_allclose(got_dup, got_err, rtol=1e-12)
     # tracers all beyond the grid close no gap at all
     none = placement_variance(grid, pixels, excess, l, b, np.array([4000.0, 5000.0]), np.zeros(2), e[-1])
     assert none.shape == (1, e.size) and not none.any()

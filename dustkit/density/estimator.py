@@ -360,7 +360,7 @@ class DensityModel:
         bias2 = local_bias_variance(grid, inp.l, inp.b, inp.d, np.where(fitted_ok, inp.av - post.predicted, 0.0),
                                     inp.weight * fitted_ok, float(np.sqrt(grid.pixel_area.to_value(u.deg**2))), rng)
         bias2[pixels] += placement_variance(grid, pixels, self.av_[pixels] - self._layer_nodes()[pixels], inp.l, inp.b,
-                                            inp.d, inp.de, grid.distance_edges[-1])
+                                            inp.d, inp.de, grid.distance_edges[-1], inp.weight)
         self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight) + bias2, tau_s)
         self.cv_ = _cv_table(rows, folds_n)
         self.build_report_ = {
