@@ -220,12 +220,12 @@ def placement_variance(grid, pixels, excess, l, b, d, de, max_distance, weight=N
     ``1 + (de / d) / sqrt(n)``, with ``n`` the tracers of the same pixels within that error
     of it, counted with their ``weight`` (1 / the size of a near-duplicate group, so that a
     catalogue listed twice does not narrow it): many tracers together place a rise better
-    than one does (without the ``sqrt(n)``
-    the 20 000 field stars of ``benchmarks/accuracy.py`` had 0.86-0.95 of the truths in
-    front of their clouds inside 1 sigma). Zero with no tracer behind (the prior's spread
-    rules there) and small where tracers are dense (short gaps, small rises). Censored
-    tracers (beyond ``max_distance``) close no gap. Vectorised: the tracers' distances are
-    sorted pixel by pixel once, and every node finds its two tracers by one binary search.
+    than one does (without the ``sqrt(n)`` the 20 000 field stars of
+    ``benchmarks/accuracy.py`` had 0.86-0.95 of the truths in front of their clouds inside
+    1 sigma). Zero with no tracer behind (the prior's spread rules there) and small where
+    tracers are dense (short gaps, small rises). Censored tracers (beyond ``max_distance``)
+    close no gap. Vectorised: the tracers' distances are sorted pixel by pixel once, and
+    every node finds its two tracers by one binary search.
     """
     e = grid.distance_edges
     n_pix = pixels.size
@@ -257,13 +257,13 @@ def placement_variance(grid, pixels, excess, l, b, d, de, max_distance, weight=N
     has_behind = (i < dist.size) & (owner[behind] == node_pix)
     d_f = np.where(has_front, dist[front] / widen[front], 0.0)
     d_b = np.where(has_behind, dist[behind] * widen[behind], 0.0)
-    rise = np.maximum(_along(excess, e, node_pix, d_b) - _along(excess, e, node_pix, d_f), 0.0)
+    rise = np.maximum(_along(excess, grid, node_pix, d_b) - _along(excess, grid, node_pix, d_f), 0.0)
     u = np.clip((node_d - d_f) / np.maximum(d_b - d_f, 1e-9), 0.0, 1.0)
     return np.where(has_behind, rise**2 * u * (1.0 - u), 0.0).reshape(n_pix, e.size)
 
 
-def _along(values, edges, row, dist):
-    """Linear interpolation of node values (rows x edges) at ``dist`` along each ``row``."""
-    k = np.clip(np.searchsorted(edges, dist, side="right") - 1, 0, edges.size - 2)
-    f = np.clip((dist - edges[k]) / (edges[k + 1] - edges[k]), 0.0, 1.0)
+def _along(values, grid, row, dist):
+    """Linear interpolation of node values (rows x edges) at ``dist`` along each ``row``, held past the ends."""
+    k, f = grid.edge_position(dist)
+    f = np.clip(f, 0.0, 1.0)
     return values[row, k] * (1.0 - f) + values[row, k + 1] * f
