@@ -169,6 +169,35 @@ class DustLayer:
         """dA_V/dd (mag/pc) on plain float arrays: latitude in deg, distance in pc."""
         return layer_slope_pc(b_deg, distance_pc, self.a0, self.h, self.z_sun)
 
+    def gradient_pc(self, b_deg, distance_pc):
+        """d A_V / d (a0, h, z_sun) on plain float arrays (3, n): central differences (mag per mag/kpc, pc, pc)."""
+        b_deg, distance_pc = np.broadcast_arrays(np.asarray(b_deg, float), np.asarray(distance_pc, float))
+        p0 = np.array([self.a0, self.h, self.z_sun], float)
+        steps = np.maximum(1e-4 * np.abs(p0), [1e-6, 1e-3, 1e-3])
+        rows = []
+        for j in range(3):
+            hi, lo = p0.copy(), p0.copy()
+            hi[j] += steps[j]
+            lo[j] -= steps[j]
+            rows.append((layer_av_pc(b_deg, distance_pc, *hi) - layer_av_pc(b_deg, distance_pc, *lo)) / (2 * steps[j]))
+        return np.asarray(rows)
+
+    def error_directions(self, b_deg, distance_pc):
+        """Unit vectors (n, 3) along which the parameters' errors move A_V at each position.
+
+        With ``C`` the parameters' full error covariance (``covariance`` plus
+        ``outer(pull, pull)``) and ``J`` the gradient of A_V, ``C^(1/2)^T J / |C^(1/2)^T J|``: one
+        draw ``z`` of three standard normals, shared by all positions, moves each position's A_V
+        by ``sigma_layer * (u . z)``: every position gets its own layer error, and two
+        positions' errors correlate as their vectors do (the same fitted layer under all of
+        them). Zero where the layer's A_V does not depend on its parameters (at the Sun).
+        """
+        cov = np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(self.pull, self.pull)
+        w, vec = np.linalg.eigh(0.5 * (cov + cov.T))
+        v = (vec * np.sqrt(np.maximum(w, 0.0))).T @ self.gradient_pc(b_deg, distance_pc)   # (3, n)
+        norm = np.sqrt(np.sum(v**2, axis=0))
+        return (v / np.where(norm > 0, norm, np.inf)).T
+
     _av = av_pc  # old private names, kept for code written against them
     _slope = slope_pc
 

@@ -17,7 +17,7 @@ from .._lib.validation import check_choice, check_int, check_nside, check_real, 
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
-from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer, layer_av_pc
+from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer
 from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
@@ -538,14 +538,17 @@ class DensityModel:
               samples=0):
         """A table of answers with how well each is supported; ``samples=N`` adds N posterior draws.
 
-        Columns as :meth:`dustkit.ExtinctionModel.query`, plus ``support`` (0 = the prior
-        only, 1 = fully set by tracers), ``n_tracers`` (kernel-weighted tracers in front),
-        ``prior_only`` (support below 0.1) and, with ``samples``, ``av_samples`` (n, N).
+        Columns as :meth:`dustkit.ExtinctionModel.query`, plus ``support`` (0 = the prior only,
+        1 = fully set by tracers), ``n_tracers`` (kernel-weighted tracers in front), ``prior_only``
+        (support below 0.1), ``av_err_layer`` (the fitted layer's part of ``av_err``, shared by all
+        answers: it does not average down over targets) and, with ``samples``, ``av_samples`` (n, N).
         """
         t = query_table(self, l, b, distance, distance_err, bands, law, rv, temperature)
         lv, bv, dv = (np.asarray(t[k].value, float) for k in ("l", "b", "distance"))
         s, nt, prior_only = self._support_arrays(lv, bv, dv)
         t["support"], t["n_tracers"], t["prior_only"] = s, nt, prior_only
+        pix, wgt, k, f, ratio, _ = self._locate(lv, bv, dv)
+        t["av_err_layer"] = self._layer_error(pix, wgt, k, f, ratio) * u.mag
         if samples:
             t["av_samples"] = self.draw(lv, bv, dv, samples) * u.mag
         return t
@@ -565,9 +568,10 @@ class DensityModel:
     def draw(self, l, b, d, n_samples, random_state=0):
         """Posterior draws of A_V (mag, plain arrays (n, n_samples)) at positions in deg and pc.
 
-        The first ``min(n_samples, stored)`` draws come from the stored posterior samples at
-        the active pixels (the prior's spread elsewhere), each plus the unresolved scatter;
-        the same call returns the same draws.
+        The first ``min(n_samples, stored)`` draws come from the stored posterior samples at the
+        active pixels (the prior's spread elsewhere); the layer's error is drawn once per draw for
+        all positions together (:meth:`DustLayer.error_directions`: it does not average out over
+        many targets), the rest position by position. The same call returns the same draws.
         """
         self.check_fitted()
         l, b, d = (np.atleast_1d(np.asarray(x, float)) for x in (l, b, d))
@@ -588,11 +592,19 @@ class DensityModel:
             dev[:, :use] += (wgt[j] * active[j])[:, None] * ((1 - f)[:, None] * lo + f[:, None] * hi)
         dev[:, :use] *= ratio[:, None]
         explained = np.sqrt(np.mean(dev[:, :use] ** 2, axis=1)) if use else np.zeros(l.size)
-        rest = np.sqrt(np.maximum(err**2 - explained**2, 0.0))
+        lay = self._layer_error(pix, wgt, k, f, ratio)
+        along = self.layer_.error_directions(b, np.minimum(d, self.grid_.distance_edges[-1]))
+        dev += lay[:, None] * (along @ rng.standard_normal((3, n_samples)))
+        rest = np.sqrt(np.maximum(err**2 - explained**2 - lay**2, 0.0))
         dev[:, :use] += rest[:, None] * rng.standard_normal((l.size, use))
         if n_samples > use:
-            dev[:, use:] = err[:, None] * rng.standard_normal((l.size, n_samples - use))
+            own = np.sqrt(np.maximum(err**2 - lay**2, 0.0))
+            dev[:, use:] += own[:, None] * rng.standard_normal((l.size, n_samples - use))
         return np.maximum(a[:, None] + dev, 0.0)
+
+    def _layer_error(self, pix, wgt, k, f, ratio):
+        """The fitted layer's part of the answers' 1-sigma error (mag), as :meth:`av_pc` counts it."""
+        return np.sqrt(self._nodes(self.layer_err_**2, pix, wgt, k, f)) * ratio
 
     @property
     def law(self):
@@ -760,16 +772,7 @@ def _layer_variance(layer, grid, informing):
     """
     _, bc = grid.pixel_centres()
     e = grid.distance_edges
-    bb, dd = np.repeat(bc, e.size), np.tile(e, bc.size)
-    p0 = np.array([layer.a0, layer.h, layer.z_sun], float)
-    steps = np.maximum(1e-4 * np.abs(p0), [1e-6, 1e-3, 1e-3])
-    jac = []
-    for j in range(3):
-        hi, lo = p0.copy(), p0.copy()
-        hi[j] += steps[j]
-        lo[j] -= steps[j]
-        jac.append((layer_av_pc(bb, dd, *hi) - layer_av_pc(bb, dd, *lo)) / (2 * steps[j]))
-    jac = np.asarray(jac)                                   # (3, npix * E)
+    jac = layer.gradient_pc(np.repeat(bc, e.size), np.tile(e, bc.size))   # (3, npix * E)
     cov = np.nan_to_num(np.asarray(layer.covariance, float))
     var = np.maximum(np.einsum("in,ij,jn->n", jac, cov, jac), 0.0).reshape(bc.size, e.size)
     jac = jac.reshape(3, bc.size, e.size)
