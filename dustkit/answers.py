@@ -308,7 +308,9 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
     -------
     astropy.table.Table
         Every input row in input order with every input column, plus ``av``, ``av_err``
-        (mag) and the band columns. Rows that cannot be placed (no usable position or
+        (mag), for the 3-D density model ``av_err_layer`` (the part of ``av_err`` that is the
+        fitted layer's, the same error under every row: it does not average down when rows
+        are combined) and the band columns. Rows that cannot be placed (no usable position or
         distance) keep NaN in the new columns; input columns with the same names as the
         new ones are renamed ``input_<name>``. ``meta["caution"]`` carries the caution,
         ``meta["n_estimated"]`` the number of rows estimated and ``meta["rejected_by_reason"]``
@@ -325,7 +327,8 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
                           "reading options with a TargetList")
     ok = np.asarray(targets.valid)
     table = Table(targets.table, copy=True)
-    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    shared = hasattr(model, "layer_err_pc")  # the 3-D density model: the layer's part of av_err, shared by all rows
+    names = ["av", "av_err"] + ["av_err_layer"] * shared + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
     for c in names:
         if c in table.colnames:
             table.rename_column(c, f"input_{c}")
@@ -335,6 +338,9 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
         q = query_table(model, np.asarray(targets.l)[ok] * u.deg, np.asarray(targets.b)[ok] * u.deg,
                         np.asarray(targets.distance)[ok] * u.pc,
                         distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands), law=law, rv=rv)
+        if shared:
+            q["av_err_layer"] = model.layer_err_pc(np.asarray(targets.l)[ok], np.asarray(targets.b)[ok],
+                                                   np.asarray(targets.distance)[ok]) * u.mag
         for c in names:
             values[c][ok] = q[c].to_value(u.mag)
     for c in names:

@@ -276,6 +276,25 @@ def test_draws_carry_the_layers_error_together_so_a_mean_over_targets_stays_hone
     assert inside >= 6                                # 2 sigma holds ~95%: at least 6 of 8
 
 
+def test_target_lists_get_the_layers_shared_part_of_the_error(fitted):
+    # estimate_targets adds av_err_layer for the density model: the same numbers as query,
+    # never more than av_err, empty where a row cannot be placed
+    from astropy.table import Table
+    from dustkit.answers import estimate_targets
+    from dustkit.exceptions import RowsRejectedWarning
+
+    _, m = fitted
+    targets = Table({"l": [40.0, 45.0, 50.0] * u.deg, "b": [0.0, 2.0, -1.0] * u.deg,
+                     "distance": [1500.0, np.nan, 2500.0] * u.pc})
+    with pytest.warns(RowsRejectedWarning):
+        out = estimate_targets(m, targets)
+    q = m.query([40, 50] * u.deg, [0, -1] * u.deg, [1500, 2500] * u.pc)
+    shared = out["av_err_layer"].quantity.to_value(u.mag)
+    np.testing.assert_allclose(shared[[0, 2]], q["av_err_layer"].to_value(u.mag))
+    assert np.isnan(shared[1]) and np.all(shared[[0, 2]] <= out["av_err"].quantity.to_value(u.mag)[[0, 2]])
+    assert np.all(shared[[0, 2]] > 0)
+
+
 def test_saved_model_answers_bit_for_bit(fitted, tmp_path):
     _, m = fitted
     path = dustkit.save_model(m, tmp_path / "density.fits")

@@ -547,8 +547,7 @@ class DensityModel:
         lv, bv, dv = (np.asarray(t[k].value, float) for k in ("l", "b", "distance"))
         s, nt, prior_only = self._support_arrays(lv, bv, dv)
         t["support"], t["n_tracers"], t["prior_only"] = s, nt, prior_only
-        pix, wgt, k, f, ratio, _ = self._locate(lv, bv, dv)
-        t["av_err_layer"] = self._layer_error(pix, wgt, k, f, ratio) * u.mag
+        t["av_err_layer"] = self.layer_err_pc(lv, bv, dv) * u.mag
         if samples:
             t["av_samples"] = self.draw(lv, bv, dv, samples) * u.mag
         return t
@@ -568,10 +567,9 @@ class DensityModel:
     def draw(self, l, b, d, n_samples, random_state=0):
         """Posterior draws of A_V (mag, plain arrays (n, n_samples)) at positions in deg and pc.
 
-        The first ``min(n_samples, stored)`` draws come from the stored posterior samples at the
-        active pixels (the prior's spread elsewhere); the layer's error is drawn once per draw for
-        all positions together (:meth:`DustLayer.error_directions`: it does not average out over
-        many targets), the rest position by position. The same call returns the same draws.
+        The first ``min(n_samples, stored)`` draws come from the stored posterior samples at the active
+        pixels (the prior's spread elsewhere); the layer's error is drawn once per draw for all positions
+        (:meth:`DustLayer.error_directions`), the rest position by position. Same call, same draws.
         """
         self.check_fitted()
         l, b, d = (np.atleast_1d(np.asarray(x, float)) for x in (l, b, d))
@@ -592,7 +590,7 @@ class DensityModel:
             dev[:, :use] += (wgt[j] * active[j])[:, None] * ((1 - f)[:, None] * lo + f[:, None] * hi)
         dev[:, :use] *= ratio[:, None]
         explained = np.sqrt(np.mean(dev[:, :use] ** 2, axis=1)) if use else np.zeros(l.size)
-        lay = self._layer_error(pix, wgt, k, f, ratio)
+        lay = self.layer_err_pc(l, b, d)
         along = self.layer_.error_directions(b, np.minimum(d, self.grid_.distance_edges[-1]))
         dev += lay[:, None] * (along @ rng.standard_normal((3, n_samples)))
         rest = np.sqrt(np.maximum(err**2 - explained**2 - lay**2, 0.0))
@@ -602,8 +600,10 @@ class DensityModel:
             dev[:, use:] += own[:, None] * rng.standard_normal((l.size, n_samples - use))
         return np.maximum(a[:, None] + dev, 0.0)
 
-    def _layer_error(self, pix, wgt, k, f, ratio):
-        """The fitted layer's part of the answers' 1-sigma error (mag), as :meth:`av_pc` counts it."""
+    def layer_err_pc(self, l, b, d):
+        """The fitted layer's part of the 1-sigma error of A_V (mag; deg, pc), one error under all answers."""
+        self.check_fitted()
+        pix, wgt, k, f, ratio, _ = self._locate(*(np.asarray(x, float) for x in (l, b, d)))
         return np.sqrt(self._nodes(self.layer_err_**2, pix, wgt, k, f)) * ratio
 
     @property
