@@ -192,7 +192,8 @@ class DustLayer:
         positions' errors correlate as their vectors do (the same fitted layer under all of
         them). Zero where the layer's A_V does not depend on its parameters (at the Sun).
         """
-        cov = np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(self.pull, self.pull)
+        pull = np.nan_to_num(np.asarray(self.pull, float).reshape(3))
+        cov = np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(pull, pull)
         w, vec = np.linalg.eigh(0.5 * (cov + cov.T))
         v = (vec * np.sqrt(np.maximum(w, 0.0))).T @ self.gradient_pc(b_deg, distance_pc)   # (3, n)
         norm = np.sqrt(np.sum(v**2, axis=0))
