@@ -67,8 +67,10 @@ A_V = R_V E(B-V) whatever the star.""",
   dustkit estimate model.fits targets.ecsv -o targets_av.ecsv --band J --band Ks
   dustkit estimate model.fits targets.csv -o out.csv --column distance=dist --distance-unit kpc
 
-The output keeps every input column and adds av and av_err (mag) and a_BAND, a_BAND_err for
-each --band. Rows without a usable position or distance keep empty (NaN) values.""",
+The output keeps every input column and adds av and av_err (mag), for a 3-D density model
+av_err_layer (the fitted layer's part of av_err, the same error under every row: it does not
+average down when rows are combined), and a_BAND, a_BAND_err for each --band. Rows without a
+usable position or distance keep empty (NaN) values.""",
     "layer": """examples:
   dustkit layer clusters.csv
   dustkit layer clusters.csv --json > layer.json
@@ -634,7 +636,8 @@ def _cmd_estimate(args, out):
                                distance_modulus_kind=getattr(args, "modulus_kind", None))
     table = estimate_targets(model, targets, bands=bands)
     table.meta["model"] = str(args.model)
-    names = ["av", "av_err"] + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    names = (["av", "av_err"] + ["av_err_layer"] * hasattr(model, "layer_err_pc")
+             + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")])
     rej = targets.rejected
     table.meta.pop("rejected_by_reason")
     n_ok = table.meta.pop("n_estimated")
