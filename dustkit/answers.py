@@ -37,6 +37,7 @@ from .binned.calibration import predictive_variance
 
 __all__ = [
     "CAUTION",
+    "estimate_columns",
     "interpolate",
     "sky_positions",
     "binned_av",
@@ -288,6 +289,16 @@ def profile_table(model, l, b, radius=None, distances=None):
     return t
 
 
+def estimate_columns(model, bands=()):
+    """The columns :func:`estimate_targets` adds for this model and these bands, in order.
+
+    ``av_err_layer`` (the fitted layer's part of ``av_err``, shared by all rows) comes with
+    models that report it (the 3-D density model's ``layer_err_pc``).
+    """
+    shared = ["av_err_layer"] if hasattr(model, "layer_err_pc") else []
+    return ["av", "av_err"] + shared + [c for band in dict.fromkeys(bands) for c in (f"a_{band}", f"a_{band}_err")]
+
+
 def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options):
     """Extinction for a list of targets, keeping every input row and column.
 
@@ -327,8 +338,8 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
                           "reading options with a TargetList")
     ok = np.asarray(targets.valid)
     table = Table(targets.table, copy=True)
-    shared = hasattr(model, "layer_err_pc")  # the 3-D density model: the layer's part of av_err, shared by all rows
-    names = ["av", "av_err"] + ["av_err_layer"] * shared + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")]
+    names = estimate_columns(model, bands)
+    shared = "av_err_layer" in names
     for c in names:
         if c in table.colnames:
             table.rename_column(c, f"input_{c}")

@@ -617,7 +617,7 @@ def _cmd_estimate(args, out):
     import numpy as np
 
     from ._lib.formats import check_target, format_for
-    from .answers import CAUTION, estimate_targets
+    from .answers import CAUTION, estimate_columns, estimate_targets
     from .bands import get_band
     from .exceptions import RowsRejectedWarning
     from .io import load_model, write_table
@@ -636,8 +636,7 @@ def _cmd_estimate(args, out):
                                distance_modulus_kind=getattr(args, "modulus_kind", None))
     table = estimate_targets(model, targets, bands=bands)
     table.meta["model"] = str(args.model)
-    names = (["av", "av_err"] + ["av_err_layer"] * hasattr(model, "layer_err_pc")
-             + [c for band in bands for c in (f"a_{band}", f"a_{band}_err")])
+    names = estimate_columns(model, bands)
     rej = targets.rejected
     table.meta.pop("rejected_by_reason")
     n_ok = table.meta.pop("n_estimated")

@@ -182,6 +182,11 @@ class DustLayer:
             rows.append((layer_av_pc(b_deg, distance_pc, *hi) - layer_av_pc(b_deg, distance_pc, *lo)) / (2 * steps[j]))
         return np.asarray(rows)
 
+    def error_covariance(self):
+        """The parameters' full error covariance (3, 3): ``covariance`` plus ``outer(pull, pull)`` (NaN read as 0)."""
+        pull = np.nan_to_num(np.asarray(getattr(self, "pull", np.zeros(3)), float).reshape(3))
+        return np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(pull, pull)
+
     def error_directions(self, b_deg, distance_pc):
         """Unit vectors (n, 3) along which the parameters' errors move A_V at each position.
 
@@ -192,8 +197,7 @@ class DustLayer:
         positions' errors correlate as their vectors do (the same fitted layer under all of
         them). Zero where the layer's A_V does not depend on its parameters (at the Sun).
         """
-        pull = np.nan_to_num(np.asarray(self.pull, float).reshape(3))
-        cov = np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(pull, pull)
+        cov = self.error_covariance()
         w, vec = np.linalg.eigh(0.5 * (cov + cov.T))
         v = (vec * np.sqrt(np.maximum(w, 0.0))).T @ self.gradient_pc(b_deg, distance_pc)   # (3, n)
         norm = np.sqrt(np.sum(v**2, axis=0))

@@ -779,8 +779,7 @@ def _layer_variance(layer, grid, informing):
     beyond = informing[:, -1:] - informing[:, :-1]          # tracers in or beyond each bin (npix, K)
     open_bins = 2.0 / (2.0 + np.maximum(beyond, 0.0))     # half open with two tracers beyond
     past = np.concatenate([np.zeros((3, bc.size, 1)), np.cumsum(open_bins * np.diff(jac, axis=2), axis=2)], axis=2)
-    pull = np.nan_to_num(np.asarray(getattr(layer, "pull", np.zeros(3)), float).reshape(3))
-    return var, np.maximum(np.einsum("ipn,ij,jpn->pn", past, cov + np.outer(pull, pull), past), 0.0)
+    return var, np.maximum(np.einsum("ipn,ij,jpn->pn", past, layer.error_covariance(), past), 0.0)
 
 
 def _predict_terms(lat, terms, xs, f_mode):
