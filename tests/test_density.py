@@ -601,6 +601,52 @@ def test_unresolved_variance_from_cells_matches_the_tracer_by_tracer_sum():
         assert np.all(np.abs(got[:, j] - want) <= 0.5 * want + 1e-3)   # at the fringe, the same order
 
 
+def test_a_lone_wrong_member_raises_no_cell_but_tracers_behind_a_cloud_do():
+    """Misses raise the prior's cells where tracers agree; a gross outlier alone raises none.
+
+    A wrong member 1.9 mag off even the fit with it inside (19 of its errors) near the Sun at
+    b = 12 deg, where the layer holds little dust, used to raise its cells to the cap (its
+    Student-t weight 4 / (4 + 19^2) still left 0.04 mag^2); 40 tracers behind a cloud, each
+    missed by 0.5 mag and 3 errors off the fit, raise theirs.
+    """
+    from scipy import stats
+
+    from dustkit.density.heldout import OUTLIER_Z, cell_boost, held_out_excess
+    from dustkit.layer import DustLayer
+
+    # an 8-sigma cut: a Student-t of 4 degrees of freedom passes it with probability 0.0013
+    # (scipy.stats, Student 1908; common practice: hard rejection of gross outliers)
+    assert 2 * stats.t.sf(OUTLIER_Z, 4) == pytest.approx(0.0013, abs=1e-4)
+    rng = np.random.default_rng(11)
+    n = 3000
+    l, b, d = rng.uniform(30, 70, n), rng.uniform(-15, 15, n), rng.uniform(200, 3000, n)
+    ae, pvar = np.full(n, 0.1), np.full(n, 0.01)
+    resid = rng.normal(0.0, np.sqrt(pvar + ae**2))
+    fitted = np.ones(n)
+    av = fitted + rng.normal(0.0, 0.1, n)
+    cloud = (np.hypot(l - 50, b) < 4) & (d > 1000)
+    resid[cloud], av[cloud] = 0.5, fitted[cloud] + 0.3
+    lone = 0
+    l[lone], b[lone], d[lone], resid[lone], av[lone] = 40.0, 12.0, 300.0, 2.0, fitted[lone] + 1.9
+    assert cloud.sum() >= 40 and not cloud[lone]
+    excess = held_out_excess(av, ae, fitted, resid, pvar, fitted, 0.0, np.zeros(n, bool))
+    assert excess[lone] == 0.0 and np.all(excess[cloud] > 0.01)
+    grid = Grid(32, default_distance_edges(3000.0), "ring")
+    pixels = active_pixels(grid, l, b, 2.0)
+    layer = DustLayer(a0=1.0, h=120.0, z_sun=20.0)
+    def raised(ex):
+        return cell_boost(grid, layer, pixels, l, b, d, ex, np.ones(n), 0.033, 500.0)[0]
+
+    boost = raised(excess)
+    slot = np.searchsorted(pixels, grid.pixel(np.array([50.0, 40.0]), np.array([0.0, 12.0])))
+    no_cloud = raised(np.where(cloud, rng.normal(0.0, 0.01, n), excess))
+    deep = grid.distance_edges[:-1] >= 600.0               # the cloud's tracers lie beyond 1 kpc
+    assert boost[deep, slot[0]].max() > 3.0 and no_cloud[deep, slot[0]].max() < 1.5   # raised by the cloud
+    # the wrong member changes no cell (weighted only by its Student-t weight, it raised its
+    # sight line's cells near the Sun to the cap: 1.6 times what the other tracers' noise gives)
+    np.testing.assert_array_equal(boost, raised(np.where(np.arange(n) == lone, 0.0, excess)))
+
+
 def test_a_bad_thread_count_in_the_environment_is_named(monkeypatch):
     # the user's setting is named with a hint, not a bare int() traceback (common practice)
     from dustkit.density import lattice
