@@ -634,6 +634,7 @@ def test_a_lone_wrong_member_raises_no_cell_but_tracers_behind_a_cloud_do():
     grid = Grid(32, default_distance_edges(3000.0), "ring")
     pixels = active_pixels(grid, l, b, 2.0)
     layer = DustLayer(a0=1.0, h=120.0, z_sun=20.0)
+
     def raised(ex):
         return cell_boost(grid, layer, pixels, l, b, d, ex, np.ones(n), 0.033, 500.0)[0]
 

@@ -340,7 +340,7 @@ class DensityModel:
             cand = evaluate(best[0][0], best[0][1], best[1], draws=np.random.default_rng(self.random_state + 1))
             iso = cand[0][4] < best[0][4]
             best = cand if iso else best
-            (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted, _ = best  # fractions: no raised cells
+            (amp, length, tau, tau_s, *_), xi0, resid, pvar, base, fitted, _ = best  # fractions of this search (README)
             excess = held_out_excess(av, ae, fitted, resid, pvar, base, tau, d > grid.distance_edges[-1])
 
             def raise_cells(a):  # where they miss, more freedom in the cells in front of them
