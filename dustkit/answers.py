@@ -346,12 +346,11 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
     n = len(table)
     values = {c: np.full(n, np.nan) for c in names}
     if ok.any():
-        q = query_table(model, np.asarray(targets.l)[ok] * u.deg, np.asarray(targets.b)[ok] * u.deg,
-                        np.asarray(targets.distance)[ok] * u.pc,
+        lv, bv, dv = (np.asarray(getattr(targets, k), float)[ok] for k in ("l", "b", "distance"))
+        q = query_table(model, lv * u.deg, bv * u.deg, dv * u.pc,
                         distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands), law=law, rv=rv)
         if shared:
-            q["av_err_layer"] = model.layer_err_pc(np.asarray(targets.l)[ok], np.asarray(targets.b)[ok],
-                                                   np.asarray(targets.distance)[ok]) * u.mag
+            q["av_err_layer"] = model.layer_err_pc(lv, bv, dv) * u.mag
         for c in names:
             values[c][ok] = q[c].to_value(u.mag)
     for c in names:
