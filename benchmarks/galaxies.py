@@ -18,8 +18,8 @@ COLUMNS = ("name", "l", "b", "distance", "distance_err", "ebv", "ebv_err")
 
 
 def _noisy(field, n, rng, *, distance_max, scale_height=80.0, near=False, frac_err=(0.06, 0.10),
-           outliers=0.03, l_range=(0, 360), b_range=(-15, 15), distance_min=80.0):
-    """Tracers with E(B-V) errors 0.02 + 5% and log-normal distance errors; a few outliers."""
+           outliers=0.03, l_range=(0, 360), b_range=(-15, 15), distance_min=80.0, ebv_err=(0.02, 0.05)):
+    """Tracers with E(B-V) errors ``ebv_err[0] + ebv_err[1] x E(B-V)`` (0.02 + 5%) and log-normal distance errors; a few outliers."""
     if near:  # magnitude-limited-like: most within 2 kpc (a fraction drawn nearer)
         parts = []
         for dm, share in ((1200.0, 0.45), (2000.0, 0.3), (distance_max, 0.25)):
@@ -33,7 +33,7 @@ def _noisy(field, n, rng, *, distance_max, scale_height=80.0, near=False, frac_e
         t = simulate_tracers(field, n, l_range=l_range, b_range=b_range, distance_max=distance_max,
                              distance_min=distance_min, scale_height=scale_height, distance_frac_err=frac_err, rng=rng)
     true_ebv = np.asarray(t["true_av"]) / RV
-    err = 0.02 + 0.05 * true_ebv
+    err = ebv_err[0] + ebv_err[1] * true_ebv
     ebv = true_ebv + rng.normal(0, err)
     bad = rng.uniform(size=len(t)) < outliers
     ebv[bad] = true_ebv[bad] + rng.choice([-1, 1], bad.sum()) * rng.uniform(0.3, 0.8, bad.sum())
@@ -97,6 +97,29 @@ def make_galaxy(kind, seed=0, small=False, scale=None):
         kw = dict(l_range=(25, 55), b_range=(-8, 8))
         t = _noisy(field, 200, rng, distance_max=3000.0, **kw)
         h = _heldout(field, 3000, rng, distance_max=3000.0, **kw)
+    elif kind == "noisy":     # opt-in: the smooth kind of galaxy with poor data (12-20% distances,
+        # E(B-V) errors 0.04 + 8%, 6% wrong members)
+        clouds = random_clouds(8, (0, 360), (-6, 6), (300, 3000), rng, av_range=(0.5, 2.0), radius_range=(1.0, 3.0))
+        field = DustField(a0=1.0, h=100.0, z_sun=10.0, clouds=clouds)
+        t = _noisy(field, 2000, rng, distance_max=3500.0, frac_err=(0.12, 0.20), outliers=0.06,
+                   ebv_err=(0.04, 0.08))
+        h = _heldout(field, 4000, rng, distance_max=3500.0)
+    elif kind == "thin":      # opt-in: a thin layer (h = 60 pc) and clouds up to |b| = 12 deg
+        clouds = random_clouds(8, (0, 360), (-12, 12), (200, 2000), rng, av_range=(0.4, 1.5), radius_range=(1.5, 4.0))
+        field = DustField(a0=1.6, h=60.0, z_sun=25.0, clouds=clouds)
+        t = _noisy(field, 2000, rng, distance_max=3000.0, b_range=(-25, 25))
+        h = _heldout(field, 4000, rng, distance_max=3000.0, b_range=(-25, 25))
+    elif kind == "broad":     # opt-in: gentler log-normal structure (sigma 0.6) correlated over 100 pc
+        clouds = random_clouds(3, (0, 360), (-5, 5), (300, 2400), rng, av_range=(0.7, 2.0), radius_range=(1.0, 2.5))
+        field = ClumpyField(a0=0.7, h=140.0, z_sun=15.0, sigma=0.6, corr_length=100.0, clouds=clouds,
+                            extent=3200.0, height=400.0, cell=25.0, seed=seed)
+        t = _noisy(field, 3500, rng, distance_max=3000.0)
+        h = _heldout(field, 4000, rng, distance_max=2800.0)
+    elif kind == "giant":     # opt-in: five large clouds (3-5 deg, 1-3 mag), most tracers within 2 kpc
+        clouds = random_clouds(5, (0, 360), (-4, 4), (400, 2500), rng, av_range=(1.0, 3.0), radius_range=(3.0, 5.0))
+        field = DustField(a0=0.8, h=120.0, z_sun=15.0, clouds=clouds)
+        t = _noisy(field, 1500, rng, distance_max=3500.0, near=True)
+        h = _heldout(field, 4000, rng, distance_max=3000.0)
     else:
         raise ValueError(kind)
     return field, tuple(getattr(field, "clouds", ())), t, h
@@ -105,6 +128,10 @@ def make_galaxy(kind, seed=0, small=False, scale=None):
 #: The galaxies ``accuracy.py`` runs by default; ``"veiled"`` (200 tracers over 30 x 16 deg with
 #: three large clouds at 0.8-1.6 kpc, few tracers in front of them) is run on request.
 GALAXIES = ("smooth", "near", "clumpy", "sparse", "tiny", "field")
+#: Opt-in galaxies of other character (poor data, a thin layer with clouds off the plane, gentler
+#: and broader clumps, large clouds), kept apart from the default run so that the choices made on
+#: the default galaxies can be checked on galaxies that served none of them.
+OTHER_GALAXIES = ("noisy", "thin", "broad", "giant", "veiled")
 
 
 def read_catalogue(t):

@@ -474,7 +474,7 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     # past the last tracer the answer is the foreground the tracers fix plus the layer's
     # increment; that increment's error (delta method on the layer's covariance) stays in
     # sigma however well the foreground is known
-    from dustkit.density.estimator import _layer_variance
+    from dustkit.density.layer_share import layer_variance
     from dustkit.layer import DustLayer, layer_av_pc
 
     grid = Grid(4, default_distance_edges(3000.0))
@@ -484,7 +484,7 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     last = int(np.searchsorted(e, 1000.0))             # many tracers just in front of e[last], none beyond
     informing = np.zeros((grid.npix, e.size))           # tracers in front of each edge
     informing[:, last:] = 1e6
-    var, past = _layer_variance(lay, grid, informing)
+    var, past, _ = layer_variance(lay, grid, informing)
     _, bc = grid.pixel_centres()
     p0 = np.array([1.0, 120.0, 20.0])
     jac = []
@@ -506,12 +506,57 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     pull = np.array([0.03, 10.0, -3.0])
     pulled = DustLayer(a0=1.0, h=120.0, z_sun=20.0, a0_err=0.058, h_err=18.0, z_sun_err=5.0, covariance=cov,
                        pull=pull)
-    var_p, past_p = _layer_variance(pulled, grid, informing)
+    var_p, past_p, profile = layer_variance(pulled, grid, informing)
     np.testing.assert_array_equal(var_p, var)
     total = cov + np.outer(pull, pull)
     np.testing.assert_allclose(past_p[:, -1], np.einsum("in,ij,jn->n", np.array(jac), total, np.array(jac)),
                                rtol=0.02, atol=1e-9)
     assert np.all(past_p[:, -1] > past[:, -1])
+    # the pull's profile is how far the pull moves the layer's A_V (first-order Taylor, common practice)
+    np.testing.assert_allclose(profile[:, -1], layer_av_pc(bc, np.full(bc.size, e[-1]), *(p0 + pull))
+                               - layer_av_pc(bc, np.full(bc.size, e[-1]), *p0), rtol=0.05, atol=1e-4)
+
+
+def _pulled_tracers(n, rng, share, noise=0.1):
+    # tracers on an exponential layer, and a fitted model whose answers sit `share` of the
+    # layer's pull too high (the field took back the rest), with Gaussian A_V errors
+    from dustkit.layer import DustLayer, layer_av_pc
+
+    pull = np.array([0.04, 5.0, 2.0])
+    layer = DustLayer(a0=1.04, h=125.0, z_sun=22.0, pull=pull)
+    b, d = rng.uniform(-8, 8, n), rng.uniform(200, 3000, n)
+    truth = layer_av_pc(b, d, 1.0, 120.0, 20.0)
+    predicted = truth + share * (pull @ layer.gradient_pc(b, d))
+    av = truth + rng.normal(0, noise, n)
+    return layer, b, d, 0.05 * d, av, np.full(n, noise), predicted
+
+
+def test_the_share_of_the_pull_left_in_the_answers_is_what_the_tracers_show():
+    # the weighted least-squares scale of the residuals on the pull's profile (common
+    # practice), with its standard error: half of the pull left -> about 0.5; none left ->
+    # about its standard error; a handful of tracers cannot rule the whole pull out -> 1
+    from dustkit.density.layer_share import remaining_pull
+
+    rng = np.random.default_rng(3)
+    half = [remaining_pull(*_pulled_tracers(3000, rng, 0.5)) for _ in range(5)]
+    assert all(0.4 <= h <= 0.6 for h in half)
+    none = remaining_pull(*_pulled_tracers(3000, rng, 0.0))
+    assert none < 0.15
+    assert remaining_pull(*_pulled_tracers(8, rng, 0.0)) > 0.5
+    # tracers behind clouds the model did not follow (far above it) are left out: they do
+    # not talk the pull away (clouds only add extinction)
+    layer, b, d, de, av, ae, predicted = _pulled_tracers(3000, rng, 0.5)
+    behind = rng.uniform(size=b.size) < 0.15
+    av[behind] += 1.5
+    assert 0.4 <= remaining_pull(layer, b, d, de, av, ae, predicted) <= 0.6
+    # duplicate weights: the same tracers listed twice, each at weight 1/2, say the same
+    twice = [np.concatenate([x, x]) for x in (b, d, de, av, ae, predicted)]
+    assert remaining_pull(layer, *twice, weight=np.full(2 * b.size, 0.5)) == pytest.approx(
+        remaining_pull(layer, b, d, de, av, ae, predicted), rel=1e-9)
+    # a layer without a pull leaves nothing
+    from dustkit.layer import DustLayer
+
+    assert remaining_pull(DustLayer(a0=1.0, h=120.0, z_sun=20.0), b, d, de, av, ae, predicted) == 0.0
 
 
 def test_answers_beyond_the_data_carry_the_clouds_pull_on_the_layer(fitted):

@@ -22,6 +22,7 @@ from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
                       local_bias_variance, placement_variance, unresolved_variance)
+from .layer_share import layer_variance, remaining_pull
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
@@ -361,16 +362,16 @@ class DensityModel:
                                     inp.weight * fitted_ok, float(np.sqrt(grid.pixel_area.to_value(u.deg**2))), rng)
         bias2[pixels] += placement_variance(grid, pixels, self.av_[pixels] - self._layer_nodes()[pixels], inp.l, inp.b,
                                             inp.d, inp.de, grid.distance_edges[-1], inp.weight)
+        self.pull_left_ = _left_of_pull(layer, inp, post, terms)
         self._errors(layer, unresolved_variance(grid, l, b, d, excess, weight) + bias2, tau_s)
         self.cv_ = _cv_table(rows, folds_n)
         self.build_report_ = {
             "model": "3-D log-normal density", "n_tracers": n, "n_active_pixels": int(pixels.size),
             "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": inp.floored,
-            "tracers_for_hyperparameters": n_cv,
-            "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
+            "tracers_for_hyperparameters": n_cv, "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
-            "threads": _lattice.THREADS, "isotropic": bool(iso),
+            "threads": _lattice.THREADS, "isotropic": bool(iso), "pull_left": round(self.pull_left_, 3),
         }
         return self
 
@@ -380,8 +381,10 @@ class DensityModel:
         # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
         # leans on the prior; where tracers inform it, the field's posterior absorbs the
         # layer's misfit (weight 1 - support)
-        layer_var, past = _layer_variance(layer, self.grid_, self.n_tracers_)
-        self.layer_err_ = np.sqrt(np.maximum((1.0 - self.support_) * layer_var, past))
+        # and what is left of the clouds' pull on the layer, as the tracers show it (pull_left_)
+        layer_var, past, pull_profile = layer_variance(layer, self.grid_, self.n_tracers_)
+        self.layer_err_ = np.sqrt(np.maximum((1.0 - self.support_) * layer_var, past)
+                                  + (getattr(self, "pull_left_", 0.0) * pull_profile) ** 2)
         self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
         self.structure_tau_ = float(tau_s)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
@@ -401,7 +404,8 @@ class DensityModel:
         """
         t_start = time.perf_counter()
         grid = self.grid_
-        l, b, d, de, av, ae, _, weight, _, corr, shift, layer = _tracer_inputs(tracers, self.random_state)
+        inp = _tracer_inputs(tracers, self.random_state)
+        l, b, d, de, av, ae, _, weight, _, corr, shift, layer = inp
         lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_,
                       bool(getattr(self, "isotropic_", 0.0)))
         col = np.searchsorted(lat.pixels, grid.pixel(l, b))
@@ -414,6 +418,7 @@ class DensityModel:
         unresolved = self.unresolved_ * ratio**2
         self._store(grid, layer, lat, post, xs, self.tau_, tracers)
         self.mode_ = post.xi
+        self.pull_left_ = _left_of_pull(layer, inp, post, terms)
         self._errors(layer, unresolved, self.structure_tau_)
         self.build_report_ = {**getattr(self, "build_report_", {}), "converged": bool(post.converged),
                               "seconds": round(time.perf_counter() - t_start, 2),
@@ -753,33 +758,10 @@ def _scaled_cov(cov, ratio):
     return np.asarray(cov, float) * scale[:, None] * scale[None, :]
 
 
-def _layer_variance(layer, grid, informing):
-    """Variance (mag^2) of the layer's cumulative A_V at every pixel centre and edge from its parameter covariance.
-
-    The delta method with central differences in (a0, h, z_sun). ``informing`` is the
-    kernel-weighted count of tracers in front of each node, (npix, n_edges); also returned
-    is the variance of the layer's share past the data: a distance bin with no informing
-    tracer in or beyond it is not constrained by any tracer, so the layer's error on
-    its increment reaches every node behind it, however well the foreground is known (the
-    support of the cumulative A_V says nothing of it); with ``n`` such tracers, a share
-    ``2 / (2 + n)`` of it (the kernel-weighted counts spread over the sky kernel).
-
-    The first uses the statistical covariance (where tracers inform an answer, the field's
-    posterior absorbs the layer's misfit); the share past the data adds ``outer(pull, pull)``
-    (:attr:`DustLayer.pull`, the clouds' systematic pull): no tracer corrects it there. (In
-    ``benchmarks/accuracy.py`` the answers at |b| > 10 deg are the layer's to 0.0002 mag, their
-    error its misfit; inside 1 sigma 26-69% in six of 30 draws without the pull, 59-93% with.)
-    """
-    _, bc = grid.pixel_centres()
-    e = grid.distance_edges
-    jac = layer.gradient_pc(np.repeat(bc, e.size), np.tile(e, bc.size))   # (3, npix * E)
-    cov = np.nan_to_num(np.asarray(layer.covariance, float))
-    var = np.maximum(np.einsum("in,ij,jn->n", jac, cov, jac), 0.0).reshape(bc.size, e.size)
-    jac = jac.reshape(3, bc.size, e.size)
-    beyond = informing[:, -1:] - informing[:, :-1]          # tracers in or beyond each bin (npix, K)
-    open_bins = 2.0 / (2.0 + np.maximum(beyond, 0.0))     # half open with two tracers beyond
-    past = np.concatenate([np.zeros((3, bc.size, 1)), np.cumsum(open_bins * np.diff(jac, axis=2), axis=2)], axis=2)
-    return var, np.maximum(np.einsum("ipn,ij,jpn->pn", past, layer.error_covariance(), past), 0.0)
+def _left_of_pull(layer, inp, post, terms):
+    """:func:`remaining_pull` of a fit: its tracer inputs (at the distances the layer was fitted at) and posterior."""
+    return remaining_pull(layer, inp.b, inp.d * np.exp(inp.shift), inp.de, inp.av, inp.ae, post.predicted,
+                          inp.weight, terms.censored)
 
 
 def _predict_terms(lat, terms, xs, f_mode):
@@ -795,12 +777,12 @@ def _predict_terms(lat, terms, xs, f_mode):
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
                  "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
-_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_")
+_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_", "pull_left_")
 
 
 def _scalar(model, name):
     """A fitted scalar; models loaded from files written before it existed get its neutral value."""
-    default = {"structure_tau_": 0.0, "isotropic_": 0.0}.get(name)
+    default = {"structure_tau_": 0.0, "isotropic_": 0.0, "pull_left_": 0.0}.get(name)
     return float(getattr(model, name, default))
 
 
