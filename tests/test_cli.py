@@ -416,6 +416,9 @@ def test_density_build_says_when_a_subset_chose_the_hyperparameters(files, tmp_p
                         "--distance-unit", "kpc", check_rc=0)
     assert "3-D log-normal density" in out
     assert "learned on a random 100 of the 249 tracers" in out
+    # and how much of the clouds' pull on the layer its tracers show is left (the errors carry it)
+    share = load_model(tmp_path / "m.fits").pull_left_
+    assert 0.0 <= share <= 1.0 and f"{share:.2f} of the clouds' pull on the layer left in the answers' errors" in out
 
 
 def test_features_help_states_the_finder_defaults(call):
