@@ -33,6 +33,10 @@ Targets (issue of the features): >= 75% of the testable clouds found at the righ
 distance, <= 1 false feature per galaxy with the defaults.
 
     python benchmarks/features.py [--galaxies smooth,near,clumpy] [--seeds 0,1,2] [--no-baseline] [--scale 0.4]
+    python benchmarks/features.py --galaxies noisy,thin,giant --seeds 1,2,3,4,5,6 --no-baseline   # other character
+
+Any galaxy of ``galaxies.py`` with clouds can be named, among them the opt-in ones of
+``OTHER_GALAXIES`` (poor data, clouds off the plane, large clouds), which served no choice.
 """
 
 import argparse
