@@ -166,6 +166,10 @@ class DensityModel:
         Unresolved fraction of the extinction above the layer (clouds' own unresolved parts).
     isotropic_ : float
         1.0 where the held-out score chose the isotropic prior (:class:`~.lattice.Lattice`), else 0.0.
+    pull_left_ : float
+        Share (0-1) of the clouds' pull on the layer still in the answers, as the fitted
+        model's tracers show it; that share of the pull's profile is in ``layer_err_``
+        (:func:`~.layer_share.remaining_pull`).
     av_, av_err_ : ndarray (npix, n_edges)
         Cumulative A_V at pixel centres (posterior mode) and its predictive 1-sigma error
         (posterior, unresolved and ``tau`` parts together; the prior's where no tracer informs).
