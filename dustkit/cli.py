@@ -574,7 +574,7 @@ def _cmd_build(args, out):
                < rep["n_tracers"] else "")
             + f"; {rep['duplicate_groups']} groups of "
             f"near-duplicate tracers counted once; {rep['censored']} tracers beyond the grid used as bounds; "
-            f"{rep.get('pull_left', 0.0):.2f} of the clouds' pull on the layer left in the answers' errors "
+            f"{rep['pull_left']:.2f} of the clouds' pull on the layer left in the answers' errors "
             "(as the tracers show it).")
     else:
         out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
@@ -923,7 +923,7 @@ def _cmd_demo(args, out):
     rep = model.build_report_
     out(f"   chosen by spatially blocked cross-validation: log-density amplitude {model.amplitude_:g}, "
         f"correlation length {model.length_:.0f} pc; {rep['boosted_pixels']} pixels with a raised amplitude "
-        f"near clouds; {rep.get('pull_left', 0.0):.2f} of the layer's pull left in the errors; "
+        f"near clouds; {rep['pull_left']:.2f} of the layer's pull left in the errors; "
         f"built in {rep['seconds']:.0f} s on {rep['threads']} thread(s)")
     written.append(("model file", save_model(model, folder / "veyra_model.fits", overwrite=True)))
     written.append(("binned table (ECSV, units kept)", export_table(model, folder / "veyra_table.ecsv", overwrite=True)))

@@ -182,9 +182,13 @@ class DustLayer:
             rows.append((layer_av_pc(b_deg, distance_pc, *hi) - layer_av_pc(b_deg, distance_pc, *lo)) / (2 * steps[j]))
         return np.asarray(rows)
 
+    def pull_vector(self):
+        """The pull (a0, h, z_sun) as a float array of 3 (NaN read as 0; zeros for a layer without one)."""
+        return np.nan_to_num(np.asarray(getattr(self, "pull", np.zeros(3)), float).reshape(3))
+
     def error_covariance(self):
         """The parameters' full error covariance (3, 3): ``covariance`` plus ``outer(pull, pull)`` (NaN read as 0)."""
-        pull = np.nan_to_num(np.asarray(getattr(self, "pull", np.zeros(3)), float).reshape(3))
+        pull = self.pull_vector()
         return np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(pull, pull)
 
     def error_directions(self, b_deg, distance_pc):

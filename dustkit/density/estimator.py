@@ -388,7 +388,7 @@ class DensityModel:
         # and what is left of the clouds' pull on the layer, as the tracers show it (pull_left_)
         layer_var, past, pull_profile = layer_variance(layer, self.grid_, self.n_tracers_)
         self.layer_err_ = np.sqrt(np.maximum((1.0 - self.support_) * layer_var, past)
-                                  + (getattr(self, "pull_left_", 0.0) * pull_profile) ** 2)
+                                  + (self.pull_left_ * pull_profile) ** 2)
         self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
         self.structure_tau_ = float(tau_s)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_

@@ -43,7 +43,7 @@ def layer_variance(layer, grid, informing):
     jac = layer.gradient_pc(np.repeat(bc, e.size), np.tile(e, bc.size))   # (3, npix * E)
     cov = np.nan_to_num(np.asarray(layer.covariance, float))
     var = np.maximum(np.einsum("in,ij,jn->n", jac, cov, jac), 0.0).reshape(bc.size, e.size)
-    pull = np.nan_to_num(np.asarray(getattr(layer, "pull", np.zeros(3)), float).reshape(3))
+    pull = layer.pull_vector()
     profile = (pull @ jac).reshape(bc.size, e.size)
     jac = jac.reshape(3, bc.size, e.size)
     beyond = informing[:, -1:] - informing[:, :-1]          # tracers in or beyond each bin (npix, K)
@@ -68,7 +68,7 @@ def remaining_pull(layer, b, d, de, av, ae, predicted, weight=None, censored=Non
     tracers). Zero when the layer has no pull. ``d`` are the distances the layer was fitted at.
     """
     b, d, de, av, ae, predicted = (np.asarray(x, float) for x in (b, d, de, av, ae, predicted))
-    pull = np.nan_to_num(np.asarray(getattr(layer, "pull", np.zeros(3)), float).reshape(3))
+    pull = layer.pull_vector()
     weight = np.ones(b.size) if weight is None else np.asarray(weight, float)
     sigma = np.sqrt(ae**2 + (layer.slope_pc(b, d) * de) ** 2)
     r = av - predicted
