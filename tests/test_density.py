@@ -484,7 +484,7 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     last = int(np.searchsorted(e, 1000.0))             # many tracers just in front of e[last], none beyond
     informing = np.zeros((grid.npix, e.size))           # tracers in front of each edge
     informing[:, last:] = 1e6
-    var, past, _ = layer_variance(lay, grid, informing)
+    var, past, _, _ = layer_variance(lay, grid, informing)
     _, bc = grid.pixel_centres()
     p0 = np.array([1.0, 120.0, 20.0])
     jac = []
@@ -500,21 +500,33 @@ def test_the_layer_error_past_the_last_tracer_reaches_the_answers():
     assert np.all(past[:, :last] < 1e-4 * var[:, :last] + 1e-12)   # in front: the support rules
 
     # the clouds' pull on the layer (a systematic error no tracer corrects past the data)
-    # widens only the share past the data, by the delta method on cov + pull pull^T
-    # (variance of a sum of independent errors, common practice); where tracers inform, the
-    # statistical covariance stays
+    # widens the share past the data, by the delta method on cov + pull pull^T (variance of
+    # a sum of independent errors, common practice); where tracers inform, the statistical
+    # covariance stays
+    from dustkit.density.layer_share import layer_error_variance
+
     pull = np.array([0.03, 10.0, -3.0])
     pulled = DustLayer(a0=1.0, h=120.0, z_sun=20.0, a0_err=0.058, h_err=18.0, z_sun_err=5.0, covariance=cov,
                        pull=pull)
-    var_p, past_p, profile = layer_variance(pulled, grid, informing)
+    var_p, past_p, profile, past_profile = layer_variance(pulled, grid, informing)
     np.testing.assert_array_equal(var_p, var)
+    np.testing.assert_array_equal(past_p, past)
     total = cov + np.outer(pull, pull)
-    np.testing.assert_allclose(past_p[:, -1], np.einsum("in,ij,jn->n", np.array(jac), total, np.array(jac)),
+    informed = np.ones_like(var)   # support 1 everywhere: only the share past the data and the pull remain
+    none_left = layer_error_variance(informed, var_p, past_p, profile, past_profile, 0.0)
+    np.testing.assert_allclose(none_left[:, -1], np.einsum("in,ij,jn->n", np.array(jac), total, np.array(jac)),
                                rtol=0.02, atol=1e-9)
-    assert np.all(past_p[:, -1] > past[:, -1])
+    assert np.all(none_left[:, -1] > past[:, -1])
     # the pull's profile is how far the pull moves the layer's A_V (first-order Taylor, common practice)
     np.testing.assert_allclose(profile[:, -1], layer_av_pc(bc, np.full(bc.size, e[-1]), *(p0 + pull))
                                - layer_av_pc(bc, np.full(bc.size, e[-1]), *p0), rtol=0.05, atol=1e-4)
+    # the pull is one offset: all of it left in the answers counts it once (the whole
+    # profile), not once for the share past the data and again for what the field left
+    all_left = layer_error_variance(informed, var_p, past_p, profile, past_profile, 1.0)
+    np.testing.assert_allclose(all_left, past + profile**2, rtol=1e-12)
+    half = layer_error_variance(informed, var_p, past_p, profile, past_profile, 0.5)
+    np.testing.assert_allclose(half[:, :last], (0.5 * profile[:, :last]) ** 2, rtol=1e-3, atol=1e-12)  # in front: half
+    assert np.all(half[:, -1] <= all_left[:, -1] + 1e-12) and np.all(half[:, -1] >= none_left[:, -1] - 1e-12)
 
 
 def _pulled_tracers(n, rng, share, noise=0.1):

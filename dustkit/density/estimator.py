@@ -22,7 +22,7 @@ from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
                       local_bias_variance, placement_variance, unresolved_variance)
-from .layer_share import layer_variance, remaining_pull
+from .layer_share import layer_error_variance, layer_variance, remaining_pull
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
@@ -383,12 +383,12 @@ class DensityModel:
         """The answers' predictive errors at the nodes, from the stored posterior and the unresolved parts."""
         self.unresolved_ = unresolved
         # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
-        # leans on the prior; where tracers inform it, the field's posterior absorbs the
-        # layer's misfit (weight 1 - support)
-        # and what is left of the clouds' pull on the layer, as the tracers show it (pull_left_)
-        layer_var, past, pull_profile = layer_variance(layer, self.grid_, self.n_tracers_)
-        self.layer_err_ = np.sqrt(np.maximum((1.0 - self.support_) * layer_var, past)
-                                  + (self.pull_left_ * pull_profile) ** 2)
+        # leans on the prior (where tracers inform it, the field's posterior absorbs the
+        # layer's misfit) or past the data; and the clouds' pull on the layer: what the field
+        # left of it (pull_left_, as the tracers show it), all of it past the data
+        layer_var, past, profile, past_profile = layer_variance(layer, self.grid_, self.n_tracers_)
+        self.layer_err_ = np.sqrt(layer_error_variance(self.support_, layer_var, past, profile, past_profile,
+                                                       self.pull_left_))
         self.prior_err_ = np.sqrt(self.prior_err_**2 + layer_var)
         self.structure_tau_ = float(tau_s)
         self.av_err_ = np.sqrt(self.posterior_err_**2 + self.layer_err_**2 + self.unresolved_
