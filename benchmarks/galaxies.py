@@ -120,6 +120,10 @@ def make_galaxy(kind, seed=0, small=False, scale=None):
         field = DustField(a0=0.8, h=120.0, z_sun=15.0, clouds=clouds)
         t = _noisy(field, 1500, rng, distance_max=3500.0, near=True)
         h = _heldout(field, 4000, rng, distance_max=3000.0)
+    elif kind == "plain":     # opt-in: the smooth galaxy's catalogue with no clouds at all (the truth is the layer)
+        field = DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=())
+        t = _noisy(field, 2500, rng, distance_max=4000.0)
+        h = _heldout(field, 4000, rng, distance_max=4000.0)
     else:
         raise ValueError(kind)
     return field, tuple(getattr(field, "clouds", ())), t, h
@@ -129,9 +133,9 @@ def make_galaxy(kind, seed=0, small=False, scale=None):
 #: three large clouds at 0.8-1.6 kpc, few tracers in front of them) is run on request.
 GALAXIES = ("smooth", "near", "clumpy", "sparse", "tiny", "field")
 #: Opt-in galaxies of other character (poor data, a thin layer with clouds off the plane, gentler
-#: and broader clumps, large clouds), kept apart from the default run so that the choices made on
-#: the default galaxies can be checked on galaxies that served none of them.
-OTHER_GALAXIES = ("noisy", "thin", "broad", "giant", "veiled")
+#: and broader clumps, large clouds, no clouds at all), kept apart from the default run so that
+#: the choices made on the default galaxies can be checked on galaxies that served none of them.
+OTHER_GALAXIES = ("noisy", "thin", "broad", "giant", "plain", "veiled")
 
 
 def read_catalogue(t):
