@@ -186,10 +186,14 @@ class DustLayer:
         """The pull (a0, h, z_sun) as a float array of 3 (NaN read as 0; zeros for a layer without one)."""
         return np.nan_to_num(np.asarray(getattr(self, "pull", np.zeros(3)), float).reshape(3))
 
+    def statistical_covariance(self):
+        """The parameters' statistical error covariance (3, 3), ``covariance`` as a float array (NaN read as 0)."""
+        return np.nan_to_num(np.asarray(self.covariance, float))
+
     def error_covariance(self):
         """The parameters' full error covariance (3, 3): ``covariance`` plus ``outer(pull, pull)`` (NaN read as 0)."""
         pull = self.pull_vector()
-        return np.nan_to_num(np.asarray(self.covariance, float)) + np.outer(pull, pull)
+        return self.statistical_covariance() + np.outer(pull, pull)
 
     def error_directions(self, b_deg, distance_pc):
         """Unit vectors (n, 3) along which the parameters' errors move A_V at each position.

@@ -44,7 +44,7 @@ def layer_variance(layer, grid, informing):
     _, bc = grid.pixel_centres()
     e = grid.distance_edges
     jac = layer.gradient_pc(np.repeat(bc, e.size), np.tile(e, bc.size))   # (3, npix * E)
-    cov = np.nan_to_num(np.asarray(layer.covariance, float))
+    cov = layer.statistical_covariance()
     var = np.maximum(np.einsum("in,ij,jn->n", jac, cov, jac), 0.0).reshape(bc.size, e.size)
     pull = layer.pull_vector()
     profile = (pull @ jac).reshape(bc.size, e.size)
