@@ -11,6 +11,11 @@ every stratum with >= 30 points; median |z| 0.55-0.80.
 
     python benchmarks/accuracy.py [--galaxies smooth,near,...] [--seed 1] [--binned] [--out FOLDER]
     python benchmarks/accuracy.py --galaxies tiny,sparse --pool 10   # 10 draws each, pooled
+    python benchmarks/accuracy.py --galaxies sparse --pool 12 --given-layer 0.05
+
+``--given-layer F`` gives the model (and the baseline) each invented galaxy's own smooth layer
+with relative errors F on a0 and h (and F x 100 pc on z_sun) instead of fitting one: what a user
+gets with a layer from a wider catalogue (``DensityModel(layer=...)``, ``--layer-from``).
 
 ``--pool N`` scores N draws of each galaxy (seeds 1..N) with their held-out positions pooled:
 in a small catalogue one draw's coverage is nearly all or nothing (the layer's error is shared
@@ -30,20 +35,26 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 import dustkit  # noqa: E402
 from dustkit.density import DensityModel  # noqa: E402
+from dustkit.layer import DustLayer  # noqa: E402
 from galaxies import GALAXIES, baseline_predict, make_galaxy, read_catalogue, score, strata  # noqa: E402
 
 
-def run(kind, seed, binned=False):
+def run(kind, seed, binned=False, given_layer=None):
     field, clouds, t, (l, b, d) = make_galaxy(kind, seed=seed)
     tracers = read_catalogue(t)
     truth = field.av(l, b, d)
     models = {}
+    layer = None
+    if given_layer is not None:  # the invented layer, as if from a wider catalogue, with errors
+        f = float(given_layer)
+        layer = DustLayer(a0=field.a0, h=field.h, z_sun=field.z_sun, a0_err=f * field.a0, h_err=f * field.h,
+                          z_sun_err=100.0 * f)
     t0 = time.perf_counter()
-    models["density"] = DensityModel(quiet=True).fit(tracers)
+    models["density"] = DensityModel(quiet=True, layer=layer).fit(tracers)
     seconds = {"density": time.perf_counter() - t0}
     if binned:
         t0 = time.perf_counter()
-        models["binned"] = dustkit.ExtinctionModel(quiet=True).fit(tracers)
+        models["binned"] = dustkit.ExtinctionModel(quiet=True, layer=layer).fit(tracers)
         seconds["binned"] = time.perf_counter() - t0
     base = baseline_predict(models["density"].layer_.av_pc, t, l, b, d)
     masks = strata(clouds, t, l, b, d)
@@ -69,16 +80,18 @@ def main():
     ap.add_argument("--out", default=None, help="folder for a sight-line figure per galaxy")
     ap.add_argument("--pool", type=int, default=0,
                     help="instead: score the galaxies over N draws (seeds 1..N) pooled, per stratum")
+    ap.add_argument("--given-layer", type=float, default=None, metavar="F",
+                    help="give the models each galaxy's own layer with relative errors F instead of fitting one")
     args = ap.parse_args()
     if args.pool:
-        return _pooled(args.galaxies.split(","), args.pool)
+        return _pooled(args.galaxies.split(","), args.pool, args.given_layer)
     print("* = outside the target (coverage 0.62-0.74 overall / 0.55-0.85 per stratum; ratio <= 0.85; "
           "median |z| 0.55-0.80 overall)")
     print(f"{'galaxy':8} {'model':8} {'stratum':24} {'n':>5} {'RMS':>6} {'base':>6} {'ratio':>6} "
           f"{'med|e|':>7} {'cover':>6} {'med|z|':>6}")
     ratios = []
     for kind in args.galaxies.split(","):
-        models, seconds, rows, (field, t) = run(kind, args.seed, args.binned)
+        models, seconds, rows, (field, t) = run(kind, args.seed, args.binned, args.given_layer)
         for g, name, stratum, s, base_rms in rows:
             if s["n"] < 30:
                 continue
@@ -103,7 +116,7 @@ def main():
         print(f"mean RMS ratio to the baseline (density model): {np.mean(ratios):.2f} (target <= 0.80)")
 
 
-def _pooled(kinds, n_draws):
+def _pooled(kinds, n_draws, given_layer=None):
     """Coverage and median |z| over ``n_draws`` draws of each galaxy, positions pooled.
 
     In a small catalogue most of the error is the fitted layer's, one error shared by every
@@ -115,7 +128,7 @@ def _pooled(kinds, n_draws):
     for kind in kinds:
         pooled = {}
         for seed in range(1, n_draws + 1):
-            _, _, rows, _ = run(kind, seed)
+            _, _, rows, _ = run(kind, seed, given_layer=given_layer)
             for _, _, stratum, s, base_rms in rows:
                 pooled.setdefault(stratum, []).append((s, base_rms))
         for stratum, items in pooled.items():

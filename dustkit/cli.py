@@ -220,6 +220,10 @@ def build_parser():
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run the out-of-core build on this dask scheduler (e.g. tcp://host:8786; "
                         "default: local threads)")
+    p.add_argument("--layer-from", metavar="LAYER.json",
+                   help="use this smooth dust layer instead of fitting one to CATALOG (JSON with a0 in mag/kpc, "
+                        "h and z_sun in pc and their errors, as 'dustkit layer OTHER_CATALOG --json' writes): "
+                        "in a small region where clouds hold much of the dust they lift a layer fitted there")
     p.add_argument("--overwrite", action="store_true", help="replace MODEL.fits if it exists")
 
     p = sub("estimate", "Estimate A_V (and A in other bands) for a list of targets from a saved model.")
@@ -445,14 +449,28 @@ def _read_tracers(args, path, summary_shown=True):
     return tracers
 
 
-def _layer_lines(layer):
+def _given_layer_file(path):
+    """The layer of a JSON file (``dustkit layer --json``), with a clear error for a bad file."""
+    from .layer import DustLayer
+
+    try:
+        values = json.loads(Path(path).read_text())
+    except FileNotFoundError:
+        raise _UsageError(f"--layer-from: no file {path}") from None
+    except (OSError, ValueError) as exc:
+        raise _UsageError(f"--layer-from: {path} is not a JSON file ({_one_line(exc)}); "
+                          "write one with 'dustkit layer CATALOG --json > layer.json'") from None
+    return DustLayer.from_dict(values)
+
+
+def _layer_lines(layer, given=None):
+    how = f"given in {given}, not fitted" if given else "robust fit to the tracers"
     return [
-        "Dust layer (exponential in height, robust fit to the tracers):",
+        f"Dust layer (exponential in height, {how}):",
         f"  a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc   (mid-plane A_V per kpc)",
         f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        (scale height)",
         f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        (height of the Sun above the mid-plane)",
-        f"  scatter of tracers around it: {layer.scatter:.3f} mag (from {layer.n_used} tracers)",
-    ] + ([f"  the errors include the pull of dust above the layer (clouds): a0 {abs(pull[0]):.3f} mag/kpc, "
+    ] + ([] if given else [f"  scatter of tracers around it: {layer.scatter:.3f} mag (from {layer.n_used} tracers)"]) + ([f"  the errors include the pull of dust above the layer (clouds): a0 {abs(pull[0]):.3f} mag/kpc, "
           f"h {abs(pull[1]):.1f} pc, z_sun {abs(pull[2]):.1f} pc"] if any(pull := [float(x) for x in layer.pull]) else [])
 
 
@@ -529,6 +547,8 @@ def _cmd_build(args, out):
     _check_law(args)
     columns = _columns(args.column)
     check_target(args.output, args.overwrite)  # fail before a long build, not after
+    if getattr(args, "layer_from", None):
+        kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path
 
     path_kind = "memory" if getattr(args, "in_memory", False) else build_path(args.catalog, args.chunk_size, args.scheduler)
@@ -561,7 +581,7 @@ def _cmd_build(args, out):
         if kind == "binned":
             kw["uncertainty"] = getattr(args, "uncertainty", "auto")
         model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))
-    out(*_layer_lines(model.layer_))
+    out(*_layer_lines(model.layer_, given=getattr(args, "layer_from", None)))
     g = model.grid_
     if hasattr(model, "amplitude_"):
         rep = model.build_report_
@@ -573,9 +593,9 @@ def _cmd_build(args, out):
                "the final fit uses them all)" if rep.get("tracers_for_hyperparameters", rep["n_tracers"])
                < rep["n_tracers"] else "")
             + f"; {rep['duplicate_groups']} groups of "
-            f"near-duplicate tracers counted once; {rep['censored']} tracers beyond the grid used as bounds; "
-            f"{rep['pull_left']:.2f} of the clouds' pull on the layer left in the answers' errors "
-            "(as the tracers show it).")
+            f"near-duplicate tracers counted once; {rep['censored']} tracers beyond the grid used as bounds"
+            + ("." if rep.get("layer_given") else f"; {rep['pull_left']:.2f} of the clouds' pull on the layer left "
+               "in the answers' errors (as the tracers show it)."))
     else:
         out(f"Model: {g.npix} pixels of {g.pixel_area.value:.2f} deg^2 x {g.n_bins} distance bins "
             f"({g.distance_edges[0]:g}..{g.distance_edges[-1]:g} pc); {len(model.informed_pixels())} pixels "

@@ -33,11 +33,9 @@ All writes are atomic: the file is written to a temporary file in the same folde
 moved over the target with :func:`os.replace`; a failed write leaves an existing file intact.
 """
 
-import json
 import os
 import textwrap
 import warnings
-from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -48,6 +46,7 @@ from .exceptions import DustkitError, ModelFileError
 from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
 from .binned.finish import empty_pixel_fill
 from ._lib.validation import check_choice
+from .tracers.stored import tracers_from_hdu, tracers_hdu
 
 __all__ = [
     "save_model",
@@ -78,9 +77,6 @@ _STATE_FLOATS = (
     "a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err", "layer_scatter",
     "walk_variance", "distance_smoothing", "rv",
 )
-_TRACER_FLOATS = ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "temperature")
-_TRACER_UNITS = {"l": "deg", "b": "deg", "distance": "pc", "distance_err": "pc", "temperature": "K"}
-
 
 # ============================================================================ helpers
 
@@ -273,64 +269,15 @@ def _state_hdu(model, state):
     sh["P_NFOLDS"] = (int(params["n_folds"]), "constructor parameter")
     sh["P_SEED"] = (-1 if params["random_state"] is None else int(params["random_state"]), "constructor parameter")
     sh["P_PASSES"] = (",".join(str(int(p)) for p in params["sky_passes"]), "constructor parameter")
+    sh["P_LAYER"] = (bool(params.get("layer_given", False)), "layer given instead of fitted")
     sh["LAW"] = str(info["law"])
     return st
 
 
 def _tracers_hdu(model, state):
-    """TRACERS: the tracers the model was built from, with their metadata."""
-    from astropy.io import fits
-
-    info = state["tracer_info"]
-    tmeta = info.get("meta") or {}
-    tr = state["tracers"]
-    tcols = []
-    if "name" in tr:  # names as given; without them the names are "row <ROW>", made again on reading
-        names = np.char.encode(np.asarray(tr["name"]).astype(str), "utf-8")  # FITS strings are bytes
-        tcols.append(fits.Column(name="NAME", format=f"{max(1, names.dtype.itemsize)}A", array=names))
-    # A_V given as such: EXCESS and EXCESS_ERR would repeat AV and AV_ERR bit for bit (16 bytes a tracer,
-    # a fifth of a large file); they are then left out and made again on reading (EXCSAME)
-    same = (str(info.get("excess_kind", "A_V")) == "A_V" and all(k in tr for k in ("excess", "excess_err"))
-            and np.array_equal(tr["excess"], tr["av"]) and np.array_equal(tr["excess_err"], tr["av_err"]))
-    for k in _TRACER_FLOATS:
-        if k in tr and not (same and k in ("excess", "excess_err")):
-            tcols.append(fits.Column(name=k.upper(), format="D", unit=_TRACER_UNITS.get(k, "mag"),
-                                     array=np.asarray(tr[k], float)))
-    row = getattr(model.tracers_, "row", None)
-    if row is not None and not _is_sequence(row):  # rows 0, 1, ..., n-1 (every row kept): made again on reading
-        tcols.append(fits.Column(name="ROW", format="K", array=np.asarray(row, np.int64)))
-    trh = fits.BinTableHDU.from_columns(tcols, name="TRACERS")
-    th = trh.header
-    th["LAW"] = str(info["law"])
-    th["RV"] = float(info["rv"])
-    th["EXCKIND"] = (str(info.get("excess_kind", "A_V")), "what the EXCESS column is")
-    if same:
-        th["EXCSAME"] = (True, "EXCESS, EXCESS_ERR equal AV, AV_ERR: not stored")
-    th["DISTKIND"] = (str(getattr(model.tracers_, "distance_kind", "distance")), "how distances were given")
-    th["CATSHA"] = str(tmeta.get("sha256", ""))
-    th["CATSHAOF"] = str(tmeta.get("sha256_of", ""))
-    th["TRMETA"] = json.dumps(_jsonable(tmeta), ensure_ascii=True)  # tracer-set metadata (JSON); long: no comment
-    return trh
-
-
-def _is_sequence(row):
-    """True for the row numbers 0, 1, ..., n-1."""
-    row = np.asarray(row)
-    return row.ndim == 1 and (row.size == 0 or (row[0] == 0 and row[-1] == row.size - 1 and bool(np.all(np.diff(row) == 1))))
-
-
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    if isinstance(obj, (np.floating,)):
-        return float(obj)
-    if isinstance(obj, (str, int, float, bool)) or obj is None:
-        return obj
-    return str(obj)
+    """TRACERS: the tracers the model was built from, with their metadata (:mod:`dustkit.tracers.stored`)."""
+    return tracers_hdu(state["tracers"], state["tracer_info"], row=getattr(model.tracers_, "row", None),
+                       distance_kind=getattr(model.tracers_, "distance_kind", "distance"))
 
 
 def _write_hdul(hdul, tmp):
@@ -545,23 +492,15 @@ def _model_from_parts(path, parts):
     pixels, stored = _stored_sky(path, sh, sky, grid)
 
     th, trd = parts["TRACERS"]
-    tracers = {k: np.asarray(trd[k.upper()], float) for k in _TRACER_FLOATS if k.upper() in trd.columns.names}
-    if th.get("EXCSAME", False):  # left out on writing: A_V given as such
-        tracers["excess"], tracers["excess_err"] = tracers["av"].copy(), tracers["av_err"].copy()
-    if "NAME" in trd.columns.names:
-        raw = np.asarray(trd["NAME"])
-        tracers["name"] = np.char.decode(raw, "utf-8", "replace") if raw.dtype.kind == "S" else raw.astype(str)
-    try:
-        tmeta = json.loads(th.get("TRMETA", "{}"))
-    except ValueError:
-        tmeta = {}
+    ts, tracers = tracers_from_hdu(th, trd, law=sh.get("LAW", "ccm89"), rv=v["rv"])
     passes = [int(p) for p in str(stt_h.get("P_PASSES", "0")).split(",") if p.strip()]
     ndraws = int(stt_h.get("P_NDRAWS", -1))
     seed = int(stt_h.get("P_SEED", 0))
     state = {
         "params": {"nside": nside, "ordering": ordering, "uncertainty": str(stt_h.get("P_UNCERT", "auto")),
                    "n_draws": None if ndraws < 0 else ndraws, "n_folds": int(stt_h.get("P_NFOLDS", 5)),
-                   "random_state": None if seed < 0 else seed, "sky_passes": passes or [0]},
+                   "random_state": None if seed < 0 else seed, "sky_passes": passes or [0],
+                   "layer_given": bool(stt_h.get("P_LAYER", False))},
         "grid": {"nside": nside, "ordering": ordering, "distance_edges": edges},
         "layer": layer.state(),
         "scatter": scatter,
@@ -570,8 +509,7 @@ def _model_from_parts(path, parts):
                     "distance_smoothing_": v["distance_smoothing"]},
         "arrays": {},
         "tracers": tracers,
-        "tracer_info": {"law": str(th.get("LAW", sh.get("LAW", "ccm89"))), "rv": v["rv"],
-                        "excess_kind": str(th.get("EXCKIND", "A_V")), "meta": tmeta},
+        "tracer_info": {"law": ts.law, "rv": v["rv"], "excess_kind": ts.excess_kind, "meta": ts.meta},
         "cv": Table(parts["CV"][1]) if "CV" in parts else None,
     }
     with warnings.catch_warnings():
@@ -582,27 +520,9 @@ def _model_from_parts(path, parts):
     for attr, col in stored.items():
         arrays[attr][pixels] = col.astype(arrays[attr].dtype)
         setattr(model, attr, arrays[attr])
-    ts = model.tracers_
     if len(ts) != tracers["l"].size:
         raise _bad_file(path, f"its tracer table has {tracers['l'].size} rows but only {len(ts)} are valid")
-    changes = {"meta": tmeta, "excess_kind": state["tracer_info"]["excess_kind"],
-               "distance_kind": str(th.get("DISTKIND", "distance"))}
-    for k in _TRACER_FLOATS:
-        if k in tracers:
-            changes[k] = tracers[k]
-    if "ROW" in trd.columns.names:
-        changes["row"] = np.asarray(trd["ROW"], np.int64)
-    else:  # not stored: every row was kept, in order
-        changes["row"] = np.arange(tracers["l"].size, dtype=np.int64)
-    changes["name"] = ts.name if "name" in tracers else None  # as stored, or made from ROW when asked
-    kind = changes["excess_kind"]
-    if kind not in ("A_V", "E(B-V)") and kind.startswith("E("):  # the colour, for TracerSet.with_law
-        from .bands import parse_excess_name
-
-        changes["excess_color"] = parse_excess_name(kind, strict=False)
-    elif kind == "E(B-V)":
-        changes["excess_color"] = ("B", "V")
-    model.tracers_ = replace(ts, **changes)
+    model.tracers_ = ts
     if state["cv"] is not None:
         cv = state["cv"]
         for c, unit in (("distance_smoothing", u.pc), ("walk_variance", u.mag**2 / u.kpc), ("cv_mse", u.mag**2)):

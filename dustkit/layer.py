@@ -12,11 +12,11 @@ from astropy import units as u
 from scipy import optimize
 
 from .exceptions import CatalogError
-from ._lib.validation import check_real, to_value
+from ._lib.validation import check_real, param_error, to_value
 from .tracers.rules import floor_errors
 
-__all__ = ["DustLayer", "layer_av", "fit_layer", "sky_blocks", "layer_av_pc", "layer_av_mu", "layer_slope_pc",
-           "BOOTSTRAP_RESAMPLES"]
+__all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "sky_blocks", "layer_av_pc", "layer_av_mu",
+           "layer_slope_pc", "BOOTSTRAP_RESAMPLES"]
 
 #: Block-bootstrap resamples where a layer's errors are reported (``dustkit layer``, the density
 #: model); the binned model's build keeps the least-squares errors plus the pull (a bootstrap
@@ -157,6 +157,43 @@ class DustLayer:
     covariance: np.ndarray = field(default_factory=lambda: np.zeros((3, 3)), repr=False, compare=False)
     pull: np.ndarray = field(default_factory=lambda: np.zeros(3), repr=False, compare=False)
 
+    def __post_init__(self):
+        # a layer given by hand with errors and no covariance: the errors are its (independent) covariance
+        errs = np.array([self.a0_err, self.h_err, self.z_sun_err], float)
+        if (not np.any(np.asarray(self.covariance, float)) and not np.any(np.asarray(self.pull, float))
+                and np.any(errs > 0)):
+            object.__setattr__(self, "covariance", np.diag(errs**2))
+
+    @classmethod
+    def from_dict(cls, values):
+        """A layer given by hand from a mapping with ``a0`` (mag/kpc), ``h`` and ``z_sun`` (pc), errors optional.
+
+        Reads what :meth:`as_dict` writes (``dustkit layer --json``): a layer fitted once to a
+        wide catalogue can serve the model of a small region. The errors (``a0_err``,
+        ``h_err``, ``z_sun_err``, default 0) become its covariance, independent.
+        """
+        if not hasattr(values, "get"):
+            raise param_error("layer", "a mapping with a0, h and z_sun", type(values).__name__)
+        missing = [k for k in ("a0", "h", "z_sun") if k not in values]
+        if missing:
+            raise param_error(f"layer.{missing[0]}", "present (a0 in mag/kpc, h and z_sun in pc; "
+                              "'dustkit layer CATALOGUE --json' writes them)", "missing")
+        num = {}
+        for k in ("a0", "h", "z_sun", "a0_err", "h_err", "z_sun_err"):
+            low = -1000.0 if k == "z_sun" else 0.0
+            num[k] = float(check_real(f"layer.{k}", values.get(k, 0.0), low, 1e4,
+                                      low_inclusive=k not in ("a0", "h")))
+        return cls(**num)
+
+    def with_scaled_a0(self, ratio):
+        """The same layer with its A_V (``a0``, its error, covariance, pull and scatter) multiplied by ``ratio``."""
+        from dataclasses import replace
+
+        scale = np.array([ratio, 1.0, 1.0])
+        return replace(self, a0=self.a0 * ratio, a0_err=self.a0_err * ratio, scatter=self.scatter * ratio,
+                       covariance=np.asarray(self.covariance, float) * scale[:, None] * scale[None, :],
+                       pull=np.asarray(self.pull, float) * scale)
+
     def av(self, b, distance):
         """A_V (Quantity, mag) of the layer toward latitude ``b`` out to ``distance``."""
         return layer_av(b, distance, self.a0 * u.mag / u.kpc, self.h * u.pc, self.z_sun * u.pc)
@@ -243,6 +280,16 @@ class DustLayer:
             f"z_sun = {self.z_sun:.1f} +- {self.z_sun_err:.1f} pc"
             + (f" (from {self.n_used} tracers, scatter {self.scatter:.3f} mag)" if self.n_used else "")
         )
+
+
+def given_layer(layer, name="layer"):
+    """``layer`` checked as a smooth layer given instead of fitted: ``None``, a :class:`DustLayer` or a mapping."""
+    if layer is None or isinstance(layer, DustLayer):
+        return layer
+    if hasattr(layer, "get"):
+        return DustLayer.from_dict(layer)
+    raise param_error(name, "a DustLayer (e.g. another model's layer_), a dict with a0, h and z_sun, or None",
+                      type(layer).__name__)
 
 
 def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=50_000, random_state=0, n_boot=0,

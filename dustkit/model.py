@@ -64,7 +64,8 @@ from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, heldout_rows
 from .binned.statistics import Statistics, count_beyond, monte_carlo_statistics, nominal_statistics, tracer_counts
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
-from .layer import DustLayer, fit_layer
+from .layer import DustLayer, fit_layer, given_layer
+from .tracers.stored import tracer_columns
 from .tracers.rules import floor_errors
 
 __all__ = ["ExtinctionModel", "CAUTION", "FitPlan", "model_state", "model_from_state", "heldout_rows",
@@ -140,6 +141,9 @@ class ExtinctionModel:
         Seed for the draws and the folds; the same seed gives the same model.
     quiet : bool, optional
         Hide progress bars (default: shown only on a terminal).
+    layer : DustLayer or dict, optional
+        A smooth layer to use instead of fitting one (e.g. fitted to a wider catalogue with
+        ``dustkit layer --json``; a dict as :meth:`dustkit.layer.DustLayer.from_dict` reads).
 
     Attributes
     ----------
@@ -186,6 +190,7 @@ class ExtinctionModel:
         sky_passes=(0, 1, 2, 4),
         random_state=0,
         quiet=None,
+        layer=None,
     ):
         self.nside = nside
         self.distance_max = distance_max
@@ -198,6 +203,7 @@ class ExtinctionModel:
         self.sky_passes = sky_passes
         self.random_state = random_state
         self.quiet = quiet
+        self.layer = layer
 
     # -- parameters (one list: the constructor's signature, as scikit-learn's get_params)
     @classmethod
@@ -265,7 +271,9 @@ class ExtinctionModel:
         plan = self.fit_plan(n)
         grid, folds = plan.grid, plan.n_folds
         rng = np.random.default_rng(self.random_state)
-        layer = fit_layer(_Floored(b, d, de, av, ae), random_state=self.random_state)
+        layer = given_layer(self.layer)
+        if layer is None:
+            layer = fit_layer(_Floored(b, d, de, av, ae), random_state=self.random_state)
         held = heldout_rows(n, folds, self.random_state)
         k_fold = held is None
         if k_fold:
@@ -450,7 +458,7 @@ _STATE_SCALARS = ("uncertainty_scheme_", "n_draws_", "sky_passes_", "walk_varian
 # the parameters a model file records (the grid and the sky passes are recorded on their own;
 # whether progress bars show is not part of a model)
 _STATE_PARAMS = tuple(p for p in ExtinctionModel.param_names()
-                      if p not in ("distance_max", "distance_step", "distance_edges", "sky_passes", "quiet"))
+                      if p not in ("distance_max", "distance_step", "distance_edges", "sky_passes", "quiet", "layer"))
 
 
 def model_state(model):
@@ -465,14 +473,8 @@ def model_state(model):
     g = model.grid_
     params = {k: getattr(model, k) for k in _STATE_PARAMS}
     params["sky_passes"] = [int(p) for p in np.atleast_1d(model.sky_passes)]
-    t = model.tracers_
-    tracers = {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err")}
-    if getattr(t, "__dict__", {}).get("names_of", True) is not None:  # names given (not made from row numbers)
-        tracers["name"] = np.asarray(t.name)
-    for k in ("excess", "excess_err", "temperature"):
-        v = getattr(t, k, None)
-        if v is not None:
-            tracers[k] = np.asarray(v, float)
+    params["layer_given"] = model.layer is not None  # the given layer is the model's layer_
+    tracers, tracer_info = tracer_columns(model.tracers_)
     return {
         "params": params,
         "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
@@ -481,8 +483,7 @@ def model_state(model):
         "scalars": {k: getattr(model, k) for k in _STATE_SCALARS},
         "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
         "tracers": tracers,
-        "tracer_info": {"law": t.law, "rv": float(t.rv), "excess_kind": getattr(t, "excess_kind", "A_V"),
-                        "meta": dict(getattr(t, "meta", {}) or {})},
+        "tracer_info": tracer_info,
         "cv": model.cv_.copy() if hasattr(model, "cv_") else None,
     }
 
@@ -497,6 +498,8 @@ def model_from_state(state):
     m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
     lay = state["layer"]
     m.layer_ = DustLayer.from_state(lay)
+    if p.get("layer_given"):
+        m.layer = m.layer_
     m.scatter_ = {k: float(v) for k, v in state["scatter"].items()}
     for k, v in state["scalars"].items():
         setattr(m, k, v)

@@ -80,7 +80,7 @@ from .exceptions import CatalogError, DuplicatesWarning, RowsRejectedWarning
 from ._lib.formats import CHUNKED_FORMATS, format_for
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
-from .layer import DustLayer, fit_layer
+from .layer import fit_layer, given_layer
 from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_groups, drop_from_sample, fit_arrays,
                               merge_across, raw_arrays, replace_in_sample)
 from .tracers.rules import (DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, DUPLICATE_SEPARATION_ARCSEC,
@@ -406,8 +406,8 @@ def _n_chains(client, stats_bytes, n_chunks):
 # ----------------------------------------------------------------------------- public API
 
 # the model parameters a chunked build takes: the constructor's, less the Monte Carlo draws (a
-# chunked build is bin-scatter) and quiet (an argument of its own here)
-_MODEL_PARAMS = tuple(p for p in ExtinctionModel.param_names() if p not in ("n_draws", "quiet"))
+# chunked build is bin-scatter), quiet and layer (arguments of their own here)
+_MODEL_PARAMS = tuple(p for p in ExtinctionModel.param_names() if p not in ("n_draws", "quiet", "layer"))
 
 
 def build_from_parquet(
@@ -453,9 +453,9 @@ def build_from_parquet(
     client : distributed.Client, optional
         Run the tasks on this dask cluster (files must be readable by its workers at the
         same path). Without one, dask's local threaded scheduler is used.
-    layer : DustLayer, optional
+    layer : DustLayer or dict, optional
         Use this smooth layer instead of fitting one to the sample (e.g. to reproduce
-        another build exactly).
+        another build exactly; a dict as :meth:`dustkit.layer.DustLayer.from_dict` reads).
     layer_sample : int
         Rows of the deterministic random sample the layer is fitted to.
     heldout_sample : int
@@ -497,8 +497,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     chunk_size = check_int("chunk_size", chunk_size, 1, 2**40)
     layer_sample = check_int("layer_sample", layer_sample, 10, 2**40)
     heldout_sample = check_int("heldout_sample", heldout_sample, 10, 2**40)
-    if layer is not None and not isinstance(layer, DustLayer):
-        raise param_error("layer", "a DustLayer (e.g. another model's layer_)", type(layer).__name__)
+    layer = given_layer(layer)
     law, rv = check_law(law, float(rv))
     reading = _reading(columns, law, rv, duplicates, distance_unit=distance_unit,
                        parallax_zero_point=parallax_zero_point, default_distance_frac_err=default_distance_frac_err,
@@ -506,7 +505,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
                        distance_modulus_kind=distance_modulus_kind, parallax_err_floor=parallax_err_floor,
                        parallax_length_scale=parallax_length_scale, duplicate_separation=duplicate_separation)
 
-    model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, **model_params)
+    model = ExtinctionModel(uncertainty="bin-scatter", quiet=quiet, layer=layer, **model_params)
     grid = model.make_grid()
     seed = seed_of(model.random_state)
     n_folds = check_int("n_folds", model.n_folds, 2, 50)

@@ -144,6 +144,32 @@ def test_build_with_edges_law_and_column_mapping(files, tmp_path, call):
     assert m.law == "odonnell94" and m.grid_.nside == 8
 
 
+def test_build_takes_a_layer_written_by_the_layer_command(files, tmp_path, call):
+    # a layer fitted to one catalogue (dustkit layer --json) serves the model of another: the
+    # model's layer is the file's (not refitted), and the report says so
+    rc, out, err = call("layer", files / "cat.csv", "--json", "--distance-unit", "kpc")
+    assert rc == 0, err
+    given = json.loads(out)
+    given["a0"] = 0.8  # not what this catalogue would give
+    (tmp_path / "layer.json").write_text(json.dumps(given))
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m.fits", "--layer-from", tmp_path / "layer.json",
+                        *BUILD_OPTS)
+    assert rc == 0, err
+    assert "given in" in out and "not fitted" in out
+    m = load_model(tmp_path / "m.fits")
+    assert m.layer_.a0 == 0.8 and m.layer_.a0_err == given["a0_err"] and m.layer_.h == given["h"]
+    assert m.layer is not None  # the binned model (these options) keeps that its layer was given
+    # a file that is not a layer: one line naming the option and the missing key, nothing written
+    (tmp_path / "bad.json").write_text(json.dumps({"a0": 1.0, "h": 100.0}))
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m2.fits", "--layer-from", tmp_path / "bad.json",
+                        *BUILD_OPTS)
+    assert rc == 2 and "z_sun" in one_line_error(err) and not (tmp_path / "m2.fits").exists()
+    (tmp_path / "bad2.json").write_text("a0 = 1")
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m2.fits", "--layer-from", tmp_path / "bad2.json",
+                        *BUILD_OPTS)
+    assert rc == 2 and "--layer-from" in one_line_error(err) and "dustkit layer" in err
+
+
 def test_build_refuses_to_overwrite(built, files, call):
     path = built[0]
     before = path.read_bytes()

@@ -377,6 +377,67 @@ def test_a_change_of_rv_rescales_exactly_and_a_change_of_colour_refits(fitted):
     assert m2.layer_.a0 == pytest.approx(m.layer_.a0 * 3.6 / m.rv, rel=1e-12)
 
 
+def test_a_loaded_model_converts_its_tracers_again_under_another_rv(fitted, tmp_path):
+    # the file keeps what the catalogue measured (E(B-V)), not only the A_V of one law: after
+    # loading, another R_V gives what it gives in memory (A_V = R_V E(B-V): definition of R_V);
+    # files that kept A_V alone answered a change of R_V with the old A_V
+    _, m = fitted
+    back = dustkit.load_model(dustkit.save_model(m, tmp_path / "m.fits"))
+    assert back.tracers_.excess_kind == "E(B-V)"
+    np.testing.assert_array_equal(back.tracers_.excess, m.tracers_.excess)
+    m2, b2 = m.with_law("ccm89", 3.6), back.with_law("ccm89", 3.6)
+    assert b2.how_ == m2.how_ and b2.how_.startswith("rescaled exactly")
+    l, b, d = np.linspace(30, 50, 40), np.linspace(-5, 5, 40), np.linspace(200, 2800, 40)
+    np.testing.assert_array_equal(b2.av_pc(l, b, d)[0], m2.av_pc(l, b, d)[0])
+    np.testing.assert_allclose(b2.av_pc(l, b, d)[0], 3.6 / 3.1 * back.av_pc(l, b, d)[0], rtol=1e-12)
+
+
+def test_a_layer_given_instead_of_fitted_is_the_prior_and_its_errors_reach_the_answers(tmp_path):
+    # a layer from a wider catalogue or the literature replaces the fit (clouds in a small
+    # region lift a layer fitted there)
+    from scipy.integrate import quad
+
+    _, tr = _tracers(200, 5)
+    given = {"a0": 0.9, "h": 110.0, "z_sun": 15.0, "a0_err": 0.045, "h_err": 11.0, "z_sun_err": 5.0}
+    m = DensityModel(quiet=True, layer=given, **FAST).fit(tr)
+    assert (m.layer_.a0, m.layer_.h, m.layer_.z_sun) == (0.9, 110.0, 15.0) and m.build_report_["layer_given"]
+    # far from every tracer the answer is the given layer: the density a0 exp(-|z| / h) of an
+    # exponential disc integrated along the sight line (its definition), here by quadrature
+    b, d = 3.0, 2000.0
+    want = quad(lambda s: 0.9e-3 * np.exp(-abs(15.0 + s * np.sin(np.deg2rad(b))) / 110.0), 0.0, d)[0]
+    a, e = m.av(200 * u.deg, b * u.deg, d * u.pc)
+    assert a.value == pytest.approx(want, rel=1e-6)
+    # its error holds at least the given a0's: dA/da0 = A/a0 (delta method), 5% of A here
+    assert e.value >= 0.05 * want
+    # kept through a model file, answers bit for bit ...
+    back = dustkit.load_model(dustkit.save_model(m, tmp_path / "given.fits"))
+    assert back.layer.as_dict() == m.layer_.as_dict()
+    l, bb, dd = np.linspace(20, 60, 50), np.linspace(-9, 9, 50), np.linspace(10, 5000, 50)
+    np.testing.assert_array_equal(back.av_pc(l, bb, dd)[1], m.av_pc(l, bb, dd)[1])
+    # ... and carried into another R_V (A_V = R_V E(B-V): definition of R_V)
+    m2 = back.with_law("ccm89", 3.6)
+    assert m2.layer_.a0 == pytest.approx(0.9 * 3.6 / 3.1, rel=1e-12)
+    assert m2.layer_.a0_err == pytest.approx(0.045 * 3.6 / 3.1, rel=1e-12)
+
+
+def test_a_refit_under_another_law_scales_a_given_layer_with_the_tracers(tmp_path):
+    # E(J-Ks) tracers (E(J-Ks)/E(B-V) about 0.53 under CCM89: Cardelli et al. 1989 via the 2MASS
+    # passbands): a change of law changes each A_V by the passbands' ratio, so the model refits;
+    # a given layer (not refitted) moves with the tracers' median A_V ratio
+    t, _ = _tracers(300, 22)
+    t["E(J-Ks)"], t["E(J-Ks)_err"] = 0.53 * t["ebv"], 0.53 * t["ebv_err"]
+    tr = dustkit.read_tracers(t[["l", "b", "distance", "distance_err", "E(J-Ks)", "E(J-Ks)_err"]],
+                              source_temperature=5800 * u.K)
+    m = DensityModel(quiet=True, layer=dustkit.DustLayer(a0=1.0, h=120.0, z_sun=20.0, a0_err=0.05), **FAST).fit(tr)
+    m = dustkit.load_model(dustkit.save_model(m, tmp_path / "jk.fits"))   # the colour and temperatures kept
+    assert m.tracers_.excess_kind == "E(J-Ks)" and np.all(np.asarray(m.tracers_.temperature) == 5800.0)
+    m2 = m.with_law("fitzpatrick99", 3.1)
+    assert m2.how_.startswith("refitted")
+    ratio = np.median(np.asarray(m2.tracers_.av) / np.asarray(m.tracers_.av))
+    assert abs(ratio - 1.0) > 1e-3
+    assert m2.layer_.a0 == pytest.approx(ratio, rel=1e-9) and m2.layer_.h == 120.0
+
+
 def test_sample_distance_shift_follows_the_catalogue_distribution():
     # Lutz & Kelker (1973, PASP 85, 573), in its empirical-Bayes form: for tracers spread
     # uniformly over a disc, n(d) ~ d, so n(ln d) ~ d^2 and the true ln distance of a tracer

@@ -147,3 +147,27 @@ def test_layer_state_round_trips_with_its_pull():
     assert back == lay and np.array_equal(back.pull, lay.pull) and np.array_equal(back.covariance, lay.covariance)
     old = {k: v for k, v in lay.state().items() if k != "pull"}  # a file written before the pull existed
     assert np.array_equal(DustLayer.from_state(old).pull, np.zeros(3))
+
+
+def test_a_layer_given_by_hand_reads_what_the_layer_command_writes_and_its_errors_are_its_covariance():
+    from dustkit.exceptions import ParameterError
+    from dustkit.layer import given_layer
+
+    fitted = DustLayer(a0=1.1, h=125.0, z_sun=18.0, a0_err=0.05, h_err=9.0, z_sun_err=3.0,
+                       covariance=np.diag([0.04, 60.0, 5.0]) ** 1, pull=np.array([0.03, 4.0, 1.0]))
+    given = DustLayer.from_dict(fitted.as_dict())      # the keys of 'dustkit layer --json'
+    assert (given.a0, given.h, given.z_sun) == (1.1, 125.0, 18.0)
+    # a layer from elsewhere: its quoted (total) errors are its statistical errors, independent
+    np.testing.assert_allclose(given.error_covariance(), np.diag([0.05**2, 9.0**2, 3.0**2]))
+    assert given_layer(None) is None and given_layer(given) is given
+    assert given_layer({"a0": 1.0, "h": 100.0, "z_sun": 0.0}).error_covariance().sum() == 0.0
+    with pytest.raises(ParameterError, match="layer.z_sun"):
+        DustLayer.from_dict({"a0": 1.0, "h": 100.0})
+    with pytest.raises(ParameterError, match="layer.h"):
+        DustLayer.from_dict({"a0": 1.0, "h": 0.0, "z_sun": 10.0})
+    with pytest.raises(ParameterError, match="'layer'"):
+        given_layer("1.0,100,20")
+    # scaling its A_V (another R_V) scales a0, its error and covariance row, and nothing else
+    s = given.with_scaled_a0(2.0)
+    assert (s.a0, s.a0_err, s.h, s.z_sun) == (2.2, 0.1, 125.0, 18.0)
+    np.testing.assert_allclose(s.error_covariance(), np.diag([0.1**2, 9.0**2, 3.0**2]))

@@ -1,6 +1,5 @@
 """DensityModel: the 3-D log-normal dust density model behind the answers interface."""
 
-import dataclasses
 import time
 
 import numpy as np
@@ -17,7 +16,7 @@ from .._lib.validation import check_choice, check_int, check_nside, check_real, 
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
-from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer
+from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer, given_layer
 from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
@@ -25,8 +24,7 @@ from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, 
 from .layer_share import layer_error_variance, layer_variance, remaining_pull
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
-__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "density_state",
-           "density_from_state"]
+__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights"]
 
 from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
 
@@ -154,6 +152,11 @@ class DensityModel:
     random_state : int
     quiet : bool, optional
         Hide the progress bar (default: shown only on a terminal).
+    layer : DustLayer or dict, optional
+        A smooth layer to use instead of fitting one (e.g. fitted once to a wide catalogue
+        with ``dustkit layer --json``, or from the literature; a dict with ``a0`` in mag/kpc,
+        ``h`` and ``z_sun`` in pc and optional errors): in a small region where clouds hold
+        much of the dust, they lift a layer fitted there (README, "How the model works").
 
     Attributes
     ----------
@@ -213,6 +216,7 @@ class DensityModel:
         active_radius=4 * u.deg,
         random_state=0,
         quiet=None,
+        layer=None,
     ):
         self.nside = nside
         self.distance_max = distance_max
@@ -224,6 +228,7 @@ class DensityModel:
         self.active_radius = active_radius
         self.random_state = random_state
         self.quiet = quiet
+        self.layer = layer
 
     # -- parameters (one list: the constructor's signature)
     @classmethod
@@ -280,7 +285,7 @@ class DensityModel:
             raise CatalogError(f"The density model needs at least 5 tracers inside its grid; got {n}, {inside} of them "
                                f"nearer than its last edge ({grid.distance_edges[-1]:g} pc). "
                                "Hint: widen the region, add tracers, or raise distance_max.")
-        inp = _tracer_inputs(tracers, self.random_state)
+        inp = _tracer_inputs(tracers, self.random_state, given_layer(self.layer))
         pixels = active_pixels(grid, inp.l, inp.b, radius)
         col_all = np.searchsorted(pixels, grid.pixel(inp.l, inp.b))  # each tracer's active-pixel column
         # the hyperparameters and the held-out misses are learned on at most CV_TRACERS tracers
@@ -376,7 +381,7 @@ class DensityModel:
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
             "threads": _lattice.THREADS, "isotropic": bool(iso), "pull_left": round(self.pull_left_, 3),
-        }
+            "layer_given": self.layer is not None}
         return self
 
     def _errors(self, layer, unresolved, tau_s):
@@ -404,11 +409,15 @@ class DensityModel:
         The prior (amplitude, correlation length, raised cells and their lengths) and the
         unresolved fractions are reused, the layer is refitted, and the posterior mode is
         found again from this model's mode; no cross-validation runs. The local unresolved
-        variance is scaled by the square of the tracers' median A_V ratio.
+        variance is scaled by the square of the tracers' median A_V ratio, and a layer given
+        instead of fitted (``layer``) is scaled by that ratio.
         """
         t_start = time.perf_counter()
         grid = self.grid_
-        inp = _tracer_inputs(tracers, self.random_state)
+        old, new = np.asarray(self.tracers_.av, float), np.asarray(tracers.av, float)
+        ratio = float(np.median(new[old > 0] / old[old > 0])) if np.any(old > 0) else 1.0
+        given = self.layer_.with_scaled_a0(ratio) if given_layer(self.layer) is not None else None
+        inp = _tracer_inputs(tracers, self.random_state, given)
         l, b, d, de, av, ae, _, weight, _, corr, shift, layer = inp
         lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_,
                       bool(getattr(self, "isotropic_", 0.0)))
@@ -417,8 +426,6 @@ class DensityModel:
         post = fit_posterior(lat, terms, tau=self.tau_, xi0=self.mode_, max_iter=20)
         xs = draw_samples(lat, post, self.samples_.shape[2], np.random.default_rng(self.random_state),
                           cg_tol=_tolerances(min(l.size, CV_TRACERS))[2])
-        old = np.asarray(self.tracers_.av, float)
-        ratio = np.median(av[old > 0] / old[old > 0]) if np.any(old > 0) else 1.0
         unresolved = self.unresolved_ * ratio**2
         self._store(grid, layer, lat, post, xs, self.tau_, tracers)
         self.mode_ = post.xi
@@ -676,10 +683,7 @@ class DensityModel:
                 setattr(m, k, getattr(self, k) * ratio)
             m.unresolved_ = self.unresolved_ * ratio**2
             m.samples_ = (self.samples_ * np.float32(ratio)).astype(np.float32)
-            lay = self.layer_
-            m.layer_ = dataclasses.replace(lay, a0=lay.a0 * ratio, a0_err=lay.a0_err * ratio,
-                                           scatter=lay.scatter * ratio, covariance=_scaled_cov(lay.covariance, ratio),
-                                           pull=np.asarray(lay.pull, float) * [ratio, 1.0, 1.0])
+            m.layer_ = self.layer_.with_scaled_a0(ratio)
             m.tracers_ = new_tracers
             m.how_ = f"rescaled exactly by R_V'/R_V = {ratio:.4f}"
             return m
@@ -733,13 +737,14 @@ def _cv_subset(n, random_state):
     return None if n <= CV_TRACERS else np.sort(np.random.default_rng(random_state).choice(n, CV_TRACERS, replace=False))
 
 
-def _tracer_inputs(tracers, random_state):
+def _tracer_inputs(tracers, random_state, layer=None):
     """The arrays, duplicate weights, distance shifts and layer shared by a fit and a refit.
 
     The shift comes from the catalogue's own distance distribution
     (:func:`~dustkit.density.solver.sample_distance_shift`); parallax distances already
-    carry a prior of their own (``read_tracers``) and are not shifted. The layer's errors
-    come from a bootstrap over sky blocks (clouds correlate neighbouring residuals).
+    carry a prior of their own (``read_tracers``) and are not shifted. The layer is
+    ``layer`` if one is given, else fitted, its errors from a bootstrap over sky blocks
+    (clouds correlate neighbouring residuals).
     """
     l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
                            for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
@@ -752,14 +757,9 @@ def _tracer_inputs(tracers, random_state):
         shift = np.zeros(l.size)
     else:
         shift = sample_distance_shift(d, de, weight)
-    layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES, random_state=random_state, distance_shift=shift)
+    if layer is None:
+        layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES, random_state=random_state, distance_shift=shift)
     return _TracerInputs(l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer)
-
-
-def _scaled_cov(cov, ratio):
-    """Layer covariance (a0, h, z_sun) after multiplying a0 by ``ratio``."""
-    scale = np.array([ratio, 1.0, 1.0])
-    return np.asarray(cov, float) * scale[:, None] * scale[None, :]
 
 
 def _left_of_pull(layer, inp, post, terms):
@@ -777,59 +777,3 @@ def _predict_terms(lat, terms, xs, f_mode):
     dev = g[:, :, None] * (lat.forward(xs) - f_mode[:, :, None])
     lin = np.einsum("ik,kis->is", terms.mean_coef, dev[:, terms.col])
     return mean, np.mean(lin**2, axis=1), var_d
-
-
-_STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
-                 "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
-_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_", "pull_left_")
-
-
-def _scalar(model, name):
-    """A fitted scalar; models loaded from files written before it existed get its neutral value."""
-    default = {"structure_tau_": 0.0, "isotropic_": 0.0, "pull_left_": 0.0}.get(name)
-    return float(getattr(model, name, default))
-
-
-def density_state(model):
-    """Everything a fitted :class:`DensityModel` needs to answer, as plain numbers and arrays."""
-    model.check_fitted()
-    g = model.grid_
-    t = model.tracers_
-    params = {k: v for k, v in model.get_params().items() if k not in ("quiet",)}
-    params = {k: (np.asarray(getattr(v, "value", v), float).tolist() if k in ("distance_max", "distance_edges",
-              "amplitudes", "lengths", "active_radius") and v is not None else v) for k, v in params.items()}
-    return {
-        "kind": "density",
-        "params": params,
-        "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
-        "layer": model.layer_.state(),
-        "scalars": {k: _scalar(model, k) for k in _STATE_SCALARS},
-        "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
-        "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
-        "tracer_info": {"law": t.law, "rv": float(t.rv)},
-        "report": dict(getattr(model, "build_report_", {})),
-        "cv": model.cv_.copy() if hasattr(model, "cv_") else None,
-    }
-
-
-def density_from_state(state):
-    """Rebuild a fitted :class:`DensityModel` from :func:`density_state` output (answers bit for bit)."""
-    from ..tracers import TracerSet
-
-    p = dict(state["params"])
-    m = DensityModel(**{k: v for k, v in p.items() if k in DensityModel.param_names()})
-    g = state["grid"]
-    m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
-    lay = state["layer"]
-    m.layer_ = DustLayer.from_state(lay)
-    for k, v in state["scalars"].items():
-        setattr(m, k, float(v))
-    for k, v in state["arrays"].items():
-        setattr(m, k, np.asarray(v))
-    tr, info = state["tracers"], state["tracer_info"]
-    m.tracers_ = TracerSet.from_arrays(tr["l"], tr["b"], tr["distance"], tr["distance_err"], tr["av"], tr["av_err"],
-                                       name=tr.get("name"), law=info["law"], rv=info["rv"])
-    m.build_report_ = dict(state.get("report") or {})
-    if state.get("cv") is not None:
-        m.cv_ = state["cv"]
-    return m

@@ -13,9 +13,12 @@ import json
 import numpy as np
 from astropy.table import Table
 
-from .estimator import density_from_state, density_state
+from ..grid import Grid
+from ..layer import DustLayer, given_layer
+from ..tracers.stored import tracer_columns, tracers_from_hdu, tracers_hdu
+from .estimator import DensityModel
 
-__all__ = ["MODEL_KIND", "density_hdus", "density_from_parts"]
+__all__ = ["MODEL_KIND", "density_hdus", "density_from_parts", "density_state", "density_from_state"]
 
 #: Value of the ``DKMODEL`` keyword of a density model file.
 MODEL_KIND = "DENSITY"
@@ -55,12 +58,10 @@ def density_hdus(model):
     st = fits.BinTableHDU.from_columns([fits.Column(name="JSON", format=f"{len(blob)}A",
                                                     array=np.array([blob.encode()]))], name="STATE")
     st.header["DKMODEL"] = MODEL_KIND
-    tr = state["tracers"]
-    names = np.char.encode(np.asarray(tr["name"]).astype(str), "utf-8")
-    cols = [fits.Column(name="NAME", format=f"{max(1, names.dtype.itemsize)}A", array=names)]
-    cols += [fits.Column(name=k.upper(), format="D", array=np.asarray(tr[k], float))
-             for k in ("l", "b", "distance", "distance_err", "av", "av_err")]
-    hdus = [sky, edges, st, fits.BinTableHDU.from_columns(cols, name="TRACERS")]
+    t = model.tracers_
+    arrays, info = tracer_columns(t)
+    hdus = [sky, edges, st, tracers_hdu(arrays, info, row=getattr(t, "row", None),
+                                        distance_kind=getattr(t, "distance_kind", "distance"))]
     for k, v in state["arrays"].items():
         hdus.append(fits.ImageHDU(np.ascontiguousarray(v), name=f"ARR_{k.upper()}"))
     if state.get("cv") is not None:
@@ -80,14 +81,75 @@ def density_from_parts(parts):
                       else str(parts["STATE"][1]["JSON"][0]))
     arrays = {name[4:].lower(): np.asarray(data).astype(np.asarray(data).dtype.newbyteorder("="))
               for name, (_, data) in parts.items() if name.startswith("ARR_")}
-    trd = parts["TRACERS"][1]
-    raw = np.asarray(trd["NAME"])
-    tracers = {k: np.asarray(trd[k.upper()], float) for k in ("l", "b", "distance", "distance_err", "av", "av_err")}
-    tracers["name"] = np.char.decode(raw, "utf-8", "replace") if raw.dtype.kind == "S" else raw.astype(str)
+    info = meta.get("tracer_info", {})
+    tracers, _ = tracers_from_hdu(*parts["TRACERS"], law=info.get("law"), rv=info.get("rv"))
     cv = None
     if "CV" in parts:
         cv = Table(parts["CV"][1])
         cv.meta["validation"] = parts["CV"][0].get("CVSCHEME", "")
-    state = {**meta, "arrays": arrays, "tracers": tracers, "cv": cv}
+    state = {**meta, "arrays": arrays, "tracers": tracers, "cv": cv}  # tracers: the TracerSet itself
     state["grid"]["distance_edges"] = np.asarray(state["grid"]["distance_edges"], float)
     return density_from_state(state)
+
+
+_STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
+                 "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
+_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_", "pull_left_")
+
+
+def _scalar(model, name):
+    """A fitted scalar; models loaded from files written before it existed get its neutral value."""
+    default = {"structure_tau_": 0.0, "isotropic_": 0.0, "pull_left_": 0.0}.get(name)
+    return float(getattr(model, name, default))
+
+
+def density_state(model):
+    """Everything a fitted :class:`DensityModel` needs to answer, as plain numbers and arrays."""
+    model.check_fitted()
+    g = model.grid_
+    t = model.tracers_
+    params = {k: v for k, v in model.get_params().items() if k not in ("quiet",)}
+    params = {k: (np.asarray(getattr(v, "value", v), float).tolist() if k in ("distance_max", "distance_edges",
+              "amplitudes", "lengths", "active_radius") and v is not None else v) for k, v in params.items()}
+    if params.get("layer") is not None:  # a layer given instead of fitted, kept for refits (with_law)
+        params["layer"] = given_layer(params["layer"]).state()
+    return {
+        "kind": "density",
+        "params": params,
+        "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
+        "layer": model.layer_.state(),
+        "scalars": {k: _scalar(model, k) for k in _STATE_SCALARS},
+        "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
+        "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
+        "tracer_info": {"law": t.law, "rv": float(t.rv)},
+        "report": dict(getattr(model, "build_report_", {})),
+        "cv": model.cv_.copy() if hasattr(model, "cv_") else None,
+    }
+
+
+def density_from_state(state):
+    """Rebuild a fitted :class:`DensityModel` from :func:`density_state` output (answers bit for bit)."""
+    from ..tracers import TracerSet
+
+    p = dict(state["params"])
+    if p.get("layer") is not None:
+        p["layer"] = DustLayer.from_state(p["layer"])
+    m = DensityModel(**{k: v for k, v in p.items() if k in DensityModel.param_names()})
+    g = state["grid"]
+    m.grid_ = Grid(int(g["nside"]), np.asarray(g["distance_edges"], float), g["ordering"])
+    lay = state["layer"]
+    m.layer_ = DustLayer.from_state(lay)
+    for k, v in state["scalars"].items():
+        setattr(m, k, float(v))
+    for k, v in state["arrays"].items():
+        setattr(m, k, np.asarray(v))
+    tr, info = state["tracers"], state["tracer_info"]
+    if isinstance(tr, TracerSet):  # from a file: as the catalogue gave them (reddening, colour, temperatures)
+        m.tracers_ = tr
+    else:
+        m.tracers_ = TracerSet.from_arrays(tr["l"], tr["b"], tr["distance"], tr["distance_err"], tr["av"],
+                                           tr["av_err"], name=tr.get("name"), law=info["law"], rv=info["rv"])
+    m.build_report_ = dict(state.get("report") or {})
+    if state.get("cv") is not None:
+        m.cv_ = state["cv"]
+    return m
