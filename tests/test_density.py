@@ -904,7 +904,8 @@ def test_a_rise_between_two_tracers_gets_the_variance_of_its_unknown_place():
     want = np.where(e < far, 0.8**2 * u_ * (1 - u_), 0.0)         # none behind the far tracer: the prior rules
     np.testing.assert_allclose(got, want, atol=1e-12)
     assert got.max() == pytest.approx(0.8**2 / 4, rel=0.05)        # R/2 mid-way
-    # a tracer in a neighbouring pixel closes the gap too; one beyond the grid (censored) does not
+    # a tracer in a neighbouring pixel closes the gap too (here at 805 pc, between the pixel's
+    # own two); one beyond the grid (censored) does not
     nb = int(healpix.neighbours(16, np.array([p]))[0, 0])
     ln_, bn_ = grid.pixel_centres(np.array([nb]))
     l3, b3 = np.append(l, [ln_[0], lc[p]]), np.append(b, [bn_[0], bc[p]])
@@ -913,14 +914,23 @@ def test_a_rise_between_two_tracers_gets_the_variance_of_its_unknown_place():
     u3 = (e[k] - near) / (e[15] - near)                             # now the gap is 500-805 pc
     assert got3[k] == pytest.approx((0.8 * u_[15]) ** 2 * u3 * (1 - u3), rel=1e-9)
     assert np.all(got3[e >= far] == 0.0)
+    # but where the pixel has no tracer of its own in front of a node, a neighbour's tracer
+    # brackets the neighbour's sight line, not this one (a cloud has edges): the rise may sit
+    # anywhere from the Sun to the pixel's first tracer behind, and the larger variance is kept
+    l4, b4 = np.array([lc[p], ln_[0]]), np.array([bc[p], bn_[0]])
+    got4 = placement_variance(grid, pixels, excess, l4, b4, np.array([far, e[15]]), np.zeros(2), e[-1])[0]
+    own = 0.8**2 * (e / far) * (1 - e / far)                        # gap 0-1297 pc in the pixel, R = 0.8
+    nbr = (0.8 * u_[15]) ** 2 * (e / e[15]) * (1 - e / e[15])       # gap 0-805 pc next to it
+    np.testing.assert_allclose(got4[e < e[15]], np.maximum(own, nbr)[e < e[15]], rtol=1e-9)
+    assert got4[k] == pytest.approx(own[k], rel=1e-9) and own[k] > nbr[k]
     # distance errors widen the gap (a tracer measured in front of a cloud may lie behind it):
     # with 10% errors the gap runs from 500 / 1.1 to 1297 x 1.1 pc, so the nodes next to
     # either tracer are less sure of what lies between them
     got_err = placement_variance(grid, pixels, excess, l, b, np.array([near, far]), np.array([50.0, 130.0]), e[-1])[0]
     assert got_err[11] > 1.3 * got[11] and got_err[19] > 1.3 * got[19]
     # a catalogue listed twice (weights 1/2, as near-duplicate groups get) places a rise no better
-    l4, b4 = np.tile(l, 2), np.tile(b, 2)
-    got_dup = placement_variance(grid, pixels, excess, l4, b4, np.tile([near, far], 2), np.tile([50.0, 130.0], 2), e[-1],
+    l6, b6 = np.tile(l, 2), np.tile(b, 2)
+    got_dup = placement_variance(grid, pixels, excess, l6, b6, np.tile([near, far], 2), np.tile([50.0, 130.0], 2), e[-1],
                                  np.full(4, 0.5))[0]
     np.testing.assert_allclose(got_dup, got_err, rtol=1e-12)
     # tracers all beyond the grid close no gap at all

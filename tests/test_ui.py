@@ -361,6 +361,18 @@ def test_a_density_model_follows_rv_changes_in_the_explorer(tracers):
     np.testing.assert_allclose(ex.model.av_, model.av_ * 3.5 / model.rv, rtol=1e-12)
 
 
+def test_a_layer_given_to_the_explorer_follows_rv_changes(tracers):
+    # a layer from elsewhere, in A_V under the first R_V: a rebuild under another R_V scales it
+    # with the tracers' A_V (A_V = R_V E(B-V): definition of R_V), it is not refitted
+    from dustkit.layer import DustLayer
+
+    ex = Explorer(tracers, figures="static", layer=DustLayer(a0=0.9, h=110.0, z_sun=15.0, a0_err=0.05), **FAST)
+    assert ex.last_error is None and ex.model.layer_.a0 == 0.9
+    ex.rv_widget.value = 3.5
+    assert ex.last_error is None
+    assert ex.model.layer_.a0 == pytest.approx(0.9 * 3.5 / 3.1, rel=1e-9) and ex.model.layer_.h == 110.0
+
+
 def test_band_list_follows_the_law_and_rv(explorer):
     def listed():
         return {v: label for label, v in explorer.quantity_widget.options if v not in ("av", "ebv")}

@@ -50,6 +50,7 @@ from .. import plotting
 from ..exceptions import ModelNotFittedError
 from .._lib.formats import TABLE_FORMATS
 from .._lib.validation import check_choice, check_int, param_error, to_value
+from ..layer import given_layer
 from ..model import CAUTION, ExtinctionModel
 from .feature_table import feature_table_html
 
@@ -571,7 +572,7 @@ class Explorer:
             else:
                 self._set_status(f"Building the model of {len(tracers)} tracers (NSIDE {nside}) ...")
                 model = ExtinctionModel(nside=nside, distance_max=dmax * u.pc, distance_step=step * u.pc,
-                                        **self._model_params).fit(tracers)
+                                        **self._params_for(tracers)).fit(tracers)
             self._cache[key] = model
             while len(self._cache) > self._cache_size:
                 self._cache.popitem(last=False)
@@ -581,6 +582,17 @@ class Explorer:
         self.tracers = model.tracers_
         self._update_band_choices(model.law, model.rv)
         self._after_model(time.perf_counter() - t0, how)
+
+    def _params_for(self, tracers):
+        """The model parameters for ``tracers``: a layer given in A_V of the first law scaled with the tracers' A_V."""
+        params = dict(self._model_params)
+        if params.get("layer") is not None:
+            base = np.asarray(self._base_tracers.av, float)
+            new = np.asarray(tracers.av, float)
+            ok = base > 0
+            ratio = float(np.median(new[ok] / base[ok])) if ok.any() else 1.0
+            params["layer"] = given_layer(params["layer"]).with_scaled_a0(ratio)
+        return params
 
     def _after_model(self, time_s=None, how="given"):
         dmax = float(self.model.grid_.distance_edges[-1])
