@@ -56,6 +56,7 @@ _EPILOGS = {
   dustkit build clusters.csv -o model.fits --distance-edges 0,250,500,1000,2000,4000 --law odonnell94 --rv 3.1
   dustkit build field_stars/ -o model.fits --nside 64 --chunk-size 2000000
   dustkit build giants.csv -o model.fits --source-temperature 4500
+  dustkit build region.csv -o model.fits --layer-from layer.json
 
 A colour excess other than E(B-V) (a column E(BP-RP), E(J-Ks), ...) is turned into A_V through
 the passbands of its two bands for each row's star: its temperature from a column teff (T_eff,
@@ -75,7 +76,8 @@ usable position or distance keep empty (NaN) values.""",
   dustkit layer clusters.csv
   dustkit layer clusters.csv --json > layer.json
 
-a0 is in mag/kpc, h and z_sun in pc.""",
+a0 is in mag/kpc, h and z_sun in pc. The JSON serves 'dustkit build --layer-from' for the
+model of a smaller region inside the catalogue's, where clouds would lift a layer fitted there.""",
     "profile": """examples:
   dustkit profile model.fits --l 58 --b 1 -o sightline.png
   dustkit profile model.fits --l 32.5 --b -2 --radius 1.5 -o cone.pdf""",

@@ -144,6 +144,9 @@ class ExtinctionModel:
     layer : DustLayer or dict, optional
         A smooth layer to use instead of fitting one (e.g. fitted to a wider catalogue with
         ``dustkit layer --json``; a dict as :meth:`dustkit.layer.DustLayer.from_dict` reads).
+        Its errors do not enter this model's answers, whose spread away from the tracers is
+        the calibrated random walk's (as with a fitted layer); the density model
+        (:class:`~dustkit.density.DensityModel`) propagates them.
 
     Attributes
     ----------
