@@ -543,6 +543,7 @@ def _sky_figure(model, distance_pc):
 def _cmd_build(args, out):
     from ._lib.formats import check_target
     from .io import save_model
+    from .layer import lift_caution
     from .model import CAUTION
 
     kw = _grid_options(args)
@@ -584,6 +585,9 @@ def _cmd_build(args, out):
             kw["uncertainty"] = getattr(args, "uncertainty", "auto")
         model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))
     out(*_layer_lines(model.layer_, given=getattr(args, "layer_from", None)))
+    lift = getattr(model, "build_report_", {}).get("layer_lift") or {}
+    if lift.get("lifted") and not getattr(args, "layer_from", None):
+        out(f"  caution: {lift_caution(lift)}")
     g = model.grid_
     if hasattr(model, "amplitude_"):
         rep = model.build_report_
@@ -681,7 +685,10 @@ def _cmd_estimate(args, out):
 
 
 def _cmd_layer(args, out):
-    from .layer import BOOTSTRAP_RESAMPLES, fit_layer
+    import numpy as np
+
+    from .layer import BOOTSTRAP_RESAMPLES, cloud_lift, fit_layer, lift_caution
+    from .tracers.rules import AV_ERR_FLOOR
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
@@ -691,6 +698,10 @@ def _cmd_layer(args, out):
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
         return 0
     out(tracers.summary(), "", *_layer_lines(layer))
+    lift = cloud_lift(layer, tracers.b, tracers.distance, tracers.distance_err, tracers.av,
+                      np.maximum(np.asarray(tracers.av_err, float), AV_ERR_FLOOR))
+    if lift["lifted"]:
+        out(f"  caution: {lift_caution(lift)}")
     return 0
 
 

@@ -15,8 +15,8 @@ from .exceptions import CatalogError
 from ._lib.validation import check_real, param_error, to_value
 from .tracers.rules import floor_errors
 
-__all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "sky_blocks", "layer_av_pc", "layer_av_mu",
-           "layer_slope_pc", "BOOTSTRAP_RESAMPLES"]
+__all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
+           "layer_av_pc", "layer_av_mu", "layer_slope_pc", "BOOTSTRAP_RESAMPLES", "LIFT_EXCESS"]
 
 #: Block-bootstrap resamples where a layer's errors are reported (``dustkit layer``, the density
 #: model); the binned model's build keeps the least-squares errors plus the pull (a bootstrap
@@ -368,6 +368,43 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
         scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull,
     )
+
+
+#: Share of the tracers more than 2 of their own errors above a fitted layer, beyond the share
+#: below it, from which :func:`cloud_lift` says clouds lift the layer (with the excess at least
+#: 1.5 of its binomial errors, so that two tracers of forty do not): in the invented galaxies of
+#: ``benchmarks/galaxies.py`` (six draws each) it holds in every draw of the sparse catalogue
+#: (layer 7-14% high) and of five large clouds (3-6% high), in one of six smooth ones (2.3%), in
+#: none of the others (the clumpy galaxy's tails are even: its clumps are everywhere), and in the
+#: demo's Veyra Field (16% high; 61 tracers above, 41 below).
+LIFT_EXCESS = 0.05
+
+
+def cloud_lift(layer, b_deg, distance_pc, distance_err_pc, av, av_err):
+    """How far tracers above a layer outnumber those below it: a dict ``above``, ``below`` (shares), ``lifted``.
+
+    Noise alone puts as many tracers more than 2 sigma (their own A_V error and distance error
+    through the layer's slope) above a fitted layer as below it; clouds only add extinction,
+    so where they hold much of a region's dust the tracers behind them outnumber the rest
+    above, and the fit through them lies above the cloud-free sight lines. ``lifted`` when the
+    excess share is at least :data:`LIFT_EXCESS` and 1.5 binomial errors.
+    """
+    b, d, de, av, ae = (np.asarray(x, float) for x in (b_deg, distance_pc, distance_err_pc, av, av_err))
+    sigma = np.sqrt(ae**2 + (layer.slope_pc(b, d) * de) ** 2)
+    z = (av - layer.av_pc(b, d)) / np.maximum(sigma, 1e-12)
+    n_up, n_down = int(np.sum(z > 2.0)), int(np.sum(z < -2.0))
+    n = max(z.size, 1)
+    excess = (n_up - n_down) / n
+    lifted = bool(excess >= LIFT_EXCESS and n_up - n_down >= 1.5 * np.sqrt(max(n_up + n_down, 1)))
+    return {"above": n_up / n, "below": n_down / n, "lifted": lifted}
+
+
+def lift_caution(lift):
+    """The sentence that goes with a :func:`cloud_lift` result that says ``lifted``."""
+    return (f"{100 * lift['above']:.0f}% of the tracers lie more than 2 sigma above the fitted layer and "
+            f"{100 * lift['below']:.0f}% below it: clouds lift the layer, and answers on cloud-free sight "
+            "lines that lean on it (in front of clouds, between sparse tracers) may come out several per cent "
+            "too high. A layer fitted to a wider catalogue avoids it (layer=..., dustkit build --layer-from).")
 
 
 def sky_blocks(l_deg, b_deg, min_blocks=20):

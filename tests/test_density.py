@@ -420,6 +420,22 @@ def test_a_layer_given_instead_of_fitted_is_the_prior_and_its_errors_reach_the_a
     assert m2.layer_.a0_err == pytest.approx(0.045 * 3.6 / 3.1, rel=1e-12)
 
 
+def test_a_fit_through_lifting_clouds_says_so_and_a_given_layer_does_not(recwarn):
+    # a large cloud over much of a small region lifts the layer fitted there (clouds only add
+    # extinction): the fit warns and names the remedy; with a layer given there is nothing to say
+    from dustkit.exceptions import DustkitWarning
+    from dustkit.simulate import Cloud
+
+    big = DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 800, 7.0, 30, 1.5),))
+    _, tr = _tracers(400, 3, field=big)
+    with pytest.warns(DustkitWarning, match="--layer-from"):
+        m = DensityModel(quiet=True, **FAST).fit(tr)
+    assert m.build_report_["layer_lift"]["lifted"]
+    recwarn.clear()
+    DensityModel(quiet=True, layer={"a0": 1.0, "h": 120.0, "z_sun": 20.0}, **FAST).fit(tr)
+    assert not [w for w in recwarn if issubclass(w.category, DustkitWarning) and "lift" in str(w.message)]
+
+
 def test_a_refit_under_another_law_scales_a_given_layer_with_the_tracers(tmp_path):
     # E(J-Ks) tracers (E(J-Ks)/E(B-V) about 0.53 under CCM89: Cardelli et al. 1989 via the 2MASS
     # passbands): a change of law changes each A_V by the passbands' ratio, so the model refits;

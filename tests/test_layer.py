@@ -171,3 +171,26 @@ def test_a_layer_given_by_hand_reads_what_the_layer_command_writes_and_its_error
     s = given.with_scaled_a0(2.0)
     assert (s.a0, s.a0_err, s.h, s.z_sun) == (2.2, 0.1, 125.0, 18.0)
     np.testing.assert_allclose(s.error_covariance(), np.diag([0.1**2, 9.0**2, 3.0**2]))
+
+
+def test_clouds_that_lift_a_layer_are_told_and_noise_alone_is_not():
+    # noise alone puts as many tracers more than 2 sigma above a fitted layer as below it (a
+    # symmetric error distribution; common practice); clouds only add extinction, so where a
+    # large one covers much of a small region the tracers behind it outnumber the rest above
+    import dustkit
+    from dustkit.layer import cloud_lift, lift_caution
+    from dustkit.simulate import Cloud
+
+    def lift(field, seed):
+        t = simulate_tracers(field, 600, rng=np.random.default_rng(seed), l_range=(25, 55), b_range=(-8, 8),
+                             distance_max=3000)
+        tr = dustkit.read_tracers(t)
+        layer = fit_layer(tr)
+        return cloud_lift(layer, tr.b, tr.distance, tr.distance_err, tr.av, np.maximum(tr.av_err, 0.02))
+
+    for seed in (1, 2, 3):
+        plain = lift(DustField(a0=1.0, h=120.0, z_sun=20.0), seed)
+        assert not plain["lifted"] and abs(plain["above"] - plain["below"]) < 0.03
+    cloudy = lift(DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 800, 7.0, 30, 1.5),)), 1)
+    assert cloudy["lifted"] and cloudy["above"] > cloudy["below"] + 0.05
+    assert "--layer-from" in lift_caution(cloudy)

@@ -1,6 +1,7 @@
 """DensityModel: the 3-D log-normal dust density model behind the answers interface."""
 
 import time
+import warnings
 
 import numpy as np
 from astropy import units as u
@@ -14,9 +15,9 @@ from .._lib import healpix
 from .._lib.progress import extend_total, progress
 from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
-from ..exceptions import CatalogError, ModelNotFittedError
+from ..exceptions import CatalogError, DustkitWarning, ModelNotFittedError
 from ..grid import Grid
-from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, fit_layer, given_layer
+from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, cloud_lift, fit_layer, given_layer, lift_caution
 from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (cell_boost, compare_background, fit_unresolved_fractions, held_out_excess, layer_increments,
@@ -381,7 +382,7 @@ class DensityModel:
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
             "threads": _lattice.THREADS, "isotropic": bool(iso), "pull_left": round(self.pull_left_, 3),
-            "layer_given": self.layer is not None}
+            "layer_given": self.layer is not None, "layer_lift": _lift_report(layer, inp, self.layer)}
         return self
 
     def _errors(self, layer, unresolved, tau_s):
@@ -760,6 +761,14 @@ def _tracer_inputs(tracers, random_state, layer=None):
     if layer is None:
         layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES, random_state=random_state, distance_shift=shift)
     return _TracerInputs(l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer)
+
+
+def _lift_report(layer, inp, given):
+    """:func:`~dustkit.layer.cloud_lift` of a fit's layer (at the distances it was fitted at), with a caution if lifted."""
+    lift = cloud_lift(layer, inp.b, inp.d * np.exp(inp.shift), inp.de, inp.av, inp.ae)
+    if lift["lifted"] and given is None:
+        warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=3)
+    return lift
 
 
 def _left_of_pull(layer, inp, post, terms):
