@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from astropy import units as u
-from scipy import optimize
+from scipy import optimize, stats
 
 from .exceptions import CatalogError
 from ._lib.validation import check_real, param_error, to_value
@@ -371,8 +371,8 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
 
 
 #: Share of the tracers more than 2 of their own errors above a fitted layer, beyond the share
-#: below it, from which :func:`cloud_lift` says clouds lift the layer (with the excess at least
-#: 1.5 of its binomial errors, so that two tracers of forty do not): in the invented galaxies of
+#: below it, from which :func:`cloud_lift` says clouds lift the layer (with the split between
+#: the two sides unlikely, at 5%, for a fair coin, so that three tracers of forty do not): in the invented galaxies of
 #: ``benchmarks/galaxies.py`` (six draws each) it holds in every draw of the sparse catalogue
 #: (layer 7-14% high) and of five large clouds (3-6% high), in one of six smooth ones (2.3%), in
 #: none of the others (the clumpy galaxy's tails are even: its clumps are everywhere), and in the
@@ -387,7 +387,8 @@ def cloud_lift(layer, b_deg, distance_pc, distance_err_pc, av, av_err):
     through the layer's slope) above a fitted layer as below it; clouds only add extinction,
     so where they hold much of a region's dust the tracers behind them outnumber the rest
     above, and the fit through them lies above the cloud-free sight lines. ``lifted`` when the
-    excess share is at least :data:`LIFT_EXCESS` and 1.5 binomial errors.
+    excess share is at least :data:`LIFT_EXCESS` and as many above out of those on either side
+    is unlikely for a fair coin (one-sided binomial probability below 0.05).
     """
     b, d, de, av, ae = (np.asarray(x, float) for x in (b_deg, distance_pc, distance_err_pc, av, av_err))
     sigma = np.sqrt(ae**2 + (layer.slope_pc(b, d) * de) ** 2)
@@ -395,7 +396,7 @@ def cloud_lift(layer, b_deg, distance_pc, distance_err_pc, av, av_err):
     n_up, n_down = int(np.sum(z > 2.0)), int(np.sum(z < -2.0))
     n = max(z.size, 1)
     excess = (n_up - n_down) / n
-    lifted = bool(excess >= LIFT_EXCESS and n_up - n_down >= 1.5 * np.sqrt(max(n_up + n_down, 1)))
+    lifted = bool(excess >= LIFT_EXCESS and stats.binom.sf(n_up - 1, n_up + n_down, 0.5) < 0.05)
     return {"above": n_up / n, "below": n_down / n, "lifted": lifted}
 
 
