@@ -27,6 +27,7 @@ import argparse
 import os
 import sys
 import time
+import warnings
 
 import numpy as np
 from astropy import units as u
@@ -73,6 +74,8 @@ def _flag(value, lo, hi):
 
 
 def main():
+    # a report: the model's cautions (e.g. clouds lifting the layer) are measured here, not read
+    warnings.filterwarnings("ignore", category=dustkit.exceptions.DustkitWarning)
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--galaxies", default=",".join(GALAXIES))
     ap.add_argument("--seed", type=int, default=1)
