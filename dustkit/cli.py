@@ -949,7 +949,9 @@ def _cmd_demo(args, out):
     truth = field["layer"]
     out(f"   (the invented truth: a0 = {truth['a0']} mag/kpc, h = {truth['h']} pc, z_sun = {truth['z_sun']} pc;",
         f"    its {len(field['clouds'])} clouds in a small region lift the fitted layer by more than its errors say: read it as",
-        "    the smooth part of this catalogue's dust, clouds' outskirts included)", "")
+        "    the smooth part of this catalogue's dust, clouds' outskirts included; for a real region, a layer",
+        "    fitted to a wider catalogue avoids it: dustkit layer WIDE.csv --json > layer.json, then",
+        "    dustkit build REGION.csv -o model.fits --layer-from layer.json)", "")
 
     out("3. Building the 3-D density model (NSIDE 32, out to 5 kpc; the default for a catalogue of this size)")
     model = build_model(tracers, nside=32, distance_max=5000 * u.pc, quiet=_quiet_flag(args))
