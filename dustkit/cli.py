@@ -543,7 +543,6 @@ def _sky_figure(model, distance_pc):
 def _cmd_build(args, out):
     from ._lib.formats import check_target
     from .io import save_model
-    from .layer import lift_caution
     from .model import CAUTION
 
     kw = _grid_options(args)
@@ -584,10 +583,7 @@ def _cmd_build(args, out):
         if kind == "binned":
             kw["uncertainty"] = getattr(args, "uncertainty", "auto")
         model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))
-    out(*_layer_lines(model.layer_, given=getattr(args, "layer_from", None)))
-    lift = getattr(model, "build_report_", {}).get("layer_lift") or {}
-    if lift.get("lifted") and not getattr(args, "layer_from", None):
-        out(f"  caution: {lift_caution(lift)}")
+    out(*_layer_lines(model.layer_, given=getattr(args, "layer_from", None)))  # a lifted layer: the fit warns
     g = model.grid_
     if hasattr(model, "amplitude_"):
         rep = model.build_report_
