@@ -1,11 +1,13 @@
-"""The FITS layout of a density model file (written and read through :mod:`dustkit.io`).
+"""A density model's state, and the FITS layout of its file (written and read through :mod:`dustkit.io`).
 
 Extensions: ``SKYMODEL`` (full sky, HEALPix keywords PIXTYPE, ORDERING, COORDSYS, NSIDE,
 INDXSCHM='IMPLICIT'; one row per pixel with ``AV`` and ``AV_ERR`` at every distance edge,
 for readers of the convention), ``DISTANCE_EDGES``, ``STATE`` (the model's parameters, layer
-and chosen hyperparameters as exact JSON), ``TRACERS``, ``CV`` and one image extension per
-array the answers use (``ARR_AV_``, ``ARR_SAMPLES_``, ...), stored in their own dtype so a
-loaded model answers bit for bit like the saved one, posterior draws included.
+and chosen hyperparameters as exact JSON), ``TRACERS`` (as the binned model's files have it,
+:mod:`dustkit.tracers.stored`: the reddening as measured, so that a loaded model converts it
+again under another law), ``CV`` and one image extension per array the answers use
+(``ARR_AV_``, ``ARR_SAMPLES_``, ...), stored in their own dtype so a loaded model answers bit
+for bit like the saved one, posterior draws included.
 """
 
 import json
