@@ -681,10 +681,7 @@ def _cmd_estimate(args, out):
 
 
 def _cmd_layer(args, out):
-    import numpy as np
-
     from .layer import BOOTSTRAP_RESAMPLES, cloud_lift, fit_layer, lift_caution
-    from .tracers.rules import AV_ERR_FLOOR
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
@@ -694,8 +691,7 @@ def _cmd_layer(args, out):
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
         return 0
     out(tracers.summary(), "", *_layer_lines(layer))
-    lift = cloud_lift(layer, tracers.b, tracers.distance, tracers.distance_err, tracers.av,
-                      np.maximum(np.asarray(tracers.av_err, float), AV_ERR_FLOOR))
+    lift = cloud_lift(layer, tracers.b, tracers.distance, tracers.distance_err, tracers.av, tracers.av_err)
     if lift["lifted"]:
         out(f"  caution: {lift_caution(lift)}")
     return 0

@@ -508,7 +508,7 @@ def _model_from_parts(path, parts):
                     "sky_passes_": int(sh.get("SKYPASS", 0)), "walk_variance_": v["walk_variance"],
                     "distance_smoothing_": v["distance_smoothing"]},
         "arrays": {},
-        "tracers": tracers,
+        "tracers": ts,  # the TracerSet read once (model_from_state takes it as it is)
         "tracer_info": {"law": ts.law, "rv": v["rv"], "excess_kind": ts.excess_kind, "meta": ts.meta},
         "cv": Table(parts["CV"][1]) if "CV" in parts else None,
     }

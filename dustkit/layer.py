@@ -5,7 +5,7 @@ height ``z_sun`` above the mid-plane, ``z = z_sun + s sin(b)`` along a sight lin
 cumulative A_V out to distance ``d`` has a closed form (see :func:`layer_av`).
 """
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from astropy import units as u
@@ -13,7 +13,7 @@ from scipy import optimize, stats
 
 from .exceptions import CatalogError
 from ._lib.validation import check_real, param_error, to_value
-from .tracers.rules import floor_errors
+from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
            "layer_av_pc", "layer_av_mu", "layer_slope_pc", "BOOTSTRAP_RESAMPLES", "LIFT_EXCESS"]
@@ -187,8 +187,6 @@ class DustLayer:
 
     def with_scaled_a0(self, ratio):
         """The same layer with its A_V (``a0``, its error, covariance, pull and scatter) multiplied by ``ratio``."""
-        from dataclasses import replace
-
         scale = np.array([ratio, 1.0, 1.0])
         return replace(self, a0=self.a0 * ratio, a0_err=self.a0_err * ratio, scatter=self.scatter * ratio,
                        covariance=np.asarray(self.covariance, float) * scale[:, None] * scale[None, :],
@@ -218,6 +216,10 @@ class DustLayer:
             lo[j] -= steps[j]
             rows.append((layer_av_pc(b_deg, distance_pc, *hi) - layer_av_pc(b_deg, distance_pc, *lo)) / (2 * steps[j]))
         return np.asarray(rows)
+
+    def tracer_errors(self, b_deg, distance_pc, distance_err_pc, av_err):
+        """Tracers' own errors about the layer (mag): A_V error and distance error through the layer's slope."""
+        return np.sqrt(np.asarray(av_err, float) ** 2 + (self.slope_pc(b_deg, distance_pc) * distance_err_pc) ** 2)
 
     def pull_vector(self):
         """The pull (a0, h, z_sun) as a float array of 3 (NaN read as 0; zeros for a layer without one)."""
@@ -388,10 +390,11 @@ def cloud_lift(layer, b_deg, distance_pc, distance_err_pc, av, av_err):
     so where they hold much of a region's dust the tracers behind them outnumber the rest
     above, and the fit through them lies above the cloud-free sight lines. ``lifted`` when the
     excess share is at least :data:`LIFT_EXCESS` and as many above out of those on either side
-    is unlikely for a fair coin (one-sided binomial probability below 0.05).
+    is unlikely for a fair coin (one-sided binomial probability below 0.05). A_V errors are
+    floored at ``AV_ERR_FLOOR``, as for the fit.
     """
-    b, d, de, av, ae = (np.asarray(x, float) for x in (b_deg, distance_pc, distance_err_pc, av, av_err))
-    sigma = np.sqrt(ae**2 + (layer.slope_pc(b, d) * de) ** 2)
+    b, d, de, av = (np.asarray(x, float) for x in (b_deg, distance_pc, distance_err_pc, av))
+    sigma = layer.tracer_errors(b, d, de, np.maximum(np.asarray(av_err, float), AV_ERR_FLOOR))
     z = (av - layer.av_pc(b, d)) / np.maximum(sigma, 1e-12)
     n_up, n_down = int(np.sum(z > 2.0)), int(np.sum(z < -2.0))
     n = max(z.size, 1)

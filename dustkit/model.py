@@ -65,7 +65,7 @@ from .binned.statistics import Statistics, count_beyond, monte_carlo_statistics,
 from .exceptions import CatalogError, ModelNotFittedError
 from .grid import Grid
 from .layer import DustLayer, fit_layer, given_layer
-from .tracers.stored import tracer_columns
+from .tracers.stored import tracer_columns, tracer_set
 from .tracers.rules import floor_errors
 
 __all__ = ["ExtinctionModel", "CAUTION", "FitPlan", "model_state", "model_from_state", "heldout_rows",
@@ -492,7 +492,6 @@ def model_state(model):
 
 def model_from_state(state):
     """Rebuild a fitted :class:`ExtinctionModel` from :func:`model_state` output."""
-    from .tracers import TracerSet
 
     p = dict(state["params"])
     m = ExtinctionModel(**{k: p[k] for k in _STATE_PARAMS if k in p}, sky_passes=tuple(p.get("sky_passes", (0,))))
@@ -508,11 +507,7 @@ def model_from_state(state):
         setattr(m, k, v)
     for k, v in state["arrays"].items():
         setattr(m, k, np.asarray(v))
-    tr = state["tracers"]
-    info = state["tracer_info"]
-    ts = TracerSet.from_arrays(tr["l"], tr["b"], tr["distance"], tr["distance_err"], tr["av"], tr["av_err"],
-                               name=tr.get("name"), law=info["law"], rv=info["rv"])
-    m.tracers_ = ts
+    m.tracers_ = tracer_set(state["tracers"], state["tracer_info"])
     if state.get("cv") is not None:
         m.cv_ = state["cv"]
     return m

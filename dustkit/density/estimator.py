@@ -415,8 +415,7 @@ class DensityModel:
         """
         t_start = time.perf_counter()
         grid = self.grid_
-        old, new = np.asarray(self.tracers_.av, float), np.asarray(tracers.av, float)
-        ratio = float(np.median(new[old > 0] / old[old > 0])) if np.any(old > 0) else 1.0
+        ratio = tracers.av_ratio(self.tracers_)
         given = self.layer_.with_scaled_a0(ratio) if given_layer(self.layer) is not None else None
         inp = _tracer_inputs(tracers, self.random_state, given)
         l, b, d, de, av, ae, _, weight, _, corr, shift, layer = inp

@@ -17,7 +17,7 @@ from astropy.table import Table
 
 from ..grid import Grid
 from ..layer import DustLayer, given_layer
-from ..tracers.stored import tracer_columns, tracers_from_hdu, tracers_hdu
+from ..tracers.stored import tracer_columns, tracer_set, tracers_from_hdu, tracers_hdu
 from .estimator import DensityModel
 
 __all__ = ["MODEL_KIND", "density_hdus", "density_from_parts", "density_state", "density_from_state"]
@@ -131,7 +131,6 @@ def density_state(model):
 
 def density_from_state(state):
     """Rebuild a fitted :class:`DensityModel` from :func:`density_state` output (answers bit for bit)."""
-    from ..tracers import TracerSet
 
     p = dict(state["params"])
     if p.get("layer") is not None:
@@ -145,12 +144,7 @@ def density_from_state(state):
         setattr(m, k, float(v))
     for k, v in state["arrays"].items():
         setattr(m, k, np.asarray(v))
-    tr, info = state["tracers"], state["tracer_info"]
-    if isinstance(tr, TracerSet):  # from a file: as the catalogue gave them (reddening, colour, temperatures)
-        m.tracers_ = tr
-    else:
-        m.tracers_ = TracerSet.from_arrays(tr["l"], tr["b"], tr["distance"], tr["distance_err"], tr["av"],
-                                           tr["av_err"], name=tr.get("name"), law=info["law"], rv=info["rv"])
+    m.tracers_ = tracer_set(state["tracers"], state["tracer_info"])  # from a file: as the catalogue gave them
     m.build_report_ = dict(state.get("report") or {})
     if state.get("cv") is not None:
         m.cv_ = state["cv"]

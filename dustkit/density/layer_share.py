@@ -90,7 +90,7 @@ def remaining_pull(layer, b, d, de, av, ae, predicted, weight=None, censored=Non
     b, d, de, av, ae, predicted = (np.asarray(x, float) for x in (b, d, de, av, ae, predicted))
     pull = layer.pull_vector()
     weight = np.ones(b.size) if weight is None else np.asarray(weight, float)
-    sigma = np.sqrt(ae**2 + (layer.slope_pc(b, d) * de) ** 2)
+    sigma = layer.tracer_errors(b, d, de, ae)
     r = av - predicted
     g = pull @ layer.gradient_pc(b, d)
     ok = np.abs(r) < PULL_CUT * sigma

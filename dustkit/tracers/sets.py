@@ -293,6 +293,16 @@ class TracerSet:
             meta=meta,
         )
 
+    def av_ratio(self, other):
+        """Median of these tracers' A_V over ``other``'s, row by row where ``other``'s is positive (1.0 if none is).
+
+        The scale between two conversions of the same tracers (another law or R_V,
+        :meth:`with_law`), by which a layer given in A_V of the first is carried to the second.
+        """
+        old, new = np.asarray(other.av, float), np.asarray(self.av, float)
+        ok = old > 0
+        return float(np.median(new[ok] / old[ok])) if ok.any() else 1.0
+
     # ----------------------------------------------------------------------------------
     def with_law(self, law, rv):
         """Re-derive A_V (and distances from an apparent V modulus) under another law and R_V.

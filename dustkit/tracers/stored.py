@@ -12,7 +12,7 @@ from dataclasses import replace
 
 import numpy as np
 
-__all__ = ["FLOATS", "tracer_columns", "tracers_hdu", "tracers_from_hdu"]
+__all__ = ["FLOATS", "tracer_columns", "tracer_set", "tracers_hdu", "tracers_from_hdu"]
 
 #: Per-tracer float columns a model file keeps (those a tracer set has).
 FLOATS = ("l", "b", "distance", "distance_err", "av", "av_err", "excess", "excess_err", "temperature",
@@ -32,6 +32,17 @@ def tracer_columns(tracers):
     info = {"law": tracers.law, "rv": float(tracers.rv), "excess_kind": getattr(tracers, "excess_kind", "A_V"),
             "meta": dict(getattr(tracers, "meta", {}) or {})}
     return arrays, info
+
+
+def tracer_set(tracers, info):
+    """The tracers of a model's state: a TracerSet as it is (read from a file), or one made from the arrays."""
+    from .sets import TracerSet
+
+    if isinstance(tracers, TracerSet):
+        return tracers
+    return TracerSet.from_arrays(tracers["l"], tracers["b"], tracers["distance"], tracers["distance_err"],
+                                 tracers["av"], tracers["av_err"], name=tracers.get("name"), law=info["law"],
+                                 rv=info["rv"])
 
 
 def tracers_hdu(arrays, info, row=None, distance_kind="distance"):

@@ -587,11 +587,7 @@ class Explorer:
         """The model parameters for ``tracers``: a layer given in A_V of the first law scaled with the tracers' A_V."""
         params = dict(self._model_params)
         if params.get("layer") is not None:
-            base = np.asarray(self._base_tracers.av, float)
-            new = np.asarray(tracers.av, float)
-            ok = base > 0
-            ratio = float(np.median(new[ok] / base[ok])) if ok.any() else 1.0
-            params["layer"] = given_layer(params["layer"]).with_scaled_a0(ratio)
+            params["layer"] = given_layer(params["layer"]).with_scaled_a0(tracers.av_ratio(self._base_tracers))
         return params
 
     def _after_model(self, time_s=None, how="given"):
