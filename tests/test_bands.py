@@ -153,7 +153,8 @@ def test_parse_excess_name(text, pair):
     assert parse_excess_name(text) == pair
 
 
-@pytest.mark.parametrize("text", ["ra", "dist", "Err", "ELON", "E(B-B)", "E(B-Q)", "E()", "EBV_err"])
+# 'E(b-y)', 'E(u-b)': Stromgren colours, not Johnson B/U beside the Pan-STARRS y / SDSS u (common practice)
+@pytest.mark.parametrize("text", ["ra", "dist", "Err", "ELON", "E(B-B)", "E(B-Q)", "E()", "EBV_err", "E(b-y)", "E(u-b)"])
 def test_parse_excess_name_rejects_other_columns(text):
     assert parse_excess_name(text, strict=False) is None
     with pytest.raises(ParameterError, match="colour-excess name"):

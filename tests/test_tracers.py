@@ -423,6 +423,18 @@ def test_excess_without_known_colour_is_refused():
         _quiet(read_tracers, t, columns={"excess": "red"})
 
 
+def test_stromgren_b_minus_y_is_not_read_as_johnson_b_with_ps1_y():
+    # Stromgren b-y is its own colour: A_V is about 4.3 E(b-y) (E(b-y) = 0.74 E(B-V), from memory of
+    # Crawford 1975). Read as E(B - y_PS1) it gave A_V = 1.15 E(b-y), silently; it must be refused, with
+    # the column named and a hint, until its bands are known.
+    t = Table({"l": [30.0], "b": [1.0], "dist": [1.5] * u.kpc, "E(b-y)": [0.3]})
+    with pytest.raises(CatalogError, match=r"'E\(b-y\)'.*add_band"):
+        _quiet(read_tracers, t)
+    # the usual lower-case spellings of one system still read (common practice)
+    t2 = Table({"l": [30.0], "b": [1.0], "dist": [1.5] * u.kpc, "E(b-v)": [0.3]})
+    assert _quiet(read_tracers, t2).av[0] == pytest.approx(3.1 * 0.3)  # A_V = R_V E(B-V)
+
+
 def test_default_errors_are_documented_and_announced():
     t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "Dist": [1000.0, 2000.0] * u.pc, "EBV": [0.1, 0.4]})
     with pytest.warns(AssumptionWarning) as record:

@@ -411,6 +411,11 @@ def _pairs(parts, joiner, case_insensitive):
         lb = band_candidates(left, case_insensitive)
         rb = band_candidates(right, case_insensitive)
         if len(lb) == 1 and len(rb) == 1 and (lb[0].name, rb[0].name) not in found:
+            if (case_insensitive and lb[0].system != rb[0].system
+                    and (band_candidates(left, False) or band_candidates(right, False))):
+                # 'E(b-y)', 'E(u-b)': a band spelt exactly ('y' of PS1) beside one matched in another case
+                # ('b' as Johnson B) is a colour of some other system (Stromgren), not a mix of two systems
+                continue
             found.append((lb[0].name, rb[0].name))
     return found
 

@@ -53,10 +53,11 @@ def parse_color_name(colname):
         _bands = None
     if _bands is not None and hasattr(_bands, "parse_excess_name"):
         try:
-            blue, red = _bands.parse_excess_name(colname)
-            return str(blue), str(red)
-        except Exception:
-            pass
+            pair = _bands.parse_excess_name(colname, strict=False)
+        except Exception:  # ambiguous: the bands as written, for the band lookup to judge
+            pair = None
+        else:  # not two known bands of one colour (e.g. Stromgren 'E(b-y)'): not guessed from the letters
+            return None if pair is None else (str(pair[0]), str(pair[1]))
     m = EXCESS_NAME.match(colname)
     if m:
         return m.group(1), m.group(2)
@@ -261,8 +262,10 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
         color = _color_tuple(excess_color) or parse_color_name(colname)
         if color is None:
             raise CatalogError(
-                f"Cannot tell which colour excess column {colname!r} holds. "
-                "Hint: pass excess_color=('BP', 'RP') (the blue and red band), or name the column like 'E(BP-RP)'."
+                f"Cannot tell which colour excess column {colname!r} holds: its name is not two known bands of "
+                "one colour. Hint: pass excess_color=('BP', 'RP') (the blue and red band), or name the column like "
+                "'E(BP-RP)'; bands dustkit does not know (e.g. Stromgren b, y) can be registered with "
+                "dustkit.bands.add_band."
             )
         if is_bv(color):
             kind, color = "E(B-V)", ("B", "V")
