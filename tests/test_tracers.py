@@ -339,6 +339,27 @@ def test_unit_from_ecsv_file(tmp_path):
     assert "kpc" in " ".join(ts.meta["assumptions"])
 
 
+def test_reddening_and_its_error_in_millimag_are_converted(tmp_path):
+    # E(B-V) and its error written in mmag (1 mmag = 0.001 mag, astropy units) were read as mag: the
+    # error 30 mmag became an A_V error of 93 mag. A_V = R_V E(B-V) (definition of R_V).
+    t = _catalogue()
+    t["EBV"] = np.asarray(t["EBV"]) * 1000.0 * u.mmag
+    t["e_EBV"] = np.asarray(t["e_EBV"]) * 1000.0 * u.mmag
+    path = tmp_path / "mmag.ecsv"
+    t.write(path)
+    ts = _quiet(read_tracers, path, rv=3.1)
+    np.testing.assert_allclose(ts.av, 3.1 * np.asarray(_catalogue()["EBV"]), rtol=1e-12)
+    np.testing.assert_allclose(ts.av_err, 3.1 * np.asarray(_catalogue()["e_EBV"]), rtol=1e-12)
+    # an error column without a unit beside a value in mmag is in the value's unit
+    t["e_EBV"] = np.asarray(t["e_EBV"])
+    ts2 = _quiet(read_tracers, t, rv=3.1)
+    np.testing.assert_allclose(ts2.av_err, ts.av_err, rtol=1e-12)
+    # a reddening column whose unit is not a magnitude is refused, naming it
+    t["EBV"] = np.asarray(_catalogue()["EBV"]) * u.pc
+    with pytest.raises(CatalogError, match=r"'EBV'.*'pc'.*not a magnitude"):
+        _quiet(read_tracers, t)
+
+
 def test_upper_case_unit_from_fits_file(tmp_path):
     # FITS files often carry units in upper case ('KPC'); astropy does not parse them strictly
     t = _catalogue()

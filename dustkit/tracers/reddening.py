@@ -6,6 +6,7 @@ import numpy as np
 from astropy import units as u
 
 from ..exceptions import AssumptionWarning, CatalogError
+from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .context import Context
 from .rules import reason
@@ -240,6 +241,24 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
     return st.temperature.to_value(u.K)
 
 
+def _mag_scale(unit, colname, ctx):
+    """The factor turning a reddening column's values into mag (1 without a unit, or with one
+    astropy cannot read, such as '[mag]'); a unit that is not a magnitude stops the read."""
+    if unit is None:
+        return 1.0
+    try:
+        unit = as_unit(unit)
+    except (ValueError, TypeError):
+        return 1.0
+    try:
+        return float(unit.to(u.mag))
+    except (u.UnitsError, TypeError):
+        raise CatalogError(
+            f"Column {colname!r} in {ctx.desc} has unit {str(unit)!r}, which is not a magnitude (a reddening "
+            "or extinction is in mag). Hint: fix the column's unit, or map the right column with columns={...}."
+        ) from None
+
+
 def _rows(n):
     return f"{n} row has" if n == 1 else f"{n} rows have"
 
@@ -253,7 +272,9 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     """
     role = next(k for k in REDDENING_LIKE if k in cols)
     colname = cols[role]
-    vals, _, raw = numeric(table, colname, ctx)
+    vals, vunit, raw = numeric(table, colname, ctx)
+    vscale = _mag_scale(vunit, colname, ctx)
+    vals = vals * vscale
     if role == "ebv":
         kind, color = "E(B-V)", ("B", "V")
     elif role == "av":
@@ -280,10 +301,13 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     if not np.isfinite(k) or k <= 0:
         raise CatalogError(f"The {kind} -> A_V conversion factor for law {law!r}, R_V = {rv:g} is {k!r}; cannot use it.")
     default = rv * default_err / k
-    err, _, _ = error_values(
-        table, cols, f"{role}_err", ctx, default, f"the reddening {colname!r} ({kind})",
+    err, eunit, ecol = error_values(
+        table, cols, f"{role}_err", ctx, np.nan, f"the reddening {colname!r} ({kind})",
         f"{default:.3g} mag in {kind} (default_excess_err = {default_err:g} mag of E(B-V))",
     )
+    if ecol is not None:  # in the error column's own unit (e.g. mmag), else the value's
+        err = err * (vscale if eunit is None else _mag_scale(eunit, ecol, ctx))
+    err = np.where(np.isnan(err), default, err)
     av, av_err = reddening_to_av(kind, color, vals, err, law, rv, temperature=temps)
     lo, hi = limits["ebv"]
     ebv_eq = av / rv
