@@ -220,7 +220,7 @@ def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), la
             temp = np.broadcast_to(np.asarray(temperature, float), shape).ravel()
             t.meta["temperature"] = temp[0] if np.all(temp == temp[0]) else "per position"
         for band in bands:
-            ab, abe = av_to_band(a, e, band, law=law, rv=rv, temperature=temp)
+            ab, abe = av_to_band(a, e, band, law=law, rv=rv, temperature=None if temp is None else temp * u.K)
             t[f"a_{band}"] = np.asarray(ab) * u.mag
             t[f"a_{band}_err"] = np.asarray(abe) * u.mag
     t.meta["caution"] = CAUTION

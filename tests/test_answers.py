@@ -105,3 +105,20 @@ def test_estimate_targets_refuses_reading_options_with_a_target_list(model):
         targets = read_targets(_targets())
     with pytest.raises(ParameterError, match="distance_unit"):
         estimate_targets(model, targets, distance_unit="kpc")
+
+
+def test_query_band_temperature_as_quantity_is_not_called_unitless(model):
+    # query(..., temperature=5000 * u.K) warned "temperature='array' has no unit; assuming kelvin":
+    # the unit was stripped before the band conversion. The answer must equal the band conversion of
+    # the same A_V for that star, and say nothing about a missing unit.
+    from dustkit.bands import av_to_band
+    from dustkit.exceptions import AssumptionWarning
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)
+        t = model.query([30.0, 45.0] * u.deg, [1.0, -2.0] * u.deg, [800.0, 2000.0] * u.pc, bands=("Ks",),
+                        temperature=5000 * u.K)
+        ak, _ = av_to_band(t["av"], t["av_err"], "Ks", law=model.law, rv=model.rv, temperature=5000 * u.K)
+    np.testing.assert_allclose(t["a_Ks"].to_value(u.mag), u.Quantity(ak, u.mag).value, rtol=1e-12)
+    # A_Ks/A_V about 0.11-0.12 for CCM89 at R_V = 3.1 (CCM89 Table 3 at 2.2 micron: 0.114, from memory)
+    assert np.all(np.abs(t["a_Ks"].to_value(u.mag) / t["av"].to_value(u.mag) - 0.115) < 0.01)
