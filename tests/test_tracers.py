@@ -456,6 +456,17 @@ def test_stromgren_b_minus_y_is_not_read_as_johnson_b_with_ps1_y():
     assert _quiet(read_tracers, t2).av[0] == pytest.approx(3.1 * 0.3)  # A_V = R_V E(B-V)
 
 
+def test_per_row_rv_column_is_said_not_to_be_used():
+    # A column 'R_V' beside E(B-V) was ignored without a word; A_V = R_V E(B-V) (definition of R_V) with
+    # the one R_V of the read, and the column is named as not used.
+    t = Table({"l": [30.0, 31.0], "b": [1.0, 1.0], "dist": [1.5, 2.0] * u.kpc, "EBV": [0.5, 0.6],
+               "e_EBV": [0.03, 0.03], "e_dist": [0.1, 0.1] * u.kpc, "R_V": [5.0, 4.0]})
+    with pytest.warns(AssumptionWarning, match=r"'R_V'.*not used"):
+        ts = read_tracers(t, rv=3.1)
+    np.testing.assert_allclose(ts.av, [3.1 * 0.5, 3.1 * 0.6])
+    assert any("'R_V'" in a for a in ts.meta["assumptions"])
+
+
 def test_default_errors_are_documented_and_announced():
     t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "Dist": [1000.0, 2000.0] * u.pc, "EBV": [0.1, 0.4]})
     with pytest.warns(AssumptionWarning) as record:

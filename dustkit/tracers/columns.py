@@ -142,6 +142,13 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
         used |= set(cols.values())
         _star_column(explicit, finder, ctx, cols, used)
         used |= set(cols.values())
+        rv_col = finder.find(["rv"], used)
+        if rv_col is not None:
+            ctx.note(
+                AssumptionWarning,
+                f"Column {rv_col!r} looks like a per-row R_V; it is not used: every row is converted to A_V with "
+                "the one R_V of the read (rv=, command line --rv). Hint: read rows of different R_V separately.",
+            )
     if "name" in explicit:
         cols["name"] = explicit["name"]
     else:
