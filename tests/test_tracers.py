@@ -467,6 +467,15 @@ def test_per_row_rv_column_is_said_not_to_be_used():
     assert any("'R_V'" in a for a in ts.meta["assumptions"])
 
 
+def test_semicolon_separated_file_is_named_as_such(tmp_path):
+    # a CSV written with ';' between values (common practice in locales with decimal commas) read as one
+    # column 'name;l;b;dist;ebv', and the error said no position columns were found
+    path = tmp_path / "semi.csv"
+    path.write_text("name;l;b;dist;ebv\nA;30;1;1500;0.5\nB;31;1;1600;0.6\n")
+    with pytest.raises(CatalogError, match=r"one column.*separated by ';'.*delimiter=';'"):
+        _quiet(read_tracers, path)
+
+
 def test_default_errors_are_documented_and_announced():
     t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "Dist": [1000.0, 2000.0] * u.pc, "EBV": [0.1, 0.4]})
     with pytest.warns(AssumptionWarning) as record:

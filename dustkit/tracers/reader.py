@@ -336,6 +336,14 @@ def _load(source, fmt=None):
             f"through astropy (suffixes {known}); check that the file is complete and in one of these "
             "formats, or read it with astropy.table.Table.read(..., format=...) and pass the Table."
         ) from exc
+    seps = [sep for sep in (";", "\t", "|") if len(table.colnames) == 1 and sep in table.colnames[0]]
+    if seps:
+        raise CatalogError(
+            f"Catalogue file '{path}' reads as one column named {table.colnames[0]!r}: its values seem to be "
+            f"separated by {seps[0]!r}, not by commas. Hint: read it with astropy.table.Table.read(path, "
+            f"format='ascii.csv', delimiter={seps[0]!r}) (or pandas.read_csv(path, sep={seps[0]!r})) and pass "
+            "the table."
+        )
     sha = hashlib.sha256()
     with open(path, "rb") as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
