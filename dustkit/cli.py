@@ -140,7 +140,7 @@ def _add_catalogue_options(p):
     p.add_argument("--column", action="append", default=[], metavar="KEY=NAME",
                    help="use column NAME for KEY (repeatable), e.g. --column ebv=EBV --column distance=Dist; "
                         "keys: name, l, b, ra, dec, distance, distance_modulus, apparent_modulus, parallax, "
-                        "ebv, av, excess, temperature, intrinsic_color and KEY_err")
+                        "ebv, av, excess, temperature, intrinsic_color and KEY_err; --column name= reads no names")
     p.add_argument("--distance-unit", metavar="UNIT",
                    help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
     p.add_argument("--modulus-kind", choices=("true", "apparent"), default=None,
@@ -349,6 +349,9 @@ def _columns(pairs):
     for item in pairs:
         key, sep, name = item.partition("=")
         key, name = key.strip(), name.strip()
+        if sep and key == "name" and not name:  # --column name= : read without names
+            out[key] = None
+            continue
         if not sep or not key or not name:
             raise _UsageError(f"--column takes KEY=NAME (e.g. --column ebv=EBV). Got {item!r} instead")
         if key not in COLUMN_KEYS:

@@ -14,10 +14,13 @@ Pass 1 (sample)
     duplicates merged within the chunk); rows rejected and merged are counted by reason and
     the reader's warnings said once for the whole catalogue (counts summed). Duplicates in
     different chunks are found from two 64-bit hashes of each tracer kept sorted per chunk
-    (its input row's values, and its name): exact copies are counted once and tracers of the
-    same name merged into the first by the reader's inverse-variance means, so the counts and
-    values equal the in-memory read's (an exact copy that its own chunk merged with other
-    rows keeps them, the repeated row taken out once). Not found across chunks: near-duplicates
+    (its input row's values, and the name of each of its rows): exact copies are counted once
+    and tracers with rows of the same name within ``SAME_NAME_SEPARATION_ARCMIN`` of each other
+    (the positions of chunks holding a name another chunk holds are read from the cache, or the
+    chunk again) merged into the first by the reader's inverse-variance means, so the counts,
+    values and rows of one name kept apart equal the in-memory read's (an exact copy that its
+    own chunk merged with other rows keeps them, the repeated row taken out once). Not found
+    across chunks: near-duplicates
     by position alone; and when the repeated row was itself merged in its chunk, the copy's
     group is dropped with it. Local builds of at most
     ``CACHE_ROWS`` rows keep each chunk's checked arrays for pass 2. A deterministic uniform
@@ -76,15 +79,16 @@ from pathlib import Path
 import numpy as np
 from astropy import units as u
 
-from .exceptions import CatalogError, DuplicatesWarning, RowsRejectedWarning
+from .exceptions import AssumptionWarning, CatalogError, DuplicatesWarning, RowsRejectedWarning
 from ._lib.formats import CHUNKED_FORMATS, format_for
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import fit_layer, given_layer
 from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_groups, drop_from_sample, fit_arrays,
-                              merge_across, raw_arrays, replace_in_sample)
+                              merge_across, name_of_entry, raw_arrays, replace_in_sample)
 from .tracers.rules import (DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, DUPLICATE_SEPARATION_ARCSEC,
-                            PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, check_duplicates, check_law)
+                            PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, check_duplicates, check_law,
+                            same_name_apart_notes)
 from .binned.folds import HeldOut, fold_of_positions, fold_of_rows, row_hash, seed_of
 from .binned.statistics import Statistics, nominal_statistics
 from .model import ExtinctionModel
@@ -472,7 +476,7 @@ def build_from_parquet(
 default_distance_frac_err, default_excess_err, reject_limits, excess_color, duplicates, duplicate_separation
         As for :func:`dustkit.tracers.read_tracers`. Duplicates are merged within a chunk by
         the reader's rules; across chunks, exact copies (a 64-bit hash of their values) are
-        counted once and tracers of the same name merged as in memory.
+        counted once and tracers of the same name (within 30 arcmin) merged as in memory.
     **model_params
         :class:`~dustkit.model.ExtinctionModel` parameters: ``nside``, ``distance_max``,
         ``distance_step``, ``distance_edges``, ``ordering``, ``n_folds``, ``sky_passes``,
@@ -602,7 +606,9 @@ def _accepted(p1, chunks, reading, cache):
                 return cache.arrays[chunks[c].row0]
             return raw_arrays(chunk_tracers(chunks[c], reading)[0])
 
-        drops, replace, counts = merge_across(cross_chunk_groups(p1["keys"]), raw_of)
+        groups = cross_chunk_groups(p1["keys"], raw_of)
+        drops, replace, counts = merge_across(groups, raw_of)
+        p1["apart"] = _apart_report(groups["apart"], chunks, reading)
         p1["keys"] = {}
         n_copies = counts["copies"]
         p1["merged"] += counts["merged"] - n_copies  # the copies are counted on their own (n_copies)
@@ -614,12 +620,24 @@ def _accepted(p1, chunks, reading, cache):
     return drops, replace, n_copies, np.concatenate([[0], np.cumsum(valid)])
 
 
+def _apart_report(apart, chunks, reading):
+    """``(rows, warning text)`` of the named rows kept apart from rows of their name (see
+    ``cross_chunk_groups``); the assumption is added to the read's (the in-memory read's words)."""
+    n_rows, n_names, where = apart
+    if not n_rows:
+        return 0, None
+    (c, entry, l1, b1), (_, _, l2, b2) = where
+    example = (name_of_entry(chunks[c], reading, entry), l1, b1, l2, b2)
+    return n_rows, same_name_apart_notes(n_rows, n_names, example)
+
+
 def _reading_info(p1, filled):
     """What the reading of the chunks found, for ``build_info_``."""
     return {
         "rejected_by_reason": dict(p1["counts"]),
         "duplicate_rows": int(p1["dup_rows"]),
         "duplicate_groups": int(p1["dup_groups"]),
+        "same_name_apart": int(p1.get("apart", (0, None))[0]),
         "assumptions": list(p1["assumptions"]),
         "columns": dict((p1.get("meta") or {}).get("columns", {})),
         "default_errors": filled,
@@ -685,11 +703,16 @@ def _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates):
             RowsRejectedWarning,
             stacklevel=3,
         )
+    n_apart, notes = p1.get("apart", (0, None))
+    if n_apart:  # said for the whole catalogue (the chunks' reads do not)
+        warnings.warn(notes[0], AssumptionWarning, stacklevel=3)
+        p1["assumptions"].append(notes[1])
     if n_merged:
         warnings.warn(
             f"{p1['dup_rows']} rows are duplicates in {p1['dup_groups']} groups ({n_copies} of them exact copies "
             f"of rows of earlier chunks): {n_merged} rows merged away (duplicates='merge'; within a chunk by the "
-            "reader's rules, across chunks the same name or the same values, found by 64-bit hashes).",
+            "reader's rules, across chunks the same name within the same-name limit or the same values, found by "
+            "64-bit hashes).",
             DuplicatesWarning,
             stacklevel=3,
         )

@@ -456,3 +456,13 @@ def test_features_help_states_the_finder_defaults(call):
     text = " ".join(out.split())
     assert f"(default {MIN_PROBABILITY:g})" in text
     assert f"(default {MIN_CONTRAST:g})" in text
+
+
+def test_column_name_empty_reads_the_catalogue_without_names():
+    # `--column name=` is the command line's columns={'name': None}: a catalogue whose name column reuses IDs of
+    # two invented surveys is read without names; an empty column for any other key is still refused
+    from dustkit.cli import _UsageError, _columns
+
+    assert _columns(["name=", "ebv=EBV"]) == {"name": None, "ebv": "EBV"}
+    with pytest.raises(_UsageError, match="--column takes KEY=NAME"):
+        _columns(["ebv="])

@@ -287,13 +287,16 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     df.loc[5, "l"] = np.nan  # rejected
     df.loc[150, "ebv"] = 50.0  # rejected (outside the E(B-V) limits)
     df.loc[40, "parallax"] = -0.1  # kept: a distance from the prior
-    df.loc[11, "name"] = "C10"  # the same name within a chunk: merged
+    def rename_near(row, like, dl, db):  # the name of row `like`, a few arcmin from it (two compilations' centres)
+        df.loc[row, ["name", "l", "b"]] = [df.loc[like, "name"], df.loc[like, "l"] + dl, df.loc[like, "b"] + db]
+
+    rename_near(11, 10, 0.05, 0.0)  # the same name within a chunk: merged
     df.loc[31] = df.loc[30]  # an exact copy within a chunk
     df.loc[200:204] = df.loc[20:24].to_numpy()  # exact copies of rows of another chunk
-    df.loc[250, "name"] = "C60"  # the same name in two chunks (other values): merged by inverse-variance means
-    df.loc[120, "name"] = "C10"  # a third C10, in another chunk than the first two
-    df.loc[130, "name"] = "C22"  # the same name as row 22 and its exact copy 202, in a third chunk
-    df.loc[270, "name"] = "C21"  # merged in its chunk with 201, an exact copy of row 21 of another chunk
+    rename_near(250, 60, 0.08, 0.0)  # the same name in two chunks (other values): merged by inverse-variance means
+    rename_near(120, 10, -0.1, 0.05)  # a third C10, in another chunk than the first two
+    rename_near(130, 22, 0.0, 0.1)  # the same name as row 22 and its exact copy 202, in a third chunk
+    rename_near(270, 21, 0.02, -0.02)  # merged in its chunk with 201, an exact copy of row 21 of another chunk
     df.to_parquet(tmp_path / "cat.parquet", row_group_size=64)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -303,6 +306,7 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (len(ts), len(ts.rejected), ts.meta["n_merged"])
     assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (287, 2, 11)
     assert info["n_used"] + info["n_rejected"] + info["n_merged"] == n and info["cross_chunk_copies"] == 5
+    assert info["same_name_apart"] == ts.meta["same_name_apart"] == 0
     # the duplicates reported alike: rows in groups of two or more, and groups
     assert (info["duplicate_rows"], info["duplicate_groups"]) == (len(ts.duplicates),
                                                                   np.unique(np.asarray(ts.duplicates["group"])).size)
@@ -325,6 +329,73 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     kpc.rename(columns={"distance": "dm"}).assign(dm=lambda x: 10 + x["dm"]).to_parquet(tmp_path / "dm.parquet")
     with pytest.raises(CatalogError, match="distance_modulus_kind"):
         build_from_parquet(tmp_path / "dm.parquet", chunk_size=100, quiet=True, **PARAMS)
+
+
+def test_same_name_far_apart_kept_apart_alike_in_memory_and_in_chunks(tmp_path, monkeypatch):
+    # an invented catalogue put together from surveys that reuse names, read in memory and in 100-row chunks: rows
+    # of one name are one object only within 30 arcmin of each other (two compilations' centres of one cluster
+    # differ by arcminutes; reused IDs name objects far apart: common practice), linked through chains of such
+    # rows; both reads find the same tracers, merged values, counts and the same report
+    rng = np.random.default_rng(8)
+    n = 300
+    df = pd.DataFrame({"name": [f"S{i}" for i in range(n)], "l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(300, 3500, n), "distance_err": rng.uniform(40, 200, n),
+                       "av": rng.uniform(0.1, 3.0, n), "av_err": rng.uniform(0.05, 0.2, n)})
+
+    def put(row, name, l, b):
+        df.loc[row, ["name", "l", "b"]] = [name, l, b]
+
+    put(5, "S250", 25.0, 0.0)  # kept apart: chunks 0 and 2, 30 deg apart
+    put(250, "S250", 55.0, 0.0)
+    put(7, "S7", 21.0, 1.0)  # kept apart: one chunk, 4 deg apart
+    put(8, "S7", 25.0, 1.0)
+    put(160, "S160", 40.0, 3.0)  # merged across chunks (2 arcmin), and a third S160 kept apart
+    put(9, "S160", 40.0 + 2 / 60, 3.0)
+    put(170, "S160", 50.0, -3.0)
+    put(20, "S20", 30.0, -1.0)  # a chain across three chunks, 20 arcmin steps (ends 40 arcmin apart): merged
+    put(120, "S20", 30.0 + 20 / 60, -1.0)
+    put(220, "S20", 30.0 + 40 / 60, -1.0)
+    df.loc[230] = df.loc[30]  # an exact copy of row 30 in another chunk, and a far row of its name
+    put(231, "S30", 58.0, 4.0)
+    put(40, "S40", 45.0, 2.0)  # merged in chunk 0 (24 arcmin); row 140 is 27 arcmin from row 41 but 39 arcmin
+    put(41, "S40", 45.4, 2.0)  # from their merged position: one object, as row 41 is within the limit
+    put(140, "S40", 45.85, 2.0)
+    df.to_parquet(tmp_path / "reused.parquet", row_group_size=64)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(tmp_path / "reused.parquet", distance_unit="pc")
+        n_memory = len(record)
+        m = build_from_parquet(tmp_path / "reused.parquet", chunk_size=100, quiet=True, distance_unit="pc", **PARAMS)
+    said = [str(w.message) for w in record if "share their name" in str(w.message)]
+    info = m.build_info_
+    # merged away: 9 (into 160), 120 and 220 (into 20), 230 (copy of 30), 41 and 140 (into 40)
+    assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (294, 0, 6)
+    assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (294, 0, 6)
+    # kept apart: 5 and 250; 7 and 8; 9, 160 and 170; 30, 230 and 231
+    assert ts.meta["same_name_apart"] == info["same_name_apart"] == 10
+    assert (info["duplicate_rows"], info["duplicate_groups"]) == (len(ts.duplicates),
+                                                                  np.unique(np.asarray(ts.duplicates["group"])).size)
+    assert set(info["assumptions"]) == set(ts.meta["assumptions"])
+    # said once by each read, with the count of rows and names, an example and the hint
+    assert len(said) == 2 and said[0] == said[1] and n_memory < len(record)
+    assert said[0].startswith("10 rows share their name with rows more than 30 arcmin away") and "4 names" in said[0]
+    assert "unique names" in said[0]
+    names = np.asarray(ts.name)
+    assert list(names).count("S250") == 2 and list(names).count("S160") == 2 and list(names).count("S20") == 1
+    # the same tracers with the same merged values (matched by distance)
+    a, c = np.argsort(np.asarray(m.tracers_.distance)), np.argsort(np.asarray(ts.distance))
+    for k in ("distance", "av", "av_err", "distance_err", "l", "b"):
+        np.testing.assert_allclose(np.asarray(getattr(m.tracers_, k))[a], np.asarray(getattr(ts, k))[c], rtol=1e-10,
+                                   err_msg=k)
+    # without pass 1's cache (large or distributed builds) the chunks' positions are read again: the same result
+    import dustkit.scale
+
+    monkeypatch.setattr(dustkit.scale, "CACHE_ROWS", 0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        m2 = build_from_parquet(tmp_path / "reused.parquet", chunk_size=100, quiet=True, distance_unit="pc", **PARAMS)
+    assert (m2.build_info_["n_used"], m2.build_info_["n_merged"], m2.build_info_["same_name_apart"]) == (294, 6, 10)
+    np.testing.assert_allclose(np.sort(np.asarray(m2.tracers_.l)), np.sort(np.asarray(ts.l)), rtol=1e-10)
 
 
 def test_units_written_by_astropy_into_parquet_are_read_in_chunks(tmp_path):

@@ -1057,12 +1057,89 @@ def test_near_duplicates_found_at_any_longitude_and_latitude():
     assert ok.sum() > 350 and len(ts) == ok.sum()
 
 
-def test_same_name_is_a_duplicate():
+def test_same_name_is_a_duplicate_when_close_on_the_sky():
+    # two compilations list one invented cluster under one name, centres 3 arcmin apart (centres of one
+    # cluster from different member lists differ by arcminutes: common practice): one tracer, by
+    # inverse-variance means x = sum(x/s^2)/sum(1/s^2) (common practice)
     t = _dup_catalogue()
     t["name"][2] = "A"
-    with pytest.warns(DuplicatesWarning, match=r"2 of 3"):
+    t["l"][2], t["b"][2] = 10.0 + 3.0 / 60.0, 1.0
+    with pytest.warns(DuplicatesWarning, match=r"2 of 3.*the same name within 30 arcmin"):
         ts = read_tracers(t)
     assert len(ts) == 2 and list(ts.duplicates["name"]) == ["A", "A"]
+    assert ts.meta["n_merged"] == 1 and ts.meta["same_name_apart"] == 0
+    w = 1 / np.array([0.1, 0.3]) ** 2
+    assert ts.av[0] == pytest.approx(np.sum(w * [1.0, 3.0]) / w.sum(), rel=1e-12)
+    assert ts.l[0] == pytest.approx(10.025, abs=1e-6)
+
+
+def test_reused_id_far_apart_is_two_tracers_and_reported(tmp_path):
+    # two invented surveys put together, both numbering their objects from 1: id 1 at (30, 1) deg, 1500 pc and
+    # at (50, 1) deg, 3000 pc are two objects 20 deg apart (common practice: an ID is unique only within its
+    # survey). Before, they became one tracer at l = 40 deg, 1800 pc that does not exist.
+    path = tmp_path / "two_surveys.csv"
+    path.write_text("id,l,b,dist,dist_err,av,av_err\n"
+                    "1,30,1,1500,150,1.0,0.1\n"
+                    "1,50,1,3000,300,2.0,0.2\n"
+                    "2,40,-2,1000,100,0.5,0.1\n")
+    with pytest.warns(AssumptionWarning) as record:
+        ts = read_tracers(path, distance_unit="pc")
+    assert len(ts) == 3 and ts.meta["n_merged"] == 0 and len(ts.duplicates) == 0
+    np.testing.assert_allclose(ts.l, [30.0, 50.0, 40.0])
+    np.testing.assert_allclose(ts.distance, [1500.0, 3000.0, 1000.0])
+    np.testing.assert_allclose(ts.av, [1.0, 2.0, 0.5])
+    assert ts.meta["same_name_apart"] == 2
+    text = " ".join(str(w.message) for w in record)
+    assert "2 rows share their name with rows more than 30 arcmin away" in text
+    assert "'1' at (l, b) = (30.000, 1.000) and (50.000, 1.000) deg" in text
+    assert "columns={'name': None}" in text and "unique names" in text
+    assert any("2 rows under 1 name kept as separate tracers" in a for a in ts.meta["assumptions"])
+    # the hint works: read without names, no row is one tracer by name, and nothing is said about names
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        plain = read_tracers(path, distance_unit="pc", columns={"name": None})
+    assert len(plain) == 3 and plain.meta["same_name_apart"] == 0
+    assert not any("share their name" in str(w.message) for w in record)
+
+
+def test_same_name_groups_compare_every_pair_within_the_limit():
+    # one name reused for objects at three places, listed in alternating order (so rows of one place are never
+    # neighbours when sorted by name), each place twice 0.2-25 arcmin apart, also across l = 0/360 and at
+    # b = 89.9 deg (where 180 deg of longitude is 12 arcmin); a chain of three rows 20 arcmin apart in steps
+    # is one object (joined through its pairs). Checked against every pair's haversine separation (common
+    # practice) joined by connected components (scipy), computed here by brute force.
+    from scipy.sparse.csgraph import connected_components
+
+    from dustkit._lib.sky import separation_deg
+
+    rng = np.random.default_rng(3)
+    places = [(30.0, 1.0), (359.9, 0.0), (120.0, 89.9), (200.0, -40.0), (80.0, 10.0)]
+    l, b, names = [], [], []
+    for k in range(40):  # 40 names, each at five places, two rows a place
+        for rep in range(2):
+            for pl, pb in places:
+                sep, pa = rng.uniform(0.2, 25.0) / 60.0 * rep, rng.uniform(0, 2 * np.pi)
+                b.append(pb + sep * np.cos(pa) * (pb < 89))
+                l.append(np.mod(pl + sep * np.sin(pa) / np.cos(np.radians(pb)) + 180.0 * rep * (pb > 89), 360.0))
+                names.append(f"N{k}")
+    l += [60.0, 60.0 + 20 / 60, 60.0 + 40 / 60]  # a chain: the ends are 40 arcmin apart
+    b += [0.0, 0.0, 0.0]
+    names += ["chain"] * 3
+    n = len(l)
+    # A_V 0.05 mag apart from name to name with 0.01 mag errors: rows of different names at one place are never
+    # near-duplicates by position (which would join them whatever their names)
+    av = [0.1 + 0.05 * int(x[1:]) if x != "chain" else 2.5 for x in names]
+    t = Table({"name": names, "l": l, "b": b, "dist": rng.uniform(500, 3000, n) * u.pc,
+               "e_dist": np.full(n, 100.0) * u.pc, "av": av, "e_av": np.full(n, 0.01)})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(t)
+    la, ba, na = np.array(l), np.array(b), np.array(names)
+    close = (separation_deg(la[:, None], ba[:, None], la[None], ba[None]) <= 0.5) & (na[:, None] == na[None])
+    n_objects = connected_components(close, directed=False)[0]
+    assert n_objects == 40 * 5 + 1 and len(ts) == n_objects
+    assert ts.meta["same_name_apart"] == 400  # every row of the 40 names; the chain is one object
+    assert list(np.asarray(ts.name)).count("chain") == 1
 
 
 # ======================================================================================
@@ -1466,3 +1543,19 @@ def test_merged_groups_combine_correlation_and_asymmetric_errors():
     single = _quiet_assumptions(read_tracers, t, duplicates="keep")
     assert len(ts) == 1 and ts.distance_err_low[0] + ts.distance_err_high[0] == pytest.approx(2 * ts.distance_err[0])
     assert ts.distance_err[0] < single.distance_err.min()
+
+
+def test_a_name_column_shared_by_a_crowd_of_rows_is_refused_with_a_hint():
+    # a column read as names ('source') that holds one survey label for 4000 rows within half a degree does not name
+    # objects (an identifier names one object: common practice); comparing its 8 million pairs is refused, naming
+    # the column and the value, and the hint's columns={'name': None} reads the catalogue
+    rng = np.random.default_rng(2)
+    n = 4000
+    t = Table({"source": np.full(n, "SurveyQ"), "l": rng.uniform(30.0, 30.4, n), "b": rng.uniform(0.0, 0.4, n),
+               "dist": rng.uniform(500, 3000, n) * u.pc, "e_dist": np.full(n, 100.0) * u.pc,
+               "av": rng.uniform(0.1, 3, n), "e_av": np.full(n, 0.1)})
+    with pytest.raises(CatalogError, match=r"name column 'source'.*'SurveyQ' is shared by \d+ rows.*"
+                                           r"columns=\{'name': None\}"):
+        _quiet_assumptions(read_tracers, t)
+    ts = _quiet_assumptions(read_tracers, t, columns={"name": None})
+    assert len(ts) + ts.meta["n_merged"] == n and ts.meta["same_name_apart"] == 0

@@ -4,23 +4,25 @@ import numpy as np
 from astropy import units as u
 from astropy.table import MaskedColumn
 
-from ..exceptions import CatalogError, DuplicatesWarning, RowsRejectedWarning
+from ..exceptions import AssumptionWarning, CatalogError, DuplicatesWarning, RowsRejectedWarning
 from .._lib.validation import check_real, param_error
 from .columns import DISTANCE_LIKE, KIND_LABEL, resolve_columns
 from .context import Context, empty_duplicates
 from .distances import distances
-from .duplicates import find_duplicates, merge_groups
+from .duplicates import find_duplicates, keys_apart, merge_groups
 from .reddening import reddening
 from .rules import (
     DUPLICATE_NSIGMA,
     DUPLICATE_SEPARATION_ARCSEC,
     PARALLAX_ERR_FLOOR,
     PARALLAX_LENGTH_SCALE,
+    SAME_NAME_SEPARATION_ARCMIN,
     check_duplicates,
     check_law,
     check_limits,
     check_modulus_kind,
     reason,
+    same_name_apart_notes,
     zero_point,
 )
 from .values import names_of, positions
@@ -56,7 +58,9 @@ def build_tracers(
     """Validate a table of tracers: the fields of a ``TracerSet`` and the notes (warnings) to emit.
 
     A dict ``extras`` receives ``position_weight`` (see ``duplicates.merge_groups``; None when
-    nothing was merged), for merging tracers of several reads later (the chunked builds)."""
+    nothing was merged) and ``row_lb`` (input row, l and b of every accepted row, before merging), for merging
+    tracers of several reads later (the chunked builds). Such a read (``extras`` given) does not note
+    the rows of one name kept apart: the chunked build finds and reports them for the whole catalogue."""
     rv = check_real("rv", rv, 0.0, np.inf, low_inclusive=False)
     law, rv = check_law(law, rv)
     frac = check_real("default_distance_frac_err", default_distance_frac_err, 0.0, np.inf, low_inclusive=False)
@@ -129,11 +133,18 @@ def build_tracers(
     if ctx.temperature is not None:
         per_row["temperature"] = ctx.temperature[keep]
     if duplicates == "merge":  # with 'keep' no search at all: the rows are taken as given
-        group, exact, copied = find_duplicates(per_row["l"], per_row["b"], per_row["distance"],
-                                               per_row["distance_err"], per_row["av"], per_row["av_err"], kept_names,
-                                               tol_arcsec=sep)
+        try:
+            group, exact, copied = find_duplicates(per_row["l"], per_row["b"], per_row["distance"],
+                                                   per_row["distance_err"], per_row["av"], per_row["av_err"],
+                                                   kept_names, tol_arcsec=sep)
+        except CatalogError as err:  # a "name" shared by crowds of rows: say which column
+            raise CatalogError(f"{source_desc}, name column {cols['name']!r}: {err}") from None
+        n_apart = _same_name_apart(ctx, kept_names, group, per_row["l"], per_row["b"], note=extras is None)
+        if extras is not None:
+            extras["row_lb"] = (rows, per_row["l"], per_row["b"])
         sel, per_row, dup_report = merge_groups(group, exact, copied, per_row, rows, kept_names, duplicates)
     else:
+        n_apart = 0
         sel, dup_report = rows, empty_duplicates()
     n_merged = int(rows.size - sel.size)
     if extras is not None:
@@ -146,13 +157,14 @@ def build_tracers(
         ctx.note(
             DuplicatesWarning,
             f"{len(dup_report)} of {n} rows are duplicates in {n_groups} groups ({n_exact} exact copies; the others "
-            f"the same name, or within {sep:g} arcsec with distance and A_V within "
+            f"the same name within {SAME_NAME_SEPARATION_ARCMIN:g} arcmin, or within {sep:g} arcsec with distance and A_V within "
             f"{DUPLICATE_NSIGMA:g} sigma): {what}. See TracerSet.duplicates for the groups.",
         )
     ctx.n_merged = n_merged
     arrays = [per_row[k] for k in ("l", "b", "distance", "distance_err", "av", "av_err")]
     meta = ctx.meta(file_sha, arrays + [per_row["row"] if kept_names is None else per_row["name"]])
     meta["n_merged"] = n_merged
+    meta["same_name_apart"] = n_apart
     meta["duplicates"] = duplicates
     meta["duplicate_separation_arcsec"] = sep
     fields = dict(
@@ -182,6 +194,24 @@ def build_tracers(
         temperature=per_row.get("temperature"),
     )
     return fields, ctx.notes
+
+
+def _same_name_apart(ctx, names, group, l, b, note=True):
+    """The number of rows whose name is also that of rows of another tracer (rows of one name more
+    than ``SAME_NAME_SEPARATION_ARCMIN`` apart, kept apart); noted (warning and assumption) with an
+    example when ``note``."""
+    if names is None:
+        return 0
+    apart, example = keys_apart(names, group)
+    n_rows = int(apart.sum())
+    if n_rows and note:
+        row, other = example
+        n_names = int(np.unique(names[apart]).size)
+        message, assumption = same_name_apart_notes(n_rows, n_names, (str(names[row]), float(l[row]), float(b[row]),
+                                                                      float(l[other]), float(b[other])))
+        ctx.note(AssumptionWarning, message, assumption=False)
+        ctx.assumptions.append(assumption)
+    return n_rows
 
 
 #: Normalised names of an input column holding corr(E(B-V), mu0) of each tracer.

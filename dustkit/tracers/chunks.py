@@ -4,8 +4,10 @@ Each chunk is read into an astropy Table and checked by the in-memory reader's o
 (``dustkit.tracers.assemble.build_tracers``), so a chunked build applies every reading rule of
 :func:`dustkit.tracers.read_tracers`. Duplicates in different chunks are found from two 64-bit
 keys of each chunk's tracers, kept sorted: a hash of the input row's values (exact copies) and a
-hash of the name (the same name); the tracers they link are joined into groups by connected
-components and merged by the reader's inverse-variance means (:func:`cross_chunk_groups`).
+hash of the name of each named row (the same name; rows of one name are linked only within
+``SAME_NAME_SEPARATION_ARCMIN`` of each other, as in memory); the tracers they link are joined
+into groups by connected components and merged by the reader's inverse-variance means
+(:func:`cross_chunk_groups`).
 """
 
 from dataclasses import dataclass
@@ -16,11 +18,11 @@ from astropy import units as u
 from ..exceptions import CatalogError
 from .arrow import arrow_to_table
 from .assemble import build_tracers
-from .duplicates import merge_measurements
-from .rules import floor_errors
+from .duplicates import close_pairs_by_key, keys_apart, merge_measurements
+from .rules import SAME_NAME_SEPARATION_ARCMIN, floor_errors
 
 __all__ = ["Chunk", "ChunkCache", "read_chunk", "chunk_tracers", "row_hash_of", "fit_arrays", "raw_arrays",
-           "sorted_keys", "cross_chunk_groups", "merge_across", "replace_in_sample", "drop_from_sample", "FIT_FIELDS"]
+           "sorted_keys", "name_of_entry", "cross_chunk_groups", "merge_across", "replace_in_sample", "drop_from_sample", "FIT_FIELDS"]
 
 #: The per-tracer fields a fit uses, in the order of :func:`fit_arrays` and :func:`raw_arrays`.
 FIT_FIELDS = ("l", "b", "distance", "distance_err", "av", "av_err")
@@ -97,8 +99,13 @@ def chunk_tracers(chunk, reading, keys=False):
     ``row``
         :func:`sorted_keys` of a 64-bit hash of each tracer's input row (its values in every column used);
     ``name``
-        :func:`sorted_keys` of a 64-bit hash of each named tracer's name (None without a name column;
-        rows with an empty name, named ``row <i>`` by the reader, are left out);
+        :func:`sorted_keys` of a 64-bit hash of the name of each named row (None without a name column;
+        rows with an empty name, named ``row <i>`` by the reader, are left out), in the order of
+        :func:`_name_entries`: the tracers that stand for one row, then the rows merged within the chunk
+        (each with the position of its tracer among the chunk's tracers);
+    ``name_lb``
+        ``(n_single, l, b)``: the number of entries of the first kind and the positions of the rows of
+        the second kind (the others' positions are their tracers');
     ``heads``
         for the tracers that stand for a group of rows merged within the chunk: their positions,
         the number of rows and the length of the sum of the unit vectors their position is the
@@ -112,13 +119,12 @@ def chunk_tracers(chunk, reading, keys=False):
         return f, notes, None
     used = list(dict.fromkeys(f["meta"]["columns"].values()))
     rows = np.asarray(f["row"], np.int64)
-    out = {"row": sorted_keys(row_hash_of(table, used, rows)), "name": None}
+    out = {"row": sorted_keys(row_hash_of(table, used, rows)), "name": None, "name_lb": None}
     name_col = f["meta"]["columns"].get("name")
     if name_col is not None and f.get("name") is not None:
-        raw = table[name_col]
-        named = ~np.ma.getmaskarray(raw)[rows] & (np.asarray(f["name"]) != np.char.add("row ", rows.astype(str)))
-        local = np.flatnonzero(named)
-        out["name"] = sorted_keys(_hash_strings(np.asarray(f["name"])[local]), local)
+        names, local, n_single, lm, bm = _name_entries(f, extras)
+        out["name"] = sorted_keys(_hash_strings(names), local)
+        out["name_lb"] = (n_single, lm, bm)
     dup = f["duplicates"]
     if len(dup):
         heads, n_rows = np.unique(np.asarray(dup["merged_into"], np.int64), return_counts=True)
@@ -127,6 +133,42 @@ def chunk_tracers(chunk, reading, keys=False):
     else:
         out["heads"] = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0))
     return f, notes, out
+
+
+def _name_entries(f, extras):
+    """The named rows of a chunk read by ``build_tracers`` (``f`` its fields, ``extras`` its extras):
+    ``(names, local, n_single, l, b)``. First the tracers that stand for one row (``local``: their
+    positions among the chunk's tracers), then every row of a group merged within the chunk (``local``:
+    the position of its group's tracer; ``l``, ``b``: the row's own position, as read). A row is named
+    unless the reader named it ``row <i>`` (an empty name)."""
+    rows = np.asarray(f["row"], np.int64)
+    names = np.asarray(f["name"]).astype(str)
+    dup = f["duplicates"]
+    merged = np.zeros(rows.size, bool)
+    if len(dup):
+        merged[np.searchsorted(rows, np.unique(np.asarray(dup["merged_into"], np.int64)))] = True
+    single = np.flatnonzero(~merged & (names != np.char.add("row ", rows.astype(str))))
+    mrow = np.asarray(dup["row"], np.int64) if len(dup) else np.zeros(0, np.int64)
+    mname = np.asarray(dup["name"]).astype(str) if len(dup) else np.zeros(0, str)
+    keep = mname != np.char.add("row ", mrow.astype(str))
+    mrow, mname = mrow[keep], mname[keep]
+    mlocal = np.searchsorted(rows, np.asarray(dup["merged_into"], np.int64)[keep]) if len(dup) else mrow
+    if mrow.size:
+        all_rows, l, b = extras["row_lb"]
+        at = np.searchsorted(all_rows, mrow)
+        lm, bm = np.asarray(l, float)[at], np.asarray(b, float)[at]
+    else:
+        lm = bm = np.zeros(0)
+    return (np.concatenate([names[single], mname]), np.concatenate([single, mlocal]).astype(np.int64),
+            int(single.size), lm, bm)
+
+
+def name_of_entry(chunk, reading, entry):
+    """The name of entry ``entry`` of a chunk's name keys (see :func:`chunk_tracers`): the chunk read again."""
+    extras = {}
+    f, _ = build_tracers(read_chunk(chunk), source_desc=f"{chunk.path!r} rows {chunk.start}..{chunk.stop - 1}",
+                         file_sha="", extras=extras, **reading)
+    return str(_name_entries(f, extras)[0][entry])
 
 
 def sorted_keys(keys, local=None):
@@ -178,19 +220,20 @@ class ChunkCache:
         self.arrays = {}
 
 
-def _repeated(parts):
-    """``(key, chunk, position)`` of every tracer whose key (from :func:`sorted_keys`, per chunk in
-    ``parts``) occurs more than once among all chunks: one merge of the sorted runs."""
+def _repeated(parts, within=False):
+    """``(key, chunk, position, entry)`` of every entry whose key (from :func:`sorted_keys`, per chunk in
+    ``parts``) occurs more than once among all chunks (``within``: also twice in one chunk): one merge
+    of the sorted runs. ``position`` is among the chunk's tracers, ``entry`` the index of the key."""
     cids = sorted(c for c in parts if parts[c] is not None and parts[c][0].size)
-    empty = (np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros(0, np.int64))
-    if len(cids) < 2:
+    empty = (np.zeros(0, np.uint64), np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
+    if len(cids) < (1 if within else 2):
         return empty
     s = np.sort(np.concatenate([parts[c][0] for c in cids]), kind="stable")  # merges sorted runs
     rep = np.unique(s[np.flatnonzero(s[1:] == s[:-1])])
     del s
     if rep.size == 0:
         return empty
-    keys, cid, local = [], [], []
+    keys, cid, local, entry = [], [], [], []
     for c in cids:
         hs, unsorted, pos_of = parts[c]
         lo, hi = np.searchsorted(hs, rep, "left"), np.searchsorted(hs, rep, "right")
@@ -202,51 +245,96 @@ def _repeated(parts):
         keys.append(unsorted[pos])
         cid.append(np.full(pos.size, c, dtype=np.int64))
         local.append(pos if pos_of is None else np.asarray(pos_of)[pos])
-    return np.concatenate(keys), np.concatenate(cid), np.concatenate(local)
+        entry.append(pos)
+    return np.concatenate(keys), np.concatenate(cid), np.concatenate(local), np.concatenate(entry)
 
 
-def cross_chunk_groups(keys):
+def _entry_positions(keys, cid, local, entry, raw_of):
+    """l and b of name entries (see :func:`chunk_tracers`): a merged row's own position, else its
+    tracer's (``raw_of(chunk)``, once per chunk)."""
+    l, b = np.empty(cid.size), np.empty(cid.size)
+    for c in np.unique(cid):
+        sel = np.flatnonzero(cid == c)
+        n_single, lm, bm = keys[int(c)]["name_lb"]
+        member = entry[sel] >= n_single
+        at = sel[member]
+        l[at], b[at] = lm[entry[at] - n_single], bm[entry[at] - n_single]
+        at = sel[~member]
+        if at.size:
+            raw = raw_of(int(c))
+            l[at], b[at] = raw[0][local[at]], raw[1][local[at]]
+    return l, b
+
+
+def _name_links(keys, found, raw_of):
+    """Node pairs (``chunk << 32 | position``) linked by the same name within the same-name limit, among
+    the entries ``found`` of names held by two or more chunks (:func:`_repeated` with ``within``)."""
+    key, cid, local, entry = found
+    order = np.lexsort((cid, key))
+    k, c = key[order], cid[order]
+    new = np.r_[True, (k[1:] != k[:-1]) | (c[1:] != c[:-1])]  # first entry of each (name, chunk)
+    first_of_key = np.r_[True, k[1:] != k[:-1]]
+    n_chunks = np.add.reduceat(new.astype(np.int64), np.flatnonzero(first_of_key)) if k.size else k
+    across = np.zeros(k.size, bool)
+    across[order] = np.repeat(n_chunks, np.diff(np.r_[np.flatnonzero(first_of_key), k.size])) > 1
+    sel = np.flatnonzero(across)
+    if sel.size < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    l, b = _entry_positions(keys, cid[sel], local[sel], entry[sel], raw_of)
+    i, j = close_pairs_by_key(key[sel], l, b, SAME_NAME_SEPARATION_ARCMIN / 60.0,
+                              shown=lambda h: f"(64-bit hash {int(h)}) held by several chunks")
+    node = cid[sel] * (1 << 32) + local[sel]
+    i, j = node[i], node[j]
+    return i[i != j], j[i != j]
+
+
+def cross_chunk_groups(keys, raw_of):
     """Tracers of different chunks that are one: exact copies (the same row hash) and the same name.
 
-    ``keys`` maps each chunk's index to the ``keys`` of :func:`chunk_tracers`. The tracers linked
-    by either key are joined into groups by connected components (as in memory, where the name
-    and the copies join rows into one group). Returns a dict with, per group member (sorted by
-    group, then chunk and position): ``chunk``, ``local`` (position among the chunk's tracers),
-    ``group``, ``copy`` (an exact copy of an earlier member: no new measurement), ``source``
-    (for a copy, the position among the members of the member it repeats; else -1), ``head`` (the
-    group's first member, which stands for it), ``n_rows`` (rows the tracer stands for after the
-    chunk's own merging) and ``weight`` (the length of the sum of unit vectors its position is
-    the mean of; 1 for a single row).
+    ``keys`` maps each chunk's index to the ``keys`` of :func:`chunk_tracers`. Rows of one name are
+    linked where they are within ``SAME_NAME_SEPARATION_ARCMIN`` of each other (their positions: a
+    row merged within its chunk has its own, kept in the keys; the others are their tracers', from
+    ``raw_of(chunk)``, the chunk's :func:`raw_arrays`, asked only of chunks holding a name that another
+    chunk holds too). The tracers linked by either key are joined into groups by connected components
+    (as in memory, where the name and the copies join rows into one group). Returns a dict with, per
+    group member (sorted by group, then chunk and position): ``chunk``, ``local`` (position among the
+    chunk's tracers), ``group``, ``copy`` (an exact copy of an earlier member: no new measurement),
+    ``source`` (for a copy, the position among the members of the member it repeats; else -1),
+    ``head`` (the group's first member, which stands for it), ``n_rows`` (rows the tracer stands for
+    after the chunk's own merging) and ``weight`` (the length of the sum of unit vectors its position
+    is the mean of; 1 for a single row); and ``apart``: ``(rows, names, example)``, the named rows whose
+    name is also that of a row of another tracer of the catalogue (kept apart: farther than the limit),
+    the number of such names, and ``((chunk, entry), (chunk, entry))`` of a first such row and a row of
+    its name elsewhere, with their positions (None without such rows).
     """
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
-    found = [_repeated({c: k["row"] for c, k in keys.items()}),
-             _repeated({c: k["name"] for c, k in keys.items() if k["name"] is not None})]
-    node = np.concatenate([c * (1 << 32) + p for _, c, p in found])
+    row_found = _repeated({c: k["row"] for c, k in keys.items()})
+    names = _repeated({c: k["name"] for c, k in keys.items() if k["name"] is not None}, within=True)
+    ni, nj = _name_links(keys, names, raw_of)
+    node = np.concatenate([row_found[1] * (1 << 32) + row_found[2], names[1] * (1 << 32) + names[2]])
     empty = {k: np.zeros(0, np.int64) for k in ("chunk", "local", "group", "n_rows")}
     if node.size == 0:
         return dict(empty, copy=np.zeros(0, bool), head=np.zeros(0, bool), weight=np.zeros(0),
-                    source=np.zeros(0, np.int64))
+                    source=np.zeros(0, np.int64), apart=(0, 0, None))
     uniq, inv = np.unique(node, return_inverse=True)
-    ii, jj, copy, source = [], [], np.zeros(uniq.size, bool), np.full(uniq.size, -1, np.int64)
-    start = 0
-    for kind, (key, cid, _) in zip(("row", "name"), found):
-        idx = inv[start:start + key.size]
-        start += key.size
-        order = np.lexsort((idx, key))  # by key, then chunk and position (node ids sort so)
-        k, i, c = key[order], idx[order], cid[order]
-        link = np.flatnonzero((k[1:] == k[:-1]) & (c[1:] != c[:-1]))
-        ii.append(i[link])
-        jj.append(i[link + 1])
-        if kind == "row":  # every member of a run of equal row hashes after its first is a copy
-            run_first = np.maximum.accumulate(np.where(np.r_[True, k[1:] != k[:-1]], np.arange(k.size), 0))
-            later = (np.arange(k.size) != run_first) & (c != c[run_first])
-            copy[i[later]] = True
-            source[i[later]] = i[run_first[later]]
-    i, j = np.concatenate(ii), np.concatenate(jj)
+    copy, source = np.zeros(uniq.size, bool), np.full(uniq.size, -1, np.int64)
+    key, cid = row_found[0], row_found[1]
+    idx = inv[:key.size]
+    order = np.lexsort((idx, key))  # by key, then chunk and position (node ids sort so)
+    k, i, c = key[order], idx[order], cid[order]
+    link = np.flatnonzero((k[1:] == k[:-1]) & (c[1:] != c[:-1]))
+    # every member of a run of equal row hashes after its first is a copy
+    run_first = np.maximum.accumulate(np.where(np.r_[True, k[1:] != k[:-1]], np.arange(k.size), 0))
+    later = (np.arange(k.size) != run_first) & (c != c[run_first])
+    copy[i[later]] = True
+    source[i[later]] = i[run_first[later]]
+    i = np.concatenate([i[link], np.searchsorted(uniq, ni)])
+    j = np.concatenate([idx[order][link + 1], np.searchsorted(uniq, nj)])
     graph = coo_matrix((np.ones(i.size, np.int8), (i, j)), shape=(uniq.size, uniq.size))
     _, group = connected_components(graph, directed=False)
+    apart = _apart(keys, names, group[inv[key.size:]], raw_of)
     sizes = np.bincount(group)
     members = np.flatnonzero(sizes[group] > 1)  # node ids sort by chunk, then position
     members = members[np.lexsort((members, group[members]))]
@@ -268,7 +356,22 @@ def cross_chunk_groups(keys):
         weight[sel[hit]] = hweight[at[hit]]
     return {"chunk": chunk, "local": local, "group": np.unique(grp, return_inverse=True)[1].astype(np.int64),
             "copy": copy[members] & ~head, "source": np.where(copy[members] & ~head, src, -1), "head": head,
-            "n_rows": n_rows, "weight": weight}
+            "n_rows": n_rows, "weight": weight, "apart": apart}
+
+
+def _apart(keys, names, group, raw_of):
+    """``(rows, names, example)`` of :func:`cross_chunk_groups` from the entries ``names`` of repeated
+    names and the final group of each entry's tracer."""
+    key, cid, local, entry = names
+    if key.size < 2:
+        return 0, 0, None
+    apart, example = keys_apart(key, group)
+    if example is None:
+        return 0, 0, None
+    two = np.array(example)
+    l, b = _entry_positions(keys, cid[two], local[two], entry[two], raw_of)
+    where = tuple((int(cid[x]), int(entry[x]), float(l[n]), float(b[n])) for n, x in enumerate(two))
+    return int(apart.sum()), int(np.unique(key[apart]).size), where
 
 
 def merge_across(groups, raw_of):

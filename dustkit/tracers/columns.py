@@ -151,6 +151,8 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
             )
     if "name" in explicit:
         cols["name"] = explicit["name"]
+    elif isinstance(columns, dict) and "name" in columns and columns["name"] is None:
+        pass  # columns={'name': None}: no name column (rows are 'row <i>'; none is one tracer by name)
     else:
         c = finder.find(NAME_ALIASES, used)
         if c is not None:
@@ -193,6 +195,8 @@ def _explicit_columns(table, columns, ctx, want_reddening):
     for key, col in columns.items():
         if key not in COLUMN_KEYS:
             raise param_error("columns", f"a dict whose keys are among {', '.join(COLUMN_KEYS)}", key)
+        if key == "name" and col is None:  # read without names (see resolve_columns)
+            continue
         if col in names:
             explicit[key] = col
         elif isinstance(col, str) and col.lower() in lower:

@@ -12,8 +12,12 @@ cell every pair is compared (rows ``k`` apart in the sorted order, for ``k = 1, 
 while any cell holds more than ``k`` rows), its separation checked exactly, and it is one
 tracer only if distance and A_V also agree within ``nsigma`` times their combined errors. So
 a crowded field, many distinct stars within the tolerance but at different distances or
-reddenings, is not merged. Exact copies repeat every value of a close pair. Names: one sort.
-Pairs are joined into groups by connected components.
+reddenings, is not merged. Exact copies repeat every value of a close pair. Names: rows of a
+name that occurs more than once are paired when they are within ``SAME_NAME_SEPARATION_ARCMIN``
+of each other (the same cell search, with the name's code in each cell's key, so that every
+pair of a name group is compared however the rows sort); rows of one name farther apart stay
+apart (:func:`keys_apart` finds them for the report). Pairs are joined into groups by connected
+components.
 """
 
 import numpy as np
@@ -21,11 +25,14 @@ from astropy.table import Table
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
+from ..exceptions import CatalogError
 from .context import empty_duplicates
-from .rules import DUPLICATE_NSIGMA, DUPLICATE_SEPARATION_ARCSEC
+from .rules import DUPLICATE_NSIGMA, DUPLICATE_SEPARATION_ARCSEC, SAME_NAME_PAIRS_LIMIT, SAME_NAME_SEPARATION_ARCMIN
 
 __all__ = [
+    "close_pairs_by_key",
     "find_duplicates",
+    "keys_apart",
     "merge_groups",
     "merge_measurements",
 ]
@@ -52,8 +59,67 @@ def _pairs_same_key(key, all_pairs=True):
     return np.concatenate(ii), np.concatenate(jj)
 
 
+def close_pairs_by_key(key, l, b, tol_deg, shown=lambda value: repr(str(value))):
+    """Index pairs (i, j), i != j, of rows that share a value of ``key`` and are at most ``tol_deg``
+    apart on the sky (each such pair at least once).
+
+    Rows whose key occurs once are set aside; the others are searched by the cells of
+    :func:`_close_pairs` with the key's code in each cell's key, so every pair of rows of one key
+    that is within the limit is compared, at any l and b and across l = 0/360 (no loop over rows).
+    A key that more than ``SAME_NAME_PAIRS_LIMIT`` pairs share in one cell is not a name: CatalogError
+    naming it (``shown(value)``) with a hint.
+    """
+    key = np.asarray(key)
+    if key.size < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    code = np.unique(key, return_inverse=True)[1].ravel().astype(np.int64)
+    rows = np.flatnonzero(np.bincount(code)[code] > 1)
+    if rows.size < 2:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    l, b = np.asarray(l, float)[rows], np.asarray(b, float)[rows]
+    try:
+        i, j = _close_pairs(l, b, float(tol_deg), key=code[rows], search_all=True)
+    except _TooManyPairs as crowd:
+        value = key[rows[np.flatnonzero(code[rows] == crowd.code)[0]]]
+        raise CatalogError(
+            f"The name {shown(value)} is shared by {crowd.rows} rows within {2 * float(tol_deg):g} deg of each other "
+            f"(more than {SAME_NAME_PAIRS_LIMIT} pairs to compare): the name column does not name objects. Hint: "
+            "read the catalogue without names (columns={'name': None}; --column name=) or give it unique names."
+        ) from None
+    return rows[i], rows[j]
+
+
+class _TooManyPairs(Exception):
+    """One code's rows in one cell have more than ``SAME_NAME_PAIRS_LIMIT`` pairs."""
+
+    def __init__(self, code, rows):
+        super().__init__(code, rows)
+        self.code, self.rows = int(code), int(rows)
+
+
+def keys_apart(key, group):
+    """True for the rows whose value of ``key`` (a name) is also that of a row of another group:
+    rows of one name kept as separate tracers. Also returns an example ``(row, other)``: the first
+    such row and the first row of its name in another group (None when there is none)."""
+    key = np.asarray(key)
+    group = np.asarray(group)
+    if key.size < 2:
+        return np.zeros(key.size, bool), None
+    code = np.unique(key, return_inverse=True)[1].ravel()
+    order = np.lexsort((group, code))
+    c, g = code[order], group[order]
+    new_pair = np.r_[True, (c[1:] != c[:-1]) | (g[1:] != g[:-1])]  # first row of each (name, group)
+    n_groups = np.bincount(c[new_pair], minlength=int(code.max()) + 1)
+    apart = n_groups[code] > 1
+    if not apart.any():
+        return apart, None
+    row = int(np.flatnonzero(apart)[0])
+    other = int(np.flatnonzero((code == code[row]) & (group != group[row]))[0])
+    return apart, (row, other)
+
+
 def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE_SEPARATION_ARCSEC,
-                    nsigma=DUPLICATE_NSIGMA):
+                    nsigma=DUPLICATE_NSIGMA, name_tol_arcmin=SAME_NAME_SEPARATION_ARCMIN):
     """Group labels of duplicated tracers, and whether each row is an exact copy of another.
 
     Parameters
@@ -63,13 +129,17 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     d, d_err, av, av_err : ndarray
         Distance and error (pc), A_V and error (mag).
     names : ndarray of str, optional
-        Names (None: no grouping by name).
+        Names (None: no grouping by name). Rows of one name are one tracer where they are within
+        ``name_tol_arcmin`` of each other (joined through chains of such pairs).
     tol_arcsec : float
         Separation below which two tracers may be at the same place, arcsec (0: only names
         and exact copies group rows).
     nsigma : float
         Two tracers at the same place are one if distance and A_V differ by at most ``nsigma``
         times their combined error.
+    name_tol_arcmin : float
+        Separation within which rows of the same name are one tracer, arcmin
+        (``SAME_NAME_SEPARATION_ARCMIN``).
 
     Returns
     -------
@@ -96,7 +166,7 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     exact = np.zeros(n, dtype=bool)
     copied = np.zeros(n, dtype=bool)
     if names is not None:
-        i, j = _pairs_same_key(np.asarray(names), all_pairs=False)
+        i, j = close_pairs_by_key(names, l, b, float(name_tol_arcmin) / 60.0)
         ii.append(i)
         jj.append(j)
     tol = max(float(tol_arcsec), 1e-6) / 3600.0  # exact copies are found even with a zero tolerance
@@ -124,24 +194,27 @@ def find_duplicates(l, b, d, d_err, av, av_err, names=None, tol_arcsec=DUPLICATE
     return group, exact, copied
 
 
-def _close_pairs(l, b, tol):
+def _close_pairs(l, b, tol, key=None, search_all=False):
     """Index pairs (i, j), i != j, of rows at most ``tol`` deg apart (each pair at least once).
 
     Four grids of cells ``2 tol`` across, shifted by half a cell in latitude and in
     longitude: a pair closer than ``tol`` in both coordinates shares a cell in one of them.
-    Only the rows :func:`_not_alone` keeps are searched. Longitude wraps: those within two
-    cells of l = 0/360 are searched once more with the wrap moved to l = 180 deg.
+    Only the rows :func:`_not_alone` keeps are searched (every row with ``search_all``). Longitude
+    wraps: those within two cells of l = 0/360 are searched once more with the wrap moved to
+    l = 180 deg. With ``key`` (int64 codes, one per row) only rows of one code are paired.
     """
     l = np.mod(l, 360.0)
-    rows = _not_alone(l, b, tol)
+    rows = np.arange(l.size) if search_all else _not_alone(l, b, tol)
     if rows.size < 2:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     lr, br = l[rows], b[rows]
-    ci, cj = _grid_pairs(lr, br, tol)
+    kr = None if key is None else key[rows]
+    ci, cj = _grid_pairs(lr, br, tol, kr)
     near = np.flatnonzero(np.minimum(lr, 360.0 - lr) * np.maximum(np.cos(np.radians(br)), 1e-6) < 4.0 * tol)
     if near.size > 1:
         lw = lr[near]
-        i, j = _grid_pairs(np.where(lw > 180.0, lw - 180.0, lw + 180.0), br[near], tol)
+        i, j = _grid_pairs(np.where(lw > 180.0, lw - 180.0, lw + 180.0), br[near], tol,
+                           None if kr is None else kr[near])
         ci += [near[x] for x in i]
         cj += [near[x] for x in j]
     if not ci:
@@ -193,9 +266,10 @@ def _not_alone(l, b, tol, coarse=64):
     return np.flatnonzero(edge)
 
 
-def _grid_pairs(l, b, tol):
+def _grid_pairs(l, b, tol, key=None):
     """Lists of index arrays (i, j) of the pairs within ``tol`` that share a cell of one of the four
-    grids (cells ``2 tol`` across, l scaled per latitude band by :func:`_band_scale`)."""
+    grids (cells ``2 tol`` across, l scaled per latitude band by :func:`_band_scale`); with ``key``
+    (int64 codes) only pairs of one code (the cells numbered densely, then joined with the code)."""
     cell = 2.0 * tol
     ci, cj = [], []
     for sb in (0.0, 0.5):
@@ -203,7 +277,14 @@ def _grid_pairs(l, b, tol):
         x = l * _band_scale(kb, sb, cell)
         kb = kb.astype(np.int64) << 31
         for sl in (0.0, 0.5):
-            i, j = _pairs_same_key(kb + np.floor(x / cell + sl).astype(np.int64))
+            cells = kb + np.floor(x / cell + sl).astype(np.int64)
+            if key is not None:  # codes < n and dense cell numbers < n: one int64 key below n**2
+                cells = key * np.int64(l.size) + np.unique(cells, return_inverse=True)[1].ravel()
+                _, first, counts = np.unique(cells, return_index=True, return_counts=True)
+                if np.sum(counts * (counts - 1) // 2) > SAME_NAME_PAIRS_LIMIT:
+                    at = int(np.argmax(counts))
+                    raise _TooManyPairs(key[first[at]], counts[at])
+            i, j = _pairs_same_key(cells)
             keep = _separation_deg(l[i], b[i], l[j], b[j]) <= tol
             ci.append(i[keep])
             cj.append(j[keep])

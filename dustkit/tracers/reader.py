@@ -74,6 +74,7 @@ def read_tracers(
     columns : dict, optional
         Explicit role -> column mapping, e.g. ``{"ebv": "E_BV", "distance": "Dist"}``;
         always wins over recognition. Keys: see ``COLUMN_KEYS`` and the module docstring.
+        ``{"name": None}`` reads no name column (no rows are one tracer by their name).
     distance_unit : str or `~astropy.units.Unit`, optional
         Unit of a distance column; wins over the column's own unit and a unit in its
         name. Without any of these a bare number is taken as pc, with an
@@ -114,7 +115,7 @@ def read_tracers(
         Length scale of the exponentially decreasing space density prior (1.35 kpc;
         plain numbers in kpc).
     duplicates : {'merge', 'keep'}
-        Rows that repeat a tracer (exact copies; the same name; or positions within
+        Rows that repeat a tracer (exact copies; the same name within 30 arcmin; or positions within
         1 arcsec with distance and A_V within their errors) are merged into one tracer
         by inverse-variance means (default) or kept. Either way the groups are listed in
         ``TracerSet.duplicates``.
@@ -125,7 +126,8 @@ def read_tracers(
     intrinsic_color_bands : tuple of str or str, optional
         ``(blue, red)`` bands (or ``"BP-RP"``) of an ``intrinsic_color`` column whose name
         does not say it (names like ``(BP-RP)_0`` or ``bp_rp0`` say it).
-        ``'merge'`` (default): rows that repeat a tracer (exact copies; the same name; or
+        ``'merge'`` (default): rows that repeat a tracer (exact copies; the same name within
+        ``SAME_NAME_SEPARATION_ARCMIN``, 30 arcmin, on the sky, farther apart kept apart and reported; or
         positions within ``duplicate_separation`` with distance *and* A_V within 2 sigma of
         their combined errors) are merged into one tracer by inverse-variance means, and the
         groups listed in ``TracerSet.duplicates``. ``'keep'``: the rows are taken as given,

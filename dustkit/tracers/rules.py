@@ -26,6 +26,9 @@ __all__ = [
     "AV_ERR_FLOOR",
     "DUPLICATE_SEPARATION_ARCSEC",
     "DUPLICATE_NSIGMA",
+    "SAME_NAME_SEPARATION_ARCMIN",
+    "SAME_NAME_PAIRS_LIMIT",
+    "same_name_apart_notes",
     "DISTANCE_FRAC_ERR_FLOOR",
     "REASONS",
     "CHUNK_RULES",
@@ -67,6 +70,17 @@ PARALLAX_ERR_FLOOR = 0.01
 #: cross-matching compilations).
 DUPLICATE_SEPARATION_ARCSEC = 1.0
 DUPLICATE_NSIGMA = 2.0
+#: Rows with the same name are one tracer only if they are also within this separation on the
+#: sky, arcmin. Two compilations' centres of one cluster differ by arcminutes (common practice:
+#: cluster centres from different member lists and epochs), while the reused integer IDs of two
+#: surveys name different objects, almost always far apart; same-name rows farther apart are
+#: kept as separate tracers and reported (``same_name_apart_notes``).
+SAME_NAME_SEPARATION_ARCMIN = 30.0
+#: At most this many pairs of rows of one name are compared in one sky cell (a cell of twice the
+#: same-name limit across): a "name" that so many rows share in one place is not an identifier (a
+#: survey or cluster label, say), and comparing all its pairs would take memory without bound, so
+#: the read stops and names the value (hint: columns={'name': None}).
+SAME_NAME_PAIRS_LIMIT = 5_000_000
 #: Floor on per-tracer A_V errors used in every fit, mag (the same value as the 3-D model).
 AV_ERR_FLOOR = 0.02
 #: Floor on per-tracer fractional distance errors used in every fit (1%).
@@ -113,6 +127,25 @@ CHUNK_RULES = (
     ("distance", "distance_outside"),
 )
 _RANGES = {"latitude": LATITUDE_RANGE, "longitude": LONGITUDE_RANGE, "ra": RA_RANGE}
+
+
+def same_name_apart_notes(n_rows, n_names, example=None):
+    """The warning text and the assumption text (``meta['assumptions']``) for ``n_rows`` rows under
+    ``n_names`` names kept as separate tracers because rows of their name lie farther apart than
+    ``SAME_NAME_SEPARATION_ARCMIN``; ``example`` is ``(name, l1, b1, l2, b2)`` (deg) or None. The
+    in-memory and the chunked reads say it with these words."""
+    names = f"{n_names} name" + ("" if n_names == 1 else "s")
+    assumption = (f"rows with the same name more than {SAME_NAME_SEPARATION_ARCMIN:g} arcmin apart on the sky are "
+                  f"different objects: {n_rows} rows under {names} kept as separate tracers")
+    shown = ""
+    if example is not None:
+        name, l1, b1, l2, b2 = example
+        shown = f" (e.g. {name!r} at (l, b) = ({l1:.3f}, {b1:.3f}) and ({l2:.3f}, {b2:.3f}) deg)"
+    message = (f"{n_rows} rows share their name with rows more than {SAME_NAME_SEPARATION_ARCMIN:g} arcmin away"
+               f"{shown}: {names}, each kept as one tracer per place, not merged into one. A name reused "
+               "by two surveys names two objects. Hint: if the names are not unique identifiers, give the catalogue "
+               "unique names or read it without names (columns={'name': None}, or rename the column).")
+    return message, assumption
 
 
 def reason(key, col, **values):
