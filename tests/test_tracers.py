@@ -1559,3 +1559,39 @@ def test_a_name_column_shared_by_a_crowd_of_rows_is_refused_with_a_hint():
         _quiet_assumptions(read_tracers, t)
     ts = _quiet_assumptions(read_tracers, t, columns={"name": None})
     assert len(ts) + ts.meta["n_merged"] == n and ts.meta["same_name_apart"] == 0
+
+
+def test_right_ascension_within_24_without_a_unit_is_said_to_be_hours_perhaps():
+    # RA in hours is as common as RA in degrees (common practice); the North Galactic Pole's RA (192.85948 deg, see
+    # NGP_RA above) written as hours, 12.857299, read as deg lands 180 deg of RA away: warned, naming the column and
+    # the hint; with the unit hourangle it is the pole (b = 90 deg), and no warning
+    t = Table({"RA_h": [NGP_RA / 15.0, 3.0], "Dec": [NGP_DEC, 10.0], "dist_pc": [100.0, 200.0], "E(B-V)": [0.2, 0.3]})
+    with pytest.warns(AssumptionWarning, match=r"Column 'RA_h' has no unit and every right ascension is within "
+                                               r"0\.\.24 \(2 rows.*may be hours.*hourangle"):
+        read_tracers(t, columns={"ra": "RA_h", "dec": "Dec"})
+    t["RA_h"].unit = u.hourangle
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(t, columns={"ra": "RA_h", "dec": "Dec"})
+    assert not any("may be hours" in str(w.message) for w in record)
+    assert ts.b[0] == pytest.approx(90.0, abs=1e-4)
+    # degrees beyond 24 say nothing
+    t2 = Table({"RA": [NGP_RA, 3.0], "Dec": [NGP_DEC, 10.0], "dist_pc": [100.0, 200.0], "E(B-V)": [0.2, 0.3]})
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        read_tracers(t2)
+    assert not any("may be hours" in str(w.message) for w in record)
+
+
+def test_target_list_in_kpc_without_a_unit_is_refused_in_words_about_targets():
+    # an invented target list with distances 0.8-2.5 (kpc, the common unit of such lists: common practice) and no
+    # unit: read as pc the targets would sit at a few pc, so the read stops, speaking of targets (not of tracers
+    # or star clusters), with the hint; distance_unit='kpc' reads it
+    t = Table({"l": [30.0, 40.0, 50.0], "b": [0.0, 1.0, -1.0], "Dist": [0.8, 1.5, 2.5]})
+    with pytest.raises(CatalogError) as err:
+        read_targets(t)
+    text = str(err.value)
+    assert "'Dist'" in text and "median value of 1.5" in text and "put the targets at a few pc" in text
+    assert "tracer" not in text and "star cluster" not in text and "distance_unit='kpc'" in text
+    targets = read_targets(t, distance_unit="kpc")
+    np.testing.assert_allclose(targets.distance, [800.0, 1500.0, 2500.0])

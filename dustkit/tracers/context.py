@@ -119,6 +119,7 @@ class Context:
         self.quiet_default_errors = False
         self.modulus_kind = None  # 'true' | 'apparent' for a modulus column whose name does not say
         self.temperature = None  # per-row source temperatures of a colour-excess conversion (K)
+        self.rows_are = "tracers"  # what the rows are, in messages: "tracers" or "targets" (read_targets)
 
     def note(self, cls, msg, assumption=True):
         self.notes.append((cls, msg))

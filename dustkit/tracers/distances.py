@@ -104,10 +104,13 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
         good = vals[np.isfinite(vals) & (vals > 0)]
         med = float(np.median(good)) if good.size else np.nan
         if np.isfinite(med) and med < KPC_HINT_MEDIAN:
+            targets = getattr(ctx, "rows_are", "tracers") == "targets"
+            where = ("the targets at a few pc (a median below {:g} pc is not a target list of distances in pc)"
+                     if targets else "the tracers at a few pc, nearer than any star cluster (a median below {:g} pc "
+                     "is not a catalogue of distances in pc)").format(KPC_HINT_MEDIAN)
             raise CatalogError(
                 f"Column {colname!r} in {ctx.desc} has no unit and a median value of {med:.3g}: read as pc that "
-                f"would put the tracers at a few pc, nearer than any star cluster (a median below "
-                f"{KPC_HINT_MEDIAN:g} pc is not a catalogue of distances in pc). Hint: if the distances are in kpc, "
+                f"would put {where}. Hint: if the distances are in kpc, "
                 "pass distance_unit='kpc' (command line: --distance-unit kpc), or give the column a unit."
             )
         ctx.note(

@@ -255,6 +255,7 @@ def read_targets(
     """
     table, desc, file_sha = _load(source, format)
     ctx = Context(table, desc)
+    ctx.rows_are = "targets"
     ctx.modulus_kind = check_modulus_kind(distance_modulus_kind)
     cols = resolve_columns(table, columns, ctx, want_reddening=False)
     limits = check_limits(reject_limits)

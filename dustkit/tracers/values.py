@@ -136,6 +136,7 @@ def positions(table, cols, ctx):
     else:
         rc, dc = cols["ra"], cols["dec"]
         ra, ru, rraw = numeric(table, rc, ctx, sexagesimal="hour")
+        _hours_hint(ra, ru, rc, ctx)
         dec, du, draw = numeric(table, dc, ctx, sexagesimal="deg")
         ra = to_unit(ra, ru, u.deg, rc, ctx, "an angle")
         dec = to_unit(dec, du, u.deg, dc, ctx, "an angle")
@@ -156,6 +157,22 @@ def positions(table, cols, ctx):
     if l.size:
         l = np.where(l >= 360.0, 0.0, l)
     return l, b, ok
+
+
+def _hours_hint(ra, unit, colname, ctx):
+    """Warn when right ascensions without a unit are all within 0..24: hours, not degrees, perhaps (catalogues
+    list RA in hours as often as in degrees; read as deg, 0-24 h land in a 24 deg wedge of the sky)."""
+    finite = ra[np.isfinite(ra)]
+    sexagesimal = any(m.startswith(f"Column {colname!r} holds sexagesimal") for _, m in ctx.notes)
+    if unit is not None or sexagesimal or finite.size == 0 or finite.max() > 24.0:
+        return
+    ctx.note(
+        AssumptionWarning,
+        f"Column {colname!r} has no unit and every right ascension is within 0..24 ({finite.size} rows, at most "
+        f"{finite.max():g}); read as deg, but they may be hours. Hint: if they are hours, give the column the unit "
+        "hourangle (an astropy Table column with unit u.hourangle, a FITS TUNIT 'h') or multiply them by 15; if it is "
+        "not right ascension, map the columns with columns={...}.",
+    )
 
 
 def error_values(table, cols, key, ctx, default, value_desc, default_desc):
