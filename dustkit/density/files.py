@@ -96,6 +96,8 @@ def density_from_parts(parts):
 
 _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_", "support_", "n_tracers_", "counts_",
                  "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
+#: The errors' prior (raised cells and their lengths); files written before it existed use the mode's.
+_ERROR_PRIOR = ("error_boost_", "error_pixel_length_")
 _STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_", "pull_left_")
 
 
@@ -121,7 +123,8 @@ def density_state(model):
         "grid": {"nside": g.nside, "ordering": g.ordering, "distance_edges": g.distance_edges.copy()},
         "layer": model.layer_.state(),
         "scalars": {k: _scalar(model, k) for k in _STATE_SCALARS},
-        "arrays": {k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
+        "arrays": {**{k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
+                   **{k: np.asarray(getattr(model, k, getattr(model, k[6:]))) for k in _ERROR_PRIOR}},
         "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
         "tracer_info": {"law": t.law, "rv": float(t.rv)},
         "report": dict(getattr(model, "build_report_", {})),
