@@ -684,11 +684,12 @@ def _cmd_estimate(args, out):
 
 
 def _cmd_layer(args, out):
-    from .layer import BOOTSTRAP_RESAMPLES, cloud_lift, fit_layer, lift_caution
+    from .density import fit_catalogue_layer
+    from .layer import cloud_lift, lift_caution
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
-    layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES)  # errors: sky-block bootstrap plus the clouds' pull
+    layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors from a sky-block bootstrap and the pull
     if args.json:
         d = layer.as_dict()
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
@@ -913,8 +914,8 @@ def _cmd_demo(args, out):
     import numpy as np
     from astropy import units as u
 
+    from .density import fit_catalogue_layer
     from .io import export_table, save_model, write_slice_maps, write_table
-    from .layer import BOOTSTRAP_RESAMPLES, fit_layer
     from .model import CAUTION, build_model
     from .tracers import read_tracers
 
@@ -939,7 +940,7 @@ def _cmd_demo(args, out):
     out("")
 
     out("2. Fitting the smooth dust layer")
-    layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES)
+    layer = fit_catalogue_layer(tracers)
     out(*("   " + s for s in _layer_lines(layer)))
     truth = field["layer"]
     out(f"   (the invented truth: a0 = {truth['a0']} mag/kpc, h = {truth['h']} pc, z_sun = {truth['z_sun']} pc;",

@@ -21,7 +21,7 @@ from astropy.table import QTable, Table
 
 from dustkit.cli import main
 from dustkit.io import load_model
-from dustkit.layer import BOOTSTRAP_RESAMPLES, fit_layer
+from dustkit.density import DensityModel, fit_catalogue_layer
 from dustkit._errors import AssumptionWarning
 from dustkit.model import CAUTION, ExtinctionModel
 from dustkit.simulate import Cloud, DustField, simulate_tracers
@@ -219,8 +219,12 @@ def test_layer_json_has_the_keys_and_the_api_values(files):
     assert rc == 0, err
     got = json.loads(out)
     assert list(got) == ["a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err"]
-    want = fit_layer(_api_tracers(files), n_boot=BOOTSTRAP_RESAMPLES).as_dict()  # what the command fits
+    want = fit_catalogue_layer(_api_tracers(files)).as_dict()  # what the command fits
     assert got == {k: float(v) for k, v in want.items()}
+    # the layer the density model fits to the same catalogue: one given back with --layer-from
+    # changes nothing
+    fitted = DensityModel(quiet=True, amplitudes=(0.25,), lengths=[500] * u.pc).fit(_api_tracers(files)).layer_
+    assert [fitted.a0, fitted.h, fitted.z_sun] == [got["a0"], got["h"], got["z_sun"]]
     # a sanity check on the invented field: mid-plane extinction near the 0.9 mag/kpc put in
     assert 0.6 < got["a0"] < 1.3
 
@@ -230,7 +234,7 @@ def test_layer_text(files, call):
     assert rc == 0, err
     assert "a0" in out and "mag/kpc" in out and "h " in out and "z_sun" in out and "pc" in out
     # the demo field has clouds: the user is told how much of the error is their pull
-    pull = fit_layer(_api_tracers(files), n_boot=BOOTSTRAP_RESAMPLES).pull
+    pull = fit_catalogue_layer(_api_tracers(files)).pull
     assert ("pull of dust above the layer" in out) == bool(any(pull))
     if any(pull):
         assert f"a0 {abs(pull[0]):.3f} mag/kpc" in out
@@ -423,9 +427,8 @@ def test_source_temperature_option_reaches_the_reading(files, tmp_path, call):
                         check_rc=0)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        want = fit_layer(read_tracers(path, distance_unit="kpc", source_temperature=4000 * u.K),
-                         n_boot=BOOTSTRAP_RESAMPLES).as_dict()
-        default = fit_layer(read_tracers(path, distance_unit="kpc"), n_boot=BOOTSTRAP_RESAMPLES).as_dict()
+        want = fit_catalogue_layer(read_tracers(path, distance_unit="kpc", source_temperature=4000 * u.K)).as_dict()
+        default = fit_catalogue_layer(read_tracers(path, distance_unit="kpc")).as_dict()
     assert json.loads(out) == {k: float(v) for k, v in want.items()}
     assert want["a0"] > default["a0"]  # cooler stars redden less in BP-RP: more A_V for the same E(BP-RP)
     assert "No temperature" not in err

@@ -25,7 +25,7 @@ from .heldout import (ERROR_SIGNIFICANCE, cell_boost, compare_background, excess
 from .layer_share import layer_error_variance, layer_variance, remaining_pull
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
-__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights"]
+__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "fit_catalogue_layer"]
 
 from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
 
@@ -737,6 +737,18 @@ def _tolerances(n_cv):
 def _cv_subset(n, random_state):
     """Sorted indices of a random subset of CV_TRACERS tracers for the hyperparameter search (None: all)."""
     return None if n <= CV_TRACERS else np.sort(np.random.default_rng(random_state).choice(n, CV_TRACERS, replace=False))
+
+
+def fit_catalogue_layer(tracers, random_state=0):
+    """The smooth layer the density model fits to ``tracers`` (a :class:`~dustkit.layer.DustLayer`).
+
+    As :func:`~dustkit.layer.fit_layer` with bootstrap errors and the clouds' pull, at the
+    distances where the tracers most likely lie under the catalogue's own distance
+    distribution (:func:`~dustkit.density.solver.sample_distance_shift`; parallax distances
+    as they are), with near-duplicates counted once: ``dustkit layer`` writes this layer, so
+    one given back with ``--layer-from`` is the one a fit to the same catalogue would make.
+    """
+    return _tracer_inputs(tracers, random_state).layer
 
 
 def _tracer_inputs(tracers, random_state, layer=None):
