@@ -777,7 +777,7 @@ def _tracer_inputs(tracers, random_state, layer=None):
 
 
 def _all_terms(lat, layer, col, inp):
-    """The likelihood terms of every tracer of ``inp`` (:class:`_TracerInputs`) on the lattice, ``col`` their pixel slots."""
+    """The likelihood terms of every tracer of ``inp`` (:class:`_TracerInputs`); ``col``: their pixel slots."""
     return tracer_terms(lat, layer.av_pc, col, inp.b, inp.d, inp.de, inp.av, inp.ae, inp.weight, inp.corr,
                         log_shift=inp.shift)
 

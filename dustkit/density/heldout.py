@@ -20,8 +20,9 @@ from .._lib import healpix
 from .lattice import chord, unit_vectors
 from .solver import NU
 
-__all__ = ["LOWEST_AMPLITUDE", "EVIDENCE_MARGIN", "OUTLIER_Z", "ERROR_SIGNIFICANCE", "excess_noise", "layer_increments", "fit_unresolved_fractions",
-           "held_out_excess", "cell_boost", "unresolved_variance", "compare_background", "placement_variance"]
+__all__ = ["LOWEST_AMPLITUDE", "EVIDENCE_MARGIN", "OUTLIER_Z", "ERROR_SIGNIFICANCE", "excess_noise", "layer_increments",
+           "fit_unresolved_fractions", "held_out_excess", "cell_boost", "unresolved_variance", "compare_background",
+           "placement_variance"]
 
 #: Smallest background amplitude the second comparison (with raised cells) may choose.
 LOWEST_AMPLITUDE = 0.01
