@@ -16,7 +16,8 @@ from ._lib.validation import check_real, param_error, to_value
 from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
-           "layer_av_pc", "layer_av_mu", "layer_slope_pc", "BOOTSTRAP_RESAMPLES", "LIFT_EXCESS"]
+           "layer_av_pc", "layer_av_mu", "layer_slope_pc", "log_distance_sigma", "distance_nodes", "BOOTSTRAP_RESAMPLES",
+           "LIFT_EXCESS"]
 
 #: Block-bootstrap resamples where a layer's errors are reported (``dustkit layer``, the density
 #: model); the binned model's build keeps the least-squares errors plus the pull (a bootstrap
@@ -430,6 +431,17 @@ def sky_blocks(l_deg, b_deg, min_blocks=20):
 LAYER_NODES = 3
 
 
+def log_distance_sigma(distance_pc, distance_err_pc):
+    """Log-normal distance error (sigma of ln d) of each tracer, kept within 1e-4 and 1.5."""
+    return np.clip(np.asarray(distance_err_pc, float) / np.maximum(np.asarray(distance_pc, float), 1e-9), 1e-4, 1.5)
+
+
+def distance_nodes(n):
+    """``n`` Gauss-Hermite nodes of a standard normal (probabilists') and their weights, summing to 1."""
+    x, w = np.polynomial.hermite_e.hermegauss(n)
+    return x, w / w.sum()
+
+
 def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
     """Robust weighted least squares of the layer; returns (params, intrinsic scatter, Jacobian covariance).
 
@@ -445,10 +457,9 @@ def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
     p = np.clip(np.asarray(initial, float), lo + 1e-9, hi - 1e-9)
     if scatter is None:
         scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)
-    x, w = np.polynomial.hermite_e.hermegauss(LAYER_NODES)
-    w = w / w.sum()
+    x, w = distance_nodes(LAYER_NODES)
     mu = np.repeat(np.sin(np.deg2rad(b)), LAYER_NODES)
-    dq = (d[:, None] * np.exp(np.clip(de / np.maximum(d, 1e-9), 1e-4, 1.5)[:, None] * x[None, :])).ravel()
+    dq = (d[:, None] * np.exp(log_distance_sigma(d, de)[:, None] * x[None, :])).ravel()
     buf = (np.empty(dq.size), np.empty(dq.size), np.empty(dq.size, bool), np.empty(dq.size, bool))
     out = np.empty(dq.size)
 

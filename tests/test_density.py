@@ -350,9 +350,10 @@ def test_correlated_distance_and_av_errors_enter_the_likelihood():
     # an apparent modulus makes the A_V error and the log-distance error correlated; the
     # likelihood's variance must equal Var(A_true(d) + e_A) over the joint error distribution
     # (Monte Carlo, common practice)
-    from dustkit.density.solver import TracerTerms, _noise, _nodes
+    from dustkit.density.solver import TracerTerms, _noise
+    from dustkit.layer import distance_nodes
 
-    x, w = _nodes(5)
+    x, w = distance_nodes(5)
     slope = 1.0  # A_true grows linearly with the standardised log distance here
     a_nodes = (1.0 + slope * 0.1 * x)[None, :]
     rho, sa = -0.8, 0.1

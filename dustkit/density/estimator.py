@@ -415,17 +415,17 @@ class DensityModel:
         ratio = tracers.av_ratio(self.tracers_)
         given = self.layer_.with_scaled_a0(ratio) if given_layer(self.layer) is not None else None
         inp = _tracer_inputs(tracers, self.random_state, given)
-        l, b, d, de, av, ae, _, weight, _, corr, shift, layer = inp
-        lat = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, self.boost_, self.pixel_length_,
-                      bool(getattr(self, "isotropic_", 0.0)))
-        lat_err = Lattice(grid, self.active_pixels_, self.amplitude_, self.length_,
-                          getattr(self, "error_boost_", self.boost_), getattr(self, "error_pixel_length_",
-                                                                                self.pixel_length_), lat.isotropic)
-        col = np.searchsorted(lat.pixels, grid.pixel(l, b))
+        layer = inp.layer
+        lat, lat_err = (Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, boost, cell_length,
+                                bool(getattr(self, "isotropic_", 0.0)))
+                        for boost, cell_length in ((self.boost_, self.pixel_length_),
+                                                   (getattr(self, "error_boost_", self.boost_),
+                                                    getattr(self, "error_pixel_length_", self.pixel_length_))))
+        col = np.searchsorted(lat.pixels, grid.pixel(inp.l, inp.b))
         terms = _all_terms(lat, layer, col, inp)
         post = fit_posterior(lat, terms, tau=self.tau_, xi0=self.mode_, max_iter=20)
         xs = draw_samples(lat_err, post, self.samples_.shape[2], np.random.default_rng(self.random_state),
-                          cg_tol=_tolerances(min(l.size, CV_TRACERS))[2])
+                          cg_tol=_tolerances(min(inp.l.size, CV_TRACERS))[2])
         unresolved = self.unresolved_ * ratio**2
         self._store(grid, layer, lat, post, xs, self.tau_, tracers, lat_err)
         self.mode_ = post.xi
@@ -436,22 +436,22 @@ class DensityModel:
                               "refit": "learned prior, raised cells and unresolved fractions reused"}
         return self
 
-    def _store(self, grid, layer, lat, post, xs, tau, tracers, lat_err=None):
+    def _store(self, grid, layer, lat, post, xs, tau, tracers, lat_err):
+        """Keep the posterior: the mode under ``lat``, its draws ``xs`` under the errors' prior ``lat_err``."""
         e = grid.distance_edges
         npix = grid.npix
         _, bc_all = grid.pixel_centres()
         inc = layer_increments(layer, bc_all, e)                                   # (npix, K)
-        lat_e = lat if lat_err is None else lat_err
         prior_var = prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
         # active pixels: their own amplitudes and lengths, cell by cell
-        prior_var[lat.pixels] = lat_e.cumulative_prior_variance(inc[lat.pixels])
+        prior_var[lat.pixels] = lat_err.cumulative_prior_variance(inc[lat.pixels])
         av = np.concatenate([np.zeros((npix, 1)), np.cumsum(inc, axis=1)], axis=1)   # the prior (layer)
         var = prior_var.copy()
         # point estimate: the posterior mode (monotone: the density is positive); spread: the
         # Laplace posterior propagated linearly to cumulative A_V (the delta method)
         g = np.exp(post.f)
         inc_act = inc[lat.pixels].T * g                                             # (K, P)
-        dev = inc_act[:, :, None] * lat_e.forward(xs - post.xi[:, :, None])          # (K, P, S)
+        dev = inc_act[:, :, None] * lat_err.forward(xs - post.xi[:, :, None])        # (K, P, S)
         cum = np.concatenate([np.zeros((1, *dev.shape[1:])), np.cumsum(dev, axis=0)], axis=0)  # (E, P, S)
         av[lat.pixels] = np.concatenate([np.zeros((1, lat.n_pix)), np.cumsum(inc_act, axis=0)], axis=0).T
         var[lat.pixels] = np.mean(cum**2, axis=2).T
@@ -465,7 +465,7 @@ class DensityModel:
         self.active_pixels_ = lat.pixels
         self.boost_ = np.array(lat.boost)
         self.pixel_length_ = np.array(lat.pixel_length)
-        self.error_boost_, self.error_pixel_length_ = np.array(lat_e.boost), np.array(lat_e.pixel_length)
+        self.error_boost_, self.error_pixel_length_ = np.array(lat_err.boost), np.array(lat_err.pixel_length)
         self.samples_ = np.ascontiguousarray(np.transpose(cum, (1, 0, 2))).astype(np.float32)
         self.differential_ = np.diff(av, axis=1) / (np.diff(e) / 1000.0)
         counts = np.zeros((npix, e.size - 1), np.int64)

@@ -124,7 +124,7 @@ def density_state(model):
         "layer": model.layer_.state(),
         "scalars": {k: _scalar(model, k) for k in _STATE_SCALARS},
         "arrays": {**{k: np.asarray(getattr(model, k)) for k in _STATE_ARRAYS},
-                   **{k: np.asarray(getattr(model, k, getattr(model, k[6:]))) for k in _ERROR_PRIOR}},
+                   **{k: np.asarray(getattr(model, k, getattr(model, k.removeprefix("error_")))) for k in _ERROR_PRIOR}},
         "tracers": {k: np.asarray(getattr(t, k)) for k in ("l", "b", "distance", "distance_err", "av", "av_err", "name")},
         "tracer_info": {"law": t.law, "rv": float(t.rv)},
         "report": dict(getattr(model, "build_report_", {})),

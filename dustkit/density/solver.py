@@ -22,6 +22,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse
 
+from ..layer import distance_nodes, log_distance_sigma
+
 __all__ = ["TracerTerms", "Posterior", "fit_posterior", "draw_samples", "cumulative_at_nodes", "sample_distance_shift",
            "log_evidence"]
 
@@ -30,16 +32,6 @@ NU = 4.0
 #: Gauss-Hermite nodes in log distance per tracer.
 N_NODES = 5
 DEBUG = False
-
-
-def _log_sigma(d, distance_err):
-    """Log-normal distance error (sigma of ln d) of each tracer, kept within 1e-4 and 1.5."""
-    return np.clip(np.asarray(distance_err, float) / np.maximum(d, 1e-9), 1e-4, 1.5)
-
-
-def _nodes(n):
-    x, w = np.polynomial.hermite_e.hermegauss(n)
-    return x, w / w.sum()
 
 
 @dataclass
@@ -90,8 +82,8 @@ def tracer_terms(lattice, layer_av, col, b, distance, distance_err, av, av_err, 
     """
     e = lattice.grid.distance_edges
     d = np.asarray(distance, float)
-    sig_ln = _log_sigma(d, distance_err)
-    x, w = _nodes(n_nodes) if n_nodes > 1 else (np.zeros(1), np.ones(1))
+    sig_ln = log_distance_sigma(d, distance_err)
+    x, w = distance_nodes(n_nodes) if n_nodes > 1 else (np.zeros(1), np.ones(1))
     centre = np.zeros(d.size) if log_shift is None else np.asarray(log_shift, float)
     dq = d[:, None] * np.exp(centre[:, None] + sig_ln[:, None] * x[None, :])  # (n, q)
     censored = d > e[-1]
@@ -123,7 +115,7 @@ def sample_distance_shift(distance, distance_err, weight=None, bandwidth=0.08, m
     smaller shifts. Capped at ``max_sigma`` sigma.
     """
     d = np.asarray(distance, float)
-    sig = _log_sigma(d, distance_err)
+    sig = log_distance_sigma(d, distance_err)
     x = np.log(np.maximum(d, 1e-9))
     w = np.ones(d.size) if weight is None else np.asarray(weight, float)
     h = float(bandwidth)
