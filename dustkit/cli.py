@@ -684,8 +684,8 @@ def _cmd_estimate(args, out):
 
 
 def _cmd_layer(args, out):
-    from .density import fit_catalogue_layer
-    from .layer import cloud_lift, lift_caution
+    from .density import catalogue_lift, fit_catalogue_layer
+    from .layer import lift_caution
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
@@ -695,7 +695,7 @@ def _cmd_layer(args, out):
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
         return 0
     out(tracers.summary(), "", *_layer_lines(layer))
-    lift = cloud_lift(layer, tracers.b, tracers.distance, tracers.distance_err, tracers.av, tracers.av_err)
+    lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
     if lift["lifted"]:
         out(f"  caution: {lift_caution(lift)}")
     return 0

@@ -21,7 +21,7 @@ from astropy.table import QTable, Table
 
 from dustkit.cli import main
 from dustkit.io import load_model
-from dustkit.density import DensityModel, fit_catalogue_layer
+from dustkit.density import DensityModel, catalogue_lift, fit_catalogue_layer
 from dustkit._errors import AssumptionWarning
 from dustkit.model import CAUTION, ExtinctionModel
 from dustkit.simulate import Cloud, DustField, simulate_tracers
@@ -223,8 +223,11 @@ def test_layer_json_has_the_keys_and_the_api_values(files):
     assert got == {k: float(v) for k, v in want.items()}
     # the layer the density model fits to the same catalogue: one given back with --layer-from
     # changes nothing
-    fitted = DensityModel(quiet=True, amplitudes=(0.25,), lengths=[500] * u.pc).fit(_api_tracers(files)).layer_
+    model = DensityModel(quiet=True, amplitudes=(0.25,), lengths=[500] * u.pc).fit(_api_tracers(files))
+    fitted = model.layer_
     assert [fitted.a0, fitted.h, fitted.z_sun] == [got["a0"], got["h"], got["z_sun"]]
+    # and the command's lift caution is judged as the build's (the same tracers above and below it)
+    assert catalogue_lift(_api_tracers(files), fitted) == model.build_report_["layer_lift"]
     # a sanity check on the invented field: mid-plane extinction near the 0.9 mag/kpc put in
     assert 0.6 < got["a0"] < 1.3
 

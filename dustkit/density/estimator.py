@@ -25,7 +25,8 @@ from .heldout import (ERROR_SIGNIFICANCE, cell_boost, compare_background, excess
 from .layer_share import layer_error_variance, layer_variance, remaining_pull
 from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
 
-__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "fit_catalogue_layer"]
+__all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "fit_catalogue_layer",
+           "catalogue_lift"]
 
 from ..tracers.rules import AV_ERR_FLOOR  # noqa: E402  (0.02 mag, the floor every fit uses)
 
@@ -742,11 +743,10 @@ def _cv_subset(n, random_state):
 def fit_catalogue_layer(tracers, random_state=0):
     """The smooth layer the density model fits to ``tracers`` (a :class:`~dustkit.layer.DustLayer`).
 
-    As :func:`~dustkit.layer.fit_layer` with bootstrap errors and the clouds' pull, at the
-    distances where the tracers most likely lie under the catalogue's own distance
-    distribution (:func:`~dustkit.density.solver.sample_distance_shift`; parallax distances
-    as they are), with near-duplicates counted once: ``dustkit layer`` writes this layer, so
-    one given back with ``--layer-from`` is the one a fit to the same catalogue would make.
+    As :func:`~dustkit.layer.fit_layer` with bootstrap errors and the pull, at the distances the
+    catalogue's own distance distribution puts the tracers at (:func:`~.solver.sample_distance_shift`),
+    near-duplicates counted once: ``dustkit layer`` writes it, so one given back with
+    ``--layer-from`` is the one a fit to the same catalogue makes.
     """
     return _tracer_inputs(tracers, random_state).layer
 
@@ -803,10 +803,9 @@ def _error_prior(lat, layer, misses, held):
     noise: each node's kernel mean of the excess less :data:`~.heldout.ERROR_SIGNIFICANCE`
     standard errors of it (each tracer's null variance of its excess from ``held``: ``av, ae,
     fitted, pvar, base, tau`` of the search; :func:`~.heldout.excess_noise`), so that misses
-    by chance where the truth is smooth do not widen the errors. The local unresolved
-    variance (npix, n_edges) is the kernel mean as it comes (lowered as well, it left the
-    answers in front of the sparse catalogue's clouds too narrow: 0.69 -> 0.64 inside 1 sigma
-    over six draws, stop 35).
+    by chance where the truth is smooth do not widen the errors. The local unresolved variance
+    (npix, n_edges) is the kernel mean as it comes (lowered too, it left the answers in front of
+    the sparse catalogue's clouds too narrow: 0.69 -> 0.64 inside 1 sigma, stop 35).
     """
     l, b, d, weight, excess = misses
     grid = lat.grid
@@ -817,9 +816,18 @@ def _error_prior(lat, layer, misses, held):
             unresolved_variance(grid, l, b, d, excess, weight))
 
 
+def catalogue_lift(tracers, layer, random_state=0):
+    """:func:`~dustkit.layer.cloud_lift` of ``layer`` over ``tracers`` at the distances the build judges it at."""
+    return _lift_at(layer, _tracer_inputs(tracers, random_state, layer))
+
+
+def _lift_at(layer, inp):
+    return cloud_lift(layer, inp.b, inp.d * np.exp(inp.shift), inp.de, inp.av, inp.ae)
+
+
 def _lift_report(layer, inp, given):
     """:func:`~dustkit.layer.cloud_lift` of a fit's layer (at the distances it was fitted at), with a caution if lifted."""
-    lift = cloud_lift(layer, inp.b, inp.d * np.exp(inp.shift), inp.de, inp.av, inp.ae)
+    lift = _lift_at(layer, inp)
     if lift["lifted"] and given is None:
         warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=3)
     return lift
