@@ -689,7 +689,7 @@ def _cmd_layer(args, out):
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
-    layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors from a sky-block bootstrap and the pull
+    layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors summed over sky blocks, and the pull
     if args.json:
         d = layer.as_dict()
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))

@@ -17,7 +17,7 @@ from .._lib.validation import check_choice, check_int, check_nside, check_real, 
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, DustkitWarning, ModelNotFittedError
 from ..grid import Grid
-from ..layer import BOOTSTRAP_RESAMPLES, DustLayer, cloud_lift, fit_layer, given_layer, lift_caution
+from ..layer import DustLayer, cloud_lift, fit_layer, given_layer, lift_caution
 from . import lattice as _lattice
 from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
 from .heldout import (ERROR_SIGNIFICANCE, cell_boost, compare_background, excess_noise, fit_unresolved_fractions,
@@ -386,7 +386,7 @@ class DensityModel:
     def _errors(self, layer, unresolved, tau_s):
         """The answers' predictive errors at the nodes, from the stored posterior and the unresolved parts."""
         self.unresolved_ = unresolved
-        # the layer's own uncertainty (its parameters' bootstrap covariance) where the answer
+        # the layer's own uncertainty (its parameters' block covariance) where the answer
         # leans on the prior (where tracers inform it, the field's posterior absorbs the
         # layer's misfit) or past the data; and the clouds' pull on the layer: what the field
         # left of it (pull_left_, as the tracers show it), all of it past the data
@@ -743,7 +743,7 @@ def _cv_subset(n, random_state):
 def fit_catalogue_layer(tracers, random_state=0):
     """The smooth layer the density model fits to ``tracers`` (a :class:`~dustkit.layer.DustLayer`).
 
-    As :func:`~dustkit.layer.fit_layer` with bootstrap errors and the pull, at the distances the
+    As :func:`~dustkit.layer.fit_layer` with block errors and the pull, at the distances the
     catalogue's own distance distribution puts the tracers at (:func:`~.solver.sample_distance_shift`),
     near-duplicates counted once: ``dustkit layer`` writes it, so one given back with
     ``--layer-from`` is the one a fit to the same catalogue makes.
@@ -757,7 +757,7 @@ def _tracer_inputs(tracers, random_state, layer=None):
     The shift comes from the catalogue's own distance distribution
     (:func:`~dustkit.density.solver.sample_distance_shift`); parallax distances already
     carry a prior of their own (``read_tracers``) and are not shifted. The layer is
-    ``layer`` if one is given, else fitted, its errors from a bootstrap over sky blocks
+    ``layer`` if one is given, else fitted, its errors summed over sky blocks
     (clouds correlate neighbouring residuals).
     """
     l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
@@ -772,7 +772,7 @@ def _tracer_inputs(tracers, random_state, layer=None):
     else:
         shift = sample_distance_shift(d, de, weight)
     if layer is None:
-        layer = fit_layer(tracers, n_boot=BOOTSTRAP_RESAMPLES, random_state=random_state, distance_shift=shift)
+        layer = fit_layer(tracers, block_errors=True, random_state=random_state, distance_shift=shift)
     return _TracerInputs(l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer)
 
 
