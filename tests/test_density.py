@@ -929,17 +929,22 @@ def test_background_amplitude_falls_further_only_on_strong_evidence():
         return np.full((2, 3), 1.0 + amp), np.full((2, 3), 100.0)
 
     # the log-evidence gains 10 x (1.02^2 - 0.08^2) = 10.3 from 0.033 to 0.011: more than the margin
-    amp, boost, _, _ = compare_background(evaluator(10.0), raise_cells, 0.1, 500.0, np.ones((2, 3)))
-    assert amp == pytest.approx(0.1 / 9)
+    amp, boost, _, _, err_amp = compare_background(evaluator(10.0), raise_cells, 0.1, 500.0, np.ones((2, 3)))
+    assert amp == pytest.approx(0.1 / 9) and err_amp == amp  # moved on evidence: the errors take it too
     assert np.allclose(boost, 1.0 + 0.1 / 9)            # the raised cells of the chosen amplitude
     assert min(tried) >= LOWEST_AMPLITUDE
     # a gain of 2 x 1.03 = 2.1: below the margin of 5, so not strong enough to narrow the errors
     assert 2.0 * 1.03 < EVIDENCE_MARGIN < 10.0 * 1.03
-    amp, *_ = compare_background(evaluator(2.0), raise_cells, 0.1, 500.0, np.ones((2, 3)))
+    amp, *_, err_amp = compare_background(evaluator(2.0), raise_cells, 0.1, 500.0, np.ones((2, 3)))
     assert amp == pytest.approx(0.1 / 3)
-    amp, *_ = compare_background(lambda a, *r: ((a, 0, 0, 0, -a), r[1], None, None, None, None, lambda: a),
-                                 raise_cells, 0.25, 500.0, np.ones((2, 3)))
-    assert amp == 0.25
+    # ... but the errors are drawn at the two candidates' prior variances averaged by their
+    # posterior odds (equal prior odds; the standard Bayesian average over a hyperparameter)
+    w = 1.0 / (1.0 + np.exp(-2.0 * ((np.log(0.1 / 3) - np.log(0.012)) ** 2 - (np.log(0.1 / 9) - np.log(0.012)) ** 2)))
+    assert err_amp == pytest.approx(np.sqrt((1 - w) * (0.1 / 3) ** 2 + w * (0.1 / 9) ** 2))
+    assert 0.1 / 9 < err_amp < 0.1 / 3 and w > 0.85
+    amp, *_, err_amp = compare_background(lambda a, *r: ((a, 0, 0, 0, -a), r[1], None, None, None, None, lambda: a),
+                                          raise_cells, 0.25, 500.0, np.ones((2, 3)))
+    assert amp == 0.25 and err_amp == 0.25  # the held-out score kept it: no evidence, no average
 
 
 def test_laplace_evidence_prefers_the_amplitude_that_made_the_data():

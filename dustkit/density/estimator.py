@@ -1,29 +1,28 @@
 """DensityModel: the 3-D log-normal dust density model behind the answers interface."""
 
 import time
-import warnings
 
 import numpy as np
 from astropy import units as u
 from astropy.table import Table
-from scipy.spatial import cKDTree
 
 import inspect
-from typing import NamedTuple
 
 from .._lib import healpix
 from .._lib.progress import extend_total, progress
 from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
 from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
-from ..exceptions import CatalogError, DustkitWarning, ModelNotFittedError
+from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
-from ..layer import DustLayer, cloud_lift, fit_layer, given_layer, lift_caution
+from ..layer import given_layer
 from . import lattice as _lattice
-from .lattice import Lattice, active_pixels, chord, informing_counts, prior_cumulative_var, unit_vectors
+from .lattice import Lattice, active_pixels, informing_counts, prior_cumulative_var
 from .heldout import (ERROR_SIGNIFICANCE, cell_boost, compare_background, excess_noise, fit_unresolved_fractions,
                       held_out_excess, layer_increments, local_bias_variance, placement_variance, unresolved_variance)
-from .layer_share import layer_error_variance, layer_variance, remaining_pull
-from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, sample_distance_shift, tracer_terms
+from .inputs import (DUPLICATE_SEPARATION_DEG, catalogue_lift, duplicate_weights, fit_catalogue_layer,  # noqa: F401
+                     left_of_pull, lift_report, tracer_inputs)
+from .layer_share import layer_error_variance, layer_variance
+from .solver import cumulative_at_nodes, draw_samples, fit_posterior, log_evidence, tracer_terms
 
 __all__ = ["DensityModel", "default_distance_edges", "choose_nside", "duplicate_weights", "fit_catalogue_layer",
            "catalogue_lift"]
@@ -41,10 +40,6 @@ CV_TRACERS = 20_000
 #: data pin the posterior, its variance is a small difference that CG's residual would swamp
 #: (20 000 field stars chose another prior; benchmarks/README.md).
 SEARCH_TOL, SEARCH_LOOSE = (3e-2, 5e-2, 2e-2), (1000, 5000)
-
-
-#: Sky separation (deg) within which the density model treats agreeing tracers as one object listed twice.
-DUPLICATE_SEPARATION_DEG = 1.0 / 60.0
 
 
 def default_distance_edges(distance_max=6000.0, near_step=50.0, growth=0.1):
@@ -74,37 +69,6 @@ def choose_nside(l_deg, b_deg, candidates=(128, 64), per_pixel=8):
         if np.median(counts[counts > 0]) >= per_pixel:
             return nside
     return 32
-
-
-def duplicate_weights(l, b, d, av, av_err, distance_err=None, separation_deg=DUPLICATE_SEPARATION_DEG):
-    """Likelihood weight of each tracer: 1 / the size of its group of near-duplicates.
-
-    Tracers within ``separation_deg`` on the sky (default 1 arcmin: two compilations'
-    centres of one cluster) whose distances agree within twice their combined error (1% of
-    the distance when no error is given) and whose A_V agree within twice their combined
-    error are one object listed more than once (as when two compilations are merged); each
-    such group counts as one tracer, so that duplicating a catalogue does not shrink the
-    uncertainties. Distinct field stars a few arcminutes apart are not grouped: they are
-    independent measurements of neighbouring sight lines.
-    """
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
-
-    d = np.asarray(d, float)
-    de = 0.01 * d if distance_err is None else np.maximum(np.asarray(distance_err, float), 0.01 * d)
-    pairs = cKDTree(unit_vectors(l, b)).query_pairs(r=chord(separation_deg), output_type="ndarray")
-    if pairs.size:
-        i, j = pairs[:, 0], pairs[:, 1]
-        close = np.abs(d[i] - d[j]) <= 2.0 * np.hypot(de[i], de[j])
-        agree = np.abs(av[i] - av[j]) <= 2.0 * np.hypot(av_err[i], av_err[j])
-        i, j = i[close & agree], j[close & agree]
-    else:
-        i = j = np.zeros(0, np.int64)
-    n = np.size(l)
-    graph = coo_matrix((np.ones(i.size), (i, j)), shape=(n, n))
-    _, label = connected_components(graph, directed=False)
-    size = np.bincount(label)
-    return 1.0 / size[label], int(np.sum(size > 1))
 
 
 def _blocks(l, b, d, n_folds, random_state):
@@ -167,6 +131,10 @@ class DensityModel:
     tracers_ : TracerSet
     amplitude_, length_, tau_ : float
         Chosen prior amplitude, correlation length (pc) and unresolved fraction.
+    error_amplitude_ : float
+        Background amplitude of the prior the answers' errors are drawn under: ``amplitude_``, or
+        where the evidence alone kept it over a third of it, the two averaged by their evidence
+        (:func:`~.heldout.compare_background`).
     structure_tau_ : float
         Unresolved fraction of the extinction above the layer (clouds' own unresolved parts).
     isotropic_ : float
@@ -287,7 +255,7 @@ class DensityModel:
             raise CatalogError(f"The density model needs at least 5 tracers inside its grid; got {n}, {inside} of them "
                                f"nearer than its last edge ({grid.distance_edges[-1]:g} pc). "
                                "Hint: widen the region, add tracers, or raise distance_max.")
-        inp = _tracer_inputs(tracers, self.random_state, given_layer(self.layer))
+        inp = tracer_inputs(tracers, self.random_state, given_layer(self.layer))
         pixels = active_pixels(grid, inp.l, inp.b, radius)
         col_all = np.searchsorted(pixels, grid.pixel(inp.l, inp.b))  # each tracer's active-pixel column
         # the hyperparameters and the held-out misses are learned on at most CV_TRACERS tracers
@@ -358,9 +326,10 @@ class DensityModel:
             def raise_cells(a):  # where they miss, more freedom in the cells in front of them
                 return cell_boost(grid, layer, pixels, l, b, d, excess, weight, a, length)
 
-            amp, boost, cell_length, xi0 = compare_background(evaluate, raise_cells, amp, length, xi0)
+            amp, boost, cell_length, xi0, err_amp = compare_background(evaluate, raise_cells, amp, length, xi0)
             lat = Lattice(grid, pixels, amp, length, boost, cell_length, iso)
-            lat_err, unresolved = _error_prior(lat, layer, (l, b, d, weight, excess), (av, ae, fitted, pvar, base, tau))
+            lat_err, unresolved = _error_prior(lat, layer, (l, b, d, weight, excess), (av, ae, fitted, pvar, base, tau),
+                                               err_amp)
             terms = _all_terms(lat, layer, col_all, inp)
             post = fit_posterior(lat, terms, tau=tau, xi0=xi0, max_iter=20)
             xs = draw_samples(lat_err, post, n_samples, rng, cg_tol=final_tol)
@@ -369,7 +338,7 @@ class DensityModel:
         self.mode_, self.isotropic_ = post.xi, float(iso)  # the mode in white-noise coordinates (warm starts)
         # what the cells miss: held-out tracers' excess spread, the fitted model's own local bias, where a rise sits
         bias2 = _fitted_variances(grid, pixels, inp, post, terms, self.av_[pixels] - self._layer_nodes()[pixels], rng)
-        self.pull_left_ = _left_of_pull(layer, inp, post, terms)
+        self.pull_left_ = left_of_pull(layer, inp, post, terms)
         self._errors(layer, unresolved + bias2, tau_s)
         self.cv_ = _cv_table(rows, folds_n)
         self.build_report_ = {
@@ -377,10 +346,11 @@ class DensityModel:
             "amplitude": amp, "length_pc": length, "tau": tau, "errors_floored": inp.floored,
             "tracers_for_hyperparameters": n_cv, "duplicate_groups": n_groups, "censored": int(terms.censored.sum()),
             "boosted_pixels": int(np.sum(lat.boost.max(axis=0) > 1.1)), "max_boost": round(float(lat.boost.max()), 2),
-            "error_boosted_pixels": int(np.sum(lat_err.boost.max(axis=0) > 1.1)), "layer_given": self.layer is not None,
+            "error_boosted_pixels": int(np.sum(lat_err.boost.max(axis=0) > 1.1)),
+            "error_amplitude": float(lat_err.amplitude), "layer_given": self.layer is not None,
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
             "threads": _lattice.THREADS, "isotropic": bool(iso), "pull_left": round(self.pull_left_, 3),
-            "layer_lift": _lift_report(layer, inp, self.layer)}
+            "layer_lift": lift_report(layer, inp, self.layer)}
         return self
 
     def _errors(self, layer, unresolved, tau_s):
@@ -415,13 +385,14 @@ class DensityModel:
         grid = self.grid_
         ratio = tracers.av_ratio(self.tracers_)
         given = self.layer_.with_scaled_a0(ratio) if given_layer(self.layer) is not None else None
-        inp = _tracer_inputs(tracers, self.random_state, given)
+        inp = tracer_inputs(tracers, self.random_state, given)
         layer = inp.layer
-        lat, lat_err = (Lattice(grid, self.active_pixels_, self.amplitude_, self.length_, boost, cell_length,
+        lat, lat_err = (Lattice(grid, self.active_pixels_, amp, self.length_, boost, cell_length,
                                 bool(getattr(self, "isotropic_", 0.0)))
-                        for boost, cell_length in ((self.boost_, self.pixel_length_),
-                                                   (getattr(self, "error_boost_", self.boost_),
-                                                    getattr(self, "error_pixel_length_", self.pixel_length_))))
+                        for amp, boost, cell_length in (
+                            (self.amplitude_, self.boost_, self.pixel_length_),
+                            (getattr(self, "error_amplitude_", self.amplitude_), getattr(self, "error_boost_", self.boost_),
+                             getattr(self, "error_pixel_length_", self.pixel_length_))))
         col = np.searchsorted(lat.pixels, grid.pixel(inp.l, inp.b))
         terms = _all_terms(lat, layer, col, inp)
         post = fit_posterior(lat, terms, tau=self.tau_, xi0=self.mode_, max_iter=20)
@@ -430,7 +401,7 @@ class DensityModel:
         unresolved = self.unresolved_ * ratio**2
         self._store(grid, layer, lat, post, xs, self.tau_, tracers, lat_err)
         self.mode_ = post.xi
-        self.pull_left_ = _left_of_pull(layer, inp, post, terms)
+        self.pull_left_ = left_of_pull(layer, inp, post, terms)
         self._errors(layer, unresolved, self.structure_tau_)
         self.build_report_ = {**getattr(self, "build_report_", {}), "converged": bool(post.converged),
                               "seconds": round(time.perf_counter() - t_start, 2),
@@ -443,7 +414,7 @@ class DensityModel:
         npix = grid.npix
         _, bc_all = grid.pixel_centres()
         inc = layer_increments(layer, bc_all, e)                                   # (npix, K)
-        prior_var = prior_cumulative_var(inc, lat.bin_correlation(), lat.amplitude)  # (npix, E)
+        prior_var = prior_cumulative_var(inc, lat_err.bin_correlation(), lat_err.amplitude)  # (npix, E)
         # active pixels: their own amplitudes and lengths, cell by cell
         prior_var[lat.pixels] = lat_err.cumulative_prior_variance(inc[lat.pixels])
         av = np.concatenate([np.zeros((npix, 1)), np.cumsum(inc, axis=1)], axis=1)   # the prior (layer)
@@ -467,6 +438,7 @@ class DensityModel:
         self.boost_ = np.array(lat.boost)
         self.pixel_length_ = np.array(lat.pixel_length)
         self.error_boost_, self.error_pixel_length_ = np.array(lat_err.boost), np.array(lat_err.pixel_length)
+        self.error_amplitude_ = float(lat_err.amplitude)
         self.samples_ = np.ascontiguousarray(np.transpose(cum, (1, 0, 2))).astype(np.float32)
         self.differential_ = np.diff(av, axis=1) / (np.diff(e) / 1000.0)
         counts = np.zeros((npix, e.size - 1), np.int64)
@@ -528,7 +500,7 @@ class DensityModel:
         if np.any(beyond):  # past the grid: the layer's prior, carried on
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
             a[beyond] += extra
-            var[beyond] += (extra * self.amplitude_) ** 2
+            var[beyond] += (extra * getattr(self, "error_amplitude_", self.amplitude_)) ** 2
         var = var + self._fraction_variance(a, lay_t)
         if distance_err is not None:
             var = var + (self._slope(pix, wgt, k) * np.asarray(distance_err, float)) ** 2
@@ -702,23 +674,6 @@ class DensityModel:
                 f"s={self.amplitude_:.2f}, L={self.length_:.0f} pc, tau={self.tau_:.3f})")
 
 
-class _TracerInputs(NamedTuple):
-    """What a fit needs from a tracer set, as plain arrays (deg, pc, mag)."""
-
-    l: np.ndarray
-    b: np.ndarray
-    d: np.ndarray
-    de: np.ndarray
-    av: np.ndarray
-    ae: np.ndarray          # floored at AV_ERR_FLOOR
-    floored: int            # how many A_V errors the floor raised
-    weight: np.ndarray      # 1 / size of each tracer's near-duplicate group
-    n_groups: int
-    corr: np.ndarray        # correlation of the A_V and ln-distance errors
-    shift: np.ndarray       # ln-distance shift to where each tracer most likely lies
-    layer: DustLayer        # fitted at the shifted distances
-
-
 def _cv_table(rows, folds_n):
     """The held-out score of every candidate the search evaluated, as a Table."""
     t = Table(rows=rows, names=("amplitude", "length", "tau", "structure_tau", "score", "rms", "coverage",
@@ -740,44 +695,8 @@ def _cv_subset(n, random_state):
     return None if n <= CV_TRACERS else np.sort(np.random.default_rng(random_state).choice(n, CV_TRACERS, replace=False))
 
 
-def fit_catalogue_layer(tracers, random_state=0):
-    """The smooth layer the density model fits to ``tracers`` (a :class:`~dustkit.layer.DustLayer`).
-
-    As :func:`~dustkit.layer.fit_layer` with block errors and the pull, at the distances the
-    catalogue's own distance distribution puts the tracers at (:func:`~.solver.sample_distance_shift`),
-    near-duplicates counted once: ``dustkit layer`` writes it, so one given back with
-    ``--layer-from`` is the one a fit to the same catalogue makes.
-    """
-    return _tracer_inputs(tracers, random_state).layer
-
-
-def _tracer_inputs(tracers, random_state, layer=None):
-    """The arrays, duplicate weights, distance shifts and layer shared by a fit and a refit.
-
-    The shift comes from the catalogue's own distance distribution
-    (:func:`~dustkit.density.solver.sample_distance_shift`); parallax distances already
-    carry a prior of their own (``read_tracers``) and are not shifted. The layer is
-    ``layer`` if one is given, else fitted, its errors summed over sky blocks
-    (clouds correlate neighbouring residuals).
-    """
-    l, b, d, de, av, ae = (np.asarray(getattr(tracers, k), float)
-                           for k in ("l", "b", "distance", "distance_err", "av", "av_err"))
-    floored = int(np.sum(ae < AV_ERR_FLOOR))
-    ae = np.maximum(ae, AV_ERR_FLOOR)
-    weight, n_groups = duplicate_weights(l, b, d, av, ae, de)
-    corr = getattr(tracers, "av_distance_corr", None)
-    corr = np.zeros(l.size) if corr is None else np.asarray(corr, float)
-    if getattr(tracers, "distance_kind", "distance") == "parallax":
-        shift = np.zeros(l.size)
-    else:
-        shift = sample_distance_shift(d, de, weight)
-    if layer is None:
-        layer = fit_layer(tracers, block_errors=True, random_state=random_state, distance_shift=shift)
-    return _TracerInputs(l, b, d, de, av, ae, floored, weight, n_groups, corr, shift, layer)
-
-
 def _all_terms(lat, layer, col, inp):
-    """The likelihood terms of every tracer of ``inp`` (:class:`_TracerInputs`); ``col``: their pixel slots."""
+    """The likelihood terms of every tracer of ``inp`` (:class:`TracerInputs`); ``col``: their pixel slots."""
     return tracer_terms(lat, layer.av_pc, col, inp.b, inp.d, inp.de, inp.av, inp.ae, inp.weight, inp.corr,
                         log_shift=inp.shift)
 
@@ -792,7 +711,7 @@ def _fitted_variances(grid, pixels, inp, post, terms, excess_nodes, rng):
     return bias2
 
 
-def _error_prior(lat, layer, misses, held):
+def _error_prior(lat, layer, misses, held, amplitude):
     """The prior the answers' errors are drawn under (a :class:`Lattice`), and the local unresolved variance.
 
     The mode's prior raises cells wherever held-out tracers missed on average (``misses``:
@@ -805,38 +724,17 @@ def _error_prior(lat, layer, misses, held):
     fitted, pvar, base, tau`` of the search; :func:`~.heldout.excess_noise`), so that misses
     by chance where the truth is smooth do not widen the errors. The local unresolved variance
     (npix, n_edges) is the kernel mean as it comes (lowered too, it left the answers in front of
-    the sparse catalogue's clouds too narrow: 0.69 -> 0.64 inside 1 sigma, stop 35).
+    the sparse catalogue's clouds too narrow: 0.69 -> 0.64 inside 1 sigma, stop 35). The
+    background ``amplitude`` is :func:`~.heldout.compare_background`'s errors' amplitude (the
+    raised cells keep the variance they add at it).
     """
     l, b, d, weight, excess = misses
     grid = lat.grid
     x = unresolved_variance(grid, l, b, d, excess, weight, pixels=lat.pixels, noise=excess_noise(*held, excess),
                             k=ERROR_SIGNIFICANCE)
-    boost, cell_length = cell_boost(grid, layer, lat.pixels, l, b, d, excess, weight, lat.amplitude, lat.length, x=x)
-    return (Lattice(grid, lat.pixels, lat.amplitude, lat.length, boost, cell_length, lat.isotropic),
+    boost, cell_length = cell_boost(grid, layer, lat.pixels, l, b, d, excess, weight, amplitude, lat.length, x=x)
+    return (Lattice(grid, lat.pixels, amplitude, lat.length, boost, cell_length, lat.isotropic),
             unresolved_variance(grid, l, b, d, excess, weight))
-
-
-def catalogue_lift(tracers, layer, random_state=0):
-    """:func:`~dustkit.layer.cloud_lift` of ``layer`` over ``tracers`` at the distances the build judges it at."""
-    return _lift_at(layer, _tracer_inputs(tracers, random_state, layer))
-
-
-def _lift_at(layer, inp):
-    return cloud_lift(layer, inp.b, inp.d * np.exp(inp.shift), inp.de, inp.av, inp.ae)
-
-
-def _lift_report(layer, inp, given):
-    """:func:`~dustkit.layer.cloud_lift` of a fit's layer (at the distances it was fitted at), with a caution if lifted."""
-    lift = _lift_at(layer, inp)
-    if lift["lifted"] and given is None:
-        warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=3)
-    return lift
-
-
-def _left_of_pull(layer, inp, post, terms):
-    """:func:`remaining_pull` of a fit: its tracer inputs (at the distances the layer was fitted at) and posterior."""
-    return remaining_pull(layer, inp.b, inp.d * np.exp(inp.shift), inp.de, inp.av, inp.ae, post.predicted,
-                          inp.weight, terms.censored)
 
 
 def _predict_terms(lat, terms, xs, f_mode):

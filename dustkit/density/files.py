@@ -98,12 +98,13 @@ _STATE_ARRAYS = ("av_", "av_err_", "posterior_err_", "unresolved_", "prior_err_"
                  "differential_", "samples_", "active_pixels_", "boost_", "pixel_length_", "mode_", "layer_err_")
 #: The errors' prior (raised cells and their lengths); files written before it existed use the mode's.
 _ERROR_PRIOR = ("error_boost_", "error_pixel_length_")
-_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_", "pull_left_")
+_STATE_SCALARS = ("amplitude_", "length_", "tau_", "structure_tau_", "isotropic_", "pull_left_", "error_amplitude_")
 
 
 def _scalar(model, name):
     """A fitted scalar; models loaded from files written before it existed get its neutral value."""
-    default = {"structure_tau_": 0.0, "isotropic_": 0.0, "pull_left_": 0.0}.get(name)
+    default = {"structure_tau_": 0.0, "isotropic_": 0.0, "pull_left_": 0.0,
+               "error_amplitude_": getattr(model, "amplitude_", None)}.get(name)
     return float(getattr(model, name, default))
 
 
