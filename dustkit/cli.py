@@ -954,7 +954,8 @@ def _cmd_demo(args, out):
     rep = model.build_report_
     out(f"   chosen by spatially blocked cross-validation: log-density amplitude {model.amplitude_:g}, "
         f"correlation length {model.length_:.0f} pc; {rep['boosted_pixels']} pixels with a raised amplitude "
-        f"where held-out clusters missed ({rep['error_boosted_pixels']} of them beyond noise, in the errors); "
+        f"where held-out clusters missed ({rep['error_boosted_pixels']} of them beyond noise, in the errors; "
+        f"the errors' background amplitude {rep['error_amplitude']:.3g}); "
         f"{rep['pull_left']:.2f} of the layer's pull left in the errors; "
         f"built in {rep['seconds']:.0f} s on {rep['threads']} thread(s)")
     written.append(("model file", save_model(model, folder / "veyra_model.fits", overwrite=True)))

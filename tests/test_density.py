@@ -307,6 +307,8 @@ def test_saved_model_answers_bit_for_bit(fitted, tmp_path):
     q1, q2 = m.query(l * u.deg, b * u.deg, d * u.pc), back.query(l * u.deg, b * u.deg, d * u.pc)
     np.testing.assert_array_equal(q1["support"], q2["support"])
     assert back.layer_.as_dict() == m.layer_.as_dict() and np.array_equal(back.layer_.pull, m.layer_.pull)
+    # the errors' background amplitude (between the kept one and a third of it) is kept too
+    assert back.error_amplitude_ == m.error_amplitude_ and m.amplitude_ / 3 <= m.error_amplitude_ <= m.amplitude_
     # the sky part follows the HEALPix FITS convention (Gorski et al. 2005)
     from astropy.io import fits
     with fits.open(path) as h:
@@ -389,7 +391,8 @@ def test_a_loaded_model_converts_its_tracers_again_under_another_rv(fitted, tmp_
     m2, b2 = m.with_law("ccm89", 3.6), back.with_law("ccm89", 3.6)
     assert b2.how_ == m2.how_ and b2.how_.startswith("rescaled exactly")
     l, b, d = np.linspace(30, 50, 40), np.linspace(-5, 5, 40), np.linspace(200, 2800, 40)
-    np.testing.assert_array_equal(b2.av_pc(l, b, d)[0], m2.av_pc(l, b, d)[0])
+    for x, y in zip(b2.av_pc(l, b, d), m2.av_pc(l, b, d)):  # answers and errors: the file kept every state
+        np.testing.assert_array_equal(x, y)
     np.testing.assert_allclose(b2.av_pc(l, b, d)[0], 3.6 / 3.1 * back.av_pc(l, b, d)[0], rtol=1e-12)
 
 
