@@ -426,7 +426,7 @@ def lift_caution(lift):
             "too high. A layer fitted to a wider catalogue avoids it (layer=..., dustkit build --layer-from).")
 
 
-def sky_blocks(l_deg, b_deg, min_blocks=20):
+def sky_blocks(l_deg, b_deg, min_blocks=None):
     """Sky blocks for the layer's block errors or bootstrap: HEALPix cells of the coarsest NSIDE (2 to 64) with at least ``min_blocks`` occupied.
 
     Falls back to single tracers when even NSIDE 64 leaves fewer (a small region).
@@ -434,6 +434,7 @@ def sky_blocks(l_deg, b_deg, min_blocks=20):
     from ._lib import healpix
 
     l_deg, b_deg = np.asarray(l_deg, float), np.asarray(b_deg, float)
+    min_blocks = MIN_BLOCKS if min_blocks is None else min_blocks
     for nside in (2, 4, 8, 16, 32, 64):
         pix = healpix.ang2pix(nside, l_deg, b_deg)
         if np.unique(pix).size >= min_blocks:
@@ -517,7 +518,10 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     and ``g = dz/dp``, the estimating equations are ``sum psi(z) g = 0`` with
     ``psi(z) = z / sqrt(1 + (z / f)^2)``; the covariance is ``A^-1 B A^-1`` with ``A = sum psi'(z)
     g g^T`` and ``B`` the outer products of ``sum psi(z) g`` over each block, times ``G / (G -
-    1)`` for ``G`` blocks. ``fallback`` (the Jacobian's) where ``A`` is singular.
+    1)`` for ``G`` blocks. ``fallback`` (the Jacobian's) where ``A`` is singular. With fewer than
+    :data:`MIN_BLOCKS` blocks the block sums say little (with one block they are the fit's own
+    estimating equations, zero at the solution), so the variances are then kept no smaller than
+    ``fallback``'s (the correlations are the blocks').
     """
     predict = _averaged_layer(b, d, de)
     sigma = np.sqrt(ae**2 + (layer_slope_pc(b, d, *p) * de) ** 2 + scatter**2)
@@ -537,7 +541,18 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
         a_inv = np.linalg.inv((g * (u2 ** -1.5)[:, None]).T @ g)
     except np.linalg.LinAlgError:
         return fallback
-    return a_inv @ (score.T @ score) @ a_inv * (n_blocks / max(n_blocks - 1, 1))
+    cov = a_inv @ (score.T @ score) @ a_inv * (n_blocks / max(n_blocks - 1, 1))
+    if n_blocks >= MIN_BLOCKS:
+        return cov
+    var = np.maximum(np.diag(cov), np.diag(fallback))
+    sd = np.sqrt(np.maximum(np.diag(cov), 1e-300))
+    corr = np.clip(cov / np.outer(sd, sd), -1.0, 1.0)
+    return corr * np.outer(np.sqrt(var), np.sqrt(var))
+
+
+#: Blocks below which :func:`_block_covariance` keeps the Jacobian's variances as a floor (and
+#: :func:`sky_blocks` falls back to single tracers).
+MIN_BLOCKS = 20
 
 
 def _cloud_pull(b, d, de, av, ae, p, f_scale, scatter, cut=2.0, n_iter=4):

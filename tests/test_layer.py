@@ -155,6 +155,18 @@ def test_layer_errors_through_clouds_cover_the_clouds_pull(errors):
     assert np.median(np.abs(z_stat)) < 0.8 * np.median(np.abs(z_jac))
 
 
+def test_block_errors_with_few_blocks_are_not_smaller_than_the_jacobians():
+    # with one block the block sums are the fit's own estimating equations, zero at the
+    # solution (a cluster-robust variance needs many clusters: Liang & Zeger 1986); the
+    # errors must not vanish there
+    t = _tracers(simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 200, l_range=(100, 120),
+                                  b_range=(-8, 8), distance_max=3000, rng=3))
+    plain = fit_layer(t, random_state=0)
+    for labels in (np.zeros(200, int), np.arange(200) % 3):
+        few = fit_layer(t, random_state=0, block_errors=True, blocks=labels)
+        assert np.all(np.diag(few.covariance) >= np.diag(plain.covariance) * (1 - 1e-12))
+
+
 def test_block_errors_and_a_bootstrap_are_not_asked_for_together():
     t = simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 40, l_range=(100, 120), b_range=(-8, 8),
                          distance_max=3000, rng=1)
