@@ -521,7 +521,7 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     1)`` for ``G`` blocks. ``fallback`` (the Jacobian's) where ``A`` is singular. With fewer than
     :data:`MIN_BLOCKS` blocks the block sums say little (with one block they are the fit's own
     estimating equations, zero at the solution), so the variances are then kept no smaller than
-    ``fallback``'s (the correlations are the blocks').
+    ``fallback``'s (with ``fallback``'s correlations, which a near-zero block sum cannot give).
     """
     predict = _averaged_layer(b, d, de)
     sigma = np.sqrt(ae**2 + (layer_slope_pc(b, d, *p) * de) ** 2 + scatter**2)
@@ -544,10 +544,9 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     cov = a_inv @ (score.T @ score) @ a_inv * (n_blocks / max(n_blocks - 1, 1))
     if n_blocks >= MIN_BLOCKS:
         return cov
-    var = np.maximum(np.diag(cov), np.diag(fallback))
-    sd = np.sqrt(np.maximum(np.diag(cov), 1e-300))
-    corr = np.clip(cov / np.outer(sd, sd), -1.0, 1.0)
-    return corr * np.outer(np.sqrt(var), np.sqrt(var))
+    sd = np.sqrt(np.maximum(np.diag(fallback), 1e-300))
+    scale = np.sqrt(np.maximum(np.diag(cov), np.diag(fallback))) / sd
+    return fallback * np.outer(scale, scale)
 
 
 #: Blocks below which :func:`_block_covariance` keeps the Jacobian's variances as a floor (and
