@@ -326,9 +326,9 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         over ``blocks`` (the cluster-robust sandwich; Liang & Zeger 1986, Biometrika 73, 13;
         for the soft-L1 loss, Huber 1981, *Robust Statistics*, ch. 7): neighbouring tracers'
         correlated residuals count together, as in a block bootstrap, without its resampling
-        noise or its nonlinear refits of small resamples (which, with the bootstrap never below
-        the Jacobian's errors, left the layers of 40 cloudless tracers about 1.5 times too
-        uncertain). Not with ``n_boot``.
+        noise or its nonlinear refits of small resamples (which left the layers of 40 cloudless
+        tracers about 1.5 times too uncertain); never smaller than the Jacobian's errors
+        (:func:`_block_covariance`). Not with ``n_boot``.
     distance_shift : array of float, optional
         Per-tracer shift in ln distance from the measured distance to where the tracer most
         likely lies (``dustkit.density.solver.sample_distance_shift``); the fit then uses
@@ -518,10 +518,14 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     and ``g = dz/dp``, the estimating equations are ``sum psi(z) g = 0`` with
     ``psi(z) = z / sqrt(1 + (z / f)^2)``; the covariance is ``A^-1 B A^-1`` with ``A = sum psi'(z)
     g g^T`` and ``B`` the outer products of ``sum psi(z) g`` over each block, times ``G / (G -
-    1)`` for ``G`` blocks. ``fallback`` (the Jacobian's) where ``A`` is singular. With fewer than
-    :data:`MIN_BLOCKS` blocks the block sums say little (with one block they are the fit's own
-    estimating equations, zero at the solution), so the variances are then kept no smaller than
-    ``fallback``'s (with ``fallback``'s correlations, which a near-zero block sum cannot give).
+    1)`` for ``G`` blocks. ``fallback`` (the Jacobian's) where ``A`` is singular. The variances
+    are kept no smaller than ``fallback``'s: with some twenty blocks, a few rows of them in
+    latitude, the block sums under-estimate what the latitude contrast fixes (h, z_sun: each
+    row of blocks carries much of it); in twelve invented cloudless regions of 1 200 tracers
+    (24 x 12 deg) the layer's A_V errors were 1.31 times too small by RMS without the floor,
+    1.08 with it (the Jacobian's alone 1.05). With fewer than :data:`MIN_BLOCKS` blocks (with
+    one block the sums are the fit's own estimating equations, zero at the solution) the
+    correlations are ``fallback``'s too.
     """
     predict = _averaged_layer(b, d, de)
     sigma = np.sqrt(ae**2 + (layer_slope_pc(b, d, *p) * de) ** 2 + scatter**2)
@@ -542,14 +546,13 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     except np.linalg.LinAlgError:
         return fallback
     cov = a_inv @ (score.T @ score) @ a_inv * (n_blocks / max(n_blocks - 1, 1))
-    if n_blocks >= MIN_BLOCKS:
-        return cov
-    sd = np.sqrt(np.maximum(np.diag(fallback), 1e-300))
+    base = cov if n_blocks >= MIN_BLOCKS else fallback
+    sd = np.sqrt(np.maximum(np.diag(base), 1e-300))
     scale = np.sqrt(np.maximum(np.diag(cov), np.diag(fallback))) / sd
-    return fallback * np.outer(scale, scale)
+    return base * np.outer(scale, scale)
 
 
-#: Blocks below which :func:`_block_covariance` keeps the Jacobian's variances as a floor (and
+#: Blocks below which :func:`_block_covariance` takes the Jacobian's correlations (and
 #: :func:`sky_blocks` falls back to single tracers).
 MIN_BLOCKS = 20
 
