@@ -546,10 +546,13 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     except np.linalg.LinAlgError:
         return fallback
     cov = a_inv @ (score.T @ score) @ a_inv * (n_blocks / max(n_blocks - 1, 1))
-    base = cov if n_blocks >= MIN_BLOCKS else fallback
-    sd = np.sqrt(np.maximum(np.diag(base), 1e-300))
-    scale = np.sqrt(np.maximum(np.diag(cov), np.diag(fallback))) / sd
-    return base * np.outer(scale, scale)
+    return _with_variances(cov if n_blocks >= MIN_BLOCKS else fallback, np.maximum(np.diag(cov), np.diag(fallback)))
+
+
+def _with_variances(cov, var):
+    """The correlations of ``cov`` (3, 3) with the variances ``var`` (a floor on its errors keeps its correlations)."""
+    scale = np.sqrt(var) / np.sqrt(np.maximum(np.diag(cov), 1e-300))
+    return cov * np.outer(scale, scale)
 
 
 #: Blocks below which :func:`_block_covariance` takes the Jacobian's correlations (and
@@ -601,7 +604,4 @@ def _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, n_boot, random_state, j
     if len(draws) < 5:
         return jac_cov
     boot = np.cov(np.asarray(draws).T)
-    var = np.maximum(np.diag(boot), np.diag(jac_cov))
-    sd_b = np.sqrt(np.maximum(np.diag(boot), 1e-300))
-    corr = boot / np.outer(sd_b, sd_b)
-    return corr * np.outer(np.sqrt(var), np.sqrt(var))
+    return _with_variances(boot, np.maximum(np.diag(boot), np.diag(jac_cov)))
