@@ -195,6 +195,8 @@ def build_parser():
     p = sub("build", "Build a model from a tracer catalogue and save it as a FITS model file.")
     p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue (CSV, ECSV, FITS table, VOTable, Parquet)")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.fits", help="model file to write")
+    from .model import DENSITY_LIMIT
+
     grid = _grid_defaults()
     p.add_argument("--nside", type=int, default=None,
                    help=f"HEALPix NSIDE of the sky pixels (power of two; default: the binned model {grid['nside']}, "
@@ -207,7 +209,7 @@ def build_parser():
                    help="explicit distance edges in pc, comma-separated (instead of --distance-max/--distance-step)")
     p.add_argument("--model", choices=("auto", "density", "binned"), default="auto",
                    help="which model: the 3-D density model, the binned model, or 'auto' (default): density "
-                        "up to 20000 tracers, binned above, for out-of-core builds and with --distance-step")
+                        f"up to {DENSITY_LIMIT} tracers, binned above, for out-of-core builds and with --distance-step")
     _add_law_options(p)
     _add_catalogue_options(p)
     _add_tracer_options(p)
@@ -565,7 +567,7 @@ def _cmd_build(args, out):
                               "the binned model; drop --model density or add --in-memory")
         model = _build_out_of_core(args, kw, columns, out)
     else:
-        from .model import build_model, choose_model
+        from .model import DENSITY_LIMIT, build_model, choose_model
 
         tracers = _read_tracers(args, args.catalog)
         if not out.quiet:  # the summary (sky area, medians: 0.2 s at 10^6 tracers) only when it is printed
@@ -574,7 +576,7 @@ def _cmd_build(args, out):
             out(f"Column mapping given: {columns}")
         kind = choose_model(len(tracers), args.model)
         why = "" if args.model != "auto" else (" (chosen for a catalogue of this size: the 3-D density model up to "
-                                               "20000 tracers, the binned model above)")
+                                               f"{DENSITY_LIMIT} tracers, the binned model above)")
         if args.model == "auto" and args.distance_step is not None:
             kind, why = "binned", " (--distance-step asks for the binned model's fixed bins)"
         out(f"Building the {kind} model from {len(tracers)} tracers in memory{why} ...")
