@@ -10,7 +10,7 @@ import warnings
 import numpy as np
 import pytest
 from astropy import units as u
-from astropy.coordinates import Angle
+from astropy.coordinates import Angle, SkyCoord
 from astropy.table import QTable, Table, vstack
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -1581,6 +1581,15 @@ def test_right_ascension_within_24_without_a_unit_is_said_to_be_hours_perhaps():
         warnings.simplefilter("always")
         read_tracers(t2)
     assert not any("may be hours" in str(w.message) for w in record)
+    # sexagesimal strings are hours already (common practice): 00:30:00 and 01:20:00 are 7.5 and 20 deg of RA, inside
+    # 0..24 once converted, and say nothing of hours either
+    t3 = Table({"RA": ["00:30:00", "01:20:00"], "Dec": [NGP_DEC, 10.0], "dist_pc": [100.0, 200.0], "E(B-V)": [0.2, 0.3]})
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts3 = read_tracers(t3)
+    assert not any("may be hours" in str(w.message) for w in record)
+    assert any("sexagesimal" in str(w.message) for w in record)
+    assert ts3.b[1] == pytest.approx(SkyCoord(ra=20.0 * u.deg, dec=10.0 * u.deg).galactic.b.deg, abs=1e-6)
 
 
 def test_target_list_in_kpc_without_a_unit_is_refused_in_words_about_targets():

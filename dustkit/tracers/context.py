@@ -120,6 +120,7 @@ class Context:
         self.modulus_kind = None  # 'true' | 'apparent' for a modulus column whose name does not say
         self.temperature = None  # per-row source temperatures of a colour-excess conversion (K)
         self.rows_are = "tracers"  # what the rows are, in messages: "tracers" or "targets" (read_targets)
+        self.sexagesimal_hours = set()  # columns read as sexagesimal hours of right ascension
 
     def note(self, cls, msg, assumption=True):
         self.notes.append((cls, msg))

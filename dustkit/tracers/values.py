@@ -71,6 +71,7 @@ def numeric(table, colname, ctx, *, sexagesimal=None):
                 values[np.flatnonzero(bad & ~blank)] = sx
                 bad = np.isnan(values)
                 if sexagesimal == "hour" and np.isfinite(sx).any():
+                    ctx.sexagesimal_hours.add(colname)
                     ctx.note(
                         AssumptionWarning,
                         f"Column {colname!r} holds sexagesimal strings; read as hours:minutes:seconds of right "
@@ -163,8 +164,7 @@ def _hours_hint(ra, unit, colname, ctx):
     """Warn when right ascensions without a unit are all within 0..24: hours, not degrees, perhaps (catalogues
     list RA in hours as often as in degrees; read as deg, 0-24 h land in a 24 deg wedge of the sky)."""
     finite = ra[np.isfinite(ra)]
-    sexagesimal = any(m.startswith(f"Column {colname!r} holds sexagesimal") for _, m in ctx.notes)
-    if unit is not None or sexagesimal or finite.size == 0 or finite.max() > 24.0:
+    if unit is not None or colname in ctx.sexagesimal_hours or finite.size == 0 or finite.max() > 24.0:
         return
     ctx.note(
         AssumptionWarning,
