@@ -75,8 +75,8 @@ __all__ = ["ExtinctionModel", "CAUTION", "FitPlan", "model_state", "model_from_s
 #: (the path for 10^6-10^8 field stars, built in seconds). On 50 000 invented field stars with
 #: 10-25% distance errors the density model answered with RMS error 0.089 mag and 0.67 of the
 #: truths inside 1 sigma (0.61 in front of clouds) in 253 s; the binned model 0.208 mag and
-#: 0.88 (0.22 in front of clouds) in 1.3 s; at 10^5 stars the density build takes about 8 minutes
-#: (benchmarks/README.md).
+#: 0.88 (0.22 in front of clouds) in 1.3 s; 10^5 stars took the density model 281 s
+#: (benchmarks/README.md, stop 37).
 DENSITY_LIMIT = 100_000
 
 MC_LIMIT = 300_000  # above this many tracers "auto" switches to the bin-scatter scheme
