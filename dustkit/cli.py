@@ -268,6 +268,9 @@ def build_parser():
     p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from a feature's tracers, of adding "
                         "--min-delta-av (default 0.99)")
+    p.add_argument("--min-model-probability", type=float, metavar="P",
+                   help="density finder: least posterior probability, from the model's own samples, of adding "
+                        "--min-delta-av (default 0.75; 0 lists what the tracers alone support)")
     p.add_argument("--min-contrast", type=float, metavar="RATIO",
                    help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
     p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
@@ -779,8 +782,8 @@ def _cmd_features(args, out):
         if args.radius is not None or args.detections:
             raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
                               "the model's own cells")
-        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability))
-                 if v is not None} | given_dav
+        given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
+                                   ("min_model_probability", args.min_model_probability)) if v is not None} | given_dav
         feats = density_features(model, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "

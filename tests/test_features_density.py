@@ -173,6 +173,8 @@ def test_bad_input_is_refused_with_a_hint(cloudy):
         density_features(model, min_contrast=0.5)
     with pytest.raises(ParameterError, match="min_probability"):
         density_features(model, min_probability=1.5)
+    with pytest.raises(ParameterError, match="min_model_probability"):
+        density_features(model, min_model_probability=-0.1)
 
 
 def test_the_command_line_uses_the_density_finder_for_a_density_model(cloudy, tmp_path):
@@ -198,6 +200,11 @@ def test_the_command_line_uses_the_density_finder_for_a_density_model(cloudy, tm
     assert main(["features", str(path), "-o", str(ecsv), "--overwrite", "--min-delta-av", "0.6", "--quiet"]) == 0
     high = Table.read(ecsv)
     assert high.meta["min_delta_av"] == 0.6 and len(high) <= len(want)
+    # the model's own probability cut is passed on too (0: what the tracers alone support)
+    assert main(["features", str(path), "-o", str(ecsv), "--overwrite", "--min-model-probability", "0", "--quiet"]) == 0
+    loose = Table.read(ecsv)
+    assert loose.meta["min_model_probability"] == 0.0
+    assert len(loose) == len(density_features(model, min_model_probability=0.0)) >= len(want)
     # the cone radius belongs to the sight-line finder
     assert main(["features", str(path), "-o", str(tmp_path / "f2.csv"), "--radius", "3", "--quiet"]) != 0
 
@@ -429,3 +436,21 @@ def test_two_neighbouring_clouds_at_different_distances_are_two_features(monkeyp
     monkeypatch.setattr(fd, "_SADDLE", 0.0)
     monkeypatch.setattr(fd, "_DEPTH_TOL", np.inf)
     assert len(density_features(model)) == 1
+
+
+def test_features_the_models_own_posterior_doubts_are_not_listed(cloudy, smooth):
+    # a candidate its tracers carry but the model's own posterior gives less than three chances
+    # in four of adding min_delta_av is left out and counted; 0 turns the cut off
+    doubted = 0
+    for _, _, model in (cloudy, smooth):
+        every = density_features(model, min_probability=0.0, min_model_probability=0.0)
+        cut = density_features(model, min_probability=0.0)
+        assert cut.meta["min_model_probability"] == 0.75
+        assert np.all(np.asarray(cut["model_significance"]) >= 0.75)
+        assert len(cut) + cut.meta["n_model_doubts"] == len(every)
+        doubted += int(np.sum(np.asarray(every["model_significance"]) < 0.75))
+        assert cut.meta["n_model_doubts"] == int(np.sum(np.asarray(every["model_significance"]) < 0.75))
+    assert doubted >= 1  # the cut has something to do in these two regions
+    # the strong cloud stays listed (truth of the invented field)
+    f, sep = _nearest(density_features(cloudy[2]), STRONG)
+    assert sep <= 2.0 and f["model_significance"] >= 0.75
