@@ -361,6 +361,26 @@ def test_a_density_model_follows_rv_changes_in_the_explorer(tracers):
     np.testing.assert_allclose(ex.model.av_, model.av_ * 3.5 / model.rv, rtol=1e-12)
 
 
+def test_without_a_model_the_explorer_opens_on_the_density_model_unless_given_a_grid(tracers):
+    from dustkit import ExtinctionModel, build_model
+    from dustkit.density import DensityModel
+
+    # the same choice as build_model (a cluster catalogue: the 3-D density model, the more accurate)
+    ex = Explorer(tracers, figures="static", random_state=3)
+    assert ex.last_error is None and isinstance(ex.model, DensityModel)
+    ref = build_model(tracers, random_state=3, quiet=True)
+    np.testing.assert_array_equal(ex.model.av_, ref.av_)
+    # an R_V change rescales it exactly (A_V = R_V E(B-V) for E(B-V) tracers: definition of R_V)
+    ex.rv_widget.value = 3.5
+    assert ex.last_error is None and ex.model.how_.startswith("rescaled exactly")
+    # the grid controls build the binned model on their grid
+    ex.nside_widget.value = 8
+    ex.rebuild_button.click()
+    assert ex.last_error is None and isinstance(ex.model, ExtinctionModel) and ex.model.grid_.nside == 8
+    # a grid given at the start asks for the binned model from the start
+    assert isinstance(Explorer(tracers, figures="static", **FAST).model, ExtinctionModel)
+
+
 def test_a_layer_given_to_the_explorer_follows_rv_changes(tracers):
     # a layer from elsewhere, in A_V under the first R_V: a rebuild under another R_V scales it
     # with the tracers' A_V (A_V = R_V E(B-V): definition of R_V), it is not refitted

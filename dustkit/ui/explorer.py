@@ -51,12 +51,15 @@ from ..exceptions import ModelNotFittedError
 from .._lib.formats import TABLE_FORMATS
 from .._lib.validation import check_choice, check_int, param_error, to_value
 from ..layer import given_layer
-from ..model import CAUTION, ExtinctionModel
+from ..model import CAUTION, DENSITY_LIMIT, ExtinctionModel
 from .feature_table import feature_table_html
 
 __all__ = ["Explorer"]
 
 _NSIDES = (4, 8, 16, 32, 64, 128, 256)
+#: Parameters the explorer's first model can take whichever model it is (anything else, a grid
+#: above all, asks for the binned model its controls rebuild).
+_SHARED_PARAMS = frozenset({"random_state", "layer", "quiet"})
 _FORMATS = {}  # table format -> its first suffix in the format registry ("ecsv" -> ".ecsv")
 for _suffix, _format in TABLE_FORMATS.items():
     _FORMATS.setdefault(_format, _suffix)
@@ -76,8 +79,11 @@ class Explorer:
     tracers : TracerSet, Table, DataFrame or path
         The tracers; anything that is not a TracerSet goes through
         :func:`dustkit.tracers.read_tracers` (default law and R_V).
-    model : ExtinctionModel, optional
-        An already fitted model of these tracers, shown first (saves one build).
+    model : ExtinctionModel or DensityModel, optional
+        An already fitted model of these tracers, shown first (saves one build). Without one,
+        a catalogue of at most ``dustkit.model.DENSITY_LIMIT`` tracers given no grid or other
+        binned-model parameter gets the 3-D density model (as ``dustkit.build_model`` picks it),
+        built before the panel opens; otherwise the binned model on the grid of the controls.
     features : Table, optional
         Dust features to mark on the profile (columns ``distance``, optional
         ``distance_err``, ``delta_av``, and ``l``, ``b`` to keep only those near the sight line).
@@ -88,7 +94,9 @@ class Explorer:
         How many built models to keep, so that going back to a law, R_V or grid is instant.
     **model_params
         Passed to :class:`dustkit.model.ExtinctionModel` (e.g. ``nside=16``,
-        ``distance_step=100 * u.pc``, ``distance_max=4 * u.kpc``, ``random_state=1``).
+        ``distance_step=100 * u.pc``, ``distance_max=4 * u.kpc``, ``random_state=1``); a grid
+        parameter asks for the binned model from the start. ``random_state`` and ``layer`` go
+        to a first density model too.
 
     Attributes
     ----------
@@ -128,6 +136,13 @@ class Explorer:
         self._syncing = False
 
         params = dict(model_params)
+        if model is None and len(tracers) <= DENSITY_LIMIT and set(params) <= _SHARED_PARAMS:
+            # the more accurate model first, as build_model picks it; the grid controls rebuild binned ones
+            from ..density import DensityModel
+
+            print(f"Building the 3-D density model of {len(tracers)} tracers (for the binned model on a grid "
+                  "of your own, pass nside=, distance_step= or distance_max=) ...")
+            model = DensityModel(**{"quiet": True, **params}).fit(tracers)
         if model is not None:
             if not hasattr(model, "av_"):
                 raise ModelNotFittedError("The model given to Explorer is not fitted. Hint: pass model.fit(tracers), or no model.")
