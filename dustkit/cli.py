@@ -171,6 +171,7 @@ def _add_law_options(p):
 def build_parser():
     """The ``dustkit`` argument parser."""
     from . import __version__
+    from .model import DENSITY_LIMIT
 
     parser = _Parser(
         prog=_PROG,
@@ -195,8 +196,6 @@ def build_parser():
     p = sub("build", "Build a model from a tracer catalogue and save it as a FITS model file.")
     p.add_argument("catalog", metavar="CATALOG", help="tracer catalogue (CSV, ECSV, FITS table, VOTable, Parquet)")
     p.add_argument("-o", "--output", required=True, metavar="MODEL.fits", help="model file to write")
-    from .model import DENSITY_LIMIT
-
     grid = _grid_defaults()
     p.add_argument("--nside", type=int, default=None,
                    help=f"HEALPix NSIDE of the sky pixels (power of two; default: the binned model {grid['nside']}, "
