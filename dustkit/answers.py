@@ -28,11 +28,11 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from astropy import units as u
-from astropy.table import QTable, Table
+from astropy.table import MaskedColumn, QTable, Table
 
 from ._lib import healpix
 from ._lib.sky import separation_deg
-from ._lib.validation import check_real, param_error, to_value
+from ._lib.validation import check_int, check_real, param_error, to_value
 from .binned.calibration import predictive_variance
 
 __all__ = [
@@ -175,7 +175,8 @@ def binned_slope(grid, layer, resid, l, b, d):
     return np.maximum(far - near, 0.0) / (e[k + 1] - e[k])
 
 
-def _distance_errors(distance_err, shape):
+def distance_errors(distance_err, shape):
+    """Distance errors (pc) as a flat float array for positions of ``shape`` (None stays None)."""
     if distance_err is None:
         return None
     return np.broadcast_to(to_value("distance_err", distance_err, u.pc), shape).ravel()
@@ -185,7 +186,7 @@ def av_quantities(model, l, b=None, distance=None, distance_err=None):
     """A_V and its predictive 1-sigma uncertainty (Quantity, mag) in the shape of the input."""
     model.check_fitted()
     lv, bv, dv, shape = sky_positions(l, b, distance)
-    a, e = model.av_pc(lv, bv, dv, _distance_errors(distance_err, shape))
+    a, e = model.av_pc(lv, bv, dv, distance_errors(distance_err, shape))
     return a.reshape(shape) * u.mag, e.reshape(shape) * u.mag
 
 
@@ -200,7 +201,7 @@ def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), la
     """
     model.check_fitted()
     lv, bv, dv, shape = sky_positions(l, b, distance)
-    a, e = model.av_pc(lv, bv, dv, _distance_errors(distance_err, shape))
+    a, e = model.av_pc(lv, bv, dv, distance_errors(distance_err, shape))
     t = QTable()
     t["l"] = lv * u.deg
     t["b"] = bv * u.deg
@@ -289,17 +290,25 @@ def profile_table(model, l, b, radius=None, distances=None):
     return t
 
 
-def estimate_columns(model, bands=()):
+def estimate_columns(model, bands=(), samples=0):
     """The columns :func:`estimate_targets` adds for this model and these bands, in order.
 
-    ``av_err_layer`` (the fitted layer's part of ``av_err``, shared by all rows) comes with
-    models that report it (the 3-D density model's ``layer_err_pc``).
+    Models that say how far each answer is supported (the 3-D density model's ``support``)
+    add ``av_err_layer`` (the fitted layer's part of ``av_err``, shared by all rows),
+    ``support``, ``n_tracers`` and ``prior_only``; ``samples`` adds ``av_samples``.
     """
     shared = ["av_err_layer"] if hasattr(model, "layer_err_pc") else []
-    return ["av", "av_err"] + shared + [c for band in dict.fromkeys(bands) for c in (f"a_{band}", f"a_{band}_err")]
+    support = ["support", "n_tracers", "prior_only"] if hasattr(model, "support") else []
+    drawn = ["av_samples"] if samples else []
+    return (["av", "av_err"] + shared + support + drawn
+            + [c for band in dict.fromkeys(bands) for c in (f"a_{band}", f"a_{band}_err")])
 
 
-def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options):
+#: Units of the columns :func:`estimate_targets` adds (the band columns are in mag too).
+ESTIMATE_UNITS = {"support": None, "n_tracers": None, "prior_only": None}
+
+
+def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **read_options):
     """Extinction for a list of targets, keeping every input row and column.
 
     Parameters
@@ -314,6 +323,10 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
         Bands whose extinction ``a_<band>`` (and ``a_<band>_err``) is added.
     law, rv : optional
         Law and R_V for the band extinctions (default: the model's).
+    samples : int
+        Posterior draws of A_V per target to add as ``av_samples`` (n, samples), with each
+        target's distance error drawn in: for users who propagate them. Only models that keep
+        posterior draws (the 3-D density model) give them.
 
     Returns
     -------
@@ -321,16 +334,23 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
         Every input row in input order with every input column, plus ``av``, ``av_err``
         (mag), for the 3-D density model ``av_err_layer`` (the part of ``av_err`` that is the
         fitted layer's, the same error under every row: it does not average down when rows
-        are combined) and the band columns. Rows that cannot be placed (no usable position or
-        distance) keep NaN in the new columns; input columns with the same names as the
-        new ones are renamed ``input_<name>``. ``meta["caution"]`` carries the caution,
-        ``meta["n_estimated"]`` the number of rows estimated and ``meta["rejected_by_reason"]``
-        the rows left empty by reason (the rows themselves: ``TargetList.rejected``).
+        are combined), ``support`` (0 = the prior alone, 1 = set by tracers), ``n_tracers``
+        (kernel-weighted tracers in front) and ``prior_only`` (support below 0.1), then
+        ``av_samples`` and the band columns. Rows that cannot be placed (no usable position or
+        distance) keep NaN in the new columns (``prior_only`` masked); input columns with the
+        same names as the new ones are renamed ``input_<name>``. ``meta["caution"]`` carries
+        the caution, ``meta["n_estimated"]`` the number of rows estimated and
+        ``meta["rejected_by_reason"]`` the rows left empty by reason (the rows themselves:
+        ``TargetList.rejected``).
     """
     from .tracers import TargetList, read_targets
 
     model.check_fitted()
     bands = list(dict.fromkeys(bands))
+    samples = check_int("samples", samples, 0, 100_000)
+    if samples and not hasattr(model, "draw"):
+        raise param_error("samples", "0 for this model: it keeps no posterior draws (the 3-D density model does: "
+                          "dustkit.build_model, or 'dustkit build' without grid options, up to 10^5 tracers)", samples)
     if not isinstance(targets, TargetList):
         targets = read_targets(targets, **read_options)  # announces rows kept empty (RowsRejectedWarning)
     elif read_options:
@@ -338,23 +358,27 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, **read_options
                           "reading options with a TargetList")
     ok = np.asarray(targets.valid)
     table = Table(targets.table, copy=True)
-    names = estimate_columns(model, bands)
-    shared = "av_err_layer" in names
+    names = estimate_columns(model, bands, samples)
     for c in names:
         if c in table.colnames:
             table.rename_column(c, f"input_{c}")
     n = len(table)
-    values = {c: np.full(n, np.nan) for c in names}
+    values = {c: np.full((n, samples) if c == "av_samples" else n, np.nan) for c in names}
     if ok.any():
         lv, bv, dv = (np.asarray(getattr(targets, k), float)[ok] for k in ("l", "b", "distance"))
-        q = query_table(model, lv * u.deg, bv * u.deg, dv * u.pc,
-                        distance_err=np.asarray(targets.distance_err)[ok] * u.pc, bands=tuple(bands), law=law, rv=rv)
-        if shared:
-            q["av_err_layer"] = model.layer_err_pc(lv, bv, dv) * u.mag
+        ask = getattr(model, "query", None) if len(names) > 2 + 2 * len(bands) else None  # its own columns
+        ask = ask or (lambda *a, **k: query_table(model, *a, **k))
+        q = ask(lv * u.deg, bv * u.deg, dv * u.pc, distance_err=np.asarray(targets.distance_err)[ok] * u.pc,
+                bands=tuple(bands), law=law, rv=rv, **({"samples": samples} if samples else {}))
         for c in names:
-            values[c][ok] = q[c].to_value(u.mag)
+            values[c][ok] = u.Quantity(q[c]).to_value(u.mag) if c not in ESTIMATE_UNITS else np.asarray(q[c], float)
     for c in names:
-        table[c] = values[c] * u.mag
+        if c == "prior_only":
+            table[c] = MaskedColumn(values[c] > 0.5, mask=np.isnan(values[c]))
+        elif c in ESTIMATE_UNITS:
+            table[c] = values[c]
+        else:
+            table[c] = values[c] * u.mag
     table.meta["caution"] = CAUTION
     table.meta["n_estimated"] = int(ok.sum())
     reasons, counts = np.unique(np.asarray(targets.rejected["reason"], dtype=str), return_counts=True)

@@ -67,10 +67,13 @@ A_V = R_V E(B-V) whatever the star.""",
   dustkit estimate model.fits targets.csv -o targets_av.csv
   dustkit estimate model.fits targets.ecsv -o targets_av.ecsv --band J --band Ks
   dustkit estimate model.fits targets.csv -o out.csv --column distance=dist --distance-unit kpc
+  dustkit estimate model.fits targets.csv -o draws.ecsv --samples 200
 
-The output keeps every input column and adds av and av_err (mag), for a 3-D density model
+The output keeps every input column and adds av and av_err (mag); for a 3-D density model
 av_err_layer (the fitted layer's part of av_err, the same error under every row: it does not
-average down when rows are combined), and a_BAND, a_BAND_err for each --band. Rows without a
+average down when rows are combined), support (0 = the prior alone, 1 = set by tracers),
+n_tracers (tracers in front, kernel-weighted), prior_only (support below 0.1) and, with
+--samples N, N posterior draws of A_V; and a_BAND, a_BAND_err for each --band. Rows without a
 usable position or distance keep empty (NaN) values.""",
     "layer": """examples:
   dustkit layer clusters.csv
@@ -235,6 +238,10 @@ def build_parser():
     p.add_argument("-o", "--output", required=True, metavar="OUT.csv", help="output table (.csv, .ecsv or .fits)")
     p.add_argument("--band", action="append", default=[], metavar="BAND",
                    help="also give A in BAND (repeatable; see 'dustkit bands')")
+    p.add_argument("--samples", type=int, default=0, metavar="N",
+                   help="also write N posterior draws of A_V per target (3-D density models), each target's "
+                        "distance error drawn in: columns av_samples_1 .. av_samples_N in CSV, one (n, N) "
+                        "column in ECSV and FITS")
     _add_catalogue_options(p)
     p.add_argument("--overwrite", action="store_true", help="replace OUT if it exists")
 
@@ -648,7 +655,7 @@ def _cmd_estimate(args, out):
     import numpy as np
 
     from ._lib.formats import check_target, format_for
-    from .answers import CAUTION, estimate_columns, estimate_targets
+    from .answers import CAUTION, ESTIMATE_UNITS, estimate_columns, estimate_targets
     from .bands import get_band
     from .exceptions import RowsRejectedWarning
     from .io import load_model, write_table
@@ -665,9 +672,9 @@ def _cmd_estimate(args, out):
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
         targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit,
                                distance_modulus_kind=getattr(args, "modulus_kind", None))
-    table = estimate_targets(model, targets, bands=bands)
+    table = estimate_targets(model, targets, bands=bands, samples=args.samples)
     table.meta["model"] = str(args.model)
-    names = estimate_columns(model, bands)
+    names = estimate_columns(model, bands, args.samples)
     rej = targets.rejected
     table.meta.pop("rejected_by_reason")
     n_ok = table.meta.pop("n_estimated")
@@ -683,7 +690,15 @@ def _cmd_estimate(args, out):
         msg = (f"{n_bad} of {n} targets have no usable position or distance and keep empty (NaN) "
                f"extinction values: {why} [{rows}{', ...' if n_bad > 5 else ''}]")
         out.note(msg)
-    out(f"Wrote {path} (every input column plus {', '.join(names)}; mag)", f"Caution: {CAUTION}")
+    unitless = [c for c in names if c in ESTIMATE_UNITS]
+    added = ", ".join(c for c in names if c not in unitless) + " in mag"
+    added += f"; {', '.join(unitless)}" if unitless else ""
+    out(f"Wrote {path} (every input column plus {added})", f"Caution: {CAUTION}")
+    if "prior_only" in names and n_ok:
+        n_prior = int(np.sum(np.asarray(table["prior_only"].filled(False))))
+        if n_prior:
+            out.note(f"{n_prior} of {n_ok} targets are answered by the prior alone (prior_only: no tracer informs "
+                     "them; their av_err is the prior's spread). Hint: check them against local data first.")
     return 0
 
 
@@ -971,7 +986,7 @@ def _cmd_demo(args, out):
     out("4. Estimating extinction for the target list")
     est = argparse.Namespace(model=str(folder / "veyra_model.fits"), targets=str(data / "veyra_targets.csv"),
                              output=str(folder / "veyra_targets_av.csv"), band=["J", "Ks"], column=[],
-                             distance_unit=None, overwrite=True, quiet=True)
+                             distance_unit=None, overwrite=True, quiet=True, samples=0)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         _cmd_estimate(est, _Out(True, notes=False))  # the listing below shows the row left empty
@@ -982,8 +997,9 @@ def _cmd_demo(args, out):
     dist = np.asarray(res["dist_kpc"].filled(np.nan) if hasattr(res["dist_kpc"], "filled") else res["dist_kpc"], float)
     for row, dk in zip(res, dist):
         if np.isfinite(row["av"]):
+            prior = "prior_only" in res.colnames and str(row["prior_only"]) == "True"
             out(f"   {row['target']:<8s} {dk:5.2f} kpc  A_V = {row['av']:5.2f} +- {row['av_err']:.2f} mag   "
-                f"A_Ks = {row['a_Ks']:.2f} mag")
+                f"A_Ks = {row['a_Ks']:.2f} mag" + ("   (the prior alone: no tracer informs it)" if prior else ""))
         else:
             out(f"   {row['target']:<8s}   (no distance: left empty)")
     # the field is invented, so the truth is known: how well does the model recover it?

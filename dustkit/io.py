@@ -576,7 +576,8 @@ def write_table(table, path, format=None, overwrite=False):
     Notes
     -----
     ECSV keeps units and metadata; FITS keeps units and puts simple metadata in header
-    keywords; CSV keeps column names and values only (for spreadsheets).
+    keywords; CSV keeps column names and values only (for spreadsheets), a column of several
+    values per row (``av_samples``) spread over ``av_samples_1``, ``av_samples_2``, ...
     """
     fmt = _table_format(path, format)
 
@@ -588,11 +589,23 @@ def write_table(table, path, format=None, overwrite=False):
             elif fmt == "fits":
                 _table_for_fits(table).write(tmp, format="fits")
             else:
-                plain = Table(table, copy=False)
-                plain.meta.clear()
-                plain.write(tmp, format="ascii.csv")
+                _flat_for_csv(table).write(tmp, format="ascii.csv")
 
     return atomic_write(path, write, overwrite, what=f"{fmt.upper()} table")
+
+
+def _flat_for_csv(table):
+    """A plain copy of ``table`` without metadata, each column of shape (n, k) spread over ``name_1 .. name_k``."""
+    plain = Table()
+    for name in table.colnames:
+        col = table[name]
+        if col.ndim > 1:
+            flat = np.asarray(getattr(col, "value", col)).reshape(len(col), -1)
+            for j in range(flat.shape[1]):
+                plain[f"{name}_{j + 1}"] = flat[:, j]
+        else:
+            plain[name] = col
+    return plain
 
 
 def export_table(model, path, format=None, overwrite=False):

@@ -206,6 +206,34 @@ def test_estimate_keeps_input_columns_and_matches_the_api(built, files, tmp_path
     assert np.allclose(ratio, ratio[0], rtol=1e-3) and 0.10 < ratio[0] < 0.125
 
 
+def test_estimate_with_a_density_model_says_how_each_answer_is_supported(built, files, tmp_path, call):
+    # a 3-D density model's estimates carry support, n_tracers, prior_only and, with --samples N,
+    # N draws as columns av_samples_1 .. av_samples_N in CSV: the same numbers as the Python API
+    from dustkit.answers import estimate_targets
+
+    path = tmp_path / "dens.fits"
+    call("--quiet", "build", files / "cat.csv", "-o", path, "--model", "density", "--distance-unit", "kpc", check_rc=0)
+    out_path = tmp_path / "est.csv"
+    rc, out, err = call("estimate", path, files / "targets.csv", "-o", out_path, "--samples", "5", check_rc=0)
+    res = Table.read(out_path, format="ascii.csv")
+    assert res.colnames[5:] == ["av", "av_err", "av_err_layer", "support", "n_tracers", "prior_only",
+                                *[f"av_samples_{j}" for j in range(1, 6)]]
+    assert "support, n_tracers, prior_only" in out
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        want = estimate_targets(load_model(path), files / "targets.csv", samples=5)
+    ok = ~np.isnan(np.asarray(want["av"], float))
+    for col in ("av", "av_err", "support", "n_tracers"):
+        assert np.allclose(np.asarray(res[col], float)[ok], np.asarray(want[col], float)[ok], rtol=1e-12), col
+    assert np.allclose(np.stack([np.asarray(res[f"av_samples_{j}"], float) for j in range(1, 6)], axis=1)[ok],
+                       want["av_samples"].quantity.to_value(u.mag)[ok], rtol=1e-12)
+    n_prior = int(np.sum(np.asarray(want["prior_only"].filled(False))))
+    assert (f"{n_prior} of {int(ok.sum())} targets are answered by the prior alone" in err) == (n_prior > 0)
+    # a binned model keeps no posterior draws: one line naming the option, nothing written
+    rc, out, err = call("estimate", built[0], files / "targets.csv", "-o", tmp_path / "x.csv", "--samples", "5")
+    assert rc == 2 and "samples" in one_line_error(err) and not (tmp_path / "x.csv").exists()
+
+
 def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):
     out_path = tmp_path / "est.ecsv"
     call("--quiet", "estimate", built[0], files / "targets.csv", "-o", out_path, check_rc=0)

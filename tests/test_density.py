@@ -295,6 +295,51 @@ def test_target_lists_get_the_layers_shared_part_of_the_error(fitted):
     assert np.all(shared[[0, 2]] > 0)
 
 
+def test_target_lists_say_how_each_answer_is_supported_and_carry_draws(fitted):
+    # estimate_targets gives the density model's support columns as query does, and with
+    # samples=N draws whose spread is the answer's av_err, the target's distance error included
+    # (a draw that left it out would be too narrow for a user who propagates the draws)
+    from astropy.table import Table
+    from dustkit.answers import estimate_targets
+    from dustkit.exceptions import RowsRejectedWarning
+
+    _, m = fitted
+    targets = Table({"l": [40.0, 45.0, 50.0, 42.0] * u.deg, "b": [0.0, 2.0, -1.0, 0.5] * u.deg,
+                     "distance": [2500.0, np.nan, 3000.0, 2000.0] * u.pc,
+                     "distance_err": [500.0, 100.0, 600.0, 20.0] * u.pc})
+    with pytest.warns(RowsRejectedWarning):
+        out = estimate_targets(m, targets, samples=2000)
+    ok = [0, 2, 3]
+    q = m.query([40, 50, 42] * u.deg, [0, -1, 0.5] * u.deg, [2500, 3000, 2000] * u.pc,
+                distance_err=[500, 600, 20] * u.pc)
+    for c in ("support", "n_tracers"):
+        np.testing.assert_array_equal(np.asarray(out[c], float)[ok], np.asarray(q[c], float))
+    assert list(out["prior_only"].mask) == [False, True, False, False]
+    assert np.isnan(out["support"][1]) and np.all(np.isnan(out["av_samples"][1]))
+    draws = out["av_samples"].quantity.to_value(u.mag)[ok]
+    assert draws.shape == (3, 2000)
+    err = q["av_err"].to_value(u.mag)
+    assert np.all(q["av"].to_value(u.mag) > 3 * err)  # draws are clipped at zero: keep away from it
+    np.testing.assert_allclose(draws.std(axis=1), err, rtol=0.1)
+    np.testing.assert_allclose(draws.mean(axis=1), q["av"].to_value(u.mag), atol=0.1 * err.max())
+    # the distance error widens the draws: without it they are narrower where it is large
+    plain = m.draw([40.0], [0.0], [2500.0], 2000).std()
+    assert plain < 0.95 * draws[0].std()
+
+
+def test_target_draws_are_refused_for_a_model_without_posterior_draws(fitted):
+    from astropy.table import Table
+    from dustkit.answers import estimate_targets
+    from dustkit.exceptions import DustkitError
+    from dustkit.model import ExtinctionModel
+
+    t, _ = fitted
+    binned = ExtinctionModel(nside=16, distance_max=4000 * u.pc, quiet=True).fit(dustkit.read_tracers(t))
+    with pytest.raises(DustkitError, match="samples"):
+        estimate_targets(binned, Table({"l": [40.0] * u.deg, "b": [0.0] * u.deg, "distance": [1000.0] * u.pc}),
+                         samples=10)
+
+
 def test_saved_model_answers_bit_for_bit(fitted, tmp_path):
     _, m = fitted
     path = dustkit.save_model(m, tmp_path / "density.fits")

@@ -11,7 +11,7 @@ import inspect
 from .._lib import healpix
 from .._lib.progress import extend_total, progress
 from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
-from ..answers import av_quantities, grid_table, profile_table, query_table, sky_positions
+from ..answers import av_quantities, distance_errors, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
 from ..layer import given_layer
@@ -540,7 +540,8 @@ class DensityModel:
         t["support"], t["n_tracers"], t["prior_only"] = s, nt, prior_only
         t["av_err_layer"] = self.layer_err_pc(lv, bv, dv) * u.mag
         if samples:
-            t["av_samples"] = self.draw(lv, bv, dv, samples) * u.mag
+            de = distance_errors(distance_err, np.shape(lv))
+            t["av_samples"] = self.draw(lv, bv, dv, samples, distance_err=de) * u.mag
         return t
 
     def _support_arrays(self, l, b, d):
@@ -555,12 +556,13 @@ class DensityModel:
         lv, bv, dv, shape = sky_positions(l, b, distance)
         return tuple(x.reshape(shape) for x in self._support_arrays(lv, bv, dv))
 
-    def draw(self, l, b, d, n_samples, random_state=0):
+    def draw(self, l, b, d, n_samples, random_state=0, distance_err=None):
         """Posterior draws of A_V (mag, plain arrays (n, n_samples)) at positions in deg and pc.
 
         The first ``min(n_samples, stored)`` draws come from the stored posterior samples at the active
         pixels (the prior's spread elsewhere); the layer's error is drawn once per draw for all positions
-        (:meth:`DustLayer.error_directions`), the rest position by position. Same call, same draws.
+        (:meth:`DustLayer.error_directions`), the rest position by position. With ``distance_err`` (pc)
+        each position's distance error adds its own normal term, as in ``av_pc``. Same call, same draws.
         """
         self.check_fitted()
         l, b, d = (np.atleast_1d(np.asarray(x, float)) for x in (l, b, d))
@@ -589,6 +591,9 @@ class DensityModel:
         if n_samples > use:
             own = np.sqrt(np.maximum(err**2 - lay**2, 0.0))
             dev[:, use:] += own[:, None] * rng.standard_normal((l.size, n_samples - use))
+        if distance_err is not None:  # the target's own distance error: its A_V spread along the sight line
+            blur = np.sqrt(np.maximum(self.av_pc(l, b, d, distance_err)[1] ** 2 - err**2, 0.0))
+            dev += blur[:, None] * rng.standard_normal((l.size, n_samples))
         return np.maximum(a[:, None] + dev, 0.0)
 
     def layer_err_pc(self, l, b, d):
