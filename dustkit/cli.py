@@ -697,7 +697,7 @@ def _cmd_estimate(args, out):
     if "prior_only" in names and n_ok:
         n_prior = int(np.sum(np.asarray(table["prior_only"].filled(False))))
         if n_prior:
-            out.note(f"{n_prior} of {n_ok} targets are answered by the prior alone (prior_only: no tracer informs "
+            out.note(f"{n_prior} of {n_ok} targets are answered by the prior alone (prior_only: tracers barely inform "
                      "them; their av_err is the prior's spread). Hint: check them against local data first.")
     return 0
 
@@ -999,7 +999,7 @@ def _cmd_demo(args, out):
         if np.isfinite(row["av"]):
             prior = "prior_only" in res.colnames and str(row["prior_only"]) == "True"
             out(f"   {row['target']:<8s} {dk:5.2f} kpc  A_V = {row['av']:5.2f} +- {row['av_err']:.2f} mag   "
-                f"A_Ks = {row['a_Ks']:.2f} mag" + ("   (the prior alone: no tracer informs it)" if prior else ""))
+                f"A_Ks = {row['a_Ks']:.2f} mag" + ("   (the prior alone: tracers barely inform it)" if prior else ""))
         else:
             out(f"   {row['target']:<8s}   (no distance: left empty)")
     # the field is invented, so the truth is known: how well does the model recover it?

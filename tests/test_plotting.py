@@ -385,3 +385,32 @@ def test_saved_figure_has_ordinary_file_permissions(tmp_path):
     mask = os.umask(0)
     os.umask(mask)
     assert stat.S_IMODE(os.stat(path).st_mode) == 0o666 & ~mask
+
+
+def test_density_profile_shades_where_the_answer_is_the_prior_alone():
+    # a 3-D density model knows where no tracer informs an answer: the profile shades those
+    # distances, and only those, as the model's own support says (prior_only: support < 0.1)
+    from dustkit.density import DensityModel
+
+    table = simulate_tracers(FIELD, 300, l_range=(20, 50), b_range=(-8, 8), distance_max=3000, rng=3)
+    near = np.asarray(table["distance"], float) > 600.0  # no tracer nearer than 600 pc: an empty foreground
+    dens = DensityModel(quiet=True, amplitudes=(0.25,), lengths=[300] * u.pc).fit(read_tracers(table[near]))
+    ax = plotting.plot_profile(dens, 32, 1)
+    spans = _by_gid(ax, "dustkit-prior-only")
+    assert spans, "no prior-only shading on a sight line with an empty foreground"
+    prof = dens.profile(32 * u.deg, 1 * u.deg)
+    d_kpc = prof["distance"].to_value(u.kpc)
+    _, _, prior = dens.support(np.full(d_kpc.size, 32.0) * u.deg, np.ones(d_kpc.size) * u.deg, d_kpc * u.kpc)
+    near_pc = (prof["distance"] > 50 * u.pc) & (prof["distance"] < 300 * u.pc)
+    assert prior[near_pc].all() and not prior[-1]  # the empty foreground is the prior's; far behind, tracers
+    x0 = min(float(s.get_x()) if hasattr(s, "get_x") else float(np.min(np.asarray(s.get_xy())[:, 0]))
+             for s in spans)
+    assert x0 == pytest.approx(0.0)
+    labels = ax.get_legend_handles_labels()[1]
+    assert labels.count("prior only (support < 0.1)") == 1
+
+
+
+def test_binned_profile_has_no_prior_only_shading(model):
+    # the binned model keeps no support flag: nothing is shaded
+    assert not _by_gid(plotting.plot_profile(model, 32, 1), "dustkit-prior-only")

@@ -54,7 +54,9 @@ def plot_profile(
     -------
     matplotlib.axes.Axes
         The profile line has gid ``'dustkit-profile'``, its band ``'dustkit-profile-band'``,
-        the layer ``'dustkit-layer'``, the tracers ``'dustkit-tracers'``.
+        the layer ``'dustkit-layer'``, the tracers ``'dustkit-tracers'``. For a 3-D density model
+        the distances where the answer on the centre line is the prior alone (``support`` below
+        0.1: tracers barely inform it) are shaded grey (``'dustkit-prior-only'``).
     """
     fitted(model)
     quantity, band = check_quantity(quantity, band)
@@ -80,6 +82,12 @@ def plot_profile(
         ax.plot(x, y, color=COLORS["blue"], lw=2.0, label="model", gid="dustkit-profile")
         if show_layer:
             ax.plot(x, ylay, color=COLORS["black"], lw=1.3, ls="--", label="smooth layer", gid="dustkit-layer")
+        if hasattr(model, "support"):  # the 3-D density model says where tracers barely inform the answer
+            prior = np.array(model.support(np.full(x.size, lv) * u.deg, np.full(x.size, bv) * u.deg, d_pc * u.pc)[2])
+            first = d_pc < model.grid_.distance_edges[1]  # A_V = 0 at the Sun is known, not informed:
+            if np.any(~first):                              # the first bin is shaded as the next point is
+                prior[first] = prior[np.argmax(~first)]
+            _shade_prior_only(ax, x, prior)
         n_shown = 0
         tr = prof.meta.get("tracers")
         if show_tracers and tr is not None and len(tr):
@@ -104,6 +112,15 @@ def plot_profile(
         ax.set_title(where, fontsize="medium")
         ax.legend(loc="lower right")
     return ax
+
+
+def _shade_prior_only(ax, x, prior_only):
+    """Grey spans over the distances where the answer is the prior alone (one legend entry)."""
+    flag = np.concatenate([[False], np.asarray(prior_only, bool), [False]])
+    starts, ends = np.nonzero(np.diff(flag.astype(int)) == 1)[0], np.nonzero(np.diff(flag.astype(int)) == -1)[0] - 1
+    for k, (i, j) in enumerate(zip(starts, ends)):
+        ax.axvspan(x[i], x[min(j + 1, x.size - 1)], color=COLORS["grey"], alpha=0.15, lw=0, zorder=0,
+                   label="prior only (support < 0.1)" if k == 0 else None, gid="dustkit-prior-only")
 
 
 def _features_near(features, lon, lat, radius):
