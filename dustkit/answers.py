@@ -304,8 +304,8 @@ def estimate_columns(model, bands=(), samples=0):
             + [c for band in dict.fromkeys(bands) for c in (f"a_{band}", f"a_{band}_err")])
 
 
-#: Units of the columns :func:`estimate_targets` adds (the band columns are in mag too).
-ESTIMATE_UNITS = {"support": None, "n_tracers": None, "prior_only": None}
+#: Columns :func:`estimate_targets` adds that are not magnitudes (every other one is in mag).
+UNITLESS_COLUMNS = ("support", "n_tracers", "prior_only")
 
 
 def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **read_options):
@@ -366,16 +366,16 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **r
     values = {c: np.full((n, samples) if c == "av_samples" else n, np.nan) for c in names}
     if ok.any():
         lv, bv, dv = (np.asarray(getattr(targets, k), float)[ok] for k in ("l", "b", "distance"))
-        ask = getattr(model, "query", None) if len(names) > 2 + 2 * len(bands) else None  # its own columns
-        ask = ask or (lambda *a, **k: query_table(model, *a, **k))
+        own = [c for c in names if c not in ("av", "av_err") and not c.startswith("a_")]  # the model's own columns
+        ask = model.query if own else (lambda *a, **k: query_table(model, *a, **k))
         q = ask(lv * u.deg, bv * u.deg, dv * u.pc, distance_err=np.asarray(targets.distance_err)[ok] * u.pc,
                 bands=tuple(bands), law=law, rv=rv, **({"samples": samples} if samples else {}))
         for c in names:
-            values[c][ok] = u.Quantity(q[c]).to_value(u.mag) if c not in ESTIMATE_UNITS else np.asarray(q[c], float)
+            values[c][ok] = u.Quantity(q[c]).to_value(u.mag) if c not in UNITLESS_COLUMNS else np.asarray(q[c], float)
     for c in names:
         if c == "prior_only":
             table[c] = MaskedColumn(values[c] > 0.5, mask=np.isnan(values[c]))
-        elif c in ESTIMATE_UNITS:
+        elif c in UNITLESS_COLUMNS:
             table[c] = values[c]
         else:
             table[c] = values[c] * u.mag

@@ -655,7 +655,7 @@ def _cmd_estimate(args, out):
     import numpy as np
 
     from ._lib.formats import check_target, format_for
-    from .answers import CAUTION, ESTIMATE_UNITS, estimate_columns, estimate_targets
+    from .answers import CAUTION, UNITLESS_COLUMNS, estimate_columns, estimate_targets
     from .bands import get_band
     from .exceptions import RowsRejectedWarning
     from .io import load_model, write_table
@@ -690,7 +690,7 @@ def _cmd_estimate(args, out):
         msg = (f"{n_bad} of {n} targets have no usable position or distance and keep empty (NaN) "
                f"extinction values: {why} [{rows}{', ...' if n_bad > 5 else ''}]")
         out.note(msg)
-    unitless = [c for c in names if c in ESTIMATE_UNITS]
+    unitless = [c for c in names if c in UNITLESS_COLUMNS]
     added = ", ".join(c for c in names if c not in unitless) + " in mag"
     added += f"; {', '.join(unitless)}" if unitless else ""
     out(f"Wrote {path} (every input column plus {added})", f"Caution: {CAUTION}")
