@@ -591,8 +591,8 @@ class DensityModel:
         if n_samples > use:
             own = np.sqrt(np.maximum(err**2 - lay**2, 0.0))
             dev[:, use:] += own[:, None] * rng.standard_normal((l.size, n_samples - use))
-        if distance_err is not None:  # the target's own distance error: its A_V spread along the sight line
-            blur = np.sqrt(np.maximum(self.av_pc(l, b, d, distance_err)[1] ** 2 - err**2, 0.0))
+        if distance_err is not None:  # the target's own distance error, as av_pc adds it
+            blur = self._slope(pix, wgt, k) * np.asarray(distance_err, float)
             dev += blur[:, None] * rng.standard_normal((l.size, n_samples))
         return np.maximum(a[:, None] + dev, 0.0)
 

@@ -116,8 +116,8 @@ def plot_profile(
 
 def _shade_prior_only(ax, x, prior_only):
     """Grey spans over the distances where the answer is the prior alone (one legend entry)."""
-    flag = np.concatenate([[False], np.asarray(prior_only, bool), [False]])
-    starts, ends = np.nonzero(np.diff(flag.astype(int)) == 1)[0], np.nonzero(np.diff(flag.astype(int)) == -1)[0] - 1
+    step = np.diff(np.concatenate([[0], np.asarray(prior_only, bool).astype(int), [0]]))
+    starts, ends = np.nonzero(step == 1)[0], np.nonzero(step == -1)[0] - 1
     for k, (i, j) in enumerate(zip(starts, ends)):
         ax.axvspan(x[i], x[min(j + 1, x.size - 1)], color=COLORS["grey"], alpha=0.15, lw=0, zorder=0,
                    label="prior only (support < 0.1)" if k == 0 else None, gid="dustkit-prior-only")
