@@ -7,7 +7,10 @@ catalogue, scores both and the hand-written baseline smoother at held-out true p
 and prints RMS error, median |error|, the fraction of truths inside 1 sigma and median
 |z|, overall and in strata, with the ratio to the baseline's RMS. Targets (issue of the 3-D
 model): RMS <= 0.85 x baseline in every galaxy; coverage 0.62-0.74 overall and 0.55-0.85 in
-every stratum with >= 30 points; median |z| 0.55-0.80.
+every stratum with >= 30 points; median |z| 0.55-0.80. Two more rows split the positions
+behind clouds by how many tracers (true distances) lie behind the cloud within its own radius
+("behind, < 3 see it", "behind, >= 6 see it"; the fewest over the clouds a position is behind):
+not strata of the issue, they show where the heavy tail of the misses behind clouds comes from.
 
     python benchmarks/accuracy.py [--galaxies smooth,near,...] [--seed 1] [--binned] [--out FOLDER]
     python benchmarks/accuracy.py --galaxies tiny,sparse --pool 10   # 10 draws each, pooled

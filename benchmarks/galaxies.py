@@ -204,10 +204,16 @@ def strata(clouds, t, l, b, d):
     """Boolean masks of the scoring strata at positions (l, b, d)."""
     front = np.zeros(l.size, bool)
     behind = np.zeros(l.size, bool)
+    seen_by = np.full(l.size, np.inf)  # behind a cloud: the fewest tracers behind any such cloud within its radius
+    true_d = np.asarray(t["true_distance"], float) if "true_distance" in t.colnames else np.asarray(t["distance"], float)
     for c in clouds:
         inside = _sep(l, b, c.l, c.b) <= 1.5 * c.radius
         front |= inside & (d < c.distance - 2 * c.depth)
-        behind |= inside & (d > c.distance + 2 * c.depth)
+        here = inside & (d > c.distance + 2 * c.depth)
+        behind |= here
+        n_seen = np.sum((_sep(np.asarray(t["l"], float), np.asarray(t["b"], float), c.l, c.b) <= c.radius)
+                        & (true_d > c.distance + 2 * c.depth))
+        seen_by[here] = np.minimum(seen_by[here], n_seen)
     tl, tb, td = (np.asarray(t[k], float) for k in ("l", "b", "distance"))
     tree = cKDTree(_xyz(tl, tb))
     near = tree.query_ball_point(_xyz(l, b), 2 * np.sin(np.deg2rad(3.0) / 2), return_length=True)
@@ -219,6 +225,9 @@ def strata(clouds, t, l, b, d):
         "all": np.ones(l.size, bool),
         "in front of a cloud": front,
         "behind a cloud": behind,
+        # not strata of the issue: behind clouds split by how many tracers see them (README "Limitations")
+        "behind, < 3 see it": behind & (seen_by < 3),
+        "behind, >= 6 see it": behind & (seen_by >= 6) & np.isfinite(seen_by),
         "beyond last tracer": (near > 0) & (d > far),
         "no tracer within 3 deg": near == 0,
         "|b| > 10 deg": np.abs(b) > 10,
