@@ -305,3 +305,13 @@ def test_clusters_package_is_computation_only():
                          cwd=str(Path(pkg.__file__).parents[2]))
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip() == "[]"
+
+
+def test_a_clean_fit_announces_no_assumption_the_user_did_not_make():
+    # a members table with every error column given: nothing was assumed by the user, so no
+    # AssumptionWarning (an R_V no other test uses, so the reddening line is computed afresh)
+    members = simulate_members(40, 0.4, 9.5, bands=("U", "B", "V"), rng=41)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)
+        fit = fit_cluster(members, rv=3.17, evolved_cut=None)
+    assert np.isfinite(fit.ebv)

@@ -236,7 +236,9 @@ def reddening_curve(bands, law="ccm89", rv=3.1):
     if key not in _RED_CACHE:
         av = np.linspace(0.0, 15.0, 301)
         need = list(dict.fromkeys(list(bands) + ["B", "V"]))
-        a = {b: np.asarray(av_to_band(av, 0.0, b, law_obj, rv, temperature=SEQUENCE_TEMPERATURE)[0], dtype=float)
+        # in kelvin, as a Quantity: the bands module announces a bare number as an assumption,
+        # which a user of fit_cluster did not make
+        a = {b: np.asarray(av_to_band(av, 0.0, b, law_obj, rv, temperature=SEQUENCE_TEMPERATURE * u.K)[0], dtype=float)
              for b in need}
         ebv = a["B"] - a["V"]
         table = np.column_stack([a[b] for b in bands]) if bands else np.zeros((av.size, 0))
