@@ -93,8 +93,13 @@ def test_q_method_worked_value_agrees_with_the_colour_colour_fit():
     assert ebv_q == pytest.approx(0.5045, abs=1e-4)
     hot = Table({"B-V": np.full(6, 0.30), "e_B-V": np.full(6, 0.01), "U-B": np.full(6, -0.40), "e_U-B": np.full(6, 0.01)})
     fit = fit_colour_colour(hot)
-    # the slope of CCM89 (0.76) differs a little from Johnson's 0.72: agreement to 0.03 mag
-    assert fit.ebv == pytest.approx(0.5045, abs=0.03)
+    # the Q-method measures the B-V colour excess of the stars; the fit reports the nominal
+    # E(B-V) = A_V / R_V, whose B-V passband excess (the reddening line at fit.ebv) is what the
+    # stars show. The slope of CCM89 (0.76) differs a little from Johnson's 0.72: agreement
+    # to 0.03 mag
+    ebv_line, a = reddening_curve(("B", "V"), "ccm89", 3.1)
+    shown = np.interp(fit.ebv, ebv_line, a[:, 0]) - np.interp(fit.ebv, ebv_line, a[:, 1])
+    assert shown == pytest.approx(0.5045, abs=0.03)
     assert "colour_colour_only" in fit.flags and math.isnan(fit.distance_modulus)
 
 
@@ -315,3 +320,23 @@ def test_a_clean_fit_announces_no_assumption_the_user_did_not_make():
         warnings.simplefilter("error", AssumptionWarning)
         fit = fit_cluster(members, rv=3.17, evolved_cut=None)
     assert np.isfinite(fit.ebv)
+
+
+@pytest.mark.parametrize("law, rv", [("ccm89", 3.1), ("odonnell94", 3.1), ("ccm89", 5.0)])
+def test_fitted_ebv_is_the_nominal_one_read_tracers_turns_back_into_av(law, rv):
+    # R_V = A_V / E(B-V) by definition (Savage & Mathis 1979; CCM89), and read_tracers takes
+    # A_V = R_V E(B-V) from a fit's table: the E(B-V) of the reddening line must be A_V / R_V.
+    # The Johnson V passband extinction of a 10 000 K star is within 1.5% of A_V under
+    # CCM89 / O94 (V = 1.000 by definition; the passband widens it by < 1%, from the bands
+    # module's tests against the Johnson V curve), so A_V(V) / E(B-V) = R_V to 1.5%.
+    ebv, a = reddening_curve(("V",), law, rv)
+    for e in (0.3, 1.0, 2.0):
+        assert np.interp(e, ebv, a[:, 0]) / e == pytest.approx(rv, rel=0.015)
+    # and a whole fit, read back: the cluster's A_V is R_V times its E(B-V), reddened by
+    # A_V = 2.0 (invented cluster, U, B, V)
+    members = simulate_members(80, 2.0 / rv, 10.0, bands=("U", "B", "V"), law=law, rv=rv,
+                               magnitude_limit=30, rng=43)
+    fit = _quiet_fit(members, law=law, rv=rv, evolved_cut=None)
+    a_v = np.interp(fit.ebv, ebv, a[:, 0])
+    assert a_v == pytest.approx(2.0, abs=0.08)
+    assert rv * fit.ebv == pytest.approx(a_v, rel=0.015)
