@@ -340,3 +340,18 @@ def test_fitted_ebv_is_the_nominal_one_read_tracers_turns_back_into_av(law, rv):
     a_v = np.interp(fit.ebv, ebv, a[:, 0])
     assert a_v == pytest.approx(2.0, abs=0.08)
     assert rv * fit.ebv == pytest.approx(a_v, rel=0.015)
+
+
+def test_a_proper_motion_column_is_not_read_as_membership():
+    # Gaia DR3's gaia_source calls the total proper motion 'pm' (mas/yr; Gaia archive
+    # documentation, from memory): values of a few mas/yr are not membership per cent
+    from dustkit.clusters import read_photometry
+
+    members = simulate_members(40, 0.4, 9.5, bands=("U", "B", "V"), rng=44)
+    members["pm"] = np.random.default_rng(1).uniform(0.5, 12.0, len(members))
+    phot, notes = read_photometry(members)
+    assert phot.probability is None and not any("pm" in n for n in notes)
+    # a real membership column is still found
+    members["PMemb"] = np.full(len(members), 0.8)
+    phot, _ = read_photometry(members)
+    assert phot.probability is not None and phot.columns["probability"] == "PMemb"
