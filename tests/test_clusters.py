@@ -355,3 +355,19 @@ def test_a_proper_motion_column_is_not_read_as_membership():
     members["PMemb"] = np.full(len(members), 0.8)
     phot, _ = read_photometry(members)
     assert phot.probability is not None and phot.columns["probability"] == "PMemb"
+
+
+def test_empty_position_cells_do_not_move_the_cluster(tmp_path):
+    # an invented cluster at l = 30, b = 1 whose CSV has three empty l cells: the mean position
+    # is that of the stars with positions, not pulled toward l = 0 by the empty ones
+    members = simulate_members(60, 0.3, 9.5, bands=("U", "B", "V"), rng=31, l=30.0, b=1.0)
+    members["l"] = members["l"].astype(str)
+    members["l"][:3] = ""
+    path = tmp_path / "members.csv"
+    members.write(path, format="ascii.csv")
+    read = Table.read(path, format="ascii.csv")
+    assert np.ma.is_masked(read["l"][0])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegeneracyWarning)
+        table = fit_clusters(read, quiet=True)
+    assert table["l"][0] == pytest.approx(30.0, abs=0.05) and table["b"][0] == pytest.approx(1.0, abs=0.05)

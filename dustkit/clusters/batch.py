@@ -34,6 +34,13 @@ TRACER_COLUMNS = ("name", "l", "b", "ebv", "ebv_err", "mu0", "mu0_err", "distanc
 _CLUSTER_SPELLINGS = ("cluster", "cluster_name", "clustername", "cl", "name", "group")
 
 
+def _degrees(members, column, rows):
+    """Plain float values of rows of a column; NaN where a value is masked (an empty cell of a
+    CSV file), never the masked array's hidden filler, which would pull the mean position."""
+    values = np.ma.filled(np.ma.asarray(members[column], dtype=float), np.nan)
+    return values[rows]
+
+
 def _positions(members, rows, weights):
     """Weighted mean Galactic l, b (deg) of rows; from l/b or ra/dec columns. NaN if none."""
     lower = {}
@@ -44,15 +51,15 @@ def _positions(members, rows, weights):
         lower[c] = c
     for lc, bc in (("glon", "glat"), ("l", "b"), ("lii", "bii")):
         if lc in lower and bc in lower:
-            lon = np.asarray(members[lower[lc]], dtype=float)[rows]
-            lat = np.asarray(members[lower[bc]], dtype=float)[rows]
+            lon = _degrees(members, lower[lc], rows)
+            lat = _degrees(members, lower[bc], rows)
             coord = SkyCoord(lon * u.deg, lat * u.deg, frame="galactic")
             break
     else:
         for rc, dc in (("ra", "dec"), ("raj2000", "dej2000"), ("ra_icrs", "de_icrs"), ("ra", "de")):
             if rc in lower and dc in lower:
-                ra = np.asarray(members[lower[rc]], dtype=float)[rows]
-                de = np.asarray(members[lower[dc]], dtype=float)[rows]
+                ra = _degrees(members, lower[rc], rows)
+                de = _degrees(members, lower[dc], rows)
                 coord = SkyCoord(ra * u.deg, de * u.deg, frame="icrs").galactic
                 break
         else:
