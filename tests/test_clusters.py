@@ -371,3 +371,36 @@ def test_empty_position_cells_do_not_move_the_cluster(tmp_path):
         warnings.simplefilter("ignore", DegeneracyWarning)
         table = fit_clusters(read, quiet=True)
     assert table["l"][0] == pytest.approx(30.0, abs=0.05) and table["b"][0] == pytest.approx(1.0, abs=0.05)
+
+
+def test_a_column_of_star_names_is_not_taken_for_the_cluster(two_clusters):
+    # member lists commonly carry each star's own designation in a 'name' column (common
+    # practice): one value per row names stars, and fitting each star as a cluster of one is wrong
+    alpha = two_clusters[two_clusters["cluster"] == "Alpha"]
+    alpha.remove_column("cluster")
+    alpha["name"] = [f"Invented-{i}" for i in range(len(alpha))]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table = fit_clusters(alpha, quiet=True)
+    assert len(table) == 1 and not str(table["flags"][0]).startswith("failed")
+    assert abs(table["ebv"][0] - 0.3) < 0.03
+    assert any(issubclass(w.category, AssumptionWarning) and "'name'" in str(w.message) for w in caught)
+
+
+def test_rows_without_a_cluster_name_are_counted_not_fitted_as_a_cluster(two_clusters, tmp_path):
+    from dustkit.exceptions import RowsRejectedWarning
+
+    # an invented two-cluster list whose CSV has four empty cluster cells
+    members = two_clusters.copy()
+    members["cluster"] = members["cluster"].astype("U8")
+    members["cluster"][[0, 1, 70, 71]] = ""
+    path = tmp_path / "members.csv"
+    members.write(path, format="ascii.csv")
+    read = Table.read(path, format="ascii.csv")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table = fit_clusters(read, cluster_column="cluster", quiet=True)
+    assert list(table["name"]) == ["Alpha", "Beta"]
+    assert table.meta["rows_without_cluster"] == 4
+    assert any(issubclass(w.category, RowsRejectedWarning) and "4 of" in str(w.message) and "'cluster'" in str(w.message)
+               for w in caught)
