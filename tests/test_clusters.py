@@ -404,3 +404,13 @@ def test_rows_without_a_cluster_name_are_counted_not_fitted_as_a_cluster(two_clu
     assert table.meta["rows_without_cluster"] == 4
     assert any(issubclass(w.category, RowsRejectedWarning) and "4 of" in str(w.message) and "'cluster'" in str(w.message)
                for w in caught)
+
+
+def test_a_heavily_reddened_cluster_is_found_beyond_ebv_3():
+    # invented cluster behind A_V = 3.1 * 3.5 = 10.9 mag (common practice: young clusters in the
+    # disc are seen through that much dust, their members measured in V and 2MASS J, H, Ks)
+    members = simulate_members(100, 3.5, 10.0, bands=("V", "J", "H", "Ks"), rng=5, magnitude_limit=26,
+                               absolute_range=(-2.0, 6.0))
+    fit = _quiet_fit(members, evolved_cut=None)
+    assert abs(fit.ebv - 3.5) < 0.05 and abs(fit.distance_modulus - 10.0) < 0.1
+    assert "at_bound" not in fit.flags

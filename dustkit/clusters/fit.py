@@ -239,7 +239,7 @@ def reddening_curve(bands, law="ccm89", rv=3.1):
     law_obj = get_law(law)
     key = (law_obj.name, float(rv), tuple(bands))
     if key not in _RED_CACHE:
-        av = np.linspace(0.0, 15.0, 301)
+        av = np.linspace(0.0, 40.0, 801)  # up to embedded clusters seen in the infrared
         need = list(dict.fromkeys(bands))
         # in kelvin, as a Quantity: the bands module announces a bare number as an assumption,
         # which a user of fit_cluster did not make
@@ -889,11 +889,7 @@ def _optimise(args, colours_only, has_plx, start=None):
         if start is not None:
             ebv_grid = []
             best = (-np.inf, start[0], start[1])
-        for e in ebv_grid:
-            val = coarse.mixture(e, mu_grid, 0.3, 0.0)[0].sum(axis=1)
-            j = int(np.argmax(val))
-            if val[j] > best[0]:
-                best = (val[j], e, mu_grid[j])
+        best = _coarse_search(coarse, ebv_grid, mu_grid, best)
         e0, m0 = best[1], best[2]
         # second, finer pass around the best coarse point
         best = (-np.inf, e0, m0)
@@ -956,9 +952,28 @@ def _optimise(args, colours_only, has_plx, start=None):
     out["cov"] = np.array(cov, dtype=float)
     out["resp"] = resp
     out["model"] = model
-    out["at_bound"] = bool(out["ebv"] <= -0.29 or out["ebv"] >= 4.9)
+    # at the ends of the reddening line the likelihood no longer changes with E(B-V)
+    out["at_bound"] = bool(out["ebv"] <= model.red_ebv[0] + 0.01 or out["ebv"] >= model.red_ebv[-1] - 0.05)
     out["unreliable"] = unreliable
     return out
+
+
+def _coarse_search(coarse, ebv_grid, mu_grid, best):
+    """Best (value, E(B-V), mu0) on the coarse grid; while the best lies at the grid's top
+    (an embedded cluster seen in the infrared), the grid goes on upward to the reddening
+    line's end, 3 mag of E(B-V) at a time."""
+    top = coarse.red_ebv[-1]
+    while len(ebv_grid):
+        for e in ebv_grid:
+            val = coarse.mixture(e, mu_grid, 0.3, 0.0)[0].sum(axis=1)
+            j = int(np.argmax(val))
+            if val[j] > best[0]:
+                best = (val[j], e, mu_grid[j])
+        step = ebv_grid[1] - ebv_grid[0] if len(ebv_grid) > 1 else 0.1
+        if best[1] < ebv_grid[-1] - 2.5 * step or ebv_grid[-1] >= top:
+            break
+        ebv_grid = np.arange(ebv_grid[-1] + step, min(ebv_grid[-1] + 3.0, top) + step / 2, step)
+    return best
 
 
 def _simplex(x0, steps):
