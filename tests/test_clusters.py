@@ -93,8 +93,13 @@ def test_q_method_worked_value_agrees_with_the_colour_colour_fit():
     assert ebv_q == pytest.approx(0.5045, abs=1e-4)
     hot = Table({"B-V": np.full(6, 0.30), "e_B-V": np.full(6, 0.01), "U-B": np.full(6, -0.40), "e_U-B": np.full(6, 0.01)})
     fit = fit_colour_colour(hot)
-    # the slope of CCM89 (0.76) differs a little from Johnson's 0.72: agreement to 0.03 mag
-    assert fit.ebv == pytest.approx(0.5045, abs=0.03)
+    # the Q-method measures the B-V colour excess of the stars; the fit reports the nominal
+    # E(B-V) = A_V / R_V, whose B-V passband excess (the reddening line at fit.ebv) is what the
+    # stars show. The slope of CCM89 (0.76) differs a little from Johnson's 0.72: agreement
+    # to 0.03 mag
+    ebv_line, a = reddening_curve(("B", "V"), "ccm89", 3.1)
+    shown = np.interp(fit.ebv, ebv_line, a[:, 0]) - np.interp(fit.ebv, ebv_line, a[:, 1])
+    assert shown == pytest.approx(0.5045, abs=0.03)
     assert "colour_colour_only" in fit.flags and math.isnan(fit.distance_modulus)
 
 
@@ -305,3 +310,107 @@ def test_clusters_package_is_computation_only():
                          cwd=str(Path(pkg.__file__).parents[2]))
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip() == "[]"
+
+
+def test_a_clean_fit_announces_no_assumption_the_user_did_not_make():
+    # a members table with every error column given: nothing was assumed by the user, so no
+    # AssumptionWarning (an R_V no other test uses, so the reddening line is computed afresh)
+    members = simulate_members(40, 0.4, 9.5, bands=("U", "B", "V"), rng=41)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)
+        fit = fit_cluster(members, rv=3.17, evolved_cut=None)
+    assert np.isfinite(fit.ebv)
+
+
+@pytest.mark.parametrize("law, rv", [("ccm89", 3.1), ("odonnell94", 3.1), ("ccm89", 5.0)])
+def test_fitted_ebv_is_the_nominal_one_read_tracers_turns_back_into_av(law, rv):
+    # R_V = A_V / E(B-V) by definition (Savage & Mathis 1979; CCM89), and read_tracers takes
+    # A_V = R_V E(B-V) from a fit's table: the E(B-V) of the reddening line must be A_V / R_V.
+    # The Johnson V passband extinction of a 10 000 K star is within 1.5% of A_V under
+    # CCM89 / O94 (V = 1.000 by definition; the passband widens it by < 1%, from the bands
+    # module's tests against the Johnson V curve), so A_V(V) / E(B-V) = R_V to 1.5%.
+    ebv, a = reddening_curve(("V",), law, rv)
+    for e in (0.3, 1.0, 2.0):
+        assert np.interp(e, ebv, a[:, 0]) / e == pytest.approx(rv, rel=0.015)
+    # and a whole fit, read back: the cluster's A_V is R_V times its E(B-V), reddened by
+    # A_V = 2.0 (invented cluster, U, B, V)
+    members = simulate_members(80, 2.0 / rv, 10.0, bands=("U", "B", "V"), law=law, rv=rv,
+                               magnitude_limit=30, rng=43)
+    fit = _quiet_fit(members, law=law, rv=rv, evolved_cut=None)
+    a_v = np.interp(fit.ebv, ebv, a[:, 0])
+    assert a_v == pytest.approx(2.0, abs=0.08)
+    assert rv * fit.ebv == pytest.approx(a_v, rel=0.015)
+
+
+def test_a_proper_motion_column_is_not_read_as_membership():
+    # Gaia DR3's gaia_source calls the total proper motion 'pm' (mas/yr; Gaia archive
+    # documentation, from memory): values of a few mas/yr are not membership per cent
+    from dustkit.clusters import read_photometry
+
+    members = simulate_members(40, 0.4, 9.5, bands=("U", "B", "V"), rng=44)
+    members["pm"] = np.random.default_rng(1).uniform(0.5, 12.0, len(members))
+    phot, notes = read_photometry(members)
+    assert phot.probability is None and not any("pm" in n for n in notes)
+    # a real membership column is still found
+    members["PMemb"] = np.full(len(members), 0.8)
+    phot, _ = read_photometry(members)
+    assert phot.probability is not None and phot.columns["probability"] == "PMemb"
+
+
+def test_empty_position_cells_do_not_move_the_cluster(tmp_path):
+    # an invented cluster at l = 30, b = 1 whose CSV has three empty l cells: the mean position
+    # is that of the stars with positions, not pulled toward l = 0 by the empty ones
+    members = simulate_members(60, 0.3, 9.5, bands=("U", "B", "V"), rng=31, l=30.0, b=1.0)
+    members["l"] = members["l"].astype(str)
+    members["l"][:3] = ""
+    path = tmp_path / "members.csv"
+    members.write(path, format="ascii.csv")
+    read = Table.read(path, format="ascii.csv")
+    assert np.ma.is_masked(read["l"][0])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegeneracyWarning)
+        table = fit_clusters(read, quiet=True)
+    assert table["l"][0] == pytest.approx(30.0, abs=0.05) and table["b"][0] == pytest.approx(1.0, abs=0.05)
+
+
+def test_a_column_of_star_names_is_not_taken_for_the_cluster(two_clusters):
+    # member lists commonly carry each star's own designation in a 'name' column (common
+    # practice): one value per row names stars, and fitting each star as a cluster of one is wrong
+    alpha = two_clusters[two_clusters["cluster"] == "Alpha"]
+    alpha.remove_column("cluster")
+    alpha["name"] = [f"Invented-{i}" for i in range(len(alpha))]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table = fit_clusters(alpha, quiet=True)
+    assert len(table) == 1 and not str(table["flags"][0]).startswith("failed")
+    assert abs(table["ebv"][0] - 0.3) < 0.03
+    assert any(issubclass(w.category, AssumptionWarning) and "'name'" in str(w.message) for w in caught)
+
+
+def test_rows_without_a_cluster_name_are_counted_not_fitted_as_a_cluster(two_clusters, tmp_path):
+    from dustkit.exceptions import RowsRejectedWarning
+
+    # an invented two-cluster list whose CSV has four empty cluster cells
+    members = two_clusters.copy()
+    members["cluster"] = members["cluster"].astype("U8")
+    members["cluster"][[0, 1, 70, 71]] = ""
+    path = tmp_path / "members.csv"
+    members.write(path, format="ascii.csv")
+    read = Table.read(path, format="ascii.csv")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        table = fit_clusters(read, cluster_column="cluster", quiet=True)
+    assert list(table["name"]) == ["Alpha", "Beta"]
+    assert table.meta["rows_without_cluster"] == 4
+    assert any(issubclass(w.category, RowsRejectedWarning) and "4 of" in str(w.message) and "'cluster'" in str(w.message)
+               for w in caught)
+
+
+def test_a_heavily_reddened_cluster_is_found_beyond_ebv_3():
+    # invented cluster behind A_V = 3.1 * 3.5 = 10.9 mag (common practice: young clusters in the
+    # disc are seen through that much dust, their members measured in V and 2MASS J, H, Ks)
+    members = simulate_members(100, 3.5, 10.0, bands=("V", "J", "H", "Ks"), rng=5, magnitude_limit=26,
+                               absolute_range=(-2.0, 6.0))
+    fit = _quiet_fit(members, evolved_cut=None)
+    assert abs(fit.ebv - 3.5) < 0.05 and abs(fit.distance_modulus - 10.0) < 0.1
+    assert "at_bound" not in fit.flags

@@ -20,7 +20,7 @@ from astropy import units as u
 from astropy.coordinates import SkyCoord
 from astropy.table import Table
 
-from ..exceptions import CatalogError
+from ..exceptions import AssumptionWarning, CatalogError, RowsRejectedWarning
 from .._lib.progress import progress
 from .._lib.validation import param_error
 from .fit import CAUTION, DegeneracyWarning, fit_cluster
@@ -34,6 +34,13 @@ TRACER_COLUMNS = ("name", "l", "b", "ebv", "ebv_err", "mu0", "mu0_err", "distanc
 _CLUSTER_SPELLINGS = ("cluster", "cluster_name", "clustername", "cl", "name", "group")
 
 
+def _degrees(members, column, rows):
+    """Plain float values of rows of a column; NaN where a value is masked (an empty cell of a
+    CSV file), never the masked array's hidden filler, which would pull the mean position."""
+    values = np.ma.filled(np.ma.asarray(members[column], dtype=float), np.nan)
+    return values[rows]
+
+
 def _positions(members, rows, weights):
     """Weighted mean Galactic l, b (deg) of rows; from l/b or ra/dec columns. NaN if none."""
     lower = {}
@@ -44,15 +51,15 @@ def _positions(members, rows, weights):
         lower[c] = c
     for lc, bc in (("glon", "glat"), ("l", "b"), ("lii", "bii")):
         if lc in lower and bc in lower:
-            lon = np.asarray(members[lower[lc]], dtype=float)[rows]
-            lat = np.asarray(members[lower[bc]], dtype=float)[rows]
+            lon = _degrees(members, lower[lc], rows)
+            lat = _degrees(members, lower[bc], rows)
             coord = SkyCoord(lon * u.deg, lat * u.deg, frame="galactic")
             break
     else:
         for rc, dc in (("ra", "dec"), ("raj2000", "dej2000"), ("ra_icrs", "de_icrs"), ("ra", "de")):
             if rc in lower and dc in lower:
-                ra = np.asarray(members[lower[rc]], dtype=float)[rows]
-                de = np.asarray(members[lower[dc]], dtype=float)[rows]
+                ra = _degrees(members, lower[rc], rows)
+                de = _degrees(members, lower[dc], rows)
                 coord = SkyCoord(ra * u.deg, de * u.deg, frame="icrs").galactic
                 break
         else:
@@ -121,6 +128,49 @@ def tracer_table(rows, meta=None):
     return t
 
 
+def _label_text(members, column):
+    """The column as stripped text, and where it is empty (masked cells, blank strings)."""
+    col = members[column]
+    text = np.char.strip(np.asarray(np.ma.getdata(col)).astype(str))
+    empty = np.ma.getmaskarray(col) | (text == "")
+    return text, empty
+
+
+def _cluster_labels(members, cluster_column):
+    """(column, names, labels): each row's index into ``names``, -1 for rows without a name.
+
+    Found columns whose every row holds a different value name stars, not clusters (a
+    ``name`` column of star designations): they are passed over, and the choice announced.
+    Rows with an empty name are left out, counted and announced."""
+    if cluster_column is None:
+        lower = {c.lower(): c for c in members.colnames}
+        for spelling in _CLUSTER_SPELLINGS:
+            if spelling not in lower:
+                continue
+            text, empty = _label_text(members, lower[spelling])
+            filled = text[~empty]
+            if filled.size > 1 and np.unique(filled).size == filled.size:
+                warnings.warn(
+                    f"The column {lower[spelling]!r} has a different value on every row: read as star names, not "
+                    "cluster names. Hint: pass cluster_column=... to name the column that says which cluster "
+                    "each star belongs to.", AssumptionWarning, stacklevel=3)
+                continue
+            cluster_column = lower[spelling]
+            break
+    if cluster_column is None:
+        return None, ["cluster"], np.zeros(len(members), dtype=int)
+    text, empty = _label_text(members, cluster_column)
+    names, labels = np.unique(text[~empty], return_inverse=True)
+    full = np.full(len(members), -1)
+    full[~empty] = labels
+    if empty.any():
+        warnings.warn(
+            f"{int(empty.sum())} of {len(members)} rows have no cluster name in {cluster_column!r} (first at row "
+            f"{int(np.argmax(empty))}) and are left out of every fit. Hint: fill in their cluster, or drop them.",
+            RowsRejectedWarning, stacklevel=3)
+    return cluster_column, [str(n) for n in names], full
+
+
 def fit_clusters(members, cluster_column=None, *, law="ccm89", rv=3.1, quiet=None, return_fits=False, **kwargs):
     """Fit every cluster of a members table; one row per cluster, ready for ``read_tracers``.
 
@@ -131,7 +181,10 @@ def fit_clusters(members, cluster_column=None, *, law="ccm89", rv=3.1, quiet=Non
         (``l``/``b`` or ``ra``/``dec`` in deg) for the tracer table.
     cluster_column : str, optional
         Column naming each star's cluster; found among ``cluster``, ``cluster_name``, ``name``
-        ... when not given. Without one, all rows are one cluster.
+        ... when not given (a found column with a different value on every row names stars and
+        is passed over, with an ``AssumptionWarning``). Without one, all rows are one cluster.
+        Rows whose cluster name is empty are left out, counted in
+        ``table.meta["rows_without_cluster"]`` and announced (``RowsRejectedWarning``).
     law, rv
         Extinction law and R_V (as in :func:`fit_cluster`).
     quiet : bool, optional
@@ -160,22 +213,14 @@ def fit_clusters(members, cluster_column=None, *, law="ccm89", rv=3.1, quiet=Non
             members = Table(members)
         except Exception:
             raise param_error("members", "an astropy Table (or a dict of columns / DataFrame)", type(members).__name__) from None
-    if cluster_column is None:
-        lower = {c.lower(): c for c in members.colnames}
-        cluster_column = next((lower[s] for s in _CLUSTER_SPELLINGS if s in lower), None)
-    elif cluster_column not in members.colnames:
+    if cluster_column is not None and cluster_column not in members.colnames:
         raise CatalogError(f"cluster_column={cluster_column!r} is not a column of the members table. "
                            f"Columns found: {', '.join(members.colnames)}.")
-    if cluster_column is None:
-        labels = np.zeros(len(members), dtype=int)
-        names = ["cluster"]
-    else:
-        raw = np.asarray(members[cluster_column]).astype(str)
-        names, labels = np.unique(raw, return_inverse=True)
-        names = [str(n) for n in names]
     if len(members) == 0:
         raise CatalogError("The members table is empty.")
-    order = np.argsort(labels, kind="stable")
+    cluster_column, names, labels = _cluster_labels(members, cluster_column)
+    n_unnamed = int(np.count_nonzero(labels < 0))
+    order = np.argsort(labels, kind="stable")[n_unnamed:]  # rows without a cluster name sort first
     bounds = np.searchsorted(labels[order], np.arange(len(names) + 1))
     rows_out = []
     fits = {}
@@ -211,5 +256,6 @@ def fit_clusters(members, cluster_column=None, *, law="ccm89", rv=3.1, quiet=Non
         "sequence_version": (any_fit.sequence_version or "") if any_fit else "",
         "caution": CAUTION,
         "notes": {k: v for k, v in notes.items()},
+        "rows_without_cluster": n_unnamed,
     })
     return (t, fits) if return_fits else t

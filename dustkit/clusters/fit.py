@@ -42,7 +42,7 @@ from scipy.special import log_ndtr
 
 from ..exceptions import CatalogError, DustkitWarning
 from .._lib.validation import check_real, param_error
-from ..bands import av_to_band
+from ..bands import av_to_band, av_to_excess
 from ..laws import get_law
 from .members import read_photometry
 from .sequence import MainSequence, default_sequence
@@ -212,7 +212,12 @@ def reddening_curve(bands, law="ccm89", rv=3.1):
     """Extinction in each band as a function of E(B-V), through :func:`dustkit.bands.av_to_band`.
 
     The coefficients are integrated over each band's passband for a star of
-    :data:`SEQUENCE_TEMPERATURE`.
+    :data:`SEQUENCE_TEMPERATURE`. E(B-V) is dustkit's nominal one, A_V / R_V (see
+    :mod:`dustkit.bands.conversions`), so a fitted E(B-V) read back by
+    :func:`dustkit.read_tracers` (A_V = R_V E(B-V)) gives the A_V the fit found. The B-V
+    passband excess of a 10 000 K star is a few per cent smaller (at R_V = 3.1 under
+    CCM89, A_V / (A_B - A_V) is 3.19 at A_V = 1 and 3.39 at A_V = 5): reporting that
+    excess made every A_V downstream that much too small.
 
     Whatever the band coefficients do with the amount of extinction (passband-integrated
     coefficients grow or shrink with A_V), this curve follows, because it is tabulated from
@@ -227,18 +232,20 @@ def reddening_curve(bands, law="ccm89", rv=3.1):
     Returns
     -------
     ebv : ndarray, shape (n,)
-        E(B-V) = A_B - A_V on the grid (mag).
+        Nominal E(B-V) = A_V / R_V on the grid (mag).
     a_band : ndarray, shape (n, n_bands)
         A in each band at those E(B-V) (mag).
     """
     law_obj = get_law(law)
     key = (law_obj.name, float(rv), tuple(bands))
     if key not in _RED_CACHE:
-        av = np.linspace(0.0, 15.0, 301)
-        need = list(dict.fromkeys(list(bands) + ["B", "V"]))
-        a = {b: np.asarray(av_to_band(av, 0.0, b, law_obj, rv, temperature=SEQUENCE_TEMPERATURE)[0], dtype=float)
+        av = np.linspace(0.0, 40.0, 801)  # up to embedded clusters seen in the infrared
+        need = list(dict.fromkeys(bands))
+        # in kelvin, as a Quantity: the bands module announces a bare number as an assumption,
+        # which a user of fit_cluster did not make
+        a = {b: np.asarray(av_to_band(av, 0.0, b, law_obj, rv, temperature=SEQUENCE_TEMPERATURE * u.K)[0], dtype=float)
              for b in need}
-        ebv = a["B"] - a["V"]
+        ebv = np.asarray(av_to_excess(av, 0.0, "B", "V", law_obj, rv)[0], dtype=float)
         table = np.column_stack([a[b] for b in bands]) if bands else np.zeros((av.size, 0))
         # a little room below zero (negative E(B-V) from noise), extrapolated linearly
         slope = (table[1] - table[0]) / (ebv[1] - ebv[0])
@@ -882,11 +889,7 @@ def _optimise(args, colours_only, has_plx, start=None):
         if start is not None:
             ebv_grid = []
             best = (-np.inf, start[0], start[1])
-        for e in ebv_grid:
-            val = coarse.mixture(e, mu_grid, 0.3, 0.0)[0].sum(axis=1)
-            j = int(np.argmax(val))
-            if val[j] > best[0]:
-                best = (val[j], e, mu_grid[j])
+        best = _coarse_search(coarse, ebv_grid, mu_grid, best)
         e0, m0 = best[1], best[2]
         # second, finer pass around the best coarse point
         best = (-np.inf, e0, m0)
@@ -949,9 +952,28 @@ def _optimise(args, colours_only, has_plx, start=None):
     out["cov"] = np.array(cov, dtype=float)
     out["resp"] = resp
     out["model"] = model
-    out["at_bound"] = bool(out["ebv"] <= -0.29 or out["ebv"] >= 4.9)
+    # at the ends of the reddening line the likelihood no longer changes with E(B-V)
+    out["at_bound"] = bool(out["ebv"] <= model.red_ebv[0] + 0.01 or out["ebv"] >= model.red_ebv[-1] - 0.05)
     out["unreliable"] = unreliable
     return out
+
+
+def _coarse_search(coarse, ebv_grid, mu_grid, best):
+    """Best (value, E(B-V), mu0) on the coarse grid; while the best lies at the grid's top
+    (an embedded cluster seen in the infrared), the grid goes on upward to the reddening
+    line's end, 3 mag of E(B-V) at a time."""
+    top = coarse.red_ebv[-1]
+    while len(ebv_grid):
+        for e in ebv_grid:
+            val = coarse.mixture(e, mu_grid, 0.3, 0.0)[0].sum(axis=1)
+            j = int(np.argmax(val))
+            if val[j] > best[0]:
+                best = (val[j], e, mu_grid[j])
+        step = ebv_grid[1] - ebv_grid[0] if len(ebv_grid) > 1 else 0.1
+        if best[1] < ebv_grid[-1] - 2.5 * step or ebv_grid[-1] >= top:
+            break
+        ebv_grid = np.arange(ebv_grid[-1] + step, min(ebv_grid[-1] + 3.0, top) + step / 2, step)
+    return best
 
 
 def _simplex(x0, steps):

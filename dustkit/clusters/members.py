@@ -37,7 +37,9 @@ _MAG_SPELLINGS = {
     "H": ["h", "hmag", "h2mass"],
     "Ks": ["ks", "ksmag", "k", "kmag", "ks2mass"],
 }
-_PROB_SPELLINGS = ["prob", "pmem", "pmemb", "membership", "memberprob", "probability", "p", "proba", "pm"]
+# not "pm": in Gaia catalogues that is the total proper motion (mas/yr), which would be read
+# as a membership in per cent
+_PROB_SPELLINGS = ["prob", "pmem", "pmemb", "membership", "memberprob", "probability", "p", "proba"]
 _PLX_SPELLINGS = ["parallax", "plx", "parallaxmas", "plxmas"]
 _COLOUR = re.compile(r"^\(?\s*([A-Za-z]{1,2})(?:mag)?\s*[-_]\s*([A-Za-z]{1,2})(?:mag)?\s*\)?$")
 
