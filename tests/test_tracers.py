@@ -378,6 +378,43 @@ def test_upper_case_unit_from_fits_file(tmp_path):
     np.testing.assert_allclose(ts.distance_err, np.asarray(_catalogue()["e_Dist"]), rtol=1e-12)
 
 
+def test_upper_case_units_that_mean_something_else_as_written_are_read_as_the_column_needs(tmp_path):
+    # FITS headers written in upper case (common practice in older pipelines): 'PC' parses as a petacoulomb and
+    # 'MAS' must be milliarcseconds; a distance column in 'PC' is parsecs, not a charge to refuse
+    from astropy.io import fits
+
+    cols = [fits.Column(name="GLON", format="D", unit="DEG", array=np.array([30.0, 40.0, 50.0])),
+            fits.Column(name="GLAT", format="D", unit="DEG", array=np.array([1.0, -1.0, 2.0])),
+            fits.Column(name="DIST", format="D", unit="PC", array=np.array([800.0, 1500.0, 2500.0])),
+            fits.Column(name="E_DIST", format="D", unit="PC", array=np.array([80.0, 100.0, 200.0])),
+            fits.Column(name="EBV", format="D", unit="MAG", array=np.array([0.2, 0.4, 0.6]))]
+    path = tmp_path / "upper.fits"
+    fits.BinTableHDU.from_columns(cols).writeto(path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        ts = _quiet(read_tracers, path)
+    np.testing.assert_allclose(ts.distance, [800.0, 1500.0, 2500.0], rtol=1e-12)
+    np.testing.assert_allclose(ts.distance_err, [80.0, 100.0, 200.0], rtol=1e-12)
+    plx = [fits.Column(name="GLON", format="D", array=np.array([30.0, 40.0])),
+           fits.Column(name="GLAT", format="D", array=np.array([1.0, -1.0])),
+           fits.Column(name="PLX", format="D", unit="MAS", array=np.array([1.0, 0.5])),
+           fits.Column(name="E_PLX", format="D", unit="MAS", array=np.array([0.001, 0.001])),
+           fits.Column(name="EBV", format="D", array=np.array([0.2, 0.4]))]
+    fits.BinTableHDU.from_columns(plx).writeto(tmp_path / "plx.fits")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        tp = _quiet(read_tracers, tmp_path / "plx.fits", parallax_err_floor=0.0)
+    # 1 mas and 0.5 mas at 0.1-0.2% precision: 1 and 2 kpc within a fraction of a percent (d = 1 / parallax)
+    np.testing.assert_allclose(tp.distance, [1000.0, 2000.0], rtol=3e-3)
+    # a unit that is neither a length as written nor in lower case is still refused, naming it
+    cols[2] = fits.Column(name="DIST", format="D", unit="C", array=np.array([800.0, 1500.0, 2500.0]))
+    fits.BinTableHDU.from_columns(cols).writeto(tmp_path / "charge.fits")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        with pytest.raises(CatalogError, match=r"'DIST'.*unit 'C'.*not a length"):
+            _quiet(read_tracers, tmp_path / "charge.fits")
+
+
 def test_distance_column_with_magnitude_unit_is_refused_with_hint():
     t = QTable({"l": [1.0], "b": [0.0], "dist": [10.0] * u.mag, "ebv": [0.1]})
     with pytest.raises(CatalogError, match=r"'dist'.*not a length.*distance_modulus"):

@@ -85,7 +85,7 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
         unit_used, how = dunit_arg, "the distance_unit argument"
     elif unit is not None:
         try:
-            unit_used, how = as_unit(unit), "the column's unit"
+            unit_used, how = as_unit(unit, like=u.pc), "the column's unit"
             unit_used.to(u.pc)
         except (ValueError, TypeError, u.UnitsError):
             hint = (
@@ -130,7 +130,7 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
         escale = scale
         if eunit is not None and dunit_arg is None:
             try:
-                escale = as_unit(eunit).to(u.pc)
+                escale = as_unit(eunit, like=u.pc).to(u.pc)
             except (ValueError, TypeError, u.UnitsError):
                 escale = scale
         err = err * escale
@@ -284,7 +284,7 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
     """
     if unit is not None:
         plx = to_unit(vals, unit, u.mas, colname, ctx, "an angle (parallax)")
-        pscale = as_unit(unit).to(u.mas)
+        pscale = as_unit(unit, like=u.mas).to(u.mas)
     else:
         plx, pscale = vals, 1.0
         ctx.note(AssumptionWarning, f"Parallax column {colname!r} has no unit; assuming mas.")
@@ -295,7 +295,7 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
     )
     if ecol is not None and eunit is not None:
         try:
-            pscale = as_unit(eunit).to(u.mas)
+            pscale = as_unit(eunit, like=u.mas).to(u.mas)
         except (ValueError, TypeError, u.UnitsError):
             pass
     zp_text = f" - zero point ({zp:g} mas)" if zp != 0 else ""

@@ -112,7 +112,7 @@ def to_unit(values, unit, target, colname, ctx, what):
     if unit is None:
         return values
     try:
-        unit = as_unit(unit)
+        unit = as_unit(unit, like=target)
         return values * unit.to(target)
     except (ValueError, TypeError, u.UnitsError):
         raise CatalogError(
