@@ -1629,6 +1629,26 @@ def test_right_ascension_within_24_without_a_unit_is_said_to_be_hours_perhaps():
     assert ts3.b[1] == pytest.approx(SkyCoord(ra=20.0 * u.deg, dec=10.0 * u.deg).galactic.b.deg, abs=1e-6)
 
 
+def test_right_ascension_in_hours_of_time_from_a_fits_file_is_hour_angle(tmp_path):
+    # FITS and VOTable files write hours of RA as TUNIT 'h' (common practice; the FITS standard has no hour-angle
+    # unit), which astropy reads as an hour of time. The North Galactic Pole and the Galactic centre (ICRS, see
+    # NGP_RA and GC_RA above) written in such hours are b = 90 deg and (l, b) = (0, 0), for tracers and targets
+    from astropy.io import fits
+
+    cols = [fits.Column(name="RA", format="D", unit="h", array=np.array([NGP_RA, GC_RA]) / 15.0),
+            fits.Column(name="DEC", format="D", unit="deg", array=np.array([NGP_DEC, GC_DEC])),
+            fits.Column(name="dist_pc", format="D", array=np.array([500.0, 800.0])),
+            fits.Column(name="EBV", format="D", array=np.array([0.2, 0.4]))]
+    path = tmp_path / "ra_hours.fits"
+    fits.BinTableHDU.from_columns(cols).writeto(path)
+    ts = _quiet(read_tracers, path)
+    assert ts.b[0] == pytest.approx(90.0, abs=1e-4)
+    assert abs((ts.l[1] + 180.0) % 360.0 - 180.0) < 1e-4 and abs(ts.b[1]) < 1e-4
+    assert any("hour angle" in a for a in ts.meta["assumptions"])
+    tl = _quiet(read_targets, path)
+    np.testing.assert_allclose(tl.b, ts.b, atol=1e-9)
+
+
 def test_target_list_in_kpc_without_a_unit_is_refused_in_words_about_targets():
     # an invented target list with distances 0.8-2.5 (kpc, the common unit of such lists: common practice) and no
     # unit: read as pc the targets would sit at a few pc, so the read stops, speaking of targets (not of tracers
