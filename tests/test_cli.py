@@ -242,6 +242,21 @@ def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):
     assert "statistical" in res.meta["caution"]
 
 
+def test_estimate_output_fed_back_as_targets_keeps_every_earlier_column(built, files, tmp_path, call):
+    # a target list that went through an estimate before (with a model of last year, say) holds 'av' and, the
+    # second time, 'input_av' too: a third estimate must keep both earlier answers under names of their own
+    # instead of stopping, and answer as the first did (same model, same targets)
+    paths = [files / "targets.csv"] + [tmp_path / f"round{k}.ecsv" for k in (1, 2, 3)]
+    for src, dst in zip(paths[:-1], paths[1:]):
+        call("--quiet", "estimate", built[0], src, "-o", dst, check_rc=0)
+    first, third = QTable.read(paths[1]), QTable.read(paths[3])
+    assert third.colnames[:5] == ["target", "ra", "dec", "dist_kpc", "note"]
+    assert {"input_av", "input_av_2", "input_av_err", "input_av_err_2", "av", "av_err"} <= set(third.colnames)
+    ok = np.isfinite(first["av"].to_value(u.mag))
+    for col in ("input_av", "input_av_2", "av"):
+        np.testing.assert_array_equal(third[col].to_value(u.mag)[ok], first["av"].to_value(u.mag)[ok])
+
+
 def test_layer_json_has_the_keys_and_the_api_values(files):
     rc, out, err = run("layer", files / "cat.csv", "--json", "--distance-unit", "kpc")
     assert rc == 0, err

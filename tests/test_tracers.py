@@ -873,6 +873,16 @@ def test_read_targets_keeps_every_row_and_flags_bad_ones():
     assert out["distance"].unit == u.pc and "Vmag" in out.colnames and list(out["valid"]) == [True, False, False, True]
 
 
+def test_target_list_table_keeps_earlier_input_columns_of_the_same_name():
+    # a target table that went through to_table before holds 'distance' and 'input_distance': both are kept
+    t = Table({"l": [30.0, 40.0], "b": [1.0, -1.0], "dist_pc": [800.0, 1500.0],
+               "distance": [0.8, 1.5], "input_distance": [0.7, 1.4]})
+    out = read_targets(t, columns={"distance": "dist_pc"}).to_table()
+    np.testing.assert_array_equal(out["input_distance"], [0.7, 1.4])
+    np.testing.assert_array_equal(out["input_distance_2"], [0.8, 1.5])
+    np.testing.assert_array_equal(out["distance"].to_value(u.pc), [800.0, 1500.0])
+
+
 def test_read_targets_refuses_apparent_modulus():
     t = Table({"l": [1.0], "b": [0.0], "(m-M)V": [11.0]})
     with pytest.raises(CatalogError, match=r"apparent V modulus.*needs the reddening"):
