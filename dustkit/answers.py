@@ -361,7 +361,10 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **r
     ok = np.asarray(targets.valid)
     table = Table(targets.table, copy=True)
     names = estimate_columns(model, bands, samples)
-    for c in names:
+    # the draws are one column here and av_samples_1 .. av_samples_N in CSV (io.write_table): an input holding
+    # either (an earlier estimate's CSV) keeps its columns under names of their own
+    spread = [f"av_samples_{j}" for j in range(1, samples + 1)] if samples else []
+    for c in names + spread:
         if c in table.colnames:
             table.rename_column(c, input_column_name(table.colnames, c))
     n = len(table)
