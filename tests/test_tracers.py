@@ -693,6 +693,29 @@ def test_same_tracers_from_every_file_format(tmp_path, suffix):
     assert suffix in SUFFIX_FORMATS
 
 
+@pytest.mark.parametrize("sep,suffix", [(",", ".csv"), ("\t", ".tsv")])
+def test_text_catalogue_with_comment_lines_reads_its_rows(tmp_path, sep, suffix):
+    # '#' lines above the header (a title, the units) and between rows are comments (common practice for text
+    # tables); they stopped the read ("Number of header columns (1) inconsistent") or became rejected rows. A
+    # CSV header that itself starts with '#' ('#l,b,...', as numpy.savetxt writes it) still names the columns
+    rows = [["10", "1", "1000", "0.3"], ["20", "-2", "2500", "0.6"]]
+    body = [sep.join(r) for r in rows]
+    head = sep.join(["l", "b", "dist_pc", "ebv"])
+    texts = {
+        "above": ["# invented test catalogue", "# distances in pc", head, *body],
+        "between": [head, body[0], "# a note about the next row", body[1]],
+    }
+    if sep == ",":
+        texts["hash header"] = ["#" + head, *body]
+    for case, lines in texts.items():
+        path = tmp_path / f"{case.replace(' ', '_')}{suffix}"
+        path.write_text("\n".join(lines) + "\n")
+        ts = _quiet(read_tracers, path)
+        assert len(ts) == 2 and len(ts.rejected) == 0, case
+        np.testing.assert_allclose(ts.distance, [1000.0, 2500.0], err_msg=case)
+        np.testing.assert_allclose(ts.av, [0.93, 1.86], rtol=1e-12, err_msg=case)  # A_V = 3.1 E(B-V)
+
+
 def test_pandas_dataframe_input():
     pd = pytest.importorskip("pandas")
     t = _catalogue()

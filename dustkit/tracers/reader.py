@@ -330,6 +330,8 @@ def _load(source, fmt=None):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", u.UnitsWarning)
             table = _read_plain_parquet(path) if fmt == "parquet" else None
+            if table is None and fmt in _COMMENTED_FORMATS:
+                table = _read_commented(path, fmt)
             if table is None:
                 table = Table.read(path, format=fmt) if fmt else Table.read(path)
     except Exception as exc:
@@ -352,6 +354,28 @@ def _load(source, fmt=None):
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             sha.update(chunk)
     return table, f"file '{path}'", sha.hexdigest()
+
+
+#: Text formats whose files often start with '#' comment lines (a title, the units, the source), which
+#: astropy's reader of the format takes as the header or as data unless told (its tab-separated and
+#: whitespace readers skip them already).
+_COMMENTED_FORMATS = ("ascii.csv",)
+
+
+def _read_commented(path, fmt):
+    """A CSV file read with whole lines starting with '#' as comments, or None when that
+    reading fails or finds numbers as column names (the header itself starts with '#', as in
+    '#l,b,dist,ebv': the plain reading takes it, as before)."""
+    try:
+        table = Table.read(path, format=fmt, comment=r"\s*#")
+    except Exception:  # the plain reading reports the problem
+        return None
+    for name in table.colnames:
+        try:
+            float(name)
+        except ValueError:
+            return table
+    return None
 
 
 def _read_plain_parquet(path):
