@@ -906,6 +906,23 @@ def test_target_list_table_keeps_earlier_input_columns_of_the_same_name():
     np.testing.assert_array_equal(out["distance"].to_value(u.pc), [800.0, 1500.0])
 
 
+def test_target_parallaxes_too_uncertain_for_one_over_parallax_are_announced():
+    # a target list is read with d = 1000 / parallax, a poor and biased distance once the parallax error exceeds
+    # about 10-20% of the parallax (Bailer-Jones 2015, PASP 127, 994): such rows are counted in a warning naming
+    # the column; precise parallaxes say nothing
+    t = Table({"l": [30.0, 40.0, 50.0], "b": [1.0, -1.0, 0.0], "parallax": [1.0, 0.5, 0.4] * u.mas,
+               "parallax_error": [0.05, 0.4, 0.2] * u.mas})
+    with pytest.warns(AssumptionWarning, match=r"2 of 3 parallaxes in 'parallax' have an error above 20% of the "
+                                               r"parallax.*biased.*Bailer-Jones 2015"):
+        tl = read_targets(t)
+    np.testing.assert_allclose(tl.distance, [1000.0, 2000.0, 2500.0])  # still the distances as given
+    t["parallax_error"] = [0.05, 0.05, 0.04] * u.mas
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        read_targets(t)
+    assert not any("parallaxes in" in str(w.message) for w in record)
+
+
 def test_read_targets_refuses_apparent_modulus():
     t = Table({"l": [1.0], "b": [0.0], "(m-M)V": [11.0]})
     with pytest.raises(CatalogError, match=r"apparent V modulus.*needs the reddening"):

@@ -7,7 +7,7 @@ from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .columns import DISTANCE_LIKE, norm
-from .rules import KPC_HINT_MEDIAN, PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, reason
+from .rules import KPC_HINT_MEDIAN, PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, PARALLAX_WARN_FRAC, reason
 from .values import error_values, numeric, to_unit
 
 __all__ = [
@@ -275,6 +275,23 @@ def _percentiles(mode, w, plx, sig, L, q=(0.16, 0.84)):
     return out
 
 
+def _imprecise_parallaxes(ctx, colname, err, corr):
+    """Announce target parallaxes whose error exceeds ``PARALLAX_WARN_FRAC`` of the parallax: 1000 / parallax,
+    the distance a target list is read with, is then a poor, biased estimate (Bailer-Jones 2015, PASP 127, 994)."""
+    ok = (ctx.rej.code < 0) & (corr > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        loose = ok & (err / corr > PARALLAX_WARN_FRAC)
+    n = int(loose.sum())
+    if n:
+        ctx.note(
+            AssumptionWarning,
+            f"{n} of {int(ok.sum())} parallaxes in {colname!r} have an error above {100 * PARALLAX_WARN_FRAC:g}% of "
+            "the parallax; their distances, 1000 / parallax, are biased and their errors too small to trust "
+            "(Bailer-Jones 2015, PASP 127, 994). Hint: give those targets distances from a prior-based estimate "
+            "(e.g. dustkit.tracers.distances.parallax_posterior) in a distance column.",
+        )
+
+
 def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=PARALLAX_ERR_FLOOR,
                    length_scale=PARALLAX_LENGTH_SCALE, prior=True):
     """Distance and error in pc from a parallax (zero point subtracted) through the distance prior.
@@ -307,6 +324,7 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
             d_err = 1000.0 * err / corr**2
         if zp != 0:
             ctx.assumptions.append(f"parallax zero point {zp:g} mas subtracted before d = 1000 / parallax")
+        _imprecise_parallaxes(ctx, colname, err, corr)
         return d, d_err, d_err, d_err
     missing = np.isnan(err)
     zp_text = f" - zero point ({zp:g} mas)" if zp != 0 else ""

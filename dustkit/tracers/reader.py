@@ -233,7 +233,9 @@ def read_targets(
         Explicit mapping for ``name``, ``l``/``b`` or ``ra``/``dec``, ``distance``,
         ``distance_modulus``, ``parallax`` and their ``_err`` keys.
     distance_unit, parallax_zero_point, reject_limits, format, distance_modulus_kind
-        As for :func:`read_tracers` (only the ``"distance"`` limit applies).
+        As for :func:`read_tracers` (only the ``"distance"`` limit applies). A parallax gives
+        d = 1000 / parallax (zero point subtracted), no prior; parallaxes whose error exceeds
+        ``PARALLAX_WARN_FRAC`` (20%) of the parallax are counted in an ``AssumptionWarning``.
     default_distance_frac_err : float or None
         Fractional distance error assumed where the input gives none. None (the
         default): such distances are taken as exact (``distance_err = 0``), silently,
