@@ -415,6 +415,23 @@ def test_upper_case_units_that_mean_something_else_as_written_are_read_as_the_co
             _quiet(read_tracers, tmp_path / "charge.fits")
 
 
+def test_distance_unit_argument_and_an_error_column_with_its_own_unit():
+    # a table in kpc whose error column is in pc, both with units: distance_unit='kpc' (agreeing with the distance
+    # column) must not read the pc errors as kpc (they came out 1000 times too large)
+    t = QTable({"l": [30.0, 40.0], "b": [1.0, -1.0], "dist": [1.0, 2.0] * u.kpc, "e_dist": [100.0, 150.0] * u.pc,
+                "ebv": [0.2, 0.4]})
+    ts = _quiet(read_tracers, t, distance_unit="kpc")
+    np.testing.assert_allclose(ts.distance, [1000.0, 2000.0])
+    np.testing.assert_allclose(ts.distance_err, [100.0, 150.0])
+    # distance_unit replacing a different unit of the column says so, with both units, and takes the file's units
+    # as wrong for the error column too (values 1 and 2 labelled pc but meant as kpc)
+    t2 = QTable({"l": [30.0, 40.0], "b": [1.0, -1.0], "dist": [1.0, 2.0] * u.pc, "e_dist": [0.1, 0.15] * u.pc,
+                 "ebv": [0.2, 0.4], "e_ebv": [0.02, 0.03]})
+    with pytest.warns(AssumptionWarning, match=r"distance_unit='kpc' replaces the unit 'pc' of column 'dist'"):
+        ts2 = read_tracers(t2, distance_unit="kpc")
+    np.testing.assert_allclose(ts2.distance_err, [100.0, 150.0])
+
+
 def test_distance_column_with_magnitude_unit_is_refused_with_hint():
     t = QTable({"l": [1.0], "b": [0.0], "dist": [10.0] * u.mag, "ebv": [0.1]})
     with pytest.raises(CatalogError, match=r"'dist'.*not a length.*distance_modulus"):

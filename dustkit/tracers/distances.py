@@ -81,6 +81,7 @@ def distances(table, cols, ctx, distance_unit, frac, zp, limits, av, av_err,
 
 def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, frac_desc):
     """Distance and error in pc from a distance column (unit: argument, column, name, or pc assumed)."""
+    overridden = _overrides(dunit_arg, unit, colname, ctx)
     if dunit_arg is not None:
         unit_used, how = dunit_arg, "the distance_unit argument"
     elif unit is not None:
@@ -128,7 +129,9 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
     )
     if ecol is not None:
         escale = scale
-        if eunit is not None and dunit_arg is None:
+        # the error column's own length unit, unless distance_unit corrects the distance column's own unit
+        # (then the file's units are taken as wrong, the error's too)
+        if eunit is not None and not overridden:
             try:
                 escale = as_unit(eunit, like=u.pc).to(u.pc)
             except (ValueError, TypeError, u.UnitsError):
@@ -136,6 +139,23 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
         err = err * escale
     d_err = np.where(np.isnan(err), frac * d, err)
     return d, d_err
+
+
+def _overrides(dunit_arg, unit, colname, ctx):
+    """True when the distance_unit argument replaces a different unit of the distance column (announced, with
+    both units)."""
+    if dunit_arg is None or unit is None:
+        return False
+    try:
+        own = as_unit(unit, like=u.pc)
+        same = abs(own.to(dunit_arg) - 1.0) < 1e-12
+    except (ValueError, TypeError, u.UnitsError):
+        return True  # not a length: the argument is the only unit there is
+    if same:
+        return False
+    ctx.note(AssumptionWarning, f"distance_unit={str(dunit_arg)!r} replaces the unit {str(own)!r} of column "
+             f"{colname!r} (and of its error column): the values are read as {dunit_arg}, not {own}.")
+    return True
 
 
 def _from_modulus(table, cols, ctx, colname, vals, unit, raw, frac, kind, mu_default, av, av_err):
