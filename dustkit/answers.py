@@ -338,12 +338,14 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **r
         (kernel-weighted tracers in front) and ``prior_only`` (support below 0.1), then
         ``av_samples`` and the band columns. Rows that cannot be placed (no usable position or
         distance) keep NaN in the new columns (``prior_only`` masked); input columns with the
-        same names as the new ones are renamed ``input_<name>``. ``meta["caution"]`` carries
+        same names as the new ones are renamed ``input_<name>`` (``input_<name>_2``, ... when the input has
+        such a column already, as an earlier estimate's output does). ``meta["caution"]`` carries
         the caution, ``meta["n_estimated"]`` the number of rows estimated and
         ``meta["rejected_by_reason"]`` the rows left empty by reason (the rows themselves:
         ``TargetList.rejected``).
     """
     from .tracers import TargetList, read_targets
+    from .tracers.sets import input_column_name
 
     model.check_fitted()
     bands = list(dict.fromkeys(bands))
@@ -359,9 +361,12 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **r
     ok = np.asarray(targets.valid)
     table = Table(targets.table, copy=True)
     names = estimate_columns(model, bands, samples)
-    for c in names:
+    # the draws are one column here and av_samples_1 .. av_samples_N in CSV (io.write_table): an input holding
+    # either (an earlier estimate's CSV) keeps its columns under names of their own
+    spread = [f"av_samples_{j}" for j in range(1, samples + 1)] if samples else []
+    for c in names + spread:
         if c in table.colnames:
-            table.rename_column(c, f"input_{c}")
+            table.rename_column(c, input_column_name(table.colnames, c))
     n = len(table)
     values = {c: np.full((n, samples) if c == "av_samples" else n, np.nan) for c in names}
     if ok.any():

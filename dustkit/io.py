@@ -601,8 +601,16 @@ def _flat_for_csv(table):
         col = table[name]
         if col.ndim > 1:
             flat = np.asarray(getattr(col, "value", col)).reshape(len(col), -1)
-            for j in range(flat.shape[1]):
-                plain[f"{name}_{j + 1}"] = flat[:, j]
+            spread = [f"{name}_{j + 1}" for j in range(flat.shape[1])]
+            clash = [c for c in spread if c in table.colnames]
+            if clash:  # one would silently replace the other in the CSV
+                raise DustkitError(
+                    f"Cannot write column {name!r} ({flat.shape[1]} values per row) to CSV as {spread[0]} .. "
+                    f"{spread[-1]}: the table has a column {clash[0]!r} already. Hint: rename that column, or "
+                    "write ECSV or FITS, which keep several values per row in one column."
+                )
+            for c, j in zip(spread, range(flat.shape[1])):
+                plain[c] = flat[:, j]
         else:
             plain[name] = col
     return plain

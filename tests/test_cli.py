@@ -242,6 +242,43 @@ def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):
     assert "statistical" in res.meta["caution"]
 
 
+def test_estimate_output_fed_back_as_targets_keeps_every_earlier_column(built, files, tmp_path, call):
+    # a target list that went through an estimate before (with a model of last year, say) holds 'av' and, the
+    # second time, 'input_av' too: a third estimate must keep both earlier answers under names of their own
+    # instead of stopping, and answer as the first did (same model, same targets)
+    paths = [files / "targets.csv"] + [tmp_path / f"round{k}.ecsv" for k in (1, 2, 3)]
+    for src, dst in zip(paths[:-1], paths[1:]):
+        call("--quiet", "estimate", built[0], src, "-o", dst, check_rc=0)
+    first, third = QTable.read(paths[1]), QTable.read(paths[3])
+    assert third.colnames[:5] == ["target", "ra", "dec", "dist_kpc", "note"]
+    assert {"input_av", "input_av_2", "input_av_err", "input_av_err_2", "av", "av_err"} <= set(third.colnames)
+    ok = np.isfinite(first["av"].to_value(u.mag))
+    for col in ("input_av", "input_av_2", "av"):
+        np.testing.assert_array_equal(third[col].to_value(u.mag)[ok], first["av"].to_value(u.mag)[ok])
+
+
+def test_csv_draws_fed_back_with_draws_keep_both_sets(files, tmp_path, call):
+    # draws go to CSV as av_samples_1 .. av_samples_N; estimating such a file again with --samples used to write
+    # the new draws over the old columns of the same names, one set silently lost. Both sets are kept, the old
+    # ones under input_av_samples_<j>, each equal to what the first run wrote
+    path = tmp_path / "dens.fits"
+    call("--quiet", "build", files / "cat.csv", "-o", path, "--model", "density", "--distance-unit", "kpc", check_rc=0)
+    call("--quiet", "estimate", path, files / "targets.csv", "-o", tmp_path / "one.csv", "--samples", "3", check_rc=0)
+    call("--quiet", "estimate", path, tmp_path / "one.csv", "-o", tmp_path / "two.csv", "--samples", "3", check_rc=0)
+    one, two = Table.read(tmp_path / "one.csv"), Table.read(tmp_path / "two.csv")
+    assert len(two.colnames) == len(set(two.colnames)) == len(one.colnames) + 9  # av, av_err, ..., 3 draws again
+    for j in (1, 2, 3):
+        np.testing.assert_array_equal(two[f"input_av_samples_{j}"], one[f"av_samples_{j}"])
+        assert np.isfinite(np.asarray(two[f"av_samples_{j}"], float)).sum() == 11  # the 11 placed targets
+    # a table whose columns would clash in CSV is refused, naming them, and nothing is written
+    from dustkit.io import write_table
+
+    clash = Table({"x": np.zeros((2, 2)), "x_1": [1.0, 2.0]})
+    with pytest.raises(Exception, match=r"'x'.*x_1 \.\. x_2.*'x_1' already.*ECSV or FITS"):
+        write_table(clash, tmp_path / "clash.csv")
+    assert not (tmp_path / "clash.csv").exists()
+
+
 def test_layer_json_has_the_keys_and_the_api_values(files):
     rc, out, err = run("layer", files / "cat.csv", "--json", "--distance-unit", "kpc")
     assert rc == 0, err

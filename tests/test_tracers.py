@@ -378,6 +378,60 @@ def test_upper_case_unit_from_fits_file(tmp_path):
     np.testing.assert_allclose(ts.distance_err, np.asarray(_catalogue()["e_Dist"]), rtol=1e-12)
 
 
+def test_upper_case_units_that_mean_something_else_as_written_are_read_as_the_column_needs(tmp_path):
+    # FITS headers written in upper case (common practice in older pipelines): 'PC' parses as a petacoulomb and
+    # 'MAS' must be milliarcseconds; a distance column in 'PC' is parsecs, not a charge to refuse
+    from astropy.io import fits
+
+    cols = [fits.Column(name="GLON", format="D", unit="DEG", array=np.array([30.0, 40.0, 50.0])),
+            fits.Column(name="GLAT", format="D", unit="DEG", array=np.array([1.0, -1.0, 2.0])),
+            fits.Column(name="DIST", format="D", unit="PC", array=np.array([800.0, 1500.0, 2500.0])),
+            fits.Column(name="E_DIST", format="D", unit="PC", array=np.array([80.0, 100.0, 200.0])),
+            fits.Column(name="EBV", format="D", unit="MAG", array=np.array([0.2, 0.4, 0.6]))]
+    path = tmp_path / "upper.fits"
+    fits.BinTableHDU.from_columns(cols).writeto(path)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        ts = _quiet(read_tracers, path)
+    np.testing.assert_allclose(ts.distance, [800.0, 1500.0, 2500.0], rtol=1e-12)
+    np.testing.assert_allclose(ts.distance_err, [80.0, 100.0, 200.0], rtol=1e-12)
+    plx = [fits.Column(name="GLON", format="D", array=np.array([30.0, 40.0])),
+           fits.Column(name="GLAT", format="D", array=np.array([1.0, -1.0])),
+           fits.Column(name="PLX", format="D", unit="MAS", array=np.array([1.0, 0.5])),
+           fits.Column(name="E_PLX", format="D", unit="MAS", array=np.array([0.001, 0.001])),
+           fits.Column(name="EBV", format="D", array=np.array([0.2, 0.4]))]
+    fits.BinTableHDU.from_columns(plx).writeto(tmp_path / "plx.fits")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        tp = _quiet(read_tracers, tmp_path / "plx.fits", parallax_err_floor=0.0)
+    # 1 mas and 0.5 mas at 0.1-0.2% precision: 1 and 2 kpc within a fraction of a percent (d = 1 / parallax)
+    np.testing.assert_allclose(tp.distance, [1000.0, 2000.0], rtol=3e-3)
+    # a unit that is neither a length as written nor in lower case is still refused, naming it
+    cols[2] = fits.Column(name="DIST", format="D", unit="C", array=np.array([800.0, 1500.0, 2500.0]))
+    fits.BinTableHDU.from_columns(cols).writeto(tmp_path / "charge.fits")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", u.UnitsWarning)
+        with pytest.raises(CatalogError, match=r"'DIST'.*unit 'C'.*not a length"):
+            _quiet(read_tracers, tmp_path / "charge.fits")
+
+
+def test_distance_unit_argument_and_an_error_column_with_its_own_unit():
+    # a table in kpc whose error column is in pc, both with units: distance_unit='kpc' (agreeing with the distance
+    # column) must not read the pc errors as kpc (they came out 1000 times too large)
+    t = QTable({"l": [30.0, 40.0], "b": [1.0, -1.0], "dist": [1.0, 2.0] * u.kpc, "e_dist": [100.0, 150.0] * u.pc,
+                "ebv": [0.2, 0.4]})
+    ts = _quiet(read_tracers, t, distance_unit="kpc")
+    np.testing.assert_allclose(ts.distance, [1000.0, 2000.0])
+    np.testing.assert_allclose(ts.distance_err, [100.0, 150.0])
+    # distance_unit replacing a different unit of the column says so, with both units, and takes the file's units
+    # as wrong for the error column too (values 1 and 2 labelled pc but meant as kpc)
+    t2 = QTable({"l": [30.0, 40.0], "b": [1.0, -1.0], "dist": [1.0, 2.0] * u.pc, "e_dist": [0.1, 0.15] * u.pc,
+                 "ebv": [0.2, 0.4], "e_ebv": [0.02, 0.03]})
+    with pytest.warns(AssumptionWarning, match=r"distance_unit='kpc' replaces the unit 'pc' of column 'dist'"):
+        ts2 = read_tracers(t2, distance_unit="kpc")
+    np.testing.assert_allclose(ts2.distance_err, [100.0, 150.0])
+
+
 def test_distance_column_with_magnitude_unit_is_refused_with_hint():
     t = QTable({"l": [1.0], "b": [0.0], "dist": [10.0] * u.mag, "ebv": [0.1]})
     with pytest.raises(CatalogError, match=r"'dist'.*not a length.*distance_modulus"):
@@ -656,6 +710,29 @@ def test_same_tracers_from_every_file_format(tmp_path, suffix):
     assert suffix in SUFFIX_FORMATS
 
 
+@pytest.mark.parametrize("sep,suffix", [(",", ".csv"), ("\t", ".tsv")])
+def test_text_catalogue_with_comment_lines_reads_its_rows(tmp_path, sep, suffix):
+    # '#' lines above the header (a title, the units) and between rows are comments (common practice for text
+    # tables); they stopped the read ("Number of header columns (1) inconsistent") or became rejected rows. A
+    # CSV header that itself starts with '#' ('#l,b,...', as numpy.savetxt writes it) still names the columns
+    rows = [["10", "1", "1000", "0.3"], ["20", "-2", "2500", "0.6"]]
+    body = [sep.join(r) for r in rows]
+    head = sep.join(["l", "b", "dist_pc", "ebv"])
+    texts = {
+        "above": ["# invented test catalogue", "# distances in pc", head, *body],
+        "between": [head, body[0], "# a note about the next row", body[1]],
+    }
+    if sep == ",":
+        texts["hash header"] = ["#" + head, *body]
+    for case, lines in texts.items():
+        path = tmp_path / f"{case.replace(' ', '_')}{suffix}"
+        path.write_text("\n".join(lines) + "\n")
+        ts = _quiet(read_tracers, path)
+        assert len(ts) == 2 and len(ts.rejected) == 0, case
+        np.testing.assert_allclose(ts.distance, [1000.0, 2500.0], err_msg=case)
+        np.testing.assert_allclose(ts.av, [0.93, 1.86], rtol=1e-12, err_msg=case)  # A_V = 3.1 E(B-V)
+
+
 def test_pandas_dataframe_input():
     pd = pytest.importorskip("pandas")
     t = _catalogue()
@@ -834,6 +911,33 @@ def test_read_targets_keeps_every_row_and_flags_bad_ones():
     assert tl.table.colnames == t.colnames and len(tl.table) == 4  # input kept as it is
     out = tl.to_table()
     assert out["distance"].unit == u.pc and "Vmag" in out.colnames and list(out["valid"]) == [True, False, False, True]
+
+
+def test_target_list_table_keeps_earlier_input_columns_of_the_same_name():
+    # a target table that went through to_table before holds 'distance' and 'input_distance': both are kept
+    t = Table({"l": [30.0, 40.0], "b": [1.0, -1.0], "dist_pc": [800.0, 1500.0],
+               "distance": [0.8, 1.5], "input_distance": [0.7, 1.4]})
+    out = read_targets(t, columns={"distance": "dist_pc"}).to_table()
+    np.testing.assert_array_equal(out["input_distance"], [0.7, 1.4])
+    np.testing.assert_array_equal(out["input_distance_2"], [0.8, 1.5])
+    np.testing.assert_array_equal(out["distance"].to_value(u.pc), [800.0, 1500.0])
+
+
+def test_target_parallaxes_too_uncertain_for_one_over_parallax_are_announced():
+    # a target list is read with d = 1000 / parallax, a poor and biased distance once the parallax error exceeds
+    # about 10-20% of the parallax (Bailer-Jones 2015, PASP 127, 994): such rows are counted in a warning naming
+    # the column; precise parallaxes say nothing
+    t = Table({"l": [30.0, 40.0, 50.0], "b": [1.0, -1.0, 0.0], "parallax": [1.0, 0.5, 0.4] * u.mas,
+               "parallax_error": [0.05, 0.4, 0.2] * u.mas})
+    with pytest.warns(AssumptionWarning, match=r"2 of 3 parallaxes in 'parallax' have an error above 20% of the "
+                                               r"parallax.*biased.*Bailer-Jones 2015"):
+        tl = read_targets(t)
+    np.testing.assert_allclose(tl.distance, [1000.0, 2000.0, 2500.0])  # still the distances as given
+    t["parallax_error"] = [0.05, 0.05, 0.04] * u.mas
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        read_targets(t)
+    assert not any("parallaxes in" in str(w.message) for w in record)
 
 
 def test_read_targets_refuses_apparent_modulus():
@@ -1590,6 +1694,26 @@ def test_right_ascension_within_24_without_a_unit_is_said_to_be_hours_perhaps():
     assert not any("may be hours" in str(w.message) for w in record)
     assert any("sexagesimal" in str(w.message) for w in record)
     assert ts3.b[1] == pytest.approx(SkyCoord(ra=20.0 * u.deg, dec=10.0 * u.deg).galactic.b.deg, abs=1e-6)
+
+
+def test_right_ascension_in_hours_of_time_from_a_fits_file_is_hour_angle(tmp_path):
+    # FITS and VOTable files write hours of RA as TUNIT 'h' (common practice; the FITS standard has no hour-angle
+    # unit), which astropy reads as an hour of time. The North Galactic Pole and the Galactic centre (ICRS, see
+    # NGP_RA and GC_RA above) written in such hours are b = 90 deg and (l, b) = (0, 0), for tracers and targets
+    from astropy.io import fits
+
+    cols = [fits.Column(name="RA", format="D", unit="h", array=np.array([NGP_RA, GC_RA]) / 15.0),
+            fits.Column(name="DEC", format="D", unit="deg", array=np.array([NGP_DEC, GC_DEC])),
+            fits.Column(name="dist_pc", format="D", array=np.array([500.0, 800.0])),
+            fits.Column(name="EBV", format="D", array=np.array([0.2, 0.4]))]
+    path = tmp_path / "ra_hours.fits"
+    fits.BinTableHDU.from_columns(cols).writeto(path)
+    ts = _quiet(read_tracers, path)
+    assert ts.b[0] == pytest.approx(90.0, abs=1e-4)
+    assert abs((ts.l[1] + 180.0) % 360.0 - 180.0) < 1e-4 and abs(ts.b[1]) < 1e-4
+    assert any("hour angle" in a for a in ts.meta["assumptions"])
+    tl = _quiet(read_targets, path)
+    np.testing.assert_allclose(tl.b, ts.b, atol=1e-9)
 
 
 def test_target_list_in_kpc_without_a_unit_is_refused_in_words_about_targets():

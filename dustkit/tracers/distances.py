@@ -7,7 +7,7 @@ from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .columns import DISTANCE_LIKE, norm
-from .rules import KPC_HINT_MEDIAN, PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, reason
+from .rules import KPC_HINT_MEDIAN, PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, PARALLAX_WARN_FRAC, reason
 from .values import error_values, numeric, to_unit
 
 __all__ = [
@@ -81,11 +81,12 @@ def distances(table, cols, ctx, distance_unit, frac, zp, limits, av, av_err,
 
 def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, frac_desc):
     """Distance and error in pc from a distance column (unit: argument, column, name, or pc assumed)."""
+    overridden = _overrides(dunit_arg, unit, colname, ctx)
     if dunit_arg is not None:
         unit_used, how = dunit_arg, "the distance_unit argument"
     elif unit is not None:
         try:
-            unit_used, how = as_unit(unit), "the column's unit"
+            unit_used, how = as_unit(unit, like=u.pc), "the column's unit"
             unit_used.to(u.pc)
         except (ValueError, TypeError, u.UnitsError):
             hint = (
@@ -128,14 +129,33 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
     )
     if ecol is not None:
         escale = scale
-        if eunit is not None and dunit_arg is None:
+        # the error column's own length unit, unless distance_unit corrects the distance column's own unit
+        # (then the file's units are taken as wrong, the error's too)
+        if eunit is not None and not overridden:
             try:
-                escale = as_unit(eunit).to(u.pc)
+                escale = as_unit(eunit, like=u.pc).to(u.pc)
             except (ValueError, TypeError, u.UnitsError):
                 escale = scale
         err = err * escale
     d_err = np.where(np.isnan(err), frac * d, err)
     return d, d_err
+
+
+def _overrides(dunit_arg, unit, colname, ctx):
+    """True when the distance_unit argument replaces a different unit of the distance column (announced, with
+    both units)."""
+    if dunit_arg is None or unit is None:
+        return False
+    try:
+        own = as_unit(unit, like=u.pc)
+        same = abs(own.to(dunit_arg) - 1.0) < 1e-12
+    except (ValueError, TypeError, u.UnitsError):
+        return True  # not a length: the argument is the only unit there is
+    if same:
+        return False
+    ctx.note(AssumptionWarning, f"distance_unit={str(dunit_arg)!r} replaces the unit {str(own)!r} of column "
+             f"{colname!r} (and of its error column): the values are read as {dunit_arg}, not {own}.")
+    return True
 
 
 def _from_modulus(table, cols, ctx, colname, vals, unit, raw, frac, kind, mu_default, av, av_err):
@@ -275,6 +295,23 @@ def _percentiles(mode, w, plx, sig, L, q=(0.16, 0.84)):
     return out
 
 
+def _imprecise_parallaxes(ctx, colname, err, corr):
+    """Announce target parallaxes whose error exceeds ``PARALLAX_WARN_FRAC`` of the parallax: 1000 / parallax,
+    the distance a target list is read with, is then a poor, biased estimate (Bailer-Jones 2015, PASP 127, 994)."""
+    ok = (ctx.rej.code < 0) & (corr > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        loose = ok & (err / corr > PARALLAX_WARN_FRAC)
+    n = int(loose.sum())
+    if n:
+        ctx.note(
+            AssumptionWarning,
+            f"{n} of {int(ok.sum())} parallaxes in {colname!r} have an error above {100 * PARALLAX_WARN_FRAC:g}% of "
+            "the parallax; their distances, 1000 / parallax, are biased and their errors too small to trust "
+            "(Bailer-Jones 2015, PASP 127, 994). Hint: give those targets distances from a prior-based estimate "
+            "(e.g. dustkit.tracers.distances.parallax_posterior) in a distance column.",
+        )
+
+
 def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=PARALLAX_ERR_FLOOR,
                    length_scale=PARALLAX_LENGTH_SCALE, prior=True):
     """Distance and error in pc from a parallax (zero point subtracted) through the distance prior.
@@ -284,7 +321,7 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
     """
     if unit is not None:
         plx = to_unit(vals, unit, u.mas, colname, ctx, "an angle (parallax)")
-        pscale = as_unit(unit).to(u.mas)
+        pscale = as_unit(unit, like=u.mas).to(u.mas)
     else:
         plx, pscale = vals, 1.0
         ctx.note(AssumptionWarning, f"Parallax column {colname!r} has no unit; assuming mas.")
@@ -295,7 +332,7 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
     )
     if ecol is not None and eunit is not None:
         try:
-            pscale = as_unit(eunit).to(u.mas)
+            pscale = as_unit(eunit, like=u.mas).to(u.mas)
         except (ValueError, TypeError, u.UnitsError):
             pass
     zp_text = f" - zero point ({zp:g} mas)" if zp != 0 else ""
@@ -307,6 +344,7 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
             d_err = 1000.0 * err / corr**2
         if zp != 0:
             ctx.assumptions.append(f"parallax zero point {zp:g} mas subtracted before d = 1000 / parallax")
+        _imprecise_parallaxes(ctx, colname, err, corr)
         return d, d_err, d_err, d_err
     missing = np.isnan(err)
     zp_text = f" - zero point ({zp:g} mas)" if zp != 0 else ""

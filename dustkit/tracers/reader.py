@@ -233,7 +233,9 @@ def read_targets(
         Explicit mapping for ``name``, ``l``/``b`` or ``ra``/``dec``, ``distance``,
         ``distance_modulus``, ``parallax`` and their ``_err`` keys.
     distance_unit, parallax_zero_point, reject_limits, format, distance_modulus_kind
-        As for :func:`read_tracers` (only the ``"distance"`` limit applies).
+        As for :func:`read_tracers` (only the ``"distance"`` limit applies). A parallax gives
+        d = 1000 / parallax (zero point subtracted), no prior; parallaxes whose error exceeds
+        ``PARALLAX_WARN_FRAC`` (20%) of the parallax are counted in an ``AssumptionWarning``.
     default_distance_frac_err : float or None
         Fractional distance error assumed where the input gives none. None (the
         default): such distances are taken as exact (``distance_err = 0``), silently,
@@ -330,6 +332,8 @@ def _load(source, fmt=None):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", u.UnitsWarning)
             table = _read_plain_parquet(path) if fmt == "parquet" else None
+            if table is None and fmt in _COMMENTED_FORMATS:
+                table = _read_commented(path, fmt)
             if table is None:
                 table = Table.read(path, format=fmt) if fmt else Table.read(path)
     except Exception as exc:
@@ -352,6 +356,28 @@ def _load(source, fmt=None):
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             sha.update(chunk)
     return table, f"file '{path}'", sha.hexdigest()
+
+
+#: Text formats whose files often start with '#' comment lines (a title, the units, the source), which
+#: astropy's reader of the format takes as the header or as data unless told (its tab-separated and
+#: whitespace readers skip them already).
+_COMMENTED_FORMATS = ("ascii.csv",)
+
+
+def _read_commented(path, fmt):
+    """A CSV file read with whole lines starting with '#' as comments, or None when that
+    reading fails or finds numbers as column names (the header itself starts with '#', as in
+    '#l,b,dist,ebv': the plain reading takes it, as before)."""
+    try:
+        table = Table.read(path, format=fmt, comment=r"\s*#")
+    except Exception:  # the plain reading reports the problem
+        return None
+    for name in table.colnames:
+        try:
+            float(name)
+        except ValueError:
+            return table
+    return None
 
 
 def _read_plain_parquet(path):

@@ -247,7 +247,7 @@ def _mag_scale(unit, colname, ctx):
     if unit is None:
         return 1.0
     try:
-        unit = as_unit(unit)
+        unit = as_unit(unit, like=u.mag)
     except (ValueError, TypeError):
         return 1.0
     try:

@@ -16,6 +16,7 @@ from .rules import DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, check_law
 __all__ = [
     "TracerSet",
     "TargetList",
+    "input_column_name",
 ]
 
 
@@ -26,6 +27,17 @@ _CAUTION = (
     "Extinction estimates are statistical; check them against local data before "
     "using them for science or instrument time."
 )
+
+
+def input_column_name(colnames, name):
+    """The name an input column called ``name`` takes when an output column of that name is added:
+    ``input_<name>``, or ``input_<name>_2``, ``_3``, ... when the input has such columns already (a table
+    that went through an estimate before holds both ``av`` and ``input_av``)."""
+    taken = set(colnames)
+    new, k = f"input_{name}", 2
+    while new in taken:
+        new, k = f"input_{name}_{k}", k + 1
+    return new
 
 
 def frozen(arr, dtype=float):
@@ -539,7 +551,7 @@ class TargetList:
             ("valid", self.valid, None),
         ):
             if c in t.colnames:
-                t.rename_column(c, f"input_{c}")
+                t.rename_column(c, input_column_name(t.colnames, c))
             t[c] = vals * unit if unit is not None else np.array(vals)
         return t
 

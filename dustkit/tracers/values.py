@@ -112,7 +112,7 @@ def to_unit(values, unit, target, colname, ctx, what):
     if unit is None:
         return values
     try:
-        unit = as_unit(unit)
+        unit = as_unit(unit, like=target)
         return values * unit.to(target)
     except (ValueError, TypeError, u.UnitsError):
         raise CatalogError(
@@ -139,6 +139,7 @@ def positions(table, cols, ctx):
         ra, ru, rraw = numeric(table, rc, ctx, sexagesimal="hour")
         _hours_hint(ra, ru, rc, ctx)
         dec, du, draw = numeric(table, dc, ctx, sexagesimal="deg")
+        ra, ru = _time_as_hour_angle(ra, ru, rc, ctx)
         ra = to_unit(ra, ru, u.deg, rc, ctx, "an angle")
         dec = to_unit(dec, du, u.deg, dc, ctx, "an angle")
         ctx.rej.add(_outside(dec, LATITUDE_RANGE), reason("latitude", dc), dc, draw)
@@ -158,6 +159,21 @@ def positions(table, cols, ctx):
     if l.size:
         l = np.where(l >= 360.0, 0.0, l)
     return l, b, ok
+
+
+def _time_as_hour_angle(ra, unit, colname, ctx):
+    """Right ascensions in a unit of time ('h', as FITS and VOTable files write hours of RA) as hour angle:
+    (values in deg, deg); any other unit is returned as it is."""
+    if unit is None:
+        return ra, unit
+    try:
+        unit = as_unit(unit, like=u.deg)
+    except (ValueError, TypeError):
+        return ra, unit
+    if not unit.is_equivalent(u.h):
+        return ra, unit
+    ctx.assumptions.append(f"right ascension {colname!r} in {unit} of time read as hour angle (1 h = 15 deg)")
+    return ra * unit.to(u.h) * 15.0, u.deg
 
 
 def _hours_hint(ra, unit, colname, ctx):
