@@ -254,6 +254,30 @@ def test_fit_clusters_table_is_read_by_read_tracers(two_clusters, tmp_path):
     np.testing.assert_allclose(np.asarray(by_mu.distance), np.asarray(table["distance_pc"]), rtol=1e-6)
 
 
+def test_a_fit_table_read_under_another_rv_says_so(two_clusters, tmp_path):
+    # A_V = R_V E(B-V) is the definition of R_V (common practice): a table fitted under
+    # R_V = 5 and read under the default 3.1 gives other A_V than the fit found, which the
+    # reader must say; read under the fit's own law and R_V it says nothing of the kind
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DegeneracyWarning)
+        table = fit_clusters(two_clusters, cluster_column="cluster", rv=5.0, quiet=True)
+    path = tmp_path / "fitted.ecsv"
+    table.write(path)
+    for source in (table, path):
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            other = read_tracers(source)
+        said = [str(w.message) for w in seen if issubclass(w.category, AssumptionWarning) and "R_V = 5" in str(w.message)]
+        assert len(said) == 1 and "rv=" in said[0]
+        assert any("R_V = 5" in a for a in other.meta["assumptions"])
+        np.testing.assert_allclose(np.asarray(other.av), 3.1 * np.asarray(table["ebv"]), rtol=1e-3)
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            same = read_tracers(source, law=table.meta["law"], rv=5.0)
+        assert not [w for w in seen if "fitted under" in str(w.message)]
+        np.testing.assert_allclose(np.asarray(same.av), 5.0 * np.asarray(table["ebv"]), rtol=1e-3)
+
+
 def test_cli_fit_clusters_json(two_clusters, tmp_path, capsys):
     from dustkit.cli import main
 

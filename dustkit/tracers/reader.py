@@ -9,7 +9,8 @@ import numpy as np
 from astropy import units as u
 from astropy.table import Table
 
-from ..exceptions import CatalogError, RowsRejectedWarning
+from ..exceptions import AssumptionWarning, CatalogError, RowsRejectedWarning
+from ..laws import get_law
 from .._lib.formats import CATALOGUE_FORMATS, format_for, suffixes
 from .._lib.validation import check_real, param_error
 from .arrow import plain_parquet, read_parquet
@@ -208,8 +209,41 @@ def read_tracers(
         intrinsic_color_bands=intrinsic_color_bands,
         duplicate_separation=duplicate_separation,
     )
+    mismatch = _fitted_under_other_law(table.meta, law, rv)
+    if mismatch:
+        notes.append((AssumptionWarning, mismatch))
+        fields["meta"]["assumptions"] = list(fields["meta"].get("assumptions", [])) + [mismatch]
     emit(notes)
     return TracerSet(**fields)
+
+
+def _fitted_under_other_law(meta, law, rv):
+    """A note when a table of cluster fits says its reddenings were fitted under another law or R_V
+    (:func:`dustkit.clusters.fit_clusters` and the explorer's cluster panel record the law, R_V
+    and the sequence in the table's metadata), else None.
+
+    A fitted E(B-V) depends a little on the law the fit assumed (its band ratios), and its A_V
+    is R_V E(B-V): read under another R_V, the A_V are not those the fit found.
+    """
+    if not meta or "rv" not in meta or "sequence_source" not in meta:  # not a table of cluster fits
+        return None
+    try:
+        meta_rv = float(meta["rv"])
+    except (TypeError, ValueError):
+        return None
+    meta_law = meta.get("law")
+    same_law = True
+    if meta_law is not None:
+        try:
+            same_law = get_law(meta_law).name == get_law(law).name
+        except (KeyError, ValueError, TypeError):
+            same_law = str(meta_law).lower() == str(law).lower()
+    if np.isfinite(meta_rv) and abs(meta_rv - float(rv)) < 1e-9 and same_law:
+        return None
+    fitted = f"law {meta_law!r}, R_V = {meta_rv:g}" if meta_law is not None else f"R_V = {meta_rv:g}"
+    return (f"The catalogue's metadata says its reddenings were fitted under {fitted}; they are read under "
+            f"law {str(getattr(law, 'name', law))!r}, R_V = {float(rv):g}, so their A_V = R_V E(B-V) differ from "
+            f"the fit's. Hint: pass law= and rv= as the fit had them, unless you mean to convert.")
 
 
 def read_targets(
