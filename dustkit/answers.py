@@ -340,7 +340,9 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **r
         distance) keep NaN in the new columns (``prior_only`` masked); input columns with the
         same names as the new ones are renamed ``input_<name>`` (``input_<name>_2``, ... when the input has
         such a column already, as an earlier estimate's output does). ``meta["caution"]`` carries
-        the caution, ``meta["n_estimated"]`` the number of rows estimated and
+        the caution, ``meta["n_estimated"]`` the number of rows estimated,
+        ``meta["n_beyond_grid"]`` those beyond the model's last distance edge (their answers
+        carry the smooth layer on from there, with growing errors; no tracer informs them) and
         ``meta["rejected_by_reason"]`` the rows left empty by reason (the rows themselves:
         ``TargetList.rejected``).
     """
@@ -386,6 +388,8 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, **r
             table[c] = values[c] * u.mag
     table.meta["caution"] = CAUTION
     table.meta["n_estimated"] = int(ok.sum())
+    last = float(model.grid_.distance_edges[-1])
+    table.meta["n_beyond_grid"] = int(np.sum(np.asarray(targets.distance, float)[ok] > last))
     reasons, counts = np.unique(np.asarray(targets.rejected["reason"], dtype=str), return_counts=True)
     table.meta["rejected_by_reason"] = {str(r): int(c) for r, c in zip(reasons, counts)}
     return table

@@ -678,6 +678,7 @@ def _cmd_estimate(args, out):
     rej = targets.rejected
     table.meta.pop("rejected_by_reason")
     n_ok = table.meta.pop("n_estimated")
+    n_far = table.meta.pop("n_beyond_grid")
     path = write_table(table, args.output, overwrite=args.overwrite)
     n = len(table)
     n_bad = n - n_ok
@@ -699,6 +700,11 @@ def _cmd_estimate(args, out):
         if n_prior:
             out.note(f"{n_prior} of {n_ok} targets are answered by the prior alone (prior_only: tracers barely inform "
                      "them; their av_err is the prior's spread). Hint: check them against local data first.")
+    if n_far:
+        out.note(f"{n_far} of {n_ok} targets lie beyond the model's last distance edge "
+                 f"({model.grid_.distance_edges[-1]:g} pc): their answers carry the fitted smooth layer on from "
+                 "there, with growing errors, and no tracer informs them. Hint: build the model with a larger "
+                 "distance_max if the tracers reach that far.")
     return 0
 
 

@@ -234,6 +234,25 @@ def test_estimate_with_a_density_model_says_how_each_answer_is_supported(built, 
     assert rc == 2 and "samples" in one_line_error(err) and not (tmp_path / "x.csv").exists()
 
 
+def test_estimate_says_which_targets_lie_beyond_the_models_last_edge(built, files, tmp_path, call):
+    # no tracer informs an answer past the grid's last edge (the layer carried on): the command
+    # counts such targets, and the Python table says how many in its meta
+    from dustkit.answers import estimate_targets
+
+    last = load_model(built[0]).grid_.distance_edges[-1]
+    tg = Table({"name": ["Near One", "Far One", "Far Two"], "l": [200.0, 200.0, 205.0], "b": [1.0, 1.0, -2.0],
+                "distance": [1000.0, 3 * last, 5 * last]})
+    tg.write(tmp_path / "far.csv", format="ascii.csv")
+    rc, out, err = call("estimate", built[0], tmp_path / "far.csv", "-o", tmp_path / "far_out.csv", check_rc=0)
+    assert f"2 of 3 targets lie beyond the model's last distance edge ({last:g} pc)" in err
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = estimate_targets(load_model(built[0]), tmp_path / "far.csv")
+    assert res.meta["n_beyond_grid"] == 2
+    rc, out, err = call("estimate", built[0], files / "targets.csv", "-o", tmp_path / "near_out.csv", check_rc=0)
+    assert "beyond the model's last distance edge" not in err
+
+
 def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):
     out_path = tmp_path / "est.ecsv"
     call("--quiet", "estimate", built[0], files / "targets.csv", "-o", out_path, check_rc=0)
