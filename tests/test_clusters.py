@@ -278,6 +278,23 @@ def test_a_fit_table_read_under_another_rv_says_so(two_clusters, tmp_path):
         np.testing.assert_allclose(np.asarray(same.av), 5.0 * np.asarray(table["ebv"]), rtol=1e-3)
 
 
+def test_stand_in_errors_and_memberships_are_counted_not_silent():
+    # a star whose magnitude error cell is empty (or 0) gets the stand-in error, and one without a
+    # membership probability even odds: both are assumptions the user must be told of, with how
+    # many stars they touch (dropped or filled rows are counted, common practice)
+    m = simulate_members(60, 0.4, 10.0, bands=("B", "V"), rng=5)
+    m["e_V"][[3, 7, 11]] = np.nan
+    m["e_V"][20] = 0.0
+    m["pmem"] = np.where(np.arange(len(m)) % 10 == 0, np.nan, 0.9)
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        fit = fit_cluster(m)
+    said = [str(w.message) for w in seen if issubclass(w.category, AssumptionWarning)]
+    assert any(f"4 of {len(m)} in 'e_V' (first at row 3)" in s and "0.03 mag assumed" in s for s in said), said
+    n_unknown = int(np.sum(np.arange(len(m)) % 10 == 0))
+    assert any(f"{n_unknown} of {len(m)} stars have no membership probability in 'pmem'" in n for n in fit.notes), fit.notes
+
+
 def test_cli_fit_clusters_json(two_clusters, tmp_path, capsys):
     from dustkit.cli import main
 

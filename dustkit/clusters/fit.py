@@ -721,6 +721,10 @@ def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax
     if probability and phot.probability is not None:
         prior = np.where(np.isfinite(phot.probability), phot.probability, 0.5)
         notes.append(f"membership probabilities from {phot.columns['probability']!r} used as prior odds")
+        n_unknown = int(np.count_nonzero(ok & ~np.isfinite(phot.probability)))
+        if n_unknown:
+            notes.append(f"{n_unknown} of {int(np.count_nonzero(ok))} stars have no membership probability in "
+                         f"{phot.columns['probability']!r}; 0.5 (even odds) assumed for them")
     plx = plx_err = None
     if parallax and phot.parallax is not None and not colours_only:
         if np.any(np.isfinite(phot.parallax) & np.isfinite(phot.parallax_err) & (phot.parallax_err > 0)):

@@ -294,7 +294,7 @@ def read_photometry(members, *, columns=None, default_err=DEFAULT_MAG_ERR):
     values = np.empty((len(members), len(obs)))
     errors = np.empty_like(values)
     colmap = {}
-    missing_err = []
+    missing_err, gaps = [], []
     for k, (name, comb, col) in enumerate(obs):
         for b, c in comb.items():
             coef[k, bands.index(b)] = c
@@ -305,12 +305,21 @@ def read_photometry(members, *, columns=None, default_err=DEFAULT_MAG_ERR):
             bad = np.isfinite(err) & (err < 0)
             if np.any(bad):
                 raise CatalogError(f"The error column {ecol!r} has negative values (first at row {int(np.argmax(bad))}).")
+            filled = np.isfinite(values[:, k]) & ~(np.isfinite(err) & (err > 0))
+            if np.any(filled):
+                gaps.append(f"{int(filled.sum())} of {int(np.isfinite(values[:, k]).sum())} in {ecol!r} "
+                            f"(first at row {int(np.argmax(filled))})")
             errors[:, k] = np.where(np.isfinite(err) & (err > 0), err, default_err)
             colmap[name] = (col, ecol)
         else:
             errors[:, k] = default_err
             missing_err.append(col)
             colmap[name] = (col, None)
+    if gaps:
+        warnings.warn(
+            f"Magnitude errors empty or zero: {'; '.join(gaps)}; {default_err:g} mag assumed for those stars. "
+            "Hint: fill them in, or drop the stars, if that error is not right for them.",
+            AssumptionWarning, stacklevel=3)
     if missing_err:
         warnings.warn(
             f"No error column found for {', '.join(repr(c) for c in missing_err)}; assuming {default_err:g} mag. "
