@@ -146,6 +146,9 @@ def _add_catalogue_options(p):
                         "ebv, av, excess, temperature, intrinsic_color and KEY_err; --column name= reads no names")
     p.add_argument("--distance-unit", metavar="UNIT",
                    help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
+    p.add_argument("--parallax-zero-point", type=float, default=None, metavar="MAS",
+                   help="zero point of a parallax column, mas, subtracted before the parallaxes are used "
+                        "(default 0; that of Gaia (E)DR3 is about -0.02)")
     p.add_argument("--modulus-kind", choices=("true", "apparent"), default=None,
                    help="what a modulus column whose name does not say (dm, distmod, modulus) holds: the true "
                         "modulus mu0 or the apparent V modulus (m-M)_V; without it such a column is refused")
@@ -434,7 +437,16 @@ def _reading_options(args):
         kw["parallax_err_floor"] = args.parallax_floor * u.mas
     if getattr(args, "duplicate_separation", None) is not None:
         kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
+    kw.update(_zero_point(args))
     return kw
+
+
+def _zero_point(args):
+    """``parallax_zero_point`` for a reader when the command was given one."""
+    from astropy import units as u
+
+    zp = getattr(args, "parallax_zero_point", None)
+    return {} if zp is None else {"parallax_zero_point": zp * u.mas}
 
 
 def _read_tracers(args, path, summary_shown=True):
@@ -452,6 +464,7 @@ def _read_tracers(args, path, summary_shown=True):
         kw["source_temperature"] = args.source_temperature * u.K
     if getattr(args, "duplicate_separation", None) is not None:
         kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
+    kw.update(_zero_point(args))
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         tracers = read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,
@@ -671,7 +684,7 @@ def _cmd_estimate(args, out):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
         targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit,
-                               distance_modulus_kind=getattr(args, "modulus_kind", None))
+                               distance_modulus_kind=getattr(args, "modulus_kind", None), **_zero_point(args))
     table = estimate_targets(model, targets, bands=bands, samples=args.samples)
     table.meta["model"] = str(args.model)
     names = estimate_columns(model, bands, args.samples)

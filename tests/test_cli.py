@@ -253,6 +253,30 @@ def test_estimate_says_which_targets_lie_beyond_the_models_last_edge(built, file
     assert "beyond the model's last distance edge" not in err
 
 
+def test_estimate_takes_a_parallax_zero_point(built, tmp_path, call):
+    # a parallax zero point is subtracted before d = 1000 / parallax (the convention of Lindegren
+    # et al. 2021, A&A 649, A4, for Gaia EDR3): a -0.02 mas zero point makes a 0.5 mas parallax
+    # 0.52 mas, i.e. 1923 pc instead of 2000 pc, as the Python reader gives it
+    tg = Table({"name": ["Star One", "Star Two"], "l": [200.0, 205.0], "b": [1.0, -2.0],
+                "parallax": [0.5, 1.0] * u.mas, "parallax_error": [0.02, 0.02] * u.mas})
+    tg.write(tmp_path / "plx.ecsv")
+    call("estimate", built[0], tmp_path / "plx.ecsv", "-o", tmp_path / "plain.ecsv", check_rc=0)
+    call("estimate", built[0], tmp_path / "plx.ecsv", "-o", tmp_path / "zp.ecsv", "--parallax-zero-point", "-0.02",
+         check_rc=0)
+    plain, zp = QTable.read(tmp_path / "plain.ecsv"), QTable.read(tmp_path / "zp.ecsv")
+    from dustkit.answers import estimate_targets
+    from dustkit.tracers import read_targets
+
+    model = load_model(built[0])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        targets = read_targets(tmp_path / "plx.ecsv", parallax_zero_point=-0.02 * u.mas)
+        want = estimate_targets(model, targets)
+    np.testing.assert_allclose(np.asarray(targets.distance), [1000 / 0.52, 1000 / 1.02], rtol=1e-9)
+    np.testing.assert_allclose(zp["av"].to_value(u.mag), u.Quantity(want["av"]).to_value(u.mag), rtol=1e-12)
+    assert np.all(zp["av"] < plain["av"])  # nearer targets, less extinction
+
+
 def test_estimate_ecsv_output_keeps_units(built, files, tmp_path, call):
     out_path = tmp_path / "est.ecsv"
     call("--quiet", "estimate", built[0], files / "targets.csv", "-o", out_path, check_rc=0)
