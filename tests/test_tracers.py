@@ -1728,3 +1728,23 @@ def test_target_list_in_kpc_without_a_unit_is_refused_in_words_about_targets():
     assert "tracer" not in text and "star cluster" not in text and "distance_unit='kpc'" in text
     targets = read_targets(t, distance_unit="kpc")
     np.testing.assert_allclose(targets.distance, [800.0, 1500.0, 2500.0])
+
+
+def test_a_no_value_number_recurring_at_a_columns_edge_is_announced():
+    # catalogues write 99.99 or -999 for "no value" (common practice): read as given, such a number
+    # recurring as a column's smallest or largest value is announced with its count and first row;
+    # the same number once, or inside the column's range, is not
+    base = {"name": [f"Inv {i}" for i in range(6)], "l": [10.0, 20, 30, 40, 50, 60], "b": [0.0, 1, -1, 2, 0, 1],
+            "ebv": [0.3, 0.5, 0.6, 0.2, 0.4, 0.5]}
+
+    def said(distances):
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            tr = read_tracers(Table({**base, "distance": distances}), distance_unit="pc")
+        return tr, [str(w.message) for w in seen if "for 'no value'" in str(w.message)]
+
+    tr, notes = said([1200.0, 99.99, 2300, 99.99, 800, 1500])
+    assert len(notes) == 1 and "2 rows of column 'distance' hold 99.99 (first at row 1)" in notes[0]
+    assert np.sum(np.asarray(tr.distance) == 99.99) == 2  # read as given, not dropped
+    assert said([1200.0, 99.99, 2300, 150.0, 800, 1500])[1] == []
+    assert said([1200.0, 999.0, 2300, 999.0, 800, 1500])[1] == []  # inside the range: a plain distance

@@ -19,6 +19,9 @@ __all__ = [
 
 
 _MISSING_TOKENS = {"", "nan", "--", "null", "none", "na", "n/a", "-", "masked"}
+#: Numbers that catalogues write for "no value" (common practice): read as given, but announced when one
+#: of them recurs at the edge of a column's values.
+_SENTINELS = (99.0, 99.9, 99.99, 999.0, 999.9, 999.99, 9999.0, 99999.0, -99.0, -99.9, -99.99, -999.0, -9999.0)
 
 
 _SEXAGESIMAL = (
@@ -86,7 +89,25 @@ def numeric(table, colname, ctx, *, sexagesimal=None):
     ctx.rej.add(nonnumeric, reason("non_numeric", colname), colname, col)
     ctx.rej.add(infinite, reason("infinite", colname), colname, col)
     values = np.where(np.isfinite(values), values, np.nan)
+    _note_sentinels(values, colname, ctx)
     return values, unit, col
+
+
+def _note_sentinels(values, colname, ctx):
+    """Announce a 'no value' number (99.99, -999, ...) that recurs as a column's largest or smallest value."""
+    fin = values[np.isfinite(values)]
+    if fin.size < 3:
+        return
+    for edge in (fin.max(), fin.min()):
+        if edge not in _SENTINELS:
+            continue
+        n = int(np.count_nonzero(fin == edge))
+        if n >= 2:
+            first = int(np.argmax(values == edge))
+            ctx.note(AssumptionWarning,
+                     f"{n} rows of column {colname!r} hold {edge:g} (first at row {first}), a number catalogues write "
+                     "for 'no value'; they are read as that number. Hint: blank those cells, or pass reject_limits "
+                     "to leave them out, if they mean 'no value'.")
 
 
 def _parse_sexagesimal(strings, hours):
