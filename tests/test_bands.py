@@ -864,3 +864,20 @@ def test_readme_gaia_g_numbers_are_what_the_code_gives():
         assert v[2 + i] == pytest.approx((0.96, 0.67)[i], abs=0.03)
         drop = k_av - a_band_over_av("G", "fitzpatrick99", 3.1, temperature=t, av=3.0 / a0_over_av)
         assert v[4 + i] == pytest.approx(drop, abs=0.006)  # computed: 0.094 and 0.038
+
+
+def test_a_faint_curve_wing_beyond_the_law_does_not_refuse_the_band():
+    # Rieke & Lebofsky 1985 (ApJ 288, 618) Table 3 tabulates B itself (0.44 micron, A/A_V 1.324), yet
+    # the Bessell B passband was refused under it: the curve's zero point at 0.360 micron interpolates
+    # into a wing below the law's 0.365 micron holding 0.04% of the band's photons.
+    k = {t: a_band_over_av("B", "rieke85", 3.09, temperature=t * u.K) for t in (5800, 30000)}
+    assert k[30000] == pytest.approx(1.324, abs=0.01)  # a hot star: close to the table's B (computed 1.327)
+    # and as under CCM89, which covers the whole band (agree within 1.5%, common practice for
+    # two laws that both reproduce the standard optical curve)
+    assert k[5800] == pytest.approx(a_band_over_av("B", "ccm89", 3.1, temperature=5800 * u.K), rel=0.015)
+    assert np.isfinite(band_table("rieke85")["coefficient"][list(band_table("rieke85")["name"]).index("B")])
+    # a band with a real part outside stays refused: Gaia G has 1% of its photons below 0.365 micron
+    with pytest.raises(LawRangeError, match="band 'G'.*rieke85"):
+        a_band_over_av("G", "rieke85", 3.09)
+    with pytest.raises(LawRangeError, match="band 'U'"):
+        a_band_over_av("U", "rieke85", 3.09)
