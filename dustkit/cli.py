@@ -241,6 +241,10 @@ def build_parser():
     p.add_argument("-o", "--output", required=True, metavar="OUT.csv", help="output table (.csv, .ecsv or .fits)")
     p.add_argument("--band", action="append", default=[], metavar="BAND",
                    help="also give A in BAND (repeatable; see 'dustkit bands')")
+    p.add_argument("--temperature", metavar="K|COLUMN",
+                   help="the targets' stars for the --band extinctions (broad bands depend on the star): a "
+                        "temperature in K or a column of TARGETS (default: a column teff, T_eff, logTeff, ... "
+                        "if there is one, else a 5800 K blackbody)")
     p.add_argument("--samples", type=int, default=0, metavar="N",
                    help="also write N posterior draws of A_V per target (3-D density models), each target's "
                         "distance error drawn in: columns av_samples_1 .. av_samples_N in CSV, one (n, N) "
@@ -666,6 +670,7 @@ def _build_out_of_core(args, kw, columns, out):
 
 def _cmd_estimate(args, out):
     import numpy as np
+    from astropy import units as u
 
     from ._lib.formats import check_target, format_for
     from .answers import CAUTION, UNITLESS_COLUMNS, estimate_columns, estimate_targets
@@ -684,8 +689,20 @@ def _cmd_estimate(args, out):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
         targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit,
+<<<<<<< HEAD
                                distance_modulus_kind=getattr(args, "modulus_kind", None), **_zero_point(args))
     table = estimate_targets(model, targets, bands=bands, samples=args.samples)
+=======
+                               distance_modulus_kind=getattr(args, "modulus_kind", None))
+    temperature = args.temperature
+    if temperature is not None:
+        try:
+            temperature = float(temperature) * u.K
+        except ValueError:
+            pass  # a column name
+    table = estimate_targets(model, targets, bands=bands, samples=args.samples, temperature=temperature)
+    band_temperature = table.meta.get("band_temperature")
+>>>>>>> audit-bands
     table.meta["model"] = str(args.model)
     names = estimate_columns(model, bands, args.samples)
     rej = targets.rejected
@@ -708,6 +725,9 @@ def _cmd_estimate(args, out):
     added = ", ".join(c for c in names if c not in unitless) + " in mag"
     added += f"; {', '.join(unitless)}" if unitless else ""
     out(f"Wrote {path} (every input column plus {added})", f"Caution: {CAUTION}")
+    if band_temperature is not None:
+        out.note(f"Band extinctions ({', '.join(bands)}) are for {band_temperature}: a "
+                 "broad band's A/A_V depends on the star (Gaia G by up to 30%). Hint: --temperature K or COLUMN.")
     if "prior_only" in names and n_ok:
         n_prior = int(np.sum(np.asarray(table["prior_only"].filled(False))))
         if n_prior:

@@ -122,3 +122,44 @@ def test_query_band_temperature_as_quantity_is_not_called_unitless(model):
     np.testing.assert_allclose(t["a_Ks"].to_value(u.mag), u.Quantity(ak, u.mag).value, rtol=1e-12)
     # A_Ks/A_V about 0.11-0.12 for CCM89 at R_V = 3.1 (CCM89 Table 3 at 2.2 micron: 0.114, from memory)
     assert np.all(np.abs(t["a_Ks"].to_value(u.mag) / t["av"].to_value(u.mag) - 0.115) < 0.01)
+
+
+def test_estimate_targets_band_extinction_is_for_each_targets_own_star(model):
+    # A broad band's A/A_V depends on the star: Gaia collaboration (Babusiaux et al. 2018, A&A 616, A10;
+    # from memory) give k_G = A_G/A_0 about 0.96 for (BP-RP)_0 = 0 and 0.67 for (BP-RP)_0 = 2.0 at A_0 = 0.3.
+    # estimate_targets gave every target a 5800 K star's A_G, ignoring the targets' own teff column.
+    from dustkit.bands import av_to_band
+
+    t = Table({"name": ["hot", "cool", "nan"], "l": [30.0, 30.0, 30.0] * u.deg, "b": [1.0, 1.0, 1.0] * u.deg,
+               "distance": [1500.0, 1500.0, 1500.0] * u.pc, "teff": [25000.0, 3500.0, np.nan]})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        out = estimate_targets(model, t, bands=("G",))
+    av, ag = _mag(out["av"]), _mag(out["a_G"])
+    k = ag / av
+    assert k[0] - k[1] > 0.2  # hot star ~1.0, cool star ~0.75 (Babusiaux et al. 2018, from memory: 0.96 vs 0.67)
+    for i, temp in enumerate([25000.0, 3500.0, 5800.0]):  # the empty cell: the default 5800 K star
+        want, _ = av_to_band(av[i], 0.0, "G", law=model.law, rv=model.rv, temperature=temp * u.K)
+        assert ag[i] == pytest.approx(float(want), rel=1e-9)
+    assert "'teff'" in out.meta["band_temperature"] and "1 without a usable value" in out.meta["band_temperature"]
+    # one temperature for all, or a column named explicitly, or the default said in meta
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        one = estimate_targets(model, t, bands=("G",), temperature=3500 * u.K)
+        named = estimate_targets(model, t.copy(copy_data=True), bands=("G",), temperature="teff")
+        t.remove_column("teff")
+        plain = estimate_targets(model, t, bands=("G",))
+    assert _mag(one["a_G"])[0] == pytest.approx(ag[1], rel=1e-9)
+    np.testing.assert_array_equal(_mag(named["a_G"]), ag)
+    assert "5800 K" in plain.meta["band_temperature"] and _mag(plain["a_G"])[0] == pytest.approx(ag[2], rel=1e-9)
+
+
+def test_estimate_targets_refuses_an_unknown_temperature_column(model):
+    from dustkit import ParameterError
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(ParameterError, match="column of the targets \\(name, l, b.*Got 'Teff_missing'"):
+            estimate_targets(model, _targets(), bands=("G",), temperature="Teff_missing")
+        with pytest.raises(ParameterError, match="temperature"):
+            estimate_targets(model, _targets(), bands=("G",), temperature=500 * u.K)

@@ -839,3 +839,45 @@ def test_gaia_dr2_bands_are_registered_beside_the_default_dr3_ones():
     for band in ("G", "BP", "RP"):
         dr2, dr3 = a_band_over_av(f"{band}_DR2"), a_band_over_av(band)
         assert dr2 != dr3 and dr2 == pytest.approx(dr3, abs=0.02)
+
+
+def test_readme_gaia_g_numbers_are_what_the_code_gives():
+    # README quoted A_G/A_V = 0.94 and 0.68 under F99, which are A_G/A_0 (A_0 at 550 nm, the Gaia
+    # collaboration's convention; F99's A(550 nm) is 0.98 A_V): a 2-3% mix-up of the two references.
+    # The README's numbers must be the code's; the A_0 ones agree with Babusiaux et al. 2018
+    # (A&A 616, A10, from memory: k_G 0.96 / 0.67 at A_0 = 0.3, tolerance 0.03).
+    import re
+    from pathlib import Path
+
+    text = " ".join((Path(__file__).resolve().parents[1] / "README.md").read_text().split())
+    m = re.search(r"under Fitzpatrick 99, A_G/A_V is ([0-9.]+) for a \(BP-RP\)_0 = 0 star and ([0-9.]+) for "
+                  r"\(BP-RP\)_0 = 2.0 at A_0 = 0.3 \(A_G/A_0, .*?: ([0-9.]+) and ([0-9.]+)\), and at A_0 = 3 it is "
+                  r"([0-9.]+) lower for the first star, ([0-9.]+) for the second", text)
+    assert m, "the README's Gaia G example sentence"
+    v = [float(x) for x in m.groups()]
+    a0_over_av = float(get_law("fitzpatrick99").a_over_av(0.55 * u.micron, 3.1))
+    for i, colour in enumerate((0.0, 2.0)):
+        t = colour_temperature(colour, "BP", "RP")
+        k_av = a_band_over_av("G", "fitzpatrick99", 3.1, temperature=t, av=0.3 / a0_over_av)
+        assert v[i] == pytest.approx(k_av, abs=0.006)
+        assert v[2 + i] == pytest.approx(_k0("G", "fitzpatrick99", colour, 0.3), abs=0.006)
+        assert v[2 + i] == pytest.approx((0.96, 0.67)[i], abs=0.03)
+        drop = k_av - a_band_over_av("G", "fitzpatrick99", 3.1, temperature=t, av=3.0 / a0_over_av)
+        assert v[4 + i] == pytest.approx(drop, abs=0.006)  # computed: 0.094 and 0.038
+
+
+def test_a_faint_curve_wing_beyond_the_law_does_not_refuse_the_band():
+    # Rieke & Lebofsky 1985 (ApJ 288, 618) Table 3 tabulates B itself (0.44 micron, A/A_V 1.324), yet
+    # the Bessell B passband was refused under it: the curve's zero point at 0.360 micron interpolates
+    # into a wing below the law's 0.365 micron holding 0.04% of the band's photons.
+    k = {t: a_band_over_av("B", "rieke85", 3.09, temperature=t * u.K) for t in (5800, 30000)}
+    assert k[30000] == pytest.approx(1.324, abs=0.01)  # a hot star: close to the table's B (computed 1.327)
+    # and as under CCM89, which covers the whole band (agree within 1.5%, common practice for
+    # two laws that both reproduce the standard optical curve)
+    assert k[5800] == pytest.approx(a_band_over_av("B", "ccm89", 3.1, temperature=5800 * u.K), rel=0.015)
+    assert np.isfinite(band_table("rieke85")["coefficient"][list(band_table("rieke85")["name"]).index("B")])
+    # a band with a real part outside stays refused: Gaia G has 1% of its photons below 0.365 micron
+    with pytest.raises(LawRangeError, match="band 'G'.*rieke85"):
+        a_band_over_av("G", "rieke85", 3.09)
+    with pytest.raises(LawRangeError, match="band 'U'"):
+        a_band_over_av("U", "rieke85", 3.09)

@@ -580,3 +580,21 @@ def test_column_name_empty_reads_the_catalogue_without_names():
     assert _columns(["name=", "ebv=EBV"]) == {"name": None, "ebv": "EBV"}
     with pytest.raises(_UsageError, match="--column takes KEY=NAME"):
         _columns(["ebv="])
+
+
+def test_estimate_band_extinction_for_the_targets_star(built, files, tmp_path, call):
+    # --band G was always for a 5800 K star. A hot star's A_G/A_V is larger than a Sun-like one's
+    # (Babusiaux et al. 2018, A&A 616, A10, from memory: k_G 0.96 at (BP-RP)_0 = 0 against 0.83 at 0.82).
+    plain, hot = tmp_path / "plain.csv", tmp_path / "hot.csv"
+    rc, out, err = call("estimate", built[0], files / "targets.csv", "-o", plain, "--band", "G", check_rc=0)
+    assert "5800 K blackbody for every target" in err and "--temperature" in err
+    rc, out, err = call("estimate", built[0], files / "targets.csv", "-o", hot, "--band", "G",
+                        "--temperature", "20000", check_rc=0)
+    assert "20000 K blackbody" in err
+    k_plain, k_hot = (np.asarray(Table.read(p, format="ascii.csv")["a_G"], float) for p in (plain, hot))
+    av = np.asarray(Table.read(plain, format="ascii.csv")["av"], float)
+    ok = np.isfinite(av) & (av > 0)
+    assert np.all(k_hot[ok] / av[ok] - k_plain[ok] / av[ok] > 0.08)
+    rc, out, err = call("estimate", built[0], files / "targets.csv", "-o", tmp_path / "x.csv", "--band", "G",
+                        "--temperature", "no_such_column")
+    assert rc != 0 and "no_such_column" in one_line_error(err)

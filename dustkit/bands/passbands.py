@@ -102,12 +102,27 @@ def _integration_grid(lam_t, thr, n_points):
     return grid, t_grid, quad
 
 
-def _law_on_grid(law, grid, rv, what):
-    """A/A_V on the integration grid; a LawRangeError names the band or curve."""
+# share of a band's photon weight that may lie beyond the law's wavelength range, where the
+# law's value at its edge is used: the zero-throughput end of a tabulated curve interpolates
+# into a faint wing (Bessell B from 0.36 micron against Rieke & Lebofsky's 0.365); the edge
+# value there moves a coefficient by at most this share times the law's spread over the band
+_WING_SHARE = 1e-3
+
+
+def _law_on_grid(law, grid, rv, what, weights=None):
+    """A/A_V on the integration grid; a LawRangeError names the band or curve.
+
+    ``weights`` (normalised photon weights on the grid, one row per source) allow the law's
+    edge value in a faint wing beyond its range: at most :data:`_WING_SHARE` of the weight.
+    """
+    lo, hi = law.wavelength_range.to_value(u.micron)
+    if weights is not None:
+        outside = (grid < lo * (1 - 1e-9)) | (grid > hi * (1 + 1e-9))
+        if np.any(outside) and np.max(np.atleast_2d(weights)[:, outside].sum(axis=1)) <= _WING_SHARE:
+            grid = np.clip(grid, lo, hi)
     try:
         return law.a_over_av(grid * u.micron, rv=rv)
     except LawRangeError as exc:
-        lo, hi = law.wavelength_range.to_value(u.micron)
         covering = [
             name for name, other in _registered_laws().items()
             if other.wavelength_range[0].to_value(u.micron) <= grid[0] * (1 + 1e-9)
@@ -230,7 +245,6 @@ def passband_a_over_av(transmission, law=DEFAULT_LAW, rv=3.1, av=1.0, temperatur
     what = f"band {transmission.name!r}" if isinstance(transmission, Band) else "the passband"
     lam_t, thr = read_transmission(transmission, unit=unit)
     grid, t_grid, quad = _integration_grid(lam_t, thr, n_points)
-    k = _law_on_grid(law, grid, rv, what)
     flux = _source_flambda(grid, temperature, spectrum)
     weight = t_grid * flux * (grid if counting == "photon" else 1.0)
     c = weight * quad
@@ -238,6 +252,7 @@ def passband_a_over_av(transmission, law=DEFAULT_LAW, rv=3.1, av=1.0, temperatur
     if not total > 0:
         raise param_error("transmission", "a passband where the source has flux", "zero integrated flux")
     c = c / total
+    k = _law_on_grid(law, grid, rv, what, c)
 
     avs, _ = mag_input("av", av)
     if not np.all(np.isfinite(avs)):
@@ -317,7 +332,7 @@ def coefficient_table(law, band, rv):
         A_band/A_V at every (A_V, temperature) node; read-only.
     """
     grid, weights = _band_weights(band)
-    k = _law_on_grid(law, grid, rv, f"band {band.name!r}")
+    k = _law_on_grid(law, grid, rv, f"band {band.name!r}", weights)
     table = _passband_ratio(GRID_AV, k, weights)
     table.flags.writeable = False
     return table
