@@ -378,7 +378,6 @@ def target_temperatures(table, temperature=None):
     return st.temperature.to_value(u.K), source
 
 
-
 def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, temperature=None, **read_options):
     """Extinction for a list of targets, keeping every input row and column.
 

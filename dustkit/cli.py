@@ -689,12 +689,8 @@ def _cmd_estimate(args, out):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
         targets = read_targets(args.targets, columns=columns, distance_unit=args.distance_unit,
-<<<<<<< HEAD
                                distance_modulus_kind=getattr(args, "modulus_kind", None), **_zero_point(args))
-    table = estimate_targets(model, targets, bands=bands, samples=args.samples)
-=======
-                               distance_modulus_kind=getattr(args, "modulus_kind", None))
-    temperature = args.temperature
+    temperature = getattr(args, "temperature", None)
     if temperature is not None:
         try:
             temperature = float(temperature) * u.K
@@ -702,7 +698,6 @@ def _cmd_estimate(args, out):
             pass  # a column name
     table = estimate_targets(model, targets, bands=bands, samples=args.samples, temperature=temperature)
     band_temperature = table.meta.get("band_temperature")
->>>>>>> audit-bands
     table.meta["model"] = str(args.model)
     names = estimate_columns(model, bands, args.samples)
     rej = targets.rejected
