@@ -222,6 +222,28 @@ def test_errors_are_shown_and_the_panel_keeps_working(explorer):
     assert "cone radius 1" in explorer.profile_ax.get_title()
 
 
+def test_a_law_the_tracers_cannot_take_leaves_the_controls_on_the_law_shown(catalogue):
+    # the invented region's reddening given as E(BP-RP): a law that does not cover the BP
+    # passband (Rieke & Lebofsky 1985 starts at 0.365 micron) cannot convert it
+    table = catalogue.copy()
+    table.rename_columns(["ebv", "ebv_err"], ["E(BP-RP)", "e_E(BP-RP)"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ex = Explorer(read_tracers(table), figures="static", **FAST)
+    _ok(ex)
+    ex.law_widget.value = "rieke85"
+    assert "dustkit-error" in ex.status._dom_classes and "LawRangeError" in ex.status.value
+    assert ex.model.law == "ccm89"  # the figures still show the old model ...
+    # ... and so do the controls: not a law and a pinned R_V the figures do not show
+    assert ex.law_widget.value == "ccm89"
+    assert not ex.rv_widget.disabled and ex.rv_widget.value == pytest.approx(3.1)
+    assert "still show law ccm89" in ex.status.value
+    assert "ccm89" in ex.profile_ax.get_title()
+    ex.law_widget.value = "gordon23"  # the panel keeps working
+    _ok(ex)
+    assert ex.model.law == "gordon23" and "gordon23" in ex.profile_ax.get_title()
+
+
 @pytest.mark.skipif(not HAS_IO, reason="dustkit.io (export_table) is not available yet")
 def test_export_writes_a_table(explorer, tmp_path):
     explorer.format_widget.value = "csv"

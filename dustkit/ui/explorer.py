@@ -531,6 +531,7 @@ class Explorer:
         if self._syncing:
             return
         self._run(self._apply_law)
+        self._controls_back_to_model()
 
     def _apply_law(self):
         # a fixed-R_V law pins the slider; going back to a free law restores the last free R_V
@@ -542,6 +543,21 @@ class Explorer:
             return
         self._free_rv = float(change["new"])
         self._run(self._rebuild)
+        self._controls_back_to_model()
+
+    def _controls_back_to_model(self):
+        """After a law or R_V the model could not take, show the law and R_V the figures still show."""
+        from ..laws import get_law
+
+        model = self.model
+        if model is None or (self.law_widget.value == model.law and abs(self._current_rv() - float(model.rv)) < 1e-3):
+            return
+        if not get_law(model.law).rv_fixed:
+            self._free_rv = float(model.rv)
+        self._set_law_controls(model.law, float(model.rv))
+        exc = self.last_error
+        kept = f"The figures still show law {model.law}, R_V = {float(model.rv):g}; the controls are set back to them."
+        self._set_status(f"{type(exc).__name__}: {exc} {kept}" if exc is not None else kept, error=True)
 
     def _grid_values(self):
         nside = check_int("nside", int(self.nside_widget.value), 1, 1024)
