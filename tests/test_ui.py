@@ -383,6 +383,28 @@ def test_a_density_model_follows_rv_changes_in_the_explorer(tracers):
     np.testing.assert_allclose(ex.model.av_, model.av_ * 3.5 / model.rv, rtol=1e-12)
 
 
+def test_a_new_distance_step_builds_the_binned_model_on_that_step_from_a_density_model(tracers):
+    from dustkit import ExtinctionModel
+    from dustkit.density import DensityModel
+
+    model = DensityModel(nside=16, distance_max=3000 * u.pc, amplitudes=(0.5,), lengths=[150] * u.pc,
+                         n_samples=16, quiet=True).fit(tracers)
+    ex = Explorer(tracers, model=model, figures="static", n_folds=3, sky_passes=(0,), n_draws=8)
+    first_step = ex.step_widget.value
+    assert first_step != 200.0
+    ex.step_widget.value = 200.0
+    ex.rebuild_button.click()
+    _ok(ex)
+    # the grid asked for, not the density model's own (50 pc steps near the Sun, wider beyond)
+    assert isinstance(ex.model, ExtinctionModel)
+    np.testing.assert_allclose(np.diff(ex.model.grid_.distance_edges), 200.0)
+    assert "in 200 pc steps" in ex.status.value
+    ex.step_widget.value = first_step  # back to the density model's grid: the density model again
+    ex.rebuild_button.click()
+    _ok(ex)
+    assert isinstance(ex.model, DensityModel)
+
+
 def test_without_a_model_the_explorer_opens_on_the_density_model_unless_given_a_grid(tracers):
     from dustkit import ExtinctionModel, build_model
     from dustkit.density import DensityModel

@@ -597,7 +597,9 @@ class Explorer:
             tracers = base if (law == base.law and abs(rv - base.rv) < 1e-9) else base.with_law(law, rv)
             self.progress.value = 1
             dens = self._density_base
-            if dens is not None and nside == dens.grid_.nside and dmax == float(dens.grid_.distance_edges[-1]):
+            # the density model follows a law or R_V on its own grid; another NSIDE, step or
+            # maximum distance asks for the binned model on that grid
+            if dens is not None and np.allclose((nside, step, dmax), self._key_of_model(dens)[2:], rtol=1e-9, atol=0):
                 self._set_status(f"Updating the density model of {len(tracers)} tracers for {law}, R_V = {rv:g} ...")
                 model = dens.with_law(law, rv)
             else:
