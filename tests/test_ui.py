@@ -392,6 +392,11 @@ def test_a_new_distance_step_builds_the_binned_model_on_that_step_from_a_density
     ex = Explorer(tracers, model=model, figures="static", n_folds=3, sky_passes=(0,), n_draws=8)
     first_step = ex.step_widget.value
     assert first_step != 200.0
+    # the status says the bins as they are (they widen with distance), not one step they do not have
+    widths = np.diff(model.grid_.distance_edges)
+    assert widths.min() < widths.max()
+    assert f"{widths.size} bins {widths.min():.0f}-{widths.max():.0f} pc wide" in ex.status.value
+    assert f"{first_step:g} pc steps" not in ex.status.value
     ex.step_widget.value = 200.0
     ex.rebuild_button.click()
     _ok(ex)

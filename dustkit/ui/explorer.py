@@ -640,9 +640,12 @@ class Explorer:
         self.progress.bar_style = "success"
         g = self.model.grid_
         took = "" if time_s is None else f" in {time_s:.1f} s"
+        widths = np.diff(g.distance_edges)
+        bins = (f"in {step:g} pc steps" if np.ptp(widths) <= 1e-6 * widths.max()  # a density model's bins widen
+                else f"in {widths.size} bins {widths.min():.0f}-{widths.max():.0f} pc wide")
         self._set_status(
             f"Model {how}{took}: {len(self.tracers)} tracers, law {self.model.law}, R_V = {self.model.rv:g}, "
-            f"NSIDE {g.nside}, 0-{g.distance_edges[-1]:g} pc in {step:g} pc steps."
+            f"NSIDE {g.nside}, 0-{g.distance_edges[-1]:g} pc {bins}."
         )
 
     # ------------------------------------------------------------------ drawing
