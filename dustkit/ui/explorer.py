@@ -50,6 +50,7 @@ from .. import plotting
 from ..exceptions import ModelNotFittedError
 from .._lib.formats import TABLE_FORMATS
 from .._lib.validation import check_choice, check_int, param_error, to_value
+from ..laws import get_law
 from ..layer import given_layer
 from ..model import CAUTION, DENSITY_LIMIT, ExtinctionModel
 from .feature_table import feature_table_html
@@ -363,7 +364,6 @@ class Explorer:
         self.profile_ax = None
         self._click_id = self.sky_fig.canvas.mpl_connect("button_press_event", self._on_sky_click)
 
-
     def _connect(self, base):
         """Wire the widgets to their callbacks (each runs inside the log Output area)."""
         self.law_widget.observe(self._on_law, "value")
@@ -466,8 +466,6 @@ class Explorer:
 
     # ------------------------------------------------------------------ law and model
     def _set_law_controls(self, law_name, rv):
-        from ..laws import get_law
-
         law = get_law(law_name)
         lo, hi = (float(v) for v in law.rv_range)
         self._syncing = True
@@ -547,8 +545,6 @@ class Explorer:
 
     def _controls_back_to_model(self):
         """After a law or R_V the model could not take, show the law and R_V the figures still show."""
-        from ..laws import get_law
-
         model = self.model
         if model is None or (self.law_widget.value == model.law and abs(self._current_rv() - float(model.rv)) < 1e-3):
             return
@@ -568,8 +564,6 @@ class Explorer:
         return nside, step, dmax
 
     def _current_rv(self):
-        from ..laws import get_law
-
         law = get_law(self.law_widget.value)
         return float(law.rv_range[0]) if law.rv_fixed else round(float(self.rv_widget.value), 4)
 
