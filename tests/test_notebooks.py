@@ -7,6 +7,7 @@ paths, and must write nothing into the repository. Files they write go to
 ``DUSTKIT_OUTPUT``, which the tests point at a temporary folder.
 """
 
+import json
 import re
 import shutil
 import struct
@@ -24,14 +25,18 @@ NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
 NAMES = ("explore_region.ipynb", "reddening_vs_distance.ipynb", "build_and_export.ipynb", "members_to_map.ipynb")
 
 
-def _execute(name, tmp_path, monkeypatch):
-    """Run notebook ``name`` in a fresh temporary working folder; return (notebook, output folder)."""
+def _execute(name, tmp_path, monkeypatch, extra_cells=()):
+    """Run notebook ``name`` in a fresh temporary working folder; return (notebook, output folder).
+
+    ``extra_cells`` (code) run after the notebook's own cells, in its kernel, to look at what it drew.
+    """
     work = tmp_path / "work"
     out = tmp_path / "out"
     work.mkdir()
     shutil.copy(NOTEBOOKS / name, work / name)
     monkeypatch.setenv("DUSTKIT_OUTPUT", str(out))
     nb = nbformat.read(work / name, as_version=4)
+    nb.cells.extend(nbformat.v4.new_code_cell(code) for code in extra_cells)
     client = nbclient.NotebookClient(nb, timeout=300, kernel_name="python3",
                                      resources={"metadata": {"path": str(work)}})
     client.execute()  # raises CellExecutionError, with the cell and traceback, on any error
@@ -162,8 +167,18 @@ def test_build_and_export_notebook(tmp_path, monkeypatch, jupyter_env):
     assert re.search(r"median \|model - truth\| = [\d.]+ mag; \d+% of targets within 1 sigma", _stdout(nb))
 
 
+# after the notebook: where the fitted cluster's marker sits on the profile figure of section 4
+_CLUSTER_MARKER = """
+import json as _json
+_marker = ax.containers[-1].lines[0]  # the last error bar drawn: the cluster of the main-sequence fit
+print("MARKER", _json.dumps({"x": float(_marker.get_xdata()[0]), "y": float(_marker.get_ydata()[0]),
+                             "xlim": [float(v) for v in ax.get_xlim()], "xlabel": ax.get_xlabel(),
+                             "distance_pc": float(row["distance_pc"]), "av": float(model.rv * row["ebv"])}))
+"""
+
+
 def test_members_to_map_notebook(tmp_path, monkeypatch, jupyter_env):
-    nb, out = _execute("members_to_map.ipynb", tmp_path, monkeypatch)
+    nb, out = _execute("members_to_map.ipynb", tmp_path, monkeypatch, extra_cells=[_CLUSTER_MARKER])
     text = _stdout(nb)
     # the six invented clusters are fitted, compared with their invented truth, and joined to a model
     assert text.count("(truth") >= 12 and "Veyra Lantern" in text
@@ -171,3 +186,10 @@ def test_members_to_map_notebook(tmp_path, monkeypatch, jupyter_env):
     fits = Table.read(out / "member_fits.ecsv")
     assert len(fits) == 6 and {"mu0", "mu0_err", "ebv_mu0_corr", "distance_pc"} <= set(fits.colnames)
     assert "model at the cluster: A_V" in text
+    # the cluster is drawn where it is, in the unit of the profile's distance axis, inside the axes
+    # (it was once drawn at its distance in pc on an axis in kpc: far off the figure)
+    marker = json.loads(re.search(r"^MARKER (.*)$", text, re.M).group(1))
+    unit = re.search(r"\[(pc|kpc)\]", marker["xlabel"]).group(1)
+    assert marker["x"] == pytest.approx(marker["distance_pc"] / (1000.0 if unit == "kpc" else 1.0))
+    assert marker["xlim"][0] <= marker["x"] <= marker["xlim"][1]
+    assert marker["y"] == pytest.approx(marker["av"])

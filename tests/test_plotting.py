@@ -141,6 +141,22 @@ def test_profile_band_uses_the_models_law(model):
     assert "J" in ax.get_ylabel() and "[mag]" in ax.get_ylabel()
 
 
+@pytest.mark.parametrize("band", ["g_PS1", "BP_DR2"])
+def test_profile_axis_label_shows_a_band_name_with_an_underscore_as_written(model, band):
+    from matplotlib.mathtext import MathTextParser
+
+    ax = plotting.plot_profile(model, 32, 1, band=band)
+    label = ax.get_ylabel()
+    assert label.endswith(" [mag]")
+    # what a reader sees: 'A' and, one subscript level down, the band's name letter by letter
+    # (an unescaped '_' made the rest of the name a subscript of a subscript: 'g' then 'P' smaller)
+    glyphs = MathTextParser("path").parse(label[: -len(" [mag]")]).glyphs
+    chars = "".join(chr(g[2]) for g in glyphs)
+    sizes = {round(g[1], 3) for g in glyphs[1:]}
+    assert chars == "A" + band
+    assert len(sizes) == 1 and sizes.pop() < glyphs[0][1]
+
+
 def test_profile_distance_axis_in_pc_on_request(model):
     ax = plotting.plot_profile(model, 32, 1, distance_unit="pc")
     assert ax.get_xlabel() == "Distance [pc]"

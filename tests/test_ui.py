@@ -222,6 +222,28 @@ def test_errors_are_shown_and_the_panel_keeps_working(explorer):
     assert "cone radius 1" in explorer.profile_ax.get_title()
 
 
+def test_a_law_the_tracers_cannot_take_leaves_the_controls_on_the_law_shown(catalogue):
+    # the invented region's reddening given as E(BP-RP): a law that does not cover the BP
+    # passband (Rieke & Lebofsky 1985 starts at 0.365 micron) cannot convert it
+    table = catalogue.copy()
+    table.rename_columns(["ebv", "ebv_err"], ["E(BP-RP)", "e_E(BP-RP)"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ex = Explorer(read_tracers(table), figures="static", **FAST)
+    _ok(ex)
+    ex.law_widget.value = "rieke85"
+    assert "dustkit-error" in ex.status._dom_classes and "LawRangeError" in ex.status.value
+    assert ex.model.law == "ccm89"  # the figures still show the old model ...
+    # ... and so do the controls: not a law and a pinned R_V the figures do not show
+    assert ex.law_widget.value == "ccm89"
+    assert not ex.rv_widget.disabled and ex.rv_widget.value == pytest.approx(3.1)
+    assert "still show law ccm89" in ex.status.value
+    assert "ccm89" in ex.profile_ax.get_title()
+    ex.law_widget.value = "gordon23"  # the panel keeps working
+    _ok(ex)
+    assert ex.model.law == "gordon23" and "gordon23" in ex.profile_ax.get_title()
+
+
 @pytest.mark.skipif(not HAS_IO, reason="dustkit.io (export_table) is not available yet")
 def test_export_writes_a_table(explorer, tmp_path):
     explorer.format_widget.value = "csv"
@@ -359,6 +381,33 @@ def test_a_density_model_follows_rv_changes_in_the_explorer(tracers):
     assert ex.model.how_.startswith("rescaled exactly")  # E(B-V) tracers: A_V = R_V E(B-V)
     assert "rescaled exactly" in ex.status.value
     np.testing.assert_allclose(ex.model.av_, model.av_ * 3.5 / model.rv, rtol=1e-12)
+
+
+def test_a_new_distance_step_builds_the_binned_model_on_that_step_from_a_density_model(tracers):
+    from dustkit import ExtinctionModel
+    from dustkit.density import DensityModel
+
+    model = DensityModel(nside=16, distance_max=3000 * u.pc, amplitudes=(0.5,), lengths=[150] * u.pc,
+                         n_samples=16, quiet=True).fit(tracers)
+    ex = Explorer(tracers, model=model, figures="static", n_folds=3, sky_passes=(0,), n_draws=8)
+    first_step = ex.step_widget.value
+    assert first_step != 200.0
+    # the status says the bins as they are (they widen with distance), not one step they do not have
+    widths = np.diff(model.grid_.distance_edges)
+    assert widths.min() < widths.max()
+    assert f"{widths.size} bins {widths.min():.0f}-{widths.max():.0f} pc wide" in ex.status.value
+    assert f"{first_step:g} pc steps" not in ex.status.value
+    ex.step_widget.value = 200.0
+    ex.rebuild_button.click()
+    _ok(ex)
+    # the grid asked for, not the density model's own (50 pc steps near the Sun, wider beyond)
+    assert isinstance(ex.model, ExtinctionModel)
+    np.testing.assert_allclose(np.diff(ex.model.grid_.distance_edges), 200.0)
+    assert "in 200 pc steps" in ex.status.value
+    ex.step_widget.value = first_step  # back to the density model's grid: the density model again
+    ex.rebuild_button.click()
+    _ok(ex)
+    assert isinstance(ex.model, DensityModel)
 
 
 def test_without_a_model_the_explorer_opens_on_the_density_model_unless_given_a_grid(tracers):

@@ -106,7 +106,9 @@ def quantity_label(quantity="av", band=None):
         return r"$A_V$ [mag]"
     if quantity == "ebv":
         return r"$E(B-V)$ [mag]"
-    return rf"$A_{{\mathrm{{{_band_name(band)}}}}}$ [mag]"
+    # a band's name is text: '_' (g_PS1, BP_DR2) would otherwise start a subscript in mathtext
+    name = _band_name(band).replace("_", r"\_")
+    return rf"$A_{{\mathrm{{{name}}}}}$ [mag]"
 
 
 def _band_name(band):

@@ -50,6 +50,7 @@ from .. import plotting
 from ..exceptions import ModelNotFittedError
 from .._lib.formats import TABLE_FORMATS
 from .._lib.validation import check_choice, check_int, param_error, to_value
+from ..laws import get_law
 from ..layer import given_layer
 from ..model import CAUTION, DENSITY_LIMIT, ExtinctionModel
 from .feature_table import feature_table_html
@@ -363,7 +364,6 @@ class Explorer:
         self.profile_ax = None
         self._click_id = self.sky_fig.canvas.mpl_connect("button_press_event", self._on_sky_click)
 
-
     def _connect(self, base):
         """Wire the widgets to their callbacks (each runs inside the log Output area)."""
         self.law_widget.observe(self._on_law, "value")
@@ -466,8 +466,6 @@ class Explorer:
 
     # ------------------------------------------------------------------ law and model
     def _set_law_controls(self, law_name, rv):
-        from ..laws import get_law
-
         law = get_law(law_name)
         lo, hi = (float(v) for v in law.rv_range)
         self._syncing = True
@@ -531,6 +529,7 @@ class Explorer:
         if self._syncing:
             return
         self._run(self._apply_law)
+        self._controls_back_to_model()
 
     def _apply_law(self):
         # a fixed-R_V law pins the slider; going back to a free law restores the last free R_V
@@ -542,6 +541,19 @@ class Explorer:
             return
         self._free_rv = float(change["new"])
         self._run(self._rebuild)
+        self._controls_back_to_model()
+
+    def _controls_back_to_model(self):
+        """After a law or R_V the model could not take, show the law and R_V the figures still show."""
+        model = self.model
+        if model is None or (self.law_widget.value == model.law and abs(self._current_rv() - float(model.rv)) < 1e-3):
+            return
+        if not get_law(model.law).rv_fixed:
+            self._free_rv = float(model.rv)
+        self._set_law_controls(model.law, float(model.rv))
+        exc = self.last_error
+        kept = f"The figures still show law {model.law}, R_V = {float(model.rv):g}; the controls are set back to them."
+        self._set_status(f"{type(exc).__name__}: {exc} {kept}" if exc is not None else kept, error=True)
 
     def _grid_values(self):
         nside = check_int("nside", int(self.nside_widget.value), 1, 1024)
@@ -552,8 +564,6 @@ class Explorer:
         return nside, step, dmax
 
     def _current_rv(self):
-        from ..laws import get_law
-
         law = get_law(self.law_widget.value)
         return float(law.rv_range[0]) if law.rv_fixed else round(float(self.rv_widget.value), 4)
 
@@ -581,7 +591,9 @@ class Explorer:
             tracers = base if (law == base.law and abs(rv - base.rv) < 1e-9) else base.with_law(law, rv)
             self.progress.value = 1
             dens = self._density_base
-            if dens is not None and nside == dens.grid_.nside and dmax == float(dens.grid_.distance_edges[-1]):
+            # the density model follows a law or R_V on its own grid; another NSIDE, step or
+            # maximum distance asks for the binned model on that grid
+            if dens is not None and np.allclose((nside, step, dmax), self._key_of_model(dens)[2:], rtol=1e-9, atol=0):
                 self._set_status(f"Updating the density model of {len(tracers)} tracers for {law}, R_V = {rv:g} ...")
                 model = dens.with_law(law, rv)
             else:
@@ -622,9 +634,12 @@ class Explorer:
         self.progress.bar_style = "success"
         g = self.model.grid_
         took = "" if time_s is None else f" in {time_s:.1f} s"
+        widths = np.diff(g.distance_edges)
+        bins = (f"in {step:g} pc steps" if np.ptp(widths) <= 1e-6 * widths.max()  # a density model's bins widen
+                else f"in {widths.size} bins {widths.min():.0f}-{widths.max():.0f} pc wide")
         self._set_status(
             f"Model {how}{took}: {len(self.tracers)} tracers, law {self.model.law}, R_V = {self.model.rv:g}, "
-            f"NSIDE {g.nside}, 0-{g.distance_edges[-1]:g} pc in {step:g} pc steps."
+            f"NSIDE {g.nside}, 0-{g.distance_edges[-1]:g} pc {bins}."
         )
 
     # ------------------------------------------------------------------ drawing
