@@ -881,3 +881,12 @@ def test_a_faint_curve_wing_beyond_the_law_does_not_refuse_the_band():
         a_band_over_av("G", "rieke85", 3.09)
     with pytest.raises(LawRangeError, match="band 'U'"):
         a_band_over_av("U", "rieke85", 3.09)
+
+
+def test_a_colour_given_red_band_first_is_refused_not_turned_into_negative_av():
+    # a colour excess is E(bluer - redder), positive for reddening (common practice): with the
+    # bands swapped every A_V would come out negative (it did: E = 0.5 gave A_V = -1.12)
+    with pytest.raises(ParameterError, match=r"'RP' is redder than 'BP'.*blue='BP', red='RP'"):
+        excess_to_av(0.5, 0.05, "RP", "BP")
+    av, _ = excess_to_av(0.5, 0.05, "BP", "RP")
+    assert av > 0

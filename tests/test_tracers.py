@@ -1748,3 +1748,18 @@ def test_a_no_value_number_recurring_at_a_columns_edge_is_announced():
     assert np.sum(np.asarray(tr.distance) == 99.99) == 2  # read as given, not dropped
     assert said([1200.0, 99.99, 2300, 150.0, 800, 1500])[1] == []
     assert said([1200.0, 999.0, 2300, 999.0, 800, 1500])[1] == []  # inside the range: a plain distance
+
+
+def test_an_excess_column_named_red_band_first_is_refused_with_the_fix():
+    # E(RP-BP) is negative for any dust (common practice: excesses are bluer minus redder band):
+    # read as given, every A_V would be negative; the reader names the column and the fix, and
+    # the fix gives the A_V of E(BP-RP)
+    t = Table({"name": ["Inv A", "Inv B", "Inv C"], "l": [10.0, 20, 30], "b": [0.0, 1, -1],
+               "distance": [1200.0, 800, 2300] * u.pc, "E(RP-BP)": [0.4, 0.5, 0.6]})
+    with pytest.raises(CatalogError, match=r"Column 'E\(RP-BP\)'.*excess_color=\('BP', 'RP'\)"):
+        _quiet(read_tracers, t)
+    from dustkit.bands import excess_to_av
+
+    fixed = _quiet(read_tracers, t, excess_color=("BP", "RP"))
+    want, _ = excess_to_av(np.array([0.4, 0.5, 0.6]), None, "BP", "RP")
+    np.testing.assert_allclose(np.asarray(fixed.av), want, rtol=1e-9)

@@ -459,6 +459,11 @@ def excess_to_av(excess, excess_err, blue, red, law=DEFAULT_LAW, rv=3.1, rv_err=
         raise param_error(
             "blue", f"a band at another wavelength than red ({red!r}): the colour has no excess", blue
         )
+    if np.all(d0 < 0):  # dust dims the 'red' band more: the colour is written red minus blue
+        raise param_error(
+            "blue", f"the bluer band of the colour: {blue!r} is redder than {red!r}, so E({blue}-{red}) is negative "
+            f"for any dust and every A_V would come out negative. Hint: pass blue={red!r}, red={blue!r}", blue
+        )
     a = e_f / d0
     # Newton's method on E(A) = A d(A); d varies by a few per cent over many mag,
     # so three or four steps reach rounding level

@@ -5,7 +5,7 @@ import re
 import numpy as np
 from astropy import units as u
 
-from ..exceptions import AssumptionWarning, CatalogError
+from ..exceptions import AssumptionWarning, CatalogError, ParameterError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .context import Context
@@ -296,7 +296,16 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     ctx.temperature = temps
     t_ref = None if temps is None else float(temperature_input(source_temperature, DEFAULT_TEMPERATURE))
     # A_V per unit of excess (for the default source), for the default error and the limits
-    per_unit, _ = reddening_to_av(kind, color, np.ones(1), np.zeros(1), law, rv, temperature=t_ref)
+    try:
+        per_unit, _ = reddening_to_av(kind, color, np.ones(1), np.zeros(1), law, rv, temperature=t_ref)
+    except ParameterError as exc:
+        if "is redder than" not in str(exc):
+            raise
+        raise CatalogError(
+            f"Column {colname!r} holds {kind}, but {color[0]} is the redder band of the two: such an excess is "
+            f"negative for any dust, and read as given every A_V would be negative. Hint: if the values are "
+            f"E({color[1]}-{color[0]}) (positive for reddening), pass excess_color=({color[1]!r}, {color[0]!r})."
+        ) from None
     k = float(per_unit[0])
     if not np.isfinite(k) or k <= 0:
         raise CatalogError(f"The {kind} -> A_V conversion factor for law {law!r}, R_V = {rv:g} is {k!r}; cannot use it.")
