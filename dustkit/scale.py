@@ -567,8 +567,8 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     _finish(model, sums, layer, data[:, np.searchsorted(gidx_sorted, held_rows)], k_fold, n_folds, seed, n_used,
             layer_set)
     lap("finish (cross-validation, calibration, isotonic)")
-    if isinstance(getattr(layer_set, "meta", None), dict):
-        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows), "sample_of": n_used})
+    if isinstance(getattr(layer_set, "meta", None), dict):  # the catalogue's read, as model files record it
+        layer_set.meta.update(_catalogue_record(p1, reading, os.fspath(path_or_folder), n_rows, n_used, n_merged))
     model.build_info_ = {
         "source": os.fspath(path_or_folder), "files": [p for _, p in files], "n_rows": int(n_rows),
         "n_used": n_used, "n_rejected": int(n_rejected), "n_merged": n_merged, "cross_chunk_copies": n_copies,
@@ -642,6 +642,25 @@ def _reading_info(p1, filled):
         "columns": dict((p1.get("meta") or {}).get("columns", {})),
         "default_errors": filled,
         "rejected_examples": _examples_table(p1["examples"]),
+    }
+
+
+def _catalogue_record(p1, reading, source, n_rows, n_used, n_merged):
+    """The sample's ``meta`` (kept in model files): the whole catalogue's read, not the sample's.
+
+    The sample is made from arrays already checked, so its own record would say that A_V was
+    given, no row was rejected and duplicates were kept; a model file would then say so too.
+    """
+    sep = reading.get("duplicate_separation")
+    sep = float(sep.to_value(u.arcsec)) if hasattr(sep, "to_value") else (
+        float(DUPLICATE_SEPARATION_ARCSEC) if sep is None else float(sep))
+    return {
+        "source": source, "n_input": int(n_rows), "sample_of": int(n_used),
+        "columns": dict((p1.get("meta") or {}).get("columns", {})),
+        "assumptions": list(p1["assumptions"]),
+        "rejected_by_reason": {str(r): int(c) for r, c in p1["counts"].items()},
+        "n_merged": int(n_merged), "same_name_apart": int(p1.get("apart", (0, None))[0]),
+        "duplicates": reading["duplicates"], "duplicate_separation_arcsec": sep,
     }
 
 

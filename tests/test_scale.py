@@ -7,6 +7,7 @@ two-worker dask cluster gives the same model as one process, bad rows are reject
 ``read_tracers`` does and counted, and bad parameters get clear errors.
 """
 
+import re
 import warnings
 
 import numpy as np
@@ -452,3 +453,32 @@ def test_null_cells_counted_alike_in_memory_and_in_chunks(tmp_path):
     assert info["default_errors"] == {"distance_err": 1, "av_err": 2}
     named = dict(zip(np.asarray(ts.row).tolist(), np.asarray(ts.name).tolist()))
     assert [named[r] for r in (70, 71, 72, 210)] == ["row 70", "row 71", "row 72", "row 210"]
+
+
+def test_model_file_of_a_chunked_build_records_the_catalogue_read(tmp_path):
+    # the model file is what remains of a build: its record of the catalogue (rows rejected by reason, how
+    # the reddening was read, duplicates) must be the catalogue's, as an in-memory build's file has it, not
+    # that of the sample of already-checked A_V arrays the chunked build keeps as tracers_
+    from dustkit.io import load_model, save_model
+
+    rng = np.random.default_rng(8)
+    n = 300
+    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                       "ebv": rng.uniform(0.05, 1.0, n), "ebv_err": rng.uniform(0.01, 0.05, n)})
+    df.loc[[3, 160], "ebv"] = np.nan  # in two chunks
+    df.loc[250, "distance"] = -5.0
+    df.to_parquet(tmp_path / "ebv.parquet")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "ebv.parquet")
+        m = build_from_parquet(tmp_path / "ebv.parquet", chunk_size=100, quiet=True, **PARAMS)
+    save_model(m, tmp_path / "model.fits")
+    got = load_model(tmp_path / "model.fits").tracers_.meta
+    assert got["rejected_by_reason"] == ts.meta["rejected_by_reason"] == m.build_info_["rejected_by_reason"]
+    assert sum(got["rejected_by_reason"].values()) == 3
+    masked = lambda texts: {re.sub(r"\d[\d.]*", "#", a) for a in texts}  # a chunk's median is its own
+    assert masked(got["assumptions"]) == masked(ts.meta["assumptions"])
+    assert any("E(B-V)" in a for a in got["assumptions"]) and "A_V taken as given" not in got["assumptions"]
+    assert got["columns"] == ts.meta["columns"] and got["columns"]["ebv"] == "ebv"
+    assert (got["duplicates"], got["n_merged"], got["n_input"]) == ("merge", 0, n)
