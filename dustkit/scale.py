@@ -532,6 +532,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
         n_chains, client, "reading and sampling (pass 1 of 2)", quiet, "sample",
     )
     lap("pass 1 (read, validate, sample)")
+    p1["assumptions"] = _once_each(p1["assumptions"])
     cached = cache
     drops, replace, n_copies, offsets = _accepted(p1, chunks, reading, cache)
     n_used = int(offsets[-1])
@@ -662,6 +663,20 @@ def _catalogue_record(p1, reading, source, n_rows, n_used, n_merged):
         "n_merged": int(n_merged), "same_name_apart": int(p1.get("apart", (0, None))[0]),
         "duplicates": reading["duplicates"], "duplicate_separation_arcsec": sep,
     }
+
+
+def _once_each(texts):
+    """Each assumption once: texts that differ only in their numbers (a chunk's median distance) are one,
+    said with the first chunk's numbers, as the chunks' warnings are (``_announce``)."""
+    import re
+
+    seen, out = set(), []
+    for text in texts:
+        key = re.sub(r"[-+]?\d[\d.e+-]*", "#", text)
+        if key not in seen:
+            seen.add(key)
+            out.append(text)
+    return out
 
 
 def _reading(columns, law, rv, duplicates, **options):

@@ -482,3 +482,23 @@ def test_model_file_of_a_chunked_build_records_the_catalogue_read(tmp_path):
     assert any("E(B-V)" in a for a in got["assumptions"]) and "A_V taken as given" not in got["assumptions"]
     assert got["columns"] == ts.meta["columns"] and got["columns"]["ebv"] == "ebv"
     assert (got["duplicates"], got["n_merged"], got["n_input"]) == ("merge", 0, n)
+
+
+def test_each_assumption_said_once_however_many_chunks(tmp_path):
+    # a bare distance column is assumed in pc once per catalogue (read_tracers says it once); each chunk
+    # states it with its own median, and those must not become one line per chunk in build_info_ and the
+    # model file's record (a catalogue of 10^8 rows in 100 chunks would list it 100 times)
+    rng = np.random.default_rng(9)
+    n = 400
+    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                       "av": rng.uniform(0.1, 3.0, n), "av_err": rng.uniform(0.02, 0.2, n)})
+    df.to_parquet(tmp_path / "bare.parquet")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "bare.parquet")
+        m = build_from_parquet(tmp_path / "bare.parquet", chunk_size=50, quiet=True, **PARAMS)
+    said = m.build_info_["assumptions"]
+    assert len(said) == len(ts.meta["assumptions"])
+    assert sum("has no unit" in a for a in said) == 1
+    assert m.tracers_.meta["assumptions"] == said
