@@ -12,6 +12,7 @@ Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 import argparse
 import gc
 import json
+import os
 import sys
 import traceback
 import warnings
@@ -763,6 +764,9 @@ def _cmd_export(args, out):
     check_target(args.output, args.overwrite)
     if args.maps:
         check_target(args.maps, args.overwrite)
+        if os.path.abspath(os.path.expanduser(args.maps)) == os.path.abspath(os.path.expanduser(args.output)):
+            raise _UsageError(f"-o and --maps name the same file ({args.output!r}): the maps would replace the "
+                              "table. Hint: give the maps a name of their own, e.g. --maps slices.fits")
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
     g = model.grid_

@@ -556,3 +556,12 @@ def test_column_name_empty_reads_the_catalogue_without_names():
     assert _columns(["name=", "ebv=EBV"]) == {"name": None, "ebv": "EBV"}
     with pytest.raises(_UsageError, match="--column takes KEY=NAME"):
         _columns(["ebv="])
+
+
+def test_export_refuses_one_file_for_table_and_maps(built, tmp_path, call):
+    # with --overwrite the maps used to replace the table just written (both reported as written): the user
+    # would lose the table without a word. The same file under two spellings is refused before anything is written
+    out = tmp_path / "both.fits"
+    rc, _, err = call("export", built[0], "-o", out, "--maps", tmp_path / "." / "both.fits", "--overwrite")
+    assert rc == 2 and "same file" in one_line_error(err)
+    assert not out.exists()
