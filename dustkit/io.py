@@ -385,14 +385,17 @@ def load_model(path):
     size = path.stat().st_size
     if size == 0:
         raise _bad_file(path, "it is empty", "Hint: the write that made it was interrupted; build the model again.")
+    gzipped = head[:2] == b"\x1f\x8b"  # save_model to a '.gz' name writes it so (astropy); read it alike
+    if gzipped:
+        head = _gzip_head(path)
     if not head.startswith(b"SIMPLE  ="):
         kind = "it does not start like a FITS file"
-        if head[:2] == b"\x1f\x8b":
-            kind += " (it is gzip-compressed; decompress it first)"
+        if gzipped:
+            kind += " (it is gzip-compressed, but what it holds is not FITS either)"
         elif all(32 <= c < 127 or c in (9, 10, 13) for c in head):
             kind += " (it looks like a text file, e.g. a CSV table)"
         raise _bad_file(path, kind, "Hint: give the .fits file written by dustkit.save_model or 'dustkit build'.")
-    if size % 2880:
+    if size % 2880 and not gzipped:
         raise _bad_file(path, f"it is truncated ({size} bytes, not a whole number of 2880-byte FITS blocks)")
     try:
         with warnings.catch_warnings(record=True) as caught:
@@ -428,6 +431,18 @@ def load_model(path):
         raise
     except Exception as exc:
         raise _bad_file(path, f"{type(exc).__name__}: {exc}") from None
+
+
+def _gzip_head(path):
+    """The first 80 bytes a gzip-compressed file holds (empty when it cannot be decompressed)."""
+    import gzip
+    import zlib
+
+    try:
+        with gzip.open(path, "rb") as fh:
+            return fh.read(80)
+    except (OSError, EOFError, zlib.error):
+        return b""
 
 
 def _stored_sky(path, sh, sky, grid):

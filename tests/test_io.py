@@ -456,3 +456,23 @@ def test_av_tracers_round_trip_without_repeated_columns(tmp_path):
             assert np.array_equal(getattr(tracers, attr), getattr(t2, attr)), attr
         assert t2.excess_kind == "A_V" and len(t2) == n - (not kept_all)
         assert (17 in np.asarray(t2.row)) is kept_all
+
+
+def test_model_saved_under_a_gzip_name_loads_back(model, tmp_path):
+    # astropy writes a FITS file whose name ends in '.gz' gzip-compressed (astropy.io.fits docs: compressed
+    # files), so save_model('model.fits.gz') makes one; load_model must read it back bit for bit, and a
+    # damaged or foreign compressed file must still give one clear line
+    import gzip
+
+    p = io.save_model(model, tmp_path / "model.fits.gz")
+    assert p.read_bytes()[:2] == b"\x1f\x8b"  # gzip magic number (RFC 1952)
+    _assert_same_answers(model, io.load_model(p))
+    cut = tmp_path / "cut.fits.gz"
+    cut.write_bytes(p.read_bytes()[: p.stat().st_size // 2])
+    text = tmp_path / "table.csv.gz"
+    text.write_bytes(gzip.compress(b"l,b,distance\n1,2,3\n"))
+    for bad in (cut, text):
+        with pytest.raises(ModelFileError) as info:
+            io.load_model(bad)
+        msg = str(info.value)
+        assert str(bad) in msg and "Hint:" in msg and "\n" not in msg
