@@ -556,14 +556,13 @@ def _sky_figure(model, distance_pc):
 # ============================================================================ commands
 
 def _cmd_build(args, out):
-    from ._lib.formats import check_target
-    from .io import save_model
+    from .io import check_model_path, save_model
     from .model import CAUTION
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
-    check_target(args.output, args.overwrite)  # fail before a long build, not after
+    check_model_path(args.output, args.overwrite)  # fail before a long build, not after
     if getattr(args, "layer_from", None):
         kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path

@@ -43,13 +43,14 @@ from astropy import units as u
 from astropy.table import Table
 
 from .exceptions import DustkitError, ModelFileError
-from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
+from ._lib.formats import TABLE_FORMATS, atomic_write, check_target, format_for
 from .binned.finish import empty_pixel_fill
 from ._lib.validation import check_choice
 from .tracers.stored import tracers_from_hdu, tracers_hdu
 
 __all__ = [
     "save_model",
+    "check_model_path",
     "load_model",
     "export_table",
     "write_table",
@@ -285,6 +286,29 @@ def _write_hdul(hdul, tmp):
     hdul.writeto(tmp, checksum=True)
 
 
+def check_model_path(path, overwrite=False):
+    """Check that a model file can be written to ``path`` (its folder, overwriting, its suffix).
+
+    Raises
+    ------
+    FileFormatError
+        ``path`` ends in the suffix of another format (``.csv``, ``.ecsv``, ``.parquet``, ...):
+        a model file is FITS, and one named as a table would be taken for one.
+    ModelFileError
+        As :func:`dustkit._lib.formats.check_target` (missing folder, existing file).
+    """
+    from .exceptions import FileFormatError
+
+    fmt = format_for(path, "catalogue", strict=False)
+    if fmt is not None and fmt != "fits":
+        raise FileFormatError(
+            f"Cannot write a model file to '{path}': a model file is FITS, and its name ends like a "
+            f"{fmt.removeprefix('ascii.').upper()} table. Hint: end the name in .fits; to write the model "
+            "as a table, use export_table (on the command line: dustkit export)."
+        )
+    return check_target(path, overwrite)
+
+
 def save_model(model, path, overwrite=False):
     """Save a fitted model to a FITS file that :func:`load_model` reads back losslessly.
 
@@ -293,7 +317,8 @@ def save_model(model, path, overwrite=False):
     model : ExtinctionModel
         A fitted model.
     path : str or path-like
-        Output file (conventionally ``.fits``).
+        Output file (``.fits``; ``.fits.gz`` writes it gzip-compressed). The suffix of a
+        table format (``.csv``, ``.ecsv``, ...) is refused.
     overwrite : bool
         Replace an existing file. Without it an existing file raises ``ModelFileError``.
 
@@ -316,6 +341,7 @@ def save_model(model, path, overwrite=False):
     (PIXTYPE, ORDERING, COORDSYS='G', NSIDE, INDXSCHM; Gorski et al. 2005).
     """
     model.check_fitted()
+    check_model_path(path, overwrite)
     hdul = _density_hdul(model) if _is_density(model) else _model_hdus(model)
     return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
 

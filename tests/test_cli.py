@@ -565,3 +565,10 @@ def test_export_refuses_one_file_for_table_and_maps(built, tmp_path, call):
     rc, _, err = call("export", built[0], "-o", out, "--maps", tmp_path / "." / "both.fits", "--overwrite")
     assert rc == 2 and "same file" in one_line_error(err)
     assert not out.exists()
+
+
+def test_build_refuses_a_table_name_for_the_model_before_building(files, tmp_path, call):
+    # '-o model.ecsv' would have written a FITS file named as an ECSV table after the whole build
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "model.ecsv", *BUILD_OPTS)
+    assert rc == 1 and "model file is FITS" in one_line_error(err) and "Read " not in out
+    assert list(tmp_path.iterdir()) == []

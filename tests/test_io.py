@@ -476,3 +476,15 @@ def test_model_saved_under_a_gzip_name_loads_back(model, tmp_path):
             io.load_model(bad)
         msg = str(info.value)
         assert str(bad) in msg and "Hint:" in msg and "\n" not in msg
+
+
+@pytest.mark.parametrize("name", ["model.ecsv", "model.csv", "model.parquet", "MODEL.VOT"])
+def test_model_file_named_as_a_table_is_refused(model, tmp_path, name):
+    # a model file is FITS; written under a table's suffix it would be taken for that table (and CSV/ECSV
+    # readers would choke on it), so the name is refused before anything is written
+    from dustkit.exceptions import FileFormatError
+
+    with pytest.raises(FileFormatError, match=r"\.fits.*export"):
+        io.save_model(model, tmp_path / name)
+    assert list(tmp_path.iterdir()) == []
+    assert io.save_model(model, tmp_path / "model.fit").exists()  # a FITS suffix (FITS standard) is fine
