@@ -50,7 +50,7 @@ from .tracers.stored import tracers_from_hdu, tracers_hdu
 
 __all__ = [
     "save_model",
-    "check_model_path",
+    "check_fits_path",
     "load_model",
     "export_table",
     "write_table",
@@ -286,14 +286,16 @@ def _write_hdul(hdul, tmp):
     hdul.writeto(tmp, checksum=True)
 
 
-def check_model_path(path, overwrite=False):
-    """Check that a model file can be written to ``path`` (its folder, overwriting, its suffix).
+def check_fits_path(path, overwrite=False, what="model file"):
+    """Check that a FITS file (a model file, slice maps) can be written to ``path``.
+
+    Checks its folder, overwriting and its suffix, so a caller can fail before a long build.
 
     Raises
     ------
     FileFormatError
         ``path`` ends in the suffix of another format (``.csv``, ``.ecsv``, ``.parquet``, ...):
-        a model file is FITS, and one named as a table would be taken for one.
+        the file is FITS, and one named as a table would be taken for one.
     ModelFileError
         As :func:`dustkit._lib.formats.check_target` (missing folder, existing file).
     """
@@ -302,9 +304,10 @@ def check_model_path(path, overwrite=False):
     fmt = format_for(path, "catalogue", strict=False)
     if fmt is not None and fmt != "fits":
         raise FileFormatError(
-            f"Cannot write a model file to '{path}': a model file is FITS, and its name ends like a "
-            f"{fmt.removeprefix('ascii.').upper()} table. Hint: end the name in .fits; to write the model "
-            "as a table, use export_table (on the command line: dustkit export)."
+            f"Cannot write a {what} to '{path}': a {what} is FITS, and its name ends like a "
+            f"{fmt.removeprefix('ascii.').upper()} table. Hint: end the name in .fits"
+            + ("; to write the model as a table, use export_table (on the command line: dustkit export)."
+               if what == "model file" else ".")
         )
     return check_target(path, overwrite)
 
@@ -341,7 +344,7 @@ def save_model(model, path, overwrite=False):
     (PIXTYPE, ORDERING, COORDSYS='G', NSIDE, INDXSCHM; Gorski et al. 2005).
     """
     model.check_fitted()
-    check_model_path(path, overwrite)
+    check_fits_path(path, overwrite)
     hdul = _density_hdul(model) if _is_density(model) else _model_hdus(model)
     return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
 
@@ -724,6 +727,7 @@ def write_slice_maps(model, path, overwrite=False, errors=True, mask_uninformed=
     import healpy as hp
 
     model.check_fitted()
+    check_fits_path(path, overwrite, what="slice-map file")
     g = model.grid_
     av = np.array(model.av_, dtype=np.float64)
     err = np.array(model.av_err_, dtype=np.float64)

@@ -572,3 +572,9 @@ def test_build_refuses_a_table_name_for_the_model_before_building(files, tmp_pat
     rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "model.ecsv", *BUILD_OPTS)
     assert rc == 1 and "model file is FITS" in one_line_error(err) and "Read " not in out
     assert list(tmp_path.iterdir()) == []
+
+
+def test_export_refuses_a_table_name_for_the_maps_before_writing_anything(built, tmp_path, call):
+    rc, _, err = call("export", built[0], "-o", tmp_path / "t.ecsv", "--maps", tmp_path / "maps.csv")
+    assert rc == 1 and "slice-map file is FITS" in one_line_error(err)
+    assert list(tmp_path.iterdir()) == []

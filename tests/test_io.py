@@ -488,3 +488,14 @@ def test_model_file_named_as_a_table_is_refused(model, tmp_path, name):
         io.save_model(model, tmp_path / name)
     assert list(tmp_path.iterdir()) == []
     assert io.save_model(model, tmp_path / "model.fit").exists()  # a FITS suffix (FITS standard) is fine
+
+
+def test_slice_maps_named_as_a_table_are_refused(model, tmp_path):
+    # slice maps are a FITS binary table in the HEALPix convention (healpy.read_map reads them); under a
+    # CSV or ECSV name they would be taken for a text table
+    from dustkit.exceptions import FileFormatError
+
+    for name in ("maps.ecsv", "maps.csv"):
+        with pytest.raises(FileFormatError, match=r"slice-map file is FITS"):
+            io.write_slice_maps(model, tmp_path / name)
+    assert list(tmp_path.iterdir()) == []
