@@ -80,7 +80,7 @@ import numpy as np
 from astropy import units as u
 
 from .exceptions import AssumptionWarning, CatalogError, DuplicatesWarning, RowsRejectedWarning
-from ._lib.formats import CHUNKED_FORMATS, format_for
+from ._lib.formats import CHUNKED_FORMATS, format_for, parquet_parts
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import fit_layer, given_layer
@@ -127,7 +127,7 @@ def _find_files(source):
     if not p.exists():
         raise CatalogError(f"No such file or folder: {str(p)!r}. Hint: check the path.")
     if p.is_dir():
-        files = sorted(q for q in p.rglob("*") if q.is_file() and format_for(q, "chunked", strict=False) == "parquet")
+        files = parquet_parts(p)
         if not files:
             parquet = ", ".join(f"*{s}" for s, f in sorted(CHUNKED_FORMATS.items()) if f == "parquet")
             raise CatalogError(

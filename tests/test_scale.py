@@ -8,6 +8,7 @@ two-worker dask cluster gives the same model as one process, bad rows are reject
 """
 
 import re
+from pathlib import Path
 import warnings
 
 import numpy as np
@@ -502,3 +503,27 @@ def test_each_assumption_said_once_however_many_chunks(tmp_path):
     assert len(said) == len(ts.meta["assumptions"])
     assert sum("has no unit" in a for a in said) == 1
     assert m.tracers_.meta["assumptions"] == said
+
+
+def test_catalogue_folder_leaves_out_hidden_and_underscore_files(tmp_path):
+    # common practice (pyarrow.dataset's ignore_prefixes, Spark, dask): in a folder of Parquet parts, files and
+    # folders starting with '.' or '_' are not parts of the table: an unfinished write's _temporary/ copy, or the
+    # '._' metadata files macOS leaves on other disks (not Parquet at all). Both reads must see the 300 rows once.
+    rng = np.random.default_rng(10)
+    n = 300
+    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                       "av": rng.uniform(0.1, 3.0, n), "av_err": rng.uniform(0.02, 0.2, n)})
+    folder = tmp_path / "catalogue"
+    (folder / "_temporary" / "0").mkdir(parents=True)
+    df.iloc[:150].to_parquet(folder / "part-0.parquet")
+    df.iloc[150:].to_parquet(folder / "part-1.parquet")
+    df.iloc[150:].to_parquet(folder / "_temporary" / "0" / "part-1.parquet")
+    (folder / "._part-0.parquet").write_bytes(b"\x00\x05\x16\x07" + bytes(60))  # AppleDouble header, not Parquet
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(folder)
+        m = build_from_parquet(folder, chunk_size=100, quiet=True, **PARAMS)
+    assert len(ts) == n and ts.meta["n_input"] == n
+    assert (m.build_info_["n_rows"], m.build_info_["n_used"], m.build_info_["n_merged"]) == (n, n, 0)
+    assert [Path(f).name for f in m.build_info_["files"]] == ["part-0.parquet", "part-1.parquet"]
