@@ -12,6 +12,7 @@ Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 import argparse
 import gc
 import json
+import os
 import sys
 import traceback
 import warnings
@@ -572,14 +573,13 @@ def _sky_figure(model, distance_pc):
 # ============================================================================ commands
 
 def _cmd_build(args, out):
-    from ._lib.formats import check_target
-    from .io import save_model
+    from .io import check_fits_path, save_model
     from .model import CAUTION
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
-    check_target(args.output, args.overwrite)  # fail before a long build, not after
+    check_fits_path(args.output, args.overwrite)  # fail before a long build, not after
     if getattr(args, "layer_from", None):
         kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path
@@ -785,12 +785,15 @@ def _cmd_profile(args, out):
 
 def _cmd_export(args, out):
     from ._lib.formats import check_target, format_for
-    from .io import export_table, load_model, write_slice_maps
+    from .io import check_fits_path, export_table, load_model, write_slice_maps
 
     format_for(args.output, "table")
     check_target(args.output, args.overwrite)
     if args.maps:
-        check_target(args.maps, args.overwrite)
+        check_fits_path(args.maps, args.overwrite, what="slice-map file")
+        if os.path.abspath(os.path.expanduser(args.maps)) == os.path.abspath(os.path.expanduser(args.output)):
+            raise _UsageError(f"-o and --maps name the same file ({args.output!r}): the maps would replace the "
+                              "table. Hint: give the maps a name of their own, e.g. --maps slices.fits")
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
     g = model.grid_

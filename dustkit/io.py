@@ -43,13 +43,14 @@ from astropy import units as u
 from astropy.table import Table
 
 from .exceptions import DustkitError, ModelFileError
-from ._lib.formats import TABLE_FORMATS, atomic_write, format_for
+from ._lib.formats import TABLE_FORMATS, atomic_write, check_target, format_for
 from .binned.finish import empty_pixel_fill
 from ._lib.validation import check_choice
 from .tracers.stored import tracers_from_hdu, tracers_hdu
 
 __all__ = [
     "save_model",
+    "check_fits_path",
     "load_model",
     "export_table",
     "write_table",
@@ -285,6 +286,32 @@ def _write_hdul(hdul, tmp):
     hdul.writeto(tmp, checksum=True)
 
 
+def check_fits_path(path, overwrite=False, what="model file"):
+    """Check that a FITS file (a model file, slice maps) can be written to ``path``.
+
+    Checks its folder, overwriting and its suffix, so a caller can fail before a long build.
+
+    Raises
+    ------
+    FileFormatError
+        ``path`` ends in the suffix of another format (``.csv``, ``.ecsv``, ``.parquet``, ...):
+        the file is FITS, and one named as a table would be taken for one.
+    ModelFileError
+        As :func:`dustkit._lib.formats.check_target` (missing folder, existing file).
+    """
+    from .exceptions import FileFormatError
+
+    fmt = format_for(path, "catalogue", strict=False)
+    if fmt is not None and fmt != "fits":
+        raise FileFormatError(
+            f"Cannot write a {what} to '{path}': a {what} is FITS, and its name ends like a "
+            f"{fmt.removeprefix('ascii.').upper()} table. Hint: end the name in .fits"
+            + ("; to write the model as a table, use export_table (on the command line: dustkit export)."
+               if what == "model file" else ".")
+        )
+    return check_target(path, overwrite)
+
+
 def save_model(model, path, overwrite=False):
     """Save a fitted model to a FITS file that :func:`load_model` reads back losslessly.
 
@@ -293,7 +320,8 @@ def save_model(model, path, overwrite=False):
     model : ExtinctionModel
         A fitted model.
     path : str or path-like
-        Output file (conventionally ``.fits``).
+        Output file (``.fits``; ``.fits.gz`` writes it gzip-compressed). The suffix of a
+        table format (``.csv``, ``.ecsv``, ...) is refused.
     overwrite : bool
         Replace an existing file. Without it an existing file raises ``ModelFileError``.
 
@@ -316,6 +344,7 @@ def save_model(model, path, overwrite=False):
     (PIXTYPE, ORDERING, COORDSYS='G', NSIDE, INDXSCHM; Gorski et al. 2005).
     """
     model.check_fitted()
+    check_fits_path(path, overwrite)
     hdul = _density_hdul(model) if _is_density(model) else _model_hdus(model)
     return atomic_write(path, lambda tmp: _write_hdul(hdul, tmp), overwrite, what="model file")
 
@@ -385,14 +414,17 @@ def load_model(path):
     size = path.stat().st_size
     if size == 0:
         raise _bad_file(path, "it is empty", "Hint: the write that made it was interrupted; build the model again.")
+    gzipped = head[:2] == b"\x1f\x8b"  # save_model to a '.gz' name writes it so (astropy); read it alike
+    if gzipped:
+        head = _gzip_head(path)
     if not head.startswith(b"SIMPLE  ="):
         kind = "it does not start like a FITS file"
-        if head[:2] == b"\x1f\x8b":
-            kind += " (it is gzip-compressed; decompress it first)"
+        if gzipped:
+            kind += " (it is gzip-compressed, but what it holds is not FITS either)"
         elif all(32 <= c < 127 or c in (9, 10, 13) for c in head):
             kind += " (it looks like a text file, e.g. a CSV table)"
         raise _bad_file(path, kind, "Hint: give the .fits file written by dustkit.save_model or 'dustkit build'.")
-    if size % 2880:
+    if size % 2880 and not gzipped:
         raise _bad_file(path, f"it is truncated ({size} bytes, not a whole number of 2880-byte FITS blocks)")
     try:
         with warnings.catch_warnings(record=True) as caught:
@@ -428,6 +460,18 @@ def load_model(path):
         raise
     except Exception as exc:
         raise _bad_file(path, f"{type(exc).__name__}: {exc}") from None
+
+
+def _gzip_head(path):
+    """The first 80 bytes a gzip-compressed file holds (empty when it cannot be decompressed)."""
+    import gzip
+    import zlib
+
+    try:
+        with gzip.open(path, "rb") as fh:
+            return fh.read(80)
+    except (OSError, EOFError, zlib.error):
+        return b""
 
 
 def _stored_sky(path, sh, sky, grid):
@@ -683,6 +727,7 @@ def write_slice_maps(model, path, overwrite=False, errors=True, mask_uninformed=
     import healpy as hp
 
     model.check_fitted()
+    check_fits_path(path, overwrite, what="slice-map file")
     g = model.grid_
     av = np.array(model.av_, dtype=np.float64)
     err = np.array(model.av_err_, dtype=np.float64)

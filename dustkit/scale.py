@@ -80,7 +80,7 @@ import numpy as np
 from astropy import units as u
 
 from .exceptions import AssumptionWarning, CatalogError, DuplicatesWarning, RowsRejectedWarning
-from ._lib.formats import CHUNKED_FORMATS, format_for
+from ._lib.formats import CHUNKED_FORMATS, format_for, parquet_parts
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import fit_layer, given_layer
@@ -127,7 +127,7 @@ def _find_files(source):
     if not p.exists():
         raise CatalogError(f"No such file or folder: {str(p)!r}. Hint: check the path.")
     if p.is_dir():
-        files = sorted(q for q in p.rglob("*") if q.is_file() and format_for(q, "chunked", strict=False) == "parquet")
+        files = parquet_parts(p)
         if not files:
             parquet = ", ".join(f"*{s}" for s, f in sorted(CHUNKED_FORMATS.items()) if f == "parquet")
             raise CatalogError(
@@ -532,6 +532,7 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
         n_chains, client, "reading and sampling (pass 1 of 2)", quiet, "sample",
     )
     lap("pass 1 (read, validate, sample)")
+    p1["assumptions"] = _once_each(p1["assumptions"])
     cached = cache
     drops, replace, n_copies, offsets = _accepted(p1, chunks, reading, cache)
     n_used = int(offsets[-1])
@@ -567,8 +568,8 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
     _finish(model, sums, layer, data[:, np.searchsorted(gidx_sorted, held_rows)], k_fold, n_folds, seed, n_used,
             layer_set)
     lap("finish (cross-validation, calibration, isotonic)")
-    if isinstance(getattr(layer_set, "meta", None), dict):
-        layer_set.meta.update({"source": os.fspath(path_or_folder), "n_input": int(n_rows), "sample_of": n_used})
+    if isinstance(getattr(layer_set, "meta", None), dict):  # the catalogue's read, as model files record it
+        layer_set.meta.update(_catalogue_record(p1, reading, os.fspath(path_or_folder), n_rows, n_used, n_merged))
     model.build_info_ = {
         "source": os.fspath(path_or_folder), "files": [p for _, p in files], "n_rows": int(n_rows),
         "n_used": n_used, "n_rejected": int(n_rejected), "n_merged": n_merged, "cross_chunk_copies": n_copies,
@@ -643,6 +644,39 @@ def _reading_info(p1, filled):
         "default_errors": filled,
         "rejected_examples": _examples_table(p1["examples"]),
     }
+
+
+def _catalogue_record(p1, reading, source, n_rows, n_used, n_merged):
+    """The sample's ``meta`` (kept in model files): the whole catalogue's read, not the sample's.
+
+    The sample is made from arrays already checked, so its own record would say that A_V was
+    given, no row was rejected and duplicates were kept; a model file would then say so too.
+    """
+    sep = reading.get("duplicate_separation")
+    sep = float(sep.to_value(u.arcsec)) if hasattr(sep, "to_value") else (
+        float(DUPLICATE_SEPARATION_ARCSEC) if sep is None else float(sep))
+    return {
+        "source": source, "n_input": int(n_rows), "sample_of": int(n_used),
+        "columns": dict((p1.get("meta") or {}).get("columns", {})),
+        "assumptions": list(p1["assumptions"]),
+        "rejected_by_reason": {str(r): int(c) for r, c in p1["counts"].items()},
+        "n_merged": int(n_merged), "same_name_apart": int(p1.get("apart", (0, None))[0]),
+        "duplicates": reading["duplicates"], "duplicate_separation_arcsec": sep,
+    }
+
+
+def _once_each(texts):
+    """Each assumption once: texts that differ only in their numbers (a chunk's median distance) are one,
+    said with the first chunk's numbers, as the chunks' warnings are (``_announce``)."""
+    import re
+
+    seen, out = set(), []
+    for text in texts:
+        key = re.sub(r"[-+]?\d[\d.e+-]*", "#", text)
+        if key not in seen:
+            seen.add(key)
+            out.append(text)
+    return out
 
 
 def _reading(columns, law, rv, duplicates, **options):

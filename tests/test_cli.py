@@ -598,3 +598,25 @@ def test_estimate_band_extinction_for_the_targets_star(built, files, tmp_path, c
     rc, out, err = call("estimate", built[0], files / "targets.csv", "-o", tmp_path / "x.csv", "--band", "G",
                         "--temperature", "no_such_column")
     assert rc != 0 and "no_such_column" in one_line_error(err)
+
+
+def test_export_refuses_one_file_for_table_and_maps(built, tmp_path, call):
+    # with --overwrite the maps used to replace the table just written (both reported as written): the user
+    # would lose the table without a word. The same file under two spellings is refused before anything is written
+    out = tmp_path / "both.fits"
+    rc, _, err = call("export", built[0], "-o", out, "--maps", tmp_path / "." / "both.fits", "--overwrite")
+    assert rc == 2 and "same file" in one_line_error(err)
+    assert not out.exists()
+
+
+def test_build_refuses_a_table_name_for_the_model_before_building(files, tmp_path, call):
+    # '-o model.ecsv' would have written a FITS file named as an ECSV table after the whole build
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "model.ecsv", *BUILD_OPTS)
+    assert rc == 1 and "model file is FITS" in one_line_error(err) and "Read " not in out
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_export_refuses_a_table_name_for_the_maps_before_writing_anything(built, tmp_path, call):
+    rc, _, err = call("export", built[0], "-o", tmp_path / "t.ecsv", "--maps", tmp_path / "maps.csv")
+    assert rc == 1 and "slice-map file is FITS" in one_line_error(err)
+    assert list(tmp_path.iterdir()) == []

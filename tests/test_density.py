@@ -1110,3 +1110,25 @@ def test_in_front_of_a_cloud_no_tracer_pins_down_the_errors_hold_where_it_might_
     z = np.abs(a - field.av(l, b, d)) / e
     assert np.mean(z <= 2) >= 0.7
     assert np.median(z) <= 1.6
+
+
+def test_exports_and_slice_maps_keep_only_pixels_the_tracers_inform(fitted, tmp_path):
+    # the tracers lie in l 25..55, |b| < 8: a pixel on the far side of the Galaxy (l = 200) or at the pole is
+    # informed by none, so the exported table leaves it out and the slice maps mark it with healpy's UNSEEN
+    # (HEALPix convention for "no data"), as for the binned model; the distance-0 edge, where every pixel
+    # has A_V = 0 exactly, must not count as support
+    import healpy as hp
+    from astropy.table import Table
+
+    _, m = fitted
+    g = m.grid_
+    far = g.pixel(np.array([200.0, 0.0]), np.array([0.0, 89.0]))
+    near = g.pixel(np.array([40.0]), np.array([0.0]))
+    informed = m.informed_pixels()
+    assert not np.isin(far, informed).any() and np.isin(near, informed).all()
+    assert informed.size < g.npix // 4
+    table = Table.read(dustkit.export_table(m, tmp_path / "table.ecsv"))
+    assert len(table) == informed.size * g.n_bins and not np.isin(far, np.asarray(table["pixel"])).any()
+    maps = dustkit.io.write_slice_maps(m, tmp_path / "maps.fits")
+    av = hp.read_map(maps, field=g.n_edges - 1, nest=None)
+    assert np.all(av[far] == hp.UNSEEN) and np.all(av[near] != hp.UNSEEN)

@@ -456,3 +456,46 @@ def test_av_tracers_round_trip_without_repeated_columns(tmp_path):
             assert np.array_equal(getattr(tracers, attr), getattr(t2, attr)), attr
         assert t2.excess_kind == "A_V" and len(t2) == n - (not kept_all)
         assert (17 in np.asarray(t2.row)) is kept_all
+
+
+def test_model_saved_under_a_gzip_name_loads_back(model, tmp_path):
+    # astropy writes a FITS file whose name ends in '.gz' gzip-compressed (astropy.io.fits docs: compressed
+    # files), so save_model('model.fits.gz') makes one; load_model must read it back bit for bit, and a
+    # damaged or foreign compressed file must still give one clear line
+    import gzip
+
+    p = io.save_model(model, tmp_path / "model.fits.gz")
+    assert p.read_bytes()[:2] == b"\x1f\x8b"  # gzip magic number (RFC 1952)
+    _assert_same_answers(model, io.load_model(p))
+    cut = tmp_path / "cut.fits.gz"
+    cut.write_bytes(p.read_bytes()[: p.stat().st_size // 2])
+    text = tmp_path / "table.csv.gz"
+    text.write_bytes(gzip.compress(b"l,b,distance\n1,2,3\n"))
+    for bad in (cut, text):
+        with pytest.raises(ModelFileError) as info:
+            io.load_model(bad)
+        msg = str(info.value)
+        assert str(bad) in msg and "Hint:" in msg and "\n" not in msg
+
+
+@pytest.mark.parametrize("name", ["model.ecsv", "model.csv", "model.parquet", "MODEL.VOT"])
+def test_model_file_named_as_a_table_is_refused(model, tmp_path, name):
+    # a model file is FITS; written under a table's suffix it would be taken for that table (and CSV/ECSV
+    # readers would choke on it), so the name is refused before anything is written
+    from dustkit.exceptions import FileFormatError
+
+    with pytest.raises(FileFormatError, match=r"\.fits.*export"):
+        io.save_model(model, tmp_path / name)
+    assert list(tmp_path.iterdir()) == []
+    assert io.save_model(model, tmp_path / "model.fit").exists()  # a FITS suffix (FITS standard) is fine
+
+
+def test_slice_maps_named_as_a_table_are_refused(model, tmp_path):
+    # slice maps are a FITS binary table in the HEALPix convention (healpy.read_map reads them); under a
+    # CSV or ECSV name they would be taken for a text table
+    from dustkit.exceptions import FileFormatError
+
+    for name in ("maps.ecsv", "maps.csv"):
+        with pytest.raises(FileFormatError, match=r"slice-map file is FITS"):
+            io.write_slice_maps(model, tmp_path / name)
+    assert list(tmp_path.iterdir()) == []

@@ -7,6 +7,8 @@ two-worker dask cluster gives the same model as one process, bad rows are reject
 ``read_tracers`` does and counted, and bad parameters get clear errors.
 """
 
+import re
+from pathlib import Path
 import warnings
 
 import numpy as np
@@ -452,3 +454,76 @@ def test_null_cells_counted_alike_in_memory_and_in_chunks(tmp_path):
     assert info["default_errors"] == {"distance_err": 1, "av_err": 2}
     named = dict(zip(np.asarray(ts.row).tolist(), np.asarray(ts.name).tolist()))
     assert [named[r] for r in (70, 71, 72, 210)] == ["row 70", "row 71", "row 72", "row 210"]
+
+
+def test_model_file_of_a_chunked_build_records_the_catalogue_read(tmp_path):
+    # the model file is what remains of a build: its record of the catalogue (rows rejected by reason, how
+    # the reddening was read, duplicates) must be the catalogue's, as an in-memory build's file has it, not
+    # that of the sample of already-checked A_V arrays the chunked build keeps as tracers_
+    from dustkit.io import load_model, save_model
+
+    rng = np.random.default_rng(8)
+    n = 300
+    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                       "ebv": rng.uniform(0.05, 1.0, n), "ebv_err": rng.uniform(0.01, 0.05, n)})
+    df.loc[[3, 160], "ebv"] = np.nan  # in two chunks
+    df.loc[250, "distance"] = -5.0
+    df.to_parquet(tmp_path / "ebv.parquet")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "ebv.parquet")
+        m = build_from_parquet(tmp_path / "ebv.parquet", chunk_size=100, quiet=True, **PARAMS)
+    save_model(m, tmp_path / "model.fits")
+    got = load_model(tmp_path / "model.fits").tracers_.meta
+    assert got["rejected_by_reason"] == ts.meta["rejected_by_reason"] == m.build_info_["rejected_by_reason"]
+    assert sum(got["rejected_by_reason"].values()) == 3
+    masked = lambda texts: {re.sub(r"\d[\d.]*", "#", a) for a in texts}  # a chunk's median is its own
+    assert masked(got["assumptions"]) == masked(ts.meta["assumptions"])
+    assert any("E(B-V)" in a for a in got["assumptions"]) and "A_V taken as given" not in got["assumptions"]
+    assert got["columns"] == ts.meta["columns"] and got["columns"]["ebv"] == "ebv"
+    assert (got["duplicates"], got["n_merged"], got["n_input"]) == ("merge", 0, n)
+
+
+def test_each_assumption_said_once_however_many_chunks(tmp_path):
+    # a bare distance column is assumed in pc once per catalogue (read_tracers says it once); each chunk
+    # states it with its own median, and those must not become one line per chunk in build_info_ and the
+    # model file's record (a catalogue of 10^8 rows in 100 chunks would list it 100 times)
+    rng = np.random.default_rng(9)
+    n = 400
+    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                       "av": rng.uniform(0.1, 3.0, n), "av_err": rng.uniform(0.02, 0.2, n)})
+    df.to_parquet(tmp_path / "bare.parquet")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(tmp_path / "bare.parquet")
+        m = build_from_parquet(tmp_path / "bare.parquet", chunk_size=50, quiet=True, **PARAMS)
+    said = m.build_info_["assumptions"]
+    assert len(said) == len(ts.meta["assumptions"])
+    assert sum("has no unit" in a for a in said) == 1
+    assert m.tracers_.meta["assumptions"] == said
+
+
+def test_catalogue_folder_leaves_out_hidden_and_underscore_files(tmp_path):
+    # common practice (pyarrow.dataset's ignore_prefixes, Spark, dask): in a folder of Parquet parts, files and
+    # folders starting with '.' or '_' are not parts of the table: an unfinished write's _temporary/ copy, or the
+    # '._' metadata files macOS leaves on other disks (not Parquet at all). Both reads must see the 300 rows once.
+    rng = np.random.default_rng(10)
+    n = 300
+    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                       "av": rng.uniform(0.1, 3.0, n), "av_err": rng.uniform(0.02, 0.2, n)})
+    folder = tmp_path / "catalogue"
+    (folder / "_temporary" / "0").mkdir(parents=True)
+    df.iloc[:150].to_parquet(folder / "part-0.parquet")
+    df.iloc[150:].to_parquet(folder / "part-1.parquet")
+    df.iloc[150:].to_parquet(folder / "_temporary" / "0" / "part-1.parquet")
+    (folder / "._part-0.parquet").write_bytes(b"\x00\x05\x16\x07" + bytes(60))  # AppleDouble header, not Parquet
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ts = read_tracers(folder)
+        m = build_from_parquet(folder, chunk_size=100, quiet=True, **PARAMS)
+    assert len(ts) == n and ts.meta["n_input"] == n
+    assert (m.build_info_["n_rows"], m.build_info_["n_used"], m.build_info_["n_merged"]) == (n, n, 0)
+    assert [Path(f).name for f in m.build_info_["files"]] == ["part-0.parquet", "part-1.parquet"]

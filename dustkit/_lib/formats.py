@@ -33,6 +33,7 @@ __all__ = [
     "format_for",
     "suffixes",
     "check_target",
+    "parquet_parts",
     "file_mode",
     "atomic_write",
 ]
@@ -108,6 +109,22 @@ def format_for(path, kind, strict=True):
         f"Cannot tell the {what} format of '{path}' from its suffix {got!r}. "
         f"Hint: the 'path' must end in one of {', '.join(suffixes(kind))}"
         + (", or pass format='ecsv', 'fits' or 'csv'." if kind == "table" else ".")
+    )
+
+
+def parquet_parts(folder):
+    """The Parquet files of a catalogue folder, searched recursively, sorted by path.
+
+    Files and folders whose names start with ``.`` or ``_`` are left out, as pyarrow's and
+    Spark's readers of such folders do (``_temporary/`` of an unfinished write, ``_SUCCESS``,
+    ``._part-0.parquet`` copies of macOS metadata, hidden temporary files): they hold no rows
+    of the table, or rows it holds already.
+    """
+    folder = Path(os.fspath(folder))
+    return sorted(
+        q for q in folder.rglob("*")
+        if q.is_file() and format_for(q, "catalogue", strict=False) == "parquet"
+        and not any(part.startswith((".", "_")) for part in q.relative_to(folder).parts)
     )
 
 

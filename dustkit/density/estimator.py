@@ -621,9 +621,13 @@ class DensityModel:
         return float(np.sqrt(self.grid_.pixel_area.to_value(u.deg**2) / np.pi))
 
     def informed_pixels(self):
-        """Pixels where tracers inform the answer (support at least 0.1 somewhere along the line)."""
+        """Pixels where tracers inform the answer (support at least 0.1 somewhere along the line).
+
+        The first edge (distance 0) is left out: there prior and posterior variance are both 0,
+        and its support of 1 says nothing about tracers (every pixel of the sky has it).
+        """
         self.check_fitted()
-        return np.nonzero(self.support_.max(axis=1) >= 0.1)[0]
+        return np.nonzero(self.support_[:, 1:].max(axis=1) >= 0.1)[0]
 
     def to_table(self, pixels=None):
         """The model on its grid, one row per pixel and distance bin (:func:`dustkit.answers.grid_table`), plus ``support``."""

@@ -11,7 +11,7 @@ from astropy.table import Table
 
 from ..exceptions import AssumptionWarning, CatalogError, RowsRejectedWarning
 from ..laws import get_law
-from .._lib.formats import CATALOGUE_FORMATS, format_for, suffixes
+from .._lib.formats import CATALOGUE_FORMATS, format_for, parquet_parts, suffixes
 from .._lib.validation import check_real, param_error
 from .arrow import plain_parquet, read_parquet
 from .assemble import build_tracers
@@ -426,7 +426,7 @@ def _read_plain_parquet(path):
 
 
 def _parquet_parts(path):
-    parts = sorted(q for q in Path(path).rglob("*") if q.is_file() and format_for(q, "catalogue", strict=False) == "parquet")
+    parts = parquet_parts(path)
     if not parts:
         raise CatalogError(
             f"The folder '{path}' holds no Parquet files. Hint: a catalogue folder holds the Parquet parts of one "
