@@ -222,6 +222,17 @@ def test_the_feature_map_is_labelled_with_units(cloudy, unseen_foreground):
     assert "Galactic longitude" in ax.get_xlabel() and "Galactic latitude" in ax.get_ylabel()
     gids = [p.get_gid() for p in ax.patches]
     assert "dustkit-feature-located" in gids and "dustkit-feature-nearer" in gids
+
+    # every feature visible on white paper, the farthest too (it takes the top of the colour map):
+    # contrast ratio with white at least 1.5 (relative luminance and contrast ratio as WCAG 2.0 defines them)
+    def luminance(rgba):
+        c = np.asarray(rgba[:3], float)
+        c = np.where(c <= 0.03928, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+        return float(0.2126 * c[0] + 0.7152 * c[1] + 0.0722 * c[2])
+
+    for p in ax.patches:
+        shown = p.get_facecolor() if p.get_gid() == "dustkit-feature-located" else p.get_edgecolor()
+        assert 1.05 / (luminance(shown) + 0.05) >= 1.5, p.get_gid()
     matplotlib.pyplot.close(ax.figure)
 
 

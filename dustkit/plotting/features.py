@@ -19,7 +19,7 @@ def _circle(lm, bm, rad, n=73):
     return lm + dl, bb
 
 
-def plot_features(features, ax=None, extent=None, cmap="plasma", distance_unit=None, label=True):
+def plot_features(features, ax=None, extent=None, cmap=None, distance_unit=None, label=True):
     """Dust features on a Galactic map: a circle of each feature's extent, filled by its distance.
 
     Located features are filled with the colour of their ``distance``; ``'nearer than'``
@@ -36,8 +36,10 @@ def plot_features(features, ax=None, extent=None, cmap="plasma", distance_unit=N
     extent : (l_min, l_max, b_min, b_max) in deg, optional
         Default: the features with a margin. Longitude increases to the left; a range may
         cross l = 0 (e.g. (350, 20, -10, 10)).
-    cmap : str or Colormap
-        Colour map of the distance (perceptually uniform by default).
+    cmap : str or Colormap, optional
+        Colour map of the distance. Default: matplotlib's perceptually uniform 'plasma' without
+        its palest sixth, so that the farthest features (and the hatched outlines of 'nearer
+        than' ones) stay visible on white paper.
     distance_unit : {'pc', 'kpc'}, optional
         Unit of the colour bar (default kpc when a feature lies at 2 kpc or more).
     label : bool
@@ -79,7 +81,10 @@ def plot_features(features, ax=None, extent=None, cmap="plasma", distance_unit=N
     if l_max <= l_min:
         l_max += 360.0
     norm = mpl.colors.Normalize(vmin=0.0, vmax=(float(finite.max()) * scale if finite.size else 1.0))
-    cm = mpl.colormaps[cmap] if isinstance(cmap, str) else cmap
+    if cmap is None:
+        cm = mpl.colors.ListedColormap(mpl.colormaps["plasma"](np.linspace(0.0, 0.85, 256)), name="plasma_printable")
+    else:
+        cm = mpl.colormaps[cmap] if isinstance(cmap, str) else cmap
 
     with style_context():
         ax = new_axes(ax, (7.5, 4.5))
