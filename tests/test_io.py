@@ -499,3 +499,22 @@ def test_slice_maps_named_as_a_table_are_refused(model, tmp_path):
         with pytest.raises(FileFormatError, match=r"slice-map file is FITS"):
             io.write_slice_maps(model, tmp_path / name)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_loaded_models_tracers_still_say_how_many_rows_were_rejected(tmp_path):
+    # the rejected rows are not kept in a model file, but their count by reason is: the loaded
+    # tracers' summary reports it instead of "0 rejected" (dropped rows are counted and reported,
+    # never silently lost; common practice)
+    rng = np.random.default_rng(4)
+    t = Table({"name": [f"Inv {i}" for i in range(60)], "l": rng.uniform(10, 50, 60), "b": rng.uniform(-3, 3, 60),
+               "distance": rng.uniform(300, 3000, 60) * u.pc, "ebv": rng.uniform(0.1, 1.2, 60)})
+    t["ebv"][[3, 9, 11]] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tracers = dustkit.read_tracers(t)
+        model = dustkit.build_model(tracers, model="binned", quiet=True)
+        dustkit.save_model(model, tmp_path / "m.fits")
+        loaded = dustkit.load_model(tmp_path / "m.fits")
+    text = loaded.tracers_.summary()
+    assert "(60 input rows, 3 rejected)" in text.splitlines()[0]
+    assert "3  missing value in 'ebv'" in text and "Rejected:  none" not in text

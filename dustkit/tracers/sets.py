@@ -425,9 +425,18 @@ class TracerSet:
     def summary(self):
         """A plain-text summary: count, sky coverage, distances, A_V, rejected rows, assumptions."""
         n = len(self)
+        # the rejected rows themselves, or (tracers of a loaded model file) the record of their count
+        if len(self.rejected):
+            reasons, counts = np.unique(np.asarray(self.rejected["reason"]), return_counts=True)
+            kept_rows = True
+        else:
+            record = self.meta.get("rejected_by_reason") or {}
+            reasons, counts = np.array(list(record), dtype=str), np.array(list(record.values()), dtype=int)
+            kept_rows = False
+        n_rejected = int(counts.sum()) if counts.size else 0
         lines = [
             f"TracerSet: {n} tracers from {self.meta.get('source', 'unknown source')} "
-            f"({self.meta.get('n_input', n)} input rows, {len(self.rejected)} rejected)"
+            f"({self.meta.get('n_input', n)} input rows, {n_rejected} rejected)"
         ]
         if n:
             lo, hi = _longitude_span(self.l)
@@ -460,9 +469,9 @@ class TracerSet:
             lines.append(f"  Duplicates: {len(self.duplicates)} rows in {n_groups} groups, {how} (see .duplicates)")
         elif self.meta.get("duplicates") == "keep":
             lines.append("  Duplicates: not searched (duplicates='keep': rows taken as given)")
-        if len(self.rejected):
-            lines.append(f"  Rejected:  {len(self.rejected)} rows (see .rejected)")
-            reasons, counts = np.unique(np.asarray(self.rejected["reason"]), return_counts=True)
+        if n_rejected:
+            lines.append(f"  Rejected:  {n_rejected} rows " + ("(see .rejected)" if kept_rows else
+                                                            "(as read; the rows themselves are not kept in a model file)"))
             for k in np.argsort(-counts, kind="stable"):
                 lines.append(f"    {counts[k]:>8d}  {reasons[k]}")
         else:
