@@ -318,6 +318,30 @@ def test_face_on_default_extent_covers_tracers_and_shades_uninformed(model):
     assert _texts_inside_figure(ax.figure) == []
 
 
+def test_face_on_legend_swatch_looks_like_the_shaded_cells(model):
+    # the legend's "smooth layer only" swatch must look like the shaded cells on the drawn map (it
+    # was a flat grey against a pale wash of the colour map): the rendered colour of shaded cells
+    # (median over them) within 0.12 of the swatch in each of R, G, B (common practice: a legend
+    # key shows what it names)
+    ax = plotting.plot_face_on(model)
+    fig = ax.figure
+    fig.canvas.draw()
+    rgb = np.asarray(fig.canvas.buffer_rgba())[..., :3] / 255.0
+    swatch = next(h for h in ax.get_legend().get_patches() if "smooth layer only" in h.get_label())
+    shade = _by_gid(ax, "dustkit-face-on-layer-only")[0]
+    cells = np.asarray(shade.get_array()).reshape(-1)
+    coords = shade.get_coordinates()  # (ny + 1, nx + 1, 2) cell corners in data units
+    centres = 0.25 * (coords[:-1, :-1] + coords[1:, :-1] + coords[:-1, 1:] + coords[1:, 1:]).reshape(-1, 2)
+    legend_box = ax.get_legend().get_window_extent()
+    px = ax.transData.transform(centres[np.isfinite(cells) & ~np.ma.getmaskarray(cells)])
+    px = px[~((px[:, 0] >= legend_box.x0) & (px[:, 0] <= legend_box.x1) & (px[:, 1] >= legend_box.y0)
+               & (px[:, 1] <= legend_box.y1))]
+    h = rgb.shape[0]
+    seen = rgb[(h - px[:, 1]).astype(int).clip(0, h - 1), px[:, 0].astype(int).clip(0, rgb.shape[1] - 1)]
+    assert len(seen) > 20
+    np.testing.assert_allclose(np.median(seen, axis=0), np.asarray(swatch.get_facecolor()[:3]), atol=0.12)
+
+
 # ----------------------------------------------------------------------------- laws
 
 def test_plot_laws_one_line_per_law_within_its_range():

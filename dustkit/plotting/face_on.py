@@ -102,7 +102,10 @@ def plot_face_on(
 
             ax.pcolormesh(xe, ye, np.where(uninformed, 1.0, np.nan), cmap=ListedColormap(["white"]),
                           alpha=0.6, shading="flat", rasterized=True, gid="dustkit-face-on-layer-only")
-            layer_patch = Patch(facecolor="0.75", edgecolor="none", label="no tracers: smooth layer only")
+            # the legend swatch as the map shows such cells: their typical colour under the white wash
+            typical = np.nanmedian(np.where(uninformed, values, np.nan)) if np.isfinite(values[uninformed]).any() else 0.5 * top
+            wash = 0.4 * np.asarray(mesh.cmap(mesh.norm(typical))[:3]) + 0.6
+            layer_patch = Patch(facecolor=tuple(wash), edgecolor="0.5", lw=0.5, label="no tracers: smooth layer only")
         else:
             layer_patch = None
         if show_tracers and getattr(model, "tracers_", None) is not None:
