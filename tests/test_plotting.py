@@ -241,6 +241,24 @@ def test_sky_map_across_l_zero_and_marks(model):
     assert np.isclose(np.ptp(circle.get_ydata()), 4.0, atol=0.05)  # a 2 deg radius circle
 
 
+def test_sky_map_says_what_its_symbols_are_and_keeps_features_apart_from_the_mark(model):
+    # a legend names the two kinds of tracer (split at the map's distance), the sight line and the
+    # features; the feature rings are not drawn in the sight line's colour, and their labels are
+    # dark on a light halo, readable on any colour of the map (common practice)
+    feats = QTable({"l": [30.0, 40.0] * u.deg, "b": [1.0, -2.0] * u.deg, "distance": [1500.0, 2600.0] * u.pc,
+                    "extent": [1.0, 1.5] * u.deg})
+    ax = plotting.plot_sky(model, 2 * u.kpc, extent=(20, 55, -6, 6), mark=(30, 1, 2), features=feats)
+    labels = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert {"tracers nearer than 2 kpc", "tracers beyond 2 kpc", "sight line", "dust feature"} <= set(labels)
+    rings = [ln for ln in ax.lines if ln.get_gid() == "dustkit-features"]
+    mark = _line(ax, "dustkit-mark")
+    assert len(rings) == 2
+    assert all(matplotlib.colors.to_rgb(r.get_color()) != matplotlib.colors.to_rgb(mark.get_color()) for r in rings)
+    texts = [t for t in ax.texts if t.get_text() in ("1.50 kpc", "2.60 kpc")]
+    assert len(texts) == 2 and all(sum(matplotlib.colors.to_rgb(t.get_color())) < 0.5 for t in texts)
+    assert all(t.get_path_effects() for t in texts)
+
+
 def test_sky_map_full_sky_mollweide(model):
     ax = plotting.plot_sky(model, 2 * u.kpc, extent="all-sky", mark=(30, 10))
     assert ax.name == "mollweide"

@@ -186,6 +186,10 @@ def plot_sky(
             _mark_sight_line(ax, mark, mollweide, l_min)
         if features is not None and len(features):
             _sky_features(ax, features, mollweide, l_min)
+        handles, labels = ax.get_legend_handles_labels()
+        if handles:  # what the symbols are: small, in a corner clear of the axis labels, out of the layout
+            ax.legend(handles, labels, loc="lower right" if mollweide else "lower left", fontsize=7, frameon=True,
+                      framealpha=0.85, borderpad=0.4, handlelength=1.5).set_in_layout(False)
         fig = ax.figure
         fig.colorbar(mesh, ax=ax, label=clabel, shrink=0.9 if mollweide else 1.0,
                      orientation="horizontal" if mollweide else "vertical",
@@ -226,9 +230,9 @@ def _sky_tracers(ax, tracers, d_pc, mollweide, extent):
         y = lat
     size = 0.6 if mollweide else 1.0
     far_pts, = ax.plot(x[~near], y[~near], ls="none", marker=".", ms=2.0 * size, color=COLORS["grey"], alpha=0.6,
-                       label="tracers beyond", gid="dustkit-tracers-far")
+                       label=f"tracers beyond {_distance_text(d_pc)}", gid="dustkit-tracers-far")
     near_pts, = ax.plot(x[near], y[near], ls="none", marker="o", ms=2.8 * size, mfc="white", mec=COLORS["black"],
-                        mew=0.4, label="tracers nearer", gid="dustkit-tracers-near")
+                        mew=0.4, label=f"tracers nearer than {_distance_text(d_pc)}", gid="dustkit-tracers-near")
     for pts in (far_pts, near_pts):  # points outside the map must not push the layout around
         pts.set_in_layout(False)
 
@@ -244,8 +248,12 @@ def _mark_sight_line(ax, mark, mollweide, l_min):
         y0 = np.radians(bm)
     else:
         x0, y0 = float(_unwrap_into(lm, l_min)), bm
-    ax.plot([x0], [y0], ls="none", marker="+", ms=12, mew=2.0, color=COLORS["vermillion"], gid="dustkit-mark")[0] \
-        .set_in_layout(False)
+    from matplotlib import patheffects
+
+    cross = ax.plot([x0], [y0], ls="none", marker="+", ms=12, mew=2.0, color=COLORS["vermillion"], gid="dustkit-mark",
+                    label="sight line")[0]
+    cross.set_path_effects([patheffects.withStroke(linewidth=3.5, foreground="white")])
+    cross.set_in_layout(False)
     if rad > 0:
         t = np.linspace(0, 2 * np.pi, 181)
         # a small circle of angular radius ``rad`` around (lm, bm) on the sphere
@@ -273,6 +281,8 @@ def _sky_features(ax, features, mollweide, l_min):
     fr = column(features, "extent", u.deg) if "extent" in names else np.full(fl.size, 0.5)
     # a 'nearer than' feature (density_features) has no distance, only an upper one
     up = column(features, "distance_upper", u.pc) if "distance_upper" in names else np.full(fl.size, np.nan)
+    from matplotlib import patheffects
+
     t = np.linspace(0, 2 * np.pi, 91)
     label = "dust feature"
     for lm, bm, rad, d, d_up in zip(fl, fb, np.maximum(fr, 0.05), fd, up):
@@ -286,13 +296,16 @@ def _sky_features(ax, features, mollweide, l_min):
         else:
             x0 = float(_unwrap_into(lm, l_min))
             xs, ys, xt, yt = x0 + dl, bb, x0, bm + rad
-        line, = ax.plot(xs, ys, color=COLORS["vermillion"], lw=1.4, label=label, gid="dustkit-features")
+        # white rings edged in black, apart from the sight line's vermilion mark, seen on any colour of the map
+        line, = ax.plot(xs, ys, color="white", lw=1.4, label=label, gid="dustkit-features")
+        line.set_path_effects([patheffects.withStroke(linewidth=2.8, foreground=COLORS["black"])])
         line.set_in_layout(False)
         bound = not np.isfinite(d) and np.isfinite(d_up)
         d = d_up if bound else d
         text = ("< " if bound else "") + (f"{d / 1000:.2f} kpc" if d >= 1000 else f"{d:.0f} pc")
         txt = ax.annotate(text, (xt, yt), xytext=(0, 2), textcoords="offset points", ha="center",
-                          va="bottom", fontsize=7, color=COLORS["vermillion"])
+                          va="bottom", fontsize=8, color=COLORS["black"])
+        txt.set_path_effects([patheffects.withStroke(linewidth=2.5, foreground="white")])
         txt.set_in_layout(False)
         label = None
 
