@@ -163,3 +163,45 @@ def test_estimate_targets_refuses_an_unknown_temperature_column(model):
             estimate_targets(model, _targets(), bands=("G",), temperature="Teff_missing")
         with pytest.raises(ParameterError, match="temperature"):
             estimate_targets(model, _targets(), bands=("G",), temperature=500 * u.K)
+
+
+def test_answers_refuse_masked_and_non_finite_positions_naming_the_index(model):
+    # A masked cell of a QTable column (a MaskedQuantity) was answered at the placeholder under the mask, and a
+    # NaN longitude gave a silent NaN (while a NaN latitude or distance raised): a wrong number for a position
+    # nobody asked about, or a hole. Both must raise, naming the argument and the row.
+    from astropy.table import MaskedColumn, QTable
+
+    from dustkit import ParameterError
+
+    t = QTable()
+    t["l"] = MaskedColumn([30.0, 40.0, 45.0], mask=[False, True, False], unit="deg")
+    t["b"] = [1.0, 1.0, -2.0] * u.deg
+    t["d"] = [800.0, 1500.0, 2000.0] * u.pc
+    for answer in (model.av, model.query):
+        with pytest.raises(ParameterError, match=r"'l' parameter must be free of masked values.*index \[1\]"):
+            answer(t["l"], t["b"], t["d"])
+    # the same column with nothing masked answers as the plain one
+    t["l"].mask = False
+    np.testing.assert_array_equal(model.av(t["l"], t["b"], t["d"])[0],
+                                  model.av([30.0, 40.0, 45.0] * u.deg, t["b"], t["d"])[0])
+    with pytest.raises(ParameterError, match=r"'l' parameter must be a finite longitude.*nan\] at index \[2\]"):
+        model.av([30.0, 40.0, np.nan] * u.deg, t["b"], t["d"])
+    with pytest.raises(ParameterError, match=r"'l' parameter must be a finite longitude.*inf"):
+        model.query(np.inf * u.deg, 1 * u.deg, 1 * u.kpc)
+
+
+def test_answers_refuse_unusable_distance_errors_and_clashing_shapes(model):
+    # A NaN distance error gave a NaN av_err without a word, a negative one was squared into a real error, and
+    # arrays of different lengths failed with numpy's broadcasting message, naming no argument.
+    from dustkit import ParameterError
+
+    l, b, d = [30.0, 40.0] * u.deg, [1.0, -1.0] * u.deg, [800.0, 2000.0] * u.pc
+    for bad, shown in ((np.nan, "nan"), (-50.0, "-50.0"), (np.inf, "inf")):
+        with pytest.raises(ParameterError, match=rf"'distance_err' parameter must be finite and non-negative.*{shown}"):
+            model.av(l, b, d, distance_err=[100.0, bad] * u.pc)
+    with pytest.raises(ParameterError, match=r"'distance_err' parameter must be a scalar or one error per position"):
+        model.query(l, b, d, distance_err=[1.0, 2.0, 3.0] * u.pc)
+    with pytest.raises(ParameterError, match=r"'l, b, distance' parameter.*l \(3,\), b \(2,\)"):
+        model.av([30.0, 40.0, 50.0] * u.deg, b, d)
+    # an exact distance (error 0) is an answer, the same as no error given
+    np.testing.assert_array_equal(model.av(l, b, d, distance_err=0 * u.pc)[1], model.av(l, b, d)[1])
