@@ -116,11 +116,11 @@ ANSWER_HINT = ("Hint: dustkit.estimate_targets(model, table) answers a target li
                "place as NaN and counting them by reason.")
 
 
-def _position_error(name, requirement, values, bad):
+def _position_error(name, requirement, values, bad, hint=ANSWER_HINT):
     """ParameterError naming the argument, how many values are bad, the first of them and their indices."""
     idx = np.flatnonzero(bad)
     got = f"{idx.size} such value{'s' if idx.size > 1 else ''}: {values[idx[:3]].tolist()} at index {idx[:3].tolist()}"
-    return ParameterError(f"The '{name}' parameter must be {requirement}. Got {got} instead. {ANSWER_HINT}")
+    return ParameterError(f"The '{name}' parameter must be {requirement}. Got {got} instead. {hint}".rstrip())
 
 
 def _unmasked(name, value):
@@ -295,14 +295,22 @@ def profile_table(model, l, b, radius=None, distances=None):
         ``distance``, ``av``, ``av_err``, ``av_layer``; cumulative A_V is non-decreasing.
     """
     model.check_fitted()
-    lv = float(to_value("l", l, u.deg)) % 360.0
-    bv = float(to_value("b", b, u.deg))
-    check_real("b", bv, -90, 90)
+    lv, bv = (to_value(k, v, u.deg) for k, v in (("l", l), ("b", b)))
+    for k, v in (("l", lv), ("b", bv)):
+        if np.ndim(v) and np.size(v) != 1:
+            raise param_error(k, "one sky position (a profile is one sight line; use query for many)",
+                              f"{np.size(v)} values")
+    lv = check_real("l", float(np.ravel(lv)[0])) % 360.0
+    bv = check_real("b", float(np.ravel(bv)[0]), -90, 90)
     e = model.grid_.distance_edges
     if distances is None:
         dv = np.linspace(0.0, e[-1], 201)
     else:
-        dv = np.sort(np.atleast_1d(to_value("distances", distances, u.pc)).astype(float))
+        dv = np.atleast_1d(to_value("distances", _unmasked("distances", distances), u.pc)).astype(float).ravel()
+        bad = ~(dv >= 0) | ~np.isfinite(dv)
+        if bad.any():  # a negative distance was answered (binned: A_V > 0 before the Sun), a NaN crashed
+            raise _position_error("distances", "finite and non-negative", dv, bad, hint="")
+        dv = np.sort(dv)
     if radius is None:
         pts_l, pts_b = np.array([lv]), np.array([bv])
         rad = 0.0

@@ -205,3 +205,24 @@ def test_answers_refuse_unusable_distance_errors_and_clashing_shapes(model):
         model.av([30.0, 40.0, 50.0] * u.deg, b, d)
     # an exact distance (error 0) is an answer, the same as no error given
     np.testing.assert_array_equal(model.av(l, b, d, distance_err=0 * u.pc)[1], model.av(l, b, d)[1])
+
+
+def test_profile_refuses_negative_or_missing_distances_and_many_sight_lines(model):
+    # profile(distances=[-1, 5] kpc) answered the binned model at -1 kpc with A_V > 0 (dust before the Sun),
+    # a NaN distance crashed with an IndexError, and two longitudes a TypeError ("only 0-dimensional arrays").
+    from dustkit import ParameterError
+
+    with pytest.raises(ParameterError, match=r"'distances' parameter must be finite and non-negative.*-1000.0\] at index \[0\]"):
+        model.profile(40 * u.deg, 0 * u.deg, distances=[-1.0, 2.0] * u.kpc)
+    with pytest.raises(ParameterError, match=r"'distances' parameter must be finite and non-negative.*nan\] at index \[1\]"):
+        model.profile(40 * u.deg, 0 * u.deg, distances=[1.0, np.nan] * u.kpc)
+    with pytest.raises(ParameterError, match=r"'l' parameter must be one sky position.*query"):
+        model.profile([30.0, 40.0] * u.deg, 0 * u.deg)
+    # a one-element array is one sight line; l = 360 deg is l = 0 (astropy's Longitude wraps at 360 deg)
+    from astropy.coordinates import Longitude
+
+    wrapped = float(Longitude(360 * u.deg).deg)
+    one = model.profile([360.0] * u.deg, [0.0] * u.deg, distances=[0.0, 1.0, 2.0] * u.kpc)
+    ref = model.profile(wrapped * u.deg, 0 * u.deg, distances=[0.0, 1.0, 2.0] * u.kpc)
+    np.testing.assert_array_equal(one["av"], ref["av"])
+    assert one["av"][0].to_value(u.mag) == 0.0  # no dust in front of the Sun (common practice: A_V(0) = 0)
