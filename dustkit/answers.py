@@ -24,6 +24,7 @@ from the layer interpolated bilinearly on the sky (the HEALPix interpolation of
 
 import os
 import sys
+import warnings
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -34,7 +35,7 @@ from ._lib import healpix
 from ._lib.sky import separation_deg
 from ._lib.validation import check_int, check_real, param_error, to_value
 from .binned.calibration import predictive_variance
-from .exceptions import ParameterError
+from .exceptions import AssumptionWarning, ParameterError
 
 __all__ = [
     "CAUTION",
@@ -262,6 +263,12 @@ def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), la
 
         law = law or model.law
         rv = model.rv if rv is None else rv
+        if law != model.law or float(np.max(rv)) != model.rv or float(np.min(rv)) != model.rv:
+            note = (f"band extinctions under {law!r}, R_V = {rv!r} from the model's A_V, which is held fixed (it "
+                    f"refers to {model.law!r}, R_V = {model.rv:g}); for tracers measured as reddening the A_V "
+                    f"itself changes with the law and R_V: model.with_law(law, rv) gives that model")
+            t.meta["band_law"] = note
+            warnings.warn(f"query: {note}.", AssumptionWarning, stacklevel=3)
         temp = None
         if temperature is not None:
             if isinstance(temperature, u.Quantity):

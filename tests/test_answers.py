@@ -226,3 +226,19 @@ def test_profile_refuses_negative_or_missing_distances_and_many_sight_lines(mode
     ref = model.profile(wrapped * u.deg, 0 * u.deg, distances=[0.0, 1.0, 2.0] * u.kpc)
     np.testing.assert_array_equal(one["av"], ref["av"])
     assert one["av"][0].to_value(u.mag) == 0.0  # no dust in front of the Sun (common practice: A_V(0) = 0)
+
+
+def test_query_bands_under_another_rv_say_that_av_is_held_fixed(model):
+    # query(..., rv=5) converts the model's A_V (built under R_V = 3.1) to bands with the R_V = 5 curve,
+    # keeping A_V: for tracers measured as E(B-V), A_V = R_V E(B-V) (the definition of R_V) would itself be
+    # 5/3.1 times larger, so the band answers were 38% below the R_V = 5 model's without a word.
+    from dustkit.exceptions import AssumptionWarning
+
+    l, b, d = [30.0, 45.0] * u.deg, [1.0, -2.0] * u.deg, [800.0, 2000.0] * u.pc
+    with pytest.warns(AssumptionWarning, match=r"held fixed.*with_law"):
+        t = model.query(l, b, d, bands=("Ks",), rv=5.0)
+    assert "with_law" in t.meta["band_law"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)  # the model's own law and R_V: nothing to say
+        same = model.query(l, b, d, bands=("Ks",), rv=model.rv, law=model.law)
+    assert "band_law" not in same.meta
