@@ -24,6 +24,7 @@ from the layer interpolated bilinearly on the sky (the HEALPix interpolation of
 
 import os
 import sys
+import warnings
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -34,6 +35,7 @@ from ._lib import healpix
 from ._lib.sky import separation_deg
 from ._lib.validation import check_int, check_real, param_error, to_value
 from .binned.calibration import predictive_variance
+from .exceptions import AssumptionWarning, ParameterError
 
 __all__ = [
     "CAUTION",
@@ -111,39 +113,76 @@ def _is_skycoord(obj):
     return coords is not None and isinstance(obj, coords.SkyCoord)
 
 
+ANSWER_HINT = ("Hint: dustkit.estimate_targets(model, table) answers a target list, keeping the rows it cannot "
+               "place as NaN and counting them by reason.")
+
+
+def _position_error(name, requirement, values, bad, hint=ANSWER_HINT):
+    """ParameterError naming the argument, how many values are bad, the first of them and their indices."""
+    idx = np.flatnonzero(bad)
+    got = f"{idx.size} such value{'s' if idx.size > 1 else ''}: {values[idx[:3]].tolist()} at index {idx[:3].tolist()}"
+    return ParameterError(f"The '{name}' parameter must be {requirement}. Got {got} instead. {hint}".rstrip())
+
+
+def _unmasked(name, value):
+    """``value`` without its mask; masked entries (a masked column, a MaskedQuantity) raise, naming their indices.
+
+    A masked cell has no value to answer at: the data under the mask are placeholders, and answering them gave
+    numbers for positions nobody asked about.
+    """
+    mask = getattr(value, "mask", None)
+    if mask is None or _is_skycoord(value) or isinstance(value, (str, bytes)):
+        return value
+    mask = np.ravel(np.broadcast_to(np.asarray(mask, bool), np.shape(value)))
+    if mask.any():
+        idx = np.flatnonzero(mask)
+        raise ParameterError(f"The '{name}' parameter must be free of masked values. Got {idx.size} masked, at index "
+                             f"{idx[:3].tolist()} instead. {ANSWER_HINT}")
+    return value.unmasked if hasattr(value, "unmasked") else np.ma.getdata(value)
+
+
+def _broadcast(named):
+    """Broadcast the answers' arrays together, or say which shapes clash."""
+    try:
+        return np.broadcast_shapes(*(np.shape(v) for v in named.values()))
+    except ValueError:
+        shapes = ", ".join(f"{k} {np.shape(v)}" for k, v in named.items())
+        raise param_error(", ".join(named), "scalars or arrays of one shape (or shapes that broadcast together)",
+                          shapes) from None
+
+
 def sky_positions(l, b=None, distance=None):
     """Plain arrays from the answers' inputs: l (deg, in [0, 360)), b (deg), distance (pc), and the input shape.
 
     ``l`` is a Galactic longitude (Quantity) with ``b`` and ``distance``, or a SkyCoord (any
-    frame) with distances (or ``distance=``). Latitudes outside [-90, 90] deg and negative or
-    non-finite distances raise ``ParameterError``.
+    frame) with distances (or ``distance=``). Non-finite longitudes, latitudes outside
+    [-90, 90] deg, negative or non-finite distances, masked values and shapes that do not
+    broadcast together raise ``ParameterError`` naming the argument and the indices.
     """
     is_coord = _is_skycoord(l)
     if is_coord:
         c = l.galactic
-        lv = np.atleast_1d(c.l.deg).astype(float)
-        bv = np.atleast_1d(c.b.deg).astype(float)
+        lv = np.asarray(c.l.deg, float)
+        bv = np.asarray(c.b.deg, float)
         if distance is None:
             if c.distance.unit.physical_type != "length":
                 raise param_error("coords", "a SkyCoord with distances (or pass distance=)", "SkyCoord without distance")
             distance = c.distance
-        dv = np.atleast_1d(to_value("distance", distance, u.pc)).astype(float)
+        dv = to_value("distance", _unmasked("distance", distance), u.pc)
     else:
         if b is None or distance is None:
             raise param_error("l, b, distance", "given together (or pass one SkyCoord with distances)", "missing values")
-        lv = np.atleast_1d(to_value("l", l, u.deg)).astype(float)
-        bv = np.atleast_1d(to_value("b", b, u.deg)).astype(float)
-        dv = np.atleast_1d(to_value("distance", distance, u.pc)).astype(float)
-    shape = np.broadcast_shapes(
-        np.shape(getattr(l, "value", l)) if not is_coord else l.shape,
-        np.shape(getattr(b, "value", b)) if b is not None else (),
-        np.shape(getattr(distance, "value", distance)),
-    )
-    lv, bv, dv = (np.ravel(x) for x in np.broadcast_arrays(lv, bv, dv))
+        lv = to_value("l", _unmasked("l", l), u.deg)
+        bv = to_value("b", _unmasked("b", b), u.deg)
+        dv = to_value("distance", _unmasked("distance", distance), u.pc)
+    shape = _broadcast({"l": lv, "b": bv, "distance": dv} if not is_coord else {"coords": lv, "distance": dv})
+    lv, bv, dv = (np.ravel(np.broadcast_to(np.asarray(x, float), shape)) for x in (lv, bv, dv))
+    if not np.all(np.isfinite(lv)):
+        raise _position_error("l", "a finite longitude (deg)", lv, ~np.isfinite(lv))
     if np.any(np.abs(bv) > 90) or not np.all(np.isfinite(bv)):
-        raise param_error("b", "a latitude in [-90, 90] deg", bv[~(np.abs(bv) <= 90)][:3].tolist())
+        raise _position_error("b", "a latitude in [-90, 90] deg", bv, ~(np.abs(bv) <= 90))
     if np.any(dv < 0) or not np.all(np.isfinite(dv)):
-        raise param_error("distance", "finite and non-negative", dv[~(dv >= 0)][:3].tolist())
+        raise _position_error("distance", "finite and non-negative", dv, ~(dv >= 0) | ~np.isfinite(dv))
     return np.mod(lv, 360.0), bv, dv, shape
 
 
@@ -180,7 +219,16 @@ def distance_errors(distance_err, shape):
     """Distance errors (pc) as a flat float array for positions of ``shape`` (None stays None)."""
     if distance_err is None:
         return None
-    return np.broadcast_to(to_value("distance_err", distance_err, u.pc), shape).ravel()
+    de = to_value("distance_err", _unmasked("distance_err", distance_err), u.pc)
+    try:
+        de = np.broadcast_to(de, shape).ravel()
+    except ValueError:
+        raise param_error("distance_err", f"a scalar or one error per position (shape {shape})",
+                          f"shape {np.shape(de)}") from None
+    bad = ~(de >= 0) | ~np.isfinite(de)
+    if bad.any():  # NaN errors made NaN av_err, negative ones were squared into an error
+        raise _position_error("distance_err", "finite and non-negative (0 * u.pc for an exact distance)", de, bad)
+    return de
 
 
 def av_quantities(model, l, b=None, distance=None, distance_err=None):
@@ -215,6 +263,12 @@ def query_table(model, l, b=None, distance=None, distance_err=None, bands=(), la
 
         law = law or model.law
         rv = model.rv if rv is None else rv
+        if law != model.law or float(np.max(rv)) != model.rv or float(np.min(rv)) != model.rv:
+            note = (f"band extinctions under {law!r}, R_V = {rv!r} from the model's A_V, which is held fixed (it "
+                    f"refers to {model.law!r}, R_V = {model.rv:g}); for tracers measured as reddening the A_V "
+                    f"itself changes with the law and R_V: model.with_law(law, rv) gives that model")
+            t.meta["band_law"] = note
+            warnings.warn(f"query: {note}.", AssumptionWarning, stacklevel=3)
         temp = None
         if temperature is not None:
             if isinstance(temperature, u.Quantity):
@@ -248,14 +302,22 @@ def profile_table(model, l, b, radius=None, distances=None):
         ``distance``, ``av``, ``av_err``, ``av_layer``; cumulative A_V is non-decreasing.
     """
     model.check_fitted()
-    lv = float(to_value("l", l, u.deg)) % 360.0
-    bv = float(to_value("b", b, u.deg))
-    check_real("b", bv, -90, 90)
+    lv, bv = (to_value(k, v, u.deg) for k, v in (("l", l), ("b", b)))
+    for k, v in (("l", lv), ("b", bv)):
+        if np.ndim(v) and np.size(v) != 1:
+            raise param_error(k, "one sky position (a profile is one sight line; use query for many)",
+                              f"{np.size(v)} values")
+    lv = check_real("l", float(np.ravel(lv)[0])) % 360.0
+    bv = check_real("b", float(np.ravel(bv)[0]), -90, 90)
     e = model.grid_.distance_edges
     if distances is None:
         dv = np.linspace(0.0, e[-1], 201)
     else:
-        dv = np.sort(np.atleast_1d(to_value("distances", distances, u.pc)).astype(float))
+        dv = np.atleast_1d(to_value("distances", _unmasked("distances", distances), u.pc)).astype(float).ravel()
+        bad = ~(dv >= 0) | ~np.isfinite(dv)
+        if bad.any():  # a negative distance was answered (binned: A_V > 0 before the Sun), a NaN crashed
+            raise _position_error("distances", "finite and non-negative", dv, bad, hint="")
+        dv = np.sort(dv)
     if radius is None:
         pts_l, pts_b = np.array([lv]), np.array([bv])
         rad = 0.0

@@ -163,3 +163,82 @@ def test_estimate_targets_refuses_an_unknown_temperature_column(model):
             estimate_targets(model, _targets(), bands=("G",), temperature="Teff_missing")
         with pytest.raises(ParameterError, match="temperature"):
             estimate_targets(model, _targets(), bands=("G",), temperature=500 * u.K)
+
+
+def test_answers_refuse_masked_and_non_finite_positions_naming_the_index(model):
+    # A masked cell of a QTable column (a MaskedQuantity) was answered at the placeholder under the mask, and a
+    # NaN longitude gave a silent NaN (while a NaN latitude or distance raised): a wrong number for a position
+    # nobody asked about, or a hole. Both must raise, naming the argument and the row.
+    from astropy.table import MaskedColumn, QTable
+
+    from dustkit import ParameterError
+
+    t = QTable()
+    t["l"] = MaskedColumn([30.0, 40.0, 45.0], mask=[False, True, False], unit="deg")
+    t["b"] = [1.0, 1.0, -2.0] * u.deg
+    t["d"] = [800.0, 1500.0, 2000.0] * u.pc
+    for answer in (model.av, model.query):
+        with pytest.raises(ParameterError, match=r"'l' parameter must be free of masked values.*index \[1\]"):
+            answer(t["l"], t["b"], t["d"])
+    # the same column with nothing masked answers as the plain one
+    t["l"].mask = False
+    np.testing.assert_array_equal(model.av(t["l"], t["b"], t["d"])[0],
+                                  model.av([30.0, 40.0, 45.0] * u.deg, t["b"], t["d"])[0])
+    with pytest.raises(ParameterError, match=r"'l' parameter must be a finite longitude.*nan\] at index \[2\]"):
+        model.av([30.0, 40.0, np.nan] * u.deg, t["b"], t["d"])
+    with pytest.raises(ParameterError, match=r"'l' parameter must be a finite longitude.*inf"):
+        model.query(np.inf * u.deg, 1 * u.deg, 1 * u.kpc)
+
+
+def test_answers_refuse_unusable_distance_errors_and_clashing_shapes(model):
+    # A NaN distance error gave a NaN av_err without a word, a negative one was squared into a real error, and
+    # arrays of different lengths failed with numpy's broadcasting message, naming no argument.
+    from dustkit import ParameterError
+
+    l, b, d = [30.0, 40.0] * u.deg, [1.0, -1.0] * u.deg, [800.0, 2000.0] * u.pc
+    for bad, shown in ((np.nan, "nan"), (-50.0, "-50.0"), (np.inf, "inf")):
+        with pytest.raises(ParameterError, match=rf"'distance_err' parameter must be finite and non-negative.*{shown}"):
+            model.av(l, b, d, distance_err=[100.0, bad] * u.pc)
+    with pytest.raises(ParameterError, match=r"'distance_err' parameter must be a scalar or one error per position"):
+        model.query(l, b, d, distance_err=[1.0, 2.0, 3.0] * u.pc)
+    with pytest.raises(ParameterError, match=r"'l, b, distance' parameter.*l \(3,\), b \(2,\)"):
+        model.av([30.0, 40.0, 50.0] * u.deg, b, d)
+    # an exact distance (error 0) is an answer, the same as no error given
+    np.testing.assert_array_equal(model.av(l, b, d, distance_err=0 * u.pc)[1], model.av(l, b, d)[1])
+
+
+def test_profile_refuses_negative_or_missing_distances_and_many_sight_lines(model):
+    # profile(distances=[-1, 5] kpc) answered the binned model at -1 kpc with A_V > 0 (dust before the Sun),
+    # a NaN distance crashed with an IndexError, and two longitudes a TypeError ("only 0-dimensional arrays").
+    from dustkit import ParameterError
+
+    with pytest.raises(ParameterError, match=r"'distances' parameter must be finite and non-negative.*-1000.0\] at index \[0\]"):
+        model.profile(40 * u.deg, 0 * u.deg, distances=[-1.0, 2.0] * u.kpc)
+    with pytest.raises(ParameterError, match=r"'distances' parameter must be finite and non-negative.*nan\] at index \[1\]"):
+        model.profile(40 * u.deg, 0 * u.deg, distances=[1.0, np.nan] * u.kpc)
+    with pytest.raises(ParameterError, match=r"'l' parameter must be one sky position.*query"):
+        model.profile([30.0, 40.0] * u.deg, 0 * u.deg)
+    # a one-element array is one sight line; l = 360 deg is l = 0 (astropy's Longitude wraps at 360 deg)
+    from astropy.coordinates import Longitude
+
+    wrapped = float(Longitude(360 * u.deg).deg)
+    one = model.profile([360.0] * u.deg, [0.0] * u.deg, distances=[0.0, 1.0, 2.0] * u.kpc)
+    ref = model.profile(wrapped * u.deg, 0 * u.deg, distances=[0.0, 1.0, 2.0] * u.kpc)
+    np.testing.assert_array_equal(one["av"], ref["av"])
+    assert one["av"][0].to_value(u.mag) == 0.0  # no dust in front of the Sun (common practice: A_V(0) = 0)
+
+
+def test_query_bands_under_another_rv_say_that_av_is_held_fixed(model):
+    # query(..., rv=5) converts the model's A_V (built under R_V = 3.1) to bands with the R_V = 5 curve,
+    # keeping A_V: for tracers measured as E(B-V), A_V = R_V E(B-V) (the definition of R_V) would itself be
+    # 5/3.1 times larger, so the band answers were 38% below the R_V = 5 model's without a word.
+    from dustkit.exceptions import AssumptionWarning
+
+    l, b, d = [30.0, 45.0] * u.deg, [1.0, -2.0] * u.deg, [800.0, 2000.0] * u.pc
+    with pytest.warns(AssumptionWarning, match=r"held fixed.*with_law"):
+        t = model.query(l, b, d, bands=("Ks",), rv=5.0)
+    assert "with_law" in t.meta["band_law"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", AssumptionWarning)  # the model's own law and R_V: nothing to say
+        same = model.query(l, b, d, bands=("Ks",), rv=model.rv, law=model.law)
+    assert "band_law" not in same.meta
