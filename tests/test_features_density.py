@@ -465,3 +465,30 @@ def test_features_the_models_own_posterior_doubts_are_not_listed(cloudy, smooth)
     # the strong cloud stays listed (truth of the invented field)
     f, sep = _nearest(density_features(cloudy[2]), STRONG)
     assert sep <= 2.0 and f["model_significance"] >= 0.75
+
+
+def test_the_bracket_reports_the_tracers_distances_not_the_fitted_one():
+    # distance_front and distance_behind are documented as the tracers that bracket a cloud
+    # (README, "Dust features"): where the fitted distance falls outside that gap, the columns
+    # must still name the two tracers, and the quoted error must still reach the fitted distance
+    from dustkit.features.density import _bracket
+
+    d = np.array([500.0, 600.0, 700.0])
+    shows = np.array([False, True, True])
+    front, behind, spread = _bracket(d, 0.05 * d, shows, 800.0, 0.0, 3500.0)
+    assert (front, behind) == (500.0, 600.0)
+    # a cloud uniform over 500-800 pc has an RMS offset from 800 pc of 300 / sqrt(3) (uniform
+    # distribution, from memory): the error counts the whole way to the fitted distance
+    assert spread >= 300.0 / np.sqrt(3.0)
+    # in a fitted model (an invented cloud at 1.25 kpc whose fitted distance lies beyond the
+    # nearest tracer behind it), every bracket end is one of the model's tracers
+    cloud = Cloud(l=136.0, b=0.0, distance=1250.0, radius=2.2, depth=30.0, av=1.5)
+    _, _, model = _fit(DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=(cloud,)), 1000, 10)
+    feats = density_features(model)
+    assert len(feats) >= 1
+    td = np.asarray(model.tracers_.distance, float)
+    for col in ("distance_front", "distance_behind"):
+        ends = feats[col].to_value(u.pc)
+        assert np.all(np.isnan(ends) | np.isin(ends, td)), (col, ends)
+    both = np.isfinite(feats["distance_front"]) & np.isfinite(feats["distance_behind"])
+    assert np.all(feats["distance_front"][both] <= feats["distance_behind"][both])

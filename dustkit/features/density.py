@@ -512,8 +512,9 @@ def _bracket(d_t, de_t, shows, dist, near_edge, far_edge):
     s_lo, s_hi = int(best.min()), int(best.max())
     lo, s_f = (float(d[s_lo - 1]), float(de[s_lo - 1])) if s_lo > 0 else (near_edge, 0.0)
     hi, s_b = (float(d[s_hi]), float(de[s_hi])) if s_hi < n else (far_edge, 0.0)
-    lo, hi = min(lo, dist), max(hi, dist)
-    centre, gap = 0.5 * (lo + hi), hi - lo
+    # the spread counts a gap that holds dist; the ends reported are the tracers' own distances
+    lo_in, hi_in = min(lo, dist), max(hi, dist)
+    centre, gap = 0.5 * (lo_in + hi_in), hi_in - lo_in
     spread = float(np.sqrt((dist - centre) ** 2 + gap**2 / 12.0 + (s_f**2 + s_b**2) / 3.0))
     return (lo if s_lo > 0 else np.nan), (hi if s_hi < n else np.nan), spread
 
