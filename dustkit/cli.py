@@ -823,6 +823,10 @@ def _cmd_features(args, out):
         if path:
             format_for(path, "table")
             check_target(path, args.overwrite)
+    if args.detections and os.path.abspath(os.path.expanduser(args.detections)) == os.path.abspath(
+            os.path.expanduser(args.output)):
+        raise _UsageError(f"-o and --detections name the same file ({args.output!r}): the per-pixel steps would "
+                          "replace the feature table. Hint: give them a name of their own, e.g. --detections pixels.ecsv")
     model = load_model(args.model)
     has_density = hasattr(model, "samples_")
     finder = args.finder if args.finder != "auto" else ("density" if has_density else "steps")
