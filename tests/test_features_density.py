@@ -492,3 +492,31 @@ def test_the_bracket_reports_the_tracers_distances_not_the_fitted_one():
         assert np.all(np.isnan(ends) | np.isin(ends, td)), (col, ends)
     both = np.isfinite(feats["distance_front"]) & np.isfinite(feats["distance_behind"])
     assert np.all(feats["distance_front"][both] <= feats["distance_behind"][both])
+
+
+def test_the_command_line_says_why_no_feature_is_listed(cloudy, tmp_path, capsys):
+    # an empty result must not read as a list cut short ("0 dust feature(s) ...:" and nothing
+    # after it): the summary says why each candidate was left out, in numbers that add up to
+    # the candidates tested, and the file still has every column
+    from astropy.table import Table
+
+    from dustkit.cli import main
+    from dustkit.io import save_model
+
+    _, _, model = cloudy
+    path = tmp_path / "density_model.fits"
+    save_model(model, path)
+    out_ecsv = tmp_path / "none.ecsv"
+    capsys.readouterr()
+    assert main(["features", str(path), "-o", str(out_ecsv), "--min-delta-av", "50"]) == 0
+    printed = capsys.readouterr().out
+    got = Table.read(out_ecsv)
+    assert len(got) == 0 and {"kind", "distance", "distance_upper", "delta_av", "significance"} <= set(got.colnames)
+    meta = got.meta
+    assert meta["n_candidates"] >= 1
+    first = printed.splitlines()[0]
+    assert not first.endswith(":"), first
+    improbable = meta["n_candidates"] - meta["n_unsupported"] - meta["n_model_doubts"]
+    assert (f"No feature listed: of {meta['n_candidates']} candidate region(s), {meta['n_unsupported']} shown by "
+            f"fewer than 2 tracers, {meta['n_model_doubts']} below the model's own probability") in printed
+    assert f"{improbable} below the tracers' probability 0.99" in printed and "50 mag" in printed
