@@ -520,3 +520,17 @@ def test_the_command_line_says_why_no_feature_is_listed(cloudy, tmp_path, capsys
     assert (f"No feature listed: of {meta['n_candidates']} candidate region(s), {meta['n_unsupported']} shown by "
             f"fewer than 2 tracers, {meta['n_model_doubts']} below the model's own probability") in printed
     assert f"{improbable} below the tracers' probability 0.99" in printed and "50 mag" in printed
+
+
+def test_the_probability_cut_refuses_a_table_of_sight_line_steps():
+    # a sight-line table's 'significance' is a BIC improvement (10, 25, ...): cutting it as a
+    # probability kept every row and gave meta['expected_false'] below zero, silently
+    from dustkit.features import find_steps, significant_features
+
+    rng = np.random.default_rng(5)
+    d = np.sort(rng.uniform(200.0, 3000.0, 80))
+    av = 0.3 * d / 1000.0 + 1.0 * (d > 1000.0) + rng.normal(0.0, 0.05, d.size)  # an invented 1 mag step at 1 kpc
+    steps = find_steps(d * u.pc, 0.05 * d * u.pc, av * u.mag, np.full(d.size, 0.05) * u.mag, n_boot=20)
+    assert len(steps) >= 1 and np.all(np.asarray(steps["significance"]) >= 10)
+    with pytest.raises(ParameterError, match="model_significance.*BIC"):
+        significant_features(steps, 0.99)
