@@ -534,3 +534,21 @@ def test_the_probability_cut_refuses_a_table_of_sight_line_steps():
     assert len(steps) >= 1 and np.all(np.asarray(steps["significance"]) >= 10)
     with pytest.raises(ParameterError, match="model_significance.*BIC"):
         significant_features(steps, 0.99)
+
+
+def test_a_fits_feature_table_keeps_what_its_significance_means(cloudy, tmp_path):
+    # 'significance' is the probability of adding more than min_delta_av: a FITS table that
+    # drops that setting (header keywords are 8 characters) leaves the column without a meaning.
+    # The settings and counts come back under their own names (HIERARCH cards), as in ECSV.
+    from astropy.table import QTable
+
+    from dustkit.io import write_table
+
+    _, _, model = cloudy
+    feats = density_features(model, min_delta_av=0.3 * u.mag)
+    back = QTable.read(write_table(feats, tmp_path / "features.fits"))
+    for key in ("min_delta_av", "min_probability", "min_model_probability", "min_contrast", "min_support",
+                "n_candidates", "n_unsupported", "n_model_doubts", "expected_false"):
+        assert back.meta[key] == pytest.approx(feats.meta[key]), key
+    assert back.meta["min_delta_av"] == 0.3 and back.meta["NSIDE"] == feats.meta["nside"]
+    assert back["distance"].unit == u.pc and back["delta_av"].unit == u.mag
