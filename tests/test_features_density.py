@@ -552,3 +552,17 @@ def test_a_fits_feature_table_keeps_what_its_significance_means(cloudy, tmp_path
         assert back.meta[key] == pytest.approx(feats.meta[key]), key
     assert back.meta["min_delta_av"] == 0.3 and back.meta["NSIDE"] == feats.meta["nside"]
     assert back["distance"].unit == u.pc and back["delta_av"].unit == u.mag
+
+
+def test_the_tracers_probability_is_never_above_one():
+    # the significance column is a probability: the posterior mass of the scales was summed
+    # and came out as 1.0000000000000004 for a clear cloud (seen on an invented cloud at l = 0)
+    from dustkit.features.density import _scale_probability, _step_posterior
+
+    rng = np.random.default_rng(2)  # an invented sight line with a 1.2 mag step at 1 kpc
+    n = 40
+    d = rng.uniform(300.0, 3000.0, n)
+    y = 1.2 * (d > 1000.0) + rng.normal(0.0, 0.1, n)
+    _, _, p_scale = _step_posterior(d, 0.08 * d, y, np.ones(n), np.full(n, 0.1), 500.0, 3500.0)
+    p = _scale_probability(p_scale, 1.2, 0.25)
+    assert 0.99 < p <= 1.0

@@ -534,6 +534,11 @@ def _probability(delta, delta_s, dav_min):
     return float(stats.t.cdf((delta - dav_min) / sd, df=delta_s.size))
 
 
+def _scale_probability(p_scale, delta, dav_min):
+    """Posterior mass of the scales on ``delta`` that add more than ``dav_min``; at most 1 (the sum rounds above)."""
+    return min(1.0, float(np.sum(p_scale[_SCALES * delta > dav_min])))
+
+
 def _excess_each(av, lay, slots, e, x):
     """The model's A_V above the layer in pixel slot ``slots[i]`` at distance ``x[i]`` (pc; linear in the bin)."""
     i = np.clip(np.searchsorted(e, x) - 1, 0, e.size - 2)
@@ -622,7 +627,7 @@ def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mi
         dist, lik_sd, p_scale = _step_posterior(d_t[use], de_t[use], y_all[use], col_all[use], tae[in_fp][use], lo, hi)
         # significance: the tracers' posterior probability that the cloud adds more than
         # dav_min through the peak pixel (the model's column there, delta, times the scale)
-        significance = float(np.sum(p_scale[_SCALES * delta > dav_min]))
+        significance = _scale_probability(p_scale, delta, dav_min)
     else:  # the mode's distance: its spread over the samples (excess-weighted over the region's cells)
         inc_s = np.diff(av[a][:, :, None] + samples[a], axis=1)       # (n_cells_pixels, K, S)
         ws = np.maximum(inc_s[np.arange(a.size), k] - inc_l[a, k][:, None], 0.0)  # (n_cells, S)
