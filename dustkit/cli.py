@@ -823,6 +823,10 @@ def _cmd_features(args, out):
         if path:
             format_for(path, "table")
             check_target(path, args.overwrite)
+    if args.detections and os.path.abspath(os.path.expanduser(args.detections)) == os.path.abspath(
+            os.path.expanduser(args.output)):
+        raise _UsageError(f"-o and --detections name the same file ({args.output!r}): the per-pixel steps would "
+                          "replace the feature table. Hint: give them a name of their own, e.g. --detections pixels.ecsv")
     model = load_model(args.model)
     has_density = hasattr(model, "samples_")
     finder = args.finder if args.finder != "auto" else ("density" if has_density else "steps")
@@ -837,8 +841,16 @@ def _cmd_features(args, out):
                                    ("min_model_probability", args.min_model_probability)) if v is not None} | given_dav
         feats = density_features(model, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
-        out(f"{len(feats)} dust feature(s) in the 3-D density ({feats.meta['n_candidates']} candidate region(s) "
-            f"tested against their tracers):")
+        meta = feats.meta
+        out(f"{len(feats)} dust feature(s) in the 3-D density ({meta['n_candidates']} candidate region(s) "
+            "tested against their tracers)" + (":" if len(feats) else "."))
+        if not len(feats):
+            improbable = meta["n_candidates"] - meta["n_unsupported"] - meta["n_model_doubts"]
+            out(f"No feature listed: of {meta['n_candidates']} candidate region(s), {meta['n_unsupported']} shown by "
+                f"fewer than {meta['min_support']} tracers, {meta['n_model_doubts']} below the model's own probability "
+                f"{meta['min_model_probability']:g} (--min-model-probability), {improbable} below the tracers' "
+                f"probability {meta['min_probability']:g} (--min-probability) of adding {meta['min_delta_av']:g} mag. "
+                "The table has the columns and no rows.")
         for r in feats:
             if r["kind"] == KIND_NEARER:
                 where = (f"nearer than {r['distance_upper'].value:6.0f} pc (fewer than "
@@ -850,8 +862,8 @@ def _cmd_features(args, out):
                 f"{r['delta_av_err'].value:.2f} mag, tracers {r['n_front']} in front, {r['n_behind']} behind, "
                 f"probability {r['significance']:.3f}")
         out(f"Wrote {path}")
-        out("Distances and depths are the model's: it resolves dust in depth only to its correlation length "
-            f"({feats.meta['resolution']}) and the tracers' distance errors.")
+        out("Distances and depths are the model's: it resolves dust in depth only to its "
+            f"{feats.meta['resolution']} and the tracers' distance errors.")
         out(feats.meta["caution"])
         return 0
     feats, det = detect_features(
@@ -859,7 +871,13 @@ def _cmd_features(args, out):
         min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
         return_detections=True, **given_dav)
     path = write_table(feats, args.output, overwrite=args.overwrite)
-    out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels searched:")
+    out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels "
+        "searched" + (":" if len(feats) else
+                      f". No step passed: at least {feats.meta['min_delta_av']:g} mag (--min-delta-av), a BIC "
+                      f"improvement of at least {feats.meta['min_significance']:g} (--min-significance), "
+                      f"{feats.meta['min_tracers']} tracers on each side, found again in "
+                      f"{feats.meta['min_boot_fraction']:.0%} of bootstrap resamples. The table has the columns "
+                      "and no rows."))
     for r in feats:
         out(f"  #{r['feature']}: l = {r['l'].value:7.2f} deg, b = {r['b'].value:+6.2f} deg, extent {r['extent'].value:.1f} deg, "
             f"distance {r['distance'].value:6.0f} +- {r['distance_err'].value:.0f} pc, "

@@ -590,12 +590,19 @@ def _table_for_fits(tab):
               "layer_z_sun": "LAYZSUN", "layer_z_sun_err": "LAYZSUNE"}
     for k, v in meta.items():
         key = keymap.get(k, str(k).upper())
-        if k == "caution" or len(key) > 8 or not key.replace("_", "").replace("-", "").isalnum():
+        if k == "caution" or not (key.replace("_", "").replace("-", "").isalnum() and key.isascii()):
             continue
         if isinstance(v, (str, int, float, bool, np.integer, np.floating, np.bool_)):
             value = _fits_value(v)
-            if not isinstance(value, str) or (len(value) <= 68 and value.isascii()):
-                t.meta[key] = value
+            if isinstance(value, str) and not value.isascii():
+                continue
+            if len(key) <= 8:
+                if not isinstance(value, str) or len(value) <= 68:
+                    t.meta[key] = value
+            elif len(f"HIERARCH {k} = ") + (len(value) + 2 if isinstance(value, str) else 20) <= 80:
+                # a longer name (a finder's settings and counts: min_delta_av, n_candidates, ...) goes in a
+                # HIERARCH card, which astropy reads back under the same name
+                t.meta[f"HIERARCH {k}"] = value
     t.meta["DUSTKIT"] = _version()
     if "caution" in meta:
         t.meta["COMMENT"] = textwrap.wrap(str(meta["caution"]), 70)
@@ -620,7 +627,8 @@ def write_table(table, path, format=None, overwrite=False):
     Notes
     -----
     ECSV keeps units and metadata; FITS keeps units and puts simple metadata in header
-    keywords; CSV keeps column names and values only (for spreadsheets), a column of several
+    keywords (names longer than 8 characters in HIERARCH cards, read back under the same
+    names); CSV keeps column names and values only (for spreadsheets), a column of several
     values per row (``av_samples``) spread over ``av_samples_1``, ``av_samples_2``, ...
     """
     fmt = _table_format(path, format)

@@ -620,3 +620,24 @@ def test_export_refuses_a_table_name_for_the_maps_before_writing_anything(built,
     rc, _, err = call("export", built[0], "-o", tmp_path / "t.ecsv", "--maps", tmp_path / "maps.csv")
     assert rc == 1 and "slice-map file is FITS" in one_line_error(err)
     assert list(tmp_path.iterdir()) == []
+
+
+def test_features_refuses_one_file_for_the_table_and_the_detections(built, tmp_path, call):
+    # -o and --detections naming one file: the detections written second replaced the feature
+    # table (with --overwrite, 'Wrote' printed twice), or, without it, the run failed after
+    # writing the table with "already exists". Refused before any work, nothing written.
+    target = tmp_path / "same.ecsv"
+    for extra in ((), ("--overwrite",)):
+        rc, out, err = call("features", built[0], "-o", target, "--detections", tmp_path / "." / "same.ecsv", *extra)
+        assert rc == 2 and "--detections" in one_line_error(err) and "same file" in one_line_error(err)
+        assert not target.exists()
+
+
+def test_features_command_says_why_no_step_is_listed(built, tmp_path, call):
+    # an empty result reads as one, with the tests no step passed, and the file has the columns
+    out_ecsv = tmp_path / "none.ecsv"
+    rc, out, err = call("features", built[0], "-o", out_ecsv, "--min-delta-av", "50", check_rc=0)
+    first = out.splitlines()[0]
+    assert first.startswith("0 dust feature(s)") and "No step passed: at least 50 mag" in first
+    got = Table.read(out_ecsv)
+    assert len(got) == 0 and {"l", "b", "distance", "distance_err", "delta_av"} <= set(got.colnames)

@@ -465,3 +465,104 @@ def test_features_the_models_own_posterior_doubts_are_not_listed(cloudy, smooth)
     # the strong cloud stays listed (truth of the invented field)
     f, sep = _nearest(density_features(cloudy[2]), STRONG)
     assert sep <= 2.0 and f["model_significance"] >= 0.75
+
+
+def test_the_bracket_reports_the_tracers_distances_not_the_fitted_one():
+    # distance_front and distance_behind are documented as the tracers that bracket a cloud
+    # (README, "Dust features"): where the fitted distance falls outside that gap, the columns
+    # must still name the two tracers, and the quoted error must still reach the fitted distance
+    from dustkit.features.density import _bracket
+
+    d = np.array([500.0, 600.0, 700.0])
+    shows = np.array([False, True, True])
+    front, behind, spread = _bracket(d, 0.05 * d, shows, 800.0, 0.0, 3500.0)
+    assert (front, behind) == (500.0, 600.0)
+    # a cloud uniform over 500-800 pc has an RMS offset from 800 pc of 300 / sqrt(3) (uniform
+    # distribution, from memory): the error counts the whole way to the fitted distance
+    assert spread >= 300.0 / np.sqrt(3.0)
+    # in a fitted model (an invented cloud at 1.25 kpc whose fitted distance lies beyond the
+    # nearest tracer behind it), every bracket end is one of the model's tracers
+    cloud = Cloud(l=136.0, b=0.0, distance=1250.0, radius=2.2, depth=30.0, av=1.5)
+    _, _, model = _fit(DustField(a0=0.9, h=110.0, z_sun=15.0, clouds=(cloud,)), 1000, 10)
+    feats = density_features(model)
+    assert len(feats) >= 1
+    td = np.asarray(model.tracers_.distance, float)
+    for col in ("distance_front", "distance_behind"):
+        ends = feats[col].to_value(u.pc)
+        assert np.all(np.isnan(ends) | np.isin(ends, td)), (col, ends)
+    both = np.isfinite(feats["distance_front"]) & np.isfinite(feats["distance_behind"])
+    assert np.all(feats["distance_front"][both] <= feats["distance_behind"][both])
+
+
+def test_the_command_line_says_why_no_feature_is_listed(cloudy, tmp_path, capsys):
+    # an empty result must not read as a list cut short ("0 dust feature(s) ...:" and nothing
+    # after it): the summary says why each candidate was left out, in numbers that add up to
+    # the candidates tested, and the file still has every column
+    from astropy.table import Table
+
+    from dustkit.cli import main
+    from dustkit.io import save_model
+
+    _, _, model = cloudy
+    path = tmp_path / "density_model.fits"
+    save_model(model, path)
+    out_ecsv = tmp_path / "none.ecsv"
+    capsys.readouterr()
+    assert main(["features", str(path), "-o", str(out_ecsv), "--min-delta-av", "50"]) == 0
+    printed = capsys.readouterr().out
+    got = Table.read(out_ecsv)
+    assert len(got) == 0 and {"kind", "distance", "distance_upper", "delta_av", "significance"} <= set(got.colnames)
+    meta = got.meta
+    assert meta["n_candidates"] >= 1
+    first = printed.splitlines()[0]
+    assert not first.endswith(":"), first
+    improbable = meta["n_candidates"] - meta["n_unsupported"] - meta["n_model_doubts"]
+    assert (f"No feature listed: of {meta['n_candidates']} candidate region(s), {meta['n_unsupported']} shown by "
+            f"fewer than 2 tracers, {meta['n_model_doubts']} below the model's own probability") in printed
+    assert f"{improbable} below the tracers' probability 0.99" in printed and "50 mag" in printed
+
+
+def test_the_probability_cut_refuses_a_table_of_sight_line_steps():
+    # a sight-line table's 'significance' is a BIC improvement (10, 25, ...): cutting it as a
+    # probability kept every row and gave meta['expected_false'] below zero, silently
+    from dustkit.features import find_steps, significant_features
+
+    rng = np.random.default_rng(5)
+    d = np.sort(rng.uniform(200.0, 3000.0, 80))
+    av = 0.3 * d / 1000.0 + 1.0 * (d > 1000.0) + rng.normal(0.0, 0.05, d.size)  # an invented 1 mag step at 1 kpc
+    steps = find_steps(d * u.pc, 0.05 * d * u.pc, av * u.mag, np.full(d.size, 0.05) * u.mag, n_boot=20)
+    assert len(steps) >= 1 and np.all(np.asarray(steps["significance"]) >= 10)
+    with pytest.raises(ParameterError, match="model_significance.*BIC"):
+        significant_features(steps, 0.99)
+
+
+def test_a_fits_feature_table_keeps_what_its_significance_means(cloudy, tmp_path):
+    # 'significance' is the probability of adding more than min_delta_av: a FITS table that
+    # drops that setting (header keywords are 8 characters) leaves the column without a meaning.
+    # The settings and counts come back under their own names (HIERARCH cards), as in ECSV.
+    from astropy.table import QTable
+
+    from dustkit.io import write_table
+
+    _, _, model = cloudy
+    feats = density_features(model, min_delta_av=0.3 * u.mag)
+    back = QTable.read(write_table(feats, tmp_path / "features.fits"))
+    for key in ("min_delta_av", "min_probability", "min_model_probability", "min_contrast", "min_support",
+                "n_candidates", "n_unsupported", "n_model_doubts", "expected_false"):
+        assert back.meta[key] == pytest.approx(feats.meta[key]), key
+    assert back.meta["min_delta_av"] == 0.3 and back.meta["NSIDE"] == feats.meta["nside"]
+    assert back["distance"].unit == u.pc and back["delta_av"].unit == u.mag
+
+
+def test_the_tracers_probability_is_never_above_one():
+    # the significance column is a probability: the posterior mass of the scales was summed
+    # and came out as 1.0000000000000004 for a clear cloud (seen on an invented cloud at l = 0)
+    from dustkit.features.density import _scale_probability, _step_posterior
+
+    rng = np.random.default_rng(2)  # an invented sight line with a 1.2 mag step at 1 kpc
+    n = 40
+    d = rng.uniform(300.0, 3000.0, n)
+    y = 1.2 * (d > 1000.0) + rng.normal(0.0, 0.1, n)
+    _, _, p_scale = _step_posterior(d, 0.08 * d, y, np.ones(n), np.full(n, 0.1), 500.0, 3500.0)
+    p = _scale_probability(p_scale, 1.2, 0.25)
+    assert 0.99 < p <= 1.0

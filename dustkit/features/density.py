@@ -487,9 +487,11 @@ def significant_features(features, min_probability):
     QTable
     """
     min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
-    if "significance" not in features.colnames:
-        raise param_error("features", "a table of density_features (with a 'significance' column)",
-                          features.colnames)
+    if not {"significance", "model_significance"} <= set(getattr(features, "colnames", ())):
+        # a detect_features table has a 'significance' too, but a BIC improvement (10, 25, ...), not a probability
+        raise param_error("features", "a table of density_features (with 'significance' and 'model_significance' "
+                          "columns; a detect_features table's significance is a BIC improvement: cut it with "
+                          "table[table['significance'] >= value])", getattr(features, "colnames", type(features).__name__))
     t = features[np.asarray(features["significance"], float) >= min_probability]
     t["feature"] = np.arange(1, len(t) + 1)
     t.meta["min_probability"] = min_probability
@@ -512,8 +514,9 @@ def _bracket(d_t, de_t, shows, dist, near_edge, far_edge):
     s_lo, s_hi = int(best.min()), int(best.max())
     lo, s_f = (float(d[s_lo - 1]), float(de[s_lo - 1])) if s_lo > 0 else (near_edge, 0.0)
     hi, s_b = (float(d[s_hi]), float(de[s_hi])) if s_hi < n else (far_edge, 0.0)
-    lo, hi = min(lo, dist), max(hi, dist)
-    centre, gap = 0.5 * (lo + hi), hi - lo
+    # the spread counts a gap that holds dist; the ends reported are the tracers' own distances
+    lo_in, hi_in = min(lo, dist), max(hi, dist)
+    centre, gap = 0.5 * (lo_in + hi_in), hi_in - lo_in
     spread = float(np.sqrt((dist - centre) ** 2 + gap**2 / 12.0 + (s_f**2 + s_b**2) / 3.0))
     return (lo if s_lo > 0 else np.nan), (hi if s_hi < n else np.nan), spread
 
@@ -529,6 +532,11 @@ def _probability(delta, delta_s, dav_min):
     if not sd > 0:
         return float(delta > dav_min)
     return float(stats.t.cdf((delta - dav_min) / sd, df=delta_s.size))
+
+
+def _scale_probability(p_scale, delta, dav_min):
+    """Posterior mass of the scales on ``delta`` that add more than ``dav_min``; at most 1 (the sum rounds above)."""
+    return min(1.0, float(np.sum(p_scale[_SCALES * delta > dav_min])))
 
 
 def _excess_each(av, lay, slots, e, x):
@@ -619,7 +627,7 @@ def _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mi
         dist, lik_sd, p_scale = _step_posterior(d_t[use], de_t[use], y_all[use], col_all[use], tae[in_fp][use], lo, hi)
         # significance: the tracers' posterior probability that the cloud adds more than
         # dav_min through the peak pixel (the model's column there, delta, times the scale)
-        significance = float(np.sum(p_scale[_SCALES * delta > dav_min]))
+        significance = _scale_probability(p_scale, delta, dav_min)
     else:  # the mode's distance: its spread over the samples (excess-weighted over the region's cells)
         inc_s = np.diff(av[a][:, :, None] + samples[a], axis=1)       # (n_cells_pixels, K, S)
         ws = np.maximum(inc_s[np.arange(a.size), k] - inc_l[a, k][:, None], 0.0)  # (n_cells, S)
