@@ -456,17 +456,22 @@ def test_null_cells_counted_alike_in_memory_and_in_chunks(tmp_path):
     assert [named[r] for r in (70, 71, 72, 210)] == ["row 70", "row 71", "row 72", "row 210"]
 
 
+def _invented_frame(seed, n, reddening, values, errors):
+    """An invented field-star catalogue (a pandas frame) with a reddening column and its error."""
+    rng = np.random.default_rng(seed)
+    return pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
+                         "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
+                         reddening: rng.uniform(*values, n), f"{reddening}_err": rng.uniform(*errors, n)})
+
+
 def test_model_file_of_a_chunked_build_records_the_catalogue_read(tmp_path):
     # the model file is what remains of a build: its record of the catalogue (rows rejected by reason, how
     # the reddening was read, duplicates) must be the catalogue's, as an in-memory build's file has it, not
     # that of the sample of already-checked A_V arrays the chunked build keeps as tracers_
     from dustkit.io import load_model, save_model
 
-    rng = np.random.default_rng(8)
     n = 300
-    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
-                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
-                       "ebv": rng.uniform(0.05, 1.0, n), "ebv_err": rng.uniform(0.01, 0.05, n)})
+    df = _invented_frame(8, n, "ebv", (0.05, 1.0), (0.01, 0.05))
     df.loc[[3, 160], "ebv"] = np.nan  # in two chunks
     df.loc[250, "distance"] = -5.0
     df.to_parquet(tmp_path / "ebv.parquet")
@@ -489,11 +494,8 @@ def test_each_assumption_said_once_however_many_chunks(tmp_path):
     # a bare distance column is assumed in pc once per catalogue (read_tracers says it once); each chunk
     # states it with its own median, and those must not become one line per chunk in build_info_ and the
     # model file's record (a catalogue of 10^8 rows in 100 chunks would list it 100 times)
-    rng = np.random.default_rng(9)
     n = 400
-    df = pd.DataFrame({"l": rng.uniform(20, 60, n), "b": rng.uniform(-5, 5, n),
-                       "distance": rng.uniform(200, 3000, n), "distance_err": rng.uniform(20, 200, n),
-                       "av": rng.uniform(0.1, 3.0, n), "av_err": rng.uniform(0.02, 0.2, n)})
+    df = _invented_frame(9, n, "av", (0.1, 3.0), (0.02, 0.2))
     df.to_parquet(tmp_path / "bare.parquet")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
