@@ -1023,7 +1023,13 @@ def _cmd_demo(args, out):
         "    fitted to a wider catalogue avoids it: dustkit layer WIDE.csv --json > layer.json, then",
         "    dustkit build REGION.csv -o model.fits --layer-from layer.json)", "")
 
-    out("3. Building the 3-D density model (NSIDE 32, out to 5 kpc; the default for a catalogue of this size)")
+    import inspect
+
+    from .density import DensityModel
+
+    default_max = inspect.signature(DensityModel).parameters["distance_max"].default.to_value(u.kpc)
+    out("3. Building the 3-D density model (NSIDE 32, the default for a catalogue of this size; out to 5 kpc, "
+        f"about as far as the clusters reach, instead of the default {default_max:g} kpc)")
     model = build_model(tracers, nside=32, distance_max=5000 * u.pc, quiet=_quiet_flag(args))
     rep = model.build_report_
     out(f"   chosen by spatially blocked cross-validation: log-density amplitude {model.amplitude_:g}, "

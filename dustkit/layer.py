@@ -142,7 +142,8 @@ class DustLayer:
     """A fitted (or given) exponential dust layer.
 
     Attributes are plain floats in mag/kpc (``a0``) and pc (``h``, ``z_sun``); the ``*_err``
-    are 1-sigma uncertainties from the fit (zero for a layer given by hand): the statistical
+    are 1-sigma uncertainties from the fit (for a layer given by hand, the errors given with it,
+    taken as independent, else zero): the statistical
     ``covariance`` (Jacobian, block sandwich or block bootstrap) plus the square of ``pull``, the shift of the
     parameters when the tracers far above the layer (behind clouds) are set aside, a
     systematic error of a layer fitted through clouds that only add extinction.

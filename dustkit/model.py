@@ -536,9 +536,30 @@ def choose_model(n_tracers, model="auto"):
 def build_model(tracers, model="auto", **params):
     """Fit the model :func:`choose_model` picks for ``tracers``; ``params`` go to its constructor.
 
-    Parameters the chosen model does not take (e.g. ``distance_step`` for the density model,
-    whose bins grow with distance) raise ``ParameterError``. The fitted model records the
-    choice in ``model_kind_``.
+    Parameters
+    ----------
+    tracers : TracerSet
+        The tracers, as :func:`dustkit.read_tracers` returns them.
+    model : {'auto', 'density', 'binned'}
+        ``'auto'`` (default): the 3-D density model (:class:`dustkit.density.DensityModel`)
+        up to :data:`DENSITY_LIMIT` (100 000) tracers, the binned model
+        (:class:`ExtinctionModel`) above.
+    **params
+        Constructor parameters of the chosen model, e.g. ``nside``, ``distance_max``,
+        ``distance_edges``, ``layer`` (a :class:`~dustkit.layer.DustLayer` or a dict to use
+        instead of fitting one). Parameters the chosen model does not take (e.g.
+        ``distance_step`` for the density model, whose bins grow with distance) raise
+        ``ParameterError``.
+
+    Returns
+    -------
+    DensityModel or ExtinctionModel
+        The fitted model; ``model_kind_`` records the choice (``'density'`` or ``'binned'``).
+
+    Notes
+    -----
+    Extinction estimates are statistical: check them against local data before using them
+    for science or for instrument time.
     """
     from .density import DensityModel
 

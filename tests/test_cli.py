@@ -452,6 +452,10 @@ def test_demo_runs_the_whole_job(tmp_path):
     assert len(est) == 20 and int(np.isnan(np.asarray(est["av"], float)).sum()) == 1
     m = load_model(out_dir / "veyra_model.fits")
     assert m.grid_.nside == 32 and len(m.tracers_) == 396
+    # the grid the demo says it builds is the one in the file (5 kpc is the demo's choice, not the default)
+    assert "out to 5 kpc" in out and m.grid_.distance_edges[-1] == 5000
+    default_max = DensityModel().get_params()["distance_max"].to_value("kpc")
+    assert f"out to 5 kpc, about as far as the clusters reach, instead of the default {default_max:g} kpc" in out
     # step 6: main-sequence fits of the invented member photometry, a tracer table read_tracers takes
     fits = Table.read(out_dir / "veyra_member_fits.ecsv")
     assert len(fits) == 6 and "Veyra Lantern" in out and "(truth" in out
