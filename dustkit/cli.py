@@ -1121,12 +1121,12 @@ def _cmd_demo(args, out):
 # ============================================================================ entry point
 
 def _show_warning_factory(quiet, debug):
-    from .exceptions import DustkitWarning, RowsRejectedWarning
+    """Warnings as one line on stderr: dustkit's always (--quiet silences progress and chatter, not
+    warnings: an assumed unit or default error is something the user must hear), others with --debug."""
+    from .exceptions import DustkitWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, DustkitWarning) and not debug:
-            return
-        if quiet and not issubclass(category, RowsRejectedWarning):
             return
         sys.stderr.write(f"warning: {_one_line(message)}\n")
 

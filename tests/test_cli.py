@@ -641,3 +641,16 @@ def test_features_command_says_why_no_step_is_listed(built, tmp_path, call):
     assert first.startswith("0 dust feature(s)") and "No step passed: at least 50 mag" in first
     got = Table.read(out_ecsv)
     assert len(got) == 0 and {"l", "b", "distance", "distance_err", "delta_av"} <= set(got.colnames)
+
+
+def test_quiet_keeps_the_warnings(files, tmp_path, call):
+    # --quiet silences progress and chatter, not warnings (its help: "print only errors and
+    # warnings"): a default error assumed for every row must still be said
+    cat = Table.read(files / "cat.csv", format="ascii.csv")
+    cat.remove_column("e_ebv")
+    cat.write(tmp_path / "no_errors.csv", format="ascii.csv")
+    for args in (("--quiet", "layer"), ("layer", "--json", "--quiet")):
+        rc, out, err = call(*args, tmp_path / "no_errors.csv", "--distance-unit", "kpc")
+        assert rc == 0, err
+        assert "warning:" in err and "No error column for the reddening" in err, err
+        assert "warning: 1 of 250 rows rejected" in err
