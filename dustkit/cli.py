@@ -747,7 +747,8 @@ def _cmd_layer(args, out):
         d = layer.as_dict()
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
         return 0
-    out(tracers.summary(), "", *_layer_lines(layer))
+    out(tracers.summary(), "")
+    print("\n".join(_layer_lines(layer)))  # the command's answer: printed with --quiet too, as --json is
     lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
     if lift["lifted"]:
         out(f"  caution: {lift_caution(lift)}")

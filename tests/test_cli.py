@@ -654,3 +654,13 @@ def test_quiet_keeps_the_warnings(files, tmp_path, call):
         assert rc == 0, err
         assert "warning:" in err and "No error column for the reddening" in err, err
         assert "warning: 1 of 250 rows rejected" in err
+
+
+def test_layer_quiet_still_prints_the_layer(files, call):
+    # --quiet drops the catalogue summary, not the command's answer (as --json is printed)
+    rc, out, err = call("--quiet", "layer", files / "cat.csv", "--distance-unit", "kpc")
+    assert rc == 0, err
+    layer = fit_catalogue_layer(_api_tracers(files))
+    assert f"a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc" in out
+    assert f"z_sun  = {layer.z_sun:.1f}" in out
+    assert "TracerSet" not in out  # the summary is chatter
