@@ -738,20 +738,22 @@ def _cmd_estimate(args, out):
 
 def _cmd_layer(args, out):
     from .density import catalogue_lift, fit_catalogue_layer
+    from .exceptions import DustkitWarning
     from .layer import lift_caution
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
     layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors summed over sky blocks, and the pull
+    if not args.json:
+        out(tracers.summary(), "")
+    lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
+    if lift["lifted"]:  # a warning on stderr: also with --json (the layer a later --layer-from takes) and --quiet
+        warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=2)
     if args.json:
         d = layer.as_dict()
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
         return 0
-    out(tracers.summary(), "")
     print("\n".join(_layer_lines(layer)))  # the command's answer: printed with --quiet too, as --json is
-    lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
-    if lift["lifted"]:
-        out(f"  caution: {lift_caution(lift)}")
     return 0
 
 

@@ -664,3 +664,18 @@ def test_layer_quiet_still_prints_the_layer(files, call):
     assert f"a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc" in out
     assert f"z_sun  = {layer.z_sun:.1f}" in out
     assert "TracerSet" not in out  # the summary is chatter
+
+
+@pytest.mark.parametrize("mode", [(), ("--json",), ("--quiet",)])
+def test_layer_says_when_clouds_lift_it_in_every_mode(files, call, monkeypatch, mode):
+    # the lift caution (README: "dustkit layer ... say so") matters most with --json, whose layer a
+    # later build takes with --layer-from; the judgement itself is tested in test_density.py
+    import dustkit.density
+
+    monkeypatch.setattr(dustkit.density, "catalogue_lift", lambda tracers, layer: {"above": 0.2, "below": 0.05,
+                                                                                    "lifted": True})
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", *mode)
+    assert rc == 0, err
+    assert "warning: 20% of the tracers lie more than 2 sigma above the fitted layer" in err
+    if mode == ("--json",):
+        assert set(json.loads(out)) == {"a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err"}
