@@ -1169,6 +1169,15 @@ def _frozen_exit():
     gc.freeze()
 
 
+def _stdout_to_devnull():
+    """After a broken pipe: later writes (the flush at exit) go nowhere instead of failing again."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # stdout replaced by an object without a file
+        pass
+
+
 def _run(args, prog, quiet, debug):
     """The command of parsed ``args``, its errors turned into messages and an exit status."""
     from .exceptions import DustkitError, FileFormatError, ParameterError
@@ -1179,7 +1188,12 @@ def _run(args, prog, quiet, debug):
         with warnings.catch_warnings():
             warnings.simplefilter("default")
             warnings.showwarning = _show_warning_factory(quiet, debug)
-            return int(args.func(args, _Out(quiet)) or 0)
+            status = int(args.func(args, _Out(quiet)) or 0)
+            sys.stdout.flush()  # a closed pipe fails here, inside the handlers below
+            return status
+    except BrokenPipeError:  # the reader of stdout stopped (dustkit laws | head -3): stop quietly
+        _stdout_to_devnull()
+        return 141  # 128 + SIGPIPE, as a shell reports a command the closed pipe stopped (common practice)
     except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
         if debug:
             traceback.print_exc()

@@ -679,3 +679,17 @@ def test_layer_says_when_clouds_lift_it_in_every_mode(files, call, monkeypatch, 
     assert "warning: 20% of the tracers lie more than 2 sigma above the fitted layer" in err
     if mode == ("--json",):
         assert set(json.loads(out)) == {"a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err"}
+
+
+def test_output_piped_into_a_reader_that_stops_is_not_an_error():
+    # 'dustkit laws | head -3': the reader closes the pipe early; common practice is to stop
+    # quietly (no error line, the status a shell gives a command stopped by SIGPIPE: 141)
+    env = dict(os.environ, PYTHONWARNINGS="ignore::DeprecationWarning")
+    for args in (["laws"], ["bands"]):
+        p = subprocess.Popen([sys.executable, "-m", "dustkit.cli", *args], stdout=subprocess.PIPE,
+                             stderr=subprocess.PIPE, env=env)
+        p.stdout.close()  # before the command has written anything
+        err = p.stderr.read().decode()
+        p.stderr.close()
+        assert p.wait(timeout=120) == 141, err
+        assert "error" not in err.lower() and "Traceback" not in err, err
