@@ -287,12 +287,12 @@ def build_parser():
                         "--min-delta-av (default 0.75; 0 lists what the tracers alone support)")
     p.add_argument("--min-contrast", type=float, metavar="RATIO",
                    help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
-    p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
+    p.add_argument("--min-significance", type=float, metavar="BIC",
                    help="steps finder: least BIC improvement of a step over no step (default 10)")
     p.add_argument("--radius", type=float, metavar="DEG",
                    help="steps finder: cone radius around each pixel centre (default: adaptive, the smallest cone holding 30 tracers, from one pixel to 6 deg)")
     p.add_argument("--detections", metavar="PIXELS.ecsv", help="steps finder: also write the per-pixel steps")
-    p.add_argument("--seed", type=int, default=0, help="steps finder: seed of the bootstrap resampling (default 0)")
+    p.add_argument("--seed", type=int, metavar="SEED", help="steps finder: seed of the bootstrap resampling (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
@@ -837,9 +837,12 @@ def _cmd_features(args, out):
         if not has_density:
             raise _UsageError("--finder density needs a 3-D density model (build with --model density); "
                               "use --finder steps for a binned model")
-        if args.radius is not None or args.detections:
-            raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
-                              "the model's own cells")
+        steps_only = [o for o, v in (("--radius", args.radius), ("--detections", args.detections),
+                                     ("--min-significance", args.min_significance), ("--seed", args.seed)) if v is not None]
+        if steps_only:
+            raise _UsageError(f"{', '.join(steps_only)} apply to --finder steps; the density finder searches the "
+                              "model's own cells (its options: --min-probability, --min-model-probability, "
+                              "--min-contrast)")
         given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
                                    ("min_model_probability", args.min_model_probability)) if v is not None} | given_dav
         feats = density_features(model, quiet=_quiet_flag(args), **given)
@@ -869,9 +872,16 @@ def _cmd_features(args, out):
             f"{feats.meta['resolution']} and the tracers' distance errors.")
         out(feats.meta["caution"])
         return 0
+    density_only = [o for o, v in (("--min-probability", args.min_probability), ("--min-contrast", args.min_contrast),
+                                   ("--min-model-probability", args.min_model_probability)) if v is not None]
+    if density_only:
+        raise _UsageError(f"{', '.join(density_only)} apply to the density finder of a 3-D density model; the steps "
+                          "finder's options are --min-significance, --radius, --seed"
+                          + ("" if has_density else " (this model is binned: build with --model density)"))
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg,
-        min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
+        **{k: v for k, v in (("min_significance", args.min_significance), ("random_state", args.seed)) if v is not None},
+        quiet=_quiet_flag(args),
         return_detections=True, **given_dav)
     path = write_table(feats, args.output, overwrite=args.overwrite)
     out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels "

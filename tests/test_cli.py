@@ -693,3 +693,23 @@ def test_output_piped_into_a_reader_that_stops_is_not_an_error():
         p.stderr.close()
         assert p.wait(timeout=120) == 141, err
         assert "error" not in err.lower() and "Traceback" not in err, err
+
+
+def test_features_refuses_the_other_finders_options(built, files, tmp_path, call):
+    # an option the chosen finder does not use was accepted and ignored: a user asking for
+    # --min-significance 50 on a density model got the density finder's cut without a word
+    rc, out, err = call("features", built[0], "-o", tmp_path / "f.csv", "--min-probability", "0.5",
+                        "--min-contrast", "2")  # built[0] is a binned model: the steps finder
+    assert rc == 2 and "--min-probability, --min-contrast apply to the density finder" in one_line_error(err)
+    assert not (tmp_path / "f.csv").exists()
+    path = tmp_path / "density.fits"
+    call("--quiet", "build", files / "cat.csv", "-o", path, "--model", "density", "--distance-unit", "kpc",
+         "--nside", "8", check_rc=0)
+    for opt in (["--min-significance", "50"], ["--seed", "3"]):
+        rc, out, err = call("features", path, "-o", tmp_path / "f.csv", *opt)
+        assert rc == 2 and f"{opt[0]} apply to --finder steps" in one_line_error(err)
+        assert not (tmp_path / "f.csv").exists()
+    rc, out, err = call("features", path, "-o", tmp_path / "f.csv", "--finder", "steps", "--seed", "3",
+                        "--min-significance", "50")
+    assert rc == 0, err
+    assert (tmp_path / "f.csv").exists()
