@@ -584,10 +584,16 @@ def _cmd_build(args, out):
         kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path
 
+    if getattr(args, "in_memory", False) and (args.chunk_size is not None or args.scheduler):
+        raise _UsageError("--in-memory reads the whole catalogue at once; --chunk-size and --scheduler are for the "
+                          "out-of-core build. Hint: give one or the other")
     path_kind = "memory" if getattr(args, "in_memory", False) else build_path(args.catalog, args.chunk_size, args.scheduler)
     if path_kind == "chunked":
         if getattr(args, "uncertainty", "auto") == "monte-carlo":
             raise _UsageError("--uncertainty monte-carlo needs the in-memory build; add --in-memory")
+        if getattr(args, "source_temperature", None) is not None:
+            raise _UsageError("--source-temperature applies to the in-memory build (the out-of-core build does not "
+                              "take one); add --in-memory")
         if args.model == "density":
             raise _UsageError("the out-of-core build (a catalogue this large, --chunk-size or --scheduler) makes "
                               "the binned model; drop --model density or add --in-memory")
@@ -611,6 +617,9 @@ def _cmd_build(args, out):
             if args.distance_step is not None:
                 raise _UsageError("--distance-step applies to the binned model; the density model's bins grow "
                                   "with distance (give --distance-edges for your own)")
+            if getattr(args, "uncertainty", "auto") != "auto":
+                raise _UsageError(f"--uncertainty {args.uncertainty} applies to the binned model; the density "
+                                  "model's errors come from its posterior draws (add --model binned)")
         if kind == "binned":
             kw["uncertainty"] = getattr(args, "uncertainty", "auto")
         model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))

@@ -713,3 +713,16 @@ def test_features_refuses_the_other_finders_options(built, files, tmp_path, call
                         "--min-significance", "50")
     assert rc == 0, err
     assert (tmp_path / "f.csv").exists()
+
+
+@pytest.mark.parametrize("opts, expect", [
+    (["--model", "density", "--uncertainty", "monte-carlo"], "--uncertainty monte-carlo applies to the binned model"),
+    (["--in-memory", "--chunk-size", "100"], "--in-memory reads the whole catalogue"),
+    (["--chunk-size", "100", "--source-temperature", "4500"], "--source-temperature applies to the in-memory build"),
+])
+def test_build_refuses_options_its_build_would_ignore(files, tmp_path, call, opts, expect):
+    # each of these was accepted and silently ignored (the model written without it)
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m.fits", "--distance-unit", "kpc",
+                        "--nside", "8", *opts)
+    assert rc == 2 and expect in one_line_error(err)
+    assert not (tmp_path / "m.fits").exists()
