@@ -915,11 +915,13 @@ def _cmd_fit_clusters(args, out):
     """dustkit fit-clusters: member photometry -> one tracer row per cluster."""
     from .clusters import CAUTION as CLUSTER_CAUTION
     from .clusters import fit_clusters
-    from ._lib.formats import check_target
+    from ._lib.formats import check_target, format_for
+    from .exceptions import CatalogError
     from .io import write_table
     from .tracers import SUFFIX_FORMATS
 
     _check_law(args)
+    format_for(args.output, "table")  # before the fits, not after them
     check_target(args.output, args.overwrite)
     path = Path(args.members).expanduser()
     if not path.is_file():
@@ -933,11 +935,12 @@ def _cmd_fit_clusters(args, out):
                                quiet=_quiet_flag(args), return_fits=True)
     if args.json and len(table) != 1:
         raise _UsageError(f"--json needs a members table with a single cluster; this one has {len(table)}")
+    fit = next(iter(fits.values()), None)
+    if args.json and fit is None:  # the data, not the command line: status 1, and no table
+        raise CatalogError(f"The cluster {table['name'][0]} could not be fitted, so there is no JSON to print "
+                           f"and nothing was written: {table['flags'][0]}")
     written = write_table(table, args.output, overwrite=args.overwrite)
     if args.json:
-        fit = next(iter(fits.values()), None)
-        if fit is None:
-            raise _UsageError(f"the cluster could not be fitted: {table['flags'][0]}")
         print(json.dumps({"ebv": fit.ebv, "ebv_err": fit.ebv_err, "distance_modulus": fit.distance_modulus,
                           "distance_modulus_err": fit.distance_modulus_err,
                           "distance_pc": float(fit.distance.to_value("pc")), "n_members_used": fit.n_members_used}))

@@ -726,3 +726,28 @@ def test_build_refuses_options_its_build_would_ignore(files, tmp_path, call, opt
                         "--nside", "8", *opts)
     assert rc == 2 and expect in one_line_error(err)
     assert not (tmp_path / "m.fits").exists()
+
+
+def test_fit_clusters_json_of_a_cluster_that_cannot_be_fitted(tmp_path, call):
+    # invented members (dustkit.clusters.simulate is not needed: two stars are too few for any fit)
+    members = Table({"cluster": ["Testfield A"] * 2, "l": [10.0, 10.01], "b": [1.0, 1.01],
+                     "B": [12.0, 12.5], "e_B": [0.01, 0.01], "V": [11.5, 11.9], "e_V": [0.01, 0.01]})
+    members.write(tmp_path / "two.csv", format="ascii.csv")
+    rc, out, err = call("fit-clusters", tmp_path / "two.csv", "-o", tmp_path / "two.ecsv", "--json")
+    # a failed job (status 1), not a bad command line (2); no JSON on stdout, no table left behind
+    assert rc == 1, err
+    line = one_line_error(err)
+    assert "Testfield A could not be fitted" in line and "at least" in line
+    assert out == "" and not (tmp_path / "two.ecsv").exists()
+
+
+def test_fit_clusters_refuses_an_output_suffix_before_fitting(tmp_path, call, monkeypatch):
+    import dustkit.clusters
+
+    def no_fit(*a, **k):
+        raise AssertionError("fitted before the output name was checked")
+
+    monkeypatch.setattr(dustkit.clusters, "fit_clusters", no_fit)
+    Table({"cluster": ["Testfield A"], "V": [11.0]}).write(tmp_path / "m.csv", format="ascii.csv")
+    rc, out, err = call("fit-clusters", tmp_path / "m.csv", "-o", tmp_path / "out.txt")
+    assert rc == 1 and "suffix '.txt'" in one_line_error(err)
