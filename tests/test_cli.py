@@ -751,3 +751,10 @@ def test_fit_clusters_refuses_an_output_suffix_before_fitting(tmp_path, call, mo
     Table({"cluster": ["Testfield A"], "V": [11.0]}).write(tmp_path / "m.csv", format="ascii.csv")
     rc, out, err = call("fit-clusters", tmp_path / "m.csv", "-o", tmp_path / "out.txt")
     assert rc == 1 and "suffix '.txt'" in one_line_error(err)
+
+
+@pytest.mark.parametrize("opt", ["--duplicate-separation", "--parallax-floor"])
+def test_bad_value_is_shown_as_typed_not_as_a_numpy_repr(files, tmp_path, call, opt):
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", opt, "-1")
+    line = one_line_error(err)
+    assert rc == 2 and "Got -1.0 instead." in line and "np.float64" not in line
