@@ -6,11 +6,13 @@ behaviour follows common practice for command-line tools: one line on stderr, ex
 for a bad command line or option value, 1 for a failed job, no traceback without --debug.
 """
 
+import argparse
 import json
 import os
 import subprocess
 import sys
 import warnings
+from pathlib import Path
 
 import healpy as hp
 import numpy as np
@@ -758,3 +760,24 @@ def test_bad_value_is_shown_as_typed_not_as_a_numpy_repr(files, tmp_path, call, 
     rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", opt, "-1")
     line = one_line_error(err)
     assert rc == 2 and "Got -1.0 instead." in line and "np.float64" not in line
+
+
+def test_readme_command_line_section_lists_every_command_as_it_parses():
+    # README's "## Command line" block is what a user copies: each line must parse, and every
+    # command the parser has must be shown there
+    import re
+    import shlex
+
+    from dustkit.cli import build_parser
+
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    section = readme.split("## Command line", 1)[1].split("\n## ", 1)[0]
+    block = re.search(r"```\n(.*?)```", section, re.S).group(1)
+    parser = build_parser()
+    shown = set()
+    for line in block.splitlines():
+        if line.strip().startswith("dustkit "):
+            args = parser.parse_args(shlex.split(line.split(">")[0])[1:])
+            shown.add(args.command)
+    subparsers = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    assert shown == set(subparsers.choices)
