@@ -287,12 +287,12 @@ def build_parser():
                         "--min-delta-av (default 0.75; 0 lists what the tracers alone support)")
     p.add_argument("--min-contrast", type=float, metavar="RATIO",
                    help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
-    p.add_argument("--min-significance", type=float, default=10.0, metavar="BIC",
+    p.add_argument("--min-significance", type=float, metavar="BIC",
                    help="steps finder: least BIC improvement of a step over no step (default 10)")
     p.add_argument("--radius", type=float, metavar="DEG",
                    help="steps finder: cone radius around each pixel centre (default: adaptive, the smallest cone holding 30 tracers, from one pixel to 6 deg)")
     p.add_argument("--detections", metavar="PIXELS.ecsv", help="steps finder: also write the per-pixel steps")
-    p.add_argument("--seed", type=int, default=0, help="steps finder: seed of the bootstrap resampling (default 0)")
+    p.add_argument("--seed", type=int, metavar="SEED", help="steps finder: seed of the bootstrap resampling (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
@@ -584,10 +584,16 @@ def _cmd_build(args, out):
         kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path
 
+    if getattr(args, "in_memory", False) and (args.chunk_size is not None or args.scheduler):
+        raise _UsageError("--in-memory reads the whole catalogue at once; --chunk-size and --scheduler are for the "
+                          "out-of-core build. Hint: give one or the other")
     path_kind = "memory" if getattr(args, "in_memory", False) else build_path(args.catalog, args.chunk_size, args.scheduler)
     if path_kind == "chunked":
         if getattr(args, "uncertainty", "auto") == "monte-carlo":
             raise _UsageError("--uncertainty monte-carlo needs the in-memory build; add --in-memory")
+        if getattr(args, "source_temperature", None) is not None:
+            raise _UsageError("--source-temperature applies to the in-memory build (the out-of-core build does not "
+                              "take one); add --in-memory")
         if args.model == "density":
             raise _UsageError("the out-of-core build (a catalogue this large, --chunk-size or --scheduler) makes "
                               "the binned model; drop --model density or add --in-memory")
@@ -611,6 +617,9 @@ def _cmd_build(args, out):
             if args.distance_step is not None:
                 raise _UsageError("--distance-step applies to the binned model; the density model's bins grow "
                                   "with distance (give --distance-edges for your own)")
+            if getattr(args, "uncertainty", "auto") != "auto":
+                raise _UsageError(f"--uncertainty {args.uncertainty} applies to the binned model; the density "
+                                  "model's errors come from its posterior draws (add --model binned)")
         if kind == "binned":
             kw["uncertainty"] = getattr(args, "uncertainty", "auto")
         model = build_model(tracers, kind, **kw, quiet=_quiet_flag(args))
@@ -738,19 +747,22 @@ def _cmd_estimate(args, out):
 
 def _cmd_layer(args, out):
     from .density import catalogue_lift, fit_catalogue_layer
+    from .exceptions import DustkitWarning
     from .layer import lift_caution
 
     _check_law(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
     layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors summed over sky blocks, and the pull
+    if not args.json:
+        out(tracers.summary(), "")
+    lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
+    if lift["lifted"]:  # a warning on stderr: also with --json (the layer a later --layer-from takes) and --quiet
+        warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=2)
     if args.json:
         d = layer.as_dict()
         print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
         return 0
-    out(tracers.summary(), "", *_layer_lines(layer))
-    lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
-    if lift["lifted"]:
-        out(f"  caution: {lift_caution(lift)}")
+    print("\n".join(_layer_lines(layer)))  # the command's answer: printed with --quiet too, as --json is
     return 0
 
 
@@ -834,9 +846,12 @@ def _cmd_features(args, out):
         if not has_density:
             raise _UsageError("--finder density needs a 3-D density model (build with --model density); "
                               "use --finder steps for a binned model")
-        if args.radius is not None or args.detections:
-            raise _UsageError("--radius and --detections apply to --finder steps; the density finder searches "
-                              "the model's own cells")
+        steps_only = [o for o, v in (("--radius", args.radius), ("--detections", args.detections),
+                                     ("--min-significance", args.min_significance), ("--seed", args.seed)) if v is not None]
+        if steps_only:
+            raise _UsageError(f"{', '.join(steps_only)} apply to --finder steps; the density finder searches the "
+                              "model's own cells (its options: --min-probability, --min-model-probability, "
+                              "--min-contrast)")
         given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
                                    ("min_model_probability", args.min_model_probability)) if v is not None} | given_dav
         feats = density_features(model, quiet=_quiet_flag(args), **given)
@@ -866,9 +881,16 @@ def _cmd_features(args, out):
             f"{feats.meta['resolution']} and the tracers' distance errors.")
         out(feats.meta["caution"])
         return 0
+    density_only = [o for o, v in (("--min-probability", args.min_probability), ("--min-contrast", args.min_contrast),
+                                   ("--min-model-probability", args.min_model_probability)) if v is not None]
+    if density_only:
+        raise _UsageError(f"{', '.join(density_only)} apply to the density finder of a 3-D density model; the steps "
+                          "finder's options are --min-significance, --radius, --seed"
+                          + ("" if has_density else " (this model is binned: build with --model density)"))
     feats, det = detect_features(
         model, radius=None if args.radius is None else args.radius * u.deg,
-        min_significance=args.min_significance, random_state=args.seed, quiet=_quiet_flag(args),
+        **{k: v for k, v in (("min_significance", args.min_significance), ("random_state", args.seed)) if v is not None},
+        quiet=_quiet_flag(args),
         return_detections=True, **given_dav)
     path = write_table(feats, args.output, overwrite=args.overwrite)
     out(f"{len(feats)} dust feature(s) from {len(det)} pixel step(s) in {feats.meta['n_pixels_searched']} pixels "
@@ -893,11 +915,13 @@ def _cmd_fit_clusters(args, out):
     """dustkit fit-clusters: member photometry -> one tracer row per cluster."""
     from .clusters import CAUTION as CLUSTER_CAUTION
     from .clusters import fit_clusters
-    from ._lib.formats import check_target
+    from ._lib.formats import check_target, format_for
+    from .exceptions import CatalogError
     from .io import write_table
     from .tracers import SUFFIX_FORMATS
 
     _check_law(args)
+    format_for(args.output, "table")  # before the fits, not after them
     check_target(args.output, args.overwrite)
     path = Path(args.members).expanduser()
     if not path.is_file():
@@ -911,11 +935,12 @@ def _cmd_fit_clusters(args, out):
                                quiet=_quiet_flag(args), return_fits=True)
     if args.json and len(table) != 1:
         raise _UsageError(f"--json needs a members table with a single cluster; this one has {len(table)}")
+    fit = next(iter(fits.values()), None)
+    if args.json and fit is None:  # the data, not the command line: status 1, and no table
+        raise CatalogError(f"The cluster {table['name'][0]} could not be fitted, so there is no JSON to print "
+                           f"and nothing was written: {table['flags'][0]}")
     written = write_table(table, args.output, overwrite=args.overwrite)
     if args.json:
-        fit = next(iter(fits.values()), None)
-        if fit is None:
-            raise _UsageError(f"the cluster could not be fitted: {table['flags'][0]}")
         print(json.dumps({"ebv": fit.ebv, "ebv_err": fit.ebv_err, "distance_modulus": fit.distance_modulus,
                           "distance_modulus_err": fit.distance_modulus_err,
                           "distance_pc": float(fit.distance.to_value("pc")), "n_members_used": fit.n_members_used}))
@@ -1127,12 +1152,12 @@ def _cmd_demo(args, out):
 # ============================================================================ entry point
 
 def _show_warning_factory(quiet, debug):
-    from .exceptions import DustkitWarning, RowsRejectedWarning
+    """Warnings as one line on stderr: dustkit's always (--quiet silences progress and chatter, not
+    warnings: an assumed unit or default error is something the user must hear), others with --debug."""
+    from .exceptions import DustkitWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, DustkitWarning) and not debug:
-            return
-        if quiet and not issubclass(category, RowsRejectedWarning):
             return
         sys.stderr.write(f"warning: {_one_line(message)}\n")
 
@@ -1172,6 +1197,15 @@ def _frozen_exit():
     gc.freeze()
 
 
+def _stdout_to_devnull():
+    """After a broken pipe: later writes (the flush at exit) go nowhere instead of failing again."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # stdout replaced by an object without a file
+        pass
+
+
 def _run(args, prog, quiet, debug):
     """The command of parsed ``args``, its errors turned into messages and an exit status."""
     from .exceptions import DustkitError, FileFormatError, ParameterError
@@ -1182,7 +1216,12 @@ def _run(args, prog, quiet, debug):
         with warnings.catch_warnings():
             warnings.simplefilter("default")
             warnings.showwarning = _show_warning_factory(quiet, debug)
-            return int(args.func(args, _Out(quiet)) or 0)
+            status = int(args.func(args, _Out(quiet)) or 0)
+            sys.stdout.flush()  # a closed pipe fails here, inside the handlers below
+            return status
+    except BrokenPipeError:  # the reader of stdout stopped (dustkit laws | head -3): stop quietly
+        _stdout_to_devnull()
+        return 141  # 128 + SIGPIPE, as a shell reports a command the closed pipe stopped (common practice)
     except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
         if debug:
             traceback.print_exc()

@@ -6,11 +6,13 @@ behaviour follows common practice for command-line tools: one line on stderr, ex
 for a bad command line or option value, 1 for a failed job, no traceback without --debug.
 """
 
+import argparse
 import json
 import os
 import subprocess
 import sys
 import warnings
+from pathlib import Path
 
 import healpy as hp
 import numpy as np
@@ -645,3 +647,141 @@ def test_features_command_says_why_no_step_is_listed(built, tmp_path, call):
     assert first.startswith("0 dust feature(s)") and "No step passed: at least 50 mag" in first
     got = Table.read(out_ecsv)
     assert len(got) == 0 and {"l", "b", "distance", "distance_err", "delta_av"} <= set(got.colnames)
+
+
+def test_quiet_keeps_the_warnings(files, tmp_path, call):
+    # --quiet silences progress and chatter, not warnings (its help: "print only errors and
+    # warnings"): a default error assumed for every row must still be said
+    cat = Table.read(files / "cat.csv", format="ascii.csv")
+    cat.remove_column("e_ebv")
+    cat.write(tmp_path / "no_errors.csv", format="ascii.csv")
+    for args in (("--quiet", "layer"), ("layer", "--json", "--quiet")):
+        rc, out, err = call(*args, tmp_path / "no_errors.csv", "--distance-unit", "kpc")
+        assert rc == 0, err
+        assert "warning:" in err and "No error column for the reddening" in err, err
+        assert "warning: 1 of 250 rows rejected" in err
+
+
+def test_layer_quiet_still_prints_the_layer(files, call):
+    # --quiet drops the catalogue summary, not the command's answer (as --json is printed)
+    rc, out, err = call("--quiet", "layer", files / "cat.csv", "--distance-unit", "kpc")
+    assert rc == 0, err
+    layer = fit_catalogue_layer(_api_tracers(files))
+    assert f"a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc" in out
+    assert f"z_sun  = {layer.z_sun:.1f}" in out
+    assert "TracerSet" not in out  # the summary is chatter
+
+
+@pytest.mark.parametrize("mode", [(), ("--json",), ("--quiet",)])
+def test_layer_says_when_clouds_lift_it_in_every_mode(files, call, monkeypatch, mode):
+    # the lift caution (README: "dustkit layer ... say so") matters most with --json, whose layer a
+    # later build takes with --layer-from; the judgement itself is tested in test_density.py
+    import dustkit.density
+
+    monkeypatch.setattr(dustkit.density, "catalogue_lift", lambda tracers, layer: {"above": 0.2, "below": 0.05,
+                                                                                    "lifted": True})
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", *mode)
+    assert rc == 0, err
+    assert "warning: 20% of the tracers lie more than 2 sigma above the fitted layer" in err
+    if mode == ("--json",):
+        assert set(json.loads(out)) == {"a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err"}
+
+
+def test_output_piped_into_a_reader_that_stops_is_not_an_error():
+    # 'dustkit laws | head -3': the reader closes the pipe early; common practice is to stop
+    # quietly (no error line, the status a shell gives a command stopped by SIGPIPE: 141)
+    env = dict(os.environ, PYTHONWARNINGS="ignore::DeprecationWarning")
+    for args in (["laws"], ["bands"]):
+        p = subprocess.Popen([sys.executable, "-m", "dustkit.cli", *args], stdout=subprocess.PIPE,
+                             stderr=subprocess.PIPE, env=env)
+        p.stdout.close()  # before the command has written anything
+        err = p.stderr.read().decode()
+        p.stderr.close()
+        assert p.wait(timeout=120) == 141, err
+        assert "error" not in err.lower() and "Traceback" not in err, err
+
+
+def test_features_refuses_the_other_finders_options(built, files, tmp_path, call):
+    # an option the chosen finder does not use was accepted and ignored: a user asking for
+    # --min-significance 50 on a density model got the density finder's cut without a word
+    rc, out, err = call("features", built[0], "-o", tmp_path / "f.csv", "--min-probability", "0.5",
+                        "--min-contrast", "2")  # built[0] is a binned model: the steps finder
+    assert rc == 2 and "--min-probability, --min-contrast apply to the density finder" in one_line_error(err)
+    assert not (tmp_path / "f.csv").exists()
+    path = tmp_path / "density.fits"
+    call("--quiet", "build", files / "cat.csv", "-o", path, "--model", "density", "--distance-unit", "kpc",
+         "--nside", "8", check_rc=0)
+    for opt in (["--min-significance", "50"], ["--seed", "3"]):
+        rc, out, err = call("features", path, "-o", tmp_path / "f.csv", *opt)
+        assert rc == 2 and f"{opt[0]} apply to --finder steps" in one_line_error(err)
+        assert not (tmp_path / "f.csv").exists()
+    rc, out, err = call("features", path, "-o", tmp_path / "f.csv", "--finder", "steps", "--seed", "3",
+                        "--min-significance", "50")
+    assert rc == 0, err
+    assert (tmp_path / "f.csv").exists()
+
+
+@pytest.mark.parametrize("opts, expect", [
+    (["--model", "density", "--uncertainty", "monte-carlo"], "--uncertainty monte-carlo applies to the binned model"),
+    (["--in-memory", "--chunk-size", "100"], "--in-memory reads the whole catalogue"),
+    (["--chunk-size", "100", "--source-temperature", "4500"], "--source-temperature applies to the in-memory build"),
+])
+def test_build_refuses_options_its_build_would_ignore(files, tmp_path, call, opts, expect):
+    # each of these was accepted and silently ignored (the model written without it)
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m.fits", "--distance-unit", "kpc",
+                        "--nside", "8", *opts)
+    assert rc == 2 and expect in one_line_error(err)
+    assert not (tmp_path / "m.fits").exists()
+
+
+def test_fit_clusters_json_of_a_cluster_that_cannot_be_fitted(tmp_path, call):
+    # invented members (dustkit.clusters.simulate is not needed: two stars are too few for any fit)
+    members = Table({"cluster": ["Testfield A"] * 2, "l": [10.0, 10.01], "b": [1.0, 1.01],
+                     "B": [12.0, 12.5], "e_B": [0.01, 0.01], "V": [11.5, 11.9], "e_V": [0.01, 0.01]})
+    members.write(tmp_path / "two.csv", format="ascii.csv")
+    rc, out, err = call("fit-clusters", tmp_path / "two.csv", "-o", tmp_path / "two.ecsv", "--json")
+    # a failed job (status 1), not a bad command line (2); no JSON on stdout, no table left behind
+    assert rc == 1, err
+    line = one_line_error(err)
+    assert "Testfield A could not be fitted" in line and "at least" in line
+    assert out == "" and not (tmp_path / "two.ecsv").exists()
+
+
+def test_fit_clusters_refuses_an_output_suffix_before_fitting(tmp_path, call, monkeypatch):
+    import dustkit.clusters
+
+    def no_fit(*a, **k):
+        raise AssertionError("fitted before the output name was checked")
+
+    monkeypatch.setattr(dustkit.clusters, "fit_clusters", no_fit)
+    Table({"cluster": ["Testfield A"], "V": [11.0]}).write(tmp_path / "m.csv", format="ascii.csv")
+    rc, out, err = call("fit-clusters", tmp_path / "m.csv", "-o", tmp_path / "out.txt")
+    assert rc == 1 and "suffix '.txt'" in one_line_error(err)
+
+
+@pytest.mark.parametrize("opt", ["--duplicate-separation", "--parallax-floor"])
+def test_bad_value_is_shown_as_typed_not_as_a_numpy_repr(files, tmp_path, call, opt):
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", opt, "-1")
+    line = one_line_error(err)
+    assert rc == 2 and "Got -1.0 instead." in line and "np.float64" not in line
+
+
+def test_readme_command_line_section_lists_every_command_as_it_parses():
+    # README's "## Command line" block is what a user copies: each line must parse, and every
+    # command the parser has must be shown there
+    import re
+    import shlex
+
+    from dustkit.cli import build_parser
+
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    section = readme.split("## Command line", 1)[1].split("\n## ", 1)[0]
+    block = re.search(r"```\n(.*?)```", section, re.S).group(1)
+    parser = build_parser()
+    shown = set()
+    for line in block.splitlines():
+        if line.strip().startswith("dustkit "):
+            args = parser.parse_args(shlex.split(line.split(">")[0])[1:])
+            shown.add(args.command)
+    subparsers = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    assert shown == set(subparsers.choices)

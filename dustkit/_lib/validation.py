@@ -16,6 +16,8 @@ __all__ = ["param_error", "check_choice", "check_real", "check_int", "check_nsid
 
 def param_error(name, requirement, value):
     """Build the project's one-shape ParameterError."""
+    if isinstance(value, np.generic):  # 'Got -1.0', not numpy's repr 'Got np.float64(-1.0)'
+        value = value.item()
     return ParameterError(f"The '{name}' parameter must be {requirement}. Got {value!r} instead.")
 
 
