@@ -57,7 +57,7 @@ import numpy as np
 from astropy import units as u
 
 from ._lib.progress import progress
-from ._lib.validation import check_choice, check_int, to_value
+from ._lib.validation import check_choice, check_int, check_quiet, check_seed, param_error, to_value
 from .answers import CAUTION, av_quantities, binned_av, grid_table, profile_table, query_table, sky_positions
 from .binned.finish import finish
 from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, heldout_rows
@@ -248,6 +248,8 @@ class ExtinctionModel:
     def fit_plan(self, n_tracers):
         """The checked parameters of a build from ``n_tracers`` tracers (a :class:`FitPlan`)."""
         grid = self.make_grid()
+        check_seed(self.random_state)
+        check_quiet(self.quiet)
         scheme = check_choice("uncertainty", self.uncertainty, ("auto", "monte-carlo", "bin-scatter"))
         if scheme == "auto":
             scheme = "monte-carlo" if n_tracers <= MC_LIMIT else "bin-scatter"
@@ -260,6 +262,9 @@ class ExtinctionModel:
             draws = 1
         folds = check_int("n_folds", self.n_folds, 2, 50)
         passes = sorted({check_int("sky_passes", p, 0, 64) for p in np.atleast_1d(self.sky_passes)})
+        if not passes:
+            raise param_error("sky_passes", "at least one number of smoothing passes (e.g. (0, 1, 2, 4))",
+                              self.sky_passes)
         return FitPlan(grid, scheme, draws, folds, passes)
 
     # -- fitting
