@@ -559,7 +559,9 @@ def build_model(tracers, model="auto", **params):
     Returns
     -------
     DensityModel or ExtinctionModel
-        The fitted model; ``model_kind_`` records the choice (``'density'`` or ``'binned'``).
+        The fitted model; ``model_kind_`` records the choice (``'density'`` or ``'binned'``), and
+        ``build_report_`` says it (``model_kind``) and why (``model_choice``: the catalogue's size
+        under ``'auto'``, else asked for).
 
     Notes
     -----
@@ -574,4 +576,8 @@ def build_model(tracers, model="auto", **params):
         check_choice(f"parameter of the {kind} model", name, cls.param_names())
     fitted = cls(**params).fit(tracers)
     fitted.model_kind_ = kind
+    why = (f"chosen for {len(tracers)} tracers: the 3-D density model up to {DENSITY_LIMIT}, the binned model above"
+           if check_choice("model", model, ("auto", "density", "binned")) == "auto" else f"asked for (model='{kind}')")
+    # the report says which model was built and why (the density model's own 'model' entry describes it)
+    fitted.build_report_ = {**getattr(fitted, "build_report_", {}), "model_kind": kind, "model_choice": why}
     return fitted

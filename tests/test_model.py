@@ -380,3 +380,17 @@ def test_empty_candidate_lists_are_refused_naming_the_option(model, name, value)
     tr = read_tracers(simulate_tracers(FIELD, 40, rng=1, **REGION))
     with pytest.raises(ParameterError, match=rf"The '{name}' parameter must be .*e\.g\."):
         dustkit.build_model(tr, model=model, quiet=True, **{name: value})
+
+
+def test_the_build_report_says_which_model_build_model_chose_and_why():
+    # README: "the build report says which" model a build made; the binned model's report
+    # said nothing of it and neither said why (a catalogue's size under 'auto')
+    from dustkit.model import DENSITY_LIMIT
+
+    tr = read_tracers(simulate_tracers(FIELD, 60, rng=2, **REGION))
+    m = dustkit.build_model(tr, model="binned", nside=8, quiet=True)
+    assert m.build_report_["model_kind"] == "binned" and "asked for" in m.build_report_["model_choice"]
+    m = dustkit.build_model(tr, quiet=True, amplitudes=(1.0,), lengths=[150] * u.pc, n_samples=8)
+    assert m.build_report_["model_kind"] == "density"
+    assert m.build_report_["model_choice"].startswith("chosen for 60 tracers") and str(DENSITY_LIMIT) in \
+        m.build_report_["model_choice"]
