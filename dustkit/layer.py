@@ -181,12 +181,7 @@ class DustLayer:
         if missing:
             raise param_error(f"layer.{missing[0]}", "present (a0 in mag/kpc, h and z_sun in pc; "
                               "'dustkit layer CATALOGUE --json' writes them)", "missing")
-        num = {}
-        for k in ("a0", "h", "z_sun", "a0_err", "h_err", "z_sun_err"):
-            low = -1000.0 if k == "z_sun" else 0.0
-            num[k] = float(check_real(f"layer.{k}", values.get(k, 0.0), low, 1e4,
-                                      low_inclusive=k not in ("a0", "h")))
-        return cls(**num)
+        return cls(**_checked_values(values))
 
     def with_scaled_a0(self, ratio):
         """The same layer with its A_V (``a0``, its error, covariance, pull and scatter) multiplied by ``ratio``."""
@@ -287,9 +282,22 @@ class DustLayer:
         )
 
 
+def _checked_values(values):
+    """The parameters and errors of a layer given by hand (mapping), checked: a0, h > 0; errors >= 0."""
+    num = {}
+    for k in ("a0", "h", "z_sun", "a0_err", "h_err", "z_sun_err"):
+        low = -1000.0 if k == "z_sun" else 0.0
+        num[k] = float(check_real(f"layer.{k}", values.get(k, 0.0), low, 1e4, low_inclusive=k not in ("a0", "h")))
+    return num
+
+
 def given_layer(layer, name="layer"):
     """``layer`` checked as a smooth layer given instead of fitted: ``None``, a :class:`DustLayer` or a mapping."""
-    if layer is None or isinstance(layer, DustLayer):
+    if layer is None:
+        return layer
+    if isinstance(layer, DustLayer):
+        # a DustLayer built by hand is not checked when made: a0 = 0, h = 0 or NaN would reach the fit
+        _checked_values(layer.as_dict())
         return layer
     if hasattr(layer, "get"):
         return DustLayer.from_dict(layer)

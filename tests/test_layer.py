@@ -255,3 +255,18 @@ def test_clouds_that_lift_a_layer_are_told_and_noise_alone_is_not():
     cloudy = lift(DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 800, 7.0, 30, 1.5),)), 1)
     assert cloudy["lifted"] and cloudy["above"] > cloudy["below"] + 0.05
     assert "--layer-from" in lift_caution(cloudy)
+
+
+@pytest.mark.parametrize("model", ["density", "binned"])
+@pytest.mark.parametrize("bad, says", [({"a0": -1.0}, "layer.a0"), ({"h": 0.0}, "layer.h"),
+                                       ({"z_sun": float("nan")}, "layer.z_sun"), ({"a0_err": -0.1}, "layer.a0_err")])
+def test_a_dust_layer_given_to_a_model_is_checked_like_a_dict(model, bad, says):
+    # a DustLayer made by hand is not checked when made, and went into the fit unchecked: a
+    # negative a0 gave negative A_V, h = 0 a ZeroDivisionError from inside the layer formula
+    import dustkit
+    from dustkit.exceptions import ParameterError
+
+    t = simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 60, l_range=(20, 60), b_range=(-8, 8), rng=4)
+    layer = DustLayer(**{"a0": 1.0, "h": 120.0, "z_sun": 20.0, **bad})
+    with pytest.raises(ParameterError, match=rf"The '{says}' parameter must be"):
+        dustkit.build_model(dustkit.read_tracers(t), model=model, layer=layer, quiet=True)
