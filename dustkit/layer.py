@@ -12,7 +12,7 @@ from astropy import units as u
 from scipy import optimize, stats
 
 from .exceptions import CatalogError
-from ._lib.validation import check_real, param_error, to_value
+from ._lib.validation import check_int, check_real, param_error, to_value
 from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
@@ -358,7 +358,7 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     the robust residual variance. Typical literature values for open clusters: scale height
     about 125 pc and z_sun about 15-25 pc (Joshi 2005, MNRAS 362, 1259).
     """
-    check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
+    initial = _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift)
     b = np.asarray(tracers.b, float)
     d = np.asarray(tracers.distance, float)
     if distance_shift is not None:
@@ -394,6 +394,27 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
         scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull,
     )
+
+
+def _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift):
+    """fit_layer's options checked (ParameterError naming each); returns ``initial`` as three floats."""
+    check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
+    check_int("max_tracers", max_tracers, 5, np.inf)  # fewer cannot fit a layer (at least 5 tracers)
+    check_int("n_boot", n_boot, 0, np.inf)
+    try:
+        start = np.asarray(initial, dtype=float)
+    except (TypeError, ValueError):
+        start = np.full(0, np.nan)
+    if start.shape != (3,) or not np.all(np.isfinite(start)) or start[0] <= 0 or start[1] <= 0:
+        raise param_error("initial", "three finite numbers (a0 > 0 in mag/kpc, h > 0 and z_sun in pc), "
+                          "e.g. (1.0, 100.0, 15.0)", initial)
+    n = len(np.atleast_1d(tracers.b))
+    for name, values in (("blocks", blocks), ("distance_shift", distance_shift)):
+        if values is not None and np.shape(values) != (n,):
+            raise param_error(name, f"one value per tracer ({n})", f"shape {np.shape(values)}")
+    if distance_shift is not None and not np.all(np.isfinite(np.asarray(distance_shift, float))):
+        raise param_error("distance_shift", "finite (a shift in ln distance per tracer)", "non-finite values")
+    return tuple(float(x) for x in start)
 
 
 #: Share of the tracers more than 2 of their own errors above a fitted layer, beyond the share

@@ -270,3 +270,21 @@ def test_a_dust_layer_given_to_a_model_is_checked_like_a_dict(model, bad, says):
     layer = DustLayer(**{"a0": 1.0, "h": 120.0, "z_sun": 20.0, **bad})
     with pytest.raises(ParameterError, match=rf"The '{says}' parameter must be"):
         dustkit.build_model(dustkit.read_tracers(t), model=model, layer=layer, quiet=True)
+
+
+@pytest.mark.parametrize("option, value", [
+    ("max_tracers", 0),            # fitted no tracer and returned the starting values as a layer
+    ("max_tracers", 2.5), ("n_boot", -3), ("n_boot", "10"),
+    ("initial", (1.0, 100.0)), ("initial", (float("nan"), 100.0, 15.0)),
+    ("distance_shift", np.zeros(3)), ("blocks", np.arange(3)),
+])
+def test_fit_layer_options_are_checked_naming_them(option, value):
+    # numpy/scipy said "operands could not be broadcast", "negative dimensions", "Initial guess
+    # is outside of provided bounds", or nothing at all (max_tracers=0, n_boot=-3)
+    from dustkit.exceptions import ParameterError
+
+    t = simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 60, l_range=(20, 60), b_range=(-8, 8), rng=4)
+    tr = TracerSet.from_arrays(t["l"], t["b"], t["distance"], t["distance_err"], 3.1 * t["ebv"], 3.1 * t["ebv_err"])
+    extra = {"n_boot": 3} if option == "blocks" else {}
+    with pytest.raises(ParameterError, match=rf"The '{option}' parameter must be"):
+        fit_layer(tr, **{option: value}, **extra)
