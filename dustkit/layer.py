@@ -5,13 +5,14 @@ height ``z_sun`` above the mid-plane, ``z = z_sun + s sin(b)`` along a sight lin
 cumulative A_V out to distance ``d`` has a closed form (see :func:`layer_av`).
 """
 
+import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
 from astropy import units as u
 from scipy import optimize, stats
 
-from .exceptions import CatalogError
+from .exceptions import CatalogError, DustkitWarning
 from ._lib.validation import check_int, check_real, param_error, to_value
 from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
@@ -355,7 +356,9 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     Each tracer's uncertainty combines its A_V error, its distance error times the layer's
     slope dA_V/dd, and an intrinsic scatter re-estimated from the residuals (1.4826 x MAD)
     over three passes. Parameter errors come from the Jacobian at the solution, scaled by
-    the robust residual variance. Typical literature values for open clusters: scale height
+    the robust residual variance. Tracers that cannot fix the layer (all at one latitude,
+    position or distance: an error larger than its parameter's scale) are told with a
+    ``DustkitWarning`` naming their span. Typical literature values for open clusters: scale height
     about 125 pc and z_sun about 15-25 pc (Joshi 2005, MNRAS 362, 1259).
     """
     initial = _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift)
@@ -389,11 +392,33 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
             cov = _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, int(n_boot), random_state, cov, scatter)
     pull = _cloud_pull(b, d, de, av, ae, p, f_scale, scatter)
     err = np.sqrt(np.clip(np.diag(cov), 0, None) + pull**2)
+    _warn_if_undetermined(p, err, b, d)
     return DustLayer(
         a0=float(p[0]), h=float(p[1]), z_sun=float(p[2]),
         a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
         scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull,
     )
+
+
+def _warn_if_undetermined(p, err, b, d):
+    """A DustkitWarning when the tracers cannot fix the layer: an error above its own scale (or not finite).
+
+    a0's error above a0, h's above h, z_sun's above h (the Sun's height not known to a scale
+    height): tracers at one latitude, one position or one distance leave the three
+    parameters degenerate, and a build then answers from a layer that means nothing.
+    """
+    scale = {"a0": p[0], "h": p[1], "z_sun": p[1]}
+    loose = [k for k, e in zip(("a0", "h", "z_sun"), err) if not np.isfinite(e) or e > scale[k]]
+    if loose:
+        z = d * np.sin(np.deg2rad(b))
+        warnings.warn(
+            f"These {b.size} tracers do not determine the smooth dust layer: the error of "
+            + ", ".join(f"{k} ({e:.3g})" for k, e in zip(("a0", "h", "z_sun"), err) if k in loose)
+            + f" is undefined or larger than its scale (a0 = {p[0]:.3g} mag/kpc, h = {p[1]:.3g} pc); they span latitudes "
+            f"{b.min():.2f} to {b.max():.2f} deg, heights {z.min():.0f} to {z.max():.0f} pc and distances "
+            f"{d.min():.0f} to {d.max():.0f} pc. Hint: add tracers over a range of latitudes and distances, or give "
+            "a layer fitted to a wider catalogue (layer=..., dustkit build --layer-from).",
+            DustkitWarning, stacklevel=3)
 
 
 def _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift):
