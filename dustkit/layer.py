@@ -5,14 +5,15 @@ height ``z_sun`` above the mid-plane, ``z = z_sun + s sin(b)`` along a sight lin
 cumulative A_V out to distance ``d`` has a closed form (see :func:`layer_av`).
 """
 
+import warnings
 from dataclasses import dataclass, field, replace
 
 import numpy as np
 from astropy import units as u
 from scipy import optimize, stats
 
-from .exceptions import CatalogError
-from ._lib.validation import check_real, param_error, to_value
+from .exceptions import CatalogError, DustkitWarning
+from ._lib.validation import check_int, check_real, param_error, to_value
 from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
@@ -181,12 +182,7 @@ class DustLayer:
         if missing:
             raise param_error(f"layer.{missing[0]}", "present (a0 in mag/kpc, h and z_sun in pc; "
                               "'dustkit layer CATALOGUE --json' writes them)", "missing")
-        num = {}
-        for k in ("a0", "h", "z_sun", "a0_err", "h_err", "z_sun_err"):
-            low = -1000.0 if k == "z_sun" else 0.0
-            num[k] = float(check_real(f"layer.{k}", values.get(k, 0.0), low, 1e4,
-                                      low_inclusive=k not in ("a0", "h")))
-        return cls(**num)
+        return cls(**_checked_values(values))
 
     def with_scaled_a0(self, ratio):
         """The same layer with its A_V (``a0``, its error, covariance, pull and scatter) multiplied by ``ratio``."""
@@ -287,9 +283,22 @@ class DustLayer:
         )
 
 
+def _checked_values(values):
+    """The parameters and errors of a layer given by hand (mapping), checked: a0, h > 0; errors >= 0."""
+    num = {}
+    for k in ("a0", "h", "z_sun", "a0_err", "h_err", "z_sun_err"):
+        low = -1000.0 if k == "z_sun" else 0.0
+        num[k] = float(check_real(f"layer.{k}", values.get(k, 0.0), low, 1e4, low_inclusive=k not in ("a0", "h")))
+    return num
+
+
 def given_layer(layer, name="layer"):
     """``layer`` checked as a smooth layer given instead of fitted: ``None``, a :class:`DustLayer` or a mapping."""
-    if layer is None or isinstance(layer, DustLayer):
+    if layer is None:
+        return layer
+    if isinstance(layer, DustLayer):
+        # a DustLayer built by hand is not checked when made: a0 = 0, h = 0 or NaN would reach the fit
+        _checked_values(layer.as_dict())
         return layer
     if hasattr(layer, "get"):
         return DustLayer.from_dict(layer)
@@ -347,10 +356,12 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     Each tracer's uncertainty combines its A_V error, its distance error times the layer's
     slope dA_V/dd, and an intrinsic scatter re-estimated from the residuals (1.4826 x MAD)
     over three passes. Parameter errors come from the Jacobian at the solution, scaled by
-    the robust residual variance. Typical literature values for open clusters: scale height
+    the robust residual variance. Tracers that cannot fix the layer (all at one latitude,
+    position or distance: an error larger than its parameter's scale) are told with a
+    ``DustkitWarning`` naming their span. Typical literature values for open clusters: scale height
     about 125 pc and z_sun about 15-25 pc (Joshi 2005, MNRAS 362, 1259).
     """
-    check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
+    initial = _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift)
     b = np.asarray(tracers.b, float)
     d = np.asarray(tracers.distance, float)
     if distance_shift is not None:
@@ -381,11 +392,54 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
             cov = _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, int(n_boot), random_state, cov, scatter)
     pull = _cloud_pull(b, d, de, av, ae, p, f_scale, scatter)
     err = np.sqrt(np.clip(np.diag(cov), 0, None) + pull**2)
+    _warn_if_undetermined(p, err, b, d)
     return DustLayer(
         a0=float(p[0]), h=float(p[1]), z_sun=float(p[2]),
         a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
         scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull,
     )
+
+
+def _warn_if_undetermined(p, err, b, d):
+    """A DustkitWarning when the tracers cannot fix the layer: an error above its own scale (or not finite).
+
+    a0's error above a0, h's above h, z_sun's above h (the Sun's height not known to a scale
+    height): tracers at one latitude, one position or one distance leave the three
+    parameters degenerate, and a build then answers from a layer that means nothing.
+    """
+    scale = {"a0": p[0], "h": p[1], "z_sun": p[1]}
+    loose = [k for k, e in zip(("a0", "h", "z_sun"), err) if not np.isfinite(e) or e > scale[k]]
+    if loose:
+        z = d * np.sin(np.deg2rad(b))
+        warnings.warn(
+            f"These {b.size} tracers do not determine the smooth dust layer: the error of "
+            + ", ".join(f"{k} ({e:.3g})" for k, e in zip(("a0", "h", "z_sun"), err) if k in loose)
+            + f" is undefined or larger than its scale (a0 = {p[0]:.3g} mag/kpc, h = {p[1]:.3g} pc); they span latitudes "
+            f"{b.min():.2f} to {b.max():.2f} deg, heights {z.min():.0f} to {z.max():.0f} pc and distances "
+            f"{d.min():.0f} to {d.max():.0f} pc. Hint: add tracers over a range of latitudes and distances, or give "
+            "a layer fitted to a wider catalogue (layer=..., dustkit build --layer-from).",
+            DustkitWarning, stacklevel=3)
+
+
+def _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift):
+    """fit_layer's options checked (ParameterError naming each); returns ``initial`` as three floats."""
+    check_real("f_scale", f_scale, 0, np.inf, low_inclusive=False)
+    check_int("max_tracers", max_tracers, 5, np.inf)  # fewer cannot fit a layer (at least 5 tracers)
+    check_int("n_boot", n_boot, 0, np.inf)
+    try:
+        start = np.asarray(initial, dtype=float)
+    except (TypeError, ValueError):
+        start = np.full(0, np.nan)
+    if start.shape != (3,) or not np.all(np.isfinite(start)) or start[0] <= 0 or start[1] <= 0:
+        raise param_error("initial", "three finite numbers (a0 > 0 in mag/kpc, h > 0 and z_sun in pc), "
+                          "e.g. (1.0, 100.0, 15.0)", initial)
+    n = len(np.atleast_1d(tracers.b))
+    for name, values in (("blocks", blocks), ("distance_shift", distance_shift)):
+        if values is not None and np.shape(values) != (n,):
+            raise param_error(name, f"one value per tracer ({n})", f"shape {np.shape(values)}")
+    if distance_shift is not None and not np.all(np.isfinite(np.asarray(distance_shift, float))):
+        raise param_error("distance_shift", "finite (a shift in ln distance per tracer)", "non-finite values")
+    return tuple(float(x) for x in start)
 
 
 #: Share of the tracers more than 2 of their own errors above a fitted layer, beyond the share

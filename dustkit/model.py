@@ -57,7 +57,7 @@ import numpy as np
 from astropy import units as u
 
 from ._lib.progress import progress
-from ._lib.validation import check_choice, check_int, to_value
+from ._lib.validation import check_choice, check_int, check_quiet, check_seed, param_error, to_value
 from .answers import CAUTION, av_quantities, binned_av, grid_table, profile_table, query_table, sky_positions
 from .binned.finish import finish
 from .binned.folds import HELDOUT_MAX, HeldOut, fold_of_positions, heldout_rows
@@ -248,6 +248,8 @@ class ExtinctionModel:
     def fit_plan(self, n_tracers):
         """The checked parameters of a build from ``n_tracers`` tracers (a :class:`FitPlan`)."""
         grid = self.make_grid()
+        check_seed(self.random_state)
+        check_quiet(self.quiet)
         scheme = check_choice("uncertainty", self.uncertainty, ("auto", "monte-carlo", "bin-scatter"))
         if scheme == "auto":
             scheme = "monte-carlo" if n_tracers <= MC_LIMIT else "bin-scatter"
@@ -260,6 +262,9 @@ class ExtinctionModel:
             draws = 1
         folds = check_int("n_folds", self.n_folds, 2, 50)
         passes = sorted({check_int("sky_passes", p, 0, 64) for p in np.atleast_1d(self.sky_passes)})
+        if not passes:
+            raise param_error("sky_passes", "at least one number of smoothing passes (e.g. (0, 1, 2, 4))",
+                              self.sky_passes)
         return FitPlan(grid, scheme, draws, folds, passes)
 
     # -- fitting
@@ -554,7 +559,9 @@ def build_model(tracers, model="auto", **params):
     Returns
     -------
     DensityModel or ExtinctionModel
-        The fitted model; ``model_kind_`` records the choice (``'density'`` or ``'binned'``).
+        The fitted model; ``model_kind_`` records the choice (``'density'`` or ``'binned'``), and
+        ``build_report_`` says it (``model_kind``) and why (``model_choice``: the catalogue's size
+        under ``'auto'``, else asked for).
 
     Notes
     -----
@@ -569,4 +576,8 @@ def build_model(tracers, model="auto", **params):
         check_choice(f"parameter of the {kind} model", name, cls.param_names())
     fitted = cls(**params).fit(tracers)
     fitted.model_kind_ = kind
+    why = (f"chosen for {len(tracers)} tracers: the 3-D density model up to {DENSITY_LIMIT}, the binned model above"
+           if check_choice("model", model, ("auto", "density", "binned")) == "auto" else f"asked for (model='{kind}')")
+    # the report says which model was built and why (the density model's own 'model' entry describes it)
+    fitted.build_report_ = {**getattr(fitted, "build_report_", {}), "model_kind": kind, "model_choice": why}
     return fitted

@@ -255,3 +255,66 @@ def test_clouds_that_lift_a_layer_are_told_and_noise_alone_is_not():
     cloudy = lift(DustField(a0=1.0, h=120.0, z_sun=20.0, clouds=(Cloud(40, 0, 800, 7.0, 30, 1.5),)), 1)
     assert cloudy["lifted"] and cloudy["above"] > cloudy["below"] + 0.05
     assert "--layer-from" in lift_caution(cloudy)
+
+
+@pytest.mark.parametrize("model", ["density", "binned"])
+@pytest.mark.parametrize("bad, says", [({"a0": -1.0}, "layer.a0"), ({"h": 0.0}, "layer.h"),
+                                       ({"z_sun": float("nan")}, "layer.z_sun"), ({"a0_err": -0.1}, "layer.a0_err")])
+def test_a_dust_layer_given_to_a_model_is_checked_like_a_dict(model, bad, says):
+    # a DustLayer made by hand is not checked when made, and went into the fit unchecked: a
+    # negative a0 gave negative A_V, h = 0 a ZeroDivisionError from inside the layer formula
+    import dustkit
+    from dustkit.exceptions import ParameterError
+
+    t = simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 60, l_range=(20, 60), b_range=(-8, 8), rng=4)
+    layer = DustLayer(**{"a0": 1.0, "h": 120.0, "z_sun": 20.0, **bad})
+    with pytest.raises(ParameterError, match=rf"The '{says}' parameter must be"):
+        dustkit.build_model(dustkit.read_tracers(t), model=model, layer=layer, quiet=True)
+
+
+@pytest.mark.parametrize("option, value", [
+    ("max_tracers", 0),            # fitted no tracer and returned the starting values as a layer
+    ("max_tracers", 2.5), ("n_boot", -3), ("n_boot", "10"),
+    ("initial", (1.0, 100.0)), ("initial", (float("nan"), 100.0, 15.0)),
+    ("distance_shift", np.zeros(3)), ("blocks", np.arange(3)),
+])
+def test_fit_layer_options_are_checked_naming_them(option, value):
+    # numpy/scipy said "operands could not be broadcast", "negative dimensions", "Initial guess
+    # is outside of provided bounds", or nothing at all (max_tracers=0, n_boot=-3)
+    from dustkit.exceptions import ParameterError
+
+    t = simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 60, l_range=(20, 60), b_range=(-8, 8), rng=4)
+    tr = TracerSet.from_arrays(t["l"], t["b"], t["distance"], t["distance_err"], 3.1 * t["ebv"], 3.1 * t["ebv_err"])
+    extra = {"n_boot": 3} if option == "blocks" else {}
+    with pytest.raises(ParameterError, match=rf"The '{option}' parameter must be"):
+        fit_layer(tr, **{option: value}, **extra)
+
+
+def test_tracers_that_cannot_fix_the_layer_are_told_once_and_a_usual_catalogue_is_not(recwarn):
+    # invented tracers all in the plane (b = 0), or all toward one position: a0, h and z_sun are
+    # degenerate (|z| is nearly constant), the fit returned errors of 1e6-1e9 and a build then
+    # answered from that layer (7 mag +- 21 000 mag) without a word
+    import warnings
+
+    import dustkit
+    from dustkit.exceptions import DustkitWarning
+
+    rng = np.random.default_rng(0)
+    n = 30
+    d, av = rng.uniform(200, 3000, n), rng.uniform(0.5, 2.0, n)
+    plane = TracerSet.from_arrays(rng.uniform(20, 50, n), np.zeros(n), d, 0.1 * d, av, np.full(n, 0.05))
+    one_spot = TracerSet.from_arrays(np.full(n, 30.0), np.full(n, 1.0), d, 0.1 * d, av, np.full(n, 0.05))
+    for tr in (plane, one_spot):
+        with pytest.warns(DustkitWarning, match=r"do not determine the smooth dust layer.*--layer-from"):
+            fit_layer(tr)
+    recwarn.clear()
+    dustkit.build_model(plane, model="binned", nside=8, quiet=True)
+    said = [w for w in recwarn if issubclass(w.category, DustkitWarning) and "do not determine" in str(w.message)]
+    assert len(said) == 1 and "latitudes 0.00 to 0.00 deg" in str(said[0].message)
+    # a usual small catalogue (40 invented clusters over 40 x 20 deg) fixes its layer: nothing to say
+    t = simulate_tracers(DustField(a0=1.0, h=120.0, z_sun=20.0), 40, l_range=(20, 60), b_range=(-10, 10),
+                         distance_max=3000, rng=5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DustkitWarning)
+        fit_layer(TracerSet.from_arrays(t["l"], t["b"], t["distance"], t["distance_err"], 3.1 * t["ebv"],
+                                        3.1 * t["ebv_err"]))

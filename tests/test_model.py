@@ -12,6 +12,7 @@ import pytest
 from astropy import units as u
 from astropy.coordinates import SkyCoord
 
+import dustkit
 from dustkit import ExtinctionModel, ModelNotFittedError, ParameterError
 from dustkit._isotonic import isotonic_rows
 from dustkit.grid import Grid
@@ -352,3 +353,44 @@ def test_empty_sky_errors_cover_clouds_no_tracer_saw():
     a, e = m.av_pc(l, b, d)
     assert np.all(m.n_tracers_[m.grid_.pixel(l, b)].max(axis=1) == 0)  # no tracer reaches there
     assert np.mean(np.abs(a - field.av(l, b, d)) <= e) >= 0.6  # target from the product's issue
+
+
+@pytest.mark.parametrize("model", ["binned", "density"])
+@pytest.mark.parametrize("name, value, says", [
+    ("random_state", None, "an integer >= 0"), ("random_state", -1, "an integer >= 0"),
+    ("random_state", 1.5, "an integer >= 0"), ("random_state", "seven", "an integer >= 0"),
+    ("quiet", "no", "True, False or None"),   # a non-empty string is true: it used to hide the bars
+])
+def test_a_bad_seed_or_quiet_is_refused_naming_it_before_any_work(model, name, value, says):
+    # numpy's own TypeError/ValueError (or, for the density model, a TypeError in the middle
+    # of the build for random_state=None) said nothing of the option; a seed is what makes
+    # the same catalogue give the same model
+    tr = read_tracers(simulate_tracers(FIELD, 40, rng=1, **REGION))
+    with pytest.raises(ParameterError, match=rf"The '{name}' parameter must be {says}.*Got {value!r} instead"):
+        dustkit.build_model(tr, model=model, **{name: value})
+
+
+@pytest.mark.parametrize("model, name, value", [
+    ("binned", "sky_passes", ()), ("density", "amplitudes", ()), ("density", "lengths", [] * u.pc),
+    ("density", "amplitudes", "large"),
+])
+def test_empty_candidate_lists_are_refused_naming_the_option(model, name, value):
+    # an empty list of candidates left nothing to choose from: IndexError, TypeError or
+    # "max() arg is an empty sequence" from deep inside the build
+    tr = read_tracers(simulate_tracers(FIELD, 40, rng=1, **REGION))
+    with pytest.raises(ParameterError, match=rf"The '{name}' parameter must be .*e\.g\."):
+        dustkit.build_model(tr, model=model, quiet=True, **{name: value})
+
+
+def test_the_build_report_says_which_model_build_model_chose_and_why():
+    # README: "the build report says which" model a build made; the binned model's report
+    # said nothing of it and neither said why (a catalogue's size under 'auto')
+    from dustkit.model import DENSITY_LIMIT
+
+    tr = read_tracers(simulate_tracers(FIELD, 60, rng=2, **REGION))
+    m = dustkit.build_model(tr, model="binned", nside=8, quiet=True)
+    assert m.build_report_["model_kind"] == "binned" and "asked for" in m.build_report_["model_choice"]
+    m = dustkit.build_model(tr, quiet=True, amplitudes=(1.0,), lengths=[150] * u.pc, n_samples=8)
+    assert m.build_report_["model_kind"] == "density"
+    assert m.build_report_["model_choice"].startswith("chosen for 60 tracers") and str(DENSITY_LIMIT) in \
+        m.build_report_["model_choice"]

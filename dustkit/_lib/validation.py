@@ -11,7 +11,8 @@ from astropy import units as u
 
 from ..exceptions import ParameterError
 
-__all__ = ["param_error", "check_choice", "check_real", "check_int", "check_nside", "to_value"]
+__all__ = ["param_error", "check_choice", "check_real", "check_int", "check_nside", "check_seed", "check_quiet",
+           "to_value"]
 
 
 def param_error(name, requirement, value):
@@ -62,6 +63,21 @@ def check_nside(value, name="nside"):
     if v < 1 or v > 1024 or (v & (v - 1)) != 0:
         raise param_error(name, req, value)
     return v
+
+
+def check_seed(value, name="random_state"):
+    """Return ``value`` as int if it is a seed: an integer >= 0 (the same seed gives the same result)."""
+    if (isinstance(value, bool) or not isinstance(value, (numbers.Integral, np.integer))
+            or not 0 <= int(value) < 2**63):
+        raise param_error(name, "an integer >= 0 (a seed: the same seed gives the same result)", value)
+    return int(value)
+
+
+def check_quiet(value, name="quiet"):
+    """Return ``value`` if it is True, False or None (None: progress shown only on a terminal)."""
+    if value is None or isinstance(value, (bool, np.bool_)):
+        return None if value is None else bool(value)
+    raise param_error(name, "True, False or None (None: progress bars only on a terminal)", value)
 
 
 def to_value(name, value, unit, default_unit=None):

@@ -10,7 +10,8 @@ import inspect
 
 from .._lib import healpix
 from .._lib.progress import extend_total, progress
-from .._lib.validation import check_choice, check_int, check_nside, check_real, to_value
+from .._lib.validation import (check_choice, check_int, check_nside, check_quiet, check_real, check_seed,
+                                param_error, to_value)
 from ..answers import av_quantities, distance_errors, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, ModelNotFittedError
 from ..grid import Grid
@@ -234,9 +235,26 @@ class DensityModel:
             edges = default_distance_edges(dmax)
         return Grid(nside, edges, "ring")
 
+    def _checked_options(self):
+        """``n_folds``, ``n_samples`` and ``active_radius`` (deg) checked; ``random_state`` and ``quiet`` too."""
+        folds_n, n_samples = check_int("n_folds", self.n_folds, 2, 20), check_int("n_samples", self.n_samples, 4, 4096)
+        check_seed(self.random_state)
+        check_quiet(self.quiet)
+        radius = float(to_value("active_radius", self.active_radius, u.deg, default_unit=u.deg))
+        return folds_n, n_samples, check_real("active_radius", radius, 0.0, 180.0, low_inclusive=False)
+
     def _candidates(self):
-        amps = [check_real("amplitudes", float(a), 0.0, 5.0, low_inclusive=False) for a in np.atleast_1d(self.amplitudes)]
+        try:
+            amps = np.atleast_1d(np.asarray(self.amplitudes, dtype=float))
+        except (TypeError, ValueError):
+            raise param_error("amplitudes", "a sequence of numbers in (0, 5], e.g. (0.03, 0.1, 0.25, 0.6)",
+                              self.amplitudes) from None
         lens = np.atleast_1d(to_value("lengths", self.lengths, u.pc, default_unit=u.pc)).astype(float)
+        for name, values, example in (("amplitudes", amps, "(0.03, 0.1, 0.25, 0.6)"),
+                                      ("lengths", lens, "(150, 500) * u.pc")):
+            if values.ndim != 1 or values.size == 0:
+                raise param_error(name, f"a non-empty sequence of candidates, e.g. {example}", getattr(self, name))
+        amps = [check_real("amplitudes", float(a), 0.0, 5.0, low_inclusive=False) for a in amps]
         for x in lens:
             check_real("lengths", float(x), 1.0, 1e5)
         return sorted(amps), sorted(float(L) for L in lens)
@@ -246,9 +264,7 @@ class DensityModel:
         """Fit the density model to a :class:`~dustkit.tracers.TracerSet`; returns ``self``."""
         t_start = time.perf_counter()
         grid = self.make_grid(tracers)
-        folds_n, n_samples = check_int("n_folds", self.n_folds, 2, 20), check_int("n_samples", self.n_samples, 4, 4096)
-        radius = float(to_value("active_radius", self.active_radius, u.deg, default_unit=u.deg))
-        check_real("active_radius", radius, 0.0, 180.0, low_inclusive=False)
+        folds_n, n_samples, radius = self._checked_options()
         cands = self._candidates()
         n, inside = len(tracers), int(np.sum(np.asarray(tracers.distance, float) <= grid.distance_edges[-1]))
         if inside < 5:  # tracers beyond the grid only bound its far end
