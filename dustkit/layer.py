@@ -400,25 +400,45 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     )
 
 
+#: The range the layer's fit searches: a0 (mag/kpc), h (pc), z_sun (pc).
+_LOWER = np.array([1e-4, 5.0, -300.0])
+_UPPER = np.array([50.0, 5000.0, 300.0])
+
+
 def _warn_if_undetermined(p, err, b, d):
-    """A DustkitWarning when the tracers cannot fix the layer: an error above its own scale (or not finite).
+    """A DustkitWarning when the tracers cannot fix the layer: a parameter at the edge of the range
+    the fit searches, or an error above its own scale (or not finite).
 
     a0's error above a0, h's above h, z_sun's above h (the Sun's height not known to a scale
     height): tracers at one latitude, one position or one distance leave the three
-    parameters degenerate, and a build then answers from a layer that means nothing.
+    parameters degenerate, and a build then answers from a layer that means nothing. A
+    parameter at the edge of its range (tracers that show no dust: every A_V near 0) has no
+    error worth the name either.
     """
+    # near an edge: a0 within 10x of its floor (no dust), h within 20% of either end, z_sun within 5%
+    low = (p[0] <= 10 * _LOWER[0], p[1] <= 1.2 * _LOWER[1], p[2] <= 0.95 * _LOWER[2])
+    high = (p[0] >= 0.95 * _UPPER[0], p[1] >= 0.8 * _UPPER[1], p[2] >= 0.95 * _UPPER[2])
+    edge = [f"{k} = {v:.3g} (near the {'lowest' if lo else 'highest'} the fit tries)"
+            for k, v, lo, hi in zip(("a0", "h", "z_sun"), p, low, high) if lo or hi]
     scale = {"a0": p[0], "h": p[1], "z_sun": p[1]}
-    loose = [k for k, e in zip(("a0", "h", "z_sun"), err) if not np.isfinite(e) or e > scale[k]]
+    loose = [f"{k} ({e:.3g})" for k, e in zip(("a0", "h", "z_sun"), err) if not np.isfinite(e) or e > scale[k]]
+    if not (edge or loose):
+        return
+    why = []
+    if edge:
+        why.append("the fit stopped at the edge of its range: " + ", ".join(edge)
+                   + " (tracers that show no dust layer, e.g. every A_V near 0, end there)")
     if loose:
-        z = d * np.sin(np.deg2rad(b))
-        warnings.warn(
-            f"These {b.size} tracers do not determine the smooth dust layer: the error of "
-            + ", ".join(f"{k} ({e:.3g})" for k, e in zip(("a0", "h", "z_sun"), err) if k in loose)
-            + f" is undefined or larger than its scale (a0 = {p[0]:.3g} mag/kpc, h = {p[1]:.3g} pc); they span latitudes "
-            f"{b.min():.2f} to {b.max():.2f} deg, heights {z.min():.0f} to {z.max():.0f} pc and distances "
-            f"{d.min():.0f} to {d.max():.0f} pc. Hint: add tracers over a range of latitudes and distances, or give "
-            "a layer fitted to a wider catalogue (layer=..., dustkit build --layer-from).",
-            DustkitWarning, stacklevel=3)
+        why.append("the error of " + ", ".join(loose)
+                   + f" is undefined or larger than its scale (a0 = {p[0]:.3g} mag/kpc, h = {p[1]:.3g} pc)")
+    z = d * np.sin(np.deg2rad(b))
+    warnings.warn(
+        f"These {b.size} tracers do not determine the smooth dust layer: " + "; ".join(why)
+        + f". They span latitudes {b.min():.2f} to {b.max():.2f} deg, heights {z.min():.0f} to {z.max():.0f} pc "
+        f"and distances {d.min():.0f} to {d.max():.0f} pc; answers that lean on the layer, with their errors, mean "
+        "little. Hint: check the catalogue's reddening column, add tracers over a range of latitudes and "
+        "distances, or give a layer fitted to a wider catalogue (layer=..., dustkit build --layer-from).",
+        DustkitWarning, stacklevel=3)
 
 
 def _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift):
@@ -523,8 +543,7 @@ def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
     tracers with 8-10% distance errors and no cloud, A_V along the plane at 2 kpc came out
     0.8% high, more than its 0.6% statistical error, against 0.2% with the average).
     """
-    lo = np.array([1e-4, 5.0, -300.0])
-    hi = np.array([50.0, 5000.0, 300.0])
+    lo, hi = _LOWER, _UPPER
     p = np.clip(np.asarray(initial, float), lo + 1e-9, hi - 1e-9)
     if scatter is None:
         scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)

@@ -318,3 +318,23 @@ def test_tracers_that_cannot_fix_the_layer_are_told_once_and_a_usual_catalogue_i
         warnings.simplefilter("error", DustkitWarning)
         fit_layer(TracerSet.from_arrays(t["l"], t["b"], t["distance"], t["distance_err"], 3.1 * t["ebv"],
                                         3.1 * t["ebv_err"]))
+
+
+def test_tracers_without_dust_are_told_the_layer_fit_stopped_at_its_edge(recwarn):
+    # invented tracers that show no dust (every A_V 0 +- 0.05): the fit runs to the edge of its
+    # range (a0 and h at their lowest); the density build then answered ~0 mag +- 1e130 mag without
+    # a word. Both the layer fit and a build now say once where it stopped and what to do
+    import dustkit
+    from dustkit.exceptions import DustkitWarning
+
+    rng = np.random.default_rng(1)
+    n = 30
+    d = rng.uniform(200, 2000, n)
+    none = TracerSet.from_arrays(rng.uniform(100, 120, n), rng.uniform(-8, 8, n), d, 0.1 * d, np.zeros(n),
+                                 np.full(n, 0.05))
+    with pytest.warns(DustkitWarning, match=r"stopped at the edge of its range: a0 = .* \(near the lowest"):
+        fit_layer(none)
+    recwarn.clear()
+    dustkit.build_model(none, quiet=True)
+    said = [w for w in recwarn if issubclass(w.category, DustkitWarning) and "edge of its range" in str(w.message)]
+    assert len(said) == 1 and "layer=..." in str(said[0].message) and "do not determine" in str(said[0].message)
