@@ -462,19 +462,12 @@ def _read_tracers(args, path, summary_shown=True):
     from .exceptions import AssumptionWarning
     from .tracers import read_tracers
 
-    kw = {}
-    if getattr(args, "parallax_floor", None) is not None:
-        kw["parallax_err_floor"] = args.parallax_floor * u.mas
+    kw = _reading_options(args)
     if getattr(args, "source_temperature", None) is not None:
         kw["source_temperature"] = args.source_temperature * u.K
-    if getattr(args, "duplicate_separation", None) is not None:
-        kw["duplicate_separation"] = args.duplicate_separation * u.arcsec
-    kw.update(_zero_point(args))
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
-        tracers = read_tracers(path, columns=_columns(args.column), distance_unit=args.distance_unit,
-                               law=args.law, rv=args.rv, distance_modulus_kind=getattr(args, "modulus_kind", None),
-                               duplicates=getattr(args, "duplicates", "merge"), **kw)
+        tracers = read_tracers(path, columns=_columns(args.column), law=args.law, rv=args.rv, **kw)
     said = set(tracers.meta.get("assumptions", [])) if summary_shown and not getattr(args, "quiet", False) else set()
     for w in record:
         if issubclass(w.category, AssumptionWarning) and str(w.message) in said:
