@@ -788,6 +788,13 @@ def _cmd_profile(args, out):
     return 0
 
 
+def _refuse_same_file(output, other, option, loss, example):
+    """A usage error when ``other`` (the file of ``option``) is the -o file: one write would replace the other."""
+    if os.path.abspath(os.path.expanduser(other)) == os.path.abspath(os.path.expanduser(output)):
+        raise _UsageError(f"-o and {option} name the same file ({output!r}): {loss}. Hint: give them a name of "
+                          f"their own, e.g. {option} {example}")
+
+
 def _cmd_export(args, out):
     from ._lib.formats import check_target, format_for
     from .io import check_fits_path, export_table, load_model, write_slice_maps
@@ -796,9 +803,7 @@ def _cmd_export(args, out):
     check_target(args.output, args.overwrite)
     if args.maps:
         check_fits_path(args.maps, args.overwrite, what="slice-map file")
-        if os.path.abspath(os.path.expanduser(args.maps)) == os.path.abspath(os.path.expanduser(args.output)):
-            raise _UsageError(f"-o and --maps name the same file ({args.output!r}): the maps would replace the "
-                              "table. Hint: give the maps a name of their own, e.g. --maps slices.fits")
+        _refuse_same_file(args.output, args.maps, "--maps", "the maps would replace the table", "slices.fits")
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
     g = model.grid_
@@ -828,10 +833,9 @@ def _cmd_features(args, out):
         if path:
             format_for(path, "table")
             check_target(path, args.overwrite)
-    if args.detections and os.path.abspath(os.path.expanduser(args.detections)) == os.path.abspath(
-            os.path.expanduser(args.output)):
-        raise _UsageError(f"-o and --detections name the same file ({args.output!r}): the per-pixel steps would "
-                          "replace the feature table. Hint: give them a name of their own, e.g. --detections pixels.ecsv")
+    if args.detections:
+        _refuse_same_file(args.output, args.detections, "--detections",
+                          "the per-pixel steps would replace the feature table", "pixels.ecsv")
     model = load_model(args.model)
     has_density = hasattr(model, "samples_")
     finder = args.finder if args.finder != "auto" else ("density" if has_density else "steps")
@@ -1144,7 +1148,7 @@ def _cmd_demo(args, out):
 
 # ============================================================================ entry point
 
-def _show_warning_factory(quiet, debug):
+def _show_warning_factory(debug):
     """Warnings as one line on stderr: dustkit's always (--quiet silences progress and chatter, not
     warnings: an assumed unit or default error is something the user must hear), others with --debug."""
     from .exceptions import DustkitWarning
@@ -1204,11 +1208,11 @@ def _run(args, prog, quiet, debug):
     from .exceptions import DustkitError, FileFormatError, ParameterError
 
     old_show = warnings.showwarning
-    warnings.showwarning = _show_warning_factory(quiet, debug)
+    warnings.showwarning = _show_warning_factory(debug)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
-            warnings.showwarning = _show_warning_factory(quiet, debug)
+            warnings.showwarning = _show_warning_factory(debug)
             status = int(args.func(args, _Out(quiet)) or 0)
             sys.stdout.flush()  # a closed pipe fails here, inside the handlers below
             return status
