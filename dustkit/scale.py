@@ -665,14 +665,19 @@ def _catalogue_record(p1, reading, source, n_rows, n_used, n_merged):
     }
 
 
+def _without_numbers(text):
+    """``text`` with each number replaced by '#': the chunks' messages that differ only in a number are one."""
+    import re
+
+    return re.sub(r"[-+]?\d[\d.e+-]*", "#", text)
+
+
 def _once_each(texts):
     """Each assumption once: texts that differ only in their numbers (a chunk's median distance) are one,
     said with the first chunk's numbers, as the chunks' warnings are (``_announce``)."""
-    import re
-
     seen, out = set(), []
     for text in texts:
-        key = re.sub(r"[-+]?\d[\d.e+-]*", "#", text)
+        key = _without_numbers(text)
         if key not in seen:
             seen.add(key)
             out.append(text)
@@ -756,7 +761,7 @@ def _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates):
     for _, cls, msg in p1["notes"]:
         m = re.match(r"(\d+) (.*)", msg, re.S)
         rest = m.group(2) if m else msg
-        key = (cls, bool(m), re.sub(r"[-+]?\d[\d.e+-]*", "#", rest))
+        key = (cls, bool(m), _without_numbers(rest))
         if key not in summed:
             summed[key], first[key] = 0, rest
             order.append(key)
