@@ -5,7 +5,7 @@ import re
 import numpy as np
 from astropy import units as u
 
-from ..exceptions import AssumptionWarning, CatalogError, ParameterError
+from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .context import Context
@@ -263,6 +263,15 @@ def _rows(n):
     return f"{n} row has" if n == 1 else f"{n} rows have"
 
 
+def _redder_first(color, law, rv, temperature):
+    """True when dust reddens the colour ``color[0] - color[1]`` negatively: its first band is the redder."""
+    from .. import bands as _bands
+
+    excess, _ = _bands.av_to_excess(1.0, 0.0, color[0], color[1], law=law, rv=rv,
+                                    temperature=None if temperature is None else temperature * u.K)
+    return float(np.asarray(getattr(excess, "value", excess))) < 0
+
+
 def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, source_temperature=None,
               intrinsic_color_bands=None):
     """Return (excess, excess_err, kind, color, av, av_err); NaN where rejected.
@@ -295,17 +304,14 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     temps = source_temperatures(table, cols, ctx, kind, source_temperature, intrinsic_color_bands)
     ctx.temperature = temps
     t_ref = None if temps is None else float(temperature_input(source_temperature, DEFAULT_TEMPERATURE))
-    # A_V per unit of excess (for the default source), for the default error and the limits
-    try:
-        per_unit, _ = reddening_to_av(kind, color, np.ones(1), np.zeros(1), law, rv, temperature=t_ref)
-    except ParameterError as exc:
-        if "is redder than" not in str(exc):
-            raise
+    if temps is not None and _redder_first(color, law, rv, t_ref):
         raise CatalogError(
             f"Column {colname!r} holds {kind}, but {color[0]} is the redder band of the two: such an excess is "
             f"negative for any dust, and read as given every A_V would be negative. Hint: if the values are "
             f"E({color[1]}-{color[0]}) (positive for reddening), pass excess_color=({color[1]!r}, {color[0]!r})."
-        ) from None
+        )
+    # A_V per unit of excess (for the default source), for the default error and the limits
+    per_unit, _ = reddening_to_av(kind, color, np.ones(1), np.zeros(1), law, rv, temperature=t_ref)
     k = float(per_unit[0])
     if not np.isfinite(k) or k <= 0:
         raise CatalogError(f"The {kind} -> A_V conversion factor for law {law!r}, R_V = {rv:g} is {k!r}; cannot use it.")
