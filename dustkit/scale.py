@@ -481,6 +481,9 @@ default_distance_frac_err, default_excess_err, reject_limits, excess_color, dupl
         :class:`~dustkit.model.ExtinctionModel` parameters: ``nside``, ``distance_max``,
         ``distance_step``, ``distance_edges``, ``ordering``, ``n_folds``, ``sky_passes``,
         ``random_state``. ``uncertainty`` may only be ``'bin-scatter'`` (or ``'auto'``).
+        ``random_state`` is checked as in memory, before any row is read: an integer >= 0,
+        default 0 (the folds, the samples, the layer fit and the finishing draws all follow
+        from it, so the same seed gives the same model); None is refused.
 
     Returns
     -------

@@ -258,6 +258,25 @@ def test_folds_from_row_numbers():
     assert 0.15 < np.mean(other == f) < 0.25  # another seed gives an unrelated assignment
 
 
+def test_chunked_build_takes_the_in_memory_seed_and_refuses_none_before_reading(catalogue, monkeypatch):
+    # The in-memory build (ExtinctionModel.fit) refuses random_state=None: the same seed must give the same
+    # model (common practice for reproducible cross-validation). The chunked build hashed its folds with seed 0
+    # for None, fitted the layer unseeded, read and summed the whole catalogue and only then refused it.
+    import dustkit.scale as scale
+
+    _, _, folder = catalogue
+    with pytest.raises(ParameterError, match="'random_state' parameter must be an integer >= 0"):
+        fold_of_rows(np.arange(100), 5, random_state=None)
+
+    def no_reading(*args, **kwargs):
+        raise AssertionError("the catalogue was read before the seed was checked")
+
+    monkeypatch.setattr(scale, "_run_chains", no_reading)
+    for bad in (None, -1, 1.5):
+        with pytest.raises(ParameterError, match="'random_state' parameter must be an integer >= 0"):
+            build_from_parquet(folder, random_state=bad, quiet=True, **PARAMS)
+
+
 def test_clear_errors(catalogue, tmp_path):
     _, df, folder = catalogue
     # the chunks are read by read_tracers' rules: the same error for a file without a reddening column

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .._lib import healpix
-from .._lib.validation import check_int
+from .._lib.validation import check_int, check_seed
 
 __all__ = ["HELDOUT_MAX", "SPLIT_MIN", "HeldOut", "mix64", "row_hash", "seed_of", "fold_of_rows",
            "fold_of_positions", "heldout_rows", "calibration_half"]
@@ -93,9 +93,12 @@ def fold_of_rows(index, n_folds, random_state=0):
 
 
 def seed_of(random_state):
-    if random_state is None:
-        return 0
-    return check_int("random_state", random_state, 0, 2**63 - 1)
+    """``random_state`` checked as the in-memory build checks it (``check_seed``): an integer >= 0.
+
+    None is refused, not read as 0: folds, samples and draws must come from the one seed the
+    model records, so that the same seed gives the same model however it is built.
+    """
+    return check_seed(random_state)
 
 
 def heldout_rows(n, n_folds, random_state=0):
