@@ -492,11 +492,15 @@ def _given_layer_file(path):
 
 def _layer_lines(layer, given=None):
     how = f"given in {given}, not fitted" if given else "robust fit to the tracers"
+    held = "NOT FITTED: reference value, the tracers show no dust; "
+    flat = set(getattr(layer, "not_fitted", ()))
     return [
         f"Dust layer (exponential in height, {how}):",
-        f"  a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc   (mid-plane A_V per kpc)",
-        f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        (scale height)",
-        f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        (height of the Sun above the mid-plane)",
+        f"  a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc   (mid-plane A_V per kpc"
+        + (f"; no dust detected: below {layer.a0 + 2 * layer.a0_err:.3f} at 2 sigma)" if flat else ")"),
+        f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        ({held if 'h' in flat else ''}scale height)",
+        f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        "
+        f"({held if 'z_sun' in flat else ''}height of the Sun above the mid-plane)",
     ] + ([] if given else [f"  scatter of tracers around it: {layer.scatter:.3f} mag (from {layer.n_used} tracers)"]) + ([f"  the errors include the pull of dust above the layer (clouds): a0 {abs(pull[0]):.3f} mag/kpc, "
           f"h {abs(pull[1]):.1f} pc, z_sun {abs(pull[2]):.1f} pc"] if any(pull := [float(x) for x in layer.pull]) else [])
 
@@ -753,7 +757,10 @@ def _cmd_layer(args, out):
         warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=2)
     if args.json:
         d = layer.as_dict()
-        print(json.dumps({k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}, indent=1))
+        values = {k: float(d[k]) for k in ("a0", "a0_err", "h", "h_err", "z_sun", "z_sun_err")}
+        if layer.not_fitted:  # h, z_sun held at reference values: said, and kept by --layer-from
+            values["not_fitted"] = list(layer.not_fitted)
+        print(json.dumps(values, indent=1))
         return 0
     print("\n".join(_layer_lines(layer)))  # the command's answer: printed with --quiet too, as --json is
     return 0

@@ -271,6 +271,7 @@ def _state_hdu(model, state):
     sh["P_SEED"] = (-1 if params["random_state"] is None else int(params["random_state"]), "constructor parameter")
     sh["P_PASSES"] = (",".join(str(int(p)) for p in params["sky_passes"]), "constructor parameter")
     sh["P_LAYER"] = (bool(params.get("layer_given", False)), "layer given instead of fitted")
+    sh["LAYNOFIT"] = (str(lay.get("not_fitted", "")), "layer parameters not fitted (reference values)")
     sh["LAW"] = str(info["law"])
     return st
 
@@ -528,6 +529,7 @@ def _model_from_parts(path, parts):
         scatter=v["layer_scatter"], n_used=int(stt["LAYER_NUSED"][0]),
         covariance=np.asarray(stt["LAYER_COV"][0], float).reshape(3, 3),
         pull=np.asarray(stt["LAYER_PULL"][0], float) if "LAYER_PULL" in stt.columns.names else np.zeros(3),
+        not_fitted=tuple(k for k in str(stt_h.get("LAYNOFIT", "")).split(",") if k),
     )
     scatter = {name[len("SCATTER_"):].lower(): float(stt[name][0])
                for name in stt.columns.names if name.startswith("SCATTER_")}

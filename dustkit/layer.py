@@ -18,7 +18,7 @@ from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
            "layer_av_pc", "layer_av_mu", "layer_slope_pc", "log_distance_sigma", "distance_nodes", "BOOTSTRAP_RESAMPLES",
-           "LIFT_EXCESS"]
+           "LIFT_EXCESS", "REFERENCE_LAYER", "DETECTION_SIGMA"]
 
 #: Resamples of a block bootstrap of a layer's errors (``fit_layer(n_boot=...)``; ``benchmarks/layer_errors.py
 #: --bootstrap``). ``dustkit layer`` and the density model sum the fit's estimating equations over
@@ -160,8 +160,12 @@ class DustLayer:
     n_used: int = 0
     covariance: np.ndarray = field(default_factory=lambda: np.zeros((3, 3)), repr=False, compare=False)
     pull: np.ndarray = field(default_factory=lambda: np.zeros(3), repr=False, compare=False)
+    #: Parameters the tracers could not fix, held at :data:`REFERENCE_LAYER` (their errors the
+    #: reference spread): ``("h", "z_sun")`` when the tracers show no dust; empty otherwise.
+    not_fitted: tuple = ()
 
     def __post_init__(self):
+        object.__setattr__(self, "not_fitted", tuple(str(k) for k in (self.not_fitted or ())))
         # a layer given by hand with errors and no covariance: the errors are its (independent) covariance
         errs = np.array([self.a0_err, self.h_err, self.z_sun_err], float)
         if (not np.any(np.asarray(self.covariance, float)) and not np.any(np.asarray(self.pull, float))
@@ -182,7 +186,8 @@ class DustLayer:
         if missing:
             raise param_error(f"layer.{missing[0]}", "present (a0 in mag/kpc, h and z_sun in pc; "
                               "'dustkit layer CATALOGUE --json' writes them)", "missing")
-        return cls(**_checked_values(values))
+        flat = values.get("not_fitted") or ()
+        return cls(**_checked_values(values), not_fitted=tuple([flat] if isinstance(flat, str) else flat))
 
     def with_scaled_a0(self, ratio):
         """The same layer with its A_V (``a0``, its error, covariance, pull and scatter) multiplied by ``ratio``."""
@@ -263,7 +268,8 @@ class DustLayer:
     def state(self):
         """Everything that makes the layer, as a plain dict (for model files)."""
         return {**self.as_dict(), "scatter": self.scatter, "n_used": self.n_used,
-                "covariance": np.asarray(self.covariance, float), "pull": np.asarray(self.pull, float)}
+                "covariance": np.asarray(self.covariance, float), "pull": np.asarray(self.pull, float),
+                "not_fitted": ",".join(self.not_fitted)}
 
     @classmethod
     def from_state(cls, state):
@@ -272,9 +278,15 @@ class DustLayer:
                    a0_err=float(state["a0_err"]), h_err=float(state["h_err"]), z_sun_err=float(state["z_sun_err"]),
                    scatter=float(state.get("scatter", 0.0)), n_used=int(state.get("n_used", 0)),
                    covariance=np.asarray(state.get("covariance", np.zeros((3, 3))), float).reshape(3, 3),
-                   pull=np.asarray(state.get("pull", np.zeros(3)), float).reshape(3))
+                   pull=np.asarray(state.get("pull", np.zeros(3)), float).reshape(3),
+                not_fitted=tuple(k for k in str(state.get("not_fitted", "") or "").split(",") if k))
 
     def __str__(self):
+        if self.not_fitted:
+            return (f"dust layer: no dust detected, a0 = {self.a0:.3f} +- {self.a0_err:.3f} mag/kpc (below "
+                    f"{self.a0 + 2 * self.a0_err:.3f} at 2 sigma); h = {self.h:.0f} +- {self.h_err:.0f} pc and "
+                    f"z_sun = {self.z_sun:.0f} +- {self.z_sun_err:.0f} pc not fitted (reference values)"
+                    + (f" (from {self.n_used} tracers, scatter {self.scatter:.3f} mag)" if self.n_used else ""))
         return (
             f"dust layer: a0 = {self.a0:.3f} +- {self.a0_err:.3f} mag/kpc, "
             f"h = {self.h:.1f} +- {self.h_err:.1f} pc, "
@@ -381,6 +393,10 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
 
     if block_errors and n_boot:
         raise param_error("block_errors", "False when n_boot > 0 (block errors or a bootstrap, not both)", block_errors)
+    flat = _no_dust_layer(b, d, de, av, ae)
+    if flat is not None:
+        _warn_no_dust(flat, b, d)
+        return flat
     p, scatter, cov = _solve_layer(b, d, de, av, ae, initial, f_scale)
     if block_errors or (n_boot and n_boot > 0):
         labels = sky_blocks(tracers.l, tracers.b) if blocks is None else np.asarray(blocks)
@@ -398,6 +414,67 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
         scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull,
     )
+
+
+#: h and z_sun (pc) with their spread, held when the tracers show no dust (:func:`_no_dust_layer`):
+#: (h, h_err, z_sun, z_sun_err). Typical values for open clusters, h about 125 pc and z_sun about
+#: 15-25 pc (Joshi 2005, MNRAS 362, 1259); the spreads are wide on purpose.
+REFERENCE_LAYER = (125.0, 50.0, 20.0, 10.0)
+
+#: a0 counts as detected when its estimate under the reference h and z_sun exceeds this many of its errors.
+DETECTION_SIGMA = 3.0
+
+
+def _no_dust_layer(b, d, de, av, ae):
+    """The layer of tracers that show no dust, or None when they show a layer (a0 detected).
+
+    a0 enters the layer linearly: under the reference h and z_sun (:data:`REFERENCE_LAYER`) its
+    weighted least-squares estimate and error are closed form, the error scaled up by the robust
+    spread of the residuals when it exceeds the tracers' errors. When the estimate is below
+    :data:`DETECTION_SIGMA` errors the tracers cannot fix h or z_sun (the full fit then ran to the
+    edge of its range, or returned errors of 1e4-1e8): they are held at the reference values, with
+    its spread as their errors, and a0's error is the largest over h at the ends of its spread
+    (a thinner layer needs a larger a0 for the same column), widened by how far the estimates
+    there differ. a0 is kept at least the fit's floor.
+    """
+    h_ref, h_err, z_ref, z_err = REFERENCE_LAYER
+    predict = _averaged_layer(b, d, de)
+    ests = []
+    for h in (h_ref - h_err, h_ref, h_ref + h_err):
+        f = predict(np.array([1.0, h, z_ref]))
+        mad = 1.4826 * np.median(np.abs(av - np.median(av)))
+        scatter = float(np.sqrt(max(mad**2 - np.median(ae**2), 0.01**2)))
+        w = 1.0 / (ae**2 + scatter**2)
+        info = float(np.sum(w * f * f))
+        if not np.isfinite(info) or info <= 0:
+            return None
+        a = float(np.sum(w * f * av)) / info
+        r = (av - a * f) * np.sqrt(w)
+        spread = max(1.0, (1.4826 * float(np.median(np.abs(r)))) ** 2)
+        ests.append((a, np.sqrt(spread / info), scatter))
+    a_ref, e_ref, scatter = ests[1]
+    if a_ref > DETECTION_SIGMA * e_ref:
+        return None
+    a_vals = [e[0] for e in ests]
+    err = float(np.sqrt(max(e[1] for e in ests) ** 2 + (0.5 * (max(a_vals) - min(a_vals))) ** 2))
+    return DustLayer(a0=float(max(a_ref, _LOWER[0])), h=h_ref, z_sun=z_ref, a0_err=err, h_err=h_err,
+                     z_sun_err=z_err, scatter=scatter, n_used=int(b.size),
+                     covariance=np.diag([err**2, h_err**2, z_err**2]), not_fitted=("h", "z_sun"))
+
+
+def _warn_no_dust(layer, b, d):
+    """The DustkitWarning of a layer fitted to tracers that show no dust (:func:`_no_dust_layer`)."""
+    z = d * np.sin(np.deg2rad(b))
+    warnings.warn(
+        f"These {b.size} tracers show no dust layer: a0 = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc, "
+        f"consistent with 0 (below {layer.a0 + 2 * layer.a0_err:.3f} mag/kpc at 2 sigma). The scale height and "
+        f"the Sun's height cannot be fitted without dust: they are not fitted, held at reference values "
+        f"h = {layer.h:.0f} +- {layer.h_err:.0f} pc and z_sun = {layer.z_sun:.0f} +- {layer.z_sun_err:.0f} pc "
+        f"(Joshi 2005). The tracers span latitudes {b.min():.2f} to {b.max():.2f} deg and heights {z.min():.0f} "
+        f"to {z.max():.0f} pc; answers beyond them rest on a0's error alone. Hint: if the region should "
+        "show dust, check the catalogue's reddening column; to carry a layer from elsewhere, give one fitted to "
+        "a wider catalogue (layer=..., dustkit build --layer-from).",
+        DustkitWarning, stacklevel=3)
 
 
 #: The range the layer's fit searches: a0 (mag/kpc), h (pc), z_sun (pc).

@@ -320,10 +320,79 @@ def test_tracers_that_cannot_fix_the_layer_are_told_once_and_a_usual_catalogue_i
                                         3.1 * t["ebv_err"]))
 
 
-def test_tracers_without_dust_are_told_the_layer_fit_stopped_at_its_edge(recwarn):
+def _no_dust(n, av, b_range=(50, 70), seed=3):
+    """Invented tracers of a dust-free high-latitude test region: A_V as given, errors 0.03 mag."""
+    rng = np.random.default_rng(seed)
+    d = rng.uniform(100, 1500, n)
+    return TracerSet.from_arrays(rng.uniform(100, 140, n), rng.uniform(*b_range, n), d, 0.05 * d,
+                                 np.broadcast_to(np.asarray(av, float), (n,)).copy(), np.full(n, 0.03))
+
+
+@pytest.mark.parametrize("case", ["zeros", "five_tiny", "noise"])
+def test_tracers_without_dust_give_a0_consistent_with_zero_and_h_z_sun_marked_not_fitted(case):
+    # A catalogue with no dust (every A_V 0, or 0 +- noise, or a handful of 0.01 mag) said
+    # "do not determine" and reported a0 = 0.167 +- nan mag/kpc, h = 20.6 +- nan pc, or errors of 1e4-1e8.
+    # Now: a0 from the data with its error (an upper limit follows), h and z_sun held at the reference
+    # values (open clusters: h about 125 pc, z_sun 15-25 pc; Joshi 2005, MNRAS 362, 1259) and marked.
+    from dustkit.exceptions import DustkitWarning
+    from dustkit.layer import REFERENCE_LAYER
+
+    n = 200
+    av = {"zeros": 0.0, "five_tiny": np.where(np.arange(n) < 5, 0.01, 0.0),
+          "noise": np.random.default_rng(9).normal(0, 0.03, n)}[case]
+    with pytest.warns(DustkitWarning, match=r"show no dust layer.*a0 = .* mag/kpc.*not fitted"):
+        lay = fit_layer(_no_dust(n, av))
+    assert lay.not_fitted == ("h", "z_sun")
+    assert (lay.h, lay.h_err, lay.z_sun, lay.z_sun_err) == REFERENCE_LAYER
+    assert np.all(np.isfinite([lay.a0, lay.a0_err])) and lay.a0 < 2 * lay.a0_err  # consistent with 0
+    # the error from the data: 200 tracers of 0.03 mag fix the column above them (b = 60 deg: A_V to
+    # infinity is a0 h / sin b) to about 0.03 / sqrt(200) = 0.002 mag, i.e. a0 to about 0.02 mag/kpc
+    # for h near 125 pc (the error of a weighted mean: common practice)
+    assert 0.005 < lay.a0_err < 0.1
+    assert "not fitted" in str(lay) and "no dust detected" in str(lay)
+    assert DustLayer.from_state(lay.state()).not_fitted == ("h", "z_sun")
+
+
+def test_a_model_of_tracers_without_dust_answers_zero_with_honest_errors(tmp_path):
+    # The density build on the dust-free catalogue answered 5e-8 +- 6e-8 mag at the tracers and
+    # 7e-6 +- 1e-4 mag in the plane at 3 kpc: an error far below what 0.03-mag tracers can say.
+    import warnings
+
+    import dustkit
+
+    n = 200
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = dustkit.build_model(_no_dust(n, 0.0), quiet=True)
+    assert model.layer_.not_fitted == ("h", "z_sun")
+    av, err = (x.to_value(u.mag) for x in model.av([120, 120, 120] * u.deg, [60, 60, 0] * u.deg,
+                                                     [1000, 3000, 3000] * u.pc))
+    assert np.all(np.abs(av) <= 2 * err)
+    # no smaller than what the tracers can say: the error of a mean of 200 values of +- 0.03 mag
+    # (common practice), even where they all sit
+    assert np.all(err[:2] >= 0.03 / np.sqrt(n))
+    # in the plane, out of reach of the data, the error follows a0's: 3 kpc x a0_err at least
+    assert err[2] >= 0.5 * 3.0 * model.layer_.a0_err
+    # the mark reaches what users read: the command's lines, the --json a later --layer-from takes, model files
+    from dustkit.cli import _layer_lines
+
+    lines = _layer_lines(model.layer_)
+    assert "no dust detected" in lines[1] and "NOT FITTED" in lines[2] and "NOT FITTED" in lines[3]
+    assert DustLayer.from_dict({**model.layer_.as_dict(), "not_fitted": ["h", "z_sun"]}).not_fitted == ("h", "z_sun")
+    for kind in ("density", "binned"):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            m = model if kind == "density" else dustkit.build_model(_no_dust(n, 0.0), model="binned", nside=8,
+                                                                    quiet=True)
+            path = tmp_path / f"{kind}.fits"
+            dustkit.save_model(m, path)
+            assert dustkit.load_model(path).layer_.not_fitted == ("h", "z_sun")
+
+
+def test_tracers_without_dust_are_told_once_by_the_fit_and_by_a_build(recwarn):
     # invented tracers that show no dust (every A_V 0 +- 0.05): the fit runs to the edge of its
     # range (a0 and h at their lowest); the density build then answered ~0 mag +- 1e130 mag without
-    # a word. Both the layer fit and a build now say once where it stopped and what to do
+    # a word. Both the layer fit and a build now say once that there is no dust layer and what to do
     import dustkit
     from dustkit.exceptions import DustkitWarning
 
@@ -332,9 +401,9 @@ def test_tracers_without_dust_are_told_the_layer_fit_stopped_at_its_edge(recwarn
     d = rng.uniform(200, 2000, n)
     none = TracerSet.from_arrays(rng.uniform(100, 120, n), rng.uniform(-8, 8, n), d, 0.1 * d, np.zeros(n),
                                  np.full(n, 0.05))
-    with pytest.warns(DustkitWarning, match=r"stopped at the edge of its range: a0 = .* \(near the lowest"):
+    with pytest.warns(DustkitWarning, match=r"show no dust layer: a0 = .* consistent with 0"):
         fit_layer(none)
     recwarn.clear()
     dustkit.build_model(none, quiet=True)
-    said = [w for w in recwarn if issubclass(w.category, DustkitWarning) and "edge of its range" in str(w.message)]
-    assert len(said) == 1 and "layer=..." in str(said[0].message) and "do not determine" in str(said[0].message)
+    said = [w for w in recwarn if issubclass(w.category, DustkitWarning) and "show no dust" in str(w.message)]
+    assert len(said) == 1 and "layer=..." in str(said[0].message) and "not fitted" in str(said[0].message)
