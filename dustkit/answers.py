@@ -48,7 +48,6 @@ __all__ = [
     "query_table",
     "profile_table",
     "estimate_targets",
-    "target_temperatures",
     "grid_table",
 ]
 
@@ -371,75 +370,6 @@ def estimate_columns(model, bands=(), samples=0):
 UNITLESS_COLUMNS = ("support", "n_tracers", "prior_only")
 
 
-def target_temperatures(table, temperature=None):
-    """Blackbody temperature (K) of each target's star for the band columns of :func:`estimate_targets`.
-
-    A broad band's extinction depends on the star behind the dust (Gaia G by up to 30% between a
-    cool and a hot star), so each target's band extinction is integrated for its own star.
-
-    Parameters
-    ----------
-    table : astropy.table.Table
-        The targets' input table.
-    temperature : Quantity['temperature'], str or None
-        One temperature, one per row, or the name of a column of ``table`` (in K unless the column
-        has a unit; ``log...`` names hold log10 K). None: a recognised temperature column
-        (``teff``, ``T_eff``, ``teff_gspphot``, ``logTeff``, ...), else the default source
-        (:data:`dustkit.bands.DEFAULT_TEMPERATURE`, 5800 K) for every row.
-
-    Returns
-    -------
-    temperature : ndarray
-        K per row; rows without a usable value have the default, values beyond the tables'
-        2 000-100 000 K the nearest edge.
-    source : str
-        What the temperatures are, for reports (``meta["band_temperature"]``).
-    """
-    from .bands import DEFAULT_TEMPERATURE, star_temperatures
-    from .bands.inputs import temperature_input
-    from .tracers.columns import VALUE_ALIASES, norm
-
-    n = len(table)
-    t_default = float(DEFAULT_TEMPERATURE.to_value(u.K))
-    if temperature is not None and not isinstance(temperature, str):
-        t = temperature_input(temperature, DEFAULT_TEMPERATURE, stacklevel=4)
-        if t.ndim and t.shape != (n,):
-            raise param_error("temperature", f"one temperature, one per target ({n}) or a column name",
-                              f"{t.size} values")
-        values = np.broadcast_to(t, (n,)).astype(float)
-        return values, (f"a {float(values[0]):g} K blackbody" if t.ndim == 0 else "the temperatures given per target")
-    if isinstance(temperature, str):
-        if temperature not in table.colnames:
-            raise param_error("temperature", f"a column of the targets ({', '.join(table.colnames)}) or a "
-                              "temperature such as 4500 * u.K", temperature)
-        col = temperature
-    else:
-        by_norm = {}
-        for c in table.colnames:
-            by_norm.setdefault(norm(c), c)
-        col = next((by_norm[a] for a in VALUE_ALIASES["temperature"] if a in by_norm), None)
-        if col is None:
-            return np.full(n, t_default), (f"a {t_default:g} K blackbody for every target (the default: no "
-                                           "temperature column such as 'teff')")
-    column = table[col]
-    try:
-        values = np.ma.filled(np.ma.asarray(column, dtype=float), np.nan)
-    except (TypeError, ValueError):
-        raise param_error("temperature", "a column of numbers (K, or log10 K for 'log...' names)", col) from None
-    if norm(col).startswith(("log", "lg")):
-        values = np.where((values > 0) & (values < 6), 10.0 ** np.where(np.isfinite(values), values, 0.0), np.nan)
-    elif getattr(column, "unit", None) is not None:
-        try:
-            values = (values * u.Unit(column.unit)).to_value(u.K, equivalencies=u.temperature())
-        except (u.UnitsError, ValueError, TypeError):
-            raise param_error("temperature", "a temperature column (K)", f"{col!r} in {column.unit}") from None
-    st = star_temperatures(n, temperature=values * u.K)
-    notes = [f"{k} without a usable value: {t_default:g} K" for k in [st.n_default] if k]
-    notes += [f"{k} beyond 2000-100000 K: set to the nearest edge" for k in [st.n_clipped] if k]
-    source = f"the temperatures in column {col!r}" + (f" ({'; '.join(notes)})" if notes else "")
-    return st.temperature.to_value(u.K), source
-
-
 def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, temperature=None, **read_options):
     """Extinction for a list of targets, keeping every input row and column.
 
@@ -458,8 +388,11 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, tem
     temperature : Quantity['temperature'], str or None
         The targets' stars for the band extinctions (a broad band's A/A_V depends on the star):
         one temperature, one per row, or a column name; None reads a temperature column such as
-        ``teff`` when there is one, else takes a 5800 K blackbody (see :func:`target_temperatures`;
-        ``meta["band_temperature"]`` says which).
+        ``teff`` when there is one, else takes a 5800 K blackbody (see
+        :func:`dustkit.tracers.reader.target_temperatures`, which reads the column as ``read_tracers``
+        reads one: bad cells leave that row's band extinctions empty and are announced with the row,
+        empty cells and values set to the tables' edge are counted; ``meta["band_temperature"]`` says
+        which, ``meta["band_temperature_rejected"]`` counts the bad cells by reason).
     samples : int
         Posterior draws of A_V per target to add as ``av_samples`` (n, samples), with each
         target's distance error drawn in: for users who propagate them. Only models that keep
@@ -484,6 +417,9 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, tem
         ``TargetList.rejected``).
     """
     from .tracers import TargetList, read_targets
+    from .bands import DEFAULT_TEMPERATURE
+    from .tracers.context import emit
+    from .tracers.reader import target_temperatures
     from .tracers.sets import input_column_name
 
     model.check_fitted()
@@ -499,7 +435,9 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, tem
                           "reading options with a TargetList")
     ok = np.asarray(targets.valid)
     if bands:
-        temps, temps_source = target_temperatures(targets.table, temperature)
+        temps = target_temperatures(targets, temperature)
+        emit(temps.notes)
+        no_star = np.isnan(temps.values)  # a bad temperature cell: the row's band extinctions stay empty
     table = Table(targets.table, copy=True)
     names = estimate_columns(model, bands, samples)
     # the draws are one column here and av_samples_1 .. av_samples_N in CSV (io.write_table): an input holding
@@ -516,11 +454,13 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, tem
         ask = model.query if own else (lambda *a, **k: query_table(model, *a, **k))
         extra = {"samples": samples} if samples else {}
         if bands:
-            extra["temperature"] = temps[ok] * u.K
+            extra["temperature"] = np.where(no_star, float(DEFAULT_TEMPERATURE.to_value(u.K)), temps.values)[ok] * u.K
         q = ask(lv * u.deg, bv * u.deg, dv * u.pc, distance_err=np.asarray(targets.distance_err)[ok] * u.pc,
                 bands=tuple(bands), law=law, rv=rv, **extra)
         for c in names:
             values[c][ok] = u.Quantity(q[c]).to_value(u.mag) if c not in UNITLESS_COLUMNS else np.asarray(q[c], float)
+            if c.startswith("a_"):
+                values[c][no_star] = np.nan
     for c in names:
         if c == "prior_only":
             table[c] = MaskedColumn(values[c] > 0.5, mask=np.isnan(values[c]))
@@ -530,7 +470,9 @@ def estimate_targets(model, targets, bands=(), law=None, rv=None, samples=0, tem
             table[c] = values[c] * u.mag
     table.meta["caution"] = CAUTION
     if bands:
-        table.meta["band_temperature"] = temps_source
+        table.meta["band_temperature"] = temps.source
+        reasons, counts = np.unique(np.asarray(temps.rejected["reason"], dtype=str), return_counts=True)
+        table.meta["band_temperature_rejected"] = {str(r): int(c) for r, c in zip(reasons, counts)}
     table.meta["n_estimated"] = int(ok.sum())
     last = float(model.grid_.distance_edges[-1])
     table.meta["n_beyond_grid"] = int(np.sum(np.asarray(targets.distance, float)[ok] > last))

@@ -708,6 +708,7 @@ def _cmd_estimate(args, out):
     names = estimate_columns(model, bands, args.samples)
     rej = targets.rejected
     table.meta.pop("rejected_by_reason")
+    table.meta.pop("band_temperature_rejected", None)  # named in a warning, counted in band_temperature
     n_ok = table.meta.pop("n_estimated")
     n_far = table.meta.pop("n_beyond_grid")
     path = write_table(table, args.output, overwrite=args.overwrite)

@@ -7,6 +7,7 @@ import pytest
 from astropy import units as u
 from astropy.table import Table
 
+import dustkit
 from dustkit import CAUTION, ExtinctionModel, read_targets
 from dustkit.answers import estimate_targets
 from dustkit.exceptions import RowsRejectedWarning
@@ -141,7 +142,7 @@ def test_estimate_targets_band_extinction_is_for_each_targets_own_star(model):
     for i, temp in enumerate([25000.0, 3500.0, 5800.0]):  # the empty cell: the default 5800 K star
         want, _ = av_to_band(av[i], 0.0, "G", law=model.law, rv=model.rv, temperature=temp * u.K)
         assert ag[i] == pytest.approx(float(want), rel=1e-9)
-    assert "'teff'" in out.meta["band_temperature"] and "1 without a usable value" in out.meta["band_temperature"]
+    assert "'teff'" in out.meta["band_temperature"] and "1 without a value: 5800 K" in out.meta["band_temperature"]
     # one temperature for all, or a column named explicitly, or the default said in meta
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -152,6 +153,44 @@ def test_estimate_targets_band_extinction_is_for_each_targets_own_star(model):
     assert _mag(one["a_G"])[0] == pytest.approx(ag[1], rel=1e-9)
     np.testing.assert_array_equal(_mag(named["a_G"]), ag)
     assert "5800 K" in plain.meta["band_temperature"] and _mag(plain["a_G"])[0] == pytest.approx(ag[2], rel=1e-9)
+
+
+def test_targets_temperature_column_is_read_as_the_tracers_one_bad_rows_named_and_counted(model):
+    # estimate_targets read a target's temperature column with checks of its own: a text cell stopped
+    # it, an infinite or negative one silently took a 5800 K star, and values set to the tables'
+    # 2 000-100 000 K edge (the passband tables' range) were not announced. Now one reading serves
+    # targets and tracers: the same rows rejected for the same reasons, named, the others counted.
+    from dustkit.exceptions import AssumptionWarning
+    from dustkit.tracers.reader import target_temperatures
+
+    teff = ["25000", "hot", "inf", "-5", "", "150000", "4500"]
+    n = len(teff)
+    t = Table({"name": [f"t{i}" for i in range(n)], "l": np.full(n, 30.0) * u.deg, "b": np.full(n, 1.0) * u.deg,
+               "distance": np.full(n, 1500.0) * u.pc, "teff": teff})
+    with pytest.warns(RowsRejectedWarning, match=r"3 targets have no usable value in 'teff'.*row 1 \(t1\)"):
+        with pytest.warns(AssumptionWarning, match=r"1 target has a value in 'teff' beyond the 2000-100000 K"):
+            out = estimate_targets(model, t, bands=("G",))
+    ag, av = _mag(out["a_G"]), _mag(out["av"])
+    assert np.all(np.isfinite(av))                            # A_V is kept for every row
+    assert np.array_equal(np.isnan(ag), [False, True, True, True, False, False, False])
+    assert "1 without a value" in out.meta["band_temperature"] and "3 unusable" in out.meta["band_temperature"]
+    assert sum(out.meta["band_temperature_rejected"].values()) == 3
+    # the same column beside an E(BP-RP) rejects the same rows for the same reasons in read_tracers
+    tr_table = t.copy()
+    tr_table["E(BP-RP)"] = np.full(n, 0.3)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tracers = read_tracers(tr_table)
+        temps = target_temperatures(read_targets(t))
+    assert list(tracers.rejected["row"]) == list(temps.rejected["row"]) == [1, 2, 3]
+    assert list(tracers.rejected["reason"]) == list(temps.rejected["reason"])
+    # log10 K by its name: values outside (0, 6) are bad rows alike; a median below 100 K stops both
+    logt = Table({"l": [30.0, 31.0], "b": [1.0, 1.0], "distance": [1500.0, 1500.0], "logTeff": [3.76, 7.5]})
+    read = target_temperatures(logt)
+    assert np.isnan(read.values[1]) and read.values[0] == pytest.approx(10**3.76)
+    assert any(c is RowsRejectedWarning and "log10 temperature in 'logTeff' outside (0, 6)" in m for c, m in read.notes)
+    with pytest.raises(dustkit.CatalogError, match="median of 3.78: not a stellar temperature"):
+        target_temperatures(Table({"teff": [3.76, 3.8]}))
 
 
 def test_estimate_targets_refuses_an_unknown_temperature_column(model):

@@ -149,6 +149,8 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
                 f"Column {rv_col!r} looks like a per-row R_V; it is not used: every row is converted to A_V with "
                 "the one R_V of the read (rv=, command line --rv). Hint: read rows of different R_V separately.",
             )
+    elif "temperature" in explicit:  # targets: the star of their band extinctions (reader.target_temperatures)
+        cols["temperature"] = explicit["temperature"]
     if "name" in explicit:
         cols["name"] = explicit["name"]
     elif isinstance(columns, dict) and "name" in columns and columns["name"] is None:

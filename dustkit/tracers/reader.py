@@ -3,6 +3,7 @@
 import hashlib
 import os
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -16,7 +17,7 @@ from .._lib.validation import check_real, param_error
 from .arrow import plain_parquet, read_parquet
 from .assemble import build_tracers
 from .columns import resolve_columns
-from .context import Context, emit
+from .context import Context, emit, empty_rejected
 from .distances import distances
 from .rules import (
     DEFAULT_DISTANCE_FRAC_ERR,
@@ -33,6 +34,8 @@ from .values import names_of, positions
 
 __all__ = [
     "SUFFIX_FORMATS",
+    "TargetTemperatures",
+    "target_temperatures",
     "catalogue_rows",
     "read_tracers",
     "read_targets",
@@ -329,6 +332,110 @@ def read_targets(
     tl = TargetList(table=table, l=l, b=b, distance=d, distance_err=d_err, valid=valid, rejected=rejected, meta=meta)
     emit(ctx.notes)
     return tl
+
+
+@dataclass(frozen=True)
+class TargetTemperatures:
+    """The targets' star temperatures for band extinctions (:func:`target_temperatures`).
+
+    Attributes
+    ----------
+    values : ndarray
+        K per row: the column's value (set to the tables' edge beyond 2 000-100 000 K), the
+        default star for empty cells, NaN for bad cells (their band extinctions stay empty).
+    source : str
+        What the temperatures are, with the counts (for reports, ``meta["band_temperature"]``).
+    rejected : astropy.table.Table
+        One row per bad cell: ``row``, ``name``, ``reason``, ``column``, ``value``.
+    notes : list of (warning class, message)
+        What the read announces: rows with the default star, values set to the edge, bad rows.
+    """
+
+    values: np.ndarray
+    source: str
+    rejected: Table
+    notes: list
+
+
+def target_temperatures(targets, temperature=None):
+    """Blackbody temperature (K) of each target's star, for the band extinctions of ``estimate_targets``.
+
+    A broad band's extinction depends on the star behind the dust (Gaia G by up to 30% between a
+    cool and a hot star), so each target's band extinction is integrated for its own star.
+
+    Parameters
+    ----------
+    targets : TargetList or astropy.table.Table
+        The targets (a :class:`TargetList` from :func:`read_targets`, or its input table).
+    temperature : Quantity['temperature'], str or None
+        One temperature, one per row, or the name of a column (in K unless the column has a
+        unit; ``log...`` names hold log10 K). None: the column named with
+        ``read_targets(columns={"temperature": ...})``, else a recognised one (``teff``,
+        ``T_eff``, ``teff_gspphot``, ``logTeff``, ...), else the default source
+        (:data:`dustkit.bands.DEFAULT_TEMPERATURE`, 5800 K) for every row.
+
+    Returns
+    -------
+    TargetTemperatures
+        A column is read as ``read_tracers`` reads a temperature column, with the same checks
+        (:func:`dustkit.tracers.temperatures.temperature_values`): text or infinite cells,
+        temperatures <= 0 K and log10 values outside (0, 6) are bad rows (NaN, named in
+        ``rejected``), empty cells take 5800 K and values beyond 2 000-100 000 K the nearest
+        edge, both counted.
+    """
+    from ..bands import DEFAULT_TEMPERATURE, star_temperatures
+    from ..bands.inputs import temperature_input
+    from .columns import VALUE_ALIASES, norm
+    from .temperatures import announce_temperatures, rows_have, temperature_values
+
+    table = targets.table if isinstance(targets, TargetList) else targets
+    n = len(table)
+    t_default = float(DEFAULT_TEMPERATURE.to_value(u.K))
+    if temperature is not None and not isinstance(temperature, str):
+        t = temperature_input(temperature, DEFAULT_TEMPERATURE, stacklevel=5)
+        if t.ndim and t.shape != (n,):
+            raise param_error("temperature", f"one temperature, one per target ({n}) or a column name",
+                              f"{t.size} values")
+        values = np.broadcast_to(t, (n,)).astype(float)
+        return TargetTemperatures(values, f"a {float(values[0]):g} K blackbody" if t.ndim == 0 else
+                                  "the temperatures given per target", empty_rejected(), [])
+    if isinstance(temperature, str):
+        if temperature not in table.colnames:
+            raise param_error("temperature", f"a column of the targets ({', '.join(table.colnames)}) or a "
+                              "temperature such as 4500 * u.K", temperature)
+        col = temperature
+    else:
+        col = (targets.meta.get("columns", {}).get("temperature") if isinstance(targets, TargetList) else None)
+        if col is None:
+            by_norm = {}
+            for c in table.colnames:
+                by_norm.setdefault(norm(c), c)
+            col = next((by_norm[a] for a in VALUE_ALIASES["temperature"] if a in by_norm), None)
+        if col is None:
+            return TargetTemperatures(np.full(n, t_default), f"a {t_default:g} K blackbody for every target (the "
+                                      "default: no temperature column such as 'teff')", empty_rejected(), [])
+    desc = targets.meta.get("source", "the targets") if isinstance(targets, TargetList) else "the targets"
+    ctx = Context(table, desc)
+    what = "the band-extinction conversion"
+    values = temperature_values(table, col, ctx)
+    st = star_temperatures(n, temperature=values * u.K)
+    good = ctx.rej.code < 0
+    n_default, n_clipped = announce_temperatures(st, col, ctx, what, t_default, good, rows="targets")
+    names = table[targets.meta["columns"]["name"]] if isinstance(targets, TargetList) and \
+        "name" in targets.meta.get("columns", {}) else None
+    rejected = ctx.rej.table(None if names is None else np.asarray(names).astype(str))
+    n_bad = len(rejected)
+    if n_bad:
+        rows = ", ".join(f"row {int(r)} ({nm})" for r, nm in zip(rejected["row"][:5], rejected["name"][:5]))
+        ctx.note(RowsRejectedWarning, f"{rows_have(n_bad, 'targets')} no usable value in {col!r} ("
+                 f"{ctx.rej.reason_text()}) [{rows}{', ...' if n_bad > 5 else ''}]: their band extinctions are "
+                 "left empty (NaN); their A_V is kept. Hint: fix or empty those cells (empty cells take a "
+                 f"{t_default:g} K star), or pass temperature=.")
+    notes = [f"{k} without a value: {t_default:g} K" for k in [n_default] if k]
+    notes += [f"{k} beyond 2000-100000 K: set to the nearest edge" for k in [n_clipped] if k]
+    notes += [f"{k} unusable: band extinctions left empty" for k in [n_bad] if k]
+    source = f"the temperatures in column {col!r}" + (f" ({'; '.join(notes)})" if notes else "")
+    return TargetTemperatures(np.where(good, st.temperature.to_value(u.K), np.nan), source, rejected, ctx.notes)
 
 
 def _is_dataframe(obj):

@@ -8,11 +8,11 @@ from astropy import units as u
 from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
-from .context import Context
 from .rules import reason
-from .values import error_values, numeric, to_unit
+from .values import error_values, numeric
 from ..bands import DEFAULT_TEMPERATURE
-from ..bands.inputs import TEMPERATURE_RANGE, temperature_input
+from ..bands.inputs import temperature_input
+from .temperatures import announce_temperatures, optional_numbers, temperature_values
 
 __all__ = [
     "EXCESS_NAME",
@@ -134,16 +134,6 @@ def intrinsic_color_bands(colname):
     return None if pair is None else (str(pair[0]), str(pair[1]))
 
 
-def _optional_numbers(table, colname, ctx):
-    """Values of an optional per-row column: text and infinities reject the row; empty cells are NaN."""
-    sub = Context(table, ctx.desc)
-    vals, unit, raw = numeric(table, colname, sub)
-    for k, (why, c, r) in enumerate(sub.rej.reasons):
-        if why in (reason("non_numeric", c), reason("infinite", c)):
-            ctx.rej.add(sub.rej.code == k, why, c, r)
-    return vals, unit, raw
-
-
 def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_bands=None):
     """Per-row source temperatures (K) for turning a colour excess into A_V, or None.
 
@@ -169,25 +159,10 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
                 ctx.used.pop(role, None)
                 ctx.assumptions.append(f"column {c!r} not used: A_V from {kind} does not depend on the star")
         return None
-    lo_t, hi_t = TEMPERATURE_RANGE
     n = ctx.n
     what = f"the {kind} -> A_V conversion"
     if tcol is not None:
-        vals, unit, raw = _optional_numbers(table, tcol, ctx)
-        if re.sub(r"[^a-z0-9]", "", tcol.lower()).startswith(("log", "lg")):  # log10(T / K)
-            ctx.rej.add(~((vals > 0) & (vals < 6)) & np.isfinite(vals), reason("temperature_log", tcol), tcol, raw)
-            vals = np.where((vals > 0) & (vals < 6), 10.0 ** np.where(np.isfinite(vals), vals, 0.0), np.nan)
-        else:
-            vals = to_unit(vals, unit, u.K, tcol, ctx, "a temperature in K")
-            ok = np.isfinite(vals) & (vals > 0) & (ctx.rej.code < 0)
-            if np.any(ok) and np.median(vals[ok]) < 100:
-                raise CatalogError(
-                    f"Temperature column {tcol!r} in {ctx.desc} has a median of {np.median(vals[ok]):.3g}: not "
-                    "a stellar temperature in K. Hint: if it holds log10(T_eff), name it like 'logTeff'; "
-                    "if it is another quantity, name the temperature column with columns={'temperature': ...}."
-                )
-        ctx.rej.add(vals <= 0, reason("temperature_not_positive", tcol), tcol, raw)
-        use = np.where(ctx.rej.code < 0, vals, np.nan)
+        use = temperature_values(table, tcol, ctx)
         st = _bands.star_temperatures(n, temperature=use * u.K, default=t_default * u.K)
         source = f"the temperature column {tcol!r}"
     elif ccol is not None:
@@ -207,7 +182,7 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
                 "needs two bands with transmission curves (see 'dustkit bands'). Hint: give a temperature column "
                 "(e.g. 'teff') instead, or map the column away with columns={...}."
             )
-        vals, unit, raw = _optional_numbers(table, ccol, ctx)
+        vals, unit, raw = optional_numbers(table, ccol, ctx)
         use = np.where(ctx.rej.code < 0, vals, np.nan)
         st = _bands.star_temperatures(n, colour=use, colour_bands=(blue.name, red.name), default=t_default * u.K)
         source = (f"the intrinsic colour {ccol!r} (blackbodies of the same {blue.name}-{red.name}, "
@@ -224,20 +199,8 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
             ctx.assumptions.append(f"{what} assumes a {t_default:g} K blackbody source for every row "
                                    "(source_temperature)")
         return np.full(n, t_default)
-    n_default = int(np.count_nonzero((ctx.rej.code < 0) & ~st.from_input))
     ctx.assumptions.append(f"{what} uses per-row source temperatures from {source}")
-    if n_default:
-        ctx.note(
-            AssumptionWarning,
-            f"{_rows(n_default)} no value in {tcol or ccol!r}; {what} assumes a {t_default:g} K blackbody "
-            "source for them.",
-        )
-    if st.n_clipped:
-        ctx.note(
-            AssumptionWarning,
-            f"{_rows(st.n_clipped)} a value in {tcol or ccol!r} beyond the {lo_t:g}-{hi_t:g} K blackbodies of "
-            f"the coefficient tables; set to the nearest edge for {what}.",
-        )
+    announce_temperatures(st, tcol or ccol, ctx, what, t_default, ctx.rej.code < 0)
     return st.temperature.to_value(u.K)
 
 
@@ -257,10 +220,6 @@ def _mag_scale(unit, colname, ctx):
             f"Column {colname!r} in {ctx.desc} has unit {str(unit)!r}, which is not a magnitude (a reddening "
             "or extinction is in mag). Hint: fix the column's unit, or map the right column with columns={...}."
         ) from None
-
-
-def _rows(n):
-    return f"{n} row has" if n == 1 else f"{n} rows have"
 
 
 def _redder_first(color, law, rv, temperature):
