@@ -418,7 +418,7 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
 
 #: h and z_sun (pc) with their spread, held when the tracers show no dust (:func:`_no_dust_layer`):
 #: (h, h_err, z_sun, z_sun_err). Typical values for open clusters, h about 125 pc and z_sun about
-#: 15-25 pc (Joshi 2005, MNRAS 362, 1259); the spreads are wide on purpose.
+#: 15-25 pc (Joshi 2005, MNRAS 362, 1259; from memory); the spreads are wide on purpose.
 REFERENCE_LAYER = (125.0, 50.0, 20.0, 10.0)
 
 #: a0 counts as detected when its estimate under the reference h and z_sun exceeds this many of its errors.
