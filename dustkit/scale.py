@@ -84,6 +84,7 @@ from ._lib.formats import CHUNKED_FORMATS, format_for, parquet_parts
 from ._lib.progress import progress
 from ._lib.validation import check_int, param_error
 from .layer import fit_layer, given_layer
+from .tracers.assemble import scaled_text
 from .tracers.chunks import (Chunk, ChunkCache, chunk_tracers, cross_chunk_groups, drop_from_sample, fit_arrays,
                               merge_across, name_of_entry, raw_arrays, replace_in_sample)
 from .tracers.rules import (DEFAULT_DISTANCE_FRAC_ERR, DEFAULT_EXCESS_ERR, DUPLICATE_SEPARATION_ARCSEC,
@@ -618,6 +619,7 @@ def _accepted(p1, chunks, reading, cache):
         p1["merged"] += counts["merged"] - n_copies  # the copies are counted on their own (n_copies)
         p1["dup_rows"] += counts["rows"]
         p1["dup_groups"] += counts["groups"]
+        p1["scaled"] = (counts["scaled"], counts["largest_factor"])
         replace_in_sample(p1["sample"], replace)
     drop_from_sample(p1["sample"], drops)
     valid = np.array([p1["valid"][i] - (drops[i].size if i in drops else 0) for i in range(n_chunks)], dtype=np.int64)
@@ -641,6 +643,7 @@ def _reading_info(p1, filled):
         "rejected_by_reason": dict(p1["counts"]),
         "duplicate_rows": int(p1["dup_rows"]),
         "duplicate_groups": int(p1["dup_groups"]),
+        "n_scaled_groups": int(p1.get("scaled", (0,))[0]),
         "same_name_apart": int(p1.get("apart", (0, None))[0]),
         "assumptions": list(p1["assumptions"]),
         "columns": dict((p1.get("meta") or {}).get("columns", {})),
@@ -664,6 +667,7 @@ def _catalogue_record(p1, reading, source, n_rows, n_used, n_merged):
         "assumptions": list(p1["assumptions"]),
         "rejected_by_reason": {str(r): int(c) for r, c in p1["counts"].items()},
         "n_merged": int(n_merged), "same_name_apart": int(p1.get("apart", (0, None))[0]),
+        "n_scaled_groups": int(p1.get("scaled", (0,))[0]),
         "duplicates": reading["duplicates"], "duplicate_separation_arcsec": sep,
     }
 
@@ -754,7 +758,7 @@ def _announce(p1, n_rejected, n_rows, n_merged, n_copies, duplicates):
             f"{p1['dup_rows']} rows are duplicates in {p1['dup_groups']} groups ({n_copies} of them exact copies "
             f"of rows of earlier chunks): {n_merged} rows merged away (duplicates='merge'; within a chunk by the "
             "reader's rules, across chunks the same name within the same-name limit or the same values, found by "
-            "64-bit hashes).",
+            f"64-bit hashes); {scaled_text(*p1.get('scaled', (0, 1.0)))}.",
             DuplicatesWarning,
             stacklevel=3,
         )

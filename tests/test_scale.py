@@ -328,6 +328,9 @@ def test_chunked_build_reads_like_read_tracers(tmp_path):
     assert (len(ts), len(ts.rejected), ts.meta["n_merged"]) == (287, 2, 11)
     assert info["n_used"] + info["n_rejected"] + info["n_merged"] == n and info["cross_chunk_copies"] == 5
     assert info["same_name_apart"] == ts.meta["same_name_apart"] == 0
+    # the groups whose measurements disagree counted alike: the four of distinct measurements (C10, C60, C22 with
+    # row 130, C21 with row 270), whose random values disagree far beyond their errors, have their errors scaled up
+    assert (info["n_scaled_groups"], ts.meta["n_scaled_groups"]) == (4, 4)
     # the duplicates reported alike: rows in groups of two or more, and groups
     assert (info["duplicate_rows"], info["duplicate_groups"]) == (len(ts.duplicates),
                                                                   np.unique(np.asarray(ts.duplicates["group"])).size)
@@ -394,6 +397,8 @@ def test_same_name_far_apart_kept_apart_alike_in_memory_and_in_chunks(tmp_path, 
     assert (info["n_used"], info["n_rejected"], info["n_merged"]) == (294, 0, 6)
     # kept apart: 5 and 250; 7 and 8; 9, 160 and 170; 30, 230 and 231
     assert ts.meta["same_name_apart"] == info["same_name_apart"] == 10
+    # the three groups of distinct (random, disagreeing) measurements have their errors scaled up in both reads
+    assert (ts.meta["n_scaled_groups"], info["n_scaled_groups"]) == (3, 3)
     assert (info["duplicate_rows"], info["duplicate_groups"]) == (len(ts.duplicates),
                                                                   np.unique(np.asarray(ts.duplicates["group"])).size)
     assert set(info["assumptions"]) == set(ts.meta["assumptions"])
@@ -548,3 +553,46 @@ def test_catalogue_folder_leaves_out_hidden_and_underscore_files(tmp_path):
     assert len(ts) == n and ts.meta["n_input"] == n
     assert (m.build_info_["n_rows"], m.build_info_["n_used"], m.build_info_["n_merged"]) == (n, n, 0)
     assert [Path(f).name for f in m.build_info_["files"]] == ["part-0.parquet", "part-1.parquet"]
+
+
+def test_disagreeing_group_split_across_chunks_is_scaled_as_in_memory(tmp_path):
+    # one invented cluster ('Harrow 4') listed three times under its name, 2-3 arcmin apart: twice in chunk 0
+    # (merged there) and once in chunk 1, plus an exact copy of its first row in chunk 2. The three distinct
+    # E(B-V) values 0.50, 0.62, 0.44 +- 0.03 disagree: the merged error is scaled by S = sqrt(chi2 / (N - 1))
+    # (Particle Data Group averaging procedure, from memory), with chi2 and N = 3 of all three measurements
+    # (the copy counts once) however the rows fall into chunks: the chunked read equals the in-memory one
+    n = 300
+    df = _invented_frame(12, n, "ebv", (0.05, 1.0), (0.02, 0.05))
+    df.insert(0, "name", [f"F{i}" for i in range(n)])
+    for row, dl, ebv, dist in ((10, 0.0, 0.50, 1500.0), (11, 2.0, 0.62, 1620.0), (150, 3.0, 0.44, 1400.0)):
+        df.loc[row, ["name", "l", "b", "ebv", "ebv_err", "distance", "distance_err"]] = [
+            "Harrow 4", 35.0 + dl / 60.0, 1.0, ebv, 0.03, dist, 60.0]
+    df.loc[250] = df.loc[10]
+    df.to_parquet(tmp_path / "split.parquet", row_group_size=64)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(tmp_path / "split.parquet", distance_unit="pc")
+        m = build_from_parquet(tmp_path / "split.parquet", chunk_size=100, quiet=True, distance_unit="pc", **PARAMS)
+    said = [str(w.message) for w in record if "scaled up" in str(w.message)]
+    w = np.full(3, 1 / 0.03**2)
+    x = np.array([0.50, 0.62, 0.44])
+    mean = np.sum(w * x) / w.sum()
+    s = np.sqrt(np.sum(w * (x - mean) ** 2) / (3 - 1))
+    at = int(np.flatnonzero(np.asarray(ts.name) == "Harrow 4")[0])
+    assert s > 1 and ts.excess_err[at] == pytest.approx(s * w.sum() ** -0.5, rel=1e-12)
+    assert ts.av_err[at] == pytest.approx(3.1 * s * w.sum() ** -0.5, rel=1e-12)
+    info = m.build_info_
+    assert info["n_used"] == len(ts) == n - 3 and info["n_merged"] == ts.meta["n_merged"] == 3
+    assert info["n_scaled_groups"] == ts.meta["n_scaled_groups"] == 1
+    assert m.tracers_.meta["n_scaled_groups"] == 1  # the record a model file keeps
+    # said by both reads, with the largest factor
+    assert len(said) == 2 and all(f"largest {max(s, 1):.3g}" in t for t in said)
+    # every tracer the same, the scaled one too (matched by distance; the model's errors floored as every fit
+    # floors them)
+    a, c = np.argsort(np.asarray(m.tracers_.distance)), np.argsort(np.asarray(ts.distance))
+    de, ae = floor_errors(np.asarray(ts.distance), np.asarray(ts.distance_err), np.asarray(ts.av_err), warn=False)
+    memory = {"distance": ts.distance, "distance_err": de, "av": ts.av, "av_err": ae, "l": ts.l, "b": ts.b}
+    for k, v in memory.items():
+        np.testing.assert_allclose(np.asarray(getattr(m.tracers_, k))[a], np.asarray(v, float)[c], rtol=1e-10,
+                                   err_msg=k)
+    assert np.asarray(m.tracers_.av_err)[a][np.argsort(c)][at] == pytest.approx(ts.av_err[at], rel=1e-10)

@@ -1763,3 +1763,106 @@ def test_an_excess_column_named_red_band_first_is_refused_with_the_fix():
     fixed = _quiet(read_tracers, t, excess_color=("BP", "RP"))
     want, _ = excess_to_av(np.array([0.4, 0.5, 0.6]), None, "BP", "RP")
     np.testing.assert_allclose(np.asarray(fixed.av), want, rtol=1e-9)
+
+
+def _two_compilations(ebv, ebv_err):
+    """One invented cluster ('Corvane 7') listed by two compilations under one name, centres 2 arcmin
+    apart, with the same distance and the given E(B-V) values; and an unrelated cluster."""
+    return Table({"name": ["Corvane 7", "Corvane 7", "Tesk 2"], "l": [30.0, 30.0 + 2.0 / 60.0, 40.0],
+                  "b": [1.0, 1.0, 2.0], "dist": [1000.0, 1000.0, 2000.0] * u.pc,
+                  "e_dist": [50.0, 50.0, 100.0] * u.pc, "ebv": [ebv[0], ebv[1], 0.3],
+                  "e_ebv": [ebv_err[0], ebv_err[1], 0.03]})
+
+
+def test_disagreeing_measurements_have_their_merged_error_scaled_up():
+    # Particle Data Group, Review of Particle Physics, "Introduction", averaging procedure (from memory):
+    # the error of a weighted mean of N measurements is scaled by S = sqrt(chi2 / (N - 1)) when S > 1,
+    # chi2 = sum w_i (x_i - xbar)^2. E(B-V) 0.50 +- 0.03 and 0.62 +- 0.03: xbar = 0.56, chi2 = 8, S = sqrt(8),
+    # error 0.03 / sqrt(2) * sqrt(8) = 0.060 (not the 0.021 that the disagreeing values do not support)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        ts = read_tracers(_two_compilations((0.50, 0.62), (0.03, 0.03)))
+    assert len(ts) == 2
+    assert ts.excess[0] == pytest.approx(0.56, rel=1e-12)  # the mean keeps the quoted weights
+    assert ts.excess_err[0] == pytest.approx(0.060, rel=1e-12)
+    assert ts.av_err[0] == pytest.approx(3.1 * 0.060, rel=1e-12)  # A_V = 3.1 E(B-V): the same S
+    assert ts.distance_err[0] == pytest.approx(50.0 / np.sqrt(2), rel=1e-12)  # equal distances: not scaled
+    assert ts.meta["n_scaled_groups"] == 1
+    said = [str(w.message) for w in record if issubclass(w.category, DuplicatesWarning)]
+    assert len(said) == 1
+    assert "the errors of 1 group scaled up by S = sqrt(chi2 / (N - 1)) (largest 2.83)" in said[0]
+    assert "disagree" in said[0]
+    assert "errors of 1 scaled up, their values disagree" in ts.summary()
+
+
+def test_agreeing_measurements_keep_the_inverse_variance_error():
+    # the same two compilations agreeing within their errors: chi2 = 0.02^2 / (2 * 0.03^2) = 0.22 < N - 1 = 1,
+    # so S = sqrt(0.22) < 1 and the error is not scaled (S is never below 1: Particle Data Group averaging,
+    # from memory): sigma = (sum w)^-1/2 = 0.03 / sqrt(2)
+    with pytest.warns(DuplicatesWarning, match=r"no group's errors scaled up"):
+        ts = read_tracers(_two_compilations((0.50, 0.52), (0.03, 0.03)))
+    assert ts.excess[0] == pytest.approx(0.51, rel=1e-12)
+    assert ts.excess_err[0] == pytest.approx(0.03 / np.sqrt(2), rel=1e-12)
+    assert ts.meta["n_scaled_groups"] == 0
+    # exact copies are one measurement: N = 1, nothing to scale, the error as quoted
+    t = _two_compilations((0.50, 0.62), (0.03, 0.03))
+    copies = vstack([t, t])
+    with pytest.warns(DuplicatesWarning):
+        tc = read_tracers(copies)
+    assert len(tc) == 2 and tc.excess_err[0] == pytest.approx(0.060, rel=1e-12)
+    assert tc.excess_err[1] == pytest.approx(0.03, rel=1e-12) and tc.meta["n_scaled_groups"] == 1
+
+
+def test_scaled_merge_of_merged_parts_equals_merging_all_rows():
+    from dustkit.tracers.duplicates import merge_measurements
+
+    # chi2 about the mean of a union = the parts' own chi2 + sum W_g (xbar_g - xbar)^2 (the decomposition of
+    # a weighted sum of squares, common practice): merging two merged halves, each with its unscaled error,
+    # chi2 and N, gives the mean and scaled error of merging the four measurements at once
+    x, s = np.array([1.0, 1.4, 0.7, 1.9]), np.array([0.1, 0.2, 0.15, 0.1])
+    def fields(x, s):
+        return {"l": np.full(x.size, 10.0), "b": np.full(x.size, 1.0), "distance": x * 1000, "distance_err": s * 1000,
+                "av": x, "av_err": s}
+    whole = merge_measurements(fields(x, s), np.zeros(4, int), np.array([0]), np.ones(4))
+    halves = merge_measurements(fields(x, s), np.array([0, 0, 1, 1]), np.array([0, 2]), np.ones(4))
+    parts = {q: halves["scatter"][q] for q in ("distance", "av")}
+    again = merge_measurements(fields(halves["av"], halves["av_err"]), np.zeros(2, int), np.array([0]), np.ones(2),
+                               parts=parts)
+    assert again["av"][0] == pytest.approx(whole["av"][0], rel=1e-12)
+    assert again["av_err"][0] == pytest.approx(whole["av_err"][0], rel=1e-12)
+    assert again["distance_err"][0] == pytest.approx(whole["distance_err"][0], rel=1e-12)
+    w = 1 / s**2
+    mean = np.sum(w * x) / w.sum()
+    assert whole["av_err"][0] == pytest.approx(np.sqrt(np.sum(w * (x - mean) ** 2) / 3 / w.sum()), rel=1e-12)
+    assert whole["av_err"][0] > w.sum() ** -0.5  # these four disagree: scaled up
+
+
+def test_scaled_errors_keep_the_correlation_and_the_skew_of_asymmetric_errors():
+    from dustkit.tracers.duplicates import merge_groups
+
+    # two parallax distances of one invented star that disagree (1000 +- 100 and 1300 +- 50 pc: mean 1240 pc, chi2 = 7.2):
+    # the distance error is scaled by S_d = sqrt(chi2 / (N - 1)) (Particle Data Group averaging, from memory);
+    # scaling a variance by S_d^2 and the covariance by S_AV S_d keeps the correlation coefficient (common
+    # practice), and the asymmetric errors stay the scaled sigma times the members' mean skew (low + high = 2 sigma)
+    sa, sd, rho = np.array([0.1, 0.1]), np.array([100.0, 50.0]), np.array([-0.8, -0.4])
+    fields = {"l": np.array([10.0, 10.0]), "b": np.array([1.0, 1.0]), "distance": np.array([1000.0, 1300.0]),
+              "distance_err": sd, "av": np.array([1.0, 1.02]), "av_err": sa, "excess": np.array([1.0, 1.02]),
+              "excess_err": sa, "av_distance_corr": rho,
+              "distance_err_low": np.array([80.0, 45.0]), "distance_err_high": np.array([120.0, 55.0])}
+    keep, merged, _ = merge_groups(np.array([0, 0]), np.zeros(2, bool), np.zeros(2, bool), fields, np.arange(2), None)
+    wa, wd = 1 / sa**2, 1 / sd**2
+    dbar = np.sum(wd * fields["distance"]) / wd.sum()
+    s_d = np.sqrt(np.sum(wd * (fields["distance"] - dbar) ** 2) / (2 - 1))
+    assert s_d == pytest.approx(np.sqrt(7.2), rel=1e-12)
+    sig_d = s_d * wd.sum() ** -0.5
+    assert merged["distance"][0] == pytest.approx(dbar, rel=1e-12)
+    assert merged["distance_err"][0] == pytest.approx(sig_d, rel=1e-12)
+    assert merged["av_err"][0] == pytest.approx(wa.sum() ** -0.5, rel=1e-12)  # A_V agrees: not scaled
+    cov = np.sum(wa * wd * rho * sa * sd) / (wa.sum() * wd.sum())
+    assert merged["av_distance_corr"][0] == pytest.approx(cov * np.sqrt(wa.sum() * wd.sum()), rel=1e-12)
+    r_low = np.sum(wd * fields["distance_err_low"] / sd) / wd.sum()
+    assert merged["distance_err_low"][0] == pytest.approx(r_low * sig_d, rel=1e-12)
+    assert merged["distance_err_low"][0] + merged["distance_err_high"][0] == pytest.approx(2 * sig_d, rel=1e-12)
+    # what a later merge across chunks needs: the unscaled error, chi2 and N of each quantity
+    unscaled, chi2, n = merged["scatter"]["distance"]
+    assert (unscaled[0], chi2[0], n[0]) == (pytest.approx(wd.sum() ** -0.5), pytest.approx(7.2), 2)

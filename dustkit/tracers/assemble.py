@@ -9,7 +9,7 @@ from .._lib.validation import check_real, param_error
 from .columns import DISTANCE_LIKE, KIND_LABEL, resolve_columns
 from .context import Context, empty_duplicates
 from .distances import distances
-from .duplicates import find_duplicates, keys_apart, merge_groups
+from .duplicates import find_duplicates, group_scale_factors, keys_apart, merge_groups
 from .reddening import reddening
 from .rules import (
     DUPLICATE_NSIGMA,
@@ -29,6 +29,7 @@ from .values import names_of, positions
 
 __all__ = [
     "build_tracers",
+    "scaled_text",
 ]
 
 
@@ -57,8 +58,8 @@ def build_tracers(
 ):
     """Validate a table of tracers: the fields of a ``TracerSet`` and the notes (warnings) to emit.
 
-    A dict ``extras`` receives ``position_weight`` (see ``duplicates.merge_groups``; None when
-    nothing was merged) and ``row_lb`` (input row, l and b of every accepted row, before merging), for merging
+    A dict ``extras`` receives ``position_weight`` and ``scatter`` (see ``duplicates.merge_groups``;
+    None when nothing was merged) and ``row_lb`` (input row, l and b of every accepted row, before merging), for merging
     tracers of several reads later (the chunked builds). Such a read (``extras`` given) does not note
     the rows of one name kept apart: the chunked build finds and reports them for the whole catalogue."""
     rv = check_real("rv", rv, 0.0, np.inf, low_inclusive=False)
@@ -147,12 +148,18 @@ def build_tracers(
         n_apart = 0
         sel, dup_report = rows, empty_duplicates()
     n_merged = int(rows.size - sel.size)
+    scatter = per_row.pop("scatter", None)
+    factors = group_scale_factors(scatter)
+    n_scaled = 0 if factors is None else int(np.sum(factors > 1.0))
     if extras is not None:
         extras["position_weight"] = per_row.pop("position_weight", None)
+        extras["scatter"] = scatter
+    per_row.pop("position_weight", None)
     if len(dup_report):
         n_groups = int(np.unique(np.asarray(dup_report["group"])).size)
         n_exact = int(np.sum(np.asarray(dup_report["kind"]) == "exact"))  # rows in sets of exact copies
         what = (f"merged into {n_groups} tracers by inverse-variance means (exact copies counted once); "
+                f"{scaled_text(n_scaled, 0.0 if factors is None else float(np.max(factors)))}; "
                 "pass duplicates='keep' to keep them")
         ctx.note(
             DuplicatesWarning,
@@ -164,6 +171,7 @@ def build_tracers(
     arrays = [per_row[k] for k in ("l", "b", "distance", "distance_err", "av", "av_err")]
     meta = ctx.meta(file_sha, arrays + [per_row["row"] if kept_names is None else per_row["name"]])
     meta["n_merged"] = n_merged
+    meta["n_scaled_groups"] = n_scaled
     meta["same_name_apart"] = n_apart
     meta["duplicates"] = duplicates
     meta["duplicate_separation_arcsec"] = sep
@@ -194,6 +202,14 @@ def build_tracers(
         temperature=per_row.get("temperature"),
     )
     return fields, ctx.notes
+
+
+def scaled_text(n_scaled, largest):
+    """How many merged groups had their errors scaled up (their measurements disagree), for the warnings."""
+    if not n_scaled:
+        return "no group's errors scaled up (the measurements of each agree within their errors)"
+    return (f"the errors of {n_scaled} group{'s' if n_scaled != 1 else ''} scaled up by S = sqrt(chi2 / (N - 1)) "
+            f"(largest {largest:.3g}) because their measurements disagree beyond the quoted errors")
 
 
 def _same_name_apart(ctx, names, group, l, b, note=True):

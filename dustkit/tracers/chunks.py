@@ -18,7 +18,7 @@ from astropy import units as u
 from ..exceptions import CatalogError
 from .arrow import arrow_to_table
 from .assemble import build_tracers
-from .duplicates import close_pairs_by_key, keys_apart, merge_measurements
+from .duplicates import close_pairs_by_key, group_scale_factors, keys_apart, merge_measurements, scale_factor
 from .rules import SAME_NAME_SEPARATION_ARCMIN, floor_errors
 
 __all__ = ["Chunk", "ChunkCache", "read_chunk", "chunk_tracers", "row_hash_of", "fit_arrays", "raw_arrays",
@@ -108,8 +108,8 @@ def chunk_tracers(chunk, reading, keys=False):
         the second kind (the others' positions are their tracers');
     ``heads``
         for the tracers that stand for a group of rows merged within the chunk: their positions,
-        the number of rows and the length of the sum of the unit vectors their position is the
-        mean of (``position_weight`` of ``merge_groups``).
+        the number of rows, the length of the sum of the unit vectors their position is the
+        mean of (``position_weight`` of ``merge_groups``) and a (7, k) array :func:`_head_parts`.
     """
     table = read_chunk(chunk)
     extras = {}
@@ -129,10 +129,20 @@ def chunk_tracers(chunk, reading, keys=False):
     if len(dup):
         heads, n_rows = np.unique(np.asarray(dup["merged_into"], np.int64), return_counts=True)
         at = np.searchsorted(rows, heads)
-        out["heads"] = (at, n_rows, np.asarray(extras["position_weight"], float)[at])
+        out["heads"] = (at, n_rows, np.asarray(extras["position_weight"], float)[at],
+                        _head_parts(extras["scatter"], at))
     else:
-        out["heads"] = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0))
+        out["heads"] = (np.zeros(0, np.int64), np.zeros(0, np.int64), np.zeros(0), np.zeros((7, 0)))
     return f, notes, out
+
+
+def _head_parts(scatter, at):
+    """Per merged tracer at positions ``at``: the unscaled error, chi2 and number of measurements
+    of its distance and of its A_V (``scatter`` of ``merge_groups``), then its largest scale
+    factor (over distance, A_V and the excess): what a merge across chunks needs to give the
+    in-memory errors, and to count the groups whose errors were scaled up."""
+    rows = [np.asarray(a, float)[at] for q in ("distance", "av") for a in scatter[q]]
+    return np.stack(rows + [np.asarray(group_scale_factors(scatter), float)[at]])
 
 
 def _name_entries(f, extras):
@@ -302,7 +312,10 @@ def cross_chunk_groups(keys, raw_of):
     ``source`` (for a copy, the position among the members of the member it repeats; else -1),
     ``head`` (the group's first member, which stands for it), ``n_rows`` (rows the tracer stands for
     after the chunk's own merging) and ``weight`` (the length of the sum of unit vectors its position
-    is the mean of; 1 for a single row); and ``apart``: ``(rows, names, example)``, the named rows whose
+    is the mean of; 1 for a single row), ``parts`` (a (7, n) array: :func:`_head_parts` of a tracer
+    merged within its chunk, NaN for a single row) and ``head_factors`` (the scale factors of the
+    tracers merged within their chunk that are in no group here); and ``apart``:
+    ``(rows, names, example)``, the named rows whose
     name is also that of a row of another tracer of the catalogue (kept apart: farther than the limit),
     the number of such names, and ``((chunk, entry), (chunk, entry))`` of a first such row and a row of
     its name elsewhere, with their positions (None without such rows).
@@ -317,7 +330,8 @@ def cross_chunk_groups(keys, raw_of):
     empty = {k: np.zeros(0, np.int64) for k in ("chunk", "local", "group", "n_rows")}
     if node.size == 0:
         return dict(empty, copy=np.zeros(0, bool), head=np.zeros(0, bool), weight=np.zeros(0),
-                    source=np.zeros(0, np.int64), apart=(0, 0, None))
+                    source=np.zeros(0, np.int64), apart=(0, 0, None), parts=np.zeros((7, 0)),
+                    head_factors=_head_factors(keys, empty["chunk"], empty["local"]))
     uniq, inv = np.unique(node, return_inverse=True)
     copy, source = np.zeros(uniq.size, bool), np.full(uniq.size, -1, np.int64)
     key, cid = row_found[0], row_found[1]
@@ -346,17 +360,30 @@ def cross_chunk_groups(keys, raw_of):
     src = source[members]
     src = np.where(src >= 0, at_node[np.maximum(src, 0)], -1)  # the member each copy repeats
     n_rows, weight = np.ones(members.size, np.int64), np.ones(members.size)
+    parts = np.full((7, members.size), np.nan)
     for c in np.unique(chunk):
-        hpos, hrows, hweight = keys[int(c)]["heads"]
+        hpos, hrows, hweight, hparts = keys[int(c)]["heads"]
         sel = np.flatnonzero(chunk == c)
         at = np.searchsorted(hpos, local[sel])
         hit = at < hpos.size
         hit[hit] = hpos[at[hit]] == local[sel][hit]
         n_rows[sel[hit]] = hrows[at[hit]]
         weight[sel[hit]] = hweight[at[hit]]
+        parts[:, sel[hit]] = hparts[:, at[hit]]
     return {"chunk": chunk, "local": local, "group": np.unique(grp, return_inverse=True)[1].astype(np.int64),
             "copy": copy[members] & ~head, "source": np.where(copy[members] & ~head, src, -1), "head": head,
-            "n_rows": n_rows, "weight": weight, "apart": apart}
+            "n_rows": n_rows, "weight": weight, "apart": apart, "parts": parts,
+            "head_factors": _head_factors(keys, chunk, local)}
+
+
+def _head_factors(keys, chunk, local):
+    """The scale factors of the tracers merged within their chunk that are not among the members
+    (``chunk``, ``local``) of the groups across chunks: those tracers stay as their chunk merged them."""
+    out = []
+    for c, k in keys.items():
+        hpos, hparts = k["heads"][0], k["heads"][3]
+        out.append(hparts[6][~np.isin(hpos, local[chunk == c])])
+    return np.concatenate(out) if out else np.zeros(0)
 
 
 def _apart(keys, names, group, raw_of):
@@ -382,10 +409,16 @@ def merge_across(groups, raw_of):
     groups' first members, their merged :func:`fit_arrays` as a (6, k) array)) for the groups of
     two or more distinct measurements, and the counts ``merged`` (tracers merged away),
     ``copies`` (exact copies among them), ``rows`` and ``groups`` (to add to the chunks' own
-    duplicate rows and groups). The merged values are the reader's inverse-variance means of the
-    members' values (each member already the mean of its chunk's group, so the sums equal the
-    in-memory ones); positions are the mean of the members' unit vectors each weighted by the
-    length of the sum it is the direction of, which is the in-memory sum of all the rows' vectors.
+    duplicate rows and groups), ``scaled`` (the groups of the whole catalogue, within and across
+    chunks, whose errors were scaled up) and ``largest_factor``. The merged values are the reader's
+    inverse-variance means of the members' values (each member already the mean of its chunk's
+    group, weighted by its unscaled inverse variance, so the sums equal the in-memory ones); the
+    errors are scaled by S = sqrt(chi2 / (N - 1)) from the members' own chi2 and N plus their
+    scatter about the mean, which is the in-memory chi2 of all the rows (see ``merge_measurements``;
+    a group merged across chunks is counted as scaled by its distance and A_V, the values read
+    here, or by the excess of a group merged within one chunk); positions are the mean of the
+    members' unit vectors each weighted by the length of the sum it is the direction of, which is
+    the in-memory sum of all the rows' vectors.
     """
     chunk, local, group, copy, head = (groups[k] for k in ("chunk", "local", "group", "copy", "head"))
     drops = {int(c): np.sort(local[(chunk == c) & ~head]) for c in np.unique(chunk[~head])}
@@ -404,6 +437,9 @@ def merge_across(groups, raw_of):
     n_pos = np.bincount(group[member], mult > 0, minlength=int(head.sum()) if head.size else 0)
     sel = np.flatnonzero(n_pos[group[member]] >= 2)
     replace = {}
+    # scale factors: a group not merged again keeps its head's (1 for a single row)
+    final = np.nan_to_num(groups["parts"][6][head], nan=1.0)
+    _count_scaled(counts, groups["head_factors"], final)
     if sel.size == 0:
         return drops, replace, counts
     need, mult = member[sel], mult[sel]
@@ -413,10 +449,13 @@ def merge_across(groups, raw_of):
         raw = raw_of(int(c))
         for k, arr in zip(FIT_FIELDS, raw):
             fields[k][at] = arr[local[need][at]]
-    g = np.unique(group[need], return_inverse=True)[1]
+    ids, g = np.unique(group[need], return_inverse=True)
     first = np.flatnonzero(head[need] & (mult > 0))
     first = first[np.unique(g[first], return_index=True)[1]]  # each group's head, once
-    merged = merge_measurements(fields, g, first, mult, weight=groups["weight"][need])
+    merged = merge_measurements(fields, g, first, mult, weight=groups["weight"][need],
+                                parts=_member_parts(groups["parts"][:, need], fields))
+    final[ids] = np.max([scale_factor(chi2, n) for _, chi2, n in merged["scatter"].values()], axis=0)
+    _count_scaled(counts, groups["head_factors"], final)
     values = np.stack(fit_arrays(tuple(merged[k] for k in FIT_FIELDS)))
     hc, hl = chunk[need][first], local[need][first]
     for c in np.unique(hc):
@@ -424,6 +463,25 @@ def merge_across(groups, raw_of):
         sel = sel[np.argsort(hl[sel])]
         replace[int(c)] = (hl[sel], values[:, sel])
     return drops, replace, counts
+
+
+def _member_parts(parts, fields):
+    """``parts`` of ``merge_measurements`` for the members of groups across chunks: a tracer merged
+    within its chunk has its :func:`_head_parts`; a single row is one measurement (its error, chi2 = 0)."""
+    out = {}
+    for q, err, r in (("distance", "distance_err", 0), ("av", "av_err", 3)):
+        single = np.isnan(parts[r])
+        out[q] = (np.where(single, fields[err], parts[r]), np.where(single, 0.0, parts[r + 1]),
+                  np.where(single, 1.0, parts[r + 2]))
+    return out
+
+
+def _count_scaled(counts, head_factors, final):
+    """The groups of the whole catalogue whose errors were scaled up, and the largest factor, into ``counts``:
+    the chunks' own groups not merged again (``head_factors``) and the groups across chunks (``final``)."""
+    factors = np.concatenate([np.asarray(head_factors, float), final])
+    counts["scaled"] = int(np.sum(factors > 1.0))
+    counts["largest_factor"] = float(factors.max()) if factors.size else 1.0
 
 
 def replace_in_sample(sample, replace):

@@ -35,7 +35,13 @@ __all__ = [
     "keys_apart",
     "merge_groups",
     "merge_measurements",
+    "group_scale_factors",
+    "scale_factor",
+    "MERGED_QUANTITIES",
 ]
+
+#: The merged quantities, (value, error), whose errors are scaled by the scatter of the measurements.
+MERGED_QUANTITIES = (("distance", "distance_err"), ("av", "av_err"), ("excess", "excess_err"))
 
 
 def _pairs_same_key(key, all_pairs=True):
@@ -322,7 +328,10 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
         The merged values of ``l``, ``b``, ``distance``, ``distance_err``, ``av``, ``av_err``,
         ``excess``, ``excess_err`` for the kept tracers; when groups were merged also
         ``position_weight``, the length of the sum of a group's unit vectors (1 for a single
-        row), with which a later merge of merged tracers gives the same mean position.
+        row), with which a later merge of merged tracers gives the same mean position, and
+        ``scatter``: per merged quantity (``distance``, ``av``, ``excess``) the arrays
+        ``(unscaled error, chi2, N)`` (a tracer not merged: its error, 0, 1), with which a later
+        merge of merged tracers gives the same scaled errors (see :func:`merge_measurements`).
     report : `~astropy.table.Table`
         One row per tracer in a group of two or more: ``group``, ``row``, ``name``, ``kind``,
         ``merged_into``.
@@ -332,10 +341,14 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     Exact copies are one measurement: they collapse to one row without changing its errors.
     The distinct measurements of a group are combined by inverse-variance means,
     x = sum(w x) / sum(w), sigma = sum(w)^-1/2 with w = 1 / sigma^2, for distance, A_V and the
-    excess; the position is the mean of the unit vectors. The correlation of the two means
-    follows from the same weights: rho = sum(rho_i / (sigma_AV,i sigma_d,i)) /
-    sqrt(sum w_AV sum w_d). Asymmetric distance errors (``distance_err_low``/``_high``, from
-    parallaxes) are the merged ``distance_err`` times the inverse-variance (w_d) mean of each
+    excess; the position is the mean of the unit vectors. Where the N distinct measurements
+    disagree beyond their errors, chi2 = sum w (x_i - x)^2 > N - 1, the quoted errors are too
+    small: sigma is scaled up by S = sqrt(chi2 / (N - 1)) (the weights, and so the mean, stay the
+    quoted inverse variances; S is never below 1). Each quantity has its own S. The correlation
+    of the two means follows from the same weights: rho = sum(rho_i / (sigma_AV,i sigma_d,i)) /
+    sqrt(sum w_AV sum w_d), and is kept when the errors are scaled (the covariance is scaled by
+    S_AV S_d). Asymmetric distance errors (``distance_err_low``/``_high``, from
+    parallaxes) are the merged (scaled) ``distance_err`` times the inverse-variance (w_d) mean of each
     member's ratio ``low / distance_err`` (and ``high / distance_err``): the skew of the members
     is kept and low + high = 2 ``distance_err`` still holds.
     """
@@ -373,12 +386,20 @@ def merge_groups(group, exact, copied, fields, rows, names, mode="merge"):
     at = np.searchsorted(keep, order[first])  # where each group's head is among the kept rows
     values = merge_measurements({name: fields[name][order] for name in fields}, np.cumsum(first) - 1,
                                 np.flatnonzero(first), ~exact[order])
+    scatter = values.pop("scatter")
     for name, v in values.items():
         merged[name][at] = v
+    merged["scatter"] = {}
+    for (value, err), part in ((q, scatter.get(q[0])) for q in MERGED_QUANTITIES):
+        if part is not None:  # a tracer not merged: its own error, chi2 = 0, one measurement
+            kept = (merged[err].copy(), np.zeros(keep.size), np.ones(keep.size))
+            for whole, v in zip(kept, part):
+                whole[at] = v
+            merged["scatter"][value] = kept
     return keep, merged, report
 
 
-def merge_measurements(fields, group, head, use, weight=None):
+def merge_measurements(fields, group, head, use, weight=None, parts=None):
     """Merged values of each group of measurements (the formulas of :func:`merge_groups`).
 
     ``group`` numbers each row's group 0..m-1, ``head`` is each group's first row, ``use``
@@ -386,23 +407,27 @@ def merge_measurements(fields, group, head, use, weight=None):
     counts, -1 taking out a measurement another row already holds) and ``weight`` (default 1) the
     length of the sum of unit vectors a row's position already stands for (the unit vectors are
     summed with these weights). Only the pairs of ``fields`` present are merged. The result
-    holds ``position_weight``, the length of each group's sum of unit vectors.
+    holds ``position_weight``, the length of each group's sum of unit vectors, and ``scatter``:
+    per merged quantity ``(unscaled error, chi2, N)`` of each group, the error being the unscaled
+    one times :func:`scale_factor` of chi2 and N.
+
+    ``parts`` (default: every row one measurement) maps a quantity to per-row arrays
+    ``(unscaled error, chi2, N)`` of the measurements a row already stands for (a tracer merged
+    before, with its scaled error in ``fields``): the weights are then the unscaled inverse
+    variances, N the sum of the parts' N and chi2 = sum chi2_g + sum W_g (x_g - x)^2, which is
+    the chi2 of all the measurements together, so merging merged tracers gives the errors of
+    merging all their rows at once.
     """
     m = head.size
     counts = np.bincount(group, minlength=m)
     use = np.asarray(use, float)
-    merged = {}
-    for value, err in (("distance", "distance_err"), ("av", "av_err"), ("excess", "excess_err")):
+    merged, scatter, quoted = {}, {}, {}
+    for value, err in MERGED_QUANTITIES:
         if value not in fields:
             continue
-        x, s = fields[value], fields[err]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where((use != 0) & (s > 0), use / s**2, 0.0)
-        sw = np.bincount(group, w, m)
-        swx = np.bincount(group, w * x, m)
-        ok = sw > 0
-        merged[value] = np.where(ok, swx / np.where(ok, sw, 1.0), x[head])
-        merged[err] = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s[head])
+        part = None if parts is None else parts.get(value)
+        merged[value], merged[err], scatter[value], quoted[err] = _scaled_mean(
+            fields[value], fields[err], part, use, group, head, m)
     lr, br = np.radians(fields["l"]), np.radians(fields["b"])
     xyz = [np.cos(br) * np.cos(lr), np.cos(br) * np.sin(lr), np.sin(br)]
     wpos = use * (1.0 if weight is None else np.asarray(weight, float))
@@ -412,7 +437,7 @@ def merge_measurements(fields, group, head, use, weight=None):
     # corr(A_V, ln d) of the two means: cov = sum(wa wd rho s_a s_d) / (sum wa sum wd), so
     # rho = sum(rho / (s_a s_d)) / sqrt(sum wa sum wd) over the distinct measurements
     if "av_distance_corr" in fields:
-        sa, sd = fields["av_err"], fields["distance_err"]
+        sa, sd = quoted["av_err"], quoted["distance_err"]
         ok = (use != 0) & (sa > 0) & (sd > 0)
         with np.errstate(divide="ignore", invalid="ignore"):
             term = np.where(ok, use * fields["av_distance_corr"] / (sa * sd), 0.0)
@@ -424,9 +449,9 @@ def merge_measurements(fields, group, head, use, weight=None):
     # asymmetric distance errors (parallaxes): the merged error times the inverse-variance mean of
     # the members' ratios low / sigma and high / sigma, so low + high stays 2 sigma
     if "distance_err_low" in fields and "distance_err_high" in fields:
-        s = fields["distance_err"]
+        s, s0 = fields["distance_err"], quoted["distance_err"]
         with np.errstate(divide="ignore", invalid="ignore"):
-            w = np.where((use != 0) & (s > 0), use / s**2, 0.0)
+            w = np.where((use != 0) & (s0 > 0), use / s0**2, 0.0)
             sw = np.bincount(group, w, m)
             for side in ("distance_err_low", "distance_err_high"):
                 ratio = np.where(s > 0, fields[side] / s, 0.0)
@@ -435,4 +460,44 @@ def merge_measurements(fields, group, head, use, weight=None):
     merged["l"] = np.where(counts > 1, lm, fields["l"][head])
     merged["b"] = np.where(counts > 1, bm, fields["b"][head])
     merged["position_weight"] = np.where(counts > 1, np.sqrt(sx * sx + sy * sy + sz * sz), wpos[head])
+    merged["scatter"] = scatter
     return merged
+
+
+def _scaled_mean(x, s, part, use, group, head, m):
+    """One quantity of :func:`merge_measurements`: per group the inverse-variance mean, its error
+    scaled up by S = sqrt(chi2 / (N - 1)) where S > 1, and ``(unscaled error, chi2, N)``; also the
+    quoted error of each row (its weights' error). ``part`` (None: each row one measurement) is
+    per row the ``(unscaled error, chi2, N)`` of the measurements a row already stands for."""
+    s0, chi_part, n_part = (s, 0.0, 1.0) if part is None else (np.asarray(p, float) for p in part)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w = np.where((use != 0) & (s0 > 0), use / s0**2, 0.0)
+    sw = np.bincount(group, w, m)
+    ok = sw > 0
+    mean = np.where(ok, np.bincount(group, w * x, m) / np.where(ok, sw, 1.0), x[head])
+    unscaled = np.where(ok, 1.0 / np.sqrt(np.where(ok, sw, 1.0)), s0[head])
+    # chi2 of the union = the parts' own chi2 + sum W_g (xbar_g - xbar)^2 (exact for signed counts too)
+    counted = w != 0
+    chi2 = np.bincount(group, np.where(counted, use * chi_part + w * (x - mean[group]) ** 2, 0.0), m)
+    n = np.bincount(group, np.where(counted, use * n_part, 0.0), m)
+    chi2, n = np.where(ok, np.maximum(chi2, 0.0), 0.0), np.where(ok, np.rint(n), 1.0)
+    factor = scale_factor(chi2, n)
+    err = np.where(ok, unscaled * factor, s[head])
+    return mean, err, (unscaled, chi2, n), s0
+
+
+def scale_factor(chi2, n):
+    """S = sqrt(chi2 / (N - 1)) where that exceeds 1, else 1 (also for N < 2): the factor by which the
+    error of a weighted mean of N measurements whose scatter exceeds their errors is scaled up."""
+    chi2, n = np.asarray(chi2, float), np.asarray(n, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s = np.sqrt(np.where(n > 1, chi2 / np.where(n > 1, n - 1.0, 1.0), 1.0))
+    return np.maximum(s, 1.0)
+
+
+def group_scale_factors(scatter):
+    """The largest scale factor of each tracer over its merged quantities (1 for a tracer not merged)
+    from the ``scatter`` of :func:`merge_groups`; None gives None."""
+    if not scatter:
+        return None
+    return np.max([scale_factor(chi2, n) for _, chi2, n in scatter.values()], axis=0)

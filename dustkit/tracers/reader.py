@@ -121,8 +121,9 @@ def read_tracers(
     duplicates : {'merge', 'keep'}
         Rows that repeat a tracer (exact copies; the same name within 30 arcmin; or positions within
         1 arcsec with distance and A_V within their errors) are merged into one tracer
-        by inverse-variance means (default) or kept. Either way the groups are listed in
-        ``TracerSet.duplicates``.
+        by inverse-variance means (default; errors scaled up by S = sqrt(chi2 / (N - 1)) where
+        the measurements disagree, counted in ``meta["n_scaled_groups"]``) or kept. Either
+        way the groups are listed in ``TracerSet.duplicates``.
     source_temperature : Quantity['temperature'], optional
         Blackbody temperature of the source star for rows without their own temperature
         or intrinsic colour (default 5800 K, ``dustkit.bands.DEFAULT_TEMPERATURE``). Used
@@ -133,8 +134,9 @@ def read_tracers(
         ``'merge'`` (default): rows that repeat a tracer (exact copies; the same name within
         ``SAME_NAME_SEPARATION_ARCMIN``, 30 arcmin, on the sky, farther apart kept apart and reported; or
         positions within ``duplicate_separation`` with distance *and* A_V within 2 sigma of
-        their combined errors) are merged into one tracer by inverse-variance means, and the
-        groups listed in ``TracerSet.duplicates``. ``'keep'``: the rows are taken as given,
+        their combined errors) are merged into one tracer by inverse-variance means (each
+        merged error scaled up by S = sqrt(chi2 / (N - 1)) where S > 1: the measurements
+        disagree beyond their errors), and the groups listed in ``TracerSet.duplicates``. ``'keep'``: the rows are taken as given,
         with no search for duplicates (and so no report).
     duplicate_separation : Quantity['angle'] or float
         Sky separation within which two rows may be one tracer (1 arcsec; plain numbers in

@@ -464,7 +464,9 @@ class TracerSet:
             )
         if len(self.duplicates):
             n_groups = int(np.unique(np.asarray(self.duplicates["group"])).size)
-            how = (f"merged ({self.meta.get('n_merged', 0)} rows folded in)"
+            n_scaled = int(self.meta.get("n_scaled_groups", 0))
+            scaled = f"; errors of {n_scaled} scaled up, their values disagree" if n_scaled else ""
+            how = (f"merged ({self.meta.get('n_merged', 0)} rows folded in{scaled})"
                    if self.meta.get("duplicates", "merge") == "merge" else "kept")
             lines.append(f"  Duplicates: {len(self.duplicates)} rows in {n_groups} groups, {how} (see .duplicates)")
         elif self.meta.get("duplicates") == "keep":
