@@ -1132,3 +1132,14 @@ def test_exports_and_slice_maps_keep_only_pixels_the_tracers_inform(fitted, tmp_
     maps = dustkit.io.write_slice_maps(m, tmp_path / "maps.fits")
     av = hp.read_map(maps, field=g.n_edges - 1, nest=None)
     assert np.all(av[far] == hp.UNSEEN) and np.all(av[near] != hp.UNSEEN)
+
+
+def test_distance_edges_that_skip_the_sun_are_refused_with_a_hint():
+    # cumulative A_V is counted from the observer (d = 0; definition of the line-of-sight
+    # integral, common practice): edges from 250 pc made the model answer A_V = 0 out to 500 pc
+    # (dust in front of the first edge silently dropped) and 0 +- 0.12 mag at the Sun itself
+    t, tr = _tracers(60, 1)
+    with pytest.raises(dustkit.ParameterError, match=r"distance_edges.*start at 0 pc.*250.*Hint: .*\[0, 250"):
+        DensityModel(quiet=True, distance_edges=[250, 500, 1000, 2000] * u.pc).fit(tr)
+    with pytest.raises(dustkit.ParameterError, match="distance_edges"):
+        DensityModel(distance_edges=[250, 500, 1000] * u.pc).make_grid()

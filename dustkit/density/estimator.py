@@ -13,7 +13,7 @@ from .._lib.progress import extend_total, progress
 from .._lib.validation import (check_choice, check_int, check_nside, check_quiet, check_real, check_seed,
                                 param_error, to_value)
 from ..answers import av_quantities, distance_errors, grid_table, profile_table, query_table, sky_positions
-from ..exceptions import CatalogError, ModelNotFittedError
+from ..exceptions import CatalogError, ModelNotFittedError, ParameterError
 from ..grid import Grid
 from ..layer import given_layer
 from . import lattice as _lattice
@@ -229,6 +229,12 @@ class DensityModel:
         check_nside(nside)
         if self.distance_edges is not None:
             edges = to_value("distance_edges", self.distance_edges, u.pc, default_unit=u.pc)
+            first = np.ravel(np.asarray(edges, float))[:1]
+            if first.size and first[0] != 0.0:  # cumulative A_V is counted from the Sun: dust before it was dropped
+                shown = ", ".join(f"{x:g}" for x in np.ravel(edges)[:3])
+                raise ParameterError(f"The 'distance_edges' parameter of the density model must start at 0 pc (its "
+                                     f"A_V is cumulative from the Sun). Got a first edge of {first[0]:g} pc instead. "
+                                     f"Hint: add 0 in front, e.g. [0, {shown}, ...] pc.")
         else:
             dmax = float(to_value("distance_max", self.distance_max, u.pc, default_unit=u.pc))
             check_real("distance_max", dmax, 100.0, 1e5)
