@@ -523,10 +523,21 @@ class DensityModel:
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
             a[beyond] += extra
             var[beyond] += (extra * getattr(self, "error_amplitude_", self.amplitude_)) ** 2
+            var[beyond] += self._layer_beyond_variance(b[beyond], d[beyond], e[-1])
         var = var + self._fraction_variance(a, lay_t)
         if distance_err is not None:
             var = var + (self._slope(pix, wgt, k) * np.asarray(distance_err, float)) ** 2
         return a, np.sqrt(var)
+
+    def _layer_beyond_variance(self, b, d, edge):
+        """Variance (mag^2) of the layer's A_V added past the grid's last ``edge``: its parameters' full errors.
+
+        The delta method on the increment from ``edge`` to ``d`` with the layer's covariance plus
+        its pull (no tracer corrects the layer there, as past the last tracers inside the grid).
+        """
+        lay = self.layer_
+        jac = lay.gradient_pc(b, d) - lay.gradient_pc(b, np.full(np.shape(d), edge))   # (3, n)
+        return np.maximum(np.einsum("in,ij,jn->n", jac, lay.error_covariance(), jac), 0.0)
 
     def _slope(self, pix, wgt, k):
         e = self.grid_.distance_edges
