@@ -1164,3 +1164,19 @@ def test_answers_beyond_the_grid_carry_the_layers_error_on_what_it_adds_there():
     # and the answers at the edge itself are unchanged (nothing is added inside the grid)
     a0, e0 = m.av_pc(l, b, np.full(3, edge))
     assert np.all(err > e0) and np.all(a >= a0)
+
+
+def test_a_catalogue_mostly_beyond_the_grid_is_told_how_many_only_bound_it():
+    # a tracer farther than the last edge bounds the extinction there and measures nothing inside
+    # the grid (censored data, common practice): when most of a catalogue is there the user must
+    # hear it, with the count, the edge and what to change; the report counts them by name
+    field = DustField(a0=1.0, h=120.0, z_sun=20.0)
+    t = simulate_tracers(field, 300, rng=np.random.default_rng(7), distance_max=4000, **REGION)
+    tr = dustkit.read_tracers(t)
+    far = int(np.sum(np.asarray(tr.distance) > 1000))
+    assert far > 150
+    with pytest.warns(dustkit.exceptions.DustkitWarning,
+                      match=rf"{far} of 300 tracers lie beyond the grid's last distance edge \(1000 pc.*Hint: raise "
+                            r"distance_max"):
+        m = DensityModel(quiet=True, distance_max=1 * u.kpc).fit(tr)
+    assert m.build_report_["beyond_grid"] == far and str(far) in m.build_report_["notes"][0]
