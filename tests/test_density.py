@@ -1132,3 +1132,51 @@ def test_exports_and_slice_maps_keep_only_pixels_the_tracers_inform(fitted, tmp_
     maps = dustkit.io.write_slice_maps(m, tmp_path / "maps.fits")
     av = hp.read_map(maps, field=g.n_edges - 1, nest=None)
     assert np.all(av[far] == hp.UNSEEN) and np.all(av[near] != hp.UNSEEN)
+
+
+def test_distance_edges_that_skip_the_sun_are_refused_with_a_hint():
+    # cumulative A_V is counted from the observer (d = 0; definition of the line-of-sight
+    # integral, common practice): edges from 250 pc made the model answer A_V = 0 out to 500 pc
+    # (dust in front of the first edge silently dropped) and 0 +- 0.12 mag at the Sun itself
+    t, tr = _tracers(60, 1)
+    with pytest.raises(dustkit.ParameterError, match=r"distance_edges.*start at 0 pc.*250.*Hint: .*\[0, 250"):
+        DensityModel(quiet=True, distance_edges=[250, 500, 1000, 2000] * u.pc).fit(tr)
+    with pytest.raises(dustkit.ParameterError, match="distance_edges"):
+        DensityModel(distance_edges=[250, 500, 1000] * u.pc).make_grid()
+
+
+def test_answers_beyond_the_grid_carry_the_layers_error_on_what_it_adds_there():
+    # past the grid's last edge the answer is the layer carried on; its parameters' errors (with
+    # the clouds' pull) reach that extra extinction in full, as Monte Carlo error propagation over
+    # the parameters shows (common practice). Before, only the field's amplitude times the extra
+    # A_V was added: 41 +- 0.4 mag at 50 kpc toward the inner disc from a 1 kpc grid.
+    field = DustField(a0=1.0, h=120.0, z_sun=20.0)
+    t = simulate_tracers(field, 300, rng=np.random.default_rng(7), distance_max=4000, **REGION)
+    m = DensityModel(quiet=True, distance_max=1 * u.kpc).fit(dustkit.read_tracers(t))
+    lay, edge = m.layer_, m.grid_.distance_edges[-1]
+    rng = np.random.default_rng(0)
+    p = rng.multivariate_normal([lay.a0, lay.h, lay.z_sun], lay.error_covariance(), 4000)
+    l, b, d = np.array([40.0, 40.0, 200.0]), np.array([0.0, 5.0, -2.0]), np.array([5000.0, 3000.0, 20000.0])
+    from dustkit.layer import layer_av_pc
+    extra = np.array([[layer_av_pc(bi, di, *q) - layer_av_pc(bi, edge, *q) for q in p] for bi, di in zip(b, d)])
+    a, err = m.av_pc(l, b, d)
+    assert np.all(np.isfinite(a)) and np.all(err >= 0.9 * extra.std(axis=1))
+    # and the answers at the edge itself are unchanged (nothing is added inside the grid)
+    a0, e0 = m.av_pc(l, b, np.full(3, edge))
+    assert np.all(err > e0) and np.all(a >= a0)
+
+
+def test_a_catalogue_mostly_beyond_the_grid_is_told_how_many_only_bound_it():
+    # a tracer farther than the last edge bounds the extinction there and measures nothing inside
+    # the grid (censored data, common practice): when most of a catalogue is there the user must
+    # hear it, with the count, the edge and what to change; the report counts them by name
+    field = DustField(a0=1.0, h=120.0, z_sun=20.0)
+    t = simulate_tracers(field, 300, rng=np.random.default_rng(7), distance_max=4000, **REGION)
+    tr = dustkit.read_tracers(t)
+    far = int(np.sum(np.asarray(tr.distance) > 1000))
+    assert far > 150
+    with pytest.warns(dustkit.exceptions.DustkitWarning,
+                      match=rf"{far} of 300 tracers lie beyond the grid's last distance edge \(1000 pc.*Hint: raise "
+                            r"distance_max"):
+        m = DensityModel(quiet=True, distance_max=1 * u.kpc).fit(tr)
+    assert m.build_report_["beyond_grid"] == far and str(far) in m.build_report_["notes"][0]

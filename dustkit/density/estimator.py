@@ -7,13 +7,14 @@ from astropy import units as u
 from astropy.table import Table
 
 import inspect
+import warnings
 
 from .._lib import healpix
 from .._lib.progress import extend_total, progress
 from .._lib.validation import (check_choice, check_int, check_nside, check_quiet, check_real, check_seed,
                                 param_error, to_value)
 from ..answers import av_quantities, distance_errors, grid_table, profile_table, query_table, sky_positions
-from ..exceptions import CatalogError, ModelNotFittedError
+from ..exceptions import CatalogError, DustkitWarning, ModelNotFittedError, ParameterError
 from ..grid import Grid
 from ..layer import given_layer
 from . import lattice as _lattice
@@ -229,6 +230,12 @@ class DensityModel:
         check_nside(nside)
         if self.distance_edges is not None:
             edges = to_value("distance_edges", self.distance_edges, u.pc, default_unit=u.pc)
+            first = np.ravel(np.asarray(edges, float))[:1]
+            if first.size and first[0] != 0.0:  # cumulative A_V is counted from the Sun: dust before it was dropped
+                shown = ", ".join(f"{x:g}" for x in np.ravel(edges)[:3])
+                raise ParameterError(f"The 'distance_edges' parameter of the density model must start at 0 pc (its "
+                                     f"A_V is cumulative from the Sun). Got a first edge of {first[0]:g} pc instead. "
+                                     f"Hint: add 0 in front, e.g. [0, {shown}, ...] pc.")
         else:
             dmax = float(to_value("distance_max", self.distance_max, u.pc, default_unit=u.pc))
             check_real("distance_max", dmax, 100.0, 1e5)
@@ -366,7 +373,7 @@ class DensityModel:
             "error_amplitude": float(lat_err.amplitude), "layer_given": self.layer is not None,
             "converged": bool(post.converged), "seconds": round(time.perf_counter() - t_start, 2),
             "threads": _lattice.THREADS, "isotropic": bool(iso), "pull_left": round(self.pull_left_, 3),
-            "layer_lift": lift_report(layer, inp, self.layer)}
+            "layer_lift": lift_report(layer, inp, self.layer), **_beyond_grid(terms.censored, grid.distance_edges[-1], inp.d)}
         return self
 
     def _errors(self, layer, unresolved, tau_s):
@@ -517,10 +524,21 @@ class DensityModel:
             extra = np.maximum(self.layer_.av_pc(b[beyond], d[beyond]) - lay_t[beyond], 0.0)
             a[beyond] += extra
             var[beyond] += (extra * getattr(self, "error_amplitude_", self.amplitude_)) ** 2
+            var[beyond] += self._layer_beyond_variance(b[beyond], d[beyond], e[-1])
         var = var + self._fraction_variance(a, lay_t)
         if distance_err is not None:
             var = var + (self._slope(pix, wgt, k) * np.asarray(distance_err, float)) ** 2
         return a, np.sqrt(var)
+
+    def _layer_beyond_variance(self, b, d, edge):
+        """Variance (mag^2) of the layer's A_V added past the grid's last ``edge``: its parameters' full errors.
+
+        The delta method on the increment from ``edge`` to ``d`` with the layer's covariance plus
+        its pull (no tracer corrects the layer there, as past the last tracers inside the grid).
+        """
+        lay = self.layer_
+        jac = lay.gradient_pc(b, d) - lay.gradient_pc(b, np.full(np.shape(d), edge))   # (3, n)
+        return np.maximum(np.einsum("in,ij,jn->n", jac, lay.error_covariance(), jac), 0.0)
 
     def _slope(self, pix, wgt, k):
         e = self.grid_.distance_edges
@@ -697,6 +715,25 @@ class DensityModel:
             return f"DensityModel(nside={self.nside}, not fitted)"
         return (f"DensityModel({self.grid_!r}, {len(self.tracers_)} tracers, {self.layer_}, "
                 f"s={self.amplitude_:.2f}, L={self.length_:.0f} pc, tau={self.tau_:.3f})")
+
+
+def _beyond_grid(censored, last_edge, distances):
+    """The build report's ``beyond_grid`` count and ``notes``; a warning when a quarter or more of the tracers only bound.
+
+    A tracer beyond the grid's last edge says only that the extinction at that edge is at most
+    its own (a censored term): most of a catalogue there leaves the grid learned from the rest.
+    """
+    n_far, n = int(np.sum(censored)), int(np.size(censored))
+    notes = []
+    if n_far:
+        far = np.asarray(distances, float)[np.asarray(censored, bool)]
+        notes.append(f"{n_far} of {n} tracers lie beyond the grid's last distance edge ({last_edge:g} pc; the farthest "
+                     f"at {far.max():.0f} pc) and only bound the extinction there from above.")
+        if n_far >= 0.25 * n:
+            warnings.warn(notes[-1] + f" The model is learned from the other {n - n_far}. Hint: raise distance_max "
+                          f"(e.g. to {np.quantile(far, 0.9):.0f} pc) to use them as measurements.",
+                          DustkitWarning, stacklevel=3)
+    return {"beyond_grid": n_far, "notes": notes}
 
 
 def _cv_table(rows, folds_n):
