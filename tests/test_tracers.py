@@ -622,6 +622,31 @@ def test_dec_out_of_range_and_absurd_av_rejected():
     assert list(ts.rejected["value"]) == ["-91", "70", "400"]
 
 
+def test_a_negative_reddening_within_its_noise_is_kept_and_one_beyond_it_rejected():
+    # common practice: a negative excess within its errors of zero is noise around little dust; cutting it
+    # at a fixed -0.3 whatever its error biased the mean reddening of noisy low-extinction rows upward
+    from dustkit.tracers.rules import NEGATIVE_NSIGMA, validate_rows
+    t = Table({"name": ["noisy", "precise", "noisy-far", "in-range"], "l": [1.0, 2.0, 3.0, 4.0], "b": [20.0] * 4,
+               "dist": [1.0] * 4 * u.kpc, "e_dist": [0.1] * 4 * u.kpc,
+               "ebv": [-0.5, -0.5, -0.8, -0.1], "e_ebv": [0.2, 0.05, 0.2, 0.05]})
+    with pytest.warns(RowsRejectedWarning, match="2 of 4"):
+        ts = read_tracers(t)
+    assert list(ts.name) == ["noisy", "in-range"]  # -0.5 +- 0.2 is 2.5 sigma below zero; -0.8 +- 0.2 is 4 sigma
+    assert NEGATIVE_NSIGMA == 3.0
+    assert list(ts.rejected["name"]) == ["precise", "noisy-far"]
+    assert list(ts.rejected["reason"]) == ["E(B-V) in 'ebv' outside [-0.3, 20] mag"] * 2
+    # the out-of-core reader's rule is the same (A_V = R_V E(B-V), errors likewise)
+    av, ae = 3.1 * np.array(t["ebv"]), 3.1 * np.array(t["e_ebv"])
+    code, _ = validate_rows({"l": np.array(t["l"]), "b": np.array(t["b"]), "distance": np.full(4, 1000.0),
+                             "distance_err": np.full(4, 100.0), "av": av, "av_err": ae}, 3.1)
+    assert list(code >= 0) == [False, True, True, False]
+    # a lower limit of zero or above is applied as given, whatever the errors
+    t2 = t.copy()
+    t2["ebv"] = [0.05, -0.01, 0.2, 0.3]
+    ts = _quiet(read_tracers, t2, reject_limits={"ebv": (0.0, 20.0)})
+    assert list(ts.name) == ["noisy", "noisy-far", "in-range"]
+
+
 def test_reject_limits_can_be_changed():
     t = Table({"l": [1.0, 2.0], "b": [0.0, 0.0], "dist": [1.0, 300.0] * u.kpc, "e_dist": [0.1, 0.1] * u.kpc,
                "ebv": [0.1, 0.1], "e_ebv": [0.01] * 2})

@@ -8,7 +8,7 @@ from astropy import units as u
 from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
-from .rules import reason
+from .rules import below_limit, reason
 from .values import error_values, numeric
 from ..bands import DEFAULT_TEMPERATURE
 from ..bands.inputs import temperature_input
@@ -286,7 +286,7 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     lo, hi = limits["ebv"]
     ebv_eq = av / rv
     ok_now = ctx.rej.code < 0
-    bad = ok_now & ((ebv_eq < lo) | (ebv_eq > hi))
+    bad = ok_now & (below_limit(ebv_eq, av_err / rv, lo) | (ebv_eq > hi))
     if kind == "E(B-V)":
         why = reason("ebv_outside", colname, lo=lo, hi=hi)
     else:

@@ -41,11 +41,17 @@ __all__ = [
     "check_duplicates",
     "chunk_reasons",
     "validate_rows",
+    "below_limit",
+    "NEGATIVE_NSIGMA",
 ]
 
 #: Row rejection limits: E(B-V) in mag (A_V and other excesses are compared
 #: through their A_V = R_V * E(B-V) equivalent) and distance in pc.
 DEFAULT_REJECT_LIMITS = {"ebv": (-0.3, 20.0), "distance": (0.0, 2.0e5)}
+#: A negative lower E(B-V) limit is a noise allowance: a row below it is kept while it lies within
+#: this many of its own errors of zero (noise, not a wrong row), so noisy catalogues keep their
+#: low tail (cutting it would bias the mean reddening of low-extinction sight lines upward).
+NEGATIVE_NSIGMA = 3.0
 #: Fractional distance error assumed where a catalogue gives none (``default_distance_frac_err``).
 DEFAULT_DISTANCE_FRAC_ERR = 0.10
 #: Reddening error assumed where a catalogue gives none, mag of E(B-V) (``default_excess_err``).
@@ -166,6 +172,20 @@ def chunk_reasons(colmap, limits=None):
     return tuple((role, reason(key, colmap[role], **extra.get(key, {}))) for role, key in CHUNK_RULES)
 
 
+def below_limit(ebv, ebv_err, lo):
+    """True where an E(B-V) (or its A_V / R_V equivalent) lies below the lower limit ``lo``.
+
+    A negative ``lo`` (the default -0.3 mag) is a noise allowance, not a physical bound: a row
+    below it is kept while it lies within ``NEGATIVE_NSIGMA`` of its own error (``ebv_err``, the
+    same units; NaN counts as 0) of zero. A limit of zero or above is applied as given.
+    """
+    ebv = np.asarray(ebv, float)
+    if lo >= 0:
+        return ebv < lo
+    err = np.nan_to_num(np.asarray(ebv_err, float), nan=0.0)
+    return (ebv < lo) & (ebv < -NEGATIVE_NSIGMA * err)
+
+
 def validate_rows(a, rv, limits=None):
     """Reason code per row (-1 = accepted, else the index in ``CHUNK_RULES``) and the cleaned accepted rows.
 
@@ -181,6 +201,7 @@ def validate_rows(a, rv, limits=None):
     l, b, d, de, av, ae = (a[r] for r in ("l", "b", "distance", "distance_err", "av", "av_err"))
     (ebv_lo, ebv_hi), (d_lo, d_hi) = limits["ebv"], limits["distance"]
     with np.errstate(invalid="ignore"):
+        ae_used = np.where(np.isfinite(ae) & (ae > 0), ae, rv * DEFAULT_EXCESS_ERR)  # as the fits will take it
         values = {"l": l, "b": b, "distance": d, "distance_err": de, "av": av, "av_err": ae}
         failing = {
             "not_finite": lambda x: ~np.isfinite(x),
@@ -188,7 +209,7 @@ def validate_rows(a, rv, limits=None):
             "negative_error": lambda x: x < 0,
             "latitude": lambda x: (x < LATITUDE_RANGE[0]) | (x > LATITUDE_RANGE[1]),
             "longitude": lambda x: (x < LONGITUDE_RANGE[0]) | (x > LONGITUDE_RANGE[1]),
-            "av_outside": lambda x: (x / rv < ebv_lo) | (x / rv > ebv_hi),
+            "av_outside": lambda x: below_limit(x / rv, ae_used / rv, ebv_lo) | (x / rv > ebv_hi),
             "distance_not_positive": lambda x: x <= 0,
             "distance_outside": lambda x: ~((x > d_lo) & (x <= d_hi)),
         }
