@@ -13,6 +13,7 @@ import argparse
 import gc
 import json
 import os
+import re
 import sys
 import traceback
 import warnings
@@ -343,21 +344,23 @@ to check: metallicity and age shift the sequence (0.1-0.3 mag in mu0).""", forma
 # ============================================================================ helpers
 
 class _Out:
-    """Printing that respects --quiet."""
+    """Printing that respects --quiet; ``say`` puts the library's parameter names into the command's
+    options (a read's summary says 'Pass distance_unit=...': the command prints '--distance-unit')."""
 
-    def __init__(self, quiet, notes=True):
+    def __init__(self, quiet, notes=True, say=str):
         self.quiet = quiet
         self.notes = notes
+        self.say = say
 
     def note(self, text):
         """A note about the data (rows left out, ...): on stderr, even with --quiet."""
         if self.notes:
-            sys.stderr.write(f"note: {_one_line(text)}\n")
+            sys.stderr.write(f"note: {_one_line(self.say(text))}\n")
 
     def __call__(self, *lines):
         if not self.quiet:
             for line in lines:
-                print(line)
+                print(self.say(line))
         sys.stdout.flush()
 
 
@@ -1146,17 +1149,97 @@ def _cmd_demo(args, out):
     return 0
 
 
+# ============================================================================ library words -> command words
+
+#: Library parameters whose option has another name (the rest are spelled alike: nside -> --nside).
+_PARAMETER_OPTIONS = {"random_state": "seed", "parallax_err_floor": "parallax_floor",
+                      "distance_modulus_kind": "modulus_kind", "columns": "column", "bands": "band"}
+#: Python calls named in library hints, and what a command-line user does instead.
+_PYTHON_HINTS = {"list_laws() shows": "'dustkit laws' shows",
+                 "add_band(name, wavelength) registers a new band": "from Python, dustkit.bands.add_band(name, "
+                                                                    "wavelength) registers a new band"}
+
+
+def _option_names(parser, command):
+    """Library parameter name -> what a user of ``command`` types: '--seed', '-o/--output', 'MODEL'.
+
+    Read from the command's own parser (its dests and option strings), so an option added to
+    the parser is named in messages without a second list."""
+    subs = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    names = {}
+    for action in subs.choices[command]._actions:
+        if action.dest in ("help", "quiet", "debug"):
+            continue
+        if action.option_strings:
+            names[action.dest] = "/".join(action.option_strings)
+        else:
+            names[action.dest] = action.metavar or action.dest.upper()
+    names.update({lib: names[dest] for lib, dest in _PARAMETER_OPTIONS.items() if dest in names and lib not in names})
+    return names
+
+
+def _translator(names):
+    """A function turning a library message into the command's words: "The 'random_state' parameter
+    must be ..." -> "The --seed option must be ...", "pass distance_unit='kpc'" -> "add --distance-unit
+    kpc", "columns={'ebv': 'X'}" -> "--column ebv=X". Names the command has no option for stay as they are."""
+
+    def word(name):
+        return names.get(name)
+
+    def the_parameter(m):
+        shown = word(m.group(2))
+        if shown is None:
+            return m.group(0)
+        kind = "option" if shown.startswith("-") else "argument"
+        return f"{m.group(1)} {shown} {kind}"
+
+    def keyword(m):  # pass name=value -> add --option value
+        shown = word(m.group(2))
+        if shown is None or not shown.startswith("-"):
+            return m.group(0)
+        value = m.group(3).strip("'\"")
+        value = "" if value in ("True", "...", "") else f" {value}"
+        return f"{'Add' if m.group(1)[0].isupper() else 'add'} {shown.split('/')[-1]}{value}"
+
+    def columns(m):
+        shown = word("columns")
+        if shown is None:
+            return m.group(0)
+        pairs = re.findall(r"'(\w+)':\s*'?([^',}]*)'?", m.group(1))
+        return " ".join(f"--column {k}={v}" for k, v in pairs) if pairs else "--column KEY=NAME"
+
+    def translate(text):
+        text = str(text)
+        if not names:
+            return text
+        # a library hint that says its command-line form already: keep only that form
+        text = re.sub(r"\b\w+=[^()]*? \((?:on the )?command line:? (--[^)]*)\)", r"\1", text)
+        text = re.sub(r"\b[\w.]+(?:\(\))? \((?:on the )?command line:? (dustkit [^)]*)\)", r"\1", text)
+        text = re.sub(r"\(\w+=, command line (--[\w-]+)\)", r"(\1)", text)
+        text = re.sub(r"\(\w+=\.\.\., (dustkit [^)]*)\)", r"(\1)", text)
+        for python, command in _PYTHON_HINTS.items():
+            text = text.replace(python, command)
+        text = re.sub(r"(\d[\d.]*) \* u\.\w+", r"\1", text)  # '4500 * u.K' -> '4500': the option has its unit
+        text = re.sub(r"\b(The|the) '(\w+)' parameter", the_parameter, text)
+        text = re.sub(r"\bcolumns=(\{[^}]*\})", columns, text)
+        text = re.sub(r"\b(pass|Pass) (\w+)=('[^']*'|\S*?)(?=[\s,;)]|\.\s|\.$|$)", keyword, text)
+        return re.sub(r"\b(pass|Pass) (--)", lambda m: f"{'Add' if m.group(1) == 'Pass' else 'add'} --", text)
+
+    return translate
+
+
 # ============================================================================ entry point
 
-def _show_warning_factory(debug):
+def _show_warning_factory(debug, say=str):
     """Warnings as one line on stderr: dustkit's always (--quiet silences progress and chatter, not
-    warnings: an assumed unit or default error is something the user must hear), others with --debug."""
+    warnings: an assumed unit or default error is something the user must hear), others with --debug;
+    ``say`` puts dustkit's parameter names into the command's option names."""
     from .exceptions import DustkitWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, DustkitWarning) and not debug:
             return
-        sys.stderr.write(f"warning: {_one_line(message)}\n")
+        sys.stderr.write(f"warning: {_one_line(say(message))}\n")
 
     return show
 
@@ -1175,13 +1258,14 @@ def main(argv=None):
     debug = bool(getattr(args, "debug", False))
     args.quiet, args.debug = quiet, debug
     prog = f"{_PROG} {args.command}"
+    say = _translator(_option_names(parser, args.command))
     if argv is None:  # run as the program (not from Python): see _frozen_exit
         gc.freeze()
         try:
-            return _run(args, prog, quiet, debug)
+            return _run(args, prog, quiet, debug, say)
         finally:
             _frozen_exit()
-    return _run(args, prog, quiet, debug)
+    return _run(args, prog, quiet, debug, say)
 
 
 def _frozen_exit():
@@ -1203,17 +1287,18 @@ def _stdout_to_devnull():
         pass
 
 
-def _run(args, prog, quiet, debug):
-    """The command of parsed ``args``, its errors turned into messages and an exit status."""
+def _run(args, prog, quiet, debug, say=str):
+    """The command of parsed ``args``, its errors turned into messages and an exit status; ``say`` puts
+    the library's parameter names into the command's options (the user can change only those)."""
     from .exceptions import DustkitError, FileFormatError, ParameterError
 
     old_show = warnings.showwarning
-    warnings.showwarning = _show_warning_factory(debug)
+    warnings.showwarning = _show_warning_factory(debug, say)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
-            warnings.showwarning = _show_warning_factory(debug)
-            status = int(args.func(args, _Out(quiet)) or 0)
+            warnings.showwarning = _show_warning_factory(debug, say)
+            status = int(args.func(args, _Out(quiet, say=say)) or 0)
             sys.stdout.flush()  # a closed pipe fails here, inside the handlers below
             return status
     except BrokenPipeError:  # the reader of stdout stopped (dustkit laws | head -3): stop quietly
@@ -1222,12 +1307,12 @@ def _run(args, prog, quiet, debug):
     except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
         if debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        sys.stderr.write(f"{prog}: error: {_one_line(say(exc))}\n")
         return 1
     except (_UsageError, ParameterError) as exc:
         if debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_with_help_hint(exc, prog)}\n")
+        sys.stderr.write(f"{prog}: error: {_with_help_hint(say(exc), prog)}\n")
         return 2
     except KeyboardInterrupt:
         sys.stderr.write(f"{prog}: interrupted\n")
@@ -1235,7 +1320,7 @@ def _run(args, prog, quiet, debug):
     except (DustkitError, OSError) as exc:
         if debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        sys.stderr.write(f"{prog}: error: {_one_line(say(exc))}\n")
         return 1
     except Exception as exc:  # a bug or an unexpected library failure: still one line
         if debug:

@@ -400,7 +400,7 @@ def test_python_m_dustkit_and_version():
 _BAD = {
     # the three the issue names, each in a new process: bad NSIDE, missing column, unreadable file
     "bad_nside": (["build", "{cat}", "-o", "m.fits", "--nside", "12"], 2,
-                  "The 'nside' parameter must be a power of two between 1 and 1024. Got 12 instead."),
+                  "The --nside option must be a power of two between 1 and 1024. Got 12 instead."),
     "missing_column": (["build", "{cat}", "-o", "m.fits", "--column", "ebv=no_such_column"], 1, "no_such_column"),
     "unreadable_file": (["build", "{garbage}", "-o", "m.fits"], 1, "Could not read catalogue file"),
     # more, in this process
@@ -410,10 +410,10 @@ _BAD = {
     "edges_and_max": (["build", "{cat}", "-o", "m.fits", "--distance-edges", "0,100", "--distance-max", "500"], 2,
                       "not both"),
     "bad_edges": (["build", "{cat}", "-o", "m.fits", "--distance-edges", "0,1k"], 2, "--distance-edges takes"),
-    "bad_law": (["build", "{cat}", "-o", "m.fits", "--law", "nope"], 2, "The 'law' parameter must be one of"),
+    "bad_law": (["build", "{cat}", "-o", "m.fits", "--law", "nope"], 2, "The --law option must be one of"),
     "csv_as_model": (["estimate", "{cat}", "{targets}", "-o", "x.csv"], 1, "not a readable dustkit model file"),
-    "bad_band": (["estimate", "{model}", "{targets}", "-o", "x.csv", "--band", "Q9"], 2, "The 'band' parameter"),
-    "bad_latitude": (["profile", "{model}", "--l", "10", "--b", "95", "-o", "p.png"], 2, "The 'b' parameter"),
+    "bad_band": (["estimate", "{model}", "{targets}", "-o", "x.csv", "--band", "Q9"], 2, "The --band option"),
+    "bad_latitude": (["profile", "{model}", "--l", "10", "--b", "95", "-o", "p.png"], 2, "The --b option"),
     "no_command": (["nosuchcommand"], 2, "invalid choice"),
 }
 _IN_NEW_PROCESS = ("bad_nside", "missing_column", "unreadable_file")
@@ -785,3 +785,54 @@ def test_readme_command_line_section_lists_every_command_as_it_parses():
             shown.add(args.command)
     subparsers = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
     assert shown == set(subparsers.choices)
+
+
+# an error from the library names the option the user typed, not the Python parameter behind it
+_NAMED = {
+    "parallax_floor": (["layer", "{cat}", "--distance-unit", "kpc", "--parallax-floor", "-1"],
+                       "The --parallax-floor option must be", "parallax_err_floor"),
+    "duplicate_separation": (["layer", "{cat}", "--distance-unit", "kpc", "--duplicate-separation", "-1"],
+                             "The --duplicate-separation option must be", "duplicate_separation"),
+    "bands_temperature": (["bands", "--temperature", "0"], "The --temperature option must be", "'temperature'"),
+    "distance_max": (["build", "{cat}", "-o", "{dir}/m.fits", "--distance-max", "-5"],
+                     "The --distance-max option must be", "distance_max"),
+    "samples": (["estimate", "{model}", "{targets}", "-o", "{dir}/x.csv", "--samples", "-3"],
+                "The --samples option must be", "'samples'"),
+    "law": (["layer", "{cat}", "--law", "nope"], "'dustkit laws' shows", "list_laws()"),
+}
+
+
+@pytest.mark.parametrize("case", list(_NAMED))
+def test_errors_name_the_option_not_the_python_parameter(case, files, built, tmp_path, call):
+    args, expect, python_name = _NAMED[case]
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0], "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in args])
+    line = one_line_error(err)
+    assert rc == 2 and expect in line and python_name not in line, line
+
+
+def test_warnings_and_hints_name_the_options(files, tmp_path, call):
+    # the catalogue's distances are unit-less kpc: the error tells a shell user the option, not the keyword
+    rc, out, err = call("layer", files / "cat.csv")
+    assert rc == 1 and "add --distance-unit kpc" in one_line_error(err) and "distance_unit=" not in err
+    # in pc, unit-less: read as pc, and the read's summary saying so names the option too
+    cat = Table.read(files / "cat.csv", format="ascii.csv")
+    cat["dist"] *= 1000.0
+    cat["e_dist"] *= 1000.0
+    cat.write(tmp_path / "pc.csv", format="ascii.csv")
+    rc, out, err = call("layer", tmp_path / "pc.csv")
+    assert rc == 0 and "Add --distance-unit kpc" in out + err and "distance_unit=" not in out + err
+    rc, out, err = call("layer", files / "cat.csv", "--column", "distance=nope")
+    assert rc == 1 and "--column" in one_line_error(err) and "columns=" not in err
+    rc, out, err = call("build", files / "cat.csv", "-o", files / "cat.csv", "--distance-unit", "kpc")
+    assert rc != 0 and "overwrite=True" not in err
+
+
+def test_the_translation_keeps_what_the_command_has_no_option_for():
+    from dustkit.cli import _option_names, _translator, build_parser
+
+    say = _translator(_option_names(build_parser(), "features"))
+    assert say("The 'random_state' parameter must be an integer >= 0.") == "The --seed option must be an integer >= 0."
+    assert say("The 'merge_sigma' parameter must be > 0.") == "The 'merge_sigma' parameter must be > 0."
+    assert say("The 'model' parameter must be fitted.") == "The MODEL argument must be fitted."
+    assert say("Hint: pass overwrite=True (on the command line: --overwrite).") == "Hint: add --overwrite."
