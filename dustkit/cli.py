@@ -2,9 +2,13 @@
 
 A thin layer over the library: every command calls the same functions a Python user would
 (:func:`dustkit.tracers.read_tracers`, :class:`dustkit.model.ExtinctionModel`,
-:mod:`dustkit.io`, :mod:`dustkit.plotting`). Errors are reported as one line on stderr with
-exit status 2 (bad command line or option value) or 1 (the job failed); ``--debug`` shows
-the traceback. Progress bars appear only on a terminal and never with ``--quiet``.
+:mod:`dustkit.io`, :mod:`dustkit.plotting`). Errors are reported as one line on stderr, naming
+the option the user typed, with exit status 2 when the command line itself is wrong (unknown or
+missing option, a value outside its range, options that conflict, an output name whose suffix
+names no format written there) and 1 when the command line is right but the job failed (an input
+file missing, unreadable or with bad contents, an output that exists without --overwrite or whose
+folder is missing, a fit that failed); see DEVELOPERS.md. ``--debug`` shows the traceback.
+Progress bars appear only on a terminal and never with ``--quiet``.
 
 Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 """
@@ -383,11 +387,38 @@ def _columns(pairs):
 
 
 def _check_law(args):
+    """--law and --rv: a known law, and an R_V inside that law's range (a usage error, status 2)."""
     from ._lib.validation import check_real
+    from .exceptions import LawRangeError
     from .laws import get_law
 
-    get_law(args.law)
+    law = get_law(args.law)
     check_real("rv", args.rv, 0, 20, low_inclusive=False)
+    try:
+        law.check_rv(args.rv)
+    except LawRangeError as exc:
+        raise _UsageError(f"--rv {args.rv:g} does not suit --law {law.name}: {exc}") from None
+
+
+def _check_output(path, kind, overwrite, option="-o"):
+    """An output file name given on the command line: its suffix names a format of ``kind`` ('table',
+    'figure', or 'fits' for model and slice-map files) -- else a usage error naming ``option`` (status 2) --,
+    its folder exists and it may be written (else the job fails, status 1)."""
+    from ._lib.formats import check_target, format_for, suffixes
+    from .exceptions import FileFormatError
+    from .io import check_fits_path
+
+    try:
+        if kind == "fits":
+            return check_fits_path(path, overwrite, what="slice-map file" if option == "--maps" else "model file")
+        format_for(path, kind)
+    except FileFormatError as exc:
+        if kind == "fits":
+            raise _UsageError(f"{option} {path}: {exc}") from None
+        got = "".join(Path(os.fspath(path)).suffixes[-1:]).lower() or "none"
+        raise _UsageError(f"{option} {path}: no {kind} format has the suffix {got!r}. "
+                          f"Hint: end the name in one of {', '.join(suffixes(kind))}") from None
+    return check_target(path, overwrite)
 
 
 def _grid_defaults():
@@ -569,13 +600,13 @@ def _sky_figure(model, distance_pc):
 # ============================================================================ commands
 
 def _cmd_build(args, out):
-    from .io import check_fits_path, save_model
+    from .io import save_model
     from .model import CAUTION
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
-    check_fits_path(args.output, args.overwrite)  # fail before a long build, not after
+    _check_output(args.output, "fits", args.overwrite)  # fail before a long build, not after
     if getattr(args, "layer_from", None):
         kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path
@@ -677,7 +708,6 @@ def _cmd_estimate(args, out):
     import numpy as np
     from astropy import units as u
 
-    from ._lib.formats import check_target, format_for
     from .answers import CAUTION, UNITLESS_COLUMNS, estimate_columns, estimate_targets
     from .bands import get_band
     from .exceptions import RowsRejectedWarning
@@ -688,8 +718,7 @@ def _cmd_estimate(args, out):
     for band in bands:
         get_band(band)
     columns = _columns(args.column)
-    format_for(args.output, "table")
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "table", args.overwrite)
     model = load_model(args.model)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
@@ -766,14 +795,13 @@ def _cmd_profile(args, out):
     import numpy as np
 
     from ._lib.validation import check_real
-    from ._lib.formats import check_target
     from .io import load_model
 
     check_real("b", args.b, -90, 90)
     check_real("l", args.l, -360, 720)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "figure", args.overwrite)  # before the model is read and the figure drawn
     model = load_model(args.model)
     fig = _profile_figure(model, args.l, args.b, args.radius)
     path = _save_figure(fig, args.output, args.overwrite)
@@ -799,13 +827,11 @@ def _refuse_same_file(output, other, option, loss, example):
 
 
 def _cmd_export(args, out):
-    from ._lib.formats import check_target, format_for
-    from .io import check_fits_path, export_table, load_model, write_slice_maps
+    from .io import export_table, load_model, write_slice_maps
 
-    format_for(args.output, "table")
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "table", args.overwrite)
     if args.maps:
-        check_fits_path(args.maps, args.overwrite, what="slice-map file")
+        _check_output(args.maps, "fits", args.overwrite, option="--maps")
         _refuse_same_file(args.output, args.maps, "--maps", "the maps would replace the table", "slices.fits")
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
@@ -823,7 +849,6 @@ def _cmd_features(args, out):
 
     from ._lib.validation import check_real
     from .features import KIND_NEARER, density_features, detect_features
-    from ._lib.formats import check_target, format_for
     from .io import load_model, write_table
 
     # each finder keeps its own default least step unless one is given
@@ -832,10 +857,9 @@ def _cmd_features(args, out):
         check_real("min_delta_av", args.min_delta_av, 0, 100)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
-    for path in (args.output, args.detections):
+    for path, option in ((args.output, "-o"), (args.detections, "--detections")):
         if path:
-            format_for(path, "table")
-            check_target(path, args.overwrite)
+            _check_output(path, "table", args.overwrite, option)
     if args.detections:
         _refuse_same_file(args.output, args.detections, "--detections",
                           "the per-pixel steps would replace the feature table", "pixels.ecsv")
@@ -915,14 +939,12 @@ def _cmd_fit_clusters(args, out):
     """dustkit fit-clusters: member photometry -> one tracer row per cluster."""
     from .clusters import CAUTION as CLUSTER_CAUTION
     from .clusters import fit_clusters
-    from ._lib.formats import check_target, format_for
     from .exceptions import CatalogError
     from .io import write_table
     from .tracers import SUFFIX_FORMATS
 
     _check_law(args)
-    format_for(args.output, "table")  # before the fits, not after them
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "table", args.overwrite)  # before the fits, not after them
     path = Path(args.members).expanduser()
     if not path.is_file():
         raise FileNotFoundError(f"No members table at '{path}'. Hint: check the path.")
@@ -975,6 +997,7 @@ def _cmd_bands(args, out):
 
     from .bands import band_table
 
+    _check_law(args)
     t = band_table(args.law, args.rv, temperature=args.temperature * u.K, av=args.av)
     shown = Table()
     shown["band"] = t["name"]
@@ -1155,7 +1178,7 @@ def _cmd_demo(args, out):
 _PARAMETER_OPTIONS = {"random_state": "seed", "parallax_err_floor": "parallax_floor",
                       "distance_modulus_kind": "modulus_kind", "columns": "column", "bands": "band"}
 #: Python calls named in library hints, and what a command-line user does instead.
-_PYTHON_HINTS = {"list_laws() shows": "'dustkit laws' shows",
+_PYTHON_HINTS = {"list_laws()": "'dustkit laws'",
                  "add_band(name, wavelength) registers a new band": "from Python, dustkit.bands.add_band(name, "
                                                                     "wavelength) registers a new band"}
 
@@ -1304,7 +1327,7 @@ def _run(args, prog, quiet, debug, say=str):
     except BrokenPipeError:  # the reader of stdout stopped (dustkit laws | head -3): stop quietly
         _stdout_to_devnull()
         return 141  # 128 + SIGPIPE, as a shell reports a command the closed pipe stopped (common practice)
-    except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
+    except FileFormatError as exc:  # an input file of a format not read there (outputs: _check_output, status 2)
         if debug:
             traceback.print_exc()
         sys.stderr.write(f"{prog}: error: {_one_line(say(exc))}\n")

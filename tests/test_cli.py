@@ -369,7 +369,7 @@ def test_export_table_and_maps(built, tmp_path, call):
     rc, out, err = call("export", built[0], "-o", tmp_path / "t.csv")
     assert rc == 0 and Table.read(tmp_path / "t.csv", format="ascii.csv").colnames == want.colnames
     rc, out, err = call("export", built[0], "-o", tmp_path / "t.xlsx")
-    assert rc == 1 and "suffix" in one_line_error(err)
+    assert rc == 2 and "suffix" in one_line_error(err)
 
 
 def test_profile_writes_a_figure(built, tmp_path, call):
@@ -618,13 +618,13 @@ def test_export_refuses_one_file_for_table_and_maps(built, tmp_path, call):
 def test_build_refuses_a_table_name_for_the_model_before_building(files, tmp_path, call):
     # '-o model.ecsv' would have written a FITS file named as an ECSV table after the whole build
     rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "model.ecsv", *BUILD_OPTS)
-    assert rc == 1 and "model file is FITS" in one_line_error(err) and "Read " not in out
+    assert rc == 2 and "model file is FITS" in one_line_error(err) and "Read " not in out
     assert list(tmp_path.iterdir()) == []
 
 
 def test_export_refuses_a_table_name_for_the_maps_before_writing_anything(built, tmp_path, call):
     rc, _, err = call("export", built[0], "-o", tmp_path / "t.ecsv", "--maps", tmp_path / "maps.csv")
-    assert rc == 1 and "slice-map file is FITS" in one_line_error(err)
+    assert rc == 2 and "slice-map file is FITS" in one_line_error(err)
     assert list(tmp_path.iterdir()) == []
 
 
@@ -756,7 +756,7 @@ def test_fit_clusters_refuses_an_output_suffix_before_fitting(tmp_path, call, mo
     monkeypatch.setattr(dustkit.clusters, "fit_clusters", no_fit)
     Table({"cluster": ["Testfield A"], "V": [11.0]}).write(tmp_path / "m.csv", format="ascii.csv")
     rc, out, err = call("fit-clusters", tmp_path / "m.csv", "-o", tmp_path / "out.txt")
-    assert rc == 1 and "suffix '.txt'" in one_line_error(err)
+    assert rc == 2 and "suffix '.txt'" in one_line_error(err)
 
 
 @pytest.mark.parametrize("opt", ["--duplicate-separation", "--parallax-floor"])
@@ -836,3 +836,59 @@ def test_the_translation_keeps_what_the_command_has_no_option_for():
     assert say("The 'merge_sigma' parameter must be > 0.") == "The 'merge_sigma' parameter must be > 0."
     assert say("The 'model' parameter must be fitted.") == "The MODEL argument must be fitted."
     assert say("Hint: pass overwrite=True (on the command line: --overwrite).") == "Hint: add --overwrite."
+
+
+# Exit status (DEVELOPERS.md, "Command line"): 2 when what was typed is wrong, 1 when the job failed on the
+# files. An output name whose suffix names no format is typed, so 2 for every command that writes one; a
+# missing input file is not, so 1 for every command that reads one (common practice: argparse's 2 for usage).
+_OUTPUT_SUFFIX = {
+    "build": ["build", "{cat}", "-o", "{dir}/m.ecsv", "--distance-unit", "kpc"],
+    "estimate": ["estimate", "{model}", "{targets}", "-o", "{dir}/out.txt"],
+    "profile": ["profile", "{model}", "--l", "200", "--b", "1", "-o", "{dir}/out.txt"],
+    "features": ["features", "{model}", "-o", "{dir}/out.txt"],
+    "features_detections": ["features", "{model}", "-o", "{dir}/f.csv", "--finder", "steps",
+                            "--detections", "{dir}/out.txt"],
+    "export": ["export", "{model}", "-o", "{dir}/out.txt"],
+    "export_maps": ["export", "{model}", "-o", "{dir}/t.csv", "--maps", "{dir}/maps.csv"],
+    "fit_clusters": ["fit-clusters", "{cat}", "-o", "{dir}/out.txt"],
+}
+
+
+@pytest.mark.parametrize("case", list(_OUTPUT_SUFFIX))
+def test_an_output_name_without_a_format_is_a_usage_error_in_every_command(case, files, built, tmp_path, call):
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0], "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in _OUTPUT_SUFFIX[case]])
+    line = one_line_error(err)
+    option = "--maps" if case == "export_maps" else "--detections" if case.endswith("detections") else "-o"
+    assert rc == 2 and f"{option} " in line and "Hint:" in line, line
+    assert list(tmp_path.iterdir()) == []  # refused before anything was written
+
+
+_MISSING_INPUT = {
+    "build": ["build", "{dir}/none.csv", "-o", "{dir}/m.fits"],
+    "layer": ["layer", "{dir}/none.csv"],
+    "estimate": ["estimate", "{dir}/none.fits", "{targets}", "-o", "{dir}/out.csv"],
+    "profile": ["profile", "{dir}/none.fits", "--l", "200", "--b", "1", "-o", "{dir}/out.png"],
+    "features": ["features", "{dir}/none.fits", "-o", "{dir}/out.csv"],
+    "export": ["export", "{dir}/none.fits", "-o", "{dir}/out.csv"],
+    "fit_clusters": ["fit-clusters", "{dir}/none.csv", "-o", "{dir}/out.ecsv"],
+}
+
+
+@pytest.mark.parametrize("case", list(_MISSING_INPUT))
+def test_a_missing_input_file_is_a_failed_job_in_every_command(case, files, tmp_path, call):
+    fill = {"targets": files / "targets.csv", "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in _MISSING_INPUT[case]])
+    line = one_line_error(err)
+    assert rc == 1 and "none." in line, line
+
+
+@pytest.mark.parametrize("command", ["build", "layer", "fit-clusters", "bands"])
+def test_an_rv_outside_the_laws_range_is_a_usage_error(command, files, tmp_path, call):
+    # ccm89 holds for R_V 2..6 (Cardelli, Clayton & Mathis 1989, from memory); R_V 0 was already status 2
+    args = {"build": ["build", files / "cat.csv", "-o", tmp_path / "m.fits"], "layer": ["layer", files / "cat.csv"],
+            "fit-clusters": ["fit-clusters", files / "cat.csv", "-o", tmp_path / "c.ecsv"], "bands": ["bands"]}[command]
+    rc, out, err = call(*args, "--law", "ccm89", "--rv", "8")
+    line = one_line_error(err)
+    assert rc == 2 and "--rv 8" in line and "[2, 6]" in line, line
+    assert list(tmp_path.iterdir()) == []
