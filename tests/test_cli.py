@@ -892,3 +892,35 @@ def test_an_rv_outside_the_laws_range_is_a_usage_error(command, files, tmp_path,
     line = one_line_error(err)
     assert rc == 2 and "--rv 8" in line and "[2, 6]" in line, line
     assert list(tmp_path.iterdir()) == []
+
+
+# values no user can mean, each refused with the option, the value and the range allowed (status 2)
+_IMPOSSIBLE = {
+    "min_significance": (["features", "{binned}", "-o", "{dir}/f.csv", "--min-significance", "-5"],
+                         "--min-significance", "Got -5.0", ">= 0"),
+    "seed": (["features", "{binned}", "-o", "{dir}/f.csv", "--seed", "-1"], "--seed", "Got -1", ">= 0"),
+    "av": (["bands", "--av", "-1"], "--av", "Got -1.0", ">= 0"),
+    "zero_point_nan": (["layer", "{cat}", "--distance-unit", "kpc", "--parallax-zero-point", "nan"],
+                       "--parallax-zero-point", "Got nan", "[-10, 10]"),
+    "zero_point_huge": (["estimate", "{model}", "{targets}", "-o", "{dir}/x.csv", "--parallax-zero-point", "1e9"],
+                        "--parallax-zero-point", "Got 1000000000.0", "[-10, 10]"),
+    "source_temperature": (["layer", "{cat}", "--distance-unit", "kpc", "--source-temperature", "-5"],
+                           "--source-temperature", "Got -5.0", "between 2000 and 100000 K"),
+    "nside": (["build", "{cat}", "-o", "{dir}/m.fits", "--nside", "24"], "--nside", "Got 24", "power of two"),
+    "edges": (["build", "{cat}", "-o", "{dir}/m.fits", "--distance-edges=-100,0,100"], "--distance-edges",
+              "-100.0", "non-negative"),
+}
+
+
+@pytest.mark.parametrize("case", list(_IMPOSSIBLE))
+def test_impossible_option_values_are_refused_naming_option_value_and_range(case, files, built, tmp_path, call):
+    binned = files / "binned.fits"
+    if not binned.exists():
+        call("build", files / "cat.csv", "-o", binned, "--model", "binned", *BUILD_OPTS, check_rc=0)
+    args, option, value, allowed = _IMPOSSIBLE[case]
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0], "binned": binned,
+            "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in args])
+    line = one_line_error(err)
+    assert rc == 2 and f"The {option} option must be" in line and value in line and allowed in line, line
+    assert list(tmp_path.iterdir()) == []
