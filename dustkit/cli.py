@@ -153,8 +153,8 @@ def _add_catalogue_options(p):
     p.add_argument("--distance-unit", metavar="UNIT",
                    help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
     p.add_argument("--parallax-zero-point", type=float, default=None, metavar="MAS",
-                   help="zero point of a parallax column, mas, subtracted before the parallaxes are used "
-                        "(default 0; that of Gaia (E)DR3 is about -0.02)")
+                   help="zero point of a parallax column, mas (-10 to 10), subtracted before the parallaxes are "
+                        "used (default 0; that of Gaia (E)DR3 is about -0.02)")
     p.add_argument("--modulus-kind", choices=("true", "apparent"), default=None,
                    help="what a modulus column whose name does not say (dm, distmod, modulus) holds: the true "
                         "modulus mu0 or the apparent V modulus (m-M)_V; without it such a column is refused")
@@ -170,14 +170,17 @@ def _add_tracer_options(p):
     p.add_argument("--parallax-floor", type=float, default=None, metavar="MAS",
                    help="systematic error added in quadrature to parallax errors, mas (default 0.01)")
     p.add_argument("--source-temperature", type=float, default=None, metavar="K",
-                   help="blackbody temperature in K of the stars, for converting a colour excess other than "
+                   help="blackbody temperature in K (2000 to 100000) of the stars, for converting a colour excess other than "
                         "E(B-V) (E(BP-RP), E(J-Ks), ...) to A_V where the catalogue has no temperature (teff) or "
                         "intrinsic-colour ((BP-RP)_0) column or cell (default 5800; E(B-V) does not depend on it)")
 
 
+_RV_HELP = "R_V = A_V / E(B-V), a plain number inside the law's range (see 'dustkit laws'; default 3.1)"
+
+
 def _add_law_options(p):
     p.add_argument("--law", default="ccm89", help="extinction law for reddening -> A_V (default ccm89; see 'dustkit laws')")
-    p.add_argument("--rv", type=float, default=3.1, help="R_V (default 3.1)")
+    p.add_argument("--rv", type=float, default=3.1, help=_RV_HELP)
 
 
 def build_parser():
@@ -252,7 +255,8 @@ def build_parser():
                         "temperature in K or a column of TARGETS (default: a column teff, T_eff, logTeff, ... "
                         "if there is one, else a 5800 K blackbody)")
     p.add_argument("--samples", type=int, default=0, metavar="N",
-                   help="also write N posterior draws of A_V per target (3-D density models), each target's "
+                   help="also write N posterior draws of A_V per target (N up to 100000; 3-D density models), each "
+                        "target's "
                         "distance error drawn in: columns av_samples_1 .. av_samples_N in CSV, one (n, N) "
                         "column in ECSV and FITS")
     _add_catalogue_options(p)
@@ -269,8 +273,9 @@ def build_parser():
     p = sub("profile", "Plot cumulative A_V against distance along a sight line.")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
     p.add_argument("--l", type=float, required=True, metavar="DEG", help="Galactic longitude (deg)")
-    p.add_argument("--b", type=float, required=True, metavar="DEG", help="Galactic latitude (deg)")
-    p.add_argument("--radius", type=float, metavar="DEG", help="average over a cone of this radius (deg)")
+    p.add_argument("--b", type=float, required=True, metavar="DEG", help="Galactic latitude (deg, -90 to 90)")
+    p.add_argument("--radius", type=float, metavar="DEG",
+                   help="average over a cone of this radius (deg, above 0 and at most 90)")
     p.add_argument("-o", "--output", required=True, metavar="FIG.png", help="figure file (.png, .pdf, .svg)")
     p.add_argument("--overwrite", action="store_true", help="replace FIG if it exists")
 
@@ -286,18 +291,19 @@ def build_parser():
     # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST, MIN_DELTA_AV) apply when not given
     p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from a feature's tracers, of adding "
-                        "--min-delta-av (default 0.99)")
+                        "--min-delta-av, 0 to 1 (default 0.99)")
     p.add_argument("--min-model-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from the model's own samples, of adding "
-                        "--min-delta-av (default 0.75; 0 lists what the tracers alone support)")
+                        "--min-delta-av, 0 to 1 (default 0.75; 0 lists what the tracers alone support)")
     p.add_argument("--min-contrast", type=float, metavar="RATIO",
-                   help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
+                   help="density finder: least ratio of a cell's dust density to the smooth layer's, above 1 "
+                        "(default 1.3)")
     p.add_argument("--min-significance", type=float, metavar="BIC",
-                   help="steps finder: least BIC improvement of a step over no step (default 10)")
+                   help="steps finder: least BIC improvement of a step over no step, >= 0 (default 10)")
     p.add_argument("--radius", type=float, metavar="DEG",
                    help="steps finder: cone radius around each pixel centre (default: adaptive, the smallest cone holding 30 tracers, from one pixel to 6 deg)")
     p.add_argument("--detections", metavar="PIXELS.ecsv", help="steps finder: also write the per-pixel steps")
-    p.add_argument("--seed", type=int, metavar="SEED", help="steps finder: seed of the bootstrap resampling (default 0)")
+    p.add_argument("--seed", type=int, metavar="SEED", help="steps finder: seed of the bootstrap resampling, an integer >= 0 (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
@@ -334,14 +340,15 @@ to check: metallicity and age shift the sequence (0.1-0.3 mag in mu0).""", forma
     sub("laws", "List the extinction laws.")
     p = sub("bands", "List the photometric bands and their coefficients for a reference star.")
     p.add_argument("--law", default="ccm89", help="extinction law of the coefficients (default ccm89; see 'dustkit laws')")
-    p.add_argument("--rv", type=float, default=3.1, help="R_V (default 3.1)")
+    p.add_argument("--rv", type=float, default=3.1, help=_RV_HELP)
     p.add_argument("--temperature", type=float, default=5800.0, metavar="K",
-                   help="blackbody temperature of the reference star in K (default 5800)")
+                   help="blackbody temperature of the reference star in K, 2000 to 100000 (default 5800)")
     p.add_argument("--av", type=float, default=0.1, metavar="MAG",
-                   help="A_V of the reference star in mag (default 0.1)")
+                   help="A_V of the reference star in mag, >= 0 (default 0.1)")
 
     p = sub("demo", "Run the whole job on the invented demo field and show where everything went.")
-    p.add_argument("--out", default="dustkit_demo_output", metavar="DIR", help="output folder (default ./dustkit_demo_output)")
+    p.add_argument("-o", "--output", "--out", dest="out", default="dustkit_demo_output", metavar="DIR",
+                   help="output folder (default ./dustkit_demo_output); -o/--output as in the other commands")
     return parser
 
 
@@ -873,7 +880,7 @@ def _cmd_features(args, out):
         steps_only = [o for o, v in (("--radius", args.radius), ("--detections", args.detections),
                                      ("--min-significance", args.min_significance), ("--seed", args.seed)) if v is not None]
         if steps_only:
-            raise _UsageError(f"{', '.join(steps_only)} apply to --finder steps; the density finder searches the "
+            raise _UsageError(f"{', '.join(steps_only)} appl{'ies' if len(steps_only) == 1 else 'y'} to --finder steps; the density finder searches the "
                               "model's own cells (its options: --min-probability, --min-model-probability, "
                               "--min-contrast)")
         given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
@@ -908,7 +915,7 @@ def _cmd_features(args, out):
     density_only = [o for o, v in (("--min-probability", args.min_probability), ("--min-contrast", args.min_contrast),
                                    ("--min-model-probability", args.min_model_probability)) if v is not None]
     if density_only:
-        raise _UsageError(f"{', '.join(density_only)} apply to the density finder of a 3-D density model; the steps "
+        raise _UsageError(f"{', '.join(density_only)} appl{'ies' if len(density_only) == 1 else 'y'} to the density finder of a 3-D density model; the steps "
                           "finder's options are --min-significance, --radius, --seed"
                           + ("" if has_density else " (this model is binned: build with --model density)"))
     feats, det = detect_features(

@@ -713,7 +713,7 @@ def test_features_refuses_the_other_finders_options(built, files, tmp_path, call
          "--nside", "8", check_rc=0)
     for opt in (["--min-significance", "50"], ["--seed", "3"]):
         rc, out, err = call("features", path, "-o", tmp_path / "f.csv", *opt)
-        assert rc == 2 and f"{opt[0]} apply to --finder steps" in one_line_error(err)
+        assert rc == 2 and f"{opt[0]} applies to --finder steps" in one_line_error(err)
         assert not (tmp_path / "f.csv").exists()
     rc, out, err = call("features", path, "-o", tmp_path / "f.csv", "--finder", "steps", "--seed", "3",
                         "--min-significance", "50")
@@ -924,3 +924,12 @@ def test_impossible_option_values_are_refused_naming_option_value_and_range(case
     line = one_line_error(err)
     assert rc == 2 and f"The {option} option must be" in line and value in line and allowed in line, line
     assert list(tmp_path.iterdir()) == []
+
+
+def test_demo_takes_the_output_option_the_other_commands_spell():
+    # every command that writes names its output -o/--output; the demo's folder too (--out still works)
+    from dustkit.cli import build_parser
+
+    parser = build_parser()
+    for spelling in ("-o", "--output", "--out"):
+        assert parser.parse_args(["demo", spelling, "somewhere"]).out == "somewhere"
