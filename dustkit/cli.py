@@ -2,9 +2,13 @@
 
 A thin layer over the library: every command calls the same functions a Python user would
 (:func:`dustkit.tracers.read_tracers`, :class:`dustkit.model.ExtinctionModel`,
-:mod:`dustkit.io`, :mod:`dustkit.plotting`). Errors are reported as one line on stderr with
-exit status 2 (bad command line or option value) or 1 (the job failed); ``--debug`` shows
-the traceback. Progress bars appear only on a terminal and never with ``--quiet``.
+:mod:`dustkit.io`, :mod:`dustkit.plotting`). Errors are reported as one line on stderr, naming
+the option the user typed, with exit status 2 when the command line itself is wrong (unknown or
+missing option, a value outside its range, options that conflict, an output name whose suffix
+names no format written there) and 1 when the command line is right but the job failed (an input
+file missing, unreadable or with bad contents, an output that exists without --overwrite or whose
+folder is missing, a fit that failed); see DEVELOPERS.md. ``--debug`` shows the traceback.
+Progress bars appear only on a terminal and never with ``--quiet``.
 
 Run ``dustkit --help`` or ``dustkit COMMAND --help``.
 """
@@ -13,6 +17,7 @@ import argparse
 import gc
 import json
 import os
+import re
 import sys
 import traceback
 import warnings
@@ -148,8 +153,8 @@ def _add_catalogue_options(p):
     p.add_argument("--distance-unit", metavar="UNIT",
                    help="unit of the distance column (pc or kpc); overrides a unit in the file or in the column name")
     p.add_argument("--parallax-zero-point", type=float, default=None, metavar="MAS",
-                   help="zero point of a parallax column, mas, subtracted before the parallaxes are used "
-                        "(default 0; that of Gaia (E)DR3 is about -0.02)")
+                   help="zero point of a parallax column, mas (-10 to 10), subtracted before the parallaxes are "
+                        "used (default 0; that of Gaia (E)DR3 is about -0.02)")
     p.add_argument("--modulus-kind", choices=("true", "apparent"), default=None,
                    help="what a modulus column whose name does not say (dm, distmod, modulus) holds: the true "
                         "modulus mu0 or the apparent V modulus (m-M)_V; without it such a column is refused")
@@ -165,14 +170,17 @@ def _add_tracer_options(p):
     p.add_argument("--parallax-floor", type=float, default=None, metavar="MAS",
                    help="systematic error added in quadrature to parallax errors, mas (default 0.01)")
     p.add_argument("--source-temperature", type=float, default=None, metavar="K",
-                   help="blackbody temperature in K of the stars, for converting a colour excess other than "
+                   help="blackbody temperature in K (2000 to 100000) of the stars, for converting a colour excess other than "
                         "E(B-V) (E(BP-RP), E(J-Ks), ...) to A_V where the catalogue has no temperature (teff) or "
                         "intrinsic-colour ((BP-RP)_0) column or cell (default 5800; E(B-V) does not depend on it)")
 
 
+_RV_HELP = "R_V = A_V / E(B-V), a plain number inside the law's range (see 'dustkit laws'; default 3.1)"
+
+
 def _add_law_options(p):
     p.add_argument("--law", default="ccm89", help="extinction law for reddening -> A_V (default ccm89; see 'dustkit laws')")
-    p.add_argument("--rv", type=float, default=3.1, help="R_V (default 3.1)")
+    p.add_argument("--rv", type=float, default=3.1, help=_RV_HELP)
 
 
 def build_parser():
@@ -247,7 +255,8 @@ def build_parser():
                         "temperature in K or a column of TARGETS (default: a column teff, T_eff, logTeff, ... "
                         "if there is one, else a 5800 K blackbody)")
     p.add_argument("--samples", type=int, default=0, metavar="N",
-                   help="also write N posterior draws of A_V per target (3-D density models), each target's "
+                   help="also write N posterior draws of A_V per target (N up to 100000; 3-D density models), each "
+                        "target's "
                         "distance error drawn in: columns av_samples_1 .. av_samples_N in CSV, one (n, N) "
                         "column in ECSV and FITS")
     _add_catalogue_options(p)
@@ -264,8 +273,9 @@ def build_parser():
     p = sub("profile", "Plot cumulative A_V against distance along a sight line.")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
     p.add_argument("--l", type=float, required=True, metavar="DEG", help="Galactic longitude (deg)")
-    p.add_argument("--b", type=float, required=True, metavar="DEG", help="Galactic latitude (deg)")
-    p.add_argument("--radius", type=float, metavar="DEG", help="average over a cone of this radius (deg)")
+    p.add_argument("--b", type=float, required=True, metavar="DEG", help="Galactic latitude (deg, -90 to 90)")
+    p.add_argument("--radius", type=float, metavar="DEG",
+                   help="average over a cone of this radius (deg, above 0 and at most 90)")
     p.add_argument("-o", "--output", required=True, metavar="FIG.png", help="figure file (.png, .pdf, .svg)")
     p.add_argument("--overwrite", action="store_true", help="replace FIG if it exists")
 
@@ -281,18 +291,19 @@ def build_parser():
     # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST, MIN_DELTA_AV) apply when not given
     p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from a feature's tracers, of adding "
-                        "--min-delta-av (default 0.99)")
+                        "--min-delta-av, 0 to 1 (default 0.99)")
     p.add_argument("--min-model-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from the model's own samples, of adding "
-                        "--min-delta-av (default 0.75; 0 lists what the tracers alone support)")
+                        "--min-delta-av, 0 to 1 (default 0.75; 0 lists what the tracers alone support)")
     p.add_argument("--min-contrast", type=float, metavar="RATIO",
-                   help="density finder: least ratio of a cell's dust density to the smooth layer's (default 1.3)")
+                   help="density finder: least ratio of a cell's dust density to the smooth layer's, above 1 "
+                        "(default 1.3)")
     p.add_argument("--min-significance", type=float, metavar="BIC",
-                   help="steps finder: least BIC improvement of a step over no step (default 10)")
+                   help="steps finder: least BIC improvement of a step over no step, >= 0 (default 10)")
     p.add_argument("--radius", type=float, metavar="DEG",
                    help="steps finder: cone radius around each pixel centre (default: adaptive, the smallest cone holding 30 tracers, from one pixel to 6 deg)")
     p.add_argument("--detections", metavar="PIXELS.ecsv", help="steps finder: also write the per-pixel steps")
-    p.add_argument("--seed", type=int, metavar="SEED", help="steps finder: seed of the bootstrap resampling (default 0)")
+    p.add_argument("--seed", type=int, metavar="SEED", help="steps finder: seed of the bootstrap resampling, an integer >= 0 (default 0)")
     p.add_argument("--overwrite", action="store_true", help="replace existing output files")
 
     p = sub("export", "Export a model's binned extinction table (and optionally HEALPix slice maps).")
@@ -329,35 +340,38 @@ to check: metallicity and age shift the sequence (0.1-0.3 mag in mu0).""", forma
     sub("laws", "List the extinction laws.")
     p = sub("bands", "List the photometric bands and their coefficients for a reference star.")
     p.add_argument("--law", default="ccm89", help="extinction law of the coefficients (default ccm89; see 'dustkit laws')")
-    p.add_argument("--rv", type=float, default=3.1, help="R_V (default 3.1)")
+    p.add_argument("--rv", type=float, default=3.1, help=_RV_HELP)
     p.add_argument("--temperature", type=float, default=5800.0, metavar="K",
-                   help="blackbody temperature of the reference star in K (default 5800)")
+                   help="blackbody temperature of the reference star in K, 2000 to 100000 (default 5800)")
     p.add_argument("--av", type=float, default=0.1, metavar="MAG",
-                   help="A_V of the reference star in mag (default 0.1)")
+                   help="A_V of the reference star in mag, >= 0 (default 0.1)")
 
     p = sub("demo", "Run the whole job on the invented demo field and show where everything went.")
-    p.add_argument("--out", default="dustkit_demo_output", metavar="DIR", help="output folder (default ./dustkit_demo_output)")
+    p.add_argument("-o", "--output", "--out", dest="out", default="dustkit_demo_output", metavar="DIR",
+                   help="output folder (default ./dustkit_demo_output); -o/--output as in the other commands")
     return parser
 
 
 # ============================================================================ helpers
 
 class _Out:
-    """Printing that respects --quiet."""
+    """Printing that respects --quiet; ``say`` puts the library's parameter names into the command's
+    options (a read's summary says 'Pass distance_unit=...': the command prints '--distance-unit')."""
 
-    def __init__(self, quiet, notes=True):
+    def __init__(self, quiet, notes=True, say=str):
         self.quiet = quiet
         self.notes = notes
+        self.say = say
 
     def note(self, text):
         """A note about the data (rows left out, ...): on stderr, even with --quiet."""
         if self.notes:
-            sys.stderr.write(f"note: {_one_line(text)}\n")
+            sys.stderr.write(f"note: {_one_line(self.say(text))}\n")
 
     def __call__(self, *lines):
         if not self.quiet:
             for line in lines:
-                print(line)
+                print(self.say(line))
         sys.stdout.flush()
 
 
@@ -380,11 +394,38 @@ def _columns(pairs):
 
 
 def _check_law(args):
+    """--law and --rv: a known law, and an R_V inside that law's range (a usage error, status 2)."""
     from ._lib.validation import check_real
+    from .exceptions import LawRangeError
     from .laws import get_law
 
-    get_law(args.law)
+    law = get_law(args.law)
     check_real("rv", args.rv, 0, 20, low_inclusive=False)
+    try:
+        law.check_rv(args.rv)
+    except LawRangeError as exc:
+        raise _UsageError(f"--rv {args.rv:g} does not suit --law {law.name}: {exc}") from None
+
+
+def _check_output(path, kind, overwrite, option="-o"):
+    """An output file name given on the command line: its suffix names a format of ``kind`` ('table',
+    'figure', or 'fits' for model and slice-map files) -- else a usage error naming ``option`` (status 2) --,
+    its folder exists and it may be written (else the job fails, status 1)."""
+    from ._lib.formats import check_target, format_for, suffixes
+    from .exceptions import FileFormatError
+    from .io import check_fits_path
+
+    try:
+        if kind == "fits":
+            return check_fits_path(path, overwrite, what="slice-map file" if option == "--maps" else "model file")
+        format_for(path, kind)
+    except FileFormatError as exc:
+        if kind == "fits":
+            raise _UsageError(f"{option} {path}: {exc}") from None
+        got = "".join(Path(os.fspath(path)).suffixes[-1:]).lower() or "none"
+        raise _UsageError(f"{option} {path}: no {kind} format has the suffix {got!r}. "
+                          f"Hint: end the name in one of {', '.join(suffixes(kind))}") from None
+    return check_target(path, overwrite)
 
 
 def _grid_defaults():
@@ -570,13 +611,13 @@ def _sky_figure(model, distance_pc):
 # ============================================================================ commands
 
 def _cmd_build(args, out):
-    from .io import check_fits_path, save_model
+    from .io import save_model
     from .model import CAUTION
 
     kw = _grid_options(args)
     _check_law(args)
     columns = _columns(args.column)
-    check_fits_path(args.output, args.overwrite)  # fail before a long build, not after
+    _check_output(args.output, "fits", args.overwrite)  # fail before a long build, not after
     if getattr(args, "layer_from", None):
         kw["layer"] = _given_layer_file(args.layer_from)
     from .scale import build_path
@@ -678,7 +719,6 @@ def _cmd_estimate(args, out):
     import numpy as np
     from astropy import units as u
 
-    from ._lib.formats import check_target, format_for
     from .answers import CAUTION, UNITLESS_COLUMNS, estimate_columns, estimate_targets
     from .bands import get_band
     from .exceptions import RowsRejectedWarning
@@ -689,8 +729,7 @@ def _cmd_estimate(args, out):
     for band in bands:
         get_band(band)
     columns = _columns(args.column)
-    format_for(args.output, "table")
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "table", args.overwrite)
     model = load_model(args.model)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RowsRejectedWarning)  # reported below, with the rows
@@ -771,14 +810,13 @@ def _cmd_profile(args, out):
     import numpy as np
 
     from ._lib.validation import check_real
-    from ._lib.formats import check_target
     from .io import load_model
 
     check_real("b", args.b, -90, 90)
     check_real("l", args.l, -360, 720)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "figure", args.overwrite)  # before the model is read and the figure drawn
     model = load_model(args.model)
     fig = _profile_figure(model, args.l, args.b, args.radius)
     path = _save_figure(fig, args.output, args.overwrite)
@@ -804,13 +842,11 @@ def _refuse_same_file(output, other, option, loss, example):
 
 
 def _cmd_export(args, out):
-    from ._lib.formats import check_target, format_for
-    from .io import check_fits_path, export_table, load_model, write_slice_maps
+    from .io import export_table, load_model, write_slice_maps
 
-    format_for(args.output, "table")
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "table", args.overwrite)
     if args.maps:
-        check_fits_path(args.maps, args.overwrite, what="slice-map file")
+        _check_output(args.maps, "fits", args.overwrite, option="--maps")
         _refuse_same_file(args.output, args.maps, "--maps", "the maps would replace the table", "slices.fits")
     model = load_model(args.model)
     path = export_table(model, args.output, overwrite=args.overwrite)
@@ -828,7 +864,6 @@ def _cmd_features(args, out):
 
     from ._lib.validation import check_real
     from .features import KIND_NEARER, density_features, detect_features
-    from ._lib.formats import check_target, format_for
     from .io import load_model, write_table
 
     # each finder keeps its own default least step unless one is given
@@ -837,10 +872,9 @@ def _cmd_features(args, out):
         check_real("min_delta_av", args.min_delta_av, 0, 100)
     if args.radius is not None:
         check_real("radius", args.radius, 0, 90, low_inclusive=False)
-    for path in (args.output, args.detections):
+    for path, option in ((args.output, "-o"), (args.detections, "--detections")):
         if path:
-            format_for(path, "table")
-            check_target(path, args.overwrite)
+            _check_output(path, "table", args.overwrite, option)
     if args.detections:
         _refuse_same_file(args.output, args.detections, "--detections",
                           "the per-pixel steps would replace the feature table", "pixels.ecsv")
@@ -854,7 +888,7 @@ def _cmd_features(args, out):
         steps_only = [o for o, v in (("--radius", args.radius), ("--detections", args.detections),
                                      ("--min-significance", args.min_significance), ("--seed", args.seed)) if v is not None]
         if steps_only:
-            raise _UsageError(f"{', '.join(steps_only)} apply to --finder steps; the density finder searches the "
+            raise _UsageError(f"{', '.join(steps_only)} appl{'ies' if len(steps_only) == 1 else 'y'} to --finder steps; the density finder searches the "
                               "model's own cells (its options: --min-probability, --min-model-probability, "
                               "--min-contrast)")
         given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
@@ -889,7 +923,7 @@ def _cmd_features(args, out):
     density_only = [o for o, v in (("--min-probability", args.min_probability), ("--min-contrast", args.min_contrast),
                                    ("--min-model-probability", args.min_model_probability)) if v is not None]
     if density_only:
-        raise _UsageError(f"{', '.join(density_only)} apply to the density finder of a 3-D density model; the steps "
+        raise _UsageError(f"{', '.join(density_only)} appl{'ies' if len(density_only) == 1 else 'y'} to the density finder of a 3-D density model; the steps "
                           "finder's options are --min-significance, --radius, --seed"
                           + ("" if has_density else " (this model is binned: build with --model density)"))
     feats, det = detect_features(
@@ -920,14 +954,12 @@ def _cmd_fit_clusters(args, out):
     """dustkit fit-clusters: member photometry -> one tracer row per cluster."""
     from .clusters import CAUTION as CLUSTER_CAUTION
     from .clusters import fit_clusters
-    from ._lib.formats import check_target, format_for
     from .exceptions import CatalogError
     from .io import write_table
     from .tracers import SUFFIX_FORMATS
 
     _check_law(args)
-    format_for(args.output, "table")  # before the fits, not after them
-    check_target(args.output, args.overwrite)
+    _check_output(args.output, "table", args.overwrite)  # before the fits, not after them
     path = Path(args.members).expanduser()
     if not path.is_file():
         raise FileNotFoundError(f"No members table at '{path}'. Hint: check the path.")
@@ -980,6 +1012,7 @@ def _cmd_bands(args, out):
 
     from .bands import band_table
 
+    _check_law(args)
     t = band_table(args.law, args.rv, temperature=args.temperature * u.K, av=args.av)
     shown = Table()
     shown["band"] = t["name"]
@@ -1154,17 +1187,97 @@ def _cmd_demo(args, out):
     return 0
 
 
+# ============================================================================ library words -> command words
+
+#: Library parameters whose option has another name (the rest are spelled alike: nside -> --nside).
+_PARAMETER_OPTIONS = {"random_state": "seed", "parallax_err_floor": "parallax_floor",
+                      "distance_modulus_kind": "modulus_kind", "columns": "column", "bands": "band"}
+#: Python calls named in library hints, and what a command-line user does instead.
+_PYTHON_HINTS = {"list_laws()": "'dustkit laws'",
+                 "add_band(name, wavelength) registers a new band": "from Python, dustkit.bands.add_band(name, "
+                                                                    "wavelength) registers a new band"}
+
+
+def _option_names(parser, command):
+    """Library parameter name -> what a user of ``command`` types: '--seed', '-o/--output', 'MODEL'.
+
+    Read from the command's own parser (its dests and option strings), so an option added to
+    the parser is named in messages without a second list."""
+    subs = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    names = {}
+    for action in subs.choices[command]._actions:
+        if action.dest in ("help", "quiet", "debug"):
+            continue
+        if action.option_strings:
+            names[action.dest] = "/".join(action.option_strings)
+        else:
+            names[action.dest] = action.metavar or action.dest.upper()
+    names.update({lib: names[dest] for lib, dest in _PARAMETER_OPTIONS.items() if dest in names and lib not in names})
+    return names
+
+
+def _translator(names):
+    """A function turning a library message into the command's words: "The 'random_state' parameter
+    must be ..." -> "The --seed option must be ...", "pass distance_unit='kpc'" -> "add --distance-unit
+    kpc", "columns={'ebv': 'X'}" -> "--column ebv=X". Names the command has no option for stay as they are."""
+
+    def word(name):
+        return names.get(name)
+
+    def the_parameter(m):
+        shown = word(m.group(2))
+        if shown is None:
+            return m.group(0)
+        kind = "option" if shown.startswith("-") else "argument"
+        return f"{m.group(1)} {shown} {kind}"
+
+    def keyword(m):  # pass name=value -> add --option value
+        shown = word(m.group(2))
+        if shown is None or not shown.startswith("-"):
+            return m.group(0)
+        value = m.group(3).strip("'\"")
+        value = "" if value in ("True", "...", "") else f" {value}"
+        return f"{'Add' if m.group(1)[0].isupper() else 'add'} {shown.split('/')[-1]}{value}"
+
+    def columns(m):
+        shown = word("columns")
+        if shown is None:
+            return m.group(0)
+        pairs = re.findall(r"'(\w+)':\s*'?([^',}]*)'?", m.group(1))
+        return " ".join(f"--column {k}={v}" for k, v in pairs) if pairs else "--column KEY=NAME"
+
+    def translate(text):
+        text = str(text)
+        if not names:
+            return text
+        # a library hint that says its command-line form already: keep only that form
+        text = re.sub(r"\b\w+=[^()]*? \((?:on the )?command line:? (--[^)]*)\)", r"\1", text)
+        text = re.sub(r"\b[\w.]+(?:\(\))? \((?:on the )?command line:? (dustkit [^)]*)\)", r"\1", text)
+        text = re.sub(r"\(\w+=, command line (--[\w-]+)\)", r"(\1)", text)
+        text = re.sub(r"\(\w+=\.\.\., (dustkit [^)]*)\)", r"(\1)", text)
+        for python, command in _PYTHON_HINTS.items():
+            text = text.replace(python, command)
+        text = re.sub(r"(\d[\d.]*) \* u\.\w+", r"\1", text)  # '4500 * u.K' -> '4500': the option has its unit
+        text = re.sub(r"\b(The|the) '(\w+)' parameter", the_parameter, text)
+        text = re.sub(r"\bcolumns=(\{[^}]*\})", columns, text)
+        text = re.sub(r"\b(pass|Pass) (\w+)=('[^']*'|\S*?)(?=[\s,;)]|\.\s|\.$|$)", keyword, text)
+        return re.sub(r"\b(pass|Pass) (--)", lambda m: f"{'Add' if m.group(1) == 'Pass' else 'add'} --", text)
+
+    return translate
+
+
 # ============================================================================ entry point
 
-def _show_warning_factory(debug):
+def _show_warning_factory(debug, say=str):
     """Warnings as one line on stderr: dustkit's always (--quiet silences progress and chatter, not
-    warnings: an assumed unit or default error is something the user must hear), others with --debug."""
+    warnings: an assumed unit or default error is something the user must hear), others with --debug;
+    ``say`` puts dustkit's parameter names into the command's option names."""
     from .exceptions import DustkitWarning
 
     def show(message, category, filename, lineno, file=None, line=None):
         if not issubclass(category, DustkitWarning) and not debug:
             return
-        sys.stderr.write(f"warning: {_one_line(message)}\n")
+        sys.stderr.write(f"warning: {_one_line(say(message))}\n")
 
     return show
 
@@ -1183,13 +1296,14 @@ def main(argv=None):
     debug = bool(getattr(args, "debug", False))
     args.quiet, args.debug = quiet, debug
     prog = f"{_PROG} {args.command}"
+    say = _translator(_option_names(parser, args.command))
     if argv is None:  # run as the program (not from Python): see _frozen_exit
         gc.freeze()
         try:
-            return _run(args, prog, quiet, debug)
+            return _run(args, prog, quiet, debug, say)
         finally:
             _frozen_exit()
-    return _run(args, prog, quiet, debug)
+    return _run(args, prog, quiet, debug, say)
 
 
 def _frozen_exit():
@@ -1211,31 +1325,32 @@ def _stdout_to_devnull():
         pass
 
 
-def _run(args, prog, quiet, debug):
-    """The command of parsed ``args``, its errors turned into messages and an exit status."""
+def _run(args, prog, quiet, debug, say=str):
+    """The command of parsed ``args``, its errors turned into messages and an exit status; ``say`` puts
+    the library's parameter names into the command's options (the user can change only those)."""
     from .exceptions import DustkitError, FileFormatError, ParameterError
 
     old_show = warnings.showwarning
-    warnings.showwarning = _show_warning_factory(debug)
+    warnings.showwarning = _show_warning_factory(debug, say)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
-            warnings.showwarning = _show_warning_factory(debug)
-            status = int(args.func(args, _Out(quiet)) or 0)
+            warnings.showwarning = _show_warning_factory(debug, say)
+            status = int(args.func(args, _Out(quiet, say=say)) or 0)
             sys.stdout.flush()  # a closed pipe fails here, inside the handlers below
             return status
     except BrokenPipeError:  # the reader of stdout stopped (dustkit laws | head -3): stop quietly
         _stdout_to_devnull()
         return 141  # 128 + SIGPIPE, as a shell reports a command the closed pipe stopped (common practice)
-    except FileFormatError as exc:  # a file dustkit cannot write or read there: failed, not usage
+    except FileFormatError as exc:  # an input file of a format not read there (outputs: _check_output, status 2)
         if debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        sys.stderr.write(f"{prog}: error: {_one_line(say(exc))}\n")
         return 1
     except (_UsageError, ParameterError) as exc:
         if debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_with_help_hint(exc, prog)}\n")
+        sys.stderr.write(f"{prog}: error: {_with_help_hint(say(exc), prog)}\n")
         return 2
     except KeyboardInterrupt:
         sys.stderr.write(f"{prog}: interrupted\n")
@@ -1243,7 +1358,7 @@ def _run(args, prog, quiet, debug):
     except (DustkitError, OSError) as exc:
         if debug:
             traceback.print_exc()
-        sys.stderr.write(f"{prog}: error: {_one_line(exc)}\n")
+        sys.stderr.write(f"{prog}: error: {_one_line(say(exc))}\n")
         return 1
     except Exception as exc:  # a bug or an unexpected library failure: still one line
         if debug:

@@ -890,3 +890,10 @@ def test_a_colour_given_red_band_first_is_refused_not_turned_into_negative_av():
         excess_to_av(0.5, 0.05, "RP", "BP")
     av, _ = excess_to_av(0.5, 0.05, "BP", "RP")
     assert av > 0
+
+
+@pytest.mark.parametrize("av", [-1.0, -0.01 * u.mag, np.nan])
+def test_band_table_refuses_a_reference_star_with_negative_extinction(av):
+    # a star behind dust has A_V >= 0: a negative A_V gave a table of coefficients for no possible star
+    with pytest.raises(ParameterError, match="The 'av' parameter must be a single A_V >= 0 mag"):
+        band_table("ccm89", 3.1, temperature=5800 * u.K, av=av)

@@ -369,7 +369,7 @@ def test_export_table_and_maps(built, tmp_path, call):
     rc, out, err = call("export", built[0], "-o", tmp_path / "t.csv")
     assert rc == 0 and Table.read(tmp_path / "t.csv", format="ascii.csv").colnames == want.colnames
     rc, out, err = call("export", built[0], "-o", tmp_path / "t.xlsx")
-    assert rc == 1 and "suffix" in one_line_error(err)
+    assert rc == 2 and "suffix" in one_line_error(err)
 
 
 def test_profile_writes_a_figure(built, tmp_path, call):
@@ -400,7 +400,7 @@ def test_python_m_dustkit_and_version():
 _BAD = {
     # the three the issue names, each in a new process: bad NSIDE, missing column, unreadable file
     "bad_nside": (["build", "{cat}", "-o", "m.fits", "--nside", "12"], 2,
-                  "The 'nside' parameter must be a power of two between 1 and 1024. Got 12 instead."),
+                  "The --nside option must be a power of two between 1 and 1024. Got 12 instead."),
     "missing_column": (["build", "{cat}", "-o", "m.fits", "--column", "ebv=no_such_column"], 1, "no_such_column"),
     "unreadable_file": (["build", "{garbage}", "-o", "m.fits"], 1, "Could not read catalogue file"),
     # more, in this process
@@ -410,10 +410,10 @@ _BAD = {
     "edges_and_max": (["build", "{cat}", "-o", "m.fits", "--distance-edges", "0,100", "--distance-max", "500"], 2,
                       "not both"),
     "bad_edges": (["build", "{cat}", "-o", "m.fits", "--distance-edges", "0,1k"], 2, "--distance-edges takes"),
-    "bad_law": (["build", "{cat}", "-o", "m.fits", "--law", "nope"], 2, "The 'law' parameter must be one of"),
+    "bad_law": (["build", "{cat}", "-o", "m.fits", "--law", "nope"], 2, "The --law option must be one of"),
     "csv_as_model": (["estimate", "{cat}", "{targets}", "-o", "x.csv"], 1, "not a readable dustkit model file"),
-    "bad_band": (["estimate", "{model}", "{targets}", "-o", "x.csv", "--band", "Q9"], 2, "The 'band' parameter"),
-    "bad_latitude": (["profile", "{model}", "--l", "10", "--b", "95", "-o", "p.png"], 2, "The 'b' parameter"),
+    "bad_band": (["estimate", "{model}", "{targets}", "-o", "x.csv", "--band", "Q9"], 2, "The --band option"),
+    "bad_latitude": (["profile", "{model}", "--l", "10", "--b", "95", "-o", "p.png"], 2, "The --b option"),
     "no_command": (["nosuchcommand"], 2, "invalid choice"),
 }
 _IN_NEW_PROCESS = ("bad_nside", "missing_column", "unreadable_file")
@@ -618,13 +618,13 @@ def test_export_refuses_one_file_for_table_and_maps(built, tmp_path, call):
 def test_build_refuses_a_table_name_for_the_model_before_building(files, tmp_path, call):
     # '-o model.ecsv' would have written a FITS file named as an ECSV table after the whole build
     rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "model.ecsv", *BUILD_OPTS)
-    assert rc == 1 and "model file is FITS" in one_line_error(err) and "Read " not in out
+    assert rc == 2 and "model file is FITS" in one_line_error(err) and "Read " not in out
     assert list(tmp_path.iterdir()) == []
 
 
 def test_export_refuses_a_table_name_for_the_maps_before_writing_anything(built, tmp_path, call):
     rc, _, err = call("export", built[0], "-o", tmp_path / "t.ecsv", "--maps", tmp_path / "maps.csv")
-    assert rc == 1 and "slice-map file is FITS" in one_line_error(err)
+    assert rc == 2 and "slice-map file is FITS" in one_line_error(err)
     assert list(tmp_path.iterdir()) == []
 
 
@@ -713,7 +713,7 @@ def test_features_refuses_the_other_finders_options(built, files, tmp_path, call
          "--nside", "8", check_rc=0)
     for opt in (["--min-significance", "50"], ["--seed", "3"]):
         rc, out, err = call("features", path, "-o", tmp_path / "f.csv", *opt)
-        assert rc == 2 and f"{opt[0]} apply to --finder steps" in one_line_error(err)
+        assert rc == 2 and f"{opt[0]} applies to --finder steps" in one_line_error(err)
         assert not (tmp_path / "f.csv").exists()
     rc, out, err = call("features", path, "-o", tmp_path / "f.csv", "--finder", "steps", "--seed", "3",
                         "--min-significance", "50")
@@ -756,7 +756,7 @@ def test_fit_clusters_refuses_an_output_suffix_before_fitting(tmp_path, call, mo
     monkeypatch.setattr(dustkit.clusters, "fit_clusters", no_fit)
     Table({"cluster": ["Testfield A"], "V": [11.0]}).write(tmp_path / "m.csv", format="ascii.csv")
     rc, out, err = call("fit-clusters", tmp_path / "m.csv", "-o", tmp_path / "out.txt")
-    assert rc == 1 and "suffix '.txt'" in one_line_error(err)
+    assert rc == 2 and "suffix '.txt'" in one_line_error(err)
 
 
 @pytest.mark.parametrize("opt", ["--duplicate-separation", "--parallax-floor"])
@@ -785,3 +785,151 @@ def test_readme_command_line_section_lists_every_command_as_it_parses():
             shown.add(args.command)
     subparsers = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
     assert shown == set(subparsers.choices)
+
+
+# an error from the library names the option the user typed, not the Python parameter behind it
+_NAMED = {
+    "parallax_floor": (["layer", "{cat}", "--distance-unit", "kpc", "--parallax-floor", "-1"],
+                       "The --parallax-floor option must be", "parallax_err_floor"),
+    "duplicate_separation": (["layer", "{cat}", "--distance-unit", "kpc", "--duplicate-separation", "-1"],
+                             "The --duplicate-separation option must be", "duplicate_separation"),
+    "bands_temperature": (["bands", "--temperature", "0"], "The --temperature option must be", "'temperature'"),
+    "distance_max": (["build", "{cat}", "-o", "{dir}/m.fits", "--distance-max", "-5"],
+                     "The --distance-max option must be", "distance_max"),
+    "samples": (["estimate", "{model}", "{targets}", "-o", "{dir}/x.csv", "--samples", "-3"],
+                "The --samples option must be", "'samples'"),
+    "law": (["layer", "{cat}", "--law", "nope"], "'dustkit laws' shows", "list_laws()"),
+}
+
+
+@pytest.mark.parametrize("case", list(_NAMED))
+def test_errors_name_the_option_not_the_python_parameter(case, files, built, tmp_path, call):
+    args, expect, python_name = _NAMED[case]
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0], "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in args])
+    line = one_line_error(err)
+    assert rc == 2 and expect in line and python_name not in line, line
+
+
+def test_warnings_and_hints_name_the_options(files, tmp_path, call):
+    # the catalogue's distances are unit-less kpc: the error tells a shell user the option, not the keyword
+    rc, out, err = call("layer", files / "cat.csv")
+    assert rc == 1 and "add --distance-unit kpc" in one_line_error(err) and "distance_unit=" not in err
+    # in pc, unit-less: read as pc, and the read's summary saying so names the option too
+    cat = Table.read(files / "cat.csv", format="ascii.csv")
+    cat["dist"] *= 1000.0
+    cat["e_dist"] *= 1000.0
+    cat.write(tmp_path / "pc.csv", format="ascii.csv")
+    rc, out, err = call("layer", tmp_path / "pc.csv")
+    assert rc == 0 and "Add --distance-unit kpc" in out + err and "distance_unit=" not in out + err
+    rc, out, err = call("layer", files / "cat.csv", "--column", "distance=nope")
+    assert rc == 1 and "--column" in one_line_error(err) and "columns=" not in err
+    rc, out, err = call("build", files / "cat.csv", "-o", files / "cat.csv", "--distance-unit", "kpc")
+    assert rc != 0 and "overwrite=True" not in err
+
+
+def test_the_translation_keeps_what_the_command_has_no_option_for():
+    from dustkit.cli import _option_names, _translator, build_parser
+
+    say = _translator(_option_names(build_parser(), "features"))
+    assert say("The 'random_state' parameter must be an integer >= 0.") == "The --seed option must be an integer >= 0."
+    assert say("The 'merge_sigma' parameter must be > 0.") == "The 'merge_sigma' parameter must be > 0."
+    assert say("The 'model' parameter must be fitted.") == "The MODEL argument must be fitted."
+    assert say("Hint: pass overwrite=True (on the command line: --overwrite).") == "Hint: add --overwrite."
+
+
+# Exit status (DEVELOPERS.md, "Command line"): 2 when what was typed is wrong, 1 when the job failed on the
+# files. An output name whose suffix names no format is typed, so 2 for every command that writes one; a
+# missing input file is not, so 1 for every command that reads one (common practice: argparse's 2 for usage).
+_OUTPUT_SUFFIX = {
+    "build": ["build", "{cat}", "-o", "{dir}/m.ecsv", "--distance-unit", "kpc"],
+    "estimate": ["estimate", "{model}", "{targets}", "-o", "{dir}/out.txt"],
+    "profile": ["profile", "{model}", "--l", "200", "--b", "1", "-o", "{dir}/out.txt"],
+    "features": ["features", "{model}", "-o", "{dir}/out.txt"],
+    "features_detections": ["features", "{model}", "-o", "{dir}/f.csv", "--finder", "steps",
+                            "--detections", "{dir}/out.txt"],
+    "export": ["export", "{model}", "-o", "{dir}/out.txt"],
+    "export_maps": ["export", "{model}", "-o", "{dir}/t.csv", "--maps", "{dir}/maps.csv"],
+    "fit_clusters": ["fit-clusters", "{cat}", "-o", "{dir}/out.txt"],
+}
+
+
+@pytest.mark.parametrize("case", list(_OUTPUT_SUFFIX))
+def test_an_output_name_without_a_format_is_a_usage_error_in_every_command(case, files, built, tmp_path, call):
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0], "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in _OUTPUT_SUFFIX[case]])
+    line = one_line_error(err)
+    option = "--maps" if case == "export_maps" else "--detections" if case.endswith("detections") else "-o"
+    assert rc == 2 and f"{option} " in line and "Hint:" in line, line
+    assert list(tmp_path.iterdir()) == []  # refused before anything was written
+
+
+_MISSING_INPUT = {
+    "build": ["build", "{dir}/none.csv", "-o", "{dir}/m.fits"],
+    "layer": ["layer", "{dir}/none.csv"],
+    "estimate": ["estimate", "{dir}/none.fits", "{targets}", "-o", "{dir}/out.csv"],
+    "profile": ["profile", "{dir}/none.fits", "--l", "200", "--b", "1", "-o", "{dir}/out.png"],
+    "features": ["features", "{dir}/none.fits", "-o", "{dir}/out.csv"],
+    "export": ["export", "{dir}/none.fits", "-o", "{dir}/out.csv"],
+    "fit_clusters": ["fit-clusters", "{dir}/none.csv", "-o", "{dir}/out.ecsv"],
+}
+
+
+@pytest.mark.parametrize("case", list(_MISSING_INPUT))
+def test_a_missing_input_file_is_a_failed_job_in_every_command(case, files, tmp_path, call):
+    fill = {"targets": files / "targets.csv", "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in _MISSING_INPUT[case]])
+    line = one_line_error(err)
+    assert rc == 1 and "none." in line, line
+
+
+@pytest.mark.parametrize("command", ["build", "layer", "fit-clusters", "bands"])
+def test_an_rv_outside_the_laws_range_is_a_usage_error(command, files, tmp_path, call):
+    # ccm89 holds for R_V 2..6 (Cardelli, Clayton & Mathis 1989, from memory); R_V 0 was already status 2
+    args = {"build": ["build", files / "cat.csv", "-o", tmp_path / "m.fits"], "layer": ["layer", files / "cat.csv"],
+            "fit-clusters": ["fit-clusters", files / "cat.csv", "-o", tmp_path / "c.ecsv"], "bands": ["bands"]}[command]
+    rc, out, err = call(*args, "--law", "ccm89", "--rv", "8")
+    line = one_line_error(err)
+    assert rc == 2 and "--rv 8" in line and "[2, 6]" in line, line
+    assert list(tmp_path.iterdir()) == []
+
+
+# values no user can mean, each refused with the option, the value and the range allowed (status 2)
+_IMPOSSIBLE = {
+    "min_significance": (["features", "{binned}", "-o", "{dir}/f.csv", "--min-significance", "-5"],
+                         "--min-significance", "Got -5.0", ">= 0"),
+    "seed": (["features", "{binned}", "-o", "{dir}/f.csv", "--seed", "-1"], "--seed", "Got -1", ">= 0"),
+    "av": (["bands", "--av", "-1"], "--av", "Got -1.0", ">= 0"),
+    "zero_point_nan": (["layer", "{cat}", "--distance-unit", "kpc", "--parallax-zero-point", "nan"],
+                       "--parallax-zero-point", "Got nan", "[-10, 10]"),
+    "zero_point_huge": (["estimate", "{model}", "{targets}", "-o", "{dir}/x.csv", "--parallax-zero-point", "1e9"],
+                        "--parallax-zero-point", "Got 1000000000.0", "[-10, 10]"),
+    "source_temperature": (["layer", "{cat}", "--distance-unit", "kpc", "--source-temperature", "-5"],
+                           "--source-temperature", "Got -5.0", "between 2000 and 100000 K"),
+    "nside": (["build", "{cat}", "-o", "{dir}/m.fits", "--nside", "24"], "--nside", "Got 24", "power of two"),
+    "edges": (["build", "{cat}", "-o", "{dir}/m.fits", "--distance-edges=-100,0,100"], "--distance-edges",
+              "-100.0", "non-negative"),
+}
+
+
+@pytest.mark.parametrize("case", list(_IMPOSSIBLE))
+def test_impossible_option_values_are_refused_naming_option_value_and_range(case, files, built, tmp_path, call):
+    binned = files / "binned.fits"
+    if not binned.exists():
+        call("build", files / "cat.csv", "-o", binned, "--model", "binned", *BUILD_OPTS, check_rc=0)
+    args, option, value, allowed = _IMPOSSIBLE[case]
+    fill = {"cat": files / "cat.csv", "targets": files / "targets.csv", "model": built[0], "binned": binned,
+            "dir": tmp_path}
+    rc, out, err = call(*[a.format(**fill) for a in args])
+    line = one_line_error(err)
+    assert rc == 2 and f"The {option} option must be" in line and value in line and allowed in line, line
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_demo_takes_the_output_option_the_other_commands_spell():
+    # every command that writes names its output -o/--output; the demo's folder too (--out still works)
+    from dustkit.cli import build_parser
+
+    parser = build_parser()
+    for spelling in ("-o", "--output", "--out"):
+        assert parser.parse_args(["demo", spelling, "somewhere"]).out == "somewhere"

@@ -236,3 +236,12 @@ def test_features_module_stays_in_the_computation_layer():
     code = "import sys, dustkit.features; print('matplotlib' in sys.modules, 'ipywidgets' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.split() == ["False", "False"]  # DESIGN.md: computation modules never import them
+
+
+def test_step_settings_that_make_no_sense_are_refused():
+    # a BIC improvement below 0 would list steps the data favour less than no step; a seed is an integer >= 0
+    d, de, av, ae = _line([_flat_cloud(1000.0, 1.0)], 60, 1)
+    with pytest.raises(ParameterError, match="'min_significance' parameter must be a real number >= 0"):
+        find_steps(d, de, av, ae, n_boot=20, min_significance=-5)
+    with pytest.raises(ParameterError, match="'random_state' parameter must be an integer >= 0"):
+        find_steps(d, de, av, ae, n_boot=20, random_state=-1)

@@ -1891,3 +1891,20 @@ def test_scaled_errors_keep_the_correlation_and_the_skew_of_asymmetric_errors():
     # what a later merge across chunks needs: the unscaled error, chi2 and N of each quantity
     unscaled, chi2, n = merged["scatter"]["distance"]
     assert (unscaled[0], chi2[0], n[0]) == (pytest.approx(wd.sum() ** -0.5), pytest.approx(7.2), 2)
+
+
+@pytest.mark.parametrize("zp", [np.nan * u.mas, np.inf * u.mas, 1e9 * u.mas, 20 * u.mas, np.nan])
+def test_a_parallax_zero_point_that_is_no_zero_point_is_refused(zp):
+    # Gaia's zero points are some -0.02 mas (Lindegren et al. 2021, A&A 649, A4): a NaN, an infinity or
+    # 20 mas is a typo, refused as the Quantity and the bare number alike (a Quantity used to pass unchecked)
+    t = Table({"l": [10.0], "b": [0.0], "parallax": [1.0] * u.mas, "parallax_error": [0.02] * u.mas,
+               "ebv": [0.5], "ebv_err": [0.02]})
+    with pytest.raises(ParameterError, match="'parallax_zero_point' parameter must be a real number in"):
+        read_tracers(t, parallax_zero_point=zp)
+
+
+def test_an_impossible_source_temperature_is_refused_under_its_own_name():
+    t = _ebprp_catalogue({"other": [1.0, 2.0]})
+    with pytest.raises(ParameterError, match=r"The 'source_temperature' parameter must be a blackbody temperature "
+                                             r"between 2000 and 100000 K\. Got -5\.0 instead"):
+        read_tracers(t, source_temperature=-5 * u.K)

@@ -608,8 +608,8 @@ def band_table(law=DEFAULT_LAW, rv=3.1, *, temperature=None, av=None):
     rv = law.check_rv(rv)
     t = float(temperature_input(temperature, DEFAULT_TEMPERATURE, stacklevel=3))
     a, _ = mag_input("av", DEFAULT_AV if av is None else av)
-    if a.ndim != 0:
-        raise param_error("av", "a single A_V for the reference star", av)
+    if a.ndim != 0 or not np.isfinite(a) or a < 0:  # a star behind dust: A_V >= 0
+        raise param_error("av", "a single A_V >= 0 mag for the reference star", av)
     bands = registered_bands()
     coeff, ref = [], []
     for band in bands:

@@ -76,10 +76,11 @@ def rv_err_input(rv_err, law):
     return arr
 
 
-def temperature_input(temperature, default, stacklevel=4):
+def temperature_input(temperature, default, stacklevel=4, name="temperature"):
     """Blackbody temperature(s) in K as a float ndarray inside :data:`TEMPERATURE_RANGE`.
 
-    ``None`` gives ``default``; a bare number is taken as kelvin (announced).
+    ``None`` gives ``default``; a bare number is taken as kelvin (announced). ``name`` is the
+    caller's parameter, named in errors.
     """
     if temperature is None:
         temperature = default
@@ -87,27 +88,23 @@ def temperature_input(temperature, default, stacklevel=4):
         try:
             t = np.asarray(temperature.to_value(u.K, equivalencies=u.temperature()), dtype=float)
         except (u.UnitConversionError, TypeError):
-            raise param_error("temperature", "a temperature (e.g. 5800 * u.K)", temperature) from None
+            raise param_error(name, "a temperature (e.g. 5800 * u.K)", temperature) from None
     else:
         try:
             t = np.asarray(temperature, dtype=float)
         except (TypeError, ValueError):
-            raise param_error("temperature", "a temperature (e.g. 5800 * u.K)", temperature) from None
+            raise param_error(name, "a temperature (e.g. 5800 * u.K)", temperature) from None
         warnings.warn(
-            f"temperature={temperature if t.ndim == 0 else 'array'!r} has no unit; assuming kelvin.",
+            f"{name}={temperature if t.ndim == 0 else 'array'!r} has no unit; assuming kelvin.",
             AssumptionWarning, stacklevel=stacklevel,
         )
     lo, hi = TEMPERATURE_RANGE
     bad = ~np.isfinite(t) | (t < lo) | (t > hi)
     if np.any(bad):
         first = float(t[bad].ravel()[0]) if t.ndim else float(t)
-        raise param_error(
-            "temperature",
-            f"a blackbody temperature between {lo:g} and {hi:g} K "
-            f"({int(np.count_nonzero(bad))} value(s) outside or not finite; "
-            "fill missing values with the default before converting)",
-            first,
-        )
+        many = ("" if t.ndim == 0 else f" ({int(np.count_nonzero(bad))} value(s) outside or not finite; "
+                "fill missing values with the default before converting)")
+        raise param_error(name, f"a blackbody temperature between {lo:g} and {hi:g} K{many}", first)
     return t
 
 

@@ -13,7 +13,7 @@ from .._lib import healpix
 from ..exceptions import ModelNotFittedError
 from .._lib.progress import progress
 from .._lib.sky import separation_deg
-from .._lib.validation import check_int, check_real, param_error, to_value
+from .._lib.validation import check_int, check_real, check_seed, param_error, to_value
 from ..answers import CAUTION
 from .steps import Line, STEP_METHOD, check_common, find_steps_arrays, find_steps_plain, reject_rows, steps_table
 
@@ -85,7 +85,7 @@ def sight_line_features(model_or_tracers, l, b, radius=None, **kwargs):
     opts = check_common(kwargs.pop("min_tracers", 3), kwargs.pop("min_significance", 10.0),
                          kwargs.pop("min_delta_av", 0.2 * u.mag), kwargs.pop("min_boot_fraction", 0.5),
                          kwargs.pop("max_steps", 5), kwargs.pop("n_boot", 100))
-    random_state = kwargs.pop("random_state", 0)
+    random_state = check_seed(kwargs.pop("random_state", 0))
     if kwargs:
         raise param_error(next(iter(kwargs)), "one of find_steps' settings", kwargs[next(iter(kwargs))])
     inside = separation_deg(tl, tb, lv, bv) <= rad
@@ -193,6 +193,7 @@ def detect_features(model, *, radius=None, min_delta_av=0.2 * u.mag, min_signifi
     """
     opts = check_common(min_tracers, min_significance, min_delta_av, min_boot_fraction, max_steps, n_boot)
     merge_sigma = check_real("merge_sigma", merge_sigma, 0.0, np.inf, low_inclusive=False)
+    random_state = check_seed(random_state)
     if not _is_model(model):
         raise param_error("model", "a fitted ExtinctionModel", type(model).__name__)
     tl, tb, d, de, a, ae, slope = _model_tracers(model)

@@ -11,7 +11,7 @@ from astropy.table import QTable
 from scipy.special import ndtr
 
 from ..exceptions import AssumptionWarning, RowsRejectedWarning
-from .._lib.validation import check_int, check_real, param_error, to_value
+from .._lib.validation import check_int, check_real, check_seed, param_error, to_value
 from ..answers import CAUTION
 
 __all__ = [
@@ -361,7 +361,8 @@ def find_steps_arrays(line, *, min_tracers, min_significance, min_delta_av, min_
 
 def check_common(min_tracers, min_significance, min_delta_av, min_boot_fraction, max_steps, n_boot):
     min_tracers = check_int("min_tracers", min_tracers, 2, 100_000)
-    min_significance = check_real("min_significance", min_significance)
+    # a BIC improvement below 0 would list steps the data favour less than no step
+    min_significance = check_real("min_significance", min_significance, 0.0, np.inf)
     mda = float(to_value("min_delta_av", min_delta_av, u.mag, default_unit=u.mag))
     check_real("min_delta_av", mda, 0.0, np.inf)
     min_boot_fraction = check_real("min_boot_fraction", min_boot_fraction, 0.0, 1.0)
@@ -463,7 +464,7 @@ def find_steps(distance, distance_err, av, av_err, *, min_tracers=3, min_signifi
         slope = np.broadcast_to(to_value("av_slope", av_slope, u.mag / u.pc), d.shape).astype(float)
         if not np.all(np.isfinite(slope)) or np.any(slope < 0):
             raise param_error("av_slope", "finite and non-negative (mag per unit distance)", av_slope)
-    return find_steps_plain(d, de, a, ae, opts, random_state, meta_extra={}, slope=slope)
+    return find_steps_plain(d, de, a, ae, opts, check_seed(random_state), meta_extra={}, slope=slope)
 
 
 def reject_rows(d, de, a, ae):

@@ -152,7 +152,8 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
     from .. import bands as _bands
 
     tcol, ccol = cols.get("temperature"), cols.get("intrinsic_color")
-    t_default = float(temperature_input(source_temperature, DEFAULT_TEMPERATURE, stacklevel=6))
+    t_default = float(temperature_input(source_temperature, DEFAULT_TEMPERATURE, stacklevel=6,
+                                        name="source_temperature"))
     if kind in ("E(B-V)", "A_V"):
         for c, role in ((tcol, "temperature"), (ccol, "intrinsic_color")):
             if c is not None:
@@ -262,7 +263,8 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
             kind = f"E({color[0]}-{color[1]})"
     temps = source_temperatures(table, cols, ctx, kind, source_temperature, intrinsic_color_bands)
     ctx.temperature = temps
-    t_ref = None if temps is None else float(temperature_input(source_temperature, DEFAULT_TEMPERATURE))
+    t_ref = None if temps is None else float(temperature_input(source_temperature, DEFAULT_TEMPERATURE,
+                                                                name="source_temperature"))
     if temps is not None and _redder_first(color, law, rv, t_ref):
         raise CatalogError(
             f"Column {colname!r} holds {kind}, but {color[0]} is the redder band of the two: such an excess is "

@@ -269,9 +269,13 @@ def zero_point(zp):
     """The parallax zero point in mas (a Quantity, or a plain number in mas)."""
     if isinstance(zp, u.Quantity):
         try:
-            return float(zp.to_value(u.mas))
+            value = zp.to_value(u.mas)
         except u.UnitConversionError:
             raise param_error("parallax_zero_point", "an angle such as -0.017 * u.mas", zp) from None
+        if np.ndim(value) != 0:
+            raise param_error("parallax_zero_point", "one angle such as -0.017 * u.mas", zp)
+        # the Quantity's value in mas, range-checked as a bare number is (a NaN or 1e9 mas is no zero point)
+        return check_real("parallax_zero_point", float(value), -10.0, 10.0)
     return check_real("parallax_zero_point", zp, -10.0, 10.0)
 
 
