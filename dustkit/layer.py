@@ -439,20 +439,20 @@ def _no_dust_layer(b, d, de, av, ae):
     """
     h_ref, h_err, z_ref, z_err = REFERENCE_LAYER
     predict = _averaged_layer(b, d, de)
+    mad = 1.4826 * np.median(np.abs(av - np.median(av)))  # the scatter and weights do not depend on h
+    scatter = float(np.sqrt(max(mad**2 - np.median(ae**2), 0.01**2)))
+    w = 1.0 / (ae**2 + scatter**2)
     ests = []
     for h in (h_ref - h_err, h_ref, h_ref + h_err):
         f = predict(np.array([1.0, h, z_ref]))
-        mad = 1.4826 * np.median(np.abs(av - np.median(av)))
-        scatter = float(np.sqrt(max(mad**2 - np.median(ae**2), 0.01**2)))
-        w = 1.0 / (ae**2 + scatter**2)
         info = float(np.sum(w * f * f))
         if not np.isfinite(info) or info <= 0:
             return None
         a = float(np.sum(w * f * av)) / info
         r = (av - a * f) * np.sqrt(w)
         spread = max(1.0, (1.4826 * float(np.median(np.abs(r)))) ** 2)
-        ests.append((a, np.sqrt(spread / info), scatter))
-    a_ref, e_ref, scatter = ests[1]
+        ests.append((a, np.sqrt(spread / info)))
+    a_ref, e_ref = ests[1]
     if a_ref > DETECTION_SIGMA * e_ref:
         return None
     a_vals = [e[0] for e in ests]

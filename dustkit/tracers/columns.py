@@ -12,6 +12,7 @@ __all__ = [
     "GALACTIC_PAIRS",
     "EQUATORIAL_PAIRS",
     "VALUE_ALIASES",
+    "recognised_column",
     "DISTANCE_LIKE",
     "KIND_LABEL",
     "norm",
@@ -181,6 +182,12 @@ class _Finder:
             if c is not None and c not in exclude:
                 return c
         return None
+
+
+def recognised_column(names, role):
+    """The first of ``names`` that is a recognised spelling of ``role`` (``VALUE_ALIASES``), error columns
+    aside, as :func:`resolve_columns` finds it; None if there is none."""
+    return _Finder(list(names), {}).find(VALUE_ALIASES[role])
 
 
 def _explicit_columns(table, columns, ctx, want_reddening):

@@ -387,7 +387,7 @@ def target_temperatures(targets, temperature=None):
     """
     from ..bands import DEFAULT_TEMPERATURE, star_temperatures
     from ..bands.inputs import temperature_input
-    from .columns import VALUE_ALIASES, norm
+    from .columns import recognised_column
     from .temperatures import announce_temperatures, rows_have, temperature_values
 
     table = targets.table if isinstance(targets, TargetList) else targets
@@ -409,10 +409,7 @@ def target_temperatures(targets, temperature=None):
     else:
         col = (targets.meta.get("columns", {}).get("temperature") if isinstance(targets, TargetList) else None)
         if col is None:
-            by_norm = {}
-            for c in table.colnames:
-                by_norm.setdefault(norm(c), c)
-            col = next((by_norm[a] for a in VALUE_ALIASES["temperature"] if a in by_norm), None)
+            col = recognised_column(table.colnames, "temperature")
         if col is None:
             return TargetTemperatures(np.full(n, t_default), f"a {t_default:g} K blackbody for every target (the "
                                       "default: no temperature column such as 'teff')", empty_rejected(), [])
