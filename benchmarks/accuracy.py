@@ -138,6 +138,7 @@ def _pooled(kinds, n_draws, given_layer=None):
             for _, _, stratum, s, base_rms in rows:
                 pooled.setdefault(stratum, []).append((s, base_rms))
         for stratum, items in pooled.items():
+            items = [(s, b) for s, b in items if s["n"]]  # a draw with no position in this stratum
             n = sum(s["n"] for s, _ in items)
             if n < 30:
                 continue
