@@ -542,7 +542,7 @@ def _check_rejects(args, output=None):
     if output is not None:
         _refuse_same_file(output, args.rejects, "--rejects", "the rejected rows would replace the model",
                           "rejects.csv")
-    if os.path.abspath(os.path.expanduser(args.rejects)) == os.path.abspath(os.path.expanduser(args.catalog)):
+    if _same_file(args.rejects, args.catalog):
         raise _UsageError(f"--rejects names the catalogue being read ({args.catalog!r}): the rejected rows would "
                           "replace it. Hint: give them a name of their own, e.g. --rejects rejects.csv")
 
@@ -554,7 +554,7 @@ def _write_rejects(tracers, args):
 
     table = tracers.rejected.copy(copy_data=False)
     table.meta["catalogue"] = str(args.catalog)
-    table.meta["n_input_rows"] = int(tracers.meta.get("n_input", len(tracers) + len(table)))
+    table.meta["n_input_rows"] = int(tracers.meta["n_input"])
     path = write_table(table, args.rejects, overwrite=args.overwrite)
     columns = ", ".join(table.colnames)
     if not len(table):
@@ -894,9 +894,14 @@ def _cmd_profile(args, out):
     return 0
 
 
+def _same_file(a, b):
+    """True when two names given on the command line name one file."""
+    return os.path.abspath(os.path.expanduser(a)) == os.path.abspath(os.path.expanduser(b))
+
+
 def _refuse_same_file(output, other, option, loss, example):
     """A usage error when ``other`` (the file of ``option``) is the -o file: one write would replace the other."""
-    if os.path.abspath(os.path.expanduser(other)) == os.path.abspath(os.path.expanduser(output)):
+    if _same_file(other, output):
         raise _UsageError(f"-o and {option} name the same file ({output!r}): {loss}. Hint: give them a name of "
                           f"their own, e.g. {option} {example}")
 
