@@ -33,7 +33,7 @@ from astropy.table import MaskedColumn, QTable, Table
 
 from ._lib import healpix
 from ._lib.sky import separation_deg
-from ._lib.validation import check_int, check_real, param_error, to_value
+from ._lib.validation import Described, check_int, check_real, param_error, to_scalar, to_value
 from .binned.calibration import predictive_variance
 from .exceptions import AssumptionWarning, ParameterError
 
@@ -147,7 +147,7 @@ def _broadcast(named):
     except ValueError:
         shapes = ", ".join(f"{k} {np.shape(v)}" for k, v in named.items())
         raise param_error(", ".join(named), "scalars or arrays of one shape (or shapes that broadcast together)",
-                          shapes) from None
+                          Described(shapes)) from None
 
 
 def sky_positions(l, b=None, distance=None):
@@ -305,7 +305,7 @@ def profile_table(model, l, b, radius=None, distances=None):
     for k, v in (("l", lv), ("b", bv)):
         if np.ndim(v) and np.size(v) != 1:
             raise param_error(k, "one sky position (a profile is one sight line; use query for many)",
-                              f"{np.size(v)} values")
+                              Described(f"{np.size(v)} values"))
     lv = check_real("l", float(np.ravel(lv)[0])) % 360.0
     bv = check_real("b", float(np.ravel(bv)[0]), -90, 90)
     e = model.grid_.distance_edges
@@ -321,7 +321,7 @@ def profile_table(model, l, b, radius=None, distances=None):
         pts_l, pts_b = np.array([lv]), np.array([bv])
         rad = 0.0
     else:
-        rad = float(to_value("radius", radius, u.deg))
+        rad = to_scalar("radius", radius, u.deg)
         check_real("radius", rad, 0, 90)
         fine = max(model.grid_.nside * 4, 64)
         pp = healpix.query_disc(fine, lv, bv, rad)

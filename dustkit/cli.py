@@ -63,6 +63,7 @@ _EPILOGS = {
   dustkit build field_stars/ -o model.fits --nside 64 --chunk-size 2000000
   dustkit build giants.csv -o model.fits --source-temperature 4500
   dustkit build region.csv -o model.fits --layer-from layer.json
+  dustkit build clusters.csv -o model.fits --rejects rejected_rows.csv
 
 A colour excess other than E(B-V) (a column E(BP-RP), E(J-Ks), ...) is turned into A_V through
 the passbands of its two bands for each row's star: its temperature from a column teff (T_eff,
@@ -84,6 +85,7 @@ usable position or distance keep empty (NaN) values.""",
     "layer": """examples:
   dustkit layer clusters.csv
   dustkit layer clusters.csv --json > layer.json
+  dustkit layer clusters.csv --rejects rejected_rows.ecsv
 
 a0 is in mag/kpc, h and z_sun in pc. The JSON serves 'dustkit build --layer-from' for the
 model of a smaller region inside the catalogue's, where clouds would lift a layer fitted there.""",
@@ -175,6 +177,13 @@ def _add_tracer_options(p):
                         "intrinsic-colour ((BP-RP)_0) column or cell (default 5800; E(B-V) does not depend on it)")
 
 
+def _add_rejects_option(p):
+    p.add_argument("--rejects", metavar="REJECTS.csv",
+                   help="also write the rejected rows of CATALOG to this table (.csv, .ecsv or .fits): row (the "
+                        "data row, counted from 0), name, reason, column and value; an empty table when no row is "
+                        "rejected. For the in-memory build")
+
+
 _RV_HELP = "R_V = A_V / E(B-V), a plain number inside the law's range (see 'dustkit laws'; default 3.1)"
 
 
@@ -242,7 +251,8 @@ def build_parser():
                    help="use this smooth dust layer instead of fitting one to CATALOG (JSON with a0 in mag/kpc, "
                         "h and z_sun in pc and their errors, as 'dustkit layer OTHER_CATALOG --json' writes): "
                         "in a small region where clouds hold much of the dust they lift a layer fitted there")
-    p.add_argument("--overwrite", action="store_true", help="replace MODEL.fits if it exists")
+    _add_rejects_option(p)
+    p.add_argument("--overwrite", action="store_true", help="replace MODEL.fits (and the --rejects file) if it exists")
 
     p = sub("estimate", "Estimate A_V (and A in other bands) for a list of targets from a saved model.")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
@@ -253,7 +263,8 @@ def build_parser():
     p.add_argument("--temperature", metavar="K|COLUMN",
                    help="the targets' stars for the --band extinctions (broad bands depend on the star): a "
                         "temperature in K or a column of TARGETS (default: a column teff, T_eff, logTeff, ... "
-                        "if there is one, else a 5800 K blackbody)")
+                        "if there is one, else an intrinsic colour such as (BP-RP)_0 or bp_rp0, read as a "
+                        "blackbody of that colour, else a 5800 K blackbody)")
     p.add_argument("--samples", type=int, default=0, metavar="N",
                    help="also write N posterior draws of A_V per target (N up to 100000; 3-D density models), each "
                         "target's "
@@ -269,6 +280,8 @@ def build_parser():
     _add_law_options(p)
     _add_catalogue_options(p)
     _add_tracer_options(p)
+    _add_rejects_option(p)
+    p.add_argument("--overwrite", action="store_true", help="replace the --rejects file if it exists")
 
     p = sub("profile", "Plot cumulative A_V against distance along a sight line.")
     p.add_argument("model", metavar="MODEL", help="model file written by 'dustkit build'")
@@ -470,6 +483,10 @@ def _grid_options(args):
                                                                        low_inclusive=False)
         kw["distance_max"] = dmax * u.pc
         kw["distance_step"] = step * u.pc
+        if args.distance_step is not None:  # the binned model's grid: one too large for memory refused before the read
+            from .grid import Grid
+
+            Grid.linear(kw["distance_max"], kw["distance_step"], args.nside or defaults["nside"])
     return kw
 
 
@@ -515,6 +532,35 @@ def _read_tracers(args, path, summary_shown=True):
             continue
         warnings.showwarning(w.message, w.category, w.filename, w.lineno)
     return tracers
+
+
+def _check_rejects(args, output=None):
+    """--rejects: a table name (usage error otherwise), not the catalogue read nor the -o file, writable (before any work)."""
+    if not getattr(args, "rejects", None):
+        return
+    _check_output(args.rejects, "table", args.overwrite, option="--rejects")
+    if output is not None:
+        _refuse_same_file(output, args.rejects, "--rejects", "the rejected rows would replace the model",
+                          "rejects.csv")
+    if _same_file(args.rejects, args.catalog):
+        raise _UsageError(f"--rejects names the catalogue being read ({args.catalog!r}): the rejected rows would "
+                          "replace it. Hint: give them a name of their own, e.g. --rejects rejects.csv")
+
+
+def _write_rejects(tracers, args):
+    """Write the rejected rows of a read (``TracerSet.rejected``: row, name, reason, column, value) to the
+    --rejects file, atomically (an empty table with the same columns when none was rejected); return what was done."""
+    from .io import write_table
+
+    table = tracers.rejected.copy(copy_data=False)
+    table.meta["catalogue"] = str(args.catalog)
+    table.meta["n_input_rows"] = int(tracers.meta["n_input"])
+    path = write_table(table, args.rejects, overwrite=args.overwrite)
+    columns = ", ".join(table.colnames)
+    if not len(table):
+        return f"No row of {args.catalog} was rejected: wrote an empty table (columns {columns}) to {path}"
+    return (f"Wrote the {len(table)} rejected row{'s' if len(table) > 1 else ''} of {args.catalog} to {path} "
+            f"(columns {columns}; row counts the data rows from 0)")
 
 
 def _given_layer_file(path):
@@ -626,6 +672,11 @@ def _cmd_build(args, out):
         raise _UsageError("--in-memory reads the whole catalogue at once; --chunk-size and --scheduler are for the "
                           "out-of-core build. Hint: give one or the other")
     path_kind = "memory" if getattr(args, "in_memory", False) else build_path(args.catalog, args.chunk_size, args.scheduler)
+    if path_kind == "chunked" and getattr(args, "rejects", None):
+        raise _UsageError("--rejects lists every rejected row, which the out-of-core build (a catalogue this "
+                          "large, --chunk-size or --scheduler) does not keep: it counts them by reason only. "
+                          "Hint: add --in-memory to read the catalogue at once, or drop --rejects")
+    _check_rejects(args, output=args.output)
     if path_kind == "chunked":
         if getattr(args, "uncertainty", "auto") == "monte-carlo":
             raise _UsageError("--uncertainty monte-carlo needs the in-memory build; add --in-memory")
@@ -642,6 +693,8 @@ def _cmd_build(args, out):
         tracers = _read_tracers(args, args.catalog)
         if not out.quiet:  # the summary (sky area, medians: 0.2 s at 10^6 tracers) only when it is printed
             out(tracers.summary(), "")
+        if getattr(args, "rejects", None):  # before the build: the rows are there if the build fails
+            out(_write_rejects(tracers, args), "")
         if columns:
             out(f"Column mapping given: {columns}")
         kind = choose_model(len(tracers), args.model)
@@ -788,10 +841,17 @@ def _cmd_layer(args, out):
     from .layer import lift_caution
 
     _check_law(args)
+    _check_rejects(args)
     tracers = _read_tracers(args, args.catalog, summary_shown=not args.json)
-    layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors summed over sky blocks, and the pull
     if not args.json:
         out(tracers.summary(), "")
+    if getattr(args, "rejects", None):  # before the fit: the rows are there if it fails
+        said = _write_rejects(tracers, args)
+        if not args.json:
+            out(said, "")
+        elif not out.quiet:  # stdout holds the JSON alone
+            out.note(said)
+    layer = fit_catalogue_layer(tracers)  # as the density model fits it: errors summed over sky blocks, and the pull
     lift = catalogue_lift(tracers, layer)  # at the distances the layer was fitted at, as the build says it
     if lift["lifted"]:  # a warning on stderr: also with --json (the layer a later --layer-from takes) and --quiet
         warnings.warn(lift_caution(lift), DustkitWarning, stacklevel=2)
@@ -834,9 +894,14 @@ def _cmd_profile(args, out):
     return 0
 
 
+def _same_file(a, b):
+    """True when two names given on the command line name one file."""
+    return os.path.abspath(os.path.expanduser(a)) == os.path.abspath(os.path.expanduser(b))
+
+
 def _refuse_same_file(output, other, option, loss, example):
     """A usage error when ``other`` (the file of ``option``) is the -o file: one write would replace the other."""
-    if os.path.abspath(os.path.expanduser(other)) == os.path.abspath(os.path.expanduser(output)):
+    if _same_file(other, output):
         raise _UsageError(f"-o and {option} name the same file ({output!r}): {loss}. Hint: give them a name of "
                           f"their own, e.g. {option} {example}")
 
@@ -1189,13 +1254,18 @@ def _cmd_demo(args, out):
 
 # ============================================================================ library words -> command words
 
-#: Library parameters whose option has another name (the rest are spelled alike: nside -> --nside).
+#: Library parameters whose option has another name (the rest are spelled alike: nside -> --nside); a
+#: tuple: a library name that stands for what several options set together (the grid: its NSIDE and edges).
 _PARAMETER_OPTIONS = {"random_state": "seed", "parallax_err_floor": "parallax_floor",
-                      "distance_modulus_kind": "modulus_kind", "columns": "column", "bands": "band"}
-#: Python calls named in library hints, and what a command-line user does instead.
+                      "distance_modulus_kind": "modulus_kind", "columns": "column", "bands": "band",
+                      "grid": ("nside", "distance_max", "distance_step", "distance_edges")}
+#: Python calls named in library hints, and what a command-line user does instead; a (dest, words) pair
+#: applies only to a command that has that option.
 _PYTHON_HINTS = {"list_laws()": "'dustkit laws'",
                  "add_band(name, wavelength) registers a new band": "from Python, dustkit.bands.add_band(name, "
-                                                                    "wavelength) registers a new band"}
+                                                                    "wavelength) registers a new band",
+                 "See TracerSet.rejected for the rows.": ("rejects", "--rejects FILE writes the rows."),
+                 "(see .rejected)": ("rejects", "(--rejects FILE writes them)")}
 
 
 def _option_names(parser, command):
@@ -1212,7 +1282,15 @@ def _option_names(parser, command):
             names[action.dest] = "/".join(action.option_strings)
         else:
             names[action.dest] = action.metavar or action.dest.upper()
-    names.update({lib: names[dest] for lib, dest in _PARAMETER_OPTIONS.items() if dest in names and lib not in names})
+    for lib, dest in _PARAMETER_OPTIONS.items():
+        if lib in names:
+            continue
+        if isinstance(dest, tuple):  # several options: a tuple of those the command has
+            shown = tuple(names[d] for d in dest if d in names)
+            if shown:
+                names[lib] = shown if len(shown) > 1 else shown[0]
+        elif dest in names:
+            names[lib] = names[dest]
     return names
 
 
@@ -1228,12 +1306,21 @@ def _translator(names):
         shown = word(m.group(2))
         if shown is None:
             return m.group(0)
+        if isinstance(shown, tuple):  # "The 'grid' parameter" -> "The grid (options --nside, ... and --distance-edges)"
+            listed = ", ".join(o.split("/")[-1] for o in shown[:-1]) + f" and {shown[-1].split('/')[-1]}"
+            return f"{m.group(1)} {m.group(2).replace('_', ' ')} (options {listed})"
         kind = "option" if shown.startswith("-") else "argument"
         return f"{m.group(1)} {shown} {kind}"
 
+    def bare_keyword(m):  # a hint's "lower nside=" -> "lower --nside"
+        shown = word(m.group(1))
+        if not isinstance(shown, str) or not shown.startswith("-"):
+            return m.group(0)
+        return shown.split("/")[-1]
+
     def keyword(m):  # pass name=value -> add --option value
         shown = word(m.group(2))
-        if shown is None or not shown.startswith("-"):
+        if not isinstance(shown, str) or not shown.startswith("-"):
             return m.group(0)
         value = m.group(3).strip("'\"")
         value = "" if value in ("True", "...", "") else f" {value}"
@@ -1256,11 +1343,16 @@ def _translator(names):
         text = re.sub(r"\(\w+=, command line (--[\w-]+)\)", r"(\1)", text)
         text = re.sub(r"\(\w+=\.\.\., (dustkit [^)]*)\)", r"(\1)", text)
         for python, command in _PYTHON_HINTS.items():
+            if isinstance(command, tuple):  # only where the command has the option
+                if command[0] not in names:
+                    continue
+                command = command[1]
             text = text.replace(python, command)
         text = re.sub(r"(\d[\d.]*) \* u\.\w+", r"\1", text)  # '4500 * u.K' -> '4500': the option has its unit
         text = re.sub(r"\b(The|the) '(\w+)' parameter", the_parameter, text)
         text = re.sub(r"\bcolumns=(\{[^}]*\})", columns, text)
         text = re.sub(r"\b(pass|Pass) (\w+)=('[^']*'|\S*?)(?=[\s,;)]|\.\s|\.$|$)", keyword, text)
+        text = re.sub(r"(?<![\w.'\"-])([a-z]\w*)=(?=[\s,;)]|\.\s|\.$|$)", bare_keyword, text)
         return re.sub(r"\b(pass|Pass) (--)", lambda m: f"{'Add' if m.group(1) == 'Pass' else 'add'} --", text)
 
     return translate

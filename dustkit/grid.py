@@ -6,7 +6,7 @@ import numpy as np
 from astropy import units as u
 
 from ._lib import healpix
-from ._lib.validation import check_choice, check_int, check_nside, check_real, param_error, to_value
+from ._lib.validation import Described, check_choice, check_int, check_nside, check_real, param_error, to_scalar
 
 __all__ = ["Grid", "MAX_GRID_BYTES", "edges_info", "edge_index"]
 
@@ -42,16 +42,17 @@ class Grid:
             raise param_error(
                 "grid",
                 f"small enough to build in memory (at most {MAX_GRID_BYTES / 2**30:.0f} GiB); "
-                f"NSIDE {self.nside} x {e.size} distance edges needs about {need / 2**30:.1f} GiB. "
-                "Hint: lower nside or use fewer distance bins",
-                f"nside={self.nside}, {e.size} edges",
+                f"NSIDE {self.nside} x {e.size} distance edges needs about {need / 2**30:,.1f} GiB. "
+                "Hint: lower nside= or use fewer distance bins (a larger distance_step=, a smaller "
+                "distance_max= or fewer distance_edges=)",
+                Described(f"NSIDE {self.nside} with {e.size} distance edges"),
             )
 
     @classmethod
     def linear(cls, distance_max=6000 * u.pc, distance_step=200 * u.pc, nside=32, ordering="ring"):
         """Edges 0, step, 2 step, ... up to ``distance_max`` (inclusive when it falls on a step)."""
-        dmax = float(to_value("distance_max", distance_max, u.pc, default_unit=u.pc))
-        step = float(to_value("distance_step", distance_step, u.pc, default_unit=u.pc))
+        dmax = to_scalar("distance_max", distance_max, u.pc, default_unit=u.pc)
+        step = to_scalar("distance_step", distance_step, u.pc, default_unit=u.pc)
         check_real("distance_max", dmax, 0, np.inf, low_inclusive=False)
         check_real("distance_step", step, 0, dmax, low_inclusive=False)
         n = int(np.ceil(dmax / step - 1e-9))
@@ -60,8 +61,8 @@ class Grid:
     @classmethod
     def log(cls, distance_min=50 * u.pc, distance_max=10000 * u.pc, n_bins=40, nside=32, ordering="ring"):
         """Edges 0 then ``n_bins`` logarithmically spaced bins from ``distance_min`` to ``distance_max``."""
-        dmin = float(to_value("distance_min", distance_min, u.pc, default_unit=u.pc))
-        dmax = float(to_value("distance_max", distance_max, u.pc, default_unit=u.pc))
+        dmin = to_scalar("distance_min", distance_min, u.pc, default_unit=u.pc)
+        dmax = to_scalar("distance_max", distance_max, u.pc, default_unit=u.pc)
         check_real("distance_min", dmin, 0, np.inf, low_inclusive=False)
         check_real("distance_max", dmax, dmin, np.inf, low_inclusive=False)
         n_bins = check_int("n_bins", n_bins, 1, 100_000)

@@ -13,7 +13,7 @@ from astropy import units as u
 from scipy import optimize, stats
 
 from .exceptions import CatalogError, DustkitWarning
-from ._lib.validation import check_int, check_real, param_error, to_value
+from ._lib.validation import check_int, check_real, param_error, to_scalar, to_value
 from .tracers.rules import AV_ERR_FLOOR, floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
@@ -132,9 +132,9 @@ def layer_av(b, distance, a0=1.0 * u.mag / u.kpc, h=100 * u.pc, z_sun=20 * u.pc)
     """
     bv = to_value("b", b, u.deg)
     dv = to_value("distance", distance, u.pc)
-    a0v = float(to_value("a0", a0, u.mag / u.kpc))
-    hv = float(to_value("h", h, u.pc))
-    zv = float(to_value("z_sun", z_sun, u.pc))
+    a0v = to_scalar("a0", a0, u.mag / u.kpc)
+    hv = to_scalar("h", h, u.pc)
+    zv = to_scalar("z_sun", z_sun, u.pc)
     return layer_av_pc(bv, dv, a0v, hv, zv) * u.mag
 
 

@@ -193,6 +193,43 @@ def test_targets_temperature_column_is_read_as_the_tracers_one_bad_rows_named_an
         target_temperatures(Table({"teff": [3.76, 3.8]}))
 
 
+def test_targets_intrinsic_colour_gives_their_star_as_the_tracer_reader_does(model):
+    # a target list whose only star information was an intrinsic colour got a 5800 K star's band extinctions;
+    # the colour is now read by the tracer reader's own code: a blackbody of the same colour, bad cells named
+    from dustkit.bands import av_to_band
+    from dustkit.exceptions import AssumptionWarning
+
+    t = Table({"name": ["red", "typo", "blank"], "l": [30.0, 30.0, 30.0] * u.deg, "b": [1.0, 1.5, 2.0] * u.deg,
+               "distance": [1500.0, 1500.0, 1500.0] * u.pc, "(BP-RP)_0": ["1.6", "1.2x", ""]})
+    with pytest.warns(RowsRejectedWarning, match=r"1 target has no usable value in '\(BP-RP\)_0'.*row 1 \(typo\)"):
+        with pytest.warns(AssumptionWarning, match=r"1 target has no value in '\(BP-RP\)_0'.*5800 K"):
+            out = estimate_targets(model, t, bands=("G",))
+    assert out.meta["band_temperature"].startswith("the temperatures from the intrinsic colour '(BP-RP)_0'")
+    av, ag = _mag(out["av"]), _mag(out["a_G"])
+    assert np.all(np.isfinite(av)) and np.isnan(ag[1]) and np.isfinite(ag[[0, 2]]).all()
+    # the star the tracer reader derives from the same colour (beside an E(BP-RP), which needs it)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tracer = read_tracers(Table({"l": [30.0], "b": [1.0], "distance": [1500.0], "E(BP-RP)": [0.3],
+                                     "(BP-RP)_0": [1.6]}))
+    temp = float(tracer.temperature[0])
+    assert 3000 < temp < 5000  # a red star: cooler than the 5800 K default
+    want, _ = av_to_band(av[0], 0.0, "G", law=model.law, rv=model.rv, temperature=temp * u.K)
+    assert ag[0] == pytest.approx(float(want), rel=1e-9)
+    sun, _ = av_to_band(av[0], 0.0, "G", law=model.law, rv=model.rv, temperature=5800 * u.K)
+    # A_G/A_V falls as the star reddens (Babusiaux et al. 2018, A&A 616, A10, from memory: k_G about 0.96 at
+    # (BP-RP)_0 = 0, 0.67 at 2.0): the red target's A_G is clearly below a 5800 K star's
+    assert ag[0] / av[0] < float(sun) / av[0] - 0.03
+    blank, _ = av_to_band(av[2], 0.0, "G", law=model.law, rv=model.rv, temperature=5800 * u.K)
+    assert ag[2] == pytest.approx(float(blank), rel=1e-9)  # an empty cell: the default star, counted
+    # a temperature column, when there is one too, comes first (as in the tracer reader)
+    t["teff"] = [4000.0, 4000.0, 4000.0]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        both = estimate_targets(model, t, bands=("G",))
+    assert "'teff'" in both.meta["band_temperature"] and np.isfinite(_mag(both["a_G"])).all()
+
+
 def test_estimate_targets_refuses_an_unknown_temperature_column(model):
     from dustkit import ParameterError
 
@@ -202,6 +239,23 @@ def test_estimate_targets_refuses_an_unknown_temperature_column(model):
             estimate_targets(model, _targets(), bands=("G",), temperature="Teff_missing")
         with pytest.raises(ParameterError, match="temperature"):
             estimate_targets(model, _targets(), bands=("G",), temperature=500 * u.K)
+
+
+@pytest.mark.parametrize("ask, shown", [
+    (lambda m: m.av(np.array([30.0, 31.0]) * u.deg, np.array([1.0, 1.0]) * u.deg, np.array([500.0, 900.0])),
+     "Got [500.0, 900.0] instead."),
+    (lambda m: m.av(30 * u.deg, 1 * u.deg, np.array([500.0, 900.0]) * u.s), "Got [500.0, 900.0] s instead."),
+    (lambda m: m.query(np.array([30.0, 31.0]) * u.deg, np.array([1.0, 2.0, 3.0]) * u.deg, 500 * u.pc),
+     "Got l (2,), b (3,), distance () instead."),
+    (lambda m: m.profile(30 * u.deg, 1 * u.deg, radius=np.array([1.0, 2.0]) * u.deg), "Got [1.0, 2.0] deg instead."),
+])
+def test_answers_show_bad_values_as_plain_numbers(model, ask, shown):
+    # numpy's and astropy's reprs (array([500., 900.]), <Quantity [500., 900.] s>) were shown as they are
+    with pytest.raises(dustkit.ParameterError) as info:
+        ask(model)
+    message = str(info.value)
+    assert shown in message, message
+    assert not any(noise in message for noise in ("array(", "np.float64", "<Quantity", "dtype")), message
 
 
 def test_answers_refuse_masked_and_non_finite_positions_naming_the_index(model):

@@ -181,6 +181,91 @@ def test_build_refuses_to_overwrite(built, files, call):
     assert path.read_bytes() == before
 
 
+def test_build_and_layer_write_the_rejected_rows(files, tmp_path, call):
+    # the rejected rows could be seen only from Python (TracerSet.rejected); the command printed counts by reason
+    want = _api_tracers(files).rejected
+    rejects = tmp_path / "rejects.csv"
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m.fits", "--distance-unit", "kpc",
+                        "--model", "binned", "--nside", "8", "--rejects", rejects, check_rc=0)
+    assert f"Wrote the 1 rejected row of {files / 'cat.csv'} to {rejects}" in out
+    got = Table.read(rejects, format="ascii.csv")
+    assert got.colnames == ["row", "name", "reason", "column", "value"] == want.colnames
+    assert list(got["row"]) == list(want["row"]) == [10]  # the row with |b| > 90 (fixture)
+    assert list(got["reason"]) == list(want["reason"]) and got["column"][0] == "glat" and float(got["value"][0]) == 97
+    # an existing file is kept (status 1) unless --overwrite; with it, replaced
+    rejects.write_text("an older file\n")
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", "--rejects", rejects)
+    assert rc == 1 and "--overwrite" in one_line_error(err) and rejects.read_text() == "an older file\n"
+    rc, out, err = call("layer", files / "cat.csv", "--distance-unit", "kpc", "--json", "--rejects", rejects,
+                        "--overwrite", check_rc=0)
+    assert json.loads(out)["a0"] > 0  # stdout keeps the JSON alone; the file is said on stderr
+    assert f"to {rejects}" in err and list(Table.read(rejects, format="ascii.csv")["row"]) == [10]
+    # no rejected row: an empty table with the same columns, and the command says so
+    cat = Table.read(files / "cat.csv", format="ascii.csv")
+    cat.remove_row(10)
+    cat.write(tmp_path / "clean.csv", format="ascii.csv")
+    rc, out, err = call("layer", tmp_path / "clean.csv", "--distance-unit", "kpc", "--rejects", tmp_path / "none.ecsv",
+                        check_rc=0)
+    assert "No row of" in out and "was rejected: wrote an empty table" in out
+    empty = Table.read(tmp_path / "none.ecsv")
+    assert len(empty) == 0 and empty.colnames == want.colnames
+
+
+@pytest.mark.parametrize("opts, expect", [
+    (["--chunk-size", "100", "--rejects", "r.csv"], "Hint: add --in-memory"),  # the out-of-core build keeps no rows
+    (["--rejects", "m.fits"], "-o and --rejects name the same file"),
+    (["--rejects", "cat.csv", "--overwrite"], "--rejects names the catalogue being read"),
+    (["--rejects", "r.txt"], "--rejects r.txt: no table format has the suffix '.txt'"),
+])
+def test_build_refuses_a_rejects_file_it_cannot_write_as_asked(files, tmp_path, call, opts, expect):
+    # refused before anything is read or written: a bad command line (status 2)
+    (tmp_path / "cat.csv").write_bytes((files / "cat.csv").read_bytes())
+    before = sorted(tmp_path.iterdir())
+    rc, out, err = call("build", "cat.csv", "-o", "m.fits", "--distance-unit", "kpc", *opts, cwd=tmp_path)
+    assert rc == 2 and expect in one_line_error(err), err
+    assert sorted(tmp_path.iterdir()) == before and out == ""
+
+
+def test_a_grid_too_large_names_the_options_that_size_it(files, tmp_path, call):
+    # the library says 'grid', nside= and distance_step=; the user typed --nside and --distance-step
+    rc, out, err = call("build", files / "cat.csv", "-o", tmp_path / "m.fits", "--nside", "1024",
+                        "--distance-step", "1", "--distance-unit", "kpc")
+    line = one_line_error(err)
+    assert rc == 2 and line.startswith("dustkit build: error: The grid (options --nside, --distance-max, "
+                                       "--distance-step and --distance-edges) must be small enough"), line
+    assert "Hint: lower --nside or use fewer distance bins (a larger --distance-step, a smaller --distance-max" in line
+    assert "'grid' parameter" not in line and "nside=" not in line and "distance_step" not in line
+    assert "TracerSet" not in out  # refused before the catalogue is read
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_estimate_band_extinction_for_targets_with_an_intrinsic_colour(built, files, tmp_path, call):
+    # the targets' only star information is an intrinsic colour: their band extinctions are for a blackbody
+    # of that colour (as the tracer reader does), announced, and a bad cell is named by its row
+    from dustkit.tracers.reader import target_temperatures
+
+    tg = Table.read(files / "targets.csv", format="ascii.csv")
+    tg["bp_rp0"] = ["1.40"] * len(tg)
+    tg["bp_rp0"][2] = "1.4x"
+    tg.write(tmp_path / "tg.csv", format="ascii.csv")
+    rc, out, err = call("estimate", built[0], tmp_path / "tg.csv", "-o", tmp_path / "out.csv", "--band", "G",
+                        "--distance-unit", "kpc", check_rc=0)
+    assert "are for the temperatures from the intrinsic colour 'bp_rp0'" in err
+    assert "no usable value in 'bp_rp0'" in err and "row 2 (T02)" in err and "add --temperature" in err
+    res = Table.read(tmp_path / "out.csv", format="ascii.csv")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        temps = target_temperatures(tg)
+    assert temps.values[0] < 5000  # a red star
+    a_g = np.asarray(res["a_G"], float)
+    assert np.isnan(a_g[2]) and np.isnan(a_g[4])  # the bad cell; the row without a distance
+    from dustkit.bands import av_to_band
+
+    model = load_model(built[0])
+    want, _ = av_to_band(float(res["av"][0]), 0.0, "G", law=model.law, rv=model.rv, temperature=temps.values[0] * u.K)
+    assert a_g[0] == pytest.approx(float(want), rel=1e-6)  # CSV keeps about 16 digits
+
+
 def test_estimate_keeps_input_columns_and_matches_the_api(built, files, tmp_path):
     out_path = tmp_path / "est.csv"
     rc, out, err = run("estimate", built[0], files / "targets.csv", "-o", out_path, "--band", "J", "--band", "Ks")
@@ -836,6 +921,14 @@ def test_the_translation_keeps_what_the_command_has_no_option_for():
     assert say("The 'merge_sigma' parameter must be > 0.") == "The 'merge_sigma' parameter must be > 0."
     assert say("The 'model' parameter must be fitted.") == "The MODEL argument must be fitted."
     assert say("Hint: pass overwrite=True (on the command line: --overwrite).") == "Hint: add --overwrite."
+    # a library name standing for several options, and a hint's bare keywords, only where the command has them
+    build = _translator(_option_names(build_parser(), "build"))
+    assert build("The 'grid' parameter must be small. Hint: lower nside= or a larger distance_step=.") == (
+        "The grid (options --nside, --distance-max, --distance-step and --distance-edges) must be small. "
+        "Hint: lower --nside or a larger --distance-step.")
+    assert say("Hint: lower nside=.") == "Hint: lower nside=."  # features has no --nside
+    assert build("1 row rejected. See TracerSet.rejected for the rows.") == "1 row rejected. --rejects FILE writes the rows."
+    assert say("See TracerSet.rejected for the rows.") == "See TracerSet.rejected for the rows."
 
 
 # Exit status (DEVELOPERS.md, "Command line"): 2 when what was typed is wrong, 1 when the job failed on the

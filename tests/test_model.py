@@ -171,6 +171,42 @@ def test_grid_too_big_is_refused_with_its_size():
         Grid(1024, np.linspace(0, 10000, 201))
 
 
+# A bad value is shown as the user would write it: numpy's and astropy's reprs (array([...]), np.float64(1.5),
+# <Quantity [...] pc>) said nothing more and hid the numbers in noise.
+_PLAIN_VALUES = {
+    "edges_nan": (lambda: Grid(16, np.array([0.0, np.nan])), "Got [0.0, nan] instead."),
+    "edges_2d": (lambda: Grid(16, np.ones((2, 2))), "Got [[1.0, 1.0], [1.0, 1.0]] instead."),
+    "edges_long": (lambda: Grid(16, np.arange(100.0)[::-1]),
+                   "Got [99.0, 98.0, 97.0, 96.0, 95.0, 94.0, ..., 5.0, 4.0, 3.0, 2.0, 1.0, 0.0] (100 values) instead."),
+    "distance_max_array": (lambda: ExtinctionModel(distance_max=np.array([1.0, 2.0]) * u.pc).make_grid(),
+                           "Got [1.0, 2.0] pc instead."),
+    "distance_step_numpy": (lambda: ExtinctionModel(distance_step=np.float64(-1.5) * u.pc).make_grid(),
+                            "Got -1.5 instead."),
+    "rv_array": (lambda: read_tracers(simulate_tracers(FIELD, 20, rng=1, **REGION), rv=np.array([3.1, 3.2])),
+                 "Got [3.1, 3.2] instead."),
+}
+
+
+@pytest.mark.parametrize("case", list(_PLAIN_VALUES))
+def test_bad_values_are_shown_as_plain_numbers_not_numpy_reprs(case):
+    make, shown = _PLAIN_VALUES[case]
+    with pytest.raises(ParameterError) as info:
+        make()
+    message = str(info.value)
+    assert shown in message, message
+    for noise in ("array(", "np.float64", "<Quantity", "dtype"):
+        assert noise not in message, message
+
+
+def test_grid_too_big_says_which_settings_to_change():
+    # the 'grid' is not one parameter: the hint names those that size it (the command line turns them into options)
+    with pytest.raises(ParameterError) as info:
+        Grid.linear(6000 * u.pc, 1 * u.pc, nside=1024)
+    message = str(info.value)
+    assert "NSIDE 1024 x 6001 distance edges" in message and "Got NSIDE 1024 with 6001 distance edges instead." in message
+    assert all(f"{name}=" in message for name in ("nside", "distance_step", "distance_max", "distance_edges"))
+
+
 @pytest.mark.parametrize("edges", [[100, 50], [0], [-10, 100], [0, np.nan]])
 def test_bad_distance_edges(edges):
     with pytest.raises(ParameterError, match="distance_edges"):

@@ -11,15 +11,66 @@ from astropy import units as u
 
 from ..exceptions import ParameterError
 
-__all__ = ["param_error", "check_choice", "check_real", "check_int", "check_nside", "check_seed", "check_quiet",
-           "to_value"]
+__all__ = ["param_error", "shown", "Described", "check_choice", "check_real", "check_int", "check_nside", "check_seed",
+           "check_quiet", "to_value", "to_scalar"]
+
+#: Values of an array shown in a message: the first and the last few when there are more.
+_SHOWN_VALUES = 6
+
+
+class Described(str):
+    """A value already put into words ('NSIDE 1024 with 6001 distance edges'): shown as it is, without quotes."""
 
 
 def param_error(name, requirement, value):
-    """Build the project's one-shape ParameterError."""
-    if isinstance(value, np.generic):  # 'Got -1.0', not numpy's repr 'Got np.float64(-1.0)'
-        value = value.item()
-    return ParameterError(f"The '{name}' parameter must be {requirement}. Got {value!r} instead.")
+    """Build the project's one-shape ParameterError (the value as :func:`shown` writes it)."""
+    return ParameterError(f"The '{name}' parameter must be {requirement}. Got {shown(value)} instead.")
+
+
+def shown(value):
+    """A value as a message shows it: plain numbers and lists, not numpy's or astropy's reprs.
+
+    ``np.float64(1.5)`` -> ``1.5``; ``array([1., 2.])`` -> ``[1.0, 2.0]``; ``<Quantity [1., 2.] pc>``
+    -> ``[1.0, 2.0] pc``; a long array -> its first and last values and its size; strings keep
+    their quotes (``'kpc '`` shows the space), a :class:`Described` value is shown as written.
+    """
+    if isinstance(value, Described):
+        return str(value)
+    if isinstance(value, u.Quantity):
+        unit = value.unit.to_string()
+        return shown(value.value) + (f" {unit}" if unit else "")
+    if isinstance(value, (np.ndarray, np.generic)):
+        arr = np.asarray(value)
+        if np.ma.isMaskedArray(value):  # masked entries shown as None
+            arr = np.where(np.ma.getmaskarray(value), None, np.ma.getdata(value).astype(object))
+        if arr.ndim == 0:
+            return repr(_plain(arr.item()))
+        if arr.size > 2 * _SHOWN_VALUES:
+            return _ends(list(arr.ravel()), f"shape {arr.shape}" if arr.ndim > 1 else f"{arr.size} values")
+        return repr(_plain(arr.tolist()))
+    if isinstance(value, (list, tuple)):
+        if len(value) > 2 * _SHOWN_VALUES:
+            return _ends(list(value), f"{len(value)} values")
+        return repr(_plain(value))
+    return repr(value)
+
+
+def _ends(values, size):
+    """'[1.0, 2.0, ..., 99.0] (100 values)': the first and the last values of a long sequence."""
+    head = ", ".join(shown(x) for x in values[:_SHOWN_VALUES])
+    tail = ", ".join(shown(x) for x in values[-_SHOWN_VALUES:])
+    return f"[{head}, ..., {tail}] ({size})"
+
+
+def _plain(value):
+    """Lists and tuples with numpy scalars inside turned into Python numbers (for their repr)."""
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, list):
+        return [_plain(v) for v in value]
+    if isinstance(value, tuple):
+        return tuple(_plain(v) for v in value)
+    return value
 
 
 def check_choice(name, value, choices):
@@ -97,6 +148,14 @@ def to_value(name, value, unit, default_unit=None):
     except (TypeError, ValueError):
         raise param_error(name, f"a number or Quantity in units of {unit}", value) from None
     return np.asarray((arr * u.Unit(default_unit)).to_value(unit), dtype=float)
+
+
+def to_scalar(name, value, unit, default_unit=None):
+    """:func:`to_value` of a single value, as a float; an array raises, naming ``name`` (not numpy's TypeError)."""
+    v = to_value(name, value, unit, default_unit)
+    if v.ndim:
+        raise param_error(name, f"a single value in {unit}", value)
+    return float(v)
 
 
 def _range_text(low, high, low_inc, high_inc, kind):

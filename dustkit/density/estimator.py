@@ -12,7 +12,7 @@ import warnings
 from .._lib import healpix
 from .._lib.progress import extend_total, progress
 from .._lib.validation import (check_choice, check_int, check_nside, check_quiet, check_real, check_seed,
-                                param_error, to_value)
+                                param_error, to_scalar, to_value)
 from ..answers import av_quantities, distance_errors, grid_table, profile_table, query_table, sky_positions
 from ..exceptions import CatalogError, DustkitWarning, ModelNotFittedError, ParameterError
 from ..grid import Grid
@@ -237,7 +237,7 @@ class DensityModel:
                                      f"A_V is cumulative from the Sun). Got a first edge of {first[0]:g} pc instead. "
                                      f"Hint: add 0 in front, e.g. [0, {shown}, ...] pc.")
         else:
-            dmax = float(to_value("distance_max", self.distance_max, u.pc, default_unit=u.pc))
+            dmax = to_scalar("distance_max", self.distance_max, u.pc, default_unit=u.pc)
             check_real("distance_max", dmax, 100.0, 1e5)
             edges = default_distance_edges(dmax)
         return Grid(nside, edges, "ring")
@@ -247,7 +247,7 @@ class DensityModel:
         folds_n, n_samples = check_int("n_folds", self.n_folds, 2, 20), check_int("n_samples", self.n_samples, 4, 4096)
         check_seed(self.random_state)
         check_quiet(self.quiet)
-        radius = float(to_value("active_radius", self.active_radius, u.deg, default_unit=u.deg))
+        radius = to_scalar("active_radius", self.active_radius, u.deg, default_unit=u.deg)
         return folds_n, n_samples, check_real("active_radius", radius, 0.0, 180.0, low_inclusive=False)
 
     def _candidates(self):

@@ -194,7 +194,7 @@ from scipy.sparse.csgraph import connected_components
 from .._lib import healpix
 from .._lib.progress import progress
 from .._lib.sky import separation_deg
-from .._lib.validation import check_int, check_real, param_error, to_value
+from .._lib.validation import check_int, check_real, param_error, to_scalar
 from ..answers import CAUTION
 from ..exceptions import ModelNotFittedError
 
@@ -402,9 +402,9 @@ def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag
     """
     _check_model(model)
     min_contrast = check_real("min_contrast", min_contrast, 1.0, np.inf, low_inclusive=False)
-    exc_min = float(to_value("min_excess", min_excess, u.mag / u.kpc, default_unit=u.mag / u.kpc))
+    exc_min = to_scalar("min_excess", min_excess, u.mag / u.kpc, default_unit=u.mag / u.kpc)
     check_real("min_excess", exc_min, 0.0, np.inf)
-    dav_min = float(to_value("min_delta_av", min_delta_av, u.mag, default_unit=u.mag))
+    dav_min = to_scalar("min_delta_av", min_delta_av, u.mag, default_unit=u.mag)
     check_real("min_delta_av", dav_min, 0.0, np.inf)
     min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
     min_model_probability = check_real("min_model_probability", min_model_probability, 0.0, 1.0)

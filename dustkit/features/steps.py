@@ -11,7 +11,7 @@ from astropy.table import QTable
 from scipy.special import ndtr
 
 from ..exceptions import AssumptionWarning, RowsRejectedWarning
-from .._lib.validation import check_int, check_real, check_seed, param_error, to_value
+from .._lib.validation import check_int, check_real, check_seed, param_error, to_scalar, to_value
 from ..answers import CAUTION
 
 __all__ = [
@@ -363,7 +363,7 @@ def check_common(min_tracers, min_significance, min_delta_av, min_boot_fraction,
     min_tracers = check_int("min_tracers", min_tracers, 2, 100_000)
     # a BIC improvement below 0 would list steps the data favour less than no step
     min_significance = check_real("min_significance", min_significance, 0.0, np.inf)
-    mda = float(to_value("min_delta_av", min_delta_av, u.mag, default_unit=u.mag))
+    mda = to_scalar("min_delta_av", min_delta_av, u.mag, default_unit=u.mag)
     check_real("min_delta_av", mda, 0.0, np.inf)
     min_boot_fraction = check_real("min_boot_fraction", min_boot_fraction, 0.0, 1.0)
     max_steps = check_int("max_steps", max_steps, 1, 100)

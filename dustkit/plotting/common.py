@@ -3,7 +3,7 @@
 import numpy as np
 from astropy import units as u
 
-from .._lib.validation import check_choice, param_error, to_value
+from .._lib.validation import check_choice, param_error, to_scalar, to_value
 
 __all__ = ["COLORS", "style_context", "new_axes", "fitted", "as_deg", "as_pc", "column", "distance_scale", "quantity_label", "check_quantity", "convert", "lon_formatter", "lat_formatter"]
 
@@ -73,7 +73,7 @@ def fitted(model):
 
 
 def as_deg(name, value):
-    return float(to_value(name, value, u.deg, default_unit=u.deg))
+    return to_scalar(name, value, u.deg, default_unit=u.deg)
 
 
 def as_pc(name, value):

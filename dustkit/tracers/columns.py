@@ -150,8 +150,11 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
                 f"Column {rv_col!r} looks like a per-row R_V; it is not used: every row is converted to A_V with "
                 "the one R_V of the read (rv=, command line --rv). Hint: read rows of different R_V separately.",
             )
-    elif "temperature" in explicit:  # targets: the star of their band extinctions (reader.target_temperatures)
-        cols["temperature"] = explicit["temperature"]
+    else:  # targets: the star of their band extinctions (reader.target_temperatures), when named
+        for key in ("temperature", "intrinsic_color"):
+            if key in explicit:
+                cols[key] = explicit[key]
+                break
     if "name" in explicit:
         cols["name"] = explicit["name"]
     elif isinstance(columns, dict) and "name" in columns and columns["name"] is None:
@@ -183,11 +186,19 @@ class _Finder:
                 return c
         return None
 
+    def find_colour(self, exclude=()):
+        """The first intrinsic-colour column (``(BP-RP)_0``, ``bp_rp0``, ...; :func:`intrinsic_color_bands`)."""
+        return next((c for c in self.candidates if c not in exclude and intrinsic_color_bands(c) is not None), None)
 
-def recognised_column(names, role):
-    """The first of ``names`` that is a recognised spelling of ``role`` (``VALUE_ALIASES``), error columns
-    aside, as :func:`resolve_columns` finds it; None if there is none."""
-    return _Finder(list(names), {}).find(VALUE_ALIASES[role])
+
+def recognised_column(names, role, exclude=()):
+    """The first of ``names`` that is a recognised spelling of ``role`` (``VALUE_ALIASES``; for
+    ``"intrinsic_color"`` a colour name with an intrinsic mark), error columns and ``exclude`` aside,
+    as :func:`resolve_columns` finds it; None if there is none."""
+    finder = _Finder(list(names), {})
+    if role == "intrinsic_color":
+        return finder.find_colour(exclude)
+    return finder.find(VALUE_ALIASES[role], exclude)
 
 
 def _explicit_columns(table, columns, ctx, want_reddening):
@@ -397,14 +408,14 @@ def _star_column(explicit, finder, ctx, cols, used):
             cols[key] = explicit[key]
             return
     c = finder.find(VALUE_ALIASES["temperature"], used)
-    colours = [x for x in finder.candidates if x not in used and intrinsic_color_bands(x) is not None]
+    colour = finder.find_colour(used)
     if c is not None:
         cols["temperature"] = c
-        if colours:
+        if colour is not None:
             ctx.assumptions.append(f"temperature column {c!r} used for the source star; intrinsic colour "
-                                   f"{colours[0]!r} also present, not used")
-    elif colours:
-        cols["intrinsic_color"] = colours[0]
+                                   f"{colour!r} also present, not used")
+    elif colour is not None:
+        cols["intrinsic_color"] = colour
 
 
 def _error_columns(names, explicit, cols, used):

@@ -371,23 +371,26 @@ def target_temperatures(targets, temperature=None):
         The targets (a :class:`TargetList` from :func:`read_targets`, or its input table).
     temperature : Quantity['temperature'], str or None
         One temperature, one per row, or the name of a column (in K unless the column has a
-        unit; ``log...`` names hold log10 K). None: the column named with
-        ``read_targets(columns={"temperature": ...})``, else a recognised one (``teff``,
-        ``T_eff``, ``teff_gspphot``, ``logTeff``, ...), else the default source
+        unit; ``log...`` names hold log10 K; a name such as ``(BP-RP)_0`` holds an intrinsic
+        colour). None: the column named with ``read_targets(columns={"temperature": ...})`` or
+        ``{"intrinsic_color": ...}``, else a recognised temperature column (``teff``, ``T_eff``,
+        ``teff_gspphot``, ``logTeff``, ...), else a recognised intrinsic-colour column
+        (``(BP-RP)_0``, ``bp_rp0``, ``(B-V)_0``, ...), else the default source
         (:data:`dustkit.bands.DEFAULT_TEMPERATURE`, 5800 K) for every row.
 
     Returns
     -------
     TargetTemperatures
-        A column is read as ``read_tracers`` reads a temperature column, with the same checks
-        (:func:`dustkit.tracers.temperatures.temperature_values`): text or infinite cells,
-        temperatures <= 0 K and log10 values outside (0, 6) are bad rows (NaN, named in
-        ``rejected``), empty cells take 5800 K and values beyond 2 000-100 000 K the nearest
-        edge, both counted.
+        A column is read as ``read_tracers`` reads it, with the same checks and the same code
+        (:func:`dustkit.tracers.temperatures.temperature_values`; an intrinsic colour through
+        :func:`dustkit.tracers.reddening.colour_temperatures`, blackbodies of the same colour):
+        text or infinite cells, temperatures <= 0 K and log10 values outside (0, 6) are bad rows
+        (NaN, named in ``rejected``), empty cells take 5800 K and values beyond 2 000-100 000 K
+        the nearest edge, both counted.
     """
     from ..bands import DEFAULT_TEMPERATURE, star_temperatures
     from ..bands.inputs import temperature_input
-    from .columns import recognised_column
+    from .reddening import colour_temperatures
     from .temperatures import announce_temperatures, rows_have, temperature_values
 
     table = targets.table if isinstance(targets, TargetList) else targets
@@ -401,23 +404,20 @@ def target_temperatures(targets, temperature=None):
         values = np.broadcast_to(t, (n,)).astype(float)
         return TargetTemperatures(values, f"a {float(values[0]):g} K blackbody" if t.ndim == 0 else
                                   "the temperatures given per target", empty_rejected(), [])
-    if isinstance(temperature, str):
-        if temperature not in table.colnames:
-            raise param_error("temperature", f"a column of the targets ({', '.join(table.colnames)}) or a "
-                              "temperature such as 4500 * u.K", temperature)
-        col = temperature
-    else:
-        col = (targets.meta.get("columns", {}).get("temperature") if isinstance(targets, TargetList) else None)
-        if col is None:
-            col = recognised_column(table.colnames, "temperature")
-        if col is None:
-            return TargetTemperatures(np.full(n, t_default), f"a {t_default:g} K blackbody for every target (the "
-                                      "default: no temperature column such as 'teff')", empty_rejected(), [])
+    col, role = _target_star_column(targets, table, temperature)
+    if col is None:
+        return TargetTemperatures(np.full(n, t_default), f"a {t_default:g} K blackbody for every target (the "
+                                  "default: no temperature column such as 'teff' nor intrinsic colour such as "
+                                  "'(BP-RP)_0')", empty_rejected(), [])
     desc = targets.meta.get("source", "the targets") if isinstance(targets, TargetList) else "the targets"
     ctx = Context(table, desc)
     what = "the band-extinction conversion"
-    values = temperature_values(table, col, ctx)
-    st = star_temperatures(n, temperature=values * u.K)
+    if role == "intrinsic_color":
+        st, described = colour_temperatures(table, col, ctx, t_default, bands_option=None)
+        source = f"the temperatures from {described}"
+    else:
+        st = star_temperatures(n, temperature=temperature_values(table, col, ctx) * u.K)
+        source = f"the temperatures in column {col!r}"
     good = ctx.rej.code < 0
     n_default, n_clipped = announce_temperatures(st, col, ctx, what, t_default, good, rows="targets")
     names = table[targets.meta["columns"]["name"]] if isinstance(targets, TargetList) and \
@@ -433,8 +433,34 @@ def target_temperatures(targets, temperature=None):
     notes = [f"{k} without a value: {t_default:g} K" for k in [n_default] if k]
     notes += [f"{k} beyond 2000-100000 K: set to the nearest edge" for k in [n_clipped] if k]
     notes += [f"{k} unusable: band extinctions left empty" for k in [n_bad] if k]
-    source = f"the temperatures in column {col!r}" + (f" ({'; '.join(notes)})" if notes else "")
+    source += f" ({'; '.join(notes)})" if notes else ""
     return TargetTemperatures(np.where(good, st.temperature.to_value(u.K), np.nan), source, rejected, ctx.notes)
+
+
+def _target_star_column(targets, table, temperature=None):
+    """(column, role) of the targets' stars: ``temperature`` (a column name) or the column named at the read,
+    else one recognised as the tracer reader recognises it (a temperature first, then an intrinsic colour);
+    role is ``"temperature"`` or ``"intrinsic_color"``; (None, None) without one."""
+    from .columns import recognised_column
+    from .reddening import intrinsic_color_bands
+
+    if isinstance(temperature, str):
+        if temperature not in table.colnames:
+            raise param_error("temperature", f"a column of the targets ({', '.join(table.colnames)}) or a "
+                              "temperature such as 4500 * u.K", temperature)
+        is_colour = (intrinsic_color_bands(temperature) is not None
+                     and recognised_column([temperature], "temperature") is None)
+        return temperature, "intrinsic_color" if is_colour else "temperature"
+    named = targets.meta.get("columns", {}) if isinstance(targets, TargetList) else {}
+    roles = ("temperature", "intrinsic_color")
+    for role in roles:  # named at the read (columns=): that one
+        if named.get(role) is not None:
+            return named[role], role
+    for role in roles:
+        col = recognised_column(table.colnames, role, exclude=set(named.values()))
+        if col is not None:
+            return col, role
+    return None, None
 
 
 def _is_dataframe(obj):

@@ -21,6 +21,7 @@ __all__ = [
     "is_bv",
     "reddening_to_av",
     "intrinsic_color_bands",
+    "colour_temperatures",
     "source_temperatures",
     "reddening",
 ]
@@ -134,6 +135,50 @@ def intrinsic_color_bands(colname):
     return None if pair is None else (str(pair[0]), str(pair[1]))
 
 
+def colour_temperatures(table, colname, ctx, t_default, color_bands=None, bands_option="intrinsic_color_bands"):
+    """The stars of an intrinsic-colour column: per-row blackbodies of the same colour, and what they are.
+
+    The one reading of such a column (``(BP-RP)_0``, ``bp_rp0``, ``(B-V)_0``, ...), for the
+    tracers' conversion of a colour excess (:func:`source_temperatures`) and the targets' band
+    extinctions (:func:`dustkit.tracers.reader.target_temperatures`) alike. The colour's bands come
+    from ``color_bands`` or the column's name (:func:`intrinsic_color_bands`); text or infinite
+    cells reject the row in ``ctx.rej`` (named, with the column and the value); empty cells and
+    rows rejected before take ``t_default`` (K); colours beyond the blackbodies' range are set to
+    the nearest edge (both counted in the result, for the caller to announce). ``bands_option``:
+    the caller's parameter for the colour's bands, named in the hint when the name does not tell
+    them (None: the caller has none).
+
+    Returns
+    -------
+    (StarTemperatures, str)
+        The temperatures (:func:`dustkit.bands.star_temperatures`) and their source in words.
+    """
+    from .. import bands as _bands
+
+    bands = _color_tuple(color_bands, "intrinsic_color_bands") or intrinsic_color_bands(colname)
+    if bands is None:
+        raise CatalogError(
+            f"Cannot tell which colour the intrinsic-colour column {colname!r} holds. Hint: "
+            + (f"pass {bands_option}=('BP', 'RP'), or " if bands_option else "")
+            + "name the column like '(BP-RP)_0' or 'bp_rp0'."
+        )
+    try:
+        blue, red = (_bands.get_band(b) for b in bands)
+    except Exception as exc:
+        raise CatalogError(f"Intrinsic-colour column {colname!r}: {exc}") from None
+    if not (blue.has_curve and red.has_curve):
+        raise CatalogError(
+            f"Intrinsic-colour column {colname!r} is a {blue.name}-{red.name} colour, but a colour temperature "
+            "needs two bands with transmission curves (see 'dustkit bands'). Hint: give a temperature column "
+            "(e.g. 'teff') instead, or map the column away with columns={...}."
+        )
+    vals, unit, raw = optional_numbers(table, colname, ctx)
+    use = np.where(ctx.rej.code < 0, vals, np.nan)
+    st = _bands.star_temperatures(ctx.n, colour=use, colour_bands=(blue.name, red.name), default=t_default * u.K)
+    return st, (f"the intrinsic colour {colname!r} (blackbodies of the same {blue.name}-{red.name}, "
+                "dustkit.bands.colour_temperature)")
+
+
 def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_bands=None):
     """Per-row source temperatures (K) for turning a colour excess into A_V, or None.
 
@@ -167,27 +212,7 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
         st = _bands.star_temperatures(n, temperature=use * u.K, default=t_default * u.K)
         source = f"the temperature column {tcol!r}"
     elif ccol is not None:
-        bands = _color_tuple(color_bands, "intrinsic_color_bands") or intrinsic_color_bands(ccol)
-        if bands is None:
-            raise CatalogError(
-                f"Cannot tell which colour the intrinsic-colour column {ccol!r} holds. "
-                "Hint: pass intrinsic_color_bands=('BP', 'RP'), or name the column like '(BP-RP)_0'."
-            )
-        try:
-            blue, red = (_bands.get_band(b) for b in bands)
-        except Exception as exc:
-            raise CatalogError(f"Intrinsic-colour column {ccol!r}: {exc}") from None
-        if not (blue.has_curve and red.has_curve):
-            raise CatalogError(
-                f"Intrinsic-colour column {ccol!r} is a {blue.name}-{red.name} colour, but a colour temperature "
-                "needs two bands with transmission curves (see 'dustkit bands'). Hint: give a temperature column "
-                "(e.g. 'teff') instead, or map the column away with columns={...}."
-            )
-        vals, unit, raw = optional_numbers(table, ccol, ctx)
-        use = np.where(ctx.rej.code < 0, vals, np.nan)
-        st = _bands.star_temperatures(n, colour=use, colour_bands=(blue.name, red.name), default=t_default * u.K)
-        source = (f"the intrinsic colour {ccol!r} (blackbodies of the same {blue.name}-{red.name}, "
-                  "dustkit.bands.colour_temperature)")
+        st, source = colour_temperatures(table, ccol, ctx, t_default, color_bands)
     else:
         if source_temperature is None:
             ctx.note(

@@ -49,7 +49,7 @@ from astropy import units as u
 from .. import plotting
 from ..exceptions import ModelNotFittedError
 from .._lib.formats import TABLE_FORMATS
-from .._lib.validation import check_choice, check_int, param_error, to_value
+from .._lib.validation import check_choice, check_int, param_error, to_scalar
 from ..laws import get_law
 from ..layer import given_layer
 from ..model import CAUTION, DENSITY_LIMIT, ExtinctionModel
@@ -154,8 +154,8 @@ class Explorer:
         else:
             defaults = ExtinctionModel.param_defaults()  # the one list of model parameters
             nside = params.get("nside", defaults["nside"])
-            step = float(to_value("distance_step", params.get("distance_step", defaults["distance_step"]), u.pc, u.pc))
-            dmax = float(to_value("distance_max", params.get("distance_max", defaults["distance_max"]), u.pc, u.pc))
+            step = to_scalar("distance_step", params.get("distance_step", defaults["distance_step"]), u.pc, u.pc)
+            dmax = to_scalar("distance_max", params.get("distance_max", defaults["distance_max"]), u.pc, u.pc)
         for k in ("nside", "distance_step", "distance_max", "distance_edges"):
             params.pop(k, None)
         params.setdefault("quiet", True)
@@ -721,8 +721,8 @@ class Explorer:
 
     def select(self, l, b, radius=None):
         """Choose the sight line (deg) and redraw; what a click on the sky map does."""
-        lon = float(to_value("l", l, u.deg, u.deg)) % 360.0
-        lat = float(to_value("b", b, u.deg, u.deg))
+        lon = to_scalar("l", l, u.deg, u.deg) % 360.0
+        lat = to_scalar("b", b, u.deg, u.deg)
         if not -90.0 <= lat <= 90.0:
             raise param_error("b", "a latitude in [-90, 90] deg", lat)
         self._syncing = True
@@ -730,7 +730,7 @@ class Explorer:
             self.l_widget.value = round(lon, 3)
             self.b_widget.value = round(lat, 3)
             if radius is not None:
-                self.radius_widget.value = float(to_value("radius", radius, u.deg, u.deg))
+                self.radius_widget.value = to_scalar("radius", radius, u.deg, u.deg)
         finally:
             self._syncing = False
         self._redraw_sight_line()
