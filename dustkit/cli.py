@@ -579,12 +579,13 @@ def _given_layer_file(path):
 
 def _layer_lines(layer, given=None):
     how = f"given in {given}, not fitted" if given else "robust fit to the tracers"
-    held = "NOT FITTED: reference value, the tracers show no dust; "
+    none = bool(getattr(layer, "no_dust", False))
+    held = f"NOT FITTED: reference value, the tracers {'show no dust' if none else 'cannot fix it'}; "
     flat = set(getattr(layer, "not_fitted", ()))
     return [
         f"Dust layer (exponential in height, {how}):",
         f"  a0     = {layer.a0:.3f} +- {layer.a0_err:.3f} mag/kpc   (mid-plane A_V per kpc"
-        + (f"; no dust detected: below {layer.a0 + 2 * layer.a0_err:.3f} at 2 sigma)" if flat else ")"),
+        + (f"; no dust detected: below {layer.a0 + 2 * layer.a0_err:.3f} at 2 sigma)" if none else ")"),
         f"  h      = {layer.h:.1f} +- {layer.h_err:.1f} pc        ({held if 'h' in flat else ''}scale height)",
         f"  z_sun  = {layer.z_sun:.1f} +- {layer.z_sun_err:.1f} pc        "
         f"({held if 'z_sun' in flat else ''}height of the Sun above the mid-plane)",
@@ -838,7 +839,7 @@ def _cmd_estimate(args, out):
 def _cmd_layer(args, out):
     from .density import catalogue_lift, fit_catalogue_layer
     from .exceptions import DustkitWarning
-    from .layer import lift_caution
+    from .layer_lift import lift_caution
 
     _check_law(args)
     _check_rejects(args)

@@ -10,11 +10,12 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 from astropy import units as u
-from scipy import optimize, stats
+from scipy import optimize
 
 from .exceptions import CatalogError, DustkitWarning
 from ._lib.validation import check_int, check_real, param_error, to_scalar, to_value
-from .tracers.rules import AV_ERR_FLOOR, floor_errors
+from .layer_lift import LIFT_EXCESS, cloud_lift, lift_caution  # noqa: F401  (importable here too)
+from .tracers.rules import floor_errors
 
 __all__ = ["DustLayer", "layer_av", "fit_layer", "given_layer", "cloud_lift", "lift_caution", "sky_blocks",
            "layer_av_pc", "layer_av_mu", "layer_slope_pc", "log_distance_sigma", "distance_nodes", "BOOTSTRAP_RESAMPLES",
@@ -160,8 +161,9 @@ class DustLayer:
     n_used: int = 0
     covariance: np.ndarray = field(default_factory=lambda: np.zeros((3, 3)), repr=False, compare=False)
     pull: np.ndarray = field(default_factory=lambda: np.zeros(3), repr=False, compare=False)
-    #: Parameters the tracers could not fix, held at :data:`REFERENCE_LAYER` (their errors the
-    #: reference spread): ``("h", "z_sun")`` when the tracers show no dust; empty otherwise.
+    #: Parameters the tracers could not fix, held at :data:`REFERENCE_LAYER` (their errors the reference
+    #: spread): ``("h", "z_sun")`` when the tracers show no dust; those of h and z_sun they cannot tell
+    #: apart from the others (a singular fit, e.g. one small field: ``("z_sun",)``); empty otherwise.
     not_fitted: tuple = ()
 
     def __post_init__(self):
@@ -230,11 +232,21 @@ class DustLayer:
         return np.nan_to_num(np.asarray(getattr(self, "pull", np.zeros(3)), float).reshape(3))
 
     def statistical_covariance(self):
-        """The parameters' statistical error covariance (3, 3), ``covariance`` as a float array (NaN read as 0)."""
-        return np.nan_to_num(np.asarray(self.covariance, float))
+        """The parameters' statistical error covariance (3, 3), ``covariance`` as a float array.
+
+        A parameter whose variance is NaN or infinite (files written before :func:`fit_layer` held what the
+        tracers cannot fix) gets its reference spread (:data:`REFERENCE_LAYER`; a0: 100%), uncorrelated: never 0.
+        """
+        cov = np.asarray(self.covariance, float).reshape(3, 3)
+        if np.all(np.isfinite(cov)):
+            return cov
+        bad = ~np.isfinite(np.diag(cov))
+        cov = np.where(np.isfinite(cov) & ~bad[:, None] & ~bad[None, :], cov, 0.0)
+        spread = np.array([abs(self.a0), REFERENCE_LAYER[1], REFERENCE_LAYER[3]])
+        return cov + np.diag(np.where(bad, spread**2, 0.0))
 
     def error_covariance(self):
-        """The parameters' full error covariance (3, 3): ``covariance`` plus ``outer(pull, pull)`` (NaN read as 0)."""
+        """The parameters' full error covariance (3, 3): :meth:`statistical_covariance` plus ``outer(pull, pull)``."""
         pull = self.pull_vector()
         return self.statistical_covariance() + np.outer(pull, pull)
 
@@ -281,17 +293,23 @@ class DustLayer:
                    pull=np.asarray(state.get("pull", np.zeros(3)), float).reshape(3),
                 not_fitted=tuple(k for k in str(state.get("not_fitted", "") or "").split(",") if k))
 
+    @property
+    def no_dust(self):
+        """True for a layer whose h and z_sun are held and whose a0 is below :data:`DETECTION_SIGMA` of its errors."""
+        return set(self.not_fitted) == {"h", "z_sun"} and self.a0 <= DETECTION_SIGMA * self.a0_err
+
     def __str__(self):
-        if self.not_fitted:
+        mark = {k: " not fitted (reference value)" if k in self.not_fitted else "" for k in ("h", "z_sun")}
+        tail = f" (from {self.n_used} tracers, scatter {self.scatter:.3f} mag)" if self.n_used else ""
+        if self.no_dust:
             return (f"dust layer: no dust detected, a0 = {self.a0:.3f} +- {self.a0_err:.3f} mag/kpc (below "
                     f"{self.a0 + 2 * self.a0_err:.3f} at 2 sigma); h = {self.h:.0f} +- {self.h_err:.0f} pc and "
-                    f"z_sun = {self.z_sun:.0f} +- {self.z_sun_err:.0f} pc not fitted (reference values)"
-                    + (f" (from {self.n_used} tracers, scatter {self.scatter:.3f} mag)" if self.n_used else ""))
+                    f"z_sun = {self.z_sun:.0f} +- {self.z_sun_err:.0f} pc not fitted (reference values)" + tail)
         return (
             f"dust layer: a0 = {self.a0:.3f} +- {self.a0_err:.3f} mag/kpc, "
-            f"h = {self.h:.1f} +- {self.h_err:.1f} pc, "
-            f"z_sun = {self.z_sun:.1f} +- {self.z_sun_err:.1f} pc"
-            + (f" (from {self.n_used} tracers, scatter {self.scatter:.3f} mag)" if self.n_used else "")
+            f"h = {self.h:.1f} +- {self.h_err:.1f} pc{mark['h']}, "
+            f"z_sun = {self.z_sun:.1f} +- {self.z_sun_err:.1f} pc{mark['z_sun']}"
+            + tail
         )
 
 
@@ -368,10 +386,12 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
     Each tracer's uncertainty combines its A_V error, its distance error times the layer's
     slope dA_V/dd, and an intrinsic scatter re-estimated from the residuals (1.4826 x MAD)
     over three passes. Parameter errors come from the Jacobian at the solution, scaled by
-    the robust residual variance. Tracers that cannot fix the layer (all at one latitude,
-    position or distance: an error larger than its parameter's scale) are told with a
-    ``DustkitWarning`` naming their span. Typical literature values for open clusters: scale height
-    about 125 pc and z_sun about 15-25 pc (Joshi 2005, MNRAS 362, 1259).
+    the robust residual variance. Where their information is singular (no sight line crosses
+    the mid-plane: a0 and z_sun enter only as ``a0 exp(-z_sun / h)``), the fewest of h and z_sun
+    that make it regular are held at :data:`REFERENCE_LAYER`, their spread carried into the
+    covariance, listed in ``not_fitted`` (:func:`_held_fit`). A ``DustkitWarning`` naming the
+    tracers' span says so, or that an error exceeds its parameter's scale. Typical literature values
+    for open clusters: scale height about 125 pc and z_sun about 15-25 pc (Joshi 2005, MNRAS 362, 1259).
     """
     initial = _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, distance_shift)
     b = np.asarray(tracers.b, float)
@@ -398,21 +418,24 @@ def fit_layer(tracers, *, f_scale=2.0, initial=(1.0, 100.0, 15.0), max_tracers=5
         _warn_no_dust(flat, b, d)
         return flat
     p, scatter, cov = _solve_layer(b, d, de, av, ae, initial, f_scale)
+    labels = None
     if block_errors or (n_boot and n_boot > 0):
         labels = sky_blocks(tracers.l, tracers.b) if blocks is None else np.asarray(blocks)
         if n > max_tracers:
             labels = labels[pick]
-        if block_errors:
-            cov = _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, cov)
-        else:
-            cov = _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, int(n_boot), random_state, cov, scatter)
-    pull = _cloud_pull(b, d, de, av, ae, p, f_scale, scatter)
+    errors = (labels, block_errors, int(n_boot), random_state)
+    cov = _fit_errors(b, d, de, av, ae, p, f_scale, scatter, cov, errors)
+    held = _unfixed(_information(b, d, de, av, ae, p, scatter, f_scale), p, cov)
+    if held:  # the tracers cannot tell these apart from the others: held at the reference, its spread carried
+        p, scatter, cov, pull = _held_fit(b, d, de, av, ae, p, f_scale, held, errors)
+    else:
+        pull = _cloud_pull(b, d, de, av, ae, p, f_scale, scatter)
     err = np.sqrt(np.clip(np.diag(cov), 0, None) + pull**2)
-    _warn_if_undetermined(p, err, b, d)
+    _warn_if_undetermined(p, err, b, d, held)
     return DustLayer(
         a0=float(p[0]), h=float(p[1]), z_sun=float(p[2]),
         a0_err=float(err[0]), h_err=float(err[1]), z_sun_err=float(err[2]),
-        scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull,
+        scatter=scatter, n_used=int(b.size), covariance=cov, pull=pull, not_fitted=held,
     )
 
 
@@ -477,14 +500,91 @@ def _warn_no_dust(layer, b, d):
         DustkitWarning, stacklevel=3)
 
 
+#: Smallest over largest eigenvalue of the tracers' information on (a0, h, z_sun) in units of the reference
+#: spreads (a0: its value), at or below which the fit is singular (:func:`_unfixed`). 200 invented tracers
+#: in 3 x 3 deg at b = 1 deg: 1e-17 when no sight line crosses the mid-plane (a0 and z_sun then enter only
+#: as ``a0 exp(-z_sun / h)``), else 1e-9 to 1e-3; the benchmarks' galaxies 2e-3 to 5e-3.
+SINGULAR_INFORMATION = 1e-12
+
+_PARAMS = ("a0", "h", "z_sun")
+
+
+def _fit_errors(b, d, de, av, ae, p, f_scale, scatter, cov, errors, free=None):
+    """The (``free``) parameters' covariance: the Jacobian's ``cov`` or what ``errors`` = (labels, block, n_boot, seed) ask."""
+    labels, block_errors, n_boot, random_state = errors
+    if labels is None:
+        return cov
+    if block_errors:
+        return _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, cov, free)
+    return _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, n_boot, random_state, cov, scatter, free)
+
+
+def _information(b, d, de, av, ae, p, scatter, f_scale):
+    """The tracers' information (3, 3) on (a0, h, z_sun) at ``p``: ``sum psi'(z) g g^T`` of the soft-L1 fit."""
+    g, z = _residual_gradient(b, d, de, av, ae, p, scatter)
+    return (g * ((1.0 + (z / f_scale) ** 2) ** -1.5)[:, None]).T @ g
+
+
+def _unfixed(info, p, cov):
+    """The parameters to hold: ``()`` for a regular fit, else the fewest of h and z_sun whose holding makes it regular.
+
+    Singular: ``info`` (:func:`_information`) in units of the reference spreads has an eigenvalue at
+    most :data:`SINGULAR_INFORMATION` of its largest, or ``cov`` is not finite or not positive definite.
+    Of h and z_sun, the one the least-fixed direction moves more (in reference spreads) is tried first.
+    a0 is never held: given h and z_sun it is linear, and tracers that show dust fix it.
+    """
+    scale = np.array([max(abs(p[0]), _LOWER[0]), REFERENCE_LAYER[1], REFERENCE_LAYER[3]])
+    info = np.nan_to_num(np.asarray(info, float) * np.outer(scale, scale))
+
+    def singular(free):
+        w = np.linalg.eigvalsh(info[np.ix_(free, free)])
+        return w[0] <= SINGULAR_INFORMATION * w[-1]
+
+    cov = np.asarray(cov, float)
+    broken = not np.all(np.isfinite(cov)) or np.linalg.eigvalsh(0.5 * (cov + cov.T))[0] <= 0
+    if not (broken or singular(np.ones(3, bool))):
+        return ()
+    least = np.linalg.eigh(info)[1][:, 0] ** 2
+    first, second = sorted(("h", "z_sun"), key=lambda k: -least[_PARAMS.index(k)])
+    for held in ((first,), (second,)):
+        if not singular(np.array([k not in held for k in _PARAMS])):
+            return held
+    return ("h", "z_sun")
+
+
+def _held_fit(b, d, de, av, ae, p, f_scale, held, errors):
+    """The fit with ``held`` parameters at :data:`REFERENCE_LAYER`: (params, scatter, covariance (3, 3), pull).
+
+    The free ones are refitted; their covariance given the held ones (``errors``, :func:`_fit_errors`)
+    plus the reference spread carried through ``S = -I_ff^-1 I_fh`` (how the fit's free parameters
+    follow the held ones; ``I`` its information), the delta method: ``C = C_f + U diag(spread^2) U^T``,
+    ``U`` the identity on the held rows and ``S`` on the free ones. Along what the tracers fix (e.g.
+    ``a0 exp(-z_sun / h)``) the spread cancels; elsewhere it reaches the answers. Held ones have no pull.
+    """
+    free = np.array([k not in held for k in _PARAMS])
+    start = np.array(p, float)
+    spread = np.array([0.0, REFERENCE_LAYER[1], REFERENCE_LAYER[3]])[~free]
+    start[1:] = np.where(free[1:], start[1:], (REFERENCE_LAYER[0], REFERENCE_LAYER[2]))
+    q, scatter, cov_free = _solve_layer(b, d, de, av, ae, start, f_scale, free=free)
+    cov_free = _fit_errors(b, d, de, av, ae, q, f_scale, scatter, cov_free, errors, free)
+    info = _information(b, d, de, av, ae, q, scatter, f_scale)
+    u = np.zeros((3, spread.size))
+    u[~free] = np.eye(spread.size)
+    u[free] = -np.linalg.pinv(info[np.ix_(free, free)]) @ info[np.ix_(free, ~free)]
+    cov = (u * spread**2) @ u.T
+    cov[np.ix_(free, free)] += cov_free
+    return q, scatter, cov, _cloud_pull(b, d, de, av, ae, q, f_scale, scatter, free=free)
+
+
 #: The range the layer's fit searches: a0 (mag/kpc), h (pc), z_sun (pc).
 _LOWER = np.array([1e-4, 5.0, -300.0])
 _UPPER = np.array([50.0, 5000.0, 300.0])
 
 
-def _warn_if_undetermined(p, err, b, d):
-    """A DustkitWarning when the tracers cannot fix the layer: a parameter at the edge of the range
-    the fit searches, or an error above its own scale (or not finite).
+def _warn_if_undetermined(p, err, b, d, held=()):
+    """A DustkitWarning when the tracers cannot fix the layer: parameters ``held`` at the reference
+    (:func:`_unfixed`), a parameter at the edge of the range the fit searches, or an error above
+    its own scale (or not finite).
 
     a0's error above a0, h's above h, z_sun's above h (the Sun's height not known to a scale
     height): tracers at one latitude, one position or one distance leave the three
@@ -496,12 +596,18 @@ def _warn_if_undetermined(p, err, b, d):
     low = (p[0] <= 10 * _LOWER[0], p[1] <= 1.2 * _LOWER[1], p[2] <= 0.95 * _LOWER[2])
     high = (p[0] >= 0.95 * _UPPER[0], p[1] >= 0.8 * _UPPER[1], p[2] >= 0.95 * _UPPER[2])
     edge = [f"{k} = {v:.3g} (near the {'lowest' if lo else 'highest'} the fit tries)"
-            for k, v, lo, hi in zip(("a0", "h", "z_sun"), p, low, high) if lo or hi]
+            for k, v, lo, hi in zip(_PARAMS, p, low, high) if (lo or hi) and k not in held]
     scale = {"a0": p[0], "h": p[1], "z_sun": p[1]}
-    loose = [f"{k} ({e:.3g})" for k, e in zip(("a0", "h", "z_sun"), err) if not np.isfinite(e) or e > scale[k]]
-    if not (edge or loose):
+    loose = [f"{k} ({e:.3g})" for k, e in zip(_PARAMS, err) if (not np.isfinite(e) or e > scale[k]) and k not in held]
+    if not (edge or loose or held):
         return
     why = []
+    if held:
+        ref, names = {"h": REFERENCE_LAYER[:2], "z_sun": REFERENCE_LAYER[2:]}, " and ".join(held)
+        why.append(f"they cannot tell {names} apart from the other parameters (the fit's information is singular), so "
+                   f"{names} {'is' if len(held) == 1 else 'are'} not fitted but held at the reference "
+                   + ", ".join(f"{k} = {ref[k][0]:.0f} +- {ref[k][1]:.0f} pc" for k in held) + " (Joshi 2005; "
+                   f"DustLayer.not_fitted), that spread carried into the errors; a0 = {p[0]:.3g} +- {err[0]:.2g}")
     if edge:
         why.append("the fit stopped at the edge of its range: " + ", ".join(edge)
                    + " (tracers that show no dust layer, e.g. every A_V near 0, end there)")
@@ -509,12 +615,15 @@ def _warn_if_undetermined(p, err, b, d):
         why.append("the error of " + ", ".join(loose)
                    + f" is undefined or larger than its scale (a0 = {p[0]:.3g} mag/kpc, h = {p[1]:.3g} pc)")
     z = d * np.sin(np.deg2rad(b))
+    mean = ("answers that lean on the layer, with their errors, mean little" if edge or loose else
+            "answers near them keep what the tracers say, and away from them (other latitudes, the other side "
+            "of the mid-plane) the reference spread widens their errors")
     warnings.warn(
         f"These {b.size} tracers do not determine the smooth dust layer: " + "; ".join(why)
         + f". They span latitudes {b.min():.2f} to {b.max():.2f} deg, heights {z.min():.0f} to {z.max():.0f} pc "
-        f"and distances {d.min():.0f} to {d.max():.0f} pc; answers that lean on the layer, with their errors, mean "
-        "little. Hint: check the catalogue's reddening column, add tracers over a range of latitudes and "
-        "distances, or give a layer fitted to a wider catalogue (layer=..., dustkit build --layer-from).",
+        f"and distances {d.min():.0f} to {d.max():.0f} pc; {mean}. Hint: check the catalogue's reddening column, "
+        "add tracers over a range of latitudes and distances, or give a layer fitted to a wider catalogue "
+        "(layer=..., dustkit build --layer-from).",
         DustkitWarning, stacklevel=3)
 
 
@@ -537,46 +646,6 @@ def _check_fit_options(tracers, f_scale, initial, max_tracers, n_boot, blocks, d
     if distance_shift is not None and not np.all(np.isfinite(np.asarray(distance_shift, float))):
         raise param_error("distance_shift", "finite (a shift in ln distance per tracer)", "non-finite values")
     return tuple(float(x) for x in start)
-
-
-#: Share of the tracers more than 2 of their own errors above a fitted layer, beyond the share
-#: below it, from which :func:`cloud_lift` says clouds lift the layer (with the split between
-#: the two sides unlikely, at 5%, for a fair coin, so that three tracers of forty do not): in the invented galaxies of
-#: ``benchmarks/galaxies.py`` (six draws each) it holds in every draw of the sparse catalogue
-#: (layer 7-14% high) and of five large clouds (3-6% high), in one of six smooth ones (2.3%), in
-#: none of the others (the clumpy galaxy's tails are even: its clumps are everywhere), and in the
-#: demo's Veyra Field with :func:`fit_layer` (15% high; 63 tracers above, 41 below), though not
-#: with the density model's fit over the distance errors (57 above, 40 below: 4.3%).
-LIFT_EXCESS = 0.05
-
-
-def cloud_lift(layer, b_deg, distance_pc, distance_err_pc, av, av_err):
-    """How far tracers above a layer outnumber those below it: a dict ``above``, ``below`` (shares), ``lifted``.
-
-    Noise alone puts as many tracers more than 2 sigma (their own A_V error and distance error
-    through the layer's slope) above a fitted layer as below it; clouds only add extinction,
-    so where they hold much of a region's dust the tracers behind them outnumber the rest
-    above, and the fit through them lies above the cloud-free sight lines. ``lifted`` when the
-    excess share is at least :data:`LIFT_EXCESS` and as many above out of those on either side
-    is unlikely for a fair coin (one-sided binomial probability below 0.05). A_V errors are
-    floored at ``AV_ERR_FLOOR``, as for the fit.
-    """
-    b, d, de, av = (np.asarray(x, float) for x in (b_deg, distance_pc, distance_err_pc, av))
-    sigma = layer.tracer_errors(b, d, de, np.maximum(np.asarray(av_err, float), AV_ERR_FLOOR))
-    z = (av - layer.av_pc(b, d)) / np.maximum(sigma, 1e-12)
-    n_up, n_down = int(np.sum(z > 2.0)), int(np.sum(z < -2.0))
-    n = max(z.size, 1)
-    excess = (n_up - n_down) / n
-    lifted = bool(excess >= LIFT_EXCESS and stats.binom.sf(n_up - 1, n_up + n_down, 0.5) < 0.05)
-    return {"above": n_up / n, "below": n_down / n, "lifted": lifted}
-
-
-def lift_caution(lift):
-    """The sentence that goes with a :func:`cloud_lift` result that says ``lifted``."""
-    return (f"{100 * lift['above']:.0f}% of the tracers lie more than 2 sigma above the fitted layer and "
-            f"{100 * lift['below']:.0f}% below it: clouds lift the layer, and answers on cloud-free sight "
-            "lines that lean on it (in front of clouds, between sparse tracers) may come out several per cent "
-            "too high. A layer fitted to a wider catalogue avoids it (layer=..., dustkit build --layer-from).")
 
 
 def sky_blocks(l_deg, b_deg, min_blocks=None):
@@ -610,8 +679,11 @@ def distance_nodes(n):
     return x, w / w.sum()
 
 
-def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
+def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None, free=None):
     """Robust weighted least squares of the layer; returns (params, intrinsic scatter, Jacobian covariance).
+
+    ``free`` (three bools, default all): the parameters fitted; the others stay at ``initial``,
+    and the covariance is that of the free ones.
 
     Each tracer's prediction is the layer's A_V averaged over its distance error (a log-normal
     of ``de / d`` about ``d``, :data:`LAYER_NODES` Gauss-Hermite nodes), as the density model's
@@ -620,8 +692,15 @@ def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
     tracers with 8-10% distance errors and no cloud, A_V along the plane at 2 kpc came out
     0.8% high, more than its 0.6% statistical error, against 0.2% with the average).
     """
-    lo, hi = _LOWER, _UPPER
-    p = np.clip(np.asarray(initial, float), lo + 1e-9, hi - 1e-9)
+    free = np.ones(3, bool) if free is None else np.asarray(free, bool)
+    lo, hi = _LOWER[free], _UPPER[free]
+    p = np.clip(np.asarray(initial, float), _LOWER + 1e-9, _UPPER - 1e-9)
+
+    def full(q):
+        x = p.copy()
+        x[free] = q
+        return x
+
     if scatter is None:
         scatter = 0.1 * max(float(np.median(np.abs(av))), 0.01)
     predict = _averaged_layer(b, d, de)
@@ -630,22 +709,23 @@ def _solve_layer(b, d, de, av, ae, initial, f_scale, n_pass=3, scatter=None):
         sigma = np.sqrt(ae**2 + (slope * de) ** 2 + scatter**2)
 
         def resid(q):
-            return (av - predict(q)) / sigma
+            return (av - predict(full(q))) / sigma
 
-        sol = optimize.least_squares(resid, p, bounds=(lo, hi), loss="soft_l1", f_scale=f_scale, x_scale=[1.0, 100.0, 10.0])
-        p = sol.x
+        sol = optimize.least_squares(resid, p[free], bounds=(lo, hi), loss="soft_l1", f_scale=f_scale,
+                                     x_scale=np.array([1.0, 100.0, 10.0])[free])
+        p = full(sol.x)
         raw = av - predict(p)
         mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
         meas = np.sqrt(np.median(ae**2 + (slope * de) ** 2))
         scatter = float(np.sqrt(max(mad**2 - meas**2, (0.01) ** 2)))
 
-    r = resid(p)
+    r = resid(p[free])
     robust_var = (1.4826 * np.median(np.abs(r))) ** 2
     jac = sol.jac
     try:
         cov = np.linalg.inv(jac.T @ jac) * max(robust_var, 1e-12)
     except np.linalg.LinAlgError:
-        cov = np.full((3, 3), np.nan)
+        cov = np.full((free.sum(),) * 2, np.nan)
     return p, scatter, cov
 
 
@@ -663,7 +743,7 @@ def _averaged_layer(b, d, de):
     return predict
 
 
-def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
+def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback, free=None):
     """Cluster-robust sandwich covariance (3, 3) of the soft-L1 layer fit ``p``, tracers grouped by ``labels``.
 
     With ``z`` the residuals in units of each tracer's total error (as in the fit's last pass)
@@ -677,20 +757,12 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
     (24 x 12 deg) the layer's A_V errors were 1.31 times too small by RMS without the floor,
     1.08 with it (the Jacobian's alone 1.05). With fewer than :data:`MIN_BLOCKS` blocks (with
     one block the sums are the fit's own estimating equations, zero at the solution) the
-    correlations are ``fallback``'s too.
+    correlations are ``fallback``'s too. With ``free`` (three bools), that of the free parameters only.
     """
-    predict = _averaged_layer(b, d, de)
-    sigma = np.sqrt(ae**2 + (layer_slope_pc(b, d, *p) * de) ** 2 + scatter**2)
-    z = (av - predict(p)) / sigma
-    g = np.empty((b.size, 3))
-    for j, step in enumerate((1e-4 * p[0], 1e-3 * p[1], 1e-2)):  # central differences
-        hi, lo = p.copy(), p.copy()
-        hi[j] += step
-        lo[j] -= step
-        g[:, j] = (predict(lo) - predict(hi)) / (2.0 * step * sigma)
+    g, z = _residual_gradient(b, d, de, av, ae, p, scatter, free)
     u2 = 1.0 + (z / f_scale) ** 2
     _, block = np.unique(labels, return_inverse=True)
-    score = np.zeros((block.max() + 1, 3))
+    score = np.zeros((block.max() + 1, g.shape[1]))
     np.add.at(score, block, g * (z / np.sqrt(u2))[:, None])
     n_blocks = score.shape[0]
     try:
@@ -699,6 +771,22 @@ def _block_covariance(b, d, de, av, ae, p, f_scale, scatter, labels, fallback):
         return fallback
     cov = a_inv @ (score.T @ score) @ a_inv * (n_blocks / max(n_blocks - 1, 1))
     return _with_variances(cov if n_blocks >= MIN_BLOCKS else fallback, np.maximum(np.diag(cov), np.diag(fallback)))
+
+
+def _residual_gradient(b, d, de, av, ae, p, scatter, free=None):
+    """(d z / d p over the ``free`` parameters (n, k), z): ``z`` the residuals in units of each tracer's total error."""
+    predict = _averaged_layer(b, d, de)
+    sigma = np.sqrt(ae**2 + (layer_slope_pc(b, d, *p) * de) ** 2 + scatter**2)
+    z = (av - predict(p)) / sigma
+    cols = np.flatnonzero(np.ones(3, bool) if free is None else free)
+    g = np.empty((b.size, cols.size))
+    steps = (1e-4 * p[0], 1e-3 * p[1], 1e-2)
+    for k, j in enumerate(cols):  # central differences
+        hi, lo = p.copy(), p.copy()
+        hi[j] += steps[j]
+        lo[j] -= steps[j]
+        g[:, k] = (predict(lo) - predict(hi)) / (2.0 * steps[j] * sigma)
+    return g, z
 
 
 def _with_variances(cov, var):
@@ -712,7 +800,7 @@ def _with_variances(cov, var):
 MIN_BLOCKS = 20
 
 
-def _cloud_pull(b, d, de, av, ae, p, f_scale, scatter, cut=2.0, n_iter=4):
+def _cloud_pull(b, d, de, av, ae, p, f_scale, scatter, cut=2.0, n_iter=4, free=None):
     """Shift of the layer's parameters (a0, h, z_sun) when tracers above it by more than ``cut`` sigma are set aside.
 
     Clouds only add extinction: the tracers behind them and behind their faint outskirts
@@ -726,7 +814,7 @@ def _cloud_pull(b, d, de, av, ae, p, f_scale, scatter, cut=2.0, n_iter=4):
     that systematic error, and the fit itself is kept. With no clouds the cut trims the
     upper tail of the noise alone and the shift is about a tenth of a tracer's relative
     error (measured: 0.8-1.2% in a0 against a 0.5% bootstrap error for 2 500 tracers with
-    7-10% errors): conservative there.
+    7-10% errors): conservative there. Parameters not ``free`` stay held (their shift is zero).
     """
     q = np.asarray(p, float).copy()
     mu = np.sin(np.deg2rad(b))
@@ -735,12 +823,13 @@ def _cloud_pull(b, d, de, av, ae, p, f_scale, scatter, cut=2.0, n_iter=4):
         keep = (av - layer_av_mu(mu, d, *q)) < cut * sigma
         if keep.all() or keep.sum() < 5:
             break
-        q, _, _ = _solve_layer(b[keep], d[keep], de[keep], av[keep], ae[keep], q, f_scale, scatter=scatter)
+        q, _, _ = _solve_layer(b[keep], d[keep], de[keep], av[keep], ae[keep], q, f_scale, scatter=scatter, free=free)
     return np.asarray(p, float) - q
 
 
-def _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, n_boot, random_state, jac_cov, scatter):
-    """Covariance of the layer parameters from a block bootstrap, no smaller than ``jac_cov`` on the diagonal."""
+def _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, n_boot, random_state, jac_cov, scatter, free=None):
+    """Covariance of the (``free``) parameters from a block bootstrap, no smaller than ``jac_cov`` on the diagonal."""
+    free = np.ones(3, bool) if free is None else free
     uniq, inv = np.unique(labels, return_inverse=True)
     members = np.argsort(inv, kind="stable")
     starts = np.concatenate([[0], np.cumsum(np.bincount(inv))])
@@ -751,9 +840,10 @@ def _bootstrap_cov(b, d, de, av, ae, p, f_scale, labels, n_boot, random_state, j
         idx = np.concatenate([members[starts[k]:starts[k + 1]] for k in pick])
         if idx.size < 5:
             continue
-        q, _, _ = _solve_layer(b[idx], d[idx], de[idx], av[idx], ae[idx], p, f_scale, n_pass=1, scatter=scatter)
-        draws.append(q)
+        q, _, _ = _solve_layer(b[idx], d[idx], de[idx], av[idx], ae[idx], p, f_scale, n_pass=1, scatter=scatter,
+                               free=free)
+        draws.append(q[free])
     if len(draws) < 5:
         return jac_cov
-    boot = np.cov(np.asarray(draws).T)
+    boot = np.atleast_2d(np.cov(np.asarray(draws).T))
     return _with_variances(boot, np.maximum(np.diag(boot), np.diag(jac_cov)))

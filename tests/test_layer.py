@@ -407,3 +407,114 @@ def test_tracers_without_dust_are_told_once_by_the_fit_and_by_a_build(recwarn):
     dustkit.build_model(none, quiet=True)
     said = [w for w in recwarn if issubclass(w.category, DustkitWarning) and "show no dust" in str(w.message)]
     assert len(said) == 1 and "layer=..." in str(said[0].message) and "not fitted" in str(said[0].message)
+
+
+def _one_small_field():
+    """200 invented tracers of the smooth layer alone in one 3 x 3 deg field at b = 1 deg (dustkit.simulate).
+
+    With this seed no sight line crosses the mid-plane at the fitted z_sun, so a0 and z_sun enter
+    only as ``a0 exp(-z_sun / h)``: the fit's information is singular (about 1 such fit in 16).
+    """
+    import warnings
+
+    import dustkit
+
+    field = DustField(a0=1.0, h=120.0, z_sun=20.0)
+    t = simulate_tracers(field, 200, rng=np.random.default_rng(13), l_range=(119.0, 122.0), b_range=(-0.5, 2.5),
+                         distance_max=3000)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return field, t, dustkit.read_tracers(t)
+
+
+def test_a_singular_small_field_holds_z_sun_at_the_reference_and_never_gives_zero_error():
+    # Before: the fit's covariance held entries of 1e15, was not symmetric and had a negative
+    # eigenvalue (other draws: NaN or inf), read as 0 where NaN; the layer's A_V error came out NaN
+    # or 0 along the direction the tracers do not fix, and 1e5 mag on the other side of the plane.
+    from dustkit.density import fit_catalogue_layer
+    from dustkit.exceptions import DustkitWarning
+    from dustkit.layer import REFERENCE_LAYER
+
+    field, _, tracers = _one_small_field()
+    with pytest.warns(DustkitWarning, match=r"cannot tell z_sun apart.*held at the reference z_sun = 20 \+- 10 pc"):
+        lay = fit_catalogue_layer(tracers)
+    # the parameter the tracers cannot fix is said, and held at the reference value with the
+    # reference spread as its error (common practice: z_sun about 20 +- 10 pc for open clusters)
+    assert lay.not_fitted == ("z_sun",)
+    assert (lay.z_sun, lay.z_sun_err) == REFERENCE_LAYER[2:]
+    cov = lay.statistical_covariance()
+    # a covariance users can propagate: finite, symmetric, positive definite
+    assert np.all(np.isfinite(cov)) and np.allclose(cov, cov.T) and np.linalg.eigvalsh(cov)[0] > 0
+    b, d = np.array([1.0, 1.0, -5.0, -30.0]), np.array([1000.0, 2500.0, 2000.0, 2000.0])
+    g = lay.gradient_pc(b, d)
+    sigma = np.sqrt(np.einsum("in,ij,jn->n", g, cov, g))
+    # in the field and on the other side of the plane, the invented layer lies within 3 sigma
+    # of the fitted one (a 3-sigma check: common practice), and no error is zero
+    assert np.all(sigma > 0)
+    assert np.all(np.abs(lay.av_pc(b, d) - field.layer_av(b, d)) <= 3 * sigma)
+    # in the field the reference spread cancels along what the tracers fix (a0 follows z_sun as
+    # exp(z_sun / h), the layer's closed form): far below the 10 pc spread's own share there
+    share = np.abs(g[2, :2]) * REFERENCE_LAYER[3]
+    assert np.all(sigma[:2] < 0.3 * share)
+    # away from the field the spread reaches the answer: toward b = -5 deg at 2 kpc the error is
+    # at least the part of the z_sun spread the tracers leave (an exponential layer's A_V at
+    # 2 kpc moves by about A_V / h per pc of z_sun: several hundredths of a mag per 10 pc)
+    assert sigma[2] > 0.05
+
+
+def test_a_layer_read_with_a_non_finite_covariance_gets_the_reference_spread_not_zero():
+    # files written before the singular fit was held could keep NaN or inf in the layer's
+    # covariance; reading NaN as 0 gave the answers no layer error along that parameter
+    from dustkit.layer import REFERENCE_LAYER
+
+    cov = np.diag([0.01, 25.0, np.nan])
+    cov[0, 2] = cov[2, 0] = np.inf
+    lay = DustLayer(a0=1.0, h=110.0, z_sun=25.0, covariance=cov)
+    out = lay.statistical_covariance()
+    # z_sun gets its reference spread (common practice, 10 pc), uncorrelated; a0 and h keep their own
+    assert out[2, 2] == REFERENCE_LAYER[3] ** 2 and out[0, 2] == out[2, 0] == 0.0
+    assert out[0, 0] == 0.01 and out[1, 1] == 25.0
+    g = lay.gradient_pc(np.array([-20.0]), np.array([2000.0]))
+    assert float(g[:, 0] @ lay.error_covariance() @ g[:, 0]) > 0
+
+
+def test_a_model_on_a_singular_small_field_carries_the_layer_error_and_keeps_the_mark(tmp_path, capsys):
+    # The density model built on the singular small field answered on the other side of the
+    # plane with errors of 2e5-9e5 mag (a layer error that means nothing) and gave no sign that
+    # z_sun was not fixed; now its answers carry the reference spread there, and the mark reaches
+    # what users read and survives files.
+    import json
+    import warnings
+
+    import dustkit
+    from dustkit.cli import _layer_lines, main
+    from dustkit.density import DensityModel
+
+    field, table, tracers = _one_small_field()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = DensityModel(quiet=True).fit(tracers)
+    assert model.layer_.not_fitted == ("z_sun",)
+    l, b, d = np.full(4, 120.5), np.array([1.0, 1.0, -5.0, -30.0]), np.array([1000.0, 2500.0, 2000.0, 2000.0])
+    av, err = model.av_pc(l, b, d)
+    layer_err = model.layer_err_pc(l, b, d)
+    # every answer carries a layer error, finite and not zero, and no larger than the whole error
+    assert np.all(np.isfinite(layer_err)) and np.all(layer_err > 0) and np.all(layer_err <= err)
+    # the invented truth lies within 3 sigma (common practice), with errors that still mean
+    # something (below 1 mag at 2 kpc where the truth is 0.3-1.2 mag)
+    assert np.all(np.abs(av - field.av(l, b, d)) <= 3 * err) and np.all(err < 1.0)
+    # the command's lines say which parameter is held and why, without claiming "no dust"
+    lines = _layer_lines(model.layer_)
+    assert "NOT FITTED" in lines[3] and "cannot fix" in lines[3] and "NOT FITTED" not in lines[2]
+    assert "no dust" not in " ".join(lines)
+    # --json keeps it, and a layer given back from it keeps it (dustkit build --layer-from)
+    table.write(tmp_path / "field.ecsv")
+    assert main(["layer", str(tmp_path / "field.ecsv"), "--json"]) == 0
+    given = json.loads(capsys.readouterr().out)
+    assert given["not_fitted"] == ["z_sun"] and DustLayer.from_dict(given).not_fitted == ("z_sun",)
+    # model files keep the mark, the covariance and the answers, bit for bit
+    dustkit.save_model(model, tmp_path / "m.fits")
+    loaded = dustkit.load_model(tmp_path / "m.fits")
+    assert loaded.layer_.not_fitted == ("z_sun",)
+    assert np.array_equal(loaded.layer_.covariance, model.layer_.covariance)
+    assert all(np.array_equal(x, y) for x, y in zip(loaded.av_pc(l, b, d), (av, err)))

@@ -35,7 +35,7 @@ KNOWN_PRIVATE_IMPORTS = set()  # none: every module imports public names only
 LAYERS = [
     ("dustkit.exceptions",),
     ("dustkit._lib",),
-    ("dustkit.laws", "dustkit.bands", "dustkit.grid", "dustkit.layer", "dustkit.tracers"),
+    ("dustkit.laws", "dustkit.bands", "dustkit.grid", "dustkit.layer", "dustkit.layer_lift", "dustkit.tracers"),
     ("dustkit.clusters",),  # member photometry -> reddening and distance (laws and bands only)
     ("dustkit.binned",),
     ("dustkit.answers",),

@@ -12,7 +12,8 @@ import numpy as np
 from scipy.spatial import cKDTree
 
 from ..exceptions import DustkitWarning
-from ..layer import DustLayer, cloud_lift, fit_layer, lift_caution
+from ..layer import DustLayer, fit_layer
+from ..layer_lift import cloud_lift, lift_caution
 from ..tracers.rules import AV_ERR_FLOOR
 from .lattice import chord, unit_vectors
 from .layer_share import remaining_pull
