@@ -2029,3 +2029,84 @@ def test_a_modulus_error_in_millimag_is_converted():
     t["mu0"].unit = u.pc
     with pytest.raises(CatalogError, match=r"'mu0'.*'pc'.*not a magnitude \(a distance modulus is in mag\)"):
         _quiet(read_tracers, t)
+
+
+def _fk4_reference(ra, dec):
+    # astropy.coordinates: FK4 B1950 -> Galactic
+    from astropy.coordinates import FK4
+
+    gal = SkyCoord(ra=ra * u.deg, dec=dec * u.deg, frame=FK4(equinox="B1950")).galactic
+    return gal.l.deg, gal.b.deg
+
+
+def test_b1950_positions_are_read_in_fk4_from_names_fits_keywords_and_votable_coosys(tmp_path):
+    # B1950 positions read as ICRS land 0.3-0.7 deg off (50 years of precession); they were read so silently
+    ra, dec = np.array([270.1, 83.2]), np.array([-24.3, 22.0])
+    want_l, want_b = _fk4_reference(ra, dec)
+    base = {"Dist": [1500.0, 2500.0] * u.pc, "EBV": [0.4, 0.6]}
+    named = Table({"RAB1950": ra, "DEB1950": dec, **base})  # recognised, and read as FK4 B1950
+    fits_path = tmp_path / "equinox.fits"
+    t = Table({"RA": ra, "DEC": dec, **base})
+    t.meta["EQUINOX"] = 1950.0  # FITS standard 4.0 sec 8.1: RADESYS defaults to FK4 for EQUINOX < 1984 (from memory)
+    t.write(fits_path)
+    vot_path = tmp_path / "coosys.xml"
+    rows = "".join(f"<TR><TD>{r}</TD><TD>{d}</TD><TD>{x}</TD><TD>{e}</TD></TR>" for r, d, x, e in
+                   zip(ra, dec, [1500.0, 2500.0], [0.4, 0.6]))
+    vot_path.write_text(  # VOTable 1.4 sec 3.3: a FIELD's ref names the COOSYS of its coordinates
+        '<?xml version="1.0"?><VOTABLE version="1.4" xmlns="http://www.ivoa.net/xml/VOTable/v1.3"><RESOURCE>'
+        '<COOSYS ID="old" system="eq_FK4" equinox="B1950"/><TABLE>'
+        '<FIELD name="RA" datatype="double" unit="deg" ref="old"/><FIELD name="Dec" datatype="double" unit="deg" '
+        'ref="old"/><FIELD name="Dist" datatype="double" unit="pc"/><FIELD name="EBV" datatype="double" unit="mag"/>'
+        f"<DATA><TABLEDATA>{rows}</TABLEDATA></DATA></TABLE></RESOURCE></VOTABLE>")
+    for source, said in ((named, "column names say B1950"), (fits_path, "EQUINOX = 1950.0"),
+                         (vot_path, "COOSYS of the columns")):
+        with pytest.warns(AssumptionWarning, match=rf"read as FK4 B1950 \(.*{said}"):
+            ts = _quiet_but(AssumptionWarning, read_tracers, source)
+        np.testing.assert_allclose(ts.l, want_l, atol=1e-6)
+        np.testing.assert_allclose(ts.b, want_b, atol=1e-6)
+    # J2000 / ICRS files are unchanged: an EQUINOX of 2000 is FK5 J2000, taken as ICRS
+    t.meta["EQUINOX"] = 2000.0
+    t.write(fits_path, overwrite=True)
+    ts = _quiet(read_tracers, fits_path)
+    icrs = SkyCoord(ra=ra * u.deg, dec=dec * u.deg, frame="icrs").galactic
+    np.testing.assert_allclose(ts.l, icrs.l.deg, atol=1e-9)
+    assert any("taken as ICRS" in a for a in ts.meta["assumptions"])
+
+
+def _quiet_but(kind, func, *args, **kwargs):
+    """Call ``func`` with dustkit's warnings silenced except ``kind`` (for tests that check one warning)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RowsRejectedWarning)
+        warnings.simplefilter("always", kind)
+        return func(*args, **kwargs)
+
+
+@pytest.mark.parametrize("sep,suffix", [(",", ".csv"), ("\t", ".tsv")])
+def test_a_units_line_under_the_header_gives_the_units(tmp_path, sep, suffix):
+    # a line of units under the header, and a rule of dashes (VizieR's TSV files, many compilations; common
+    # practice), became rejected rows and the units were lost: 'kpc' distances then stopped the read as pc
+    lines = [["_Glon", "_Glat", "Dist", "E(B-V)", "plx"], ['"deg"', '"deg"', "kpc", "mag", "arcsec"],
+             ["-----", "-----", "----", "------", "---"], ["12.1", "0.5", "1.2", "0.30", "0.0008"],
+             ["45.3", "-1.2", "2.5", "0.80", ""]]
+    path = tmp_path / f"units_line{suffix}"
+    path.write_text("\n".join(sep.join(x) for x in lines) + "\n")
+    with pytest.warns(AssumptionWarning, match=r"first line under the header as the columns' units .*'Dist': 'kpc'"):
+        ts = _quiet_but(AssumptionWarning, read_tracers, path, columns={"distance": "Dist"})
+    assert len(ts) == 2 and len(ts.rejected) == 0 and list(ts.row) == [0, 1]  # rows counted after the units
+    np.testing.assert_allclose(ts.distance, [1200.0, 2500.0], rtol=1e-12)  # 1 kpc = 1000 pc (astropy units)
+    np.testing.assert_allclose(ts.av, [0.93, 2.48], rtol=1e-12)  # A_V = 3.1 E(B-V)
+    tp = _quiet(read_targets, path, columns={"parallax": "plx"})
+    np.testing.assert_allclose(tp.distance, [1250.0, np.nan], rtol=1e-12)  # 0.0008 arcsec = 0.8 mas
+    # a first row of numbers is data, as before
+    path.write_text("\n".join(sep.join(x) for x in [lines[0][:4], lines[3][:4]]) + "\n")
+    ts = _quiet(read_tracers, path, distance_unit="kpc")
+    assert len(ts) == 1 and not any("units" in a for a in ts.meta["assumptions"])
+
+
+def test_a_header_naming_a_column_twice_is_announced(tmp_path):
+    # common practice: astropy names a repeated header name 'EBV_1' and reads on; which 'EBV' was used went unsaid
+    path = tmp_path / "twice.csv"
+    path.write_text("l,b,Dist,EBV,EBV\n12.1,0.5,1200,0.3,0.5\n45.3,-1.2,2500,0.8,0.9\n")
+    with pytest.warns(AssumptionWarning, match=r"'EBV' is read as ebv, and a column 'EBV_1' is also present"):
+        ts = _quiet_but(AssumptionWarning, read_tracers, path)
+    np.testing.assert_allclose(ts.av, [0.93, 2.48], rtol=1e-12)  # the first, as said

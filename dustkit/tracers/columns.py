@@ -63,6 +63,8 @@ EQUATORIAL_PAIRS = [
     ("ra", "dec"), ("ra", "de"), ("raj2000", "dej2000"), ("raj2000", "decj2000"),
     ("raicrs", "deicrs"), ("raicrs", "decicrs"), ("radeg", "dedeg"), ("radeg", "decdeg"),
     ("rightascension", "declination"), ("raj2000deg", "dej2000deg"),
+    # FK4 B1950 (read in that frame, values.equatorial_frame), after every J2000/ICRS pair
+    ("rab1950", "deb1950"), ("rab1950", "decb1950"), ("ra1950", "dec1950"), ("ra1950", "de1950"),
 ]
 
 
@@ -165,8 +167,20 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
             cols["name"] = c
     used |= set(cols.values())
     _error_columns(names, explicit, cols, used)
+    _second_of_a_name(names, cols, explicit, ctx)
     ctx.used = dict(cols)
     return cols
+
+
+def _second_of_a_name(names, cols, explicit, ctx):
+    """Announce a used column beside one named as readers name a second column of the same name ('EBV_1'
+    by astropy, 'EBV.1' by pandas): a header that names a column twice gives no way to tell them apart."""
+    for role, c in cols.items():
+        twins = [t for t in (f"{c}_1", f"{c}.1") if t in names and t not in cols.values()]
+        if twins and role not in explicit:
+            ctx.note(AssumptionWarning, f"Column {c!r} is read as {role}, and a column {twins[0]!r} is also present, "
+                     f"the name a reader gives a second column called {c!r}: if the header names {c!r} twice, the "
+                     f"first is used. Hint: rename one, or choose with columns={{'{role}': {twins[0]!r}}}.")
 
 
 class _Finder:

@@ -182,18 +182,95 @@ def positions(table, cols, ctx):
         ok = ctx.rej.code < 0
         l = np.full(ctx.n, np.nan)
         b = np.full(ctx.n, np.nan)
+        frame, said = equatorial_frame(table, rc, dc)
         if ok.any():
             from astropy.coordinates import SkyCoord  # 0.2 s to import: only for ra/dec input
 
-            gal = SkyCoord(ra=ra[ok] * u.deg, dec=dec[ok] * u.deg, frame="icrs").galactic
+            gal = SkyCoord(ra=ra[ok] * u.deg, dec=dec[ok] * u.deg, frame=_astropy_frame(frame)).galactic
             l[ok] = np.mod(gal.l.deg, 360.0)
             b[ok] = gal.b.deg
-        ctx.assumptions.append(
-            f"ra/dec ({rc!r}, {dc!r}) taken as ICRS and converted to Galactic l, b with astropy.coordinates"
-        )
+        if said is None:
+            ctx.assumptions.append(
+                f"ra/dec ({rc!r}, {dc!r}) taken as ICRS and converted to Galactic l, b with astropy.coordinates"
+            )
+        else:
+            ctx.note(AssumptionWarning, f"ra/dec ({rc!r}, {dc!r}) read as {frame[0]} {frame[1] or ''}".rstrip()
+                     + f" ({said}) and converted to Galactic l, b with astropy.coordinates.")
     if l.size:
         l = np.where(l >= 360.0, 0.0, l)
     return l, b, ok
+
+
+#: Where a file says the frame of its equatorial columns: the table metadata key the VOTable reader fills
+#: from the COOSYS its position fields refer to (dustkit.tracers.reader), and FITS header keywords.
+COOSYS_META = "dustkit_coosys"
+
+
+def equatorial_frame(table, rc, dc):
+    """((system, equinox), how it is known) of the equatorial columns ``rc``, ``dc``; how is None for ICRS
+    by default.
+
+    The names first ('RAB1950', 'DE1950': FK4 B1950), then the file: a VOTable COOSYS the columns refer
+    to (VOTable 1.4 sec 3.3: system eq_FK4 / eq_FK5 / ICRS and its equinox), then the FITS keywords
+    RADESYS (or RADECSYS) and EQUINOX, RADESYS defaulting to FK4 for an EQUINOX before 1984 and to FK5
+    from 1984 (FITS standard 4.0 sec 8.1, from memory). FK5 J2000 is taken as ICRS (they differ by
+    less than 0.1 arcsec).
+    """
+    names = (str(rc).lower(), str(dc).lower())
+    if any("1950" in n for n in names):
+        return ("FK4", "B1950"), "the column names say B1950"
+    meta = {str(k).upper(): v for k, v in (table.meta or {}).items()}
+    coosys = (table.meta or {}).get(COOSYS_META, {})
+    system = coosys.get(rc) or coosys.get(dc)
+    if system is not None:
+        frame = _frame_from(system[0], system[1])
+        how = f"the VOTable COOSYS of the columns: system {system[0]!r}, equinox {system[1]!r}"
+    else:
+        sys_word = meta.get("RADESYS", meta.get("RADECSYS"))
+        equinox = meta.get("EQUINOX")  # (not EPOCH: tables use it for the epoch of the positions, e.g. 2016.0)
+        if sys_word is None and equinox is None:
+            return ("ICRS", None), None
+        frame = _frame_from(sys_word, equinox)
+        how = "the file's " + " and ".join(f"{k} = {meta[k]!r}" for k in ("RADESYS", "RADECSYS", "EQUINOX")
+                                           if k in meta and meta[k] is not None)
+    if frame is None or frame[0] == "ICRS" or frame == ("FK5", "J2000"):
+        return ("ICRS", None), None
+    return frame, how
+
+
+def _frame_from(system, equinox):
+    """(system, equinox) from a frame's name and equinox as files write them, or None if not equatorial."""
+    word = str(system or "").strip().upper().replace("EQ_", "")
+    eq = None
+    if equinox is not None and str(equinox).strip():
+        text = str(equinox).strip().upper()
+        try:
+            year = float(text.lstrip("BJ"))
+        except ValueError:
+            year = None
+        if year is not None:
+            letter = text[0] if text[0] in "BJ" else ("B" if (word == "FK4" or (not word and year < 1984)) else "J")
+            eq = f"{letter}{year:g}"
+    if not word:
+        word = "FK4" if eq is not None and eq.startswith("B") else "FK5"
+    if word.startswith("FK4"):
+        return ("FK4", eq or "B1950")
+    if word == "FK5":
+        return ("FK5", eq or "J2000")
+    if word == "ICRS":
+        return ("ICRS", None)
+    return None
+
+
+def _astropy_frame(frame):
+    from astropy.coordinates import FK4, FK5
+
+    system, equinox = frame
+    if system == "FK4":
+        return FK4(equinox=equinox)
+    if system == "FK5":
+        return FK5(equinox=equinox)
+    return "icrs"
 
 
 def _time_as_hour_angle(ra, unit, colname, ctx):
