@@ -2064,6 +2064,13 @@ def test_b1950_positions_are_read_in_fk4_from_names_fits_keywords_and_votable_co
             ts = _quiet_but(AssumptionWarning, read_tracers, source)
         np.testing.assert_allclose(ts.l, want_l, atol=1e-6)
         np.testing.assert_allclose(ts.b, want_b, atol=1e-6)
+    # the chunked reads of out-of-core builds keep the header's frame too
+    from dustkit.tracers.chunks import Chunk, chunk_tracers
+
+    reading = dict(columns=None, distance_unit=None, law="ccm89", rv=3.1, parallax_zero_point=0.0,
+                   default_distance_frac_err=0.1, default_excess_err=0.05, reject_limits=None, excess_color=None)
+    fields, _, _ = chunk_tracers(Chunk("fits", str(fits_path), 0, 2, 0), reading)
+    np.testing.assert_allclose(fields["l"], want_l, atol=1e-6)
     # J2000 / ICRS files are unchanged: an EQUINOX of 2000 is FK5 J2000, taken as ICRS
     t.meta["EQUINOX"] = 2000.0
     t.write(fits_path, overwrite=True)
