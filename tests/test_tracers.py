@@ -2,6 +2,7 @@
 
 import dataclasses
 import hashlib
+import re
 import subprocess
 import sys
 import time
@@ -1908,3 +1909,211 @@ def test_an_impossible_source_temperature_is_refused_under_its_own_name():
     with pytest.raises(ParameterError, match=r"The 'source_temperature' parameter must be a blackbody temperature "
                                              r"between 2000 and 100000 K\. Got -5\.0 instead"):
         read_tracers(t, source_temperature=-5 * u.K)
+
+
+# ======================================================================================
+# Errors, units and values as real compilations write them (reading audit)
+# ======================================================================================
+
+
+def test_percentage_errors_from_a_unit_are_relative_to_the_value(tmp_path):
+    # an error column with the unit '%' (astropy units: 1 % = 0.01, dimensionless) holds a percentage of the
+    # value; it was read in the value's unit: a 10 % distance error became 10 pc, a 10 % parallax error 10 mas
+    t = _catalogue(n=4)
+    t["Dist"] = [1000.0, 2000.0, 3000.0, 4000.0] * u.pc
+    t["e_Dist"] = [10.0, 20.0, 5.0, 10.0] * u.percent
+    t["e_EBV"] = [10.0, 10.0, 20.0, 50.0] * u.percent
+    t["EBV"] = [0.5, 1.0, 1.0, 0.2] * u.mag
+    path = tmp_path / "percent.ecsv"
+    t.write(path)
+    ts = _quiet(read_tracers, path, duplicates="keep", rv=3.1)
+    np.testing.assert_allclose(ts.distance_err, [100.0, 400.0, 150.0, 400.0], rtol=1e-12)
+    np.testing.assert_allclose(ts.av_err, 3.1 * np.array([0.05, 0.1, 0.2, 0.1]), rtol=1e-12)  # A_V = R_V E(B-V)
+    p = Table({"l": [10.0, 20.0], "b": [1.0, 2.0], "plx": [2.0, 1.0] * u.mas, "e_plx": [5.0, 5.0] * u.percent,
+               "ebv": [0.3, 0.4]})
+    tp = _quiet(read_targets, p)
+    # d = 1000 / parallax, sigma_d = 1000 sigma_plx / plx^2 (first-order propagation, common practice)
+    np.testing.assert_allclose(tp.distance_err, [1000 * 0.1 / 4.0, 1000 * 0.05 / 1.0], rtol=1e-12)
+
+
+@pytest.mark.parametrize("name,scale", [("e_Dist(%)", 0.01), ("Dist_err_pct", 0.01), ("e_Dist_percent", 0.01),
+                                        ("Dist_fracerr", 1.0), ("Dist_relerr", 1.0)])
+def test_error_names_that_say_percent_or_fraction_are_relative_and_announced(name, scale):
+    # common practice: compilations name relative errors 'e_Dist(%)', 'dist_err_pct', 'dist_relerr'; read as
+    # absolute, 10 (percent) became a 10 pc error at 2.5 kpc, or the column was not found at all
+    t = Table({"l": [10.0, 20.0], "b": [1.0, 2.0], "Dist": [2500.0, 1000.0] * u.pc, name: [10.0, 20.0],
+               "ebv": [0.3, 0.4]})
+    t[name] = np.array([10.0, 20.0]) * (0.01 / scale)
+    with pytest.warns(AssumptionWarning, match=rf"Error column '{re.escape(name)}' read as .* of the value in 'Dist'"):
+        ts = read_tracers(t, duplicates="keep")
+    np.testing.assert_allclose(ts.distance_err, [250.0, 200.0], rtol=1e-12)
+    assert ts.meta["columns"]["distance_err"] == name
+
+
+def test_lower_and_upper_error_columns_are_averaged():
+    # VizieR writes asymmetric errors as e_X (lower) and E_X (upper) (common practice); dustkit took whichever
+    # came first, so the same catalogue gave different errors depending on the column order
+    for order in (("e_Dist", "E_Dist"), ("E_Dist", "e_Dist")):
+        t = Table({"l": [10.0, 20.0], "b": [1.0, 2.0], "Dist": [2500.0, 1000.0] * u.pc})
+        errs = {"e_Dist": [100.0, 50.0], "E_Dist": [300.0, np.nan]}
+        for c in order:
+            t[c] = errs[c] * u.pc
+        t["ebv"] = [0.3, 0.4]
+        t["ebv_err_lo"], t["ebv_err_hi"] = [0.01, 0.02], [0.03, 0.04]
+        ts = _quiet(read_tracers, t, duplicates="keep", rv=3.1)
+        np.testing.assert_allclose(ts.distance_err, [200.0, 50.0], rtol=1e-12)  # the one given where one is empty
+        np.testing.assert_allclose(ts.av_err, [3.1 * 0.02, 3.1 * 0.03], rtol=1e-12)
+        assert ts.meta["columns"]["distance_err_high"] == "E_Dist"
+        assert any("mean" in a for a in ts.meta["assumptions"])
+
+
+def test_a_unit_at_the_end_of_a_distance_columns_name_is_the_unit_it_names():
+    # 'dist_Mpc' ended in 'pc' and was read as pc (1.2e-3 "pc"); astropy units: 1 Mpc = 1e6 pc, 1 lyr = 0.3066 pc
+    t = Table({"l": [10.0, 20.0], "b": [1.0, 2.0], "dist_Mpc": [0.0012, 0.0025], "dist_ly": [3261.6, 8154.0],
+               "ebv": [0.3, 0.4]})
+    ts = _quiet(read_tracers, t, columns={"distance": "dist_Mpc"})
+    np.testing.assert_allclose(ts.distance, [1200.0, 2500.0], rtol=1e-12)
+    ts = _quiet(read_tracers, t, columns={"distance": "dist_ly"})
+    np.testing.assert_allclose(ts.distance, (np.array([3261.6, 8154.0]) * u.lyr).to_value(u.pc), rtol=1e-12)
+
+
+def test_a_parallax_far_below_zero_is_rejected_and_counted():
+    # -99 (a 'no value' number) with an error of 0.1 mas was placed by the prior at 116 kpc, silently. A true
+    # parallax is positive: more than 5 errors below zero is no measurement (Gaussian odds < 1e-6; common practice)
+    t = Table({"l": [10.0, 20.0, 30.0, 40.0], "b": [1.0, 2.0, 3.0, 4.0],
+               "plx": [0.8, -0.2, -99.0, -0.6] * u.mas, "e_plx": [0.05, 0.1, 0.1, 0.1] * u.mas,
+               "ebv": [0.3, 0.4, 0.5, 0.6]})
+    with pytest.warns(RowsRejectedWarning, match=r"2 of 4 rows rejected: 2 parallax more than 5 of its errors below 0"):
+        ts = read_tracers(t)
+    assert list(ts.row) == [0, 1]  # -0.2 +- 0.1 is noise around a small parallax: kept with a prior distance
+    assert list(ts.rejected["value"]) == ["-99", "-0.6"]
+
+
+def test_bare_parallaxes_in_arcsec_stop_the_read_with_the_fix():
+    # parallaxes in arcsec without a unit (older compilations; 1 arcsec = 1000 mas, astropy units) were read
+    # as mas and put every tracer 2-3 kpc away by the prior, with only 'assuming mas' said
+    t = Table({"l": [10.0, 20.0, 30.0], "b": [1.0, 2.0, 3.0], "plx": [0.0008, 0.0004, 0.0012],
+               "e_plx": [0.00005, 0.00004, 0.0001], "ebv": [0.3, 0.4, 0.5]})
+    with pytest.raises(CatalogError, match=r"'plx'.*no unit.*median size of 0\.0008.*arcsec.*unit arcsec"):
+        _quiet(read_tracers, t)
+    with pytest.raises(CatalogError, match=r"half the targets"):
+        _quiet(read_targets, t)
+    t["plx"].unit = t["e_plx"].unit = u.arcsec
+    tp = _quiet(read_targets, t)
+    np.testing.assert_allclose(tp.distance, [1250.0, 2500.0, 1000.0 / 1.2], rtol=1e-12)  # d = 1 / parallax
+
+
+def test_sexagesimal_units_of_a_votable_read_as_hours_and_degrees(tmp_path):
+    # VizieR's VOTables give sexagesimal positions the units 'h:m:s' and 'd:m:s' (common practice); the
+    # declination's 'd:m:s' stopped the read ("not an angle")
+    c = SkyCoord(ra=[83.25, 201.7] * u.deg, dec=[-5.5, 33.125] * u.deg)
+    t = Table({"RAJ2000": c.ra.to_string(unit=u.hour, sep=":", precision=3),
+               "DEJ2000": c.dec.to_string(unit=u.deg, sep=":", precision=2, alwayssign=True),
+               "Dist": [1200.0, 2500.0] * u.pc, "EBV": [0.3, 0.5]})
+    t["RAJ2000"].unit, t["DEJ2000"].unit = "h:m:s", "d:m:s"
+    path = tmp_path / "sexagesimal.vot"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # astropy: 'h:m:s' is not a VOUnit
+        t.write(path, format="votable")
+    ts = _quiet(read_tracers, path)
+    gal = c.galactic  # astropy.coordinates
+    np.testing.assert_allclose(ts.l, gal.l.deg, atol=1e-5)
+    np.testing.assert_allclose(ts.b, gal.b.deg, atol=1e-5)
+
+
+def test_a_modulus_error_in_millimag_is_converted():
+    # the modulus error's unit was ignored: 50 mmag read as 50 mag; sigma_d = d ln(10) / 5 sigma_mu
+    t = Table({"l": [10.0], "b": [1.0], "mu0": [10.0] * u.mag, "e_mu0": [50.0] * u.mmag, "ebv": [0.3]})
+    ts = _quiet(read_tracers, t)
+    np.testing.assert_allclose(ts.distance_err, 1000.0 * np.log(10) / 5 * 0.05, rtol=1e-12)
+    t["mu0"].unit = u.pc
+    with pytest.raises(CatalogError, match=r"'mu0'.*'pc'.*not a magnitude \(a distance modulus is in mag\)"):
+        _quiet(read_tracers, t)
+
+
+def _fk4_reference(ra, dec):
+    # astropy.coordinates: FK4 B1950 -> Galactic
+    from astropy.coordinates import FK4
+
+    gal = SkyCoord(ra=ra * u.deg, dec=dec * u.deg, frame=FK4(equinox="B1950")).galactic
+    return gal.l.deg, gal.b.deg
+
+
+def test_b1950_positions_are_read_in_fk4_from_names_fits_keywords_and_votable_coosys(tmp_path):
+    # B1950 positions read as ICRS land 0.3-0.7 deg off (50 years of precession); they were read so silently
+    ra, dec = np.array([270.1, 83.2]), np.array([-24.3, 22.0])
+    want_l, want_b = _fk4_reference(ra, dec)
+    base = {"Dist": [1500.0, 2500.0] * u.pc, "EBV": [0.4, 0.6]}
+    named = Table({"RAB1950": ra, "DEB1950": dec, **base})  # recognised, and read as FK4 B1950
+    fits_path = tmp_path / "equinox.fits"
+    t = Table({"RA": ra, "DEC": dec, **base})
+    t.meta["EQUINOX"] = 1950.0  # FITS standard 4.0 sec 8.1: RADESYS defaults to FK4 for EQUINOX < 1984 (from memory)
+    t.write(fits_path)
+    vot_path = tmp_path / "coosys.xml"
+    rows = "".join(f"<TR><TD>{r}</TD><TD>{d}</TD><TD>{x}</TD><TD>{e}</TD></TR>" for r, d, x, e in
+                   zip(ra, dec, [1500.0, 2500.0], [0.4, 0.6]))
+    vot_path.write_text(  # VOTable 1.4 sec 3.3: a FIELD's ref names the COOSYS of its coordinates
+        '<?xml version="1.0"?><VOTABLE version="1.4" xmlns="http://www.ivoa.net/xml/VOTable/v1.3"><RESOURCE>'
+        '<COOSYS ID="old" system="eq_FK4" equinox="B1950"/><TABLE>'
+        '<FIELD name="RA" datatype="double" unit="deg" ref="old"/><FIELD name="Dec" datatype="double" unit="deg" '
+        'ref="old"/><FIELD name="Dist" datatype="double" unit="pc"/><FIELD name="EBV" datatype="double" unit="mag"/>'
+        f"<DATA><TABLEDATA>{rows}</TABLEDATA></DATA></TABLE></RESOURCE></VOTABLE>")
+    for source, said in ((named, "column names say B1950"), (fits_path, "EQUINOX = 1950.0"),
+                         (vot_path, "COOSYS of the columns")):
+        with pytest.warns(AssumptionWarning, match=rf"read as FK4 B1950 \(.*{said}"):
+            ts = _quiet_but(AssumptionWarning, read_tracers, source)
+        np.testing.assert_allclose(ts.l, want_l, atol=1e-6)
+        np.testing.assert_allclose(ts.b, want_b, atol=1e-6)
+    # the chunked reads of out-of-core builds keep the header's frame too
+    from dustkit.tracers.chunks import Chunk, chunk_tracers
+
+    reading = dict(columns=None, distance_unit=None, law="ccm89", rv=3.1, parallax_zero_point=0.0,
+                   default_distance_frac_err=0.1, default_excess_err=0.05, reject_limits=None, excess_color=None)
+    fields, _, _ = chunk_tracers(Chunk("fits", str(fits_path), 0, 2, 0), reading)
+    np.testing.assert_allclose(fields["l"], want_l, atol=1e-6)
+    # J2000 / ICRS files are unchanged: an EQUINOX of 2000 is FK5 J2000, taken as ICRS
+    t.meta["EQUINOX"] = 2000.0
+    t.write(fits_path, overwrite=True)
+    ts = _quiet(read_tracers, fits_path)
+    icrs = SkyCoord(ra=ra * u.deg, dec=dec * u.deg, frame="icrs").galactic
+    np.testing.assert_allclose(ts.l, icrs.l.deg, atol=1e-9)
+    assert any("taken as ICRS" in a for a in ts.meta["assumptions"])
+
+
+def _quiet_but(kind, func, *args, **kwargs):
+    """Call ``func`` with dustkit's warnings silenced except ``kind`` (for tests that check one warning)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RowsRejectedWarning)
+        warnings.simplefilter("always", kind)
+        return func(*args, **kwargs)
+
+
+@pytest.mark.parametrize("sep,suffix", [(",", ".csv"), ("\t", ".tsv")])
+def test_a_units_line_under_the_header_gives_the_units(tmp_path, sep, suffix):
+    # a line of units under the header, and a rule of dashes (VizieR's TSV files, many compilations; common
+    # practice), became rejected rows and the units were lost: 'kpc' distances then stopped the read as pc
+    lines = [["_Glon", "_Glat", "Dist", "E(B-V)", "plx"], ['"deg"', '"deg"', "kpc", "mag", "arcsec"],
+             ["-----", "-----", "----", "------", "---"], ["12.1", "0.5", "1.2", "0.30", "0.0008"],
+             ["45.3", "-1.2", "2.5", "0.80", ""]]
+    path = tmp_path / f"units_line{suffix}"
+    path.write_text("\n".join(sep.join(x) for x in lines) + "\n")
+    with pytest.warns(AssumptionWarning, match=r"first line under the header as the columns' units .*'Dist': 'kpc'"):
+        ts = _quiet_but(AssumptionWarning, read_tracers, path, columns={"distance": "Dist"})
+    assert len(ts) == 2 and len(ts.rejected) == 0 and list(ts.row) == [0, 1]  # rows counted after the units
+    np.testing.assert_allclose(ts.distance, [1200.0, 2500.0], rtol=1e-12)  # 1 kpc = 1000 pc (astropy units)
+    np.testing.assert_allclose(ts.av, [0.93, 2.48], rtol=1e-12)  # A_V = 3.1 E(B-V)
+    tp = _quiet(read_targets, path, columns={"parallax": "plx"})
+    np.testing.assert_allclose(tp.distance, [1250.0, np.nan], rtol=1e-12)  # 0.0008 arcsec = 0.8 mas
+    # a first row of numbers is data, as before
+    path.write_text("\n".join(sep.join(x) for x in [lines[0][:4], lines[3][:4]]) + "\n")
+    ts = _quiet(read_tracers, path, distance_unit="kpc")
+    assert len(ts) == 1 and not any("units" in a for a in ts.meta["assumptions"])
+
+
+def test_a_header_naming_a_column_twice_is_announced(tmp_path):
+    # common practice: astropy names a repeated header name 'EBV_1' and reads on; which 'EBV' was used went unsaid
+    path = tmp_path / "twice.csv"
+    path.write_text("l,b,Dist,EBV,EBV\n12.1,0.5,1200,0.3,0.5\n45.3,-1.2,2500,0.8,0.9\n")
+    with pytest.warns(AssumptionWarning, match=r"'EBV' is read as ebv, and a column 'EBV_1' is also present"):
+        ts = _quiet_but(AssumptionWarning, read_tracers, path)
+    np.testing.assert_allclose(ts.av, [0.93, 2.48], rtol=1e-12)  # the first, as said

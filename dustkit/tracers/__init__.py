@@ -24,7 +24,8 @@ l, b                  Galactic longitude, latitude in deg (``l``/``b``,
                       ``glon``/``glat``, ``GLON``/``GLAT``, ``_Glon``/``_Glat``)
 ra, dec               ICRS right ascension, declination in deg, or
                       sexagesimal strings (``ra``/``dec``, ``RAJ2000``/``DEJ2000``,
-                      ``RA_ICRS``/``DE_ICRS``, ``RAdeg``/``DEdeg``)
+                      ``RA_ICRS``/``DE_ICRS``, ``RAdeg``/``DEdeg``); FK4 for
+                      ``RAB1950``/``DEB1950`` or a file that says so (COOSYS, EQUINOX)
 distance              distance; unit from the column, the name (``dist_kpc``),
                       or ``distance_unit`` (``distance``, ``dist``, ``d``)
 distance_modulus      true distance modulus mu0 in mag (``mu0``, ``(m-M)0``, ``dm0``);
@@ -43,7 +44,9 @@ intrinsic_color       the star's intrinsic colour instead (``(BP-RP)_0``, ``bp_r
                       ``(B-V)_0``, ``intrinsic_BP-RP``); its colour from the name or
                       ``intrinsic_color_bands``
 <key>_err             the error of any of the above (``e_X``, ``X_err``,
-                      ``err_X``, ``sigma_X``, ``X_error``, ``eX``)
+                      ``err_X``, ``sigma_X``, ``X_error``, ``eX``); relative with a unit
+                      ``%`` or a name saying ``pct``/``frac``/``rel`` (``e_X(%)``); a
+                      lower/upper pair (``e_X``/``E_X``, ``X_err_lo``/``X_err_hi``) averaged
 ===================== =====================================================
 
 Columns whose names mark them as errors (``e_...``, ``err_...``, ``sigma_...``,

@@ -13,9 +13,9 @@ into groups by connected components and merged by the reader's inverse-variance 
 from dataclasses import dataclass
 
 import numpy as np
-from astropy import units as u
 
 from ..exceptions import CatalogError
+from .._lib.units import as_unit
 from .arrow import arrow_to_table
 from .assemble import build_tracers
 from .duplicates import close_pairs_by_key, group_scale_factors, keys_apart, merge_measurements, scale_factor
@@ -76,14 +76,14 @@ def read_chunk(chunk):
                 vals = np.array(data.field(c.name))
                 if vals.dtype.kind == "S":
                     vals = np.char.decode(vals, "utf-8", "replace")
-                unit = None
-                if c.unit:
-                    unit = u.Unit(c.unit, parse_strict="silent")
-                    if isinstance(unit, u.UnrecognizedUnit):
-                        unit = u.Unit(str(c.unit).strip().lower(), parse_strict="silent")
                 out[c.name] = vals
-                if unit is not None and not isinstance(unit, u.UnrecognizedUnit):
-                    out[c.name].unit = unit
+                if c.unit:
+                    try:  # read as the in-memory reader reads it (dustkit._lib.units.as_unit)
+                        out[c.name].unit = as_unit(c.unit)
+                    except (ValueError, TypeError):
+                        pass
+            # the header's frame of equatorial columns, as the in-memory read keeps it (values.equatorial_frame)
+            out.meta.update({k: h.header[k] for k in ("RADESYS", "RADECSYS", "EQUINOX") if k in h.header})
             del data
     if len(out) != n:
         raise CatalogError(f"Read {len(out)} rows instead of {n} from {chunk.path!r}; the file changed during the build?")

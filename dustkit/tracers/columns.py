@@ -63,6 +63,8 @@ EQUATORIAL_PAIRS = [
     ("ra", "dec"), ("ra", "de"), ("raj2000", "dej2000"), ("raj2000", "decj2000"),
     ("raicrs", "deicrs"), ("raicrs", "decicrs"), ("radeg", "dedeg"), ("radeg", "decdeg"),
     ("rightascension", "declination"), ("raj2000deg", "dej2000deg"),
+    # FK4 B1950 (read in that frame, values.equatorial_frame), after every J2000/ICRS pair
+    ("rab1950", "deb1950"), ("rab1950", "decb1950"), ("ra1950", "dec1950"), ("ra1950", "de1950"),
 ]
 
 
@@ -165,8 +167,20 @@ def resolve_columns(table, columns, ctx, want_reddening=True):
             cols["name"] = c
     used |= set(cols.values())
     _error_columns(names, explicit, cols, used)
+    _second_of_a_name(names, cols, explicit, ctx)
     ctx.used = dict(cols)
     return cols
+
+
+def _second_of_a_name(names, cols, explicit, ctx):
+    """Announce a used column beside one named as readers name a second column of the same name ('EBV_1'
+    by astropy, 'EBV.1' by pandas): a header that names a column twice gives no way to tell them apart."""
+    for role, c in cols.items():
+        twins = [t for t in (f"{c}_1", f"{c}.1") if t in names and t not in cols.values()]
+        if twins and role not in explicit:
+            ctx.note(AssumptionWarning, f"Column {c!r} is read as {role}, and a column {twins[0]!r} is also present, "
+                     f"the name a reader gives a second column called {c!r}: if the header names {c!r} twice, the "
+                     f"first is used. Hint: rename one, or choose with columns={{'{role}': {twins[0]!r}}}.")
 
 
 class _Finder:
@@ -427,6 +441,11 @@ def _error_columns(names, explicit, cols, used):
         if key in explicit:
             cols[key] = explicit[key]
             continue
+        pair = _find_error_pair(names, cols[role], role, used)
+        if pair is not None:
+            cols[key + "_low"], cols[key + "_high"] = pair
+            used.update(pair)
+            continue
         c = _find_error(names, cols[role], role, used)
         if c is not None:
             cols[key] = c
@@ -445,26 +464,67 @@ def _looks_like_error(colname, names):
     return len(colname) > 1 and colname[0] == "e" and colname[1].isupper() and colname[1:] in names
 
 
-def _find_error(names, value_col, role, used):
+#: Words that mark an error column as relative to its value (a percentage or a fraction, read by
+#: ``values.relative_error_factor``), tried after the plain spellings: 'dist_err_pct', 'e_Dist_percent'.
+_RELATIVE_MARKS = ("pct", "percent", "frac", "rel")
+#: Words that mark the lower and the upper error of a pair: 'dist_err_lo'/'dist_err_hi', 'ebv_errminus'/...
+_LOWER_MARKS = ("lo", "low", "lower", "minus", "neg", "down")
+_UPPER_MARKS = ("hi", "high", "upper", "plus", "pos", "up")
+
+
+def _error_spellings(base):
+    return (
+        "e" + base, base + "err", "err" + base, "error" + base, "sigma" + base, "sig" + base,
+        base + "error", base + "sigma", base + "unc", "unc" + base,
+    )
+
+
+def _by_norm(names, value_col, used):
     by_norm = {}
     for c in names:
         if c not in used and c != value_col:
             by_norm.setdefault(norm(c), c)
-    bases = [norm(value_col)] + [a for a in VALUE_ALIASES.get(role, []) if a != norm(value_col)]
+    return by_norm
+
+
+def _bases(value_col, role):
+    return [norm(value_col)] + [a for a in VALUE_ALIASES.get(role, []) if a != norm(value_col)]
+
+
+def _find_error(names, value_col, role, used):
+    by_norm = _by_norm(names, value_col, used)
+    bases = _bases(value_col, role)
     for base in bases:
-        for cand in (
-            "e" + base,
-            base + "err",
-            "err" + base,
-            "error" + base,
-            "sigma" + base,
-            "sig" + base,
-            base + "error",
-            base + "sigma",
-            base + "unc",
-            "unc" + base,
-        ):
+        for cand in _error_spellings(base):
             c = by_norm.get(cand)
             if c is not None:
                 return c
+    for base in bases:  # relative errors: 'dist_err_pct', 'pct_err_dist', 'dist_relerr'
+        for cand in _error_spellings(base):
+            for mark in _RELATIVE_MARKS:
+                for spelled in (cand + mark, mark + cand, cand.replace(base, base + mark, 1)):
+                    c = by_norm.get(spelled)
+                    if c is not None:
+                        return c
+    return None
+
+
+def _find_error_pair(names, value_col, role, used):
+    """(lower, upper) error columns of ``value_col``, or None.
+
+    VizieR's convention first: ``e_X`` the lower and ``E_X`` the upper error of ``X`` when both are
+    present (its byte-by-byte descriptions say 'lower'/'upper' error; common practice); then names with
+    a lower and an upper mark (``X_err_lo``/``X_err_hi``, ``X_errminus``/``X_errplus``, ``e_X_low``/...).
+    """
+    if "e_" + value_col in names and "E_" + value_col in names:
+        low, high = "e_" + value_col, "E_" + value_col
+        if low not in used and high not in used:
+            return low, high
+    by_norm = _by_norm(names, value_col, used)
+    for base in _bases(value_col, role):
+        for cand in _error_spellings(base):
+            low = next((by_norm[cand + m] for m in _LOWER_MARKS if cand + m in by_norm), None)
+            high = next((by_norm[cand + m] for m in _UPPER_MARKS if cand + m in by_norm), None)
+            if low is not None and high is not None:
+                return low, high
     return None

@@ -1,5 +1,7 @@
 """Distances in pc from a distance, a true or apparent distance modulus, or a parallax."""
 
+import re
+
 import numpy as np
 from astropy import units as u
 
@@ -7,7 +9,16 @@ from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .columns import DISTANCE_LIKE, norm
-from .rules import KPC_HINT_MEDIAN, PARALLAX_ERR_FLOOR, PARALLAX_LENGTH_SCALE, PARALLAX_WARN_FRAC, reason
+from .rules import (
+    ARCSEC_HINT_PARALLAX,
+    KPC_HINT_MEDIAN,
+    PARALLAX_ERR_FLOOR,
+    PARALLAX_LENGTH_SCALE,
+    PARALLAX_NEGATIVE_NSIGMA,
+    PARALLAX_WARN_FRAC,
+    reason,
+)
+from .reddening import mag_scale
 from .values import error_values, numeric, to_unit
 
 __all__ = [
@@ -36,11 +47,13 @@ def _distance_unit_arg(distance_unit):
 
 
 def _name_unit(colname):
+    """The length unit a distance column's name ends with: 'dist_kpc', 'Dist[pc]', 'D (Mpc)', 'dist_ly'."""
     n = norm(colname)
-    if n.endswith("kpc"):
-        return u.kpc
-    if n.endswith("pc"):
-        return u.pc
+    for end, unit in (("kpc", u.kpc), ("mpc", u.Mpc), ("pc", u.pc), ("lyr", u.lyr)):
+        if n.endswith(end):
+            return unit
+    if re.search(r"[^a-z0-9]ly\W*$", str(colname).lower()):
+        return u.lyr
     return None
 
 
@@ -125,7 +138,7 @@ def _from_distance(table, cols, ctx, colname, vals, unit, raw, frac, dunit_arg, 
     d = vals * scale
     ctx.rej.add(d <= 0, reason("distance_not_positive", colname), colname, raw)
     err, eunit, ecol = error_values(
-        table, cols, "distance_err", ctx, np.nan, f"the distance {colname!r}", frac_desc
+        table, cols, "distance_err", ctx, np.nan, f"the distance {colname!r}", frac_desc, values=vals
     )
     if ecol is not None:
         escale = scale
@@ -161,10 +174,14 @@ def _overrides(dunit_arg, unit, colname, ctx):
 def _from_modulus(table, cols, ctx, colname, vals, unit, raw, frac, kind, mu_default, av, av_err):
     """Distance and error in pc from a true or an apparent V modulus, and the modulus error."""
     label = "true distance modulus" if kind == "distance_modulus" else "apparent V modulus"
-    err, _, _ = error_values(
-        table, cols, f"{kind}_err", ctx, mu_default, f"the {label} {colname!r}",
-        f"{mu_default:.3f} mag (= {100 * frac:g}% in distance, default_distance_frac_err)",
+    mag_scale(unit, colname, ctx, "a distance modulus")  # a modulus in another unit stops the read
+    err, eunit, ecol = error_values(
+        table, cols, f"{kind}_err", ctx, np.nan, f"the {label} {colname!r}",
+        f"{mu_default:.3f} mag (= {100 * frac:g}% in distance, default_distance_frac_err)", values=vals,
     )
+    if ecol is not None:  # in the error column's own unit (e.g. mmag)
+        err = err * mag_scale(eunit, ecol, ctx, "a distance modulus error")
+    err = np.where(np.isnan(err), mu_default, err)
     if kind == "apparent_modulus":
         mu = vals - av
         mu_err = np.hypot(err, av_err)
@@ -312,6 +329,22 @@ def _imprecise_parallaxes(ctx, colname, err, corr):
         )
 
 
+def _arcsec_check(plx, colname, ctx):
+    """Stop on bare parallaxes whose median size is below ``ARCSEC_HINT_PARALLAX`` (mas): as mas that is
+    beyond 100 kpc for half the rows, as arcsec the parallaxes of tracers at a few hundred pc."""
+    good = np.abs(plx[np.isfinite(plx) & (plx != 0)])
+    med = float(np.median(good)) if good.size else np.nan
+    if not (np.isfinite(med) and med < ARCSEC_HINT_PARALLAX):
+        return
+    rows = "targets" if getattr(ctx, "rows_are", "tracers") == "targets" else "tracers"
+    raise CatalogError(
+        f"Parallax column {colname!r} in {ctx.desc} has no unit and a median size of {med:.3g}: read as mas that "
+        f"would put half the {rows} beyond {1.0 / med:.3g} kpc, outside the Milky Way; these look like arcsec. "
+        "Hint: give the column the unit arcsec (an ECSV or FITS unit, a units line under a text file's header, or "
+        "an astropy Table column's unit), or multiply the parallaxes and their errors by 1000."
+    )
+
+
 def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=PARALLAX_ERR_FLOOR,
                    length_scale=PARALLAX_LENGTH_SCALE, prior=True):
     """Distance and error in pc from a parallax (zero point subtracted) through the distance prior.
@@ -324,11 +357,12 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
         pscale = as_unit(unit, like=u.mas).to(u.mas)
     else:
         plx, pscale = vals, 1.0
+        _arcsec_check(plx, colname, ctx)
         ctx.note(AssumptionWarning, f"Parallax column {colname!r} has no unit; assuming mas.")
     corr = plx - zp
     err, eunit, ecol = error_values(
         table, cols, "parallax_err", ctx, np.nan, f"the parallax {colname!r}",
-        f"{100 * frac:g}% of the parallax (default_distance_frac_err)",
+        f"{100 * frac:g}% of the parallax (default_distance_frac_err)", values=vals,
     )
     if ecol is not None and eunit is not None:
         try:
@@ -351,6 +385,10 @@ def _from_parallax(table, cols, ctx, colname, vals, unit, raw, frac, zp, floor=P
     ctx.rej.add(missing & (corr <= 0), reason("parallax_no_error", colname, zero_point=zp_text), colname, raw)
     err = np.where(missing, frac * np.abs(corr), err * pscale)
     err = np.hypot(err, floor)
+    # no parallax lies many of its errors below zero: a 'no value' number (-99) or a broken measurement
+    far = corr < -PARALLAX_NEGATIVE_NSIGMA * err
+    ctx.rej.add(far, reason("parallax_far_negative", colname, zero_point=zp_text, n=PARALLAX_NEGATIVE_NSIGMA),
+                colname, raw)
     ok_now = ctx.rej.code < 0
     d = np.full(corr.shape, np.nan)
     lo = d.copy()

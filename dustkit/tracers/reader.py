@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 from astropy import units as u
-from astropy.table import Table
+from astropy.table import MaskedColumn, Table
 
 from ..exceptions import AssumptionWarning, CatalogError, RowsRejectedWarning
 from ..laws import get_law
@@ -30,7 +30,7 @@ from .rules import (
     zero_point,
 )
 from .sets import TargetList, TracerSet
-from .values import names_of, positions
+from .values import COOSYS_META, names_of, positions
 
 __all__ = [
     "SUFFIX_FORMATS",
@@ -214,6 +214,9 @@ def read_tracers(
         intrinsic_color_bands=intrinsic_color_bands,
         duplicate_separation=duplicate_separation,
     )
+    for message in table.meta.get(LOAD_NOTES, ()):
+        notes.insert(0, (AssumptionWarning, message))
+        fields["meta"]["assumptions"] = [message] + list(fields["meta"].get("assumptions", []))
     mismatch = _fitted_under_other_law(table.meta, law, rv)
     if mismatch:
         notes.append((AssumptionWarning, mismatch))
@@ -296,6 +299,8 @@ def read_targets(
     """
     table, desc, file_sha = _load(source, format)
     ctx = Context(table, desc)
+    for message in table.meta.get(LOAD_NOTES, ()):
+        ctx.note(AssumptionWarning, message)
     ctx.rows_are = "targets"
     ctx.modulus_kind = check_modulus_kind(distance_modulus_kind)
     cols = resolve_columns(table, columns, ctx, want_reddening=False)
@@ -500,6 +505,8 @@ def _load(source, fmt=None):
             table = _read_plain_parquet(path) if fmt == "parquet" else None
             if table is None and fmt in _COMMENTED_FORMATS:
                 table = _read_commented(path, fmt)
+            if table is None and fmt == "votable":
+                table = _read_votable(path)
             if table is None:
                 table = Table.read(path, format=fmt) if fmt else Table.read(path)
     except Exception as exc:
@@ -509,6 +516,8 @@ def _load(source, fmt=None):
             f"through astropy (suffixes {known}); check that the file is complete and in one of these "
             "formats, or read it with astropy.table.Table.read(..., format=...) and pass the Table."
         ) from exc
+    if fmt in _TEXT_FORMATS:
+        table = _units_line(table)
     seps = [sep for sep in (";", "\t", "|") if len(table.colnames) == 1 and sep in table.colnames[0]]
     if seps:
         raise CatalogError(
@@ -544,6 +553,101 @@ def _read_commented(path, fmt):
         except ValueError:
             return table
     return None
+
+
+#: Text formats whose files may carry a line of units under the header (and a rule of dashes under it).
+_TEXT_FORMATS = ("ascii.csv", "ascii.tab", "ascii", "ascii.basic")
+#: ``table.meta`` key of what the reading of the file itself announces (e.g. a units line), for the readers.
+LOAD_NOTES = "dustkit_load_notes"
+
+
+def _text_cells(col):
+    """A column's cells as stripped text, '' where empty (masked), and whether the column is text."""
+    text = col.dtype.kind in "US"
+    data = np.asarray(col.filled("") if hasattr(col, "filled") and col.dtype.kind in "US" else col)
+    cells = np.char.strip(data.astype(str)) if data.size else data.astype(str)
+    if hasattr(col, "mask"):
+        cells = np.where(np.ma.getmaskarray(col), "", cells)
+    return cells, text
+
+
+def _is_unit_cell(cell):
+    from .._lib.units import as_unit, sexagesimal_unit
+
+    if cell == "" or sexagesimal_unit(cell) is not None:
+        return True
+    try:
+        float(cell)
+        return False
+    except ValueError:
+        pass
+    try:
+        as_unit(cell)
+        return True
+    except (ValueError, TypeError):
+        return False
+
+
+def _units_line(table):
+    """A text table whose first row is a line of units ('deg', 'kpc', '"h:m:s"', '---') and/or a rule of
+    dashes (as VizieR's TSV files and many compilations write them under the header): those lines taken
+    out, the units set on the columns and text columns of numbers turned into numbers, with a note in
+    ``table.meta[LOAD_NOTES]``. Any other table is returned as it is."""
+    if len(table) < 2 or not table.colnames:
+        return table
+    cells = {c: _text_cells(table[c]) for c in table.colnames}
+    row = lambda i: [cells[c][0][i] for c in table.colnames]  # noqa: E731
+    is_rule = lambda i: all(set(x) <= set("-=") for x in row(i)) and any(row(i))  # noqa: E731
+    units = None
+    first = row(0)
+    if (all(cells[c][1] or first[k] == "" for k, c in enumerate(table.colnames)) and all(map(_is_unit_cell, first))
+            and any(x and not set(x) <= set("-") for x in first)):
+        units = first
+    skip = 1 if units is not None else 0
+    if skip < len(table) - 1 and is_rule(skip):
+        skip += 1
+    if skip == 0:
+        return table
+    out = table[skip:]
+    out.meta = dict(table.meta)
+    for k, c in enumerate(table.colnames):
+        col = out[c]
+        if col.dtype.kind in "US":
+            text = np.char.strip(np.asarray(col.filled("") if hasattr(col, "filled") else col).astype(str))
+            empty = (text == "") | (np.ma.getmaskarray(col) if hasattr(col, "mask") else False)
+            try:
+                numbers = np.where(empty, "nan", text).astype(float)
+            except ValueError:
+                numbers = None
+            if numbers is not None:
+                out[c] = MaskedColumn(numbers, mask=empty) if empty.any() else numbers
+        if units is not None and units[k] and not set(units[k]) <= set("-"):
+            out[c].unit = units[k].strip().strip("\"'")
+    said = []
+    if units is not None:
+        said.append("the first line under the header as the columns' units (" + ", ".join(
+            f"{c!r}: {str(x)!r}" for c, x in zip(table.colnames, units) if x and not set(x) <= set("-")) + ")")
+    if skip > (units is not None):
+        said.append("the line of dashes under it as a rule" if units is not None else
+                    "the first line under the header, of dashes, as a rule")
+    out.meta[LOAD_NOTES] = [f"Read {' and '.join(said)}; rows are counted from the line after them."]
+    return out
+
+
+def _read_votable(path):
+    """A VOTable read once with astropy, keeping what ``Table.read`` drops: the COOSYS (system, equinox)
+    each field refers to, in ``table.meta[COOSYS_META]`` (read by ``values.equatorial_frame``)."""
+    from astropy.io.votable import parse
+
+    vot = parse(str(path))
+    table = Table.read(vot, format="votable")
+    systems = {c.ID: (c.system, c.equinox) for c in vot.iter_coosys() if c.ID is not None}
+    element = next(vot.iter_tables())
+    refs = {name: systems[f.ref] for name, f in zip(table.colnames, element.fields)
+            if getattr(f, "ref", None) in systems}
+    if refs:
+        table.meta[COOSYS_META] = refs
+    return table
 
 
 def _read_plain_parquet(path):

@@ -24,6 +24,7 @@ __all__ = [
     "colour_temperatures",
     "source_temperatures",
     "reddening",
+    "mag_scale",
 ]
 
 
@@ -230,21 +231,23 @@ def source_temperatures(table, cols, ctx, kind, source_temperature=None, color_b
     return st.temperature.to_value(u.K)
 
 
-def _mag_scale(unit, colname, ctx):
-    """The factor turning a reddening column's values into mag (1 without a unit, or with one
-    astropy cannot read, such as '[mag]'); a unit that is not a magnitude stops the read."""
+def mag_scale(unit, colname, ctx, what="a reddening or extinction"):
+    """The factor turning a column's values into mag (1 without a unit, or with one astropy cannot
+    read); a unit that is not a magnitude stops the read, saying that ``what`` is in mag."""
     if unit is None:
         return 1.0
     try:
         unit = as_unit(unit, like=u.mag)
     except (ValueError, TypeError):
         return 1.0
+    if unit == u.dimensionless_unscaled:
+        return 1.0
     try:
         return float(unit.to(u.mag))
     except (u.UnitsError, TypeError):
         raise CatalogError(
-            f"Column {colname!r} in {ctx.desc} has unit {str(unit)!r}, which is not a magnitude (a reddening "
-            "or extinction is in mag). Hint: fix the column's unit, or map the right column with columns={...}."
+            f"Column {colname!r} in {ctx.desc} has unit {str(unit)!r}, which is not a magnitude ({what} is in "
+            "mag). Hint: fix the column's unit, or map the right column with columns={...}."
         ) from None
 
 
@@ -266,9 +269,9 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     """
     role = next(k for k in REDDENING_LIKE if k in cols)
     colname = cols[role]
-    vals, vunit, raw = numeric(table, colname, ctx)
-    vscale = _mag_scale(vunit, colname, ctx)
-    vals = vals * vscale
+    given, vunit, raw = numeric(table, colname, ctx)
+    vscale = mag_scale(vunit, colname, ctx)
+    vals = given * vscale
     if role == "ebv":
         kind, color = "E(B-V)", ("B", "V")
     elif role == "av":
@@ -304,10 +307,10 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     default = rv * default_err / k
     err, eunit, ecol = error_values(
         table, cols, f"{role}_err", ctx, np.nan, f"the reddening {colname!r} ({kind})",
-        f"{default:.3g} mag in {kind} (default_excess_err = {default_err:g} mag of E(B-V))",
+        f"{default:.3g} mag in {kind} (default_excess_err = {default_err:g} mag of E(B-V))", values=given,
     )
     if ecol is not None:  # in the error column's own unit (e.g. mmag), else the value's
-        err = err * (vscale if eunit is None else _mag_scale(eunit, ecol, ctx))
+        err = err * (vscale if eunit is None else mag_scale(eunit, ecol, ctx))
     err = np.where(np.isnan(err), default, err)
     av, av_err = reddening_to_av(kind, color, vals, err, law, rv, temperature=temps)
     lo, hi = limits["ebv"]

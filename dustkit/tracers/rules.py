@@ -21,6 +21,8 @@ __all__ = [
     "RA_RANGE",
     "PARALLAX_WARN_FRAC",
     "KPC_HINT_MEDIAN",
+    "ARCSEC_HINT_PARALLAX",
+    "PARALLAX_NEGATIVE_NSIGMA",
     "PARALLAX_LENGTH_SCALE",
     "PARALLAX_ERR_FLOOR",
     "AV_ERR_FLOOR",
@@ -64,6 +66,13 @@ RA_RANGE = (0.0, 360.0)
 PARALLAX_WARN_FRAC = 0.2
 #: A median distance (in the column's bare numbers) below this means kpc, not pc: reading stops.
 KPC_HINT_MEDIAN = 30.0
+#: Bare parallaxes (no unit) whose median size is below this, in the column's numbers, are arcsec, not mas
+#: (as mas, half the catalogue would lie beyond 100 kpc): reading stops.
+ARCSEC_HINT_PARALLAX = 0.01
+#: A parallax (zero point subtracted) more than this many of its errors (floor included) below zero is
+#: rejected: a true parallax is positive, so under Gaussian errors such a value has odds below 1e-6; it is a
+#: 'no value' number (-99) or a failed measurement, and the distance prior would place it far away.
+PARALLAX_NEGATIVE_NSIGMA = 5.0
 #: Length scale of the exponentially decreasing space density prior for parallaxes, kpc
 #: (the value of the examples of Bailer-Jones 2015, PASP 127, 994).
 PARALLAX_LENGTH_SCALE = 1.35
@@ -105,6 +114,7 @@ REASONS = {
     "distance_not_positive": "distance <= 0 in {col!r}",
     "parallax_not_positive": "parallax{zero_point} <= 0 in {col!r}",
     "parallax_no_error": "parallax{zero_point} <= 0 without an error in {col!r}",
+    "parallax_far_negative": "parallax{zero_point} more than {n:g} of its errors below 0 in {col!r}",
     "correlation_outside": "correlation in {col!r} outside [-1, 1]",
     "distance_outside": "distance {word} {col!r} outside ({lo:g}, {hi:g}] pc",
     "ebv_outside": "E(B-V) in {col!r} outside [{lo:g}, {hi:g}] mag",

@@ -5,12 +5,13 @@ from astropy import units as u
 from astropy.table import MaskedColumn
 
 from ..exceptions import AssumptionWarning, CatalogError
-from .._lib.units import as_unit
+from .._lib.units import as_unit, relative_unit_factor, sexagesimal_unit
 from .context import Context
 from .rules import LATITUDE_RANGE, LONGITUDE_RANGE, RA_RANGE, reason
 
 __all__ = [
     "numeric",
+    "relative_error_factor",
     "to_unit",
     "positions",
     "error_values",
@@ -53,8 +54,10 @@ def numeric(table, colname, ctx, *, sexagesimal=None):
         data = np.asarray(col.value)
     else:
         data = np.asarray(col)
-    if unit is not None and (unit == u.dimensionless_unscaled):
-        unit = None
+    unit = _column_unit(unit)
+    if sexagesimal is not None and sexagesimal_unit(unit) is not None:
+        # 'h:m:s' / 'd:m:s' (VizieR): sexagesimal text; numbers in such a column are hours or degrees
+        unit = u.hourangle if sexagesimal_unit(unit) == "hour" else u.deg
     nonnumeric = np.zeros(len(data), dtype=bool)
     if data.dtype.kind in "fiub":
         values = data.astype(float)
@@ -91,6 +94,17 @@ def numeric(table, colname, ctx, *, sexagesimal=None):
     values = np.where(np.isfinite(values), values, np.nan)
     _note_sentinels(values, colname, ctx)
     return values, unit, col
+
+
+def _column_unit(unit):
+    """A column's unit, None for no unit ('', '---', dimensionless); sexagesimal units kept as written."""
+    if unit is None or sexagesimal_unit(unit) is not None:
+        return unit
+    try:
+        unit = as_unit(unit)
+    except (ValueError, TypeError):
+        return unit  # unreadable: the caller reports it, naming the column
+    return None if unit == u.dimensionless_unscaled else unit
 
 
 def _note_sentinels(values, colname, ctx):
@@ -168,18 +182,95 @@ def positions(table, cols, ctx):
         ok = ctx.rej.code < 0
         l = np.full(ctx.n, np.nan)
         b = np.full(ctx.n, np.nan)
+        frame, said = equatorial_frame(table, rc, dc)
         if ok.any():
             from astropy.coordinates import SkyCoord  # 0.2 s to import: only for ra/dec input
 
-            gal = SkyCoord(ra=ra[ok] * u.deg, dec=dec[ok] * u.deg, frame="icrs").galactic
+            gal = SkyCoord(ra=ra[ok] * u.deg, dec=dec[ok] * u.deg, frame=_astropy_frame(frame)).galactic
             l[ok] = np.mod(gal.l.deg, 360.0)
             b[ok] = gal.b.deg
-        ctx.assumptions.append(
-            f"ra/dec ({rc!r}, {dc!r}) taken as ICRS and converted to Galactic l, b with astropy.coordinates"
-        )
+        if said is None:
+            ctx.assumptions.append(
+                f"ra/dec ({rc!r}, {dc!r}) taken as ICRS and converted to Galactic l, b with astropy.coordinates"
+            )
+        else:
+            ctx.note(AssumptionWarning, f"ra/dec ({rc!r}, {dc!r}) read as {frame[0]} {frame[1] or ''}".rstrip()
+                     + f" ({said}) and converted to Galactic l, b with astropy.coordinates.")
     if l.size:
         l = np.where(l >= 360.0, 0.0, l)
     return l, b, ok
+
+
+#: Where a file says the frame of its equatorial columns: the table metadata key the VOTable reader fills
+#: from the COOSYS its position fields refer to (dustkit.tracers.reader), and FITS header keywords.
+COOSYS_META = "dustkit_coosys"
+
+
+def equatorial_frame(table, rc, dc):
+    """((system, equinox), how it is known) of the equatorial columns ``rc``, ``dc``; how is None for ICRS
+    by default.
+
+    The names first ('RAB1950', 'DE1950': FK4 B1950), then the file: a VOTable COOSYS the columns refer
+    to (VOTable 1.4 sec 3.3: system eq_FK4 / eq_FK5 / ICRS and its equinox), then the FITS keywords
+    RADESYS (or RADECSYS) and EQUINOX, RADESYS defaulting to FK4 for an EQUINOX before 1984 and to FK5
+    from 1984 (FITS standard 4.0 sec 8.1, from memory). FK5 J2000 is taken as ICRS (they differ by
+    less than 0.1 arcsec).
+    """
+    names = (str(rc).lower(), str(dc).lower())
+    if any("1950" in n for n in names):
+        return ("FK4", "B1950"), "the column names say B1950"
+    meta = {str(k).upper(): v for k, v in (table.meta or {}).items()}
+    coosys = (table.meta or {}).get(COOSYS_META, {})
+    system = coosys.get(rc) or coosys.get(dc)
+    if system is not None:
+        frame = _frame_from(system[0], system[1])
+        how = f"the VOTable COOSYS of the columns: system {system[0]!r}, equinox {system[1]!r}"
+    else:
+        sys_word = meta.get("RADESYS", meta.get("RADECSYS"))
+        equinox = meta.get("EQUINOX")  # (not EPOCH: tables use it for the epoch of the positions, e.g. 2016.0)
+        if sys_word is None and equinox is None:
+            return ("ICRS", None), None
+        frame = _frame_from(sys_word, equinox)
+        how = "the file's " + " and ".join(f"{k} = {meta[k]!r}" for k in ("RADESYS", "RADECSYS", "EQUINOX")
+                                           if k in meta and meta[k] is not None)
+    if frame is None or frame[0] == "ICRS" or frame == ("FK5", "J2000"):
+        return ("ICRS", None), None
+    return frame, how
+
+
+def _frame_from(system, equinox):
+    """(system, equinox) from a frame's name and equinox as files write them, or None if not equatorial."""
+    word = str(system or "").strip().upper().replace("EQ_", "")
+    eq = None
+    if equinox is not None and str(equinox).strip():
+        text = str(equinox).strip().upper()
+        try:
+            year = float(text.lstrip("BJ"))
+        except ValueError:
+            year = None
+        if year is not None:
+            letter = text[0] if text[0] in "BJ" else ("B" if (word == "FK4" or (not word and year < 1984)) else "J")
+            eq = f"{letter}{year:g}"
+    if not word:
+        word = "FK4" if eq is not None and eq.startswith("B") else "FK5"
+    if word.startswith("FK4"):
+        return ("FK4", eq or "B1950")
+    if word == "FK5":
+        return ("FK5", eq or "J2000")
+    if word == "ICRS":
+        return ("ICRS", None)
+    return None
+
+
+def _astropy_frame(frame):
+    from astropy.coordinates import FK4, FK5
+
+    system, equinox = frame
+    if system == "FK4":
+        return FK4(equinox=equinox)
+    if system == "FK5":
+        return FK5(equinox=equinox)
+    return "icrs"
 
 
 def _time_as_hour_angle(ra, unit, colname, ctx):
@@ -212,10 +303,58 @@ def _hours_hint(ra, unit, colname, ctx):
     )
 
 
-def error_values(table, cols, key, ctx, default, value_desc, default_desc):
-    """Error column values (NaN where missing/zero is replaced by ``default``), negative ones rejected."""
+#: Words in an error column's name, beside its value column's name, that make its numbers relative to the
+#: value: a percentage ('e_Dist(%)', 'dist_err_pct') or a fraction ('dist_fracerr', 'ebv_relerr').
+_PERCENT_WORDS = ("pct", "percent", "perc")
+_FRACTION_WORDS = ("frac", "rel")
+
+
+def relative_error_factor(colname, unit, value_col):
+    """(factor, how) when the error column ``colname`` holds errors relative to its value, else None.
+
+    ``factor`` turns its numbers into a fraction of the value: from a dimensionless unit other than
+    1 ('%': 0.01; astropy units), else from its name (a '%' or the words of ``_PERCENT_WORDS``: 0.01;
+    ``_FRACTION_WORDS``: 1), looked for in the part of the name that is not the value column's name.
+    """
+    factor = relative_unit_factor(unit)
+    if factor is not None:
+        return factor, f"its unit {str(unit)!r}"
+    if unit is not None:
+        return None  # a unit with a dimension (pc, mag, mas) says the errors are absolute
+    rest = str(colname).lower().replace(str(value_col or "").lower(), "", 1)
+    rest_words = "".join(ch for ch in rest if ch.isalnum())
+    if "%" in rest or any(w in rest_words for w in _PERCENT_WORDS):
+        return 0.01, "its name"
+    if any(w in rest_words for w in _FRACTION_WORDS):
+        return 1.0, "its name"
+    return None
+
+
+def _error_numbers(table, colname, ctx):
+    """An error column's numbers and unit: text or infinite cells reject the row, negative errors too;
+    empty cells are NaN (they take the default, not rejected)."""
+    sub = Context(table, ctx.desc)
+    vals, unit, _ = numeric(table, colname, sub)
+    # non-numeric text in an error column is bad input, reject those rows
+    for k, (why, c, r) in enumerate(sub.rej.reasons):
+        if why in (reason("non_numeric", c), reason("infinite", c)):
+            ctx.rej.add(sub.rej.code == k, why, c, r)
+    ctx.rej.add(vals < 0, reason("negative_error", colname), colname, table[colname])
+    return vals, unit
+
+
+def error_values(table, cols, key, ctx, default, value_desc, default_desc, values=None):
+    """Error column values (NaN where missing/zero is replaced by ``default``), negative ones rejected.
+
+    Returns (errors, unit, column): ``column`` is the error column (None without one; for a pair of
+    lower and upper error columns, ``cols[key + '_low']``, whose unit is returned). A pair is read as
+    the mean of its two errors where both are given, else the one given. Errors relative to the value
+    (:func:`relative_error_factor`; ``values`` are the value column's numbers in its own unit) are
+    returned in that unit, with the unit None.
+    """
     colname = cols.get(key)
-    if colname is None:
+    pair = (cols.get(key + "_low"), cols.get(key + "_high"))
+    if colname is None and None in pair:
         if ctx.quiet_default_errors:
             return np.broadcast_to(default, (ctx.n,)).astype(float), None, None
         ctx.note(
@@ -223,22 +362,41 @@ def error_values(table, cols, key, ctx, default, value_desc, default_desc):
             f"No error column for {value_desc}; using the default {default_desc} for every row.",
         )
         return np.broadcast_to(default, (ctx.n,)).astype(float), None, None
-    col = table[colname]
-    # errors: missing/zero -> default, negative -> reject (do not reject missing errors)
-    sub = Context(table, ctx.desc)
-    vals, unit, raw = numeric(table, colname, sub)
-    # non-numeric text in an error column is bad input, reject those rows
-    for k, (why, c, r) in enumerate(sub.rej.reasons):
-        if why in (reason("non_numeric", c), reason("infinite", c)):
-            ctx.rej.add(sub.rej.code == k, why, c, r)
-    ctx.rej.add(vals < 0, reason("negative_error", colname), colname, col)
+    if colname is not None:
+        vals, unit = _error_numbers(table, colname, ctx)
+        shown = colname
+    else:
+        low, unit = _error_numbers(table, pair[0], ctx)
+        high, high_unit = _error_numbers(table, pair[1], ctx)
+        if high_unit is not None and unit is not None and str(high_unit) != str(unit):
+            raise CatalogError(
+                f"The lower and upper error columns {pair[0]!r} and {pair[1]!r} in {ctx.desc} have different units "
+                f"({str(unit)!r} and {str(high_unit)!r}). Hint: give both in one unit."
+            )
+        given = np.isfinite(low) & (low > 0), np.isfinite(high) & (high > 0)
+        vals = np.where(given[0] & given[1], 0.5 * (low + high), np.where(given[0], low, np.where(given[1], high, np.nan)))
+        colname, shown = pair[0], f"{pair[0]!r}/{pair[1]!r}"
+        ctx.assumptions.append(f"asymmetric errors {pair[0]!r} (lower) and {pair[1]!r} (upper): their mean is the "
+                               "error of each row (the one given where the other is empty)")
+        shown = shown.replace("'", "")
+    relative = relative_error_factor(colname, unit, cols.get(key[:-4]))
+    if relative is not None and values is not None:
+        factor, how = relative
+        what = "percent" if factor == 0.01 else ("a fraction" if factor == 1.0 else f"{factor:g} times")
+        ctx.assumptions.append(f"error column {colname!r} read as {what} of {cols.get(key[:-4])!r} (from {how})")
+        if how == "its name":
+            ctx.note(AssumptionWarning, f"Error column {colname!r} read as {what} of the value in "
+                     f"{cols.get(key[:-4])!r} (its name says so). Hint: rename it if the errors are absolute.",
+                     assumption=False)
+        vals = vals * factor * np.abs(np.asarray(values, dtype=float))
+        unit = None
     fill = ~(vals > 0)
     fill &= ctx.rej.code < 0
     vals = np.where(np.isfinite(vals) & (vals > 0), vals, np.nan)
     if fill.any() and not ctx.quiet_default_errors:
         ctx.note(
             AssumptionWarning,
-            f"{int(fill.sum())} rows have an empty or zero error in {colname!r}; using the default "
+            f"{int(fill.sum())} rows have an empty or zero error in {shown!r}; using the default "
             f"{default_desc} for them.",
         )
     return np.where(np.isnan(vals), default, vals), unit, colname
