@@ -446,9 +446,9 @@ class _Model:
             self.log_field = self.log_field + np.where(
                 self.plx_ok, -0.5 * ((np.where(self.plx_ok, plx, 0) - pm) ** 2 / fv + np.log(2 * np.pi * fv)), 0.0)
 
-    def add_field_sequence(self, ebv_max, mu_grid):
-        """Make the field component half the broad distribution and half sequence stars at other
-        reddenings (0 to ``ebv_max``) and distances (``mu_grid``), uniformly.
+    def field_sequence(self, ebv_max, mu_grid):
+        """Per star, the log density of sequence stars at other reddenings (0 to ``ebv_max``) and
+        distances (``mu_grid``), uniformly: half of the field component (:meth:`add_field`).
 
         Field stars are mostly dwarfs themselves: they lie on copies of the sequence moved along
         the reddening vector and in magnitude, close to the cluster's, where a broad Gaussian alone
@@ -460,8 +460,11 @@ class _Model:
         mu_grid = np.asarray(mu_grid, dtype=float)
         grid = np.arange(0.0, max(ebv_max, 0.2) + 1e-9, FIELD_SEQUENCE_STEP)
         logs = [self.star_logs(e, mu_grid, 0.0, 0.0)[0] for e in grid]  # each (M, N)
-        seq_field = _lse(np.concatenate(logs, axis=0), axis=0) - math.log(grid.size * mu_grid.size)
         self.set_scatter(keep)
+        return _lse(np.concatenate(logs, axis=0), axis=0) - math.log(grid.size * mu_grid.size)
+
+    def add_field(self, seq_field):
+        """The field component: half the broad distribution, half ``seq_field`` (per star)."""
         self.log_field = np.logaddexp(self.log_field, seq_field) - math.log(2.0)
 
     def set_scatter(self, scatter):
@@ -1106,7 +1109,9 @@ def _start_point(args, colours_only, start=None):
     reach = (pred_ref >= np.nanmin(ref) - 2.5) & (pred_ref <= np.nanmax(ref) + 1.5)
     prange = (p[reach].min(), p[reach].max()) if np.count_nonzero(reach) >= 2 else None
     model = _Model(**args, step=0.025, param_range=prange)
-    model.add_field_sequence(2.0 * e0 + 0.5, np.arange(mu_grid[0], mu_grid[-1] + 1e-9, 0.3))
+    # the field's dwarfs on the whole sequence, on a coarser grid (they are smoothed anyway)
+    wide = _Model(**{**args, "scatter": max(args["scatter"], FIELD_SEQUENCE_WIDTH)}, step=0.1)
+    model.add_field(wide.field_sequence(2.0 * e0 + 0.5, np.arange(mu_grid[0], mu_grid[-1] + 1e-9, 0.3)))
     return e0, m0, model
 
 
