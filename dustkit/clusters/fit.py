@@ -4,18 +4,23 @@ The model of each star is a mixture:
 
 * a cluster member on the intrinsic sequence (at an unknown point along it, marginalised
   over a fine grid), reddened by E(B-V) along the chosen law's reddening vector and moved
-  by the true distance modulus mu0, with its photometric errors plus a small intrinsic
-  width of the sequence;
+  by the true distance modulus mu0, with its photometric errors plus the intrinsic width of
+  the sequence (at least ``sequence_scatter``; fitted, and marginalised in the errors);
 * or an unresolved binary: the same, brighter by between 0 and 0.753 mag (equal masses)
-  in every magnitude, marginalised analytically;
-* or a field star, drawn from a broad Gaussian in every observable (and in parallax).
+  in every magnitude, most by little (:data:`BINARY_SHARE_WEIGHTS`: a flat distribution of
+  mass ratios), marginalised analytically;
+* or a field star: half from a broad Gaussian in every observable (and in parallax), half a
+  sequence star at another reddening and distance (uniform over broad ranges).
 
 Membership probabilities, when given, are the prior odds of the first two against the
 third. All systems the table has (UBV, Gaia, 2MASS, ...) enter one likelihood. Member
 parallaxes, when given, enter with a global zero point and a systematic floor (a shared
 offset with a Gaussian prior). The maximum a posteriori point is found by a coarse grid
 search and a local optimisation; the covariance is the inverse Hessian (Laplace
-approximation) with the nuisance parameters marginalised.
+approximation) with the nuisance parameters (fractions, width, parallax offset) marginalised.
+It holds for the chosen law and R_V: ``ClusterFit.rv_slope`` says how far the result moves
+per unit of R_V, a fit that a plausible R_V error would move by more than its error is
+flagged ``"rv_sensitive"``, and ``rv_err`` carries an R_V error into the covariance.
 
 In a single colour-magnitude diagram (V vs B-V alone, G vs BP-RP alone, J vs J-Ks alone)
 reddening and distance trade off along the reddening vector, and only the curvature of the
