@@ -1093,49 +1093,66 @@ def _start_point(args, colours_only, start=None):
     mu_grid = np.arange(max(mu_lo, 0.0), min(mu_hi, 25.0) + 0.4, 0.4)
     if mu_grid.size < 3:
         mu_grid = np.linspace(mref - 15, mref, 60)
-    best = (-np.inf, 0.0, 10.0)
     if start is not None:
-        ebv_grid = []
-        best = (-np.inf, start[0], start[1])
-    best = _coarse_search(coarse, ebv_grid, mu_grid, best)
-    e0, m0 = best[1], best[2]
-    # second, finer pass around the best coarse point
-    best = (-np.inf, e0, m0)
-    for e in np.arange(max(e0 - 0.1, -0.1), e0 + 0.101, 0.025):
-        mg = np.arange(m0 - 0.6, m0 + 0.601, 0.075)
-        val = coarse.mixture(e, mg, 0.3, 0.0)[0].sum(axis=1)
-        j = int(np.argmax(val))
-        if val[j] > best[0]:
-            best = (val[j], e, mg[j])
-    e0, m0 = best[1], best[2]
-    # the fine model only needs the stretch of the sequence the members can reach
-    a = _a_at(coarse.red_ebv, coarse.red_tab, e0)
-    pred_ref = coarse.pred0[:, kref] + (coarse.coef @ a)[kref] + m0
-    reach = (pred_ref >= np.nanmin(ref) - 2.5) & (pred_ref <= np.nanmax(ref) + 1.5)
+        candidates = [(-np.inf, start[0], start[1])]
+    else:
+        candidates = _coarse_search(coarse, ebv_grid, mu_grid, (-np.inf, 0.0, 10.0))
+    reach = np.zeros(p.size, bool)
+    for c, (_, e0, m0) in enumerate(candidates):
+        # second, finer pass around each coarse peak
+        best = (-np.inf, e0, m0)
+        for e in np.arange(max(e0 - 0.1, -0.1), e0 + 0.101, 0.025):
+            mg = np.arange(m0 - 0.6, m0 + 0.601, 0.075)
+            val = coarse.mixture(e, mg, 0.3, 0.0)[0].sum(axis=1)
+            j = int(np.argmax(val))
+            if val[j] > best[0]:
+                best = (val[j], e, mg[j])
+        candidates[c] = best
+        # the fine model only needs the stretch of the sequence the members can reach
+        a = _a_at(coarse.red_ebv, coarse.red_tab, best[1])
+        pred_ref = coarse.pred0[:, kref] + (coarse.coef @ a)[kref] + best[2]
+        reach |= (pred_ref >= np.nanmin(ref) - 2.5) & (pred_ref <= np.nanmax(ref) + 1.5)
     prange = (p[reach].min(), p[reach].max()) if np.count_nonzero(reach) >= 2 else None
     model = _Model(**args, step=0.025, param_range=prange)
     # the field's dwarfs on the whole sequence, on a coarser grid (they are smoothed anyway)
     wide = _Model(**{**args, "scatter": max(args["scatter"], FIELD_SEQUENCE_WIDTH)}, step=0.1)
-    model.add_field(wide.field_sequence(2.0 * e0 + 0.5, np.arange(mu_grid[0], mu_grid[-1] + 1e-9, 0.3)))
-    return e0, m0, model
+    e_top = max(c[1] for c in candidates)
+    model.add_field(wide.field_sequence(2.0 * e_top + 0.5, np.arange(mu_grid[0], mu_grid[-1] + 1e-9, 0.3)))
+    if len(candidates) > 1:
+        # the coarse model (one width, no binaries, a broad field) can rank its peaks wrongly:
+        # the full model chooses among them (a degenerate diagram has several)
+        def score(c):
+            mg = np.arange(c[2] - 0.3, c[2] + 0.301, 0.05)
+            val = model.mixture(c[1], mg, 0.3, 0.3, 0.0, args["scatter"])[0].sum(axis=1)
+            return float(np.max(val)), c[1], float(mg[int(np.argmax(val))])
+        candidates = sorted((score(c) for c in candidates), key=lambda c: -c[0])
+    return candidates[0][1], candidates[0][2], model
 
 
-def _coarse_search(coarse, ebv_grid, mu_grid, best):
-    """Best (value, E(B-V), mu0) on the coarse grid; while the best lies at the grid's top
-    (an embedded cluster seen in the infrared), the grid goes on upward to the reddening
-    line's end, 3 mag of E(B-V) at a time."""
+def _coarse_search(coarse, ebv_grid, mu_grid, best, n_candidates=3):
+    """The best (value, E(B-V), mu0) points on the coarse grid: the highest peaks of the profile
+    along E(B-V) (the best mu0 at each), at most ``n_candidates``, best first. While the best
+    lies at the grid's top (an embedded cluster seen in the infrared), the grid goes on upward
+    to the reddening line's end, 3 mag of E(B-V) at a time."""
     top = coarse.red_ebv[-1]
+    profile = {}
     while len(ebv_grid):
         for e in ebv_grid:
             val = coarse.mixture(e, mu_grid, 0.3, 0.0)[0].sum(axis=1)
             j = int(np.argmax(val))
+            profile[float(e)] = (val[j], float(e), mu_grid[j])
             if val[j] > best[0]:
                 best = (val[j], e, mu_grid[j])
         step = ebv_grid[1] - ebv_grid[0] if len(ebv_grid) > 1 else 0.1
         if best[1] < ebv_grid[-1] - 2.5 * step or ebv_grid[-1] >= top:
             break
         ebv_grid = np.arange(ebv_grid[-1] + step, min(ebv_grid[-1] + 3.0, top) + step / 2, step)
-    return best
+    if not profile:
+        return [best]
+    vals = [profile[e][0] for e in sorted(profile)]
+    peaks = [profile[e] for i, e in enumerate(sorted(profile))
+             if (i == 0 or vals[i] >= vals[i - 1]) and (i == len(vals) - 1 or vals[i] >= vals[i + 1])]
+    return sorted(peaks, key=lambda c: -c[0])[:n_candidates]
 
 
 def _simplex(x0, steps):
