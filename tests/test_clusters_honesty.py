@@ -108,3 +108,16 @@ def test_a_barely_reddened_cluster_is_not_flagged_for_rv():
     fit = _fit(members)
     assert "rv_sensitive" not in fit.flags
     assert abs(0.2 * fit.rv_slope[1]) < fit.distance_modulus_err
+
+
+def test_the_start_is_chosen_by_the_full_model_among_several_peaks():
+    # one diagram (J, H, Ks) of a realistic invented cluster (30% binaries, 30% field stars, errors
+    # growing to 0.1 mag at J = 19): its coarse search ranks a nearer, less reddened peak first
+    # (E(B-V) 0.24, mu0 9.07: 10 errors off when the fit started there); the full model, with the
+    # field's dwarfs and the binaries, chooses the right one
+    members = simulate_members(40, 0.5, 10.0, bands=("J", "H", "Ks"), rng=np.random.default_rng(1030),
+                               binary_fraction=0.3, field_fraction=0.3, magnitude_limit=19.0,
+                               error_floor=0.01, error_at_limit=0.1)
+    fit = _fit(members)
+    assert abs(fit.distance_modulus - 10.0) < 2 * fit.distance_modulus_err
+    assert abs(fit.ebv - 0.5) < 2 * fit.ebv_err
