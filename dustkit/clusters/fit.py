@@ -4,18 +4,23 @@ The model of each star is a mixture:
 
 * a cluster member on the intrinsic sequence (at an unknown point along it, marginalised
   over a fine grid), reddened by E(B-V) along the chosen law's reddening vector and moved
-  by the true distance modulus mu0, with its photometric errors plus a small intrinsic
-  width of the sequence;
+  by the true distance modulus mu0, with its photometric errors plus the intrinsic width of
+  the sequence (at least ``sequence_scatter``; fitted, and marginalised in the errors);
 * or an unresolved binary: the same, brighter by between 0 and 0.753 mag (equal masses)
-  in every magnitude, marginalised analytically;
-* or a field star, drawn from a broad Gaussian in every observable (and in parallax).
+  in every magnitude, most by little (:data:`BINARY_SHARE_WEIGHTS`: a flat distribution of
+  mass ratios), marginalised analytically;
+* or a field star: half from a broad Gaussian in every observable (and in parallax), half a
+  sequence star at another reddening and distance (uniform over broad ranges).
 
 Membership probabilities, when given, are the prior odds of the first two against the
 third. All systems the table has (UBV, Gaia, 2MASS, ...) enter one likelihood. Member
 parallaxes, when given, enter with a global zero point and a systematic floor (a shared
 offset with a Gaussian prior). The maximum a posteriori point is found by a coarse grid
 search and a local optimisation; the covariance is the inverse Hessian (Laplace
-approximation) with the nuisance parameters marginalised.
+approximation) with the nuisance parameters (fractions, width, parallax offset) marginalised.
+It holds for the chosen law and R_V: ``ClusterFit.rv_slope`` says how far the result moves
+per unit of R_V, a fit that a plausible R_V error would move by more than its error is
+flagged ``"rv_sensitive"``, and ``rv_err`` carries an R_V error into the covariance.
 
 In a single colour-magnitude diagram (V vs B-V alone, G vs BP-RP alone, J vs J-Ks alone)
 reddening and distance trade off along the reddening vector, and only the curvature of the
@@ -69,9 +74,26 @@ PARALLAX_ZERO_POINT = -0.017
 #: Systematic floor of a cluster's mean parallax (mas); from memory, Gaia EDR3 validation
 #: (angular covariance of parallax systematics of order 0.01 mas on cluster scales).
 PARALLAX_FLOOR = 0.010
+#: How much brighter an unresolved binary is than its primary, as shares of the largest
+#: brightening (``binary_max``, 0.753 mag for equal masses): piecewise uniform, with the
+#: weights of a flat distribution of mass ratios q (from memory: roughly flat for solar-type
+#: binaries, Raghavan et al. 2010, ApJS 190, 1) and luminosity ~ mass^4 (common practice), for
+#: which P(brightening < d) = (10^(0.4 d) - 1)^(1/4). Most companions add little light; a
+#: uniform brightening (the earlier model) let bright-scattered single stars pass as binaries
+#: and moved mu0 fainter by 2-3 times its error when the sequence was wider than assumed.
+BINARY_SHARE_EDGES = np.array([0.0, 0.05, 0.15, 0.3, 0.5, BINARY_OFFSET]) / BINARY_OFFSET
+BINARY_SHARE_WEIGHTS = np.diff((10 ** (0.4 * BINARY_SHARE_EDGES * BINARY_OFFSET) - 1.0) ** 0.25)
+#: Field stars modelled as sequence stars at other reddenings and distances: the E(B-V) step of
+#: that uniform grid, and the width (mag) that smooths it (about the step's colour change).
+FIELD_SEQUENCE_STEP = 0.1
+FIELD_SEQUENCE_WIDTH = 0.08
 #: Systematic offset of the mean sequence's colour (mag) used when one diagram cannot
 #: separate E(B-V) from mu0 (metallicity and age shift colours by a few hundredths).
 SEQUENCE_COLOUR_SYSTEMATIC = 0.05
+#: Spread of R_V between sight lines (from memory: about 0.2 in the Galactic plane, Schlafly et
+#: al. 2016, ApJ 821, 78); a fit that moves by more than its error over this spread is flagged
+#: ``"rv_sensitive"`` (the errors include R_V only when ``rv_err`` is given).
+RV_SPREAD = 0.2
 #: Floor added in quadrature to E(B-V)'s error (mag). The mixture models an unresolved binary
 #: as brighter at the same colour, while real companions are redder; with the reddening
 #: vector taken through the passbands at :data:`SEQUENCE_TEMPERATURE` the simulated clusters
@@ -83,8 +105,10 @@ CAUTION = (
     "Main-sequence fits are estimates to check, not measurements: the mean dwarf sequence is for "
     "roughly solar metallicity; metallicity and age shift the main sequence (of order 0.1-0.3 mag in "
     "the distance modulus); young clusters may hold pre-main-sequence stars above it; differential "
-    "reddening across a cluster widens its sequence. Extinction estimates are statistical; check them "
-    "against local data before using them for science or instrument time."
+    "reddening across a cluster widens its sequence. The errors hold for the chosen law and R_V: an R_V off "
+    "by 1 moves mu0 by about E(B-V) mag (flag rv_sensitive; rv_err= carries an R_V error into them). "
+    "Extinction estimates are statistical; check them against local data before using them for science or "
+    "instrument time."
 )
 
 
@@ -121,7 +145,9 @@ class ClusterFit:
         Rows left out as evolved stars above the turn-off.
     flags : tuple of str
         ``"ebv_mu0_degenerate"``, ``"colour_colour_only"``, ``"parallax_prior"``,
-        ``"evolved_cut"``, ``"few_members"``, ``"at_bound"``, ``"covariance_unreliable"``.
+        ``"evolved_cut"``, ``"few_members"``, ``"at_bound"``, ``"covariance_unreliable"``,
+        ``"rv_sensitive"`` (an R_V off by 0.2 would move E(B-V) or mu0 by more than its error,
+        which does not include that unless ``rv_err`` was given).
     observables : tuple of str
         Magnitudes and colours used.
     field_fraction, binary_fraction : float
@@ -133,11 +159,19 @@ class ClusterFit:
     sequence_source, sequence_version : str
     law : str
     rv : float
+    sequence_scatter : float
+        Width of the sequence used (mag): the given floor, or the fitted width where the
+        members scatter more.
     parallax : dict or None
         Zero point, floor and the fitted shared offset (mas), when parallaxes were used.
     notes : list of str
         Assumptions and decisions, in words.
     caution : str
+    statistical_covariance : ndarray or None
+        The covariance before the systematic terms (sequence colour, R_V).
+    rv_slope : tuple of float or None
+        First-order change of (E(B-V), mu0) per unit of R_V at the best fit (None for a law
+        of one R_V); E(B-V) alone for a colour-colour fit.
     """
 
     ebv: float
@@ -168,6 +202,7 @@ class ClusterFit:
     notes: list = field(default_factory=list)
     caution: str = CAUTION
     statistical_covariance: object = None
+    rv_slope: object = None
 
     @property
     def mu0(self):
@@ -365,9 +400,9 @@ class _Model:
         self.values = values
         self.mask = np.isfinite(values) & np.isfinite(errors)
         self.obs = np.where(self.mask, values, 0.0)
-        var = errors**2 + scatter**2
-        self.ivar = np.where(self.mask, 1.0 / np.where(self.mask, var, 1.0), 0.0)
-        self.lognorm = -0.5 * np.sum(np.where(self.mask, np.log(2 * np.pi * np.where(self.mask, var, 1.0)), 0.0), axis=1)
+        self.err2 = np.where(self.mask, errors, 0.0) ** 2
+        self.scatter = None
+        self.set_scatter(scatter)
         self.is_mag = is_mag.astype(float)
         self.has_mag = bool(np.any(is_mag))
         self.coef = coef
@@ -416,6 +451,37 @@ class _Model:
             self.log_field = self.log_field + np.where(
                 self.plx_ok, -0.5 * ((np.where(self.plx_ok, plx, 0) - pm) ** 2 / fv + np.log(2 * np.pi * fv)), 0.0)
 
+    def field_sequence(self, ebv_max, mu_grid):
+        """Per star, the log density of sequence stars at other reddenings (0 to ``ebv_max``) and
+        distances (``mu_grid``), uniformly: half of the field component (:meth:`add_field`).
+
+        Field stars are mostly dwarfs themselves: they lie on copies of the sequence moved along
+        the reddening vector and in magnitude, close to the cluster's, where a broad Gaussian alone
+        puts far too few of them and the fit took them for members (E(B-V) off by 3-5 errors with
+        20-30% of such stars in a deep member list).
+        """
+        keep = self.scatter
+        self.set_scatter(max(keep, FIELD_SEQUENCE_WIDTH))
+        mu_grid = np.asarray(mu_grid, dtype=float)
+        grid = np.arange(0.0, max(ebv_max, 0.2) + 1e-9, FIELD_SEQUENCE_STEP)
+        logs = [self.star_logs(e, mu_grid, 0.0, 0.0)[0] for e in grid]  # each (M, N)
+        self.set_scatter(keep)
+        return _lse(np.concatenate(logs, axis=0), axis=0) - math.log(grid.size * mu_grid.size)
+
+    def add_field(self, seq_field):
+        """The field component: half the broad distribution, half ``seq_field`` (per star)."""
+        self.log_field = np.logaddexp(self.log_field, seq_field) - math.log(2.0)
+
+    def set_scatter(self, scatter):
+        """Width of the sequence (mag, added in quadrature to every observable's error)."""
+        scatter = float(scatter)
+        if scatter == self.scatter:
+            return
+        self.scatter = scatter
+        var = np.where(self.mask, self.err2 + scatter**2, 1.0)
+        self.ivar = np.where(self.mask, 1.0 / var, 0.0)
+        self.lognorm = -0.5 * np.sum(np.where(self.mask, np.log(2 * np.pi * var), 0.0), axis=1)
+
     def _window(self, pred_ref_shift):
         """Per star, the indices of the sequence points that can match it (a window in the
         reference magnitude: 0.8 mag brighter to 1.6 mag fainter than the star, which covers
@@ -427,8 +493,11 @@ class _Model:
         start = np.clip(start, 0, max(self.n_grid - self.width, 0))
         return self.ref_order[start[..., None] + np.arange(min(self.width, self.n_grid))]
 
-    def star_logs(self, ebv, mu0, f_field, f_bin, dplx=0.0):
-        """(log L cluster, log L field) per star; ``mu0`` may be an array (rows of the result)."""
+    def star_logs(self, ebv, mu0, f_field, f_bin, dplx=0.0, scatter=None):
+        """(log L cluster, log L field) per star; ``mu0`` may be an array (rows of the result);
+        ``scatter`` sets the sequence's width first (see :meth:`set_scatter`)."""
+        if scatter is not None:
+            self.set_scatter(scatter)
         a = _a_at(self.red_ebv, self.red_tab, ebv)
         red = self.coef @ a
         mu0 = np.asarray(mu0, dtype=float)
@@ -453,8 +522,10 @@ class _Model:
             B = rw @ self.is_mag  # (M, N, G)
             dhat = -B / Pc
             sq = np.sqrt(Pc)
-            lint = (_log_diff_ndtr(sq * (self.binary_max - dhat), -sq * dhat)
-                    + 0.5 * np.log(2 * np.pi / Pc) - np.log(self.binary_max))
+            edges = BINARY_SHARE_EDGES * self.binary_max
+            pieces = [_log_diff_ndtr(sq * (hi - dhat), sq * (lo - dhat)) + math.log(w / (hi - lo))
+                      for lo, hi, w in zip(edges[:-1], edges[1:], BINARY_SHARE_WEIGHTS)]
+            lint = np.logaddexp.reduce(pieces, axis=0) + 0.5 * np.log(2 * np.pi / Pc)
             lb = -0.5 * (chi2 - B**2 / Pc) + lint
             lb = np.where(P[None, :, None] > 0, lb, -0.5 * chi2)
             log_bin = _lse(lb + logw, axis=2)
@@ -471,8 +542,8 @@ class _Model:
             log_c = log_c[0]
         return log_c, self.log_field
 
-    def mixture(self, ebv, mu0, f_field, f_bin, dplx=0.0):
-        log_c, log_f = self.star_logs(ebv, mu0, f_field, f_bin, dplx)
+    def mixture(self, ebv, mu0, f_field, f_bin, dplx=0.0, scatter=None):
+        log_c, log_f = self.star_logs(ebv, mu0, f_field, f_bin, dplx, scatter)
         pi = (1.0 - f_field) * (1.0 if self.prior is None else self.prior)
         pi = np.clip(pi, 1e-9, 1 - 1e-9)
         lc = np.log(pi) + log_c
@@ -480,8 +551,8 @@ class _Model:
         tot = np.logaddexp(lc, lf)
         return tot, np.exp(lc - tot)
 
-    def total(self, ebv, mu0, f_field, f_bin, dplx=0.0):
-        return float(self.mixture(ebv, mu0, f_field, f_bin, dplx)[0].sum())
+    def total(self, ebv, mu0, f_field, f_bin, dplx=0.0, scatter=None):
+        return float(self.mixture(ebv, mu0, f_field, f_bin, dplx, scatter)[0].sum())
 
 
 def _logit(f):
@@ -519,7 +590,7 @@ def _check_fraction(name, value):
 def fit_cluster(members, *, law="ccm89", rv=3.1, sequence=None, columns=None, probability=True,
                 parallax=True, parallax_zero_point=PARALLAX_ZERO_POINT, parallax_floor=PARALLAX_FLOOR,
                 evolved_cut="auto", sequence_scatter=0.03, binary_max=BINARY_OFFSET,
-                sequence_colour_systematic=SEQUENCE_COLOUR_SYSTEMATIC, use=None, warn=True):
+                sequence_colour_systematic=SEQUENCE_COLOUR_SYSTEMATIC, use=None, warn=True, rv_err=0.0):
     """Fit E(B-V) and the true distance modulus of one cluster from its members' photometry.
 
     Parameters
@@ -550,7 +621,8 @@ def fit_cluster(members, *, law="ccm89", rv=3.1, sequence=None, columns=None, pr
         ``None``: keep all stars; a number: leave out stars brighter than this apparent
         magnitude in the reference band (the first of V, G, J, ... that the table has).
     sequence_scatter : float
-        Intrinsic width of the sequence added to every observable's error (mag).
+        Smallest intrinsic width of the sequence added to every observable's error (mag); a
+        wider one is fitted where the members scatter more (and marginalised in the errors).
     binary_max : float
         Largest brightening of an unresolved binary (mag); 0.753 for equal masses.
     sequence_colour_systematic : float
@@ -561,6 +633,10 @@ def fit_cluster(members, *, law="ccm89", rv=3.1, sequence=None, columns=None, pr
         of a fit with all of them, or magnitudes like ``"V"`` and ``"B"``).
     warn : bool
         Emit the :class:`DegeneracyWarning` (the flag is set either way).
+    rv_err : float
+        Uncertainty of R_V carried into the covariance (first order, through
+        ``ClusterFit.rv_slope``). Default 0: the errors hold for the given R_V exactly, and a fit
+        that a plausible R_V error would move by more than its error is flagged ``"rv_sensitive"``.
 
     Returns
     -------
@@ -582,7 +658,8 @@ def fit_cluster(members, *, law="ccm89", rv=3.1, sequence=None, columns=None, pr
     return _fit(members, law=law, rv=rv, sequence=sequence, columns=columns, probability=probability,
                 parallax=parallax, parallax_zero_point=parallax_zero_point, parallax_floor=parallax_floor,
                 evolved_cut=evolved_cut, sequence_scatter=sequence_scatter, binary_max=binary_max,
-                sequence_colour_systematic=sequence_colour_systematic, use=use, warn=warn, colours_only=False)
+                sequence_colour_systematic=sequence_colour_systematic, use=use, warn=warn, colours_only=False,
+                rv_err=rv_err)
 
 
 def fit_colour_colour(members, *, law="ccm89", rv=3.1, sequence=None, columns=None, probability=True,
@@ -617,7 +694,7 @@ def fit_colour_colour(members, *, law="ccm89", rv=3.1, sequence=None, columns=No
     return _fit(members, law=law, rv=rv, sequence=sequence, columns=columns, probability=probability,
                 parallax=False, parallax_zero_point=0.0, parallax_floor=PARALLAX_FLOOR, evolved_cut=None,
                 sequence_scatter=sequence_scatter, binary_max=BINARY_OFFSET,
-                sequence_colour_systematic=0.0, use=None, warn=False, colours_only=True)
+                sequence_colour_systematic=0.0, use=None, warn=False, colours_only=True, rv_err=0.0)
 
 
 def _colour_colour_photometry(phot):
@@ -658,7 +735,7 @@ def _breaks_degeneracy(bands, names, has_plx):
 
 
 def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax_zero_point, parallax_floor,
-         evolved_cut, sequence_scatter, binary_max, sequence_colour_systematic, use, warn, colours_only):
+         evolved_cut, sequence_scatter, binary_max, sequence_colour_systematic, use, warn, colours_only, rv_err):
     law_obj = get_law(law)
     rv = check_real("rv", rv, 0.0, 20.0, low_inclusive=False)
     sequence_scatter = check_real("sequence_scatter", sequence_scatter, 0.0, 1.0)
@@ -666,6 +743,7 @@ def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax
     parallax_floor = check_real("parallax_floor", parallax_floor, 0.0, 10.0)
     parallax_zero_point = check_real("parallax_zero_point", parallax_zero_point, -1.0, 1.0)
     sequence_colour_systematic = check_real("sequence_colour_systematic", sequence_colour_systematic, 0.0, 1.0)
+    rv_err = check_real("rv_err", rv_err, 0.0, 3.0)
     if not (evolved_cut is None or evolved_cut == "auto"):
         evolved_cut = check_real("evolved_cut", evolved_cut, -10.0, 40.0)
     if sequence is None:
@@ -809,6 +887,14 @@ def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax
                     f"curvature separates them. The errors include a {sequence_colour_systematic:g} mag systematic of "
                     f"the sequence's colour (ebv_err {math.sqrt(cov[0, 0]):.3f}, mu0_err {math.sqrt(cov[1, 1]):.3f} mag). "
                     f"To break the degeneracy add {hint}.", DegeneracyWarning, stacklevel=3)
+    if not colours_only or res["rv_slope"] is not None:
+        cov, rv_note, rv_flag = _rv_terms(res["rv_slope"], rv, rv_err, cov, colours_only)
+        notes.append(rv_note)
+        if rv_flag:
+            flags.append("rv_sensitive")
+    if res["scatter"] > sequence_scatter + 0.005:
+        notes.append(f"the sequence is wider than {sequence_scatter:g} mag: its fitted width, "
+                     f"{res['scatter']:.3f} mag, is added to every star's errors")
     if res["at_bound"]:
         flags.append("at_bound")
     if res["unreliable"]:
@@ -842,9 +928,37 @@ def _fit(members, *, law, rv, sequence, columns, probability, parallax, parallax
         n_members_used=n_used, n_stars=n_rows, weights=weights, used=used, evolved=evolved, flags=tuple(flags),
         observables=tuple(names), field_fraction=res["f_field"], binary_fraction=res["f_bin"],
         evolved_limit=evolved_cut_value, reference_band=ref_band, sequence_source=seq.source,
-        sequence_version=seq.version, law=law_obj.name, rv=rv, sequence_scatter=sequence_scatter,
+        sequence_version=seq.version, law=law_obj.name, rv=rv, sequence_scatter=res["scatter"],
         parallax=plx_info, notes=notes, statistical_covariance=stat_cov,
+        rv_slope=None if res["rv_slope"] is None else tuple(float(v) for v in res["rv_slope"]),
     )
+
+
+def _rv_terms(slope, rv, rv_err, cov, colours_only):
+    """The fit's dependence on the assumed R_V: (covariance, note, flag).
+
+    ``slope`` is d(E(B-V), mu0)/dR_V at the best fit (first order). The covariance gains
+    ``rv_err**2 slope slope^T``; the flag is raised when an R_V off by :data:`RV_SPREAD`
+    would move E(B-V) or mu0 by more than its error without that term.
+    """
+    if slope is None:
+        return cov, f"R_V = {rv:g} is fixed by the law; the errors hold for that R_V only", False
+    s = np.zeros(2)
+    s[:len(slope)] = slope
+    k = 1 if colours_only else 2
+    err = np.sqrt(np.maximum(np.diag(cov)[:k], 0.0))
+    sensitive = bool(np.any(RV_SPREAD * np.abs(s[:k]) > err))
+    moved = f"E(B-V) by {0.1 * s[0]:+.3f}" + ("" if colours_only else f" and mu0 by {0.1 * s[1]:+.3f}")
+    note = f"the fit assumes R_V = {rv:g}: +0.1 in R_V moves {moved} mag (first order)"
+    if rv_err > 0:
+        cov = cov + rv_err**2 * np.outer(s, s)
+        if colours_only:
+            cov[1, 0] = cov[0, 1] = cov[1, 1] = 0.0
+        note += f"; an R_V error of {rv_err:g} is included in the errors"
+    elif sensitive:
+        note += (f"; an R_V off by {RV_SPREAD:g} (a common spread between sight lines) moves the result by more "
+                 "than its quoted error, which does not include it (pass rv_err= to include it)")
+    return cov, note, sensitive
 
 
 def _log_beta22(f):
@@ -854,6 +968,105 @@ def _log_beta22(f):
 
 def _optimise(args, colours_only, has_plx, start=None):
     """MAP point and Laplace covariance of (E(B-V), mu0) for one cluster."""
+    e0, m0, model = _start_point(args, colours_only, start)
+    use_plx = has_plx and not colours_only and args["plx_floor"] > 0
+    names = (["ebv", "lff", "width"] if colours_only else
+             ["ebv", "mu0", "lff", "lfb"] + (["dplx"] if use_plx else []) + ["width"])
+    s0 = args["scatter"]
+
+    def unpack(x):
+        v = dict(zip(names, x))
+        return (v["ebv"], v.get("mu0", 0.0), _expit(v["lff"]), _expit(v["lfb"]) if "lfb" in v else 0.0,
+                v.get("dplx", 0.0), math.hypot(s0, v["width"]))
+
+    def log_prior(x):
+        v = dict(zip(names, x))
+        val = _log_beta22(_expit(v["lff"])) + (_log_beta22(_expit(v["lfb"])) if "lfb" in v else 0.0)
+        if "dplx" in v:
+            val += -0.5 * (v["dplx"] / args["plx_floor"]) ** 2
+        return val
+
+    def nlp(x):
+        e, m, ff, fb, d, sc = unpack(x)
+        return -(model.mixture(e, m, ff, fb, d, sc)[0].sum() + log_prior(x))
+
+    start_x = {"ebv": e0, "mu0": m0, "lff": _logit(0.3), "lfb": _logit(0.3), "dplx": 0.0, "width": 0.0}
+    step_of = {"ebv": 0.003, "mu0": 0.006, "lff": 0.05, "lfb": 0.05, "width": 0.005,
+               "dplx": max(args["plx_floor"], 1e-4) * 0.1}
+    x0 = np.array([start_x[k] for k in names], dtype=float)
+    steps = np.array([step_of[k] for k in names])
+    x = x0
+    for scale in (8, 2):  # a restart from a fresh, smaller simplex: Nelder-Mead can stall early
+        x = minimize(nlp, x, method="Nelder-Mead", options={
+            "xatol": 1e-3, "fatol": 2e-3, "maxiter": 4000, "initial_simplex": _simplex(x, steps * scale)}).x
+    x = x.copy()
+    x[names.index("width")] = abs(x[names.index("width")])  # the likelihood is even in it
+    hess = _hessian(nlp, x, steps)
+    full, unreliable = _invert(hess)
+    rv_slope = _rv_slope(nlp, model, x, steps, full, args)
+    e, m, ff, fb, d, sc = unpack(x)
+    tot, resp = model.mixture(e, m, ff, fb, d, sc)
+    k = 1 if colours_only else 2
+    cov = full[:k, :k] if not colours_only else np.array([[full[0, 0], 0.0], [0.0, 0.0]])
+    out = dict(ebv=float(e), mu0=math.nan if colours_only else float(m), f_field=ff, f_bin=fb, dplx=float(d),
+               scatter=float(sc))
+    out["cov"] = np.array(cov, dtype=float)
+    out["resp"] = resp
+    out["model"] = model
+    # at the ends of the reddening line the likelihood no longer changes with E(B-V)
+    out["at_bound"] = bool(out["ebv"] <= model.red_ebv[0] + 0.01 or out["ebv"] >= model.red_ebv[-1] - 0.05)
+    out["unreliable"] = unreliable
+    out["rv_slope"] = None if rv_slope is None else rv_slope[:k]
+    return out
+
+
+def _gradient(fun, x, steps):
+    g = np.empty(len(x))
+    for i in range(len(x)):
+        e = np.zeros(len(x))
+        e[i] = steps[i]
+        g[i] = (fun(x + e) - fun(x - e)) / (2 * steps[i])
+    return g
+
+
+def _rv_slope(nlp, model, x, steps, inv_hess, args):
+    """How the fitted parameters move per unit of R_V, to first order: by the implicit function
+    theorem dx/dR_V = -H^-1 d(grad)/dR_V at the best fit, the gradient taken with the reddening
+    vector of R_V +- 0.02 (inside the law's range; a wider step leaves the quadratic peak of a
+    rich cluster, where the binaries take up the shift). None for a law of one R_V."""
+    lo, hi = args["law"].rv_range
+    r_hi, r_lo = min(args["rv"] + 0.02, hi), max(args["rv"] - 0.02, lo)
+    if not r_hi > r_lo:
+        return None
+    keep = model.red_ebv, model.red_tab
+    grads = []
+    try:
+        for r in (r_hi, r_lo):
+            model.red_ebv, model.red_tab = reddening_curve(model.bands, args["law"], r)
+            grads.append(_gradient(nlp, x, steps))
+    finally:
+        model.red_ebv, model.red_tab = keep
+    return -inv_hess @ ((grads[0] - grads[1]) / (r_hi - r_lo))
+
+
+def _invert(hess):
+    """Inverse of the curvature; (inverse, unreliable) with a rough 1-mag stand-in where the
+    likelihood is not curved like a peak."""
+    try:
+        full = np.linalg.inv(hess)
+        if not np.all(np.isfinite(full)) or np.any(np.diag(full) <= 0):
+            raise np.linalg.LinAlgError
+        return full, False
+    except np.linalg.LinAlgError:
+        full = np.linalg.pinv(hess)
+        full = np.where(np.isfinite(full), full, 0.0)
+        np.fill_diagonal(full, np.maximum(np.abs(np.diag(full)), 1.0))
+        return full, True
+
+
+def _start_point(args, colours_only, start=None):
+    """Starting (E(B-V), mu0) from a coarse search on a sample of the stars, and the fine model
+    over the stretch of the sequence the members can reach."""
     cargs = {**args, "scatter": max(args["scatter"], 0.06)}
     n = args["values"].shape[0]
     if n > 80:  # the coarse search needs only a sample of the stars
@@ -864,38 +1077,29 @@ def _optimise(args, colours_only, has_plx, start=None):
     if cargs["plx"] is not None:  # the coarse mu0 steps are wide: so are the parallaxes there
         cargs["plx_err"] = np.hypot(cargs["plx_err"], 0.2 * np.abs(np.nan_to_num(cargs["plx"])) + 0.05)
     coarse = _Model(**cargs, step=0.1)
-    fine_args = args
     if colours_only:
         ebv_grid = np.arange(-0.1, 3.01, 0.02)
         ll = [coarse.mixture(e, 0.0, 0.3, 0.0)[0].sum() for e in ebv_grid]
-        e0 = float(ebv_grid[int(np.argmax(ll))])
-        model = _Model(**fine_args, step=0.025)
-
-        def nlp(x):
-            e, ff = x[0], _expit(x[1])
-            return -(model.mixture(e, 0.0, ff, 0.0)[0].sum() + _log_beta22(ff))
-
-        x0 = np.array([e0, _logit(0.3)])
-        steps = np.array([0.003, 0.05])
+        return float(ebv_grid[int(np.argmax(ll))]), 0.0, _Model(**args, step=0.025)
+    # coarse search over (E(B-V), mu0) with fixed fractions
+    ebv_grid = np.arange(0.0, 3.01, 0.1)
+    kref = int(np.argmax(args["is_mag"]))
+    ref = args["values"][:, kref]
+    mref = np.nanmedian(ref)
+    p = coarse.grid_param
+    # mu0 range: where the members' magnitudes can land on the sequence
+    mu_lo = max(np.nanmin(ref) - np.nanmax(coarse.pred0[:, kref]) - 1.0, -2.0)
+    mu_hi = np.nanmax(ref) - np.nanmin(coarse.pred0[:, kref]) + 1.0
+    mu_grid = np.arange(max(mu_lo, 0.0), min(mu_hi, 25.0) + 0.4, 0.4)
+    if mu_grid.size < 3:
+        mu_grid = np.linspace(mref - 15, mref, 60)
+    if start is not None:
+        candidates = [(-np.inf, start[0], start[1])]
     else:
-        # coarse search over (E(B-V), mu0) with fixed fractions
-        ebv_grid = np.arange(0.0, 3.01, 0.1)
-        ref = args["values"][:, np.argmax(args["is_mag"])]
-        mref = np.nanmedian(ref)
-        p = coarse.grid_param
-        # mu0 range: where the members' magnitudes can land on the sequence
-        mu_lo = max(np.nanmin(ref) - np.nanmax(coarse.pred0[:, np.argmax(args["is_mag"])]) - 1.0, -2.0)
-        mu_hi = np.nanmax(ref) - np.nanmin(coarse.pred0[:, np.argmax(args["is_mag"])]) + 1.0
-        mu_grid = np.arange(max(mu_lo, 0.0), min(mu_hi, 25.0) + 0.4, 0.4)
-        if mu_grid.size < 3:
-            mu_grid = np.linspace(mref - 15, mref, 60)
-        best = (-np.inf, 0.0, 10.0)
-        if start is not None:
-            ebv_grid = []
-            best = (-np.inf, start[0], start[1])
-        best = _coarse_search(coarse, ebv_grid, mu_grid, best)
-        e0, m0 = best[1], best[2]
-        # second, finer pass around the best coarse point
+        candidates = _coarse_search(coarse, ebv_grid, mu_grid, (-np.inf, 0.0, 10.0))
+    reach = np.zeros(p.size, bool)
+    for c, (_, e0, m0) in enumerate(candidates):
+        # second, finer pass around each coarse peak
         best = (-np.inf, e0, m0)
         for e in np.arange(max(e0 - 0.1, -0.1), e0 + 0.101, 0.025):
             mg = np.arange(m0 - 0.6, m0 + 0.601, 0.075)
@@ -903,81 +1107,52 @@ def _optimise(args, colours_only, has_plx, start=None):
             j = int(np.argmax(val))
             if val[j] > best[0]:
                 best = (val[j], e, mg[j])
-        e0, m0 = best[1], best[2]
+        candidates[c] = best
         # the fine model only needs the stretch of the sequence the members can reach
-        a = _a_at(coarse.red_ebv, coarse.red_tab, e0)
-        kref = int(np.argmax(args["is_mag"]))
-        pred_ref = coarse.pred0[:, kref] + (coarse.coef @ a)[kref] + m0
-        reach = (pred_ref >= np.nanmin(ref) - 2.5) & (pred_ref <= np.nanmax(ref) + 1.5)
-        prange = (p[reach].min(), p[reach].max()) if np.count_nonzero(reach) >= 2 else None
-        model = _Model(**fine_args, step=0.025, param_range=prange)
-
-        def unpack(x):
-            return x[0], x[1], _expit(x[2]), _expit(x[3]), (x[4] if has_plx else 0.0)
-
-        def nlp(x):
-            e, m, ff, fb, d = unpack(x)
-            val = model.mixture(e, m, ff, fb, d)[0].sum() + _log_beta22(ff) + _log_beta22(fb)
-            if has_plx:
-                val += -0.5 * (d / max(args["plx_floor"], 1e-6)) ** 2 if args["plx_floor"] > 0 else 0.0
-            return -val
-
-        x0 = [e0, m0, _logit(0.3), _logit(0.3)] + ([0.0] if has_plx else [])
-        x0 = np.array(x0, dtype=float)
-        steps = np.array([0.003, 0.006, 0.05, 0.05] + ([max(args["plx_floor"], 1e-4) * 0.1] if has_plx else []))
-        if has_plx and args["plx_floor"] <= 0:
-            x0 = x0[:4]
-            steps = steps[:4]
-            has_plx = False
-    r = minimize(nlp, x0, method="Nelder-Mead",
-                 options={"xatol": 1e-3, "fatol": 2e-3, "maxiter": 3000, "initial_simplex": _simplex(x0, steps * 8)})
-    x = r.x
-    hess = _hessian(nlp, x, steps)
-    unreliable = False
-    try:
-        full = np.linalg.inv(hess)
-        if not np.all(np.isfinite(full)) or np.any(np.diag(full) <= 0):
-            raise np.linalg.LinAlgError
-    except np.linalg.LinAlgError:
-        unreliable = True
-        full = np.linalg.pinv(hess)
-        full = np.where(np.isfinite(full), full, 0.0)
-        np.fill_diagonal(full, np.maximum(np.abs(np.diag(full)), 1.0))
-    if colours_only:
-        e, ff = x[0], _expit(x[1])
-        tot, resp = model.mixture(e, 0.0, ff, 0.0)
-        cov = np.array([[full[0, 0], 0.0], [0.0, 0.0]])
-        out = dict(ebv=float(e), mu0=math.nan, f_field=ff, f_bin=0.0)
-    else:
-        e, m, ff, fb, d = (x[0], x[1], _expit(x[2]), _expit(x[3]), (x[4] if has_plx else 0.0))
-        tot, resp = model.mixture(e, m, ff, fb, d)
-        cov = full[:2, :2]
-        out = dict(ebv=float(e), mu0=float(m), f_field=ff, f_bin=fb, dplx=float(d))
-    out["cov"] = np.array(cov, dtype=float)
-    out["resp"] = resp
-    out["model"] = model
-    # at the ends of the reddening line the likelihood no longer changes with E(B-V)
-    out["at_bound"] = bool(out["ebv"] <= model.red_ebv[0] + 0.01 or out["ebv"] >= model.red_ebv[-1] - 0.05)
-    out["unreliable"] = unreliable
-    return out
+        a = _a_at(coarse.red_ebv, coarse.red_tab, best[1])
+        pred_ref = coarse.pred0[:, kref] + (coarse.coef @ a)[kref] + best[2]
+        reach |= (pred_ref >= np.nanmin(ref) - 2.5) & (pred_ref <= np.nanmax(ref) + 1.5)
+    prange = (p[reach].min(), p[reach].max()) if np.count_nonzero(reach) >= 2 else None
+    model = _Model(**args, step=0.025, param_range=prange)
+    # the field's dwarfs on the whole sequence, on a coarser grid (they are smoothed anyway)
+    wide = _Model(**{**args, "scatter": max(args["scatter"], FIELD_SEQUENCE_WIDTH)}, step=0.1)
+    e_top = max(c[1] for c in candidates)
+    model.add_field(wide.field_sequence(2.0 * e_top + 0.5, np.arange(mu_grid[0], mu_grid[-1] + 1e-9, 0.3)))
+    if len(candidates) > 1:
+        # the coarse model (one width, no binaries, a broad field) can rank its peaks wrongly:
+        # the full model chooses among them (a degenerate diagram has several)
+        def score(c):
+            mg = np.arange(c[2] - 0.3, c[2] + 0.301, 0.05)
+            val = model.mixture(c[1], mg, 0.3, 0.3, 0.0, args["scatter"])[0].sum(axis=1)
+            return float(np.max(val)), c[1], float(mg[int(np.argmax(val))])
+        candidates = sorted((score(c) for c in candidates), key=lambda c: -c[0])
+    return candidates[0][1], candidates[0][2], model
 
 
-def _coarse_search(coarse, ebv_grid, mu_grid, best):
-    """Best (value, E(B-V), mu0) on the coarse grid; while the best lies at the grid's top
-    (an embedded cluster seen in the infrared), the grid goes on upward to the reddening
-    line's end, 3 mag of E(B-V) at a time."""
+def _coarse_search(coarse, ebv_grid, mu_grid, best, n_candidates=3):
+    """The best (value, E(B-V), mu0) points on the coarse grid: the highest peaks of the profile
+    along E(B-V) (the best mu0 at each), at most ``n_candidates``, best first. While the best
+    lies at the grid's top (an embedded cluster seen in the infrared), the grid goes on upward
+    to the reddening line's end, 3 mag of E(B-V) at a time."""
     top = coarse.red_ebv[-1]
+    profile = {}
     while len(ebv_grid):
         for e in ebv_grid:
             val = coarse.mixture(e, mu_grid, 0.3, 0.0)[0].sum(axis=1)
             j = int(np.argmax(val))
+            profile[float(e)] = (val[j], float(e), mu_grid[j])
             if val[j] > best[0]:
                 best = (val[j], e, mu_grid[j])
         step = ebv_grid[1] - ebv_grid[0] if len(ebv_grid) > 1 else 0.1
         if best[1] < ebv_grid[-1] - 2.5 * step or ebv_grid[-1] >= top:
             break
         ebv_grid = np.arange(ebv_grid[-1] + step, min(ebv_grid[-1] + 3.0, top) + step / 2, step)
-    return best
+    if not profile:
+        return [best]
+    vals = [profile[e][0] for e in sorted(profile)]
+    peaks = [profile[e] for i, e in enumerate(sorted(profile))
+             if (i == 0 or vals[i] >= vals[i - 1]) and (i == len(vals) - 1 or vals[i] >= vals[i + 1])]
+    return sorted(peaks, key=lambda c: -c[0])[:n_candidates]
 
 
 def _simplex(x0, steps):
