@@ -9,10 +9,10 @@ from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from .._lib.validation import param_error
 from .rules import below_limit, reason
-from .values import error_values, numeric
+from .values import error_values, numeric, optional_numbers
 from ..bands import DEFAULT_TEMPERATURE
 from ..bands.inputs import temperature_input
-from .temperatures import announce_temperatures, optional_numbers, temperature_values
+from .temperatures import announce_temperatures, temperature_values
 
 __all__ = [
     "EXCESS_NAME",

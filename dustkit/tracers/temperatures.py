@@ -18,21 +18,10 @@ from astropy import units as u
 from ..exceptions import AssumptionWarning, CatalogError
 from .._lib.units import as_unit
 from ..bands.inputs import TEMPERATURE_RANGE
-from .context import Context
 from .rules import reason
-from .values import numeric
+from .values import optional_numbers
 
-__all__ = ["optional_numbers", "is_log_name", "temperature_values", "announce_temperatures", "rows_have"]
-
-
-def optional_numbers(table, colname, ctx):
-    """Values of an optional per-row column: text and infinities reject the row; empty cells are NaN."""
-    sub = Context(table, ctx.desc)
-    vals, unit, raw = numeric(table, colname, sub)
-    for k, (why, c, r) in enumerate(sub.rej.reasons):
-        if why in (reason("non_numeric", c), reason("infinite", c)):
-            ctx.rej.add(sub.rej.code == k, why, c, r)
-    return vals, unit, raw
+__all__ = ["is_log_name", "temperature_values", "announce_temperatures", "rows_have"]
 
 
 def is_log_name(colname):

@@ -15,6 +15,7 @@ __all__ = [
     "to_unit",
     "positions",
     "error_values",
+    "optional_numbers",
     "names_of",
 ]
 
@@ -330,15 +331,21 @@ def relative_error_factor(colname, unit, value_col):
     return None
 
 
-def _error_numbers(table, colname, ctx):
-    """An error column's numbers and unit: text or infinite cells reject the row, negative errors too;
-    empty cells are NaN (they take the default, not rejected)."""
+def optional_numbers(table, colname, ctx):
+    """Values of an optional per-row column (an error, a temperature, an intrinsic colour): text and
+    infinities reject the row in ``ctx.rej``; empty cells are NaN (not rejected). Returns (values, unit, raw)."""
     sub = Context(table, ctx.desc)
-    vals, unit, _ = numeric(table, colname, sub)
-    # non-numeric text in an error column is bad input, reject those rows
+    vals, unit, raw = numeric(table, colname, sub)
     for k, (why, c, r) in enumerate(sub.rej.reasons):
         if why in (reason("non_numeric", c), reason("infinite", c)):
             ctx.rej.add(sub.rej.code == k, why, c, r)
+    return vals, unit, raw
+
+
+def _error_numbers(table, colname, ctx):
+    """An error column's numbers and unit (:func:`optional_numbers`), negative errors rejected too;
+    empty cells are NaN (they take the default, not rejected)."""
+    vals, unit, _ = optional_numbers(table, colname, ctx)
     ctx.rej.add(vals < 0, reason("negative_error", colname), colname, table[colname])
     return vals, unit
 
@@ -375,10 +382,9 @@ def error_values(table, cols, key, ctx, default, value_desc, default_desc, value
             )
         given = np.isfinite(low) & (low > 0), np.isfinite(high) & (high > 0)
         vals = np.where(given[0] & given[1], 0.5 * (low + high), np.where(given[0], low, np.where(given[1], high, np.nan)))
-        colname, shown = pair[0], f"{pair[0]!r}/{pair[1]!r}"
+        colname, shown = pair[0], f"{pair[0]}/{pair[1]}"
         ctx.assumptions.append(f"asymmetric errors {pair[0]!r} (lower) and {pair[1]!r} (upper): their mean is the "
                                "error of each row (the one given where the other is empty)")
-        shown = shown.replace("'", "")
     relative = relative_error_factor(colname, unit, cols.get(key[:-4]))
     if relative is not None and values is not None:
         factor, how = relative
