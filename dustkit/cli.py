@@ -304,7 +304,12 @@ def build_parser():
     # the density finder's own defaults (dustkit.features.MIN_PROBABILITY, MIN_CONTRAST, MIN_DELTA_AV) apply when not given
     p.add_argument("--min-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from a feature's tracers, of adding "
-                        "--min-delta-av, 0 to 1 (default 0.99)")
+                        "--min-delta-av, 0 to 1, used as given (default: 1 - RATE / the number of candidate "
+                        "regions tested, at least 0.99; see --false-rate)")
+    p.add_argument("--false-rate", metavar="RATE",
+                   help="density finder: the chance, over the whole search, of listing a region its tracers do "
+                        "not support (the look-elsewhere correction of the default --min-probability), above 0 "
+                        "and at most 1 (default 0.1); 'off': 0.99 whatever the number of candidates")
     p.add_argument("--min-model-probability", type=float, metavar="P",
                    help="density finder: least posterior probability, from the model's own samples, of adding "
                         "--min-delta-av, 0 to 1 (default 0.75; 0 lists what the tracers alone support)")
@@ -591,6 +596,19 @@ def _layer_lines(layer, given=None):
         f"({held if 'z_sun' in flat else ''}height of the Sun above the mid-plane)",
     ] + ([] if given else [f"  scatter of tracers around it: {layer.scatter:.3f} mag (from {layer.n_used} tracers)"]) + ([f"  the errors include the pull of dust above the layer (clouds): a0 {abs(pull[0]):.3f} mag/kpc, "
           f"h {abs(pull[1]):.1f} pc, z_sun {abs(pull[2]):.1f} pc"] if any(pull := [float(x) for x in layer.pull]) else [])
+
+
+def _false_rate(text):
+    """--false-rate: a number in (0, 1], or 'off' (no look-elsewhere correction)."""
+    if text.strip().lower() in ("off", "none"):
+        return None
+    try:
+        rate = float(text)
+    except ValueError:
+        raise _UsageError(f"--false-rate takes a number above 0 and at most 1 (0.1, say) or 'off'; got {text!r}") from None
+    if not 0.0 < rate <= 1.0:
+        raise _UsageError(f"--false-rate takes a number above 0 and at most 1 (0.1, say) or 'off'; got {rate:g}")
+    return rate
 
 
 def _quiet_flag(args):
@@ -955,22 +973,31 @@ def _cmd_features(args, out):
                                      ("--min-significance", args.min_significance), ("--seed", args.seed)) if v is not None]
         if steps_only:
             raise _UsageError(f"{', '.join(steps_only)} appl{'ies' if len(steps_only) == 1 else 'y'} to --finder steps; the density finder searches the "
-                              "model's own cells (its options: --min-probability, --min-model-probability, "
-                              "--min-contrast)")
+                              "model's own cells (its options: --min-probability, --false-rate, "
+                              "--min-model-probability, --min-contrast)")
+        if args.false_rate is not None and args.min_probability is not None:
+            raise _UsageError("give --min-probability (a threshold used as given) or --false-rate (the look-elsewhere "
+                              "correction of the default threshold), not both")
         given = {k: v for k, v in (("min_contrast", args.min_contrast), ("min_probability", args.min_probability),
                                    ("min_model_probability", args.min_model_probability)) if v is not None} | given_dav
+        if args.false_rate is not None:
+            given["false_rate"] = _false_rate(args.false_rate)
         feats = density_features(model, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         meta = feats.meta
+        why = (f"look-elsewhere: a false rate of {meta['false_rate']:g} over the search" if meta["false_rate"]
+               else "as given")
         out(f"{len(feats)} dust feature(s) in the 3-D density ({meta['n_candidates']} candidate region(s) "
-            "tested against their tracers)" + (":" if len(feats) else "."))
+            f"tested against their tracers; least probability {meta['min_probability']:.4g}, {why})"
+            + (":" if len(feats) else "."))
         if not len(feats):
             improbable = meta["n_candidates"] - meta["n_unsupported"] - meta["n_model_doubts"]
             out(f"No feature listed: of {meta['n_candidates']} candidate region(s), {meta['n_unsupported']} shown by "
-                f"fewer than {meta['min_support']} tracers, {meta['n_model_doubts']} below the model's own probability "
+                f"fewer than {meta['min_support']} tracers ({meta['min_support_nearer']} for 'nearer than'), "
+                f"{meta['n_model_doubts']} below the model's own probability "
                 f"{meta['min_model_probability']:g} (--min-model-probability), {improbable} below the tracers' "
-                f"probability {meta['min_probability']:g} (--min-probability) of adding {meta['min_delta_av']:g} mag. "
-                "The table has the columns and no rows.")
+                f"probability {meta['min_probability']:.4g} (--min-probability, --false-rate) of adding "
+                f"{meta['min_delta_av']:g} mag. The table has the columns and no rows.")
         for r in feats:
             if r["kind"] == KIND_NEARER:
                 where = (f"nearer than {r['distance_upper'].value:6.0f} pc (fewer than "
@@ -987,7 +1014,8 @@ def _cmd_features(args, out):
         out(feats.meta["caution"])
         return 0
     density_only = [o for o, v in (("--min-probability", args.min_probability), ("--min-contrast", args.min_contrast),
-                                   ("--min-model-probability", args.min_model_probability)) if v is not None]
+                                   ("--min-model-probability", args.min_model_probability),
+                                   ("--false-rate", args.false_rate)) if v is not None]
     if density_only:
         raise _UsageError(f"{', '.join(density_only)} appl{'ies' if len(density_only) == 1 else 'y'} to the density finder of a 3-D density model; the steps "
                           "finder's options are --min-significance, --radius, --seed"

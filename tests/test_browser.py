@@ -239,7 +239,9 @@ def test_explorer_in_jupyterlab_changes_law_and_redraws(tmp_path, jupyter_dirs):
                 table.filter(has_text="nearer than").wait_for(timeout=60_000)
                 assert "±" in table.inner_text() and table.locator("tr").count() >= 2
                 _drawn_canvas(sky2, differs_from=sky_before)
-                # the least-probability slider, moved with the keyboard (its handle takes arrow keys)
+                # the least-probability slider (free once the look-elsewhere cut is unticked), moved
+                # with the keyboard (its handle takes arrow keys)
+                panel2.locator(".dustkit-look-elsewhere input[type=checkbox]").uncheck()
                 handle = panel2.locator(".dustkit-min-probability .noUi-handle").first
                 handle.focus()
                 handle.press("Home")

@@ -518,8 +518,10 @@ def test_the_command_line_says_why_no_feature_is_listed(cloudy, tmp_path, capsys
     assert not first.endswith(":"), first
     improbable = meta["n_candidates"] - meta["n_unsupported"] - meta["n_model_doubts"]
     assert (f"No feature listed: of {meta['n_candidates']} candidate region(s), {meta['n_unsupported']} shown by "
-            f"fewer than 2 tracers, {meta['n_model_doubts']} below the model's own probability") in printed
-    assert f"{improbable} below the tracers' probability 0.99" in printed and "50 mag" in printed
+            f"fewer than 2 tracers (3 for 'nearer than'), {meta['n_model_doubts']} below the model's own "
+            "probability") in printed
+    assert f"{improbable} below the tracers' probability {meta['min_probability']:.4g}" in printed and "50 mag" in printed
+    assert meta["min_probability"] >= 0.99 and "look-elsewhere" in first
 
 
 def test_the_probability_cut_refuses_a_table_of_sight_line_steps():
@@ -566,3 +568,61 @@ def test_the_tracers_probability_is_never_above_one():
     _, _, p_scale = _step_posterior(d, 0.08 * d, y, np.ones(n), np.full(n, 0.1), 500.0, 3500.0)
     p = _scale_probability(p_scale, 1.2, 0.25)
     assert 0.99 < p <= 1.0
+
+
+def test_the_least_probability_grows_with_the_candidates_tested(cloudy):
+    # the look-elsewhere effect: n candidate regions each held to false_rate / n keep the chance
+    # of listing any unsupported one at most false_rate (Bonferroni's inequality, from memory)
+    from astropy.table import QTable
+
+    from dustkit.features import FALSE_RATE, MIN_PROBABILITY, probability_threshold, significant_features
+
+    assert FALSE_RATE == 0.1 and MIN_PROBABILITY == 0.99
+    assert probability_threshold(5) == 0.99  # a small search keeps the floor
+    assert probability_threshold(50) == pytest.approx(0.998)
+    assert probability_threshold(100) == pytest.approx(0.999)
+    assert probability_threshold(100, false_rate=0.5) == pytest.approx(0.995)
+    assert probability_threshold(100, false_rate=None) == 0.99
+    # a table of 50 candidates: 0.995 is listed at a fixed 0.99 but not after the correction
+    t = QTable({"significance": [0.995, 0.9985, 0.9995], "model_significance": [1.0, 1.0, 1.0],
+                "distance": [500.0, 900.0, 1500.0] * u.pc})
+    t.meta.update(n_candidates=50)
+    kept = significant_features(t)
+    assert list(kept["significance"]) == [0.9985, 0.9995] and list(kept["feature"]) == [1, 2]
+    assert kept.meta["min_probability"] == pytest.approx(0.998) and kept.meta["false_rate"] == FALSE_RATE
+    assert len(significant_features(t, 0.99)) == 3  # a threshold given is used as it is
+    assert significant_features(t, 0.99).meta["false_rate"] is None
+    # on a model: the default equals the search made once and cut after, with the table's count
+    _, _, model = cloudy
+    feats = density_features(model)
+    n = feats.meta["n_candidates"]
+    assert feats.meta["min_probability"] == pytest.approx(probability_threshold(n))
+    assert np.all(np.asarray(feats["significance"]) >= probability_threshold(n))
+    again = significant_features(density_features(model, min_probability=0.0))
+    np.testing.assert_allclose(again["distance"].to_value(u.pc), feats["distance"].to_value(u.pc))
+    for bad in (0.0, 1.5, "x"):
+        with pytest.raises(ParameterError, match="false_rate"):
+            density_features(model, false_rate=bad)
+    stripped = QTable(t)
+    stripped.meta.clear()
+    with pytest.raises(ParameterError, match="n_candidates"):
+        significant_features(stripped)
+
+
+def test_a_nearer_than_feature_needs_three_tracers_showing_it(unseen_foreground):
+    # with no tracer in front, only the tracers behind speak for a 'nearer than' feature: two
+    # wrong members close on the sky would make a confident one, so it needs three (the
+    # default); located features keep two (tracers in front corroborate them)
+    from dustkit.features import MIN_SUPPORT_NEARER
+
+    _, _, model = unseen_foreground
+    assert MIN_SUPPORT_NEARER == 3
+    feats = density_features(model)
+    nearer = feats["kind"] == KIND_NEARER
+    assert nearer.sum() >= 1 and np.all(np.asarray(feats["n_behind"])[nearer] >= 1)
+    strict = density_features(model, min_support_nearer=1000)
+    assert np.all(strict["kind"] == KIND_LOCATED)
+    assert len(strict) == int(np.sum(~nearer))
+    assert strict.meta["n_unsupported"] >= feats.meta["n_unsupported"] + int(nearer.sum())
+    # never fewer than min_support
+    assert density_features(model, min_support_nearer=1, min_support=4).meta["min_support_nearer"] == 4

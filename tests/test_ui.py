@@ -520,8 +520,13 @@ def test_feature_layer_on_a_density_model(density_explorer, monkeypatch):
     ex.select(300.0, -1.0, radius=2.5)  # toward the invented cloud at 600 pc
     ex.feature_layer_widget.value = True
     _ok(ex)
-    assert not ex.min_probability_widget.disabled
-    want = density_features(ex.model, min_probability=MIN_PROBABILITY)
+    # by default the cut is the command line's: corrected for the look-elsewhere effect of the
+    # model's search, shown on the (disabled) slider
+    assert ex.look_elsewhere_widget.value and ex.min_probability_widget.disabled
+    want = density_features(ex.model)
+    assert want.meta["min_probability"] >= MIN_PROBABILITY
+    assert ex.min_probability_widget.value == pytest.approx(want.meta["min_probability"], abs=1e-4)
+    assert f"{want.meta['min_probability']:.4f} (look-elsewhere cut over" in ex.status.value
     assert len(want) >= 1  # the invented cloud (1 mag at 600 pc) is there
     assert len(ex.layer_features) == len(want)
     np.testing.assert_allclose(ex.layer_features["l"].to_value(u.deg), want["l"].to_value(u.deg))
@@ -538,18 +543,23 @@ def test_feature_layer_on_a_density_model(density_explorer, monkeypatch):
             assert f"nearer than {r['distance_upper'].to_value(u.pc):.0f}" in html_table
         else:
             assert f"{r['distance'].to_value(u.pc):.0f} &plusmn; {r['distance_err'].to_value(u.pc):.0f}" in html_table
-    # the slider applies the cut to the features found once: no new search
+    # unticked, the slider applies its own cut to the features found once: no new search
     n_calls = len(calls)
+    ex.look_elsewhere_widget.value = False
+    assert not ex.min_probability_widget.disabled
     ex.min_probability_widget.value = 0.5
     _ok(ex)
     assert len(calls) == n_calls
     assert len(ex.layer_features) == len(density_features(ex.model, min_probability=0.5)) >= len(want)
+    assert ex.layer_features.meta["min_probability"] == 0.5
     _assert_same_drawing(ex.sky_ax, _reference_sky(ex))
-    ex.min_probability_widget.value = MIN_PROBABILITY
+    ex.look_elsewhere_widget.value = True
+    _ok(ex)
+    assert len(ex.layer_features) == len(want) and ex.min_probability_widget.disabled
 
 
 def test_feature_layer_follows_rv(density_explorer):
-    from dustkit.features import MIN_PROBABILITY, density_features
+    from dustkit.features import density_features
 
     ex = density_explorer
     ex.feature_layer_widget.value = True
@@ -558,7 +568,7 @@ def test_feature_layer_follows_rv(density_explorer):
     _ok(ex)
     assert ex.model.rv == pytest.approx(4.0)
     # a new model, so the features are found again, for that model
-    want = density_features(ex.model, min_probability=MIN_PROBABILITY)
+    want = density_features(ex.model)
     np.testing.assert_allclose(ex.layer_features["delta_av"].to_value(u.mag), want["delta_av"].to_value(u.mag))
     # E(B-V) tracers: A_V = R_V E(B-V) (definition of R_V; common practice), so the added A_V of the
     # same cloud grows by 4.0 / 3.1 (the density model rescales E(B-V) tracers exactly)

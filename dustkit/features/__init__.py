@@ -84,11 +84,12 @@ is dustkit's own. The outlier mixture follows Hogg, Bovy & Lang 2010 (arXiv:1008
 (Biometrics 30, 507).
 """
 
-from .density import (DENSITY_METHOD, KIND_LOCATED, KIND_NEARER, MIN_CONTRAST, MIN_DELTA_AV, MIN_MODEL_PROBABILITY,
-                      MIN_PROBABILITY, density_features, significant_features)
+from .density import (DENSITY_METHOD, FALSE_RATE, KIND_LOCATED, KIND_NEARER, MIN_CONTRAST, MIN_DELTA_AV,
+                      MIN_MODEL_PROBABILITY, MIN_PROBABILITY, MIN_SUPPORT_NEARER, density_features,
+                      probability_threshold, significant_features)
 from .sky import adaptive_radii, detect_features, sight_line_features
 from .steps import STEP_METHOD, find_steps
 
-__all__ = ["density_features", "significant_features", "find_steps", "sight_line_features", "detect_features", "adaptive_radii", "STEP_METHOD",
+__all__ = ["density_features", "significant_features", "probability_threshold", "find_steps", "sight_line_features", "detect_features", "adaptive_radii", "STEP_METHOD",
            "DENSITY_METHOD", "KIND_LOCATED", "KIND_NEARER", "MIN_PROBABILITY", "MIN_MODEL_PROBABILITY", "MIN_CONTRAST",
-           "MIN_DELTA_AV"]
+           "MIN_DELTA_AV", "FALSE_RATE", "MIN_SUPPORT_NEARER"]

@@ -198,8 +198,9 @@ from .._lib.validation import check_int, check_real, param_error, to_scalar
 from ..answers import CAUTION
 from ..exceptions import ModelNotFittedError
 
-__all__ = ["density_features", "significant_features", "DENSITY_METHOD", "KIND_LOCATED", "KIND_NEARER",
-           "MIN_PROBABILITY", "MIN_MODEL_PROBABILITY", "MIN_CONTRAST", "MIN_DELTA_AV"]
+__all__ = ["density_features", "significant_features", "probability_threshold", "DENSITY_METHOD", "KIND_LOCATED",
+           "KIND_NEARER", "MIN_PROBABILITY", "FALSE_RATE", "MIN_MODEL_PROBABILITY", "MIN_CONTRAST", "MIN_DELTA_AV",
+           "MIN_SUPPORT_NEARER"]
 
 #: One-line description of the method, stored in table metadata.
 DENSITY_METHOD = (
@@ -209,8 +210,11 @@ DENSITY_METHOD = (
     "at least min_support tracers must show it"
 )
 
-#: Default least significance of a listed feature (see "Why these defaults").
+#: Least significance of a listed feature, whatever the number of candidates (see "Why these defaults").
 MIN_PROBABILITY = 0.99
+#: Default chance, over a whole search, that a region its tracers do not support passes the significance
+#: threshold (the look-elsewhere correction: ``1 - FALSE_RATE / n_candidates``; see "Why these defaults").
+FALSE_RATE = 0.1
 #: Default least posterior probability of the model itself (its samples) that a listed feature adds more
 #: than ``min_delta_av`` (see "Why these defaults").
 MIN_MODEL_PROBABILITY = 0.75
@@ -218,6 +222,9 @@ MIN_MODEL_PROBABILITY = 0.75
 MIN_CONTRAST = 1.3
 #: Default least extinction (mag) a listed feature adds through its peak pixel (see "Why these defaults").
 MIN_DELTA_AV = 0.25
+
+#: Default least number of tracers showing a 'nearer than' feature (no tracer in front corroborates it).
+MIN_SUPPORT_NEARER = 3
 
 KIND_LOCATED = "located"
 KIND_NEARER = "nearer than"
@@ -334,8 +341,8 @@ def _weighted_sky(lc, bc, w):
 
 
 def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag / u.kpc, min_delta_av=MIN_DELTA_AV * u.mag,
-                     min_probability=MIN_PROBABILITY, min_model_probability=MIN_MODEL_PROBABILITY, min_front=2,
-                     min_support=2, quiet=None):
+                     min_probability=None, false_rate=FALSE_RATE, min_model_probability=MIN_MODEL_PROBABILITY,
+                     min_front=2, min_support=2, min_support_nearer=MIN_SUPPORT_NEARER, quiet=None):
     """Dust features of a fitted 3-D density model: compact over-densities with their significance.
 
     See :mod:`dustkit.features.density` for the method, the reasoning behind the defaults
@@ -353,9 +360,16 @@ def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag
         (default 0.2 mag/kpc).
     min_delta_av : Quantity['mag']
         Least extinction a feature must add through its peak pixel (default 0.25 mag, ``MIN_DELTA_AV``).
-    min_probability : float
+    min_probability : float, optional
         Least posterior probability, from the feature's tracers, that it adds more than
-        ``min_delta_av`` (default 0.99; see step 4 of the module notes).
+        ``min_delta_av`` (see step 4 of the module notes). Default: corrected for the
+        look-elsewhere effect of testing ``n_candidates`` regions,
+        ``max(0.99, 1 - false_rate / n_candidates)`` (:func:`probability_threshold`); a value
+        given here is used as it is.
+    false_rate : float or None
+        The chance, over the whole search, that a region its tracers do not support is listed
+        (default 0.1, ``FALSE_RATE``; used when ``min_probability`` is not given; None: 0.99
+        whatever the number of candidates).
     min_model_probability : float
         Least posterior probability of the model itself (``model_significance``, from its
         posterior samples) that the feature adds more than ``min_delta_av`` (default 0.75,
@@ -367,6 +381,10 @@ def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag
         Least number of tracers in the feature's footprint that show its extinction; a
         region that fewer tracers show is not listed (default 2: a lone tracer could be a
         wrong member, and the model then draws a cloud around it).
+    min_support_nearer : int
+        The same for a ``'nearer than'`` feature (default 3, ``MIN_SUPPORT_NEARER``, and at
+        least ``min_support``): with no tracer in front to say otherwise, two wrong members
+        near each other on the sky make a confident cloud.
     quiet : bool, optional
         Hide the progress bar (default: the model's setting; shown only on a terminal).
 
@@ -406,10 +424,13 @@ def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag
     check_real("min_excess", exc_min, 0.0, np.inf)
     dav_min = to_scalar("min_delta_av", min_delta_av, u.mag, default_unit=u.mag)
     check_real("min_delta_av", dav_min, 0.0, np.inf)
-    min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
+    if min_probability is not None:
+        min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
+    false_rate = _check_rate(false_rate)
     min_model_probability = check_real("min_model_probability", min_model_probability, 0.0, 1.0)
     min_front = check_int("min_front", min_front, 0, 1000)
     min_support = check_int("min_support", min_support, 0, 1000)
+    min_support_nearer = max(check_int("min_support_nearer", min_support_nearer, 0, 1000), min_support)
 
     grid = model.grid_
     e = grid.distance_edges
@@ -450,43 +471,80 @@ def density_features(model, *, min_contrast=MIN_CONTRAST, min_excess=0.2 * u.mag
         row = _measure(cells, ca, ck, av, lay, inc_m, inc_l, excess, contrast, samples, mid, e, lc, bc, pix_rad,
                        tslot, td, tde, tres, tae, dav_min, min_front)
         rows.append(row)
-    supported = [r for r in rows if r["_support"] >= min_support]
+    supported = [r for r in rows if r["_support"] >= (min_support_nearer if r["kind"] == KIND_NEARER else min_support)]
     listed = [r for r in supported if r["model_significance"] >= min_model_probability]
     t = _table(listed)
     t.meta.update({
         "nside": grid.nside, "ordering": grid.ordering.upper(), "coordsys": "G", "min_contrast": min_contrast,
-        "min_excess_mag_per_kpc": exc_min, "min_delta_av": dav_min, "min_probability": min_probability,
-        "min_front": min_front, "min_support": min_support, "n_candidates": int(n_reg),
+        "min_excess_mag_per_kpc": exc_min, "min_delta_av": dav_min,
+        "min_front": min_front, "min_support": min_support, "min_support_nearer": min_support_nearer,
+        "n_candidates": int(n_reg),
         "n_unsupported": len(rows) - len(supported), "min_model_probability": min_model_probability,
         "n_model_doubts": len(supported) - len(listed), "n_samples": int(samples.shape[2]),
         "resolution": f"correlation length {getattr(model, 'length_', float('nan')):.0f} pc",
         "method": DENSITY_METHOD, "caution": CAUTION,
     })
-    return significant_features(t, min_probability)
+    return significant_features(t, min_probability, false_rate=false_rate)
 
 
-def significant_features(features, min_probability):
+def _check_rate(false_rate):
+    if false_rate is None:
+        return None
+    return check_real("false_rate", false_rate, 0.0, 1.0, low_inclusive=False)
+
+
+def probability_threshold(n_candidates, false_rate=FALSE_RATE):
+    """The least significance of a listed feature when ``n_candidates`` regions were tested.
+
+    ``max(MIN_PROBABILITY, 1 - false_rate / n_candidates)``: each candidate is held to
+    ``false_rate / n_candidates``, so that over the whole search the chance of listing a
+    region its tracers do not support is at most ``false_rate`` (Bonferroni's bound, the
+    usual correction for the look-elsewhere effect), and never below 0.99. ``false_rate=None``
+    gives 0.99 whatever the number of candidates.
+    """
+    n = check_int("n_candidates", n_candidates, 0, 10**9)
+    false_rate = _check_rate(false_rate)
+    if false_rate is None:
+        return MIN_PROBABILITY
+    return float(max(MIN_PROBABILITY, 1.0 - false_rate / max(n, 1)))
+
+
+def significant_features(features, min_probability=None, false_rate=FALSE_RATE):
     """The features of a :func:`density_features` table with a significance of at least ``min_probability``.
 
     ``density_features(model, min_probability=p)`` equals
     ``significant_features(density_features(model, min_probability=0), p)``: the search is
-    made once and the threshold applied after (what the explorer's slider does). Features
-    keep their order (nearest first) and are numbered again from 1; ``meta['min_probability']``
-    is set to ``p`` and ``meta['expected_false']`` to the sum of 1 - significance over the kept
-    features.
+    made once and the threshold applied after (what the explorer's slider does); likewise
+    with the look-elsewhere threshold (``min_probability=None``), from the table's
+    ``meta['n_candidates']``. Features keep their order (nearest first) and are numbered
+    again from 1; ``meta['min_probability']`` is set to the threshold used,
+    ``meta['false_rate']`` to ``false_rate`` (None when ``min_probability`` was given) and
+    ``meta['expected_false']`` to the sum of 1 - significance over the kept features.
 
     Parameters
     ----------
     features : QTable
         A table of :func:`density_features` (column ``significance``).
-    min_probability : float
-        Least posterior probability that a feature adds more than the table's ``min_delta_av``.
+    min_probability : float, optional
+        Least posterior probability that a feature adds more than the table's
+        ``min_delta_av``. Default: :func:`probability_threshold` of the table's number of
+        candidate regions and ``false_rate``.
+    false_rate : float or None
+        See :func:`density_features` (default 0.1, ``FALSE_RATE``).
 
     Returns
     -------
     QTable
     """
-    min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
+    if min_probability is None:
+        n_cand = getattr(features, "meta", {}).get("n_candidates")
+        if n_cand is None:
+            raise param_error("min_probability", "a value: the table's meta has no 'n_candidates' to correct "
+                              "for the look-elsewhere effect (give min_probability=0.99, say)", None)
+        min_probability = probability_threshold(n_cand, false_rate)
+    else:
+        min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
+        false_rate = None
     if not {"significance", "model_significance"} <= set(getattr(features, "colnames", ())):
         # a detect_features table has a 'significance' too, but a BIC improvement (10, 25, ...), not a probability
         raise param_error("features", "a table of density_features (with 'significance' and 'model_significance' "
@@ -495,6 +553,7 @@ def significant_features(features, min_probability):
     t = features[np.asarray(features["significance"], float) >= min_probability]
     t["feature"] = np.arange(1, len(t) + 1)
     t.meta["min_probability"] = min_probability
+    t.meta["false_rate"] = false_rate
     t.meta["expected_false"] = float(np.sum(1.0 - np.asarray(t["significance"], float)))
     return t
 

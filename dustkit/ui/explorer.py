@@ -20,8 +20,9 @@
   :func:`dustkit.features.detect_features` for a binned one), kept, and found again for a
   model of another law, R_V or grid; they are drawn on the sky map and the profile and
   listed in a small table (distance with its error or "nearer than D", the added A_V, the
-  probability). For a density model a slider sets the least probability
-  (:func:`dustkit.features.significant_features`: no new search);
+  probability). For a density model the least probability is the look-elsewhere cut of
+  the model's search (*Look-elsewhere cut*, as ``dustkit features``), or, unticked, the
+  slider's (:func:`dustkit.features.significant_features`: no new search);
 * an export button with a format chooser and a file name (:func:`dustkit.io.export_table`).
 
 No science lives here: the panel calls :mod:`dustkit.model` and draws with
@@ -53,7 +54,7 @@ from .._lib.validation import check_choice, check_int, param_error, to_scalar
 from ..laws import get_law
 from ..layer import given_layer
 from ..model import CAUTION, DENSITY_LIMIT, ExtinctionModel
-from .feature_table import feature_table_html
+from .feature_layer import _DESC, _FeatureLayer
 
 __all__ = ["Explorer"]
 
@@ -65,14 +66,13 @@ _FORMATS = {}  # table format -> its first suffix in the format registry ("ecsv"
 for _suffix, _format in TABLE_FORMATS.items():
     _FORMATS.setdefault(_format, _suffix)
 _CONTROL_WIDTH = "390px"
-_DESC = {"description_width": "125px"}
 
 
 def _lbl(text):
     return widgets.HTML(f"<b>{html.escape(text)}</b>", layout=widgets.Layout(margin="8px 0 0 0"))
 
 
-class Explorer:
+class Explorer(_FeatureLayer):
     """Interactive panel to explore an extinction model built from tracers.
 
     Parameters
@@ -304,6 +304,7 @@ class Explorer:
             (self.quantity_widget, "dustkit-quantity"), (self.distance_widget, "dustkit-distance"),
             (self.kind_widget, "dustkit-map-kind"), (self.features_widget, "dustkit-features"),
             (self.feature_layer_widget, "dustkit-feature-layer"),
+            (self.look_elsewhere_widget, "dustkit-look-elsewhere"),
             (self.min_probability_widget, "dustkit-min-probability"), (self.feature_table, "dustkit-feature-table"),
             (self.format_widget, "dustkit-format"),
             (self.filename_widget, "dustkit-filename"), (self.overwrite_widget, "dustkit-overwrite"),
@@ -321,7 +322,8 @@ class Explorer:
                 _lbl("Sight line (or click the map)"), self.l_widget, self.b_widget, self.radius_widget,
                 self.quantity_widget, self.features_widget,
                 _lbl("Sky map"), self.distance_widget, self.kind_widget,
-                _lbl("Dust features"), self.feature_layer_widget, self.min_probability_widget, self.feature_table,
+                _lbl("Dust features"), self.feature_layer_widget, self.look_elsewhere_widget,
+                self.min_probability_widget, self.feature_table,
                 _lbl("Export"), self.format_widget, self.filename_widget, self.overwrite_widget,
                 W.HBox([self.export_button]),
                 _lbl("Status"), self.status, self.log, caution,
@@ -335,21 +337,6 @@ class Explorer:
         self.panel.add_class("dustkit-explorer")
 
         self._connect(base)
-
-    def _build_feature_widgets(self, full):
-        """The dust-features layer: a checkbox, the least-probability slider and the table."""
-        from ..features import MIN_PROBABILITY
-
-        W = widgets
-        self.feature_layer_widget = W.Checkbox(value=False, indent=False, description="Show dust features",
-                                               tooltip="Find the dust features of the whole model (once per model) "
-                                                       "and draw them on the map and the profile")
-        self.min_probability_widget = W.FloatSlider(value=MIN_PROBABILITY, min=0.5, max=1.0, step=0.01,
-                                                    continuous_update=False, readout_format=".2f",
-                                                    description="Least probability", style=_DESC, layout=full,
-                                                    tooltip="Least posterior probability (density model) that "
-                                                            "a feature adds its extinction")
-        self.feature_table = W.HTML(value="", layout=W.Layout(width="375px", max_height="220px", overflow="auto"))
 
     def _build_figures(self, base):
         """The sky map and profile figures (the sky extent is fixed by the tracers, so the view is stable)."""
@@ -373,7 +360,7 @@ class Explorer:
             w.observe(self._on_sight_line, "value")
         for w in (self.distance_widget, self.kind_widget):
             w.observe(self._on_sky, "value")
-        for w in (self.feature_layer_widget, self.min_probability_widget):
+        for w in (self.feature_layer_widget, self.look_elsewhere_widget, self.min_probability_widget):
             w.observe(self._on_feature_layer, "value")
         self.format_widget.observe(self._on_format, "value")
         self.export_button.on_click(lambda _b: self._run(self._export))
@@ -734,75 +721,6 @@ class Explorer:
         finally:
             self._syncing = False
         self._redraw_sight_line()
-
-    # ------------------------------------------------------------------ dust features layer
-    @staticmethod
-    def _is_density(model):
-        return hasattr(model, "samples_")
-
-    def model_features(self, model=None):
-        """All dust features of a fitted model, found once per model and kept.
-
-        A 3-D density model: :func:`dustkit.features.density_features` with
-        ``min_probability=0`` (the slider then picks, see :meth:`feature_parameters`); a
-        binned model: :func:`dustkit.features.detect_features` with its defaults.
-        """
-        from ..features import density_features, detect_features
-
-        model = self.model if model is None else model
-        key = id(model)
-        if key in self._layer_cache and self._layer_cache[key][0] is model:
-            self._layer_cache.move_to_end(key)
-            return self._layer_cache[key][1]
-        self._set_status("Finding the dust features of this model ...")
-        t0 = time.perf_counter()
-        if self._is_density(model):
-            found = density_features(model, min_probability=0.0, quiet=True)
-        else:
-            found = detect_features(model, quiet=True)
-        cut = " before the probability cut" if self._is_density(model) else ""
-        print(f"{len(found)} dust feature(s){cut} found in the model in {time.perf_counter() - t0:.1f} s.")
-        self._layer_cache[key] = (model, found)
-        while len(self._layer_cache) > self._cache_size + 1:  # the models kept, and the one shown
-            self._layer_cache.popitem(last=False)
-        return found
-
-    def feature_parameters(self):
-        """Keyword arguments of :func:`dustkit.features.significant_features` for the layer (density models)."""
-        return dict(min_probability=float(self.min_probability_widget.value))
-
-    def _update_layer(self):
-        """Find (or fetch) the features layer of the model shown, apply the slider, fill the table."""
-        density = self._is_density(self.model)
-        self.min_probability_widget.disabled = not density
-        if not self.feature_layer_widget.value:
-            self.layer_features = None
-            self.feature_table.value = ""
-            return
-        found = self.model_features()
-        if density:
-            from ..features import significant_features
-
-            found = significant_features(found, **self.feature_parameters())
-        self.layer_features = found
-        self.feature_table.value = feature_table_html(found, density)
-
-    def _on_feature_layer(self, change):
-        if self._syncing:
-            return
-        self._run(self._redraw_feature_layer)
-
-    def _redraw_feature_layer(self):
-        self._update_layer()
-        self._draw_sky()
-        self._draw_profile()
-        if self.layer_features is None:
-            self._set_status("Dust features hidden.")
-        else:
-            n = len(self.layer_features)
-            cut = (f" with probability >= {self.min_probability_widget.value:.2f}"
-                   if self._is_density(self.model) else "")
-            self._set_status(f"{n} dust feature(s){cut} in the model ({self.model.law}, R_V = {self.model.rv:g}).")
 
     # ------------------------------------------------------------------ export
     def _on_format(self, change):
