@@ -655,11 +655,12 @@ def test_density_build_says_when_a_subset_chose_the_hyperparameters(files, tmp_p
 def test_features_help_states_the_finder_defaults(call):
     # the command passes no value of its own when an option is not given: the finder's
     # defaults rule, and the help must name the same ones
-    from dustkit.features import MIN_CONTRAST, MIN_PROBABILITY
+    from dustkit.features import FALSE_RATE, MIN_CONTRAST, MIN_PROBABILITY
 
     rc, out, err = call("features", "--help")
     text = " ".join(out.split())
-    assert f"(default {MIN_PROBABILITY:g})" in text
+    assert f"at least {MIN_PROBABILITY:g}; see" in text
+    assert f"(default {FALSE_RATE:g}); 'off'" in text
     assert f"(default {MIN_CONTRAST:g})" in text
 
 

@@ -205,6 +205,17 @@ def test_the_command_line_uses_the_density_finder_for_a_density_model(cloudy, tm
     loose = Table.read(ecsv)
     assert loose.meta["min_model_probability"] == 0.0
     assert len(loose) == len(density_features(model, min_model_probability=0.0)) >= len(want)
+    # the look-elsewhere correction: the default threshold, a rate given, or off (0.99 whatever
+    # the candidates); a rate outside (0, 1] or a rate with a threshold is refused
+    n = want.meta["n_candidates"]
+    assert Table.read(ecsv).meta["min_probability"] == pytest.approx(max(0.99, 1 - 0.1 / n))
+    assert main(["features", str(path), "-o", str(ecsv), "--overwrite", "--false-rate", "0.5", "--quiet"]) == 0
+    assert Table.read(ecsv).meta["min_probability"] == pytest.approx(max(0.99, 1 - 0.5 / n))
+    assert main(["features", str(path), "-o", str(ecsv), "--overwrite", "--false-rate", "off", "--quiet"]) == 0
+    assert Table.read(ecsv).meta["min_probability"] == 0.99 and Table.read(ecsv).meta["false_rate"] is None
+    for bad in (["--false-rate", "0"], ["--false-rate", "ten"], ["--false-rate", "0.1", "--min-probability", "0.9"]):
+        assert main(["features", str(path), "-o", str(tmp_path / "f3.csv"), *bad, "--quiet"]) != 0, bad
+        assert not (tmp_path / "f3.csv").exists()
     # the cone radius belongs to the sight-line finder
     assert main(["features", str(path), "-o", str(tmp_path / "f2.csv"), "--radius", "3", "--quiet"]) != 0
 

@@ -54,7 +54,7 @@ from .._lib.validation import check_choice, check_int, param_error, to_scalar
 from ..laws import get_law
 from ..layer import given_layer
 from ..model import CAUTION, DENSITY_LIMIT, ExtinctionModel
-from .feature_layer import _DESC, _FeatureLayer
+from .feature_layer import FeatureLayer
 
 __all__ = ["Explorer"]
 
@@ -66,13 +66,14 @@ _FORMATS = {}  # table format -> its first suffix in the format registry ("ecsv"
 for _suffix, _format in TABLE_FORMATS.items():
     _FORMATS.setdefault(_format, _suffix)
 _CONTROL_WIDTH = "390px"
+_DESC = {"description_width": "125px"}
 
 
 def _lbl(text):
     return widgets.HTML(f"<b>{html.escape(text)}</b>", layout=widgets.Layout(margin="8px 0 0 0"))
 
 
-class Explorer(_FeatureLayer):
+class Explorer(FeatureLayer):
     """Interactive panel to explore an extinction model built from tracers.
 
     Parameters
@@ -117,6 +118,8 @@ class Explorer(_FeatureLayer):
         The dust features drawn on the map and the profile while *Show dust features* is
         ticked (:meth:`model_features` after the probability cut), None otherwise.
     """
+
+    _widget_style = _DESC  # the labels' width of every control (the features layer's too)
 
     def __init__(self, tracers, model=None, *, features=None, figures="auto", cache_size=8, **model_params):
         from ..tracers import TracerSet, read_tracers

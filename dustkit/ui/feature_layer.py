@@ -1,7 +1,8 @@
 """The explorer's dust-features layer: its widgets, the features of each model, the cut and the table.
 
 A mixin of :class:`dustkit.ui.Explorer` (which owns ``model``, ``_run``, ``_set_status``,
-``_draw_sky``, ``_draw_profile``, ``_syncing``, ``_layer_cache`` and ``_cache_size``). The
+``_draw_sky``, ``_draw_profile``, ``_syncing``, ``_layer_cache``, ``_cache_size`` and the
+widgets' ``_widget_style``). The
 features of a model are found once (:func:`dustkit.features.density_features` with no
 probability cut, or :func:`dustkit.features.detect_features` for a binned model) and kept;
 for a density model the least probability is then applied without a new search
@@ -16,12 +17,10 @@ import ipywidgets as widgets
 
 from .feature_table import feature_table_html
 
-__all__ = []
-
-_DESC = {"description_width": "125px"}  # the explorer's widget style (its labels' width)
+__all__ = ["FeatureLayer"]
 
 
-class _FeatureLayer:
+class FeatureLayer:
     """Dust features on the explorer's map, profile and table (see the module notes)."""
 
     def _build_feature_widgets(self, full):
@@ -39,7 +38,7 @@ class _FeatureLayer:
                     "set it with the slider")
         self.min_probability_widget = W.FloatSlider(value=MIN_PROBABILITY, min=0.5, max=1.0, step=0.0001,
                                                     continuous_update=False, readout_format=".4f",
-                                                    description="Least probability", style=_DESC, layout=full,
+                                                    description="Least probability", style=self._widget_style, layout=full,
                                                     tooltip="Least posterior probability (density model) that "
                                                             "a feature adds its extinction")
         self.feature_table = W.HTML(value="", layout=W.Layout(width="375px", max_height="220px", overflow="auto"))
