@@ -1776,6 +1776,27 @@ def test_a_no_value_number_recurring_at_a_columns_edge_is_announced():
     assert said([1200.0, 999.0, 2300, 999.0, 800, 1500])[1] == []  # inside the range: a plain distance
 
 
+def test_a_no_value_number_in_an_error_column_is_announced_even_once():
+    # an E(B-V) error of 99.99 (a 'no value' number, common practice) gives its row no weight: the
+    # reader said nothing of it, once or recurring (the error column's notes were lost); now it names
+    # the row, the column and the fix, and the row is kept as read
+    base = {"name": [f"Inv {i}" for i in range(6)], "l": [10.0, 20, 30, 40, 50, 60], "b": [0.0, 1, -1, 2, 0, 1],
+            "distance": [1200.0, 900, 2300, 1500, 800, 1500] * u.pc, "ebv": [0.3, 0.5, 0.6, 0.2, 0.4, 0.5]}
+
+    def said(errors):
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            tr = read_tracers(Table({**base, "e_ebv": errors}))
+        return tr, [str(w.message) for w in seen if "for 'no value'" in str(w.message)]
+
+    tr, notes = said([0.03, 0.03, 99.99, 0.04, 0.03, 0.05])
+    assert len(notes) == 1 and "Row 2 of column 'e_ebv' holds 99.99" in notes[0] and "default error" in notes[0]
+    assert len(tr) == 6 and np.asarray(tr.av_err)[2] > 100  # kept as read: no weight
+    notes = said([0.03, 99.99, 0.05, 99.99, 0.03, 0.05])[1]
+    assert len(notes) == 1 and "2 rows of column 'e_ebv' hold 99.99 (first at row 1)" in notes[0]
+    assert said([0.03, 0.03, 0.5, 0.04, 0.03, 0.05])[1] == []
+
+
 def test_an_excess_column_named_red_band_first_is_refused_with_the_fix():
     # E(RP-BP) is negative for any dust (common practice: excesses are bluer minus redder band):
     # read as given, every A_V would be negative; the reader names the column and the fix, and

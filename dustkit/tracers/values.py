@@ -25,6 +25,10 @@ _MISSING_TOKENS = {"", "nan", "--", "null", "none", "na", "n/a", "-", "masked"}
 #: of them recurs at the edge of a column's values.
 _SENTINELS = (99.0, 99.9, 99.99, 999.0, 999.9, 999.99, 9999.0, 99999.0, -99.0, -99.9, -99.99, -999.0, -9999.0)
 
+_SENTINEL_HINT = "blank those cells, or pass reject_limits to leave them out, if they mean 'no value'."
+_OPTIONAL_HINT = ("blank those cells if they mean 'no value' (an error then takes the default error, a temperature "
+                  "or intrinsic colour the default star); an error that large gives its row no weight.")
+
 
 _SEXAGESIMAL = (
     r"^\s*([+-]?)\s*(\d{1,3})(?:\s*[:hHdD\u00b0]\s*|\s+)(\d{1,2})(?:\s*[:mM']\s*|\s+)"
@@ -32,7 +36,7 @@ _SEXAGESIMAL = (
 )
 
 
-def numeric(table, colname, ctx, *, sexagesimal=None):
+def numeric(table, colname, ctx, *, sexagesimal=None, sentinel_least=2, sentinel_hint=_SENTINEL_HINT):
     """Return (float values, unit or None, raw column) and reject missing / non-numeric rows.
 
     ``sexagesimal`` is ``"hour"`` or ``"deg"`` when strings like '12:30:00' are allowed.
@@ -93,7 +97,7 @@ def numeric(table, colname, ctx, *, sexagesimal=None):
     ctx.rej.add(nonnumeric, reason("non_numeric", colname), colname, col)
     ctx.rej.add(infinite, reason("infinite", colname), colname, col)
     values = np.where(np.isfinite(values), values, np.nan)
-    _note_sentinels(values, colname, ctx)
+    _note_sentinels(values, colname, ctx, least=sentinel_least, hint=sentinel_hint)
     return values, unit, col
 
 
@@ -108,21 +112,23 @@ def _column_unit(unit):
     return None if unit == u.dimensionless_unscaled else unit
 
 
-def _note_sentinels(values, colname, ctx):
-    """Announce a 'no value' number (99.99, -999, ...) that recurs as a column's largest or smallest value."""
+def _note_sentinels(values, colname, ctx, least=2, hint=_SENTINEL_HINT):
+    """Announce a 'no value' number (99.99, -999, ...) that recurs (``least`` times) as a column's largest or
+    smallest value."""
     fin = values[np.isfinite(values)]
     if fin.size < 3:
         return
-    for edge in (fin.max(), fin.min()):
+    for edge in {fin.max(), fin.min()}:
         if edge not in _SENTINELS:
             continue
         n = int(np.count_nonzero(fin == edge))
-        if n >= 2:
+        if n >= least:
             first = int(np.argmax(values == edge))
+            rows = f"{n} rows of column {colname!r} hold" if n > 1 else f"Row {first} of column {colname!r} holds"
+            where = f" (first at row {first})" if n > 1 else ""
             ctx.note(AssumptionWarning,
-                     f"{n} rows of column {colname!r} hold {edge:g} (first at row {first}), a number catalogues write "
-                     "for 'no value'; they are read as that number. Hint: blank those cells, or pass reject_limits "
-                     "to leave them out, if they mean 'no value'.")
+                     f"{rows} {edge:g}{where}, a number catalogues write for 'no value'; read as that number. "
+                     f"Hint: {hint}")
 
 
 def _parse_sexagesimal(strings, hours):
@@ -331,21 +337,25 @@ def relative_error_factor(colname, unit, value_col):
     return None
 
 
-def optional_numbers(table, colname, ctx):
+def optional_numbers(table, colname, ctx, sentinel_least=2):
     """Values of an optional per-row column (an error, a temperature, an intrinsic colour): text and
-    infinities reject the row in ``ctx.rej``; empty cells are NaN (not rejected). Returns (values, unit, raw)."""
+    infinities reject the row in ``ctx.rej``; empty cells are NaN (not rejected). Returns (values, unit, raw).
+    A 'no value' number (99.99, ...) at the column's edge is announced when it occurs ``sentinel_least`` times."""
     sub = Context(table, ctx.desc)
-    vals, unit, raw = numeric(table, colname, sub)
+    vals, unit, raw = numeric(table, colname, sub, sentinel_least=sentinel_least, sentinel_hint=_OPTIONAL_HINT)
     for k, (why, c, r) in enumerate(sub.rej.reasons):
         if why in (reason("non_numeric", c), reason("infinite", c)):
             ctx.rej.add(sub.rej.code == k, why, c, r)
+    for cls, msg in sub.notes:  # the 'no value' numbers' notes
+        ctx.note(cls, msg)
     return vals, unit, raw
 
 
 def _error_numbers(table, colname, ctx):
     """An error column's numbers and unit (:func:`optional_numbers`), negative errors rejected too;
     empty cells are NaN (they take the default, not rejected)."""
-    vals, unit, _ = optional_numbers(table, colname, ctx)
+    # a lone 99.99 among errors is as much a 'no value' as a recurring one (it gives its row no weight)
+    vals, unit, _ = optional_numbers(table, colname, ctx, sentinel_least=1)
     ctx.rej.add(vals < 0, reason("negative_error", colname), colname, table[colname])
     return vals, unit
 
