@@ -1797,6 +1797,20 @@ def test_a_no_value_number_in_an_error_column_is_announced_even_once():
     assert said([0.03, 0.03, 0.5, 0.04, 0.03, 0.05])[1] == []
 
 
+def test_a_reddening_column_in_millimag_without_a_unit_gets_the_fix():
+    # E(B-V) written in mmag with no unit (350 for 0.35 mag): every row is out of range; the
+    # refusal says the values look like millimagnitudes and how to say so, and with the unit
+    # the same values read as mag (1 mmag = 0.001 mag, definition)
+    ebv = [350.0, 520, 610, 180, 430, 505]
+    t = Table({"name": [f"Inv {i}" for i in range(6)], "l": [10.0, 20, 30, 40, 50, 60], "b": [0.0, 1, -1, 2, 0, 1],
+               "distance": [1200.0, 900, 2300, 1500, 800, 1500] * u.pc, "ebv": ebv})
+    with pytest.raises(CatalogError, match=r"Column 'ebv' has no unit.*millimagnitudes.*'mmag'"):
+        read_tracers(t)
+    t["ebv"].unit = u.mmag
+    tr = read_tracers(t, rv=3.1)
+    np.testing.assert_allclose(np.asarray(tr.av), 3.1 * np.asarray(ebv) / 1000.0)
+
+
 def test_an_excess_column_named_red_band_first_is_refused_with_the_fix():
     # E(RP-BP) is negative for any dust (common practice: excesses are bluer minus redder band):
     # read as given, every A_V would be negative; the reader names the column and the fix, and

@@ -106,7 +106,7 @@ def build_tracers(
         raise CatalogError(
             f"No usable tracer in {source_desc}: all {n} rows were rejected ({ctx.rej.reason_text()}). "
             f"Columns used: {', '.join(f'{k}={v!r}' for k, v in cols.items())}. "
-            "Hint: check the column recognition (columns={...}), the units and reject_limits."
+            + (ctx.unit_hint or "Hint: check the column recognition (columns={...}), the units and reject_limits.")
         )
     if len(rejected):
         ctx.note(

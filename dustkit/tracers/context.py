@@ -121,6 +121,7 @@ class Context:
         self.temperature = None  # per-row source temperatures of a colour-excess conversion (K)
         self.rows_are = "tracers"  # what the rows are, in messages: "tracers" or "targets" (read_targets)
         self.sexagesimal_hours = set()  # columns read as sexagesimal hours of right ascension
+        self.unit_hint = None  # a column's values that look like another unit than read (said if nothing is left)
 
     def note(self, cls, msg, assumption=True):
         self.notes.append((cls, msg))

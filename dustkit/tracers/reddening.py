@@ -322,4 +322,19 @@ def reddening(table, cols, ctx, law, rv, default_err, limits, excess_color, sour
     else:
         why = reason("excess_outside", colname, kind=kind, av_lo=rv * lo, av_hi=rv * hi, lo=lo, hi=hi)
     ctx.rej.add(bad, why, colname, raw)
+    _hint_millimag(given, vunit, bad & (ebv_eq > hi), colname, ctx)
     return vals, err, kind, (None if kind == "A_V" else color), av, av_err
+
+
+def _hint_millimag(given, unit, too_high, colname, ctx):
+    """A reddening column with no unit whose values nearly all lie above the limit, at hundreds: millimag."""
+    fin = np.isfinite(given)
+    if unit is not None or fin.sum() < 1 or np.mean(too_high[fin]) < 0.8:
+        return
+    median = float(np.median(given[fin]))
+    if 20.0 <= median <= 2.0e4:
+        ctx.unit_hint = (f"Column {colname!r} has no unit and {int(too_high.sum())} of its {int(fin.sum())} values "
+                         f"are too large for mag (median {median:.4g}): they look like millimagnitudes. Hint: give "
+                         "the column the unit 'mmag' (a Table column's .unit, or a units line under a text header) "
+                         "and read it again.")
+        ctx.note(AssumptionWarning, ctx.unit_hint)
