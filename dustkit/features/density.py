@@ -130,7 +130,7 @@ A catalogue's model has 10^4-10^5 cells, so a per-cell test at 95% would give hu
 false features. The search guards against that in three stages: (i) the contrast threshold
 (1.3, i.e. ln 1.3 = 0.26 in log-density) is applied to the posterior *mode*, which the
 prior shrinks toward the layer where the data do not demand otherwise, so the candidate
-regions (sky basins, step 2) number 14-35 per galaxy of 2 500-3 000 clusters (65-85 in the
+regions (sky basins, step 2) number 13-37 per galaxy of 2 500-3 000 clusters (55-90 in the
 clumpy galaxies), not thousands, and most of them
 have a significance near 0; (ii) at least two tracers must show a candidate (three for a
 'nearer than' one); (iii) it must add at least ``min_delta_av`` = 0.25 mag with a
@@ -144,7 +144,7 @@ clusters), for one cloud of 98 located (55 against 54; none of 1 000-cluster cat
 The threshold is
 the look-elsewhere correction: the tracers' probability has a flat prior on the column
 that leans toward a cloud (with no cloud at all its median is 0.57, and 7% of draws pass
-0.9), and 14-85 candidates are tested per galaxy. Each is held to ``false_rate / n`` of
+0.9), and 13-90 candidates are tested per galaxy. Each is held to ``false_rate / n`` of
 the n tested, so that the chance of listing any region its tracers do not support is at
 most ``false_rate`` over the whole search (Bonferroni's bound; ``probability_threshold``):
 0.9941 for 17 candidates, 0.9986 for 70. The bound holds as far as the probabilities are
