@@ -985,8 +985,8 @@ def _cmd_features(args, out):
         feats = density_features(model, quiet=_quiet_flag(args), **given)
         path = write_table(feats, args.output, overwrite=args.overwrite)
         meta = feats.meta
-        why = (f"look-elsewhere: a false rate of {meta['false_rate']:g} over the search" if meta["false_rate"]
-               else "as given")
+        why = (f"the look-elsewhere cut max(0.99, 1 - {meta['false_rate']:g} / {meta['n_candidates']})"
+               if meta["false_rate"] else "as given")
         out(f"{len(feats)} dust feature(s) in the 3-D density ({meta['n_candidates']} candidate region(s) "
             f"tested against their tracers; least probability {meta['min_probability']:.4g}, {why})"
             + (":" if len(feats) else "."))
