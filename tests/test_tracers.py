@@ -1811,6 +1811,23 @@ def test_a_reddening_column_in_millimag_without_a_unit_gets_the_fix():
     np.testing.assert_allclose(np.asarray(tr.av), 3.1 * np.asarray(ebv) / 1000.0)
 
 
+def test_a_distance_modulus_in_millimag_is_read_in_mag():
+    # a true modulus of 10 mag is 1 000 pc (d = 10^(mu/5 + 1) pc, definition); written as 10 000
+    # mmag it was read as 10 000 mag and the row rejected. Its error without a unit is in the
+    # modulus's unit; an apparent modulus in mmag loses A_V = R_V E(B-V) in mag
+    t = Table({"name": ["Inv A", "Inv B", "Inv C"], "l": [10.0, 20, 30], "b": [0.0, 1, -1], "ebv": [0.3, 0.4, 0.5],
+               "e_ebv": [0.02, 0.02, 0.02], "dm": [10000.0, 11500, 9000] * u.mmag, "e_dm": [100.0, 150, 80]})
+    tr = read_tracers(t, columns={"distance_modulus": "dm"})
+    np.testing.assert_allclose(np.asarray(tr.distance), 10 ** (np.array([10.0, 11.5, 9.0]) / 5 + 1))
+    # d(ln d) = ln(10) / 5 d(mu) (common practice): 0.1 mag -> 4.6%
+    np.testing.assert_allclose(np.asarray(tr.distance_err) / np.asarray(tr.distance),
+                               np.log(10) / 5 * np.array([0.1, 0.15, 0.08]), rtol=1e-6)
+    app = Table({**{k: t[k] for k in ("name", "l", "b", "ebv", "e_ebv")}, "Vmod": [10930.0, 12740, 10550] * u.mmag})
+    tr = read_tracers(app, columns={"apparent_modulus": "Vmod"}, rv=3.1)
+    np.testing.assert_allclose(np.asarray(tr.distance), 10 ** ((np.array([10.93, 12.74, 10.55]) - 3.1 * np.array(
+        [0.3, 0.4, 0.5])) / 5 + 1), rtol=1e-9)
+
+
 def test_an_excess_column_named_red_band_first_is_refused_with_the_fix():
     # E(RP-BP) is negative for any dust (common practice: excesses are bluer minus redder band):
     # read as given, every A_V would be negative; the reader names the column and the fix, and

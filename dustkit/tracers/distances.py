@@ -73,7 +73,7 @@ def distances(table, cols, ctx, distance_unit, frac, zp, limits, av, av_err,
     if kind == "distance":
         d, d_err = _from_distance(*args, dunit_arg, frac_desc)
     elif kind in ("distance_modulus", "apparent_modulus"):
-        d, d_err, err = _from_modulus(*args, kind, mu_default, av, av_err)
+        d, d_err, err, vals = _from_modulus(*args, kind, mu_default, av, av_err)
     else:
         d, d_err, low, high = _from_parallax(*args, zp, parallax_err_floor, parallax_length_scale, parallax_prior)
     ok_now = ctx.rej.code < 0
@@ -172,16 +172,17 @@ def _overrides(dunit_arg, unit, colname, ctx):
 
 
 def _from_modulus(table, cols, ctx, colname, vals, unit, raw, frac, kind, mu_default, av, av_err):
-    """Distance and error in pc from a true or an apparent V modulus, and the modulus error."""
+    """Distance and error in pc from a true or an apparent V modulus, the modulus error and the modulus (mag)."""
     label = "true distance modulus" if kind == "distance_modulus" else "apparent V modulus"
-    mag_scale(unit, colname, ctx, "a distance modulus")  # a modulus in another unit stops the read
+    vscale = mag_scale(unit, colname, ctx, "a distance modulus")  # a modulus in another unit stops the read
     err, eunit, ecol = error_values(
         table, cols, f"{kind}_err", ctx, np.nan, f"the {label} {colname!r}",
         f"{mu_default:.3f} mag (= {100 * frac:g}% in distance, default_distance_frac_err)", values=vals,
     )
-    if ecol is not None:  # in the error column's own unit (e.g. mmag)
-        err = err * mag_scale(eunit, ecol, ctx, "a distance modulus error")
+    if ecol is not None:  # in the error column's own unit (e.g. mmag), else the modulus's
+        err = err * (vscale if eunit is None else mag_scale(eunit, ecol, ctx, "a distance modulus error"))
     err = np.where(np.isnan(err), mu_default, err)
+    vals = vals * vscale  # in mag (a modulus column in mmag)
     if kind == "apparent_modulus":
         mu = vals - av
         mu_err = np.hypot(err, av_err)
@@ -191,7 +192,7 @@ def _from_modulus(table, cols, ctx, colname, vals, unit, raw, frac, kind, mu_def
     else:
         mu, mu_err = vals, err
     d, d_err = modulus_to_distance(mu, mu_err)
-    return d, d_err, err
+    return d, d_err, err, vals
 
 
 def parallax_posterior(parallax, parallax_err, length_scale=PARALLAX_LENGTH_SCALE, block=20000):
