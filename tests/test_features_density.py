@@ -547,6 +547,8 @@ def test_the_probability_cut_refuses_a_table_of_sight_line_steps():
     assert len(steps) >= 1 and np.all(np.asarray(steps["significance"]) >= 10)
     with pytest.raises(ParameterError, match="model_significance.*BIC"):
         significant_features(steps, 0.99)
+    with pytest.raises(ParameterError, match="model_significance.*BIC"):  # the look-elsewhere default too
+        significant_features(steps)
 
 
 def test_a_fits_feature_table_keeps_what_its_significance_means(cloudy, tmp_path):

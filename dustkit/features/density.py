@@ -558,6 +558,11 @@ def significant_features(features, min_probability=None, false_rate=FALSE_RATE):
     -------
     QTable
     """
+    if not {"significance", "model_significance"} <= set(getattr(features, "colnames", ())):
+        # a detect_features table has a 'significance' too, but a BIC improvement (10, 25, ...), not a probability
+        raise param_error("features", "a table of density_features (with 'significance' and 'model_significance' "
+                          "columns; a detect_features table's significance is a BIC improvement: cut it with "
+                          "table[table['significance'] >= value])", getattr(features, "colnames", type(features).__name__))
     if min_probability is None:
         n_cand = getattr(features, "meta", {}).get("n_candidates")
         if n_cand is None:
@@ -567,11 +572,6 @@ def significant_features(features, min_probability=None, false_rate=FALSE_RATE):
     else:
         min_probability = check_real("min_probability", min_probability, 0.0, 1.0)
         false_rate = None
-    if not {"significance", "model_significance"} <= set(getattr(features, "colnames", ())):
-        # a detect_features table has a 'significance' too, but a BIC improvement (10, 25, ...), not a probability
-        raise param_error("features", "a table of density_features (with 'significance' and 'model_significance' "
-                          "columns; a detect_features table's significance is a BIC improvement: cut it with "
-                          "table[table['significance'] >= value])", getattr(features, "colnames", type(features).__name__))
     t = features[np.asarray(features["significance"], float) >= min_probability]
     t["feature"] = np.arange(1, len(t) + 1)
     t.meta["min_probability"] = min_probability
