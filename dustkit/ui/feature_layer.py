@@ -37,7 +37,7 @@ class FeatureLayer:
                     f"1 - {FALSE_RATE:g} / n and at least {MIN_PROBABILITY:g} (as 'dustkit features'); untick to "
                     "set it with the slider")
         self.min_probability_widget = W.FloatSlider(value=MIN_PROBABILITY, min=0.5, max=1.0, step=0.0001,
-                                                    continuous_update=False, readout_format=".4f",
+                                                    continuous_update=False, readout_format=".4f", disabled=True,
                                                     description="Least probability", style=self._widget_style, layout=full,
                                                     tooltip="Least posterior probability (density model) that "
                                                             "a feature adds its extinction")
