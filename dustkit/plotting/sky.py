@@ -210,7 +210,8 @@ def sky_figsize(extent, width=7.5):
 
 
 def _distance_text(d_pc):
-    return f"{d_pc / 1000.0:g} kpc" if d_pc >= 1000.0 else f"{d_pc:g} pc"
+    """A distance for a title or legend: three figures in kpc, whole pc below 1 kpc (3478.46 pc -> '3.48 kpc')."""
+    return f"{d_pc / 1000.0:.3g} kpc" if d_pc >= 1000.0 else f"{d_pc:.0f} pc"
 
 
 def _unwrap_into(lon, l_min):

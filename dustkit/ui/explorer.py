@@ -152,8 +152,8 @@ class Explorer(FeatureLayer):
                 raise ModelNotFittedError("The model given to Explorer is not fitted. Hint: pass model.fit(tracers), or no model.")
             edges = model.grid_.distance_edges
             nside = model.grid_.nside
-            step = float(np.median(np.diff(edges)))
-            dmax = float(edges[-1])
+            step = round(float(np.median(np.diff(edges))), 2)
+            dmax = round(float(edges[-1]), 2)
         else:
             defaults = ExtinctionModel.param_defaults()  # the one list of model parameters
             nside = params.get("nside", defaults["nside"])
@@ -560,7 +560,9 @@ class Explorer(FeatureLayer):
     @staticmethod
     def _key_of_model(model):
         e = model.grid_.distance_edges
-        return (model.law, round(float(model.rv), 4), int(model.grid_.nside), float(np.median(np.diff(e))), float(e[-1]))
+        # the grid as its controls show it (to 0.01 pc: a density model's edges need not be evenly spaced)
+        return (model.law, round(float(model.rv), 4), int(model.grid_.nside), round(float(np.median(np.diff(e))), 2),
+                round(float(e[-1]), 2))
 
     def _rebuild(self):
         """Re-derive A_V under the chosen law and R_V and build (or fetch) the model; redraw."""
