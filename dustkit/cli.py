@@ -1237,7 +1237,9 @@ def _cmd_demo(args, out):
     out(f"   Against the invented truth: median |error| {np.median(np.abs(est_av - true_av)):.2f} mag; "
         f"{100 * within:.0f}% of targets within their 1-sigma error (about 68% expected).", "")
 
-    out("5. Figures")
+    written.append(_demo_features(model, field, folder, out))
+
+    out("6. Figures")
     figs = []
     for name, (lc, bc) in (("Long Shadow", (58.0, 1.0)), ("Veyra Veil", (32.0, 2.0))):
         fig = _profile_figure(model, lc, bc)
@@ -1258,7 +1260,7 @@ def _cmd_demo(args, out):
 
         from .clusters import fit_clusters
 
-        out(f"6. Fitting E(B-V) and distance of 6 invented clusters from their members' photometry ({members_file.name})")
+        out(f"7. Fitting E(B-V) and distance of 6 invented clusters from their members' photometry ({members_file.name})")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             fitted = fit_clusters(_Table.read(members_file, format="ascii.csv"), cluster_column="cluster",
@@ -1279,6 +1281,35 @@ def _cmd_demo(args, out):
     out("", "Next: dustkit estimate MODEL TARGETS -o OUT.csv with your own target list; "
             "dustkit build CATALOG -o MODEL.fits with your own catalogue.", f"Caution: {CAUTION}")
     return 0
+
+
+def _demo_features(model, field, folder, out):
+    """Step 5 of the demo: the dust features of the density model, each beside the invented cloud nearest it."""
+    from astropy import units as u
+
+    from ._lib.sky import separation_deg
+    from .features import KIND_NEARER, density_features
+    from .io import write_table
+
+    feats = density_features(model, quiet=True)
+    meta = feats.meta
+    out(f"5. Finding dust features in the 3-D density ({meta['n_candidates']} candidate regions tested; least "
+        f"probability {meta['min_probability']:.4g})")
+    clouds = field["clouds"]
+    for r in feats:
+        l, b = float(r["l"].to_value(u.deg)), float(r["b"].to_value(u.deg))
+        where = (f"nearer than {r['distance_upper'].to_value(u.pc):.0f} pc" if r["kind"] == KIND_NEARER
+                 else f"{r['distance'].to_value(u.pc):.0f} +- {r['distance_err'].to_value(u.pc):.0f} pc")
+        sep = {name: float(separation_deg(l, b, c["l"], c["b"])) for name, c in clouds.items()}
+        near = min(sep, key=sep.get) if sep else None
+        truth = (f"invented {near}: {clouds[near]['distance']:g} pc, {clouds[near]['av']:.1f} mag through its centre"
+                 if near is not None and sep[near] <= max(2.0, 1.5 * clouds[near]["radius"]) else "no invented cloud there")
+        out(f"   #{r['feature']} l = {l:6.2f}, b = {b:+5.2f} deg: {where}, delta A_V {r['delta_av'].to_value(u.mag):.2f} "
+            f"+- {r['delta_av_err'].to_value(u.mag):.2f} mag, probability {r['significance']:.3f}   ({truth})")
+    out("   A cloud with fewer than two clusters in front of it can only be bounded ('nearer than'); clouds that few "
+        "clusters pierce are missed.", "")
+    return ("dust features (dustkit features MODEL -o FILE)", write_table(feats, folder / "veyra_features.csv",
+                                                                          overwrite=True))
 
 
 # ============================================================================ library words -> command words

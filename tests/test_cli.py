@@ -543,7 +543,14 @@ def test_demo_runs_the_whole_job(tmp_path):
     assert "out to 5 kpc" in out and m.grid_.distance_edges[-1] == 5000
     default_max = DensityModel().get_params()["distance_max"].to_value("kpc")
     assert f"out to 5 kpc, about as far as the clusters reach, instead of the default {default_max:g} kpc" in out
-    # step 6: main-sequence fits of the invented member photometry, a tracer table read_tracers takes
+    # step 5: the dust features of the model, the strongest invented cloud among them: the Long Shadow
+    # (truth of the invented field, data_demo/veyra_field.json: 1.6 kpc), located within 15%
+    feats = Table.read(out_dir / "veyra_features.csv", format="ascii.csv")
+    assert "5. Finding dust features" in out and "(invented Long Shadow: 1600 pc" in out
+    located = feats[feats["kind"] == "located"]
+    sep = np.hypot(np.asarray(located["l"]) - 58.0, np.asarray(located["b"]) - 1.0)
+    assert sep.min() < 2.0 and abs(float(located["distance"][np.argmin(sep)]) - 1600.0) <= 240.0
+    # step 7: main-sequence fits of the invented member photometry, a tracer table read_tracers takes
     fits = Table.read(out_dir / "veyra_member_fits.ecsv")
     assert len(fits) == 6 and "Veyra Lantern" in out and "(truth" in out
     with pytest.warns(AssumptionWarning, match="Several distance columns"):  # distance_pc and mu0: not an error
