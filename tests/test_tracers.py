@@ -2101,6 +2101,8 @@ def test_b1950_positions_are_read_in_fk4_from_names_fits_keywords_and_votable_co
     t = Table({"RA": ra, "DEC": dec, **base})
     t.meta["EQUINOX"] = 1950.0  # FITS standard 4.0 sec 8.1: RADESYS defaults to FK4 for EQUINOX < 1984 (from memory)
     t.write(fits_path)
+    parquet_path = tmp_path / "equinox.parquet"  # astropy keeps the table's meta in the Parquet metadata
+    t.write(parquet_path)
     vot_path = tmp_path / "coosys.xml"
     rows = "".join(f"<TR><TD>{r}</TD><TD>{d}</TD><TD>{x}</TD><TD>{e}</TD></TR>" for r, d, x, e in
                    zip(ra, dec, [1500.0, 2500.0], [0.4, 0.6]))
@@ -2111,7 +2113,7 @@ def test_b1950_positions_are_read_in_fk4_from_names_fits_keywords_and_votable_co
         'ref="old"/><FIELD name="Dist" datatype="double" unit="pc"/><FIELD name="EBV" datatype="double" unit="mag"/>'
         f"<DATA><TABLEDATA>{rows}</TABLEDATA></DATA></TABLE></RESOURCE></VOTABLE>")
     for source, said in ((named, "column names say B1950"), (fits_path, "EQUINOX = 1950.0"),
-                         (vot_path, "COOSYS of the columns")):
+                         (parquet_path, "EQUINOX = 1950.0"), (vot_path, "COOSYS of the columns")):
         with pytest.warns(AssumptionWarning, match=rf"read as FK4 B1950 \(.*{said}"):
             ts = _quiet_but(AssumptionWarning, read_tracers, source)
         np.testing.assert_allclose(ts.l, want_l, atol=1e-6)
@@ -2122,6 +2124,8 @@ def test_b1950_positions_are_read_in_fk4_from_names_fits_keywords_and_votable_co
     reading = dict(columns=None, distance_unit=None, law="ccm89", rv=3.1, parallax_zero_point=0.0,
                    default_distance_frac_err=0.1, default_excess_err=0.05, reject_limits=None, excess_color=None)
     fields, _, _ = chunk_tracers(Chunk("fits", str(fits_path), 0, 2, 0), reading)
+    np.testing.assert_allclose(fields["l"], want_l, atol=1e-6)
+    fields, _, _ = chunk_tracers(Chunk("parquet", str(parquet_path), 0, 2, 0, row_groups=(0,)), reading)
     np.testing.assert_allclose(fields["l"], want_l, atol=1e-6)
     # J2000 / ICRS files are unchanged: an EQUINOX of 2000 is FK5 J2000, taken as ICRS
     t.meta["EQUINOX"] = 2000.0

@@ -61,7 +61,7 @@ def arrow_to_table(tab, metadata=None):
         else:
             cols[name] = vals
     out = Table(cols, names=tab.column_names, copy=False)
-    parquet_units(out, metadata)
+    parquet_metadata(out, metadata)
     return out
 
 
@@ -83,9 +83,10 @@ def _numbers(col):
     return parts[0] if len(parts) == 1 else np.concatenate(parts)
 
 
-def parquet_units(table, metadata):
-    """Units that astropy wrote into a Parquet file's metadata (``table_meta_yaml``), set on the
-    table's columns, as ``Table.read`` sets them."""
+def parquet_metadata(table, metadata):
+    """Units and table metadata that astropy wrote into a Parquet file's metadata (``table_meta_yaml``),
+    set on the table's columns and ``meta``, as ``Table.read`` sets them (the meta carries, e.g., the
+    ``EQUINOX`` of the positions)."""
     yaml = (metadata or {}).get(b"table_meta_yaml")
     if not yaml:
         return
@@ -101,3 +102,5 @@ def parquet_units(table, metadata):
             # as astropy sets it: a unit it cannot parse stays an UnrecognizedUnit, which the
             # reader's lenient unit parsing (dustkit._lib.units.as_unit) reads or reports
             table[name].unit = u.Unit(unit, parse_strict="silent")
+    if isinstance(header.get("meta"), dict):
+        table.meta.update(header["meta"])
