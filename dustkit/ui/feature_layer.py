@@ -11,6 +11,7 @@ grows with the number of candidate regions the search tested (the command line's
 or, with *Look-elsewhere cut* unticked, the slider's value.
 """
 
+import math
 import time
 
 import ipywidgets as widgets
@@ -98,10 +99,10 @@ class FeatureLayer:
             from ..features import significant_features
 
             found = significant_features(found, **self.feature_parameters())
-            if self.look_elsewhere_widget.value:  # show the cut used
+            if self.look_elsewhere_widget.value:  # show the cut used (rounded down: unticked, it hides no feature shown)
                 syncing, self._syncing = self._syncing, True
                 try:
-                    self.min_probability_widget.value = round(float(found.meta["min_probability"]), 4)
+                    self.min_probability_widget.value = math.floor(float(found.meta["min_probability"]) * 1e4) / 1e4
                 finally:
                     self._syncing = syncing
         self.layer_features = found
