@@ -1114,8 +1114,8 @@ def _start_point(args, colours_only, start=None):
         reach |= (pred_ref >= np.nanmin(ref) - 2.5) & (pred_ref <= np.nanmax(ref) + 1.5)
     prange = (p[reach].min(), p[reach].max()) if np.count_nonzero(reach) >= 2 else None
     model = _Model(**args, step=0.025, param_range=prange)
-    # the field's dwarfs on the whole sequence, on a coarser grid (they are smoothed anyway)
-    wide = _Model(**{**args, "scatter": max(args["scatter"], FIELD_SEQUENCE_WIDTH)}, step=0.1)
+    # the field's dwarfs on the whole sequence, on a coarser grid (field_sequence smooths them)
+    wide = _Model(**args, step=0.1)
     e_top = max(c[1] for c in candidates)
     model.add_field(wide.field_sequence(2.0 * e_top + 0.5, np.arange(mu_grid[0], mu_grid[-1] + 1e-9, 0.3)))
     if len(candidates) > 1:
