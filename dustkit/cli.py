@@ -599,16 +599,14 @@ def _layer_lines(layer, given=None):
 
 
 def _false_rate(text):
-    """--false-rate: a number in (0, 1], or 'off' (no look-elsewhere correction)."""
+    """--false-rate: a number (its range is the library's check, dustkit.features.density_features), or
+    'off' (no look-elsewhere correction)."""
     if text.strip().lower() in ("off", "none"):
         return None
     try:
-        rate = float(text)
+        return float(text)
     except ValueError:
         raise _UsageError(f"--false-rate takes a number above 0 and at most 1 (0.1, say) or 'off'; got {text!r}") from None
-    if not 0.0 < rate <= 1.0:
-        raise _UsageError(f"--false-rate takes a number above 0 and at most 1 (0.1, say) or 'off'; got {rate:g}")
-    return rate
 
 
 def _quiet_flag(args):
